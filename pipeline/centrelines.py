@@ -1,0 +1,219 @@
+"""Steps 2 and 3, centrelines and radii.
+
+In: the cleaned, cropped mask ``(Z, Y, X)``, its spacing in µm, and which
+faces of the crop lie on the original volume border.
+Out: :class:`Centrelines`, the centreline voxels (topology-preserving thinning,
+Lee et al. 1994 as implemented by scikit-image) with their physical positions
+and the local radius (distance to background) at each.
+
+Anisotropy. Thinning works in voxel steps, so on a 5 x 1 x 1 µm stack it
+would treat a 5 µm step like a 1 µm one. When the coarsest spacing exceeds the
+finest by more than ``max_anisotropy``, the mask is resampled to an isotropic
+grid by shape-based interpolation (the signed distance to the vessel surface
+is interpolated linearly and thresholded at zero; Raya & Udupa 1990, IEEE
+Trans Med Imaging 9:32, from memory), thinned there, and the radii are
+measured there. Positions are physical, so nothing needs mapping back except
+voxel indices, which are rounded to the original grid.
+
+Radii and the half-voxel bias. The distance transform gives, at a voxel
+centre, the distance to the nearest background voxel centre. Thinned
+centrelines sit on voxel centres, which lie up to half a voxel (sqrt(3)/2 in
+the worst case) off the true axis, so the distance there reads low: on
+rasterised straight tubes of radius 1.5 to 8 voxels in random orientations
+the median shortfall was 0.1 to 0.37 voxel. The correction takes the ridge of
+the distance map, the largest value among the 26 neighbours of each
+centreline voxel, which brings the median error to within about 0.15 voxel
+over that range (tests/test_centrelines.py checks it). No constant is
+subtracted: with the usual labelling rule (a voxel is vessel when its centre
+is inside) the nearest background centre lies just outside the true surface
+in some lattice direction, so the outward half-voxel of any single axis does
+not carry over to the minimum over all directions.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import edt
+import numpy as np
+from scipy import ndimage as ndi
+from skimage.morphology import skeletonize
+
+__all__ = ["Centrelines", "extract_centrelines", "resample_isotropic"]
+
+_THREADS = 2
+
+
+@dataclass
+class Centrelines:
+    """Centreline voxels on the thinning grid.
+
+    Attributes
+    ----------
+    voxels : (M, 3) int ndarray
+        Indices on the thinning grid (relative to the crop).
+    positions_um : (M, 3) float ndarray
+        Physical position of each voxel centre in the original frame, µm.
+    radii_um : (M,) float ndarray
+        Distance to background at each voxel (ridge-corrected), µm.
+    grid_spacing : tuple of 3 float
+        Spacing of the thinning grid, µm.
+    grid_shape : tuple of 3 int
+        Shape of the thinning grid.
+    on_border : (M,) bool ndarray
+        Voxel lies within one voxel of the original volume's border.
+    resampled : bool
+        Whether the mask was resampled to an isotropic grid.
+    """
+
+    voxels: np.ndarray
+    positions_um: np.ndarray
+    radii_um: np.ndarray
+    grid_spacing: tuple
+    grid_shape: tuple
+    on_border: np.ndarray
+    resampled: bool
+
+
+def resample_isotropic(mask, *, spacing, target):
+    """Resample a binary mask onto an isotropic grid by shape-based interpolation.
+
+    Parameters
+    ----------
+    mask : (Z, Y, X) or (Y, X) bool ndarray
+    spacing : sequence of float
+        Spacing of ``mask`` in µm, one value per axis.
+    target : float
+        Isotropic spacing of the output in µm.
+
+    Returns
+    -------
+    out : bool ndarray
+        Voxel ``j`` of the output has its centre at ``j * target`` µm, the same
+        physical frame as the input; the output spans the input's extent.
+    """
+    spacing = np.asarray(spacing, dtype=float)
+    inside = edt.edt(mask, anisotropy=tuple(spacing), black_border=False, parallel=_THREADS)
+    outside = edt.edt(~mask, anisotropy=tuple(spacing), black_border=False, parallel=_THREADS)
+    phi = np.subtract(inside, outside, dtype=np.float32)
+    del inside, outside
+    out_shape = tuple(int(np.floor((n - 1) * s / target + 1e-9)) + 1 for n, s in zip(mask.shape, spacing))
+    scale = target / spacing
+    fine = ndi.affine_transform(phi, scale, output_shape=out_shape, order=1, output=np.float32, mode="nearest")
+    return fine > 0
+
+
+def _edge_pad(mask, border_faces, width):
+    # Vessels cut by the volume border continue straight out of it, so the
+    # thinning does not erode their cut ends back by a radius.
+    pads = []
+    for axis in range(mask.ndim):
+        lo, hi = border_faces[axis]
+        pads.append((width if lo else 0, width if hi else 0))
+    if not any(a or b for a, b in pads):
+        return mask, [(0, 0)] * mask.ndim
+    return np.pad(mask, pads, mode="edge"), pads
+
+
+def _ridge(distance, voxels):
+    best = distance[tuple(voxels.T)]
+    hi = np.array(distance.shape) - 1
+    nd = voxels.shape[1]
+    for off in np.ndindex(*(3,) * nd):
+        o = np.array(off) - 1
+        if not o.any():
+            continue
+        idx = np.clip(voxels + o, 0, hi)
+        np.maximum(best, distance[tuple(idx.T)], out=best)
+    return best
+
+
+def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
+                        max_anisotropy=1.5, resample_spacing_um=None, half_voxel_correction=True):
+    """Thin the mask to centrelines and measure the radius along them.
+
+    Parameters
+    ----------
+    mask : (Z, Y, X) bool ndarray
+        Cleaned mask cropped to its bounding box (planar masks: ``Z == 1``).
+    spacing : sequence of 3 float
+        Voxel spacing in µm.
+    offset : sequence of 3 int
+        Index of ``mask[0, 0, 0]`` in the original grid.
+    original_shape : sequence of 3 int
+        Shape of the original volume, to know which crop faces are cut ends.
+    planar : bool
+        Analyse in-plane (2-D thinning, in-plane half-widths).
+    max_anisotropy : float
+        Resample to isotropic when ``max(spacing) / min(spacing)`` exceeds it.
+    resample_spacing_um : float or None
+        Isotropic spacing for resampling; default the finest spacing.
+    half_voxel_correction : bool
+        Apply the ridge correction described in the module docstring.
+
+    Returns
+    -------
+    Centrelines
+    """
+    spacing = np.asarray(spacing, dtype=float)
+    offset = np.asarray(offset)
+    original_shape = np.asarray(original_shape)
+    axes = [1, 2] if planar else [0, 1, 2]
+    work = mask[0] if planar else mask
+    sp = spacing[axes]
+    resampled = False
+    if sp.max() / sp.min() > max_anisotropy:
+        target = float(resample_spacing_um or sp.min())
+        work = resample_isotropic(work, spacing=sp, target=target)
+        sp = np.full(len(axes), target)
+        resampled = True
+    elif resample_spacing_um is not None and not np.allclose(sp, resample_spacing_um):
+        work = resample_isotropic(work, spacing=sp, target=float(resample_spacing_um))
+        sp = np.full(len(axes), float(resample_spacing_um))
+        resampled = True
+
+    distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_THREADS)
+    crop_shape = np.asarray(mask.shape)[axes]
+    border_faces = [
+        (offset[a] == 0, offset[a] + mask.shape[a] == original_shape[a]) for a in axes
+    ]
+    width = int(np.ceil(float(distance.max()) / sp.min())) + 2
+    padded, pads = _edge_pad(work, border_faces, width)
+    skel = skeletonize(padded)
+    inner = tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))
+    voxels = np.argwhere(skel[inner])
+    del skel, padded
+    if half_voxel_correction:
+        radii = _ridge(distance, voxels)
+    else:
+        radii = distance[tuple(voxels.T)]
+    radii = radii.astype(np.float64)
+    del distance
+
+    pos = voxels * sp + offset[axes] * spacing[axes]
+    if planar:
+        positions = np.column_stack([np.zeros(len(pos)), pos])
+        vox3 = np.column_stack([np.zeros(len(voxels), dtype=voxels.dtype), voxels])
+        grid_spacing = (float(spacing[0]), float(sp[0]), float(sp[1]))
+        grid_shape = (1,) + tuple(work.shape)
+    else:
+        positions = pos
+        vox3 = voxels
+        grid_spacing = tuple(float(s) for s in sp)
+        grid_shape = tuple(work.shape)
+    # Border test on the original grid: within one voxel of a face that is the volume's edge.
+    orig_idx = np.rint(positions / spacing).astype(np.int64)
+    on_border = np.zeros(len(positions), dtype=bool)
+    for a in axes:
+        if original_shape[a] > 1:
+            on_border |= (orig_idx[:, a] <= 1) | (orig_idx[:, a] >= original_shape[a] - 2)
+    del crop_shape
+    return Centrelines(
+        voxels=vox3,
+        positions_um=positions,
+        radii_um=radii,
+        grid_spacing=grid_spacing,
+        grid_shape=grid_shape,
+        on_border=on_border,
+        resampled=resampled,
+    )

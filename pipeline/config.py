@@ -1,0 +1,176 @@
+"""Analysis configuration: defaults, YAML loading and validation.
+
+In: nothing, a mapping, or a YAML file path. Out: a validated, complete nested
+``dict`` (section -> key -> value) that every step reads and ``run.json``
+records. This is the only place where option values are checked; steps trust
+what they receive.
+
+The documented defaults live in ``configs/default.yaml``; the schema below is
+the single source of truth for types and ranges, and a test keeps the two equal.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Mapping
+
+import yaml
+
+from .errors import ConfigError
+
+__all__ = ["SCHEMA", "default_config", "load_config", "validate_config", "Param"]
+
+
+@dataclass(frozen=True)
+class Param:
+    """One configuration value: its default, accepted type and range."""
+
+    default: Any
+    kind: type | tuple[type, ...]
+    low: float | None = None
+    high: float | None = None
+    choices: tuple[Any, ...] | None = None
+    allow_none: bool = False
+    low_open: bool = False  # True: value must be strictly greater than ``low``
+
+    def check(self, name: str, value: Any) -> Any:
+        if value is None:
+            if self.allow_none:
+                return None
+            raise ConfigError(f"config key '{name}': expected a value, got null")
+        kinds = self.kind if isinstance(self.kind, tuple) else (self.kind,)
+        if float in kinds and isinstance(value, int) and not isinstance(value, bool):
+            value = float(value)
+        if isinstance(value, bool) and bool not in kinds:
+            raise ConfigError(f"config key '{name}': expected {_kind_name(kinds)}, got {value!r}")
+        if not isinstance(value, kinds):
+            raise ConfigError(f"config key '{name}': expected {_kind_name(kinds)}, got {value!r}")
+        if self.choices is not None and value not in self.choices:
+            raise ConfigError(
+                f"config key '{name}': expected one of {', '.join(map(str, self.choices))}, got {value!r}"
+            )
+        if isinstance(value, float) and not math.isfinite(value):
+            raise ConfigError(f"config key '{name}': expected a finite number, got {value!r}")
+        if self.low is not None and (value < self.low or (self.low_open and value == self.low)):
+            rel = ">" if self.low_open else ">="
+            raise ConfigError(f"config key '{name}': expected a value {rel} {self.low}, got {value!r}")
+        if self.high is not None and value > self.high:
+            raise ConfigError(f"config key '{name}': expected a value <= {self.high}, got {value!r}")
+        return value
+
+
+def _kind_name(kinds: tuple[type, ...]) -> str:
+    names = {bool: "true/false", int: "an integer", float: "a number", str: "a string", list: "a list"}
+    return " or ".join(names.get(k, k.__name__) for k in kinds)
+
+
+# Section -> key -> Param. Keep in step with configs/default.yaml (a test checks).
+SCHEMA: dict[str, dict[str, Param]] = {
+    "input": {
+        "threshold": Param(None, float, allow_none=True),
+        "max_memory_gb": Param(None, float, low=0.0, low_open=True, allow_none=True),
+    },
+    "cleaning": {
+        "min_object_volume_um3": Param(1000.0, float, low=0.0),
+        "fill_cavities": Param(True, bool),
+    },
+    "centrelines": {
+        "max_anisotropy": Param(1.5, float, low=1.0),
+        "resample_spacing_um": Param(None, float, low=0.0, low_open=True, allow_none=True),
+    },
+    "radii": {
+        "half_voxel_correction": Param(True, bool),
+        "junction_exclusion_radii": Param(1.0, float, low=0.0, high=10.0),
+        "statistic": Param("median", str, choices=("median", "mean", "trimmed_mean")),
+    },
+    "pruning": {
+        "spur_radius_factor": Param(1.5, float, low=0.0, high=20.0),
+        "min_spur_length_um": Param(2.0, float, low=0.0),
+        "min_fragment_length_um": Param(10.0, float, low=0.0),
+        "max_rounds": Param(20, int, low=1, high=1000),
+    },
+    "measures": {
+        "smoothing_sigma_um": Param(None, float, low=0.0, allow_none=True),
+        "soam_step_um": Param(None, float, low=0.0, low_open=True, allow_none=True),
+    },
+}
+
+
+def default_config() -> dict[str, dict[str, Any]]:
+    """Return a fresh nested dict of every default value."""
+    return {sec: {k: copy.deepcopy(p.default) for k, p in keys.items()} for sec, keys in SCHEMA.items()}
+
+
+def validate_config(overrides: Mapping[str, Any] | None) -> dict[str, dict[str, Any]]:
+    """Merge ``overrides`` into the defaults and check every value.
+
+    Parameters
+    ----------
+    overrides : mapping or None
+        Nested ``{section: {key: value}}``; missing sections and keys take
+        their defaults.
+
+    Returns
+    -------
+    dict
+        The complete effective configuration.
+
+    Raises
+    ------
+    ConfigError
+        On an unknown section or key, or a value of the wrong type or range.
+
+    Examples
+    --------
+    >>> cfg = validate_config({"pruning": {"spur_radius_factor": 2}})
+    >>> cfg["pruning"]["spur_radius_factor"]
+    2.0
+    """
+    cfg = default_config()
+    if overrides is None:
+        return cfg
+    if not isinstance(overrides, Mapping):
+        raise ConfigError(f"config: expected a mapping of sections, got {type(overrides).__name__}")
+    for sec, values in overrides.items():
+        if sec not in SCHEMA:
+            raise ConfigError(
+                f"config: unknown section '{sec}' (known: {', '.join(SCHEMA)})"
+            )
+        if values is None:
+            continue
+        if not isinstance(values, Mapping):
+            raise ConfigError(f"config section '{sec}': expected a mapping of keys, got {values!r}")
+        for key, value in values.items():
+            if key not in SCHEMA[sec]:
+                raise ConfigError(
+                    f"config: unknown key '{sec}.{key}' (known in '{sec}': {', '.join(SCHEMA[sec])})"
+                )
+            cfg[sec][key] = SCHEMA[sec][key].check(f"{sec}.{key}", value)
+    return cfg
+
+
+def load_config(source: str | Path | Mapping[str, Any] | None = None) -> dict[str, dict[str, Any]]:
+    """Load and validate a configuration from a YAML file, a mapping or nothing.
+
+    Raises
+    ------
+    ConfigError
+        When the file is missing, is not valid YAML, or fails validation.
+    """
+    if source is None or isinstance(source, Mapping):
+        return validate_config(source)
+    path = Path(source)
+    if not path.is_file():
+        raise ConfigError(f"config file '{path}': not found")
+    try:
+        data = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as exc:
+        line = getattr(getattr(exc, "problem_mark", None), "line", None)
+        where = f" at line {line + 1}" if line is not None else ""
+        raise ConfigError(f"config file '{path}': not valid YAML{where}") from None
+    if data is None:
+        data = {}
+    return validate_config(data)

@@ -1,0 +1,27 @@
+"""Exception hierarchy shared by every step.
+
+In: nothing. Out: ``VesselflowError`` and its three subclasses. The CLI maps
+``InputError`` and ``ConfigError`` to exit code 2 with a one-line message,
+anything else to exit code 1.
+"""
+
+__all__ = ["VesselflowError", "InputError", "ConfigError", "SolverError"]
+
+
+class VesselflowError(Exception):
+    """Base class of every error vesselflow raises on purpose."""
+
+
+class InputError(VesselflowError, ValueError):
+    """The input data (file, array, spacing, sample sheet) is not usable.
+
+    Messages name the parameter, what was expected and what was got.
+    """
+
+
+class ConfigError(VesselflowError, ValueError):
+    """A configuration key is unknown or its value is out of range."""
+
+
+class SolverError(VesselflowError, RuntimeError):
+    """A numerical solve did not converge or produced non-finite values."""

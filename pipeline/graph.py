@@ -1,0 +1,470 @@
+"""Steps 4 and 5, graph building and pruning.
+
+In: :class:`~pipeline.centrelines.Centrelines` (centreline voxels with
+positions and radii).
+Out: :class:`VesselGraph`, nodes (junctions, ends, loop nodes) and segments
+(each with its ordered centreline path of positions and radii), pruned of
+spurs and small fragments; a multigraph (parallel segments and self-loops
+are valid).
+
+Construction. Centreline voxels are 26-adjacent. A voxel with other than two
+neighbours is a node voxel: 26-connected clusters of junction voxels (three
+or more neighbours) merge into one node at their centroid; a voxel with one
+neighbour is an end node. The remaining voxels form simple paths between node
+voxels, traced in one compiled pass; closed loops with no node voxel get a
+node on one of their voxels. A self-loop with fewer than three path voxels
+cannot enclose a tunnel and is a thinning artefact at a junction: it is dropped
+and counted.
+
+Pruning (repeated until nothing changes): terminal spurs, segments from a
+junction to an end inside the tissue that are shorter than
+``spur_radius_factor`` times the junction's radius or than
+``min_spur_length_um``, are removed (ends cut by the volume border are real
+vessels and are kept); nodes left with two segments dissolve and their
+segments merge; connected pieces with less than ``min_fragment_length_um`` of
+centreline in all are dropped.
+"""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from dataclasses import dataclass, field
+
+import numba
+import numpy as np
+from scipy import sparse
+from scipy.sparse import csgraph
+
+__all__ = ["VesselGraph", "build_graph", "prune_graph", "voxel_adjacency"]
+
+
+@dataclass
+class VesselGraph:
+    """A vessel multigraph with ordered centreline paths.
+
+    Attributes
+    ----------
+    node_pos_um : (N, 3) float ndarray
+        Node positions, µm (junction: cluster centroid).
+    node_radius_um : (N,) float ndarray
+        Largest radius among the node's voxels, µm.
+    node_on_border : (N,) bool ndarray
+        Node lies within one voxel of the volume border.
+    node_alive : (N,) bool ndarray
+        False for nodes removed by pruning.
+    seg_nodes : dict int -> (int, int)
+        Segment id to its (from, to) node ids.
+    seg_path : dict int -> (K, 3) float ndarray
+        Ordered centreline positions from ``from`` to ``to``, µm, both
+        node positions included.
+    seg_radii : dict int -> (K,) float ndarray
+        Radius at each path point, µm.
+    counts : dict
+        What construction and pruning removed.
+    """
+
+    node_pos_um: np.ndarray
+    node_radius_um: np.ndarray
+    node_on_border: np.ndarray
+    node_alive: np.ndarray
+    seg_nodes: dict
+    seg_path: dict
+    seg_radii: dict
+    counts: dict = field(default_factory=dict)
+
+    def incidence(self):
+        """Map node id to the list of incident segment ids (self-loops twice)."""
+        inc = defaultdict(list)
+        for s, (u, v) in self.seg_nodes.items():
+            inc[u].append(s)
+            inc[v].append(s)
+        return inc
+
+    def degrees(self):
+        """(N,) int array of node degrees (a self-loop counts twice)."""
+        deg = np.zeros(len(self.node_pos_um), dtype=np.int64)
+        for u, v in self.seg_nodes.values():
+            deg[u] += 1
+            deg[v] += 1
+        return deg
+
+
+def voxel_adjacency(voxels):
+    """Sparse symmetric 26-adjacency among voxel indices.
+
+    Parameters
+    ----------
+    voxels : (M, D) int ndarray
+        Distinct voxel indices, D = 2 or 3.
+
+    Returns
+    -------
+    (M, M) scipy.sparse.csr_matrix of bool
+    """
+    m, nd = voxels.shape
+    if m == 0:
+        return sparse.csr_matrix((0, 0), dtype=bool)
+    v = voxels.astype(np.int64) + 1  # a one-voxel margin so neighbours never wrap
+    dims = v.max(axis=0) + 2
+    strides = np.cumprod(np.r_[1, dims[::-1][:-1]])[::-1]
+    lin = v @ strides
+    order = np.argsort(lin)
+    lin_sorted = lin[order]
+    rows, cols = [], []
+    for off in np.ndindex(*(3,) * nd):
+        o = np.array(off) - 1
+        d = int(o @ strides)
+        if d <= 0:  # each unordered pair once
+            continue
+        target = lin + d
+        pos = np.searchsorted(lin_sorted, target)
+        pos = np.minimum(pos, m - 1)
+        hit = lin_sorted[pos] == target
+        rows.append(np.flatnonzero(hit))
+        cols.append(order[pos[hit]])
+    r = np.concatenate(rows)
+    c = np.concatenate(cols)
+    a = sparse.coo_matrix((np.ones(len(r), dtype=bool), (r, c)), shape=(m, m))
+    return (a + a.T).tocsr()
+
+
+@numba.njit(cache=True)
+def _trace(indptr, indices, node_of):
+    """Trace the simple paths between node voxels.
+
+    Returns flat arrays: per path its start node, end node, and the range of
+    its voxels in ``flat``; loops without a node voxel get node -1 and the
+    caller makes a node for them.
+    """
+    m = len(node_of)
+    visited = np.zeros(m, dtype=np.bool_)
+    flat = np.empty(m, dtype=np.int64)
+    n_flat = 0
+    starts = np.empty(2 * m + 1, dtype=np.int64)
+    ends = np.empty(2 * m + 1, dtype=np.int64)
+    offs = np.empty(2 * m + 2, dtype=np.int64)
+    first_vox = np.empty(2 * m + 1, dtype=np.int64)
+    last_vox = np.empty(2 * m + 1, dtype=np.int64)
+    n_seg = 0
+    offs[0] = 0
+    for u in range(m):
+        if node_of[u] < 0:
+            continue
+        for k in range(indptr[u], indptr[u + 1]):
+            v = indices[k]
+            if node_of[v] >= 0:
+                # Node voxel next to a node voxel of another node: a path with no inner voxel.
+                if node_of[v] != node_of[u] and u < v:
+                    starts[n_seg] = node_of[u]
+                    ends[n_seg] = node_of[v]
+                    first_vox[n_seg] = u
+                    last_vox[n_seg] = v
+                    n_seg += 1
+                    offs[n_seg] = n_flat
+                continue
+            if visited[v]:
+                continue
+            prev = u
+            cur = v
+            visited[cur] = True
+            flat[n_flat] = cur
+            n_flat += 1
+            end = -1
+            while True:
+                nxt = -1
+                for kk in range(indptr[cur], indptr[cur + 1]):
+                    w = indices[kk]
+                    if w != prev:
+                        nxt = w
+                        break
+                if nxt < 0:
+                    break
+                if node_of[nxt] >= 0:
+                    end = nxt
+                    break
+                if visited[nxt]:
+                    break
+                visited[nxt] = True
+                flat[n_flat] = nxt
+                n_flat += 1
+                prev = cur
+                cur = nxt
+            starts[n_seg] = node_of[u]
+            ends[n_seg] = node_of[end] if end >= 0 else -1
+            first_vox[n_seg] = u
+            last_vox[n_seg] = end
+            n_seg += 1
+            offs[n_seg] = n_flat
+    # Closed loops made only of two-neighbour voxels.
+    for s in range(m):
+        if node_of[s] >= 0 or visited[s]:
+            continue
+        visited[s] = True
+        flat[n_flat] = s
+        n_flat += 1
+        prev = -1
+        cur = s
+        while True:
+            nxt = -1
+            for kk in range(indptr[cur], indptr[cur + 1]):
+                w = indices[kk]
+                if w != prev and not visited[w]:
+                    nxt = w
+                    break
+            if nxt < 0:
+                break
+            visited[nxt] = True
+            flat[n_flat] = nxt
+            n_flat += 1
+            prev = cur
+            cur = nxt
+        starts[n_seg] = -1
+        ends[n_seg] = -1
+        first_vox[n_seg] = s
+        last_vox[n_seg] = s
+        n_seg += 1
+        offs[n_seg] = n_flat
+    return flat[:n_flat], starts[:n_seg], ends[:n_seg], offs[: n_seg + 1], first_vox[:n_seg], last_vox[:n_seg]
+
+
+def build_graph(centrelines):
+    """Turn centreline voxels into a vessel multigraph.
+
+    Parameters
+    ----------
+    centrelines : Centrelines
+
+    Returns
+    -------
+    VesselGraph
+        Unpruned; see :func:`prune_graph`.
+    """
+    vox = centrelines.voxels
+    pos = centrelines.positions_um
+    rad = centrelines.radii_um
+    adj = voxel_adjacency(vox)
+    deg = np.diff(adj.indptr)
+    m = len(vox)
+    node_of = np.full(m, -1, dtype=np.int64)
+    junction = np.flatnonzero(deg >= 3)
+    ends = np.flatnonzero(deg <= 1)
+    n_nodes = 0
+    node_pos, node_rad, node_border = [], [], []
+    if len(junction):
+        sub = adj[junction][:, junction]
+        ncl, lab = csgraph.connected_components(sub, directed=False)
+        node_of[junction] = lab
+        cnt = np.bincount(lab, minlength=ncl).astype(float)
+        cen = np.column_stack([np.bincount(lab, weights=pos[junction, a], minlength=ncl) for a in range(3)]) / cnt[:, None]
+        rmax = np.full(ncl, -np.inf)
+        np.maximum.at(rmax, lab, rad[junction])
+        bord = np.zeros(ncl, dtype=bool)
+        np.logical_or.at(bord, lab, centrelines.on_border[junction])
+        node_pos.append(cen)
+        node_rad.append(rmax)
+        node_border.append(bord)
+        n_nodes = ncl
+    if len(ends):
+        node_of[ends] = n_nodes + np.arange(len(ends))
+        node_pos.append(pos[ends])
+        node_rad.append(rad[ends])
+        node_border.append(centrelines.on_border[ends])
+        n_nodes += len(ends)
+    flat, starts, stops, offs, first_vox, last_vox = _trace(adj.indptr, adj.indices.astype(np.int64), node_of)
+    node_pos = list(node_pos)
+    seg_nodes, seg_path, seg_radii = {}, {}, {}
+    dropped_loops = 0
+    sid = 0
+    extra_pos, extra_rad, extra_border = [], [], []
+    for k in range(len(starts)):
+        inner = flat[offs[k]:offs[k + 1]]
+        u, v = int(starts[k]), int(stops[k])
+        if u < 0:  # a closed loop of two-neighbour voxels: its first voxel becomes a node
+            u = v = n_nodes + len(extra_pos)
+            extra_pos.append(pos[inner[0]])
+            extra_rad.append(rad[inner[0]])
+            extra_border.append(bool(centrelines.on_border[inner[0]]))
+            inner = np.r_[inner, inner[:1]]
+            path = pos[inner]
+            radii = rad[inner]
+        else:
+            if v < 0:
+                # Path that ran into visited voxels only happens on malformed input; skip it.
+                continue
+            if u == v and len(inner) < 3:
+                dropped_loops += 1
+                continue
+            path = np.vstack([_node_position(u, node_pos, n_nodes), pos[inner], _node_position(v, node_pos, n_nodes)])
+            radii = np.r_[_node_value(u, node_rad), rad[inner], _node_value(v, node_rad)]
+        seg_nodes[sid] = (u, v)
+        seg_path[sid] = path
+        seg_radii[sid] = radii
+        sid += 1
+    all_pos = np.vstack(node_pos + ([np.asarray(extra_pos)] if extra_pos else [])) if (node_pos or extra_pos) else np.zeros((0, 3))
+    all_rad = np.concatenate(node_rad + ([np.asarray(extra_rad)] if extra_rad else [])) if (node_rad or extra_rad) else np.zeros(0)
+    all_border = np.concatenate(node_border + ([np.asarray(extra_border, bool)] if extra_border else [])) if (node_border or extra_border) else np.zeros(0, bool)
+    g = VesselGraph(
+        node_pos_um=all_pos,
+        node_radius_um=all_rad,
+        node_on_border=all_border,
+        node_alive=np.ones(len(all_pos), dtype=bool),
+        seg_nodes=seg_nodes,
+        seg_path=seg_path,
+        seg_radii=seg_radii,
+        counts={"centreline_voxels": int(m), "junction_artefact_loops": dropped_loops},
+    )
+    return g
+
+
+def _node_position(n, node_pos, n_nodes):
+    # node_pos is a list of blocks; look up without stacking per call.
+    for block in node_pos:
+        if n < len(block):
+            return block[n][None, :]
+        n -= len(block)
+    raise IndexError(n)
+
+
+def _node_value(n, node_vals):
+    for block in node_vals:
+        if n < len(block):
+            return block[n]
+        n -= len(block)
+    raise IndexError(n)
+
+
+def _polyline_length(p):
+    return float(np.sqrt((np.diff(p, axis=0) ** 2).sum(axis=1)).sum())
+
+
+def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20):
+    """Remove spurs and small fragments; dissolve degree-2 nodes (in place).
+
+    Parameters
+    ----------
+    g : VesselGraph
+    spur_radius_factor : float
+        A terminal spur shorter than this times its junction's radius goes.
+    min_spur_length_um : float
+        A terminal spur shorter than this goes regardless of radius.
+    min_fragment_length_um : float
+        Connected pieces with less centreline than this go.
+    max_rounds : int
+        Upper bound on spur/merge rounds.
+
+    Returns
+    -------
+    VesselGraph
+        ``g`` itself, with ``counts`` updated: ``spurs_removed``,
+        ``nodes_dissolved``, ``fragments_removed``, ``pruning_rounds``.
+    """
+    inc = g.incidence()
+    spurs = dissolved = rounds = 0
+    next_id = max(g.seg_nodes, default=-1) + 1
+
+    def remove_segment(s):
+        u, v = g.seg_nodes.pop(s)
+        inc[u].remove(s)
+        inc[v].remove(s)
+        del g.seg_path[s], g.seg_radii[s]
+
+    while rounds < max_rounds:
+        rounds += 1
+        changed = False
+        # Spurs: decide on the current graph, then remove together, so the
+        # result does not depend on iteration order within a round.
+        doomed = []
+        for s, (u, v) in g.seg_nodes.items():
+            if u == v:
+                continue
+            du, dv = len(inc[u]), len(inc[v])
+            if du == 1 and dv >= 3:
+                end, junc = u, v
+            elif dv == 1 and du >= 3:
+                end, junc = v, u
+            else:
+                continue
+            if g.node_on_border[end]:
+                continue
+            limit = max(spur_radius_factor * g.node_radius_um[junc], min_spur_length_um)
+            if _polyline_length(g.seg_path[s]) < limit:
+                doomed.append((s, end))
+        # A junction must keep at least one segment: never remove all its spurs at once.
+        by_junction = defaultdict(list)
+        for s, end in doomed:
+            u, v = g.seg_nodes[s]
+            by_junction[v if end == u else u].append((s, end))
+        for junc, items in by_junction.items():
+            if len(items) >= len(inc[junc]):
+                items = sorted(items, key=lambda it: _polyline_length(g.seg_path[it[0]]))[:-1]
+            for s, end in items:
+                remove_segment(s)
+                g.node_alive[end] = False
+                spurs += 1
+                changed = True
+        # Dissolve nodes with exactly two segment ends that are not a self-loop.
+        for n in np.flatnonzero(g.node_alive):
+            segs = inc[n]
+            if len(segs) != 2 or segs[0] == segs[1]:
+                continue
+            a, b = segs
+            pa, ra = _oriented(g, a, n, at_end=True)
+            pb, rb = _oriented(g, b, n, at_end=False)
+            ua = _other(g.seg_nodes[a], n)
+            ub = _other(g.seg_nodes[b], n)
+            remove_segment(a)
+            remove_segment(b)
+            s = next_id
+            next_id += 1
+            g.seg_nodes[s] = (ua, ub)
+            g.seg_path[s] = np.vstack([pa, pb[1:]])
+            g.seg_radii[s] = np.r_[ra, rb[1:]]
+            inc[ua].append(s)
+            inc[ub].append(s)
+            g.node_alive[n] = False
+            dissolved += 1
+            changed = True
+        if not changed:
+            break
+    # Fragments: connected pieces by total centreline length.
+    alive = np.flatnonzero(g.node_alive)
+    fragments = 0
+    if len(alive):
+        seg_ids = list(g.seg_nodes)
+        n = len(g.node_pos_um)
+        if seg_ids:
+            uv = np.array([g.seg_nodes[s] for s in seg_ids])
+            a = sparse.coo_matrix((np.ones(len(uv)), (uv[:, 0], uv[:, 1])), shape=(n, n))
+        else:
+            a = sparse.coo_matrix((n, n))
+        _, comp = csgraph.connected_components(a, directed=False)
+        comp_len = np.zeros(comp.max() + 1)
+        for s in seg_ids:
+            comp_len[comp[g.seg_nodes[s][0]]] += _polyline_length(g.seg_path[s])
+        small = comp_len < min_fragment_length_um
+        for s in seg_ids:
+            if small[comp[g.seg_nodes[s][0]]]:
+                remove_segment(s)
+        dead = small[comp] & g.node_alive
+        fragments = int(np.unique(comp[dead]).size)
+        g.node_alive &= ~dead
+    # Nodes with no segment left (isolated voxels) are not part of the graph.
+    g.node_alive &= np.array([len(inc[i]) > 0 for i in range(len(g.node_pos_um))], dtype=bool)
+    g.counts.update(
+        spurs_removed=spurs, nodes_dissolved=dissolved, fragments_removed=fragments, pruning_rounds=rounds
+    )
+    return g
+
+
+def _other(uv, n):
+    return uv[1] if uv[0] == n else uv[0]
+
+
+def _oriented(g, s, n, *, at_end):
+    """Path of segment ``s`` oriented so that node ``n`` is at its end (or start)."""
+    p, r = g.seg_path[s], g.seg_radii[s]
+    u, v = g.seg_nodes[s]
+    n_is_end = v == n
+    if n_is_end != at_end:
+        p, r = p[::-1], r[::-1]
+    return p, r

@@ -1,0 +1,185 @@
+"""Writing and reading a result folder.
+
+In: an :class:`~pipeline.analysis.Analysis` and the run metadata.
+Out: files in a result folder, written atomically (into a temporary sibling
+folder that is renamed at the end, so an interrupted run never leaves a
+folder that looks complete):
+
+- ``segments.csv``, ``nodes.csv``: the tables (``segment_id``/``node_id`` join them);
+- ``summary.json``: sample measures;
+- ``graph.graphml``: the multigraph with node and segment attributes;
+- ``centrelines.npz``: every segment's smoothed centreline, compact:
+  ``points_um`` (P, 3) float32, ``radii_um`` (P,) float32 along the raw
+  centreline, ``offsets`` (S + 1,) int64 so segment ``i`` is
+  ``points_um[offsets[i]:offsets[i + 1]]``;
+- ``run.json``: version, input and its checksum, spacing and its source,
+  effective config, time per step, counts and warnings.
+
+:func:`load_result` reads a folder back.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+
+__all__ = ["write_result", "load_result", "Result", "check_outdir", "RESULT_FILES"]
+
+RESULT_FILES = ("segments.csv", "nodes.csv", "summary.json", "graph.graphml", "centrelines.npz", "run.json")
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating, float)):
+        f = float(obj)
+        return f if math.isfinite(f) else None
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    return obj
+
+
+def write_json(path, data):
+    Path(path).write_text(json.dumps(_jsonable(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
+
+
+def check_outdir(outdir, *, overwrite):
+    """Refuse a non-empty output folder unless ``overwrite``; raises InputError."""
+    out = Path(outdir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"output '{out}': expected a folder, got an existing file")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise InputError(f"output folder '{out}' is not empty; pass --overwrite to replace it")
+
+
+def _graphml(G):
+    # GraphML attributes must be scalars of one type per key: cast, and drop NaN.
+    H = nx.MultiGraph()
+    for n, d in G.nodes(data=True):
+        H.add_node(n, **{k: _scalar(v) for k, v in d.items() if _scalar(v) is not None})
+    for u, v, k, d in G.edges(keys=True, data=True):
+        H.add_edge(u, v, key=k, **{a: _scalar(b) for a, b in d.items() if _scalar(b) is not None})
+    return H
+
+
+def _scalar(v):
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        return float(v) if math.isfinite(v) else None
+    if v is None or (isinstance(v, float) and math.isnan(v)):
+        return None
+    if v is pd.NA:
+        return None
+    return str(v)
+
+
+def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None):
+    """Write a result folder atomically.
+
+    Parameters
+    ----------
+    result : Analysis
+    outdir : str or Path
+    run_info : dict
+        Merged into ``run.json`` (version, input, checksum, spacing source...).
+    overwrite : bool
+        Replace a non-empty ``outdir``.
+    extra_tables : dict of str -> DataFrame, optional
+        Further CSV tables (for example ``levels.csv``).
+
+    Raises
+    ------
+    InputError
+        If ``outdir`` is not empty and ``overwrite`` is False.
+    """
+    out = Path(outdir)
+    check_outdir(out, overwrite=overwrite)
+    parent = out.resolve().parent
+    parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=parent))
+    try:
+        result.segments.to_csv(tmp / "segments.csv", index=False)
+        result.nodes.to_csv(tmp / "nodes.csv", index=False)
+        for name, table in (extra_tables or {}).items():
+            table.to_csv(tmp / name, index=False)
+        write_json(tmp / "summary.json", result.summary)
+        nx.write_graphml(_graphml(result.graph), tmp / "graph.graphml")
+        lens = [len(p) for p in result.centrelines]
+        offsets = np.r_[0, np.cumsum(lens)].astype(np.int64)
+        pts = np.vstack(result.centrelines).astype(np.float32) if lens else np.zeros((0, 3), np.float32)
+        rad = (np.concatenate(result.centreline_radii).astype(np.float32) if lens else np.zeros(0, np.float32))
+        np.savez_compressed(tmp / "centrelines.npz", points_um=pts, radii_um=rad, offsets=offsets,
+                            segment_id=result.segments["segment_id"].to_numpy(np.int64),
+                            spacing_um=np.asarray(result.spacing, float))
+        run = dict(result.run)
+        run.update(run_info)
+        write_json(tmp / "run.json", run)  # written last: its presence marks a complete folder
+        if out.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=parent))
+            os.rename(out, old / "x")
+            os.rename(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+@dataclass
+class Result:
+    """A result folder read back: tables, summary, run info and centrelines."""
+
+    path: Path
+    segments: pd.DataFrame
+    nodes: pd.DataFrame
+    summary: dict
+    run: dict
+    centrelines: list
+
+    @property
+    def spacing(self):
+        return tuple(self.run["spacing_um"])
+
+
+def load_result(outdir):
+    """Read a result folder written by :func:`write_result`.
+
+    Raises
+    ------
+    InputError
+        If the folder is missing or incomplete.
+    """
+    out = Path(outdir)
+    missing = [f for f in RESULT_FILES if not (out / f).is_file()]
+    if missing:
+        raise InputError(f"result folder '{out}': expected a complete result, missing {', '.join(missing)}")
+    segs = pd.read_csv(out / "segments.csv")
+    nodes = pd.read_csv(out / "nodes.csv")
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    with np.load(out / "centrelines.npz") as z:
+        pts, off = z["points_um"], z["offsets"]
+        lines = [pts[off[i]:off[i + 1]] for i in range(len(off) - 1)]
+    return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines)
