@@ -1,0 +1,60 @@
+"""Configuration: documented defaults, validation, clear errors."""
+
+from pathlib import Path
+
+import pytest
+import yaml
+
+from pipeline.config import SCHEMA, default_config, load_config, validate_config
+from pipeline.errors import ConfigError
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_default_yaml_matches_schema():
+    # configs/default.yaml is the documented copy of the defaults; the schema
+    # is the source of truth. They must agree key by key.
+    data = yaml.safe_load((ROOT / "configs" / "default.yaml").read_text(encoding="utf-8"))
+    assert set(data) == set(SCHEMA)
+    for sec, keys in SCHEMA.items():
+        assert set(data[sec]) == set(keys), sec
+        for key, param in keys.items():
+            assert data[sec][key] == param.default, f"{sec}.{key}"
+
+
+def test_default_yaml_loads_to_defaults():
+    assert load_config(ROOT / "configs" / "default.yaml") == default_config()
+
+
+def test_override_merges_and_casts():
+    cfg = validate_config({"pruning": {"spur_radius_factor": 2}})
+    assert cfg["pruning"]["spur_radius_factor"] == 2.0
+    assert isinstance(cfg["pruning"]["spur_radius_factor"], float)
+    assert cfg["cleaning"] == default_config()["cleaning"]
+
+
+@pytest.mark.parametrize(
+    "overrides, fragment",
+    [
+        ({"nosuch": {}}, "unknown section 'nosuch'"),
+        ({"pruning": {"nosuch": 1}}, "unknown key 'pruning.nosuch'"),
+        ({"pruning": {"spur_radius_factor": -1}}, "pruning.spur_radius_factor"),
+        ({"pruning": {"max_rounds": 0}}, "pruning.max_rounds"),
+        ({"cleaning": {"fill_cavities": "yes"}}, "cleaning.fill_cavities"),
+        ({"radii": {"statistic": "mode"}}, "radii.statistic"),
+        ({"cleaning": {"min_object_volume_um3": float("nan")}}, "cleaning.min_object_volume_um3"),
+        ({"pruning": {"max_rounds": True}}, "pruning.max_rounds"),
+    ],
+)
+def test_bad_values_name_the_key(overrides, fragment):
+    with pytest.raises(ConfigError, match=fragment.replace(".", r"\.")):
+        validate_config(overrides)
+
+
+def test_bad_yaml_file(tmp_path):
+    p = tmp_path / "bad.yaml"
+    p.write_text("pruning: [unclosed\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match="not valid YAML"):
+        load_config(p)
+    with pytest.raises(ConfigError, match="not found"):
+        load_config(tmp_path / "missing.yaml")

@@ -1,0 +1,112 @@
+"""Graph building and pruning on hand-made centreline voxel sets.
+
+These unit tests feed voxel sets straight into the graph step, so that the
+tracing logic is checked independently of the thinning.
+"""
+
+import networkx as nx
+import numpy as np
+import pytest
+
+from pipeline.centrelines import Centrelines
+from pipeline.graph import build_graph, prune_graph, voxel_adjacency
+
+
+def _centrelines(voxels, radius=1.0, border=None):
+    vox = np.asarray(sorted(set(map(tuple, voxels))), dtype=np.int64)
+    on_border = np.zeros(len(vox), bool) if border is None else np.array([tuple(v) in border for v in vox])
+    return Centrelines(voxels=vox, positions_um=vox.astype(float), radii_um=np.full(len(vox), radius),
+                       grid_spacing=(1.0, 1.0, 1.0), grid_shape=tuple(vox.max(0) + 1), on_border=on_border,
+                       resampled=False)
+
+
+def _line(a, b):
+    a, b = np.asarray(a), np.asarray(b)
+    n = int(np.abs(b - a).max())
+    return [tuple(np.rint(a + (b - a) * t / n).astype(int)) for t in range(n + 1)]
+
+
+def test_adjacency_matches_brute_force():
+    rng = np.random.default_rng(3)
+    vox = np.unique(rng.integers(0, 6, size=(80, 3)), axis=0)
+    adj = voxel_adjacency(vox).toarray()
+    diff = np.abs(vox[:, None, :] - vox[None, :, :]).max(axis=2)
+    expected = diff == 1  # Chebyshev distance 1 is 26-adjacency
+    assert np.array_equal(adj, expected)
+
+
+def test_plus_shape_one_junction_four_segments():
+    vox = _line((5, 5, 0), (5, 5, 10)) + _line((5, 0, 5), (5, 10, 5))
+    g = build_graph(_centrelines(vox))
+    deg = g.degrees()
+    assert sorted(deg[deg > 0].tolist()) == [1, 1, 1, 1, 4]
+    assert len(g.seg_nodes) == 4
+    # Junction node at the crossing.
+    j = int(np.flatnonzero(deg == 4)[0])
+    assert np.allclose(g.node_pos_um[j], (5, 5, 5))
+    # Paths are ordered: consecutive voxels are 26-neighbours (step <= sqrt(3));
+    # the first point is the junction centroid, which may sit inside its cluster.
+    for (u, v), p in zip(g.seg_nodes.values(), g.seg_path.values()):
+        if u == j:
+            p = p[::-1]
+        assert np.allclose(p[-1], (5, 5, 5))
+        assert np.all(np.linalg.norm(np.diff(p[:-1], axis=0), axis=1) <= np.sqrt(3) + 1e-9)
+        assert np.isclose(np.abs(p[0] - (5, 5, 5)).max(), 5)
+
+
+def test_ring_gets_one_loop_node():
+    t = np.linspace(0, 2 * np.pi, 200, endpoint=False)
+    vox = {(3, int(round(10 + 8 * np.cos(a))), int(round(10 + 8 * np.sin(a)))) for a in t}
+    cl = _centrelines(list(vox))
+    # A 26-connected digital circle may have corner voxels with three
+    # neighbours; whatever the construction, the graph must have cycle rank 1.
+    g = build_graph(cl)
+    prune_graph(g, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=1.0)
+    G = nx.MultiGraph()
+    alive = np.flatnonzero(g.node_alive)
+    G.add_nodes_from(alive.tolist())
+    G.add_edges_from(g.seg_nodes.values())
+    assert G.number_of_edges() - G.number_of_nodes() + nx.number_connected_components(G) == 1
+
+
+def test_spur_pruned_and_node_dissolved():
+    main = _line((5, 5, 0), (5, 5, 30))
+    spur = _line((5, 6, 15), (5, 7, 15))  # 2 voxels off the main line: a bump
+    g = build_graph(_centrelines(main + spur, radius=3.0, border={(5, 5, 0), (5, 5, 30)}))
+    prune_graph(g, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=1.0)
+    assert len(g.seg_nodes) == 1
+    assert g.counts["spurs_removed"] == 1 and g.counts["nodes_dissolved"] == 1
+    (p,) = g.seg_path.values()
+    assert np.allclose(sorted([p[0, 2], p[-1, 2]]), [0, 30])
+
+
+def test_long_branch_kept():
+    main = _line((5, 5, 0), (5, 5, 30))
+    branch = _line((5, 6, 15), (5, 20, 15))
+    g = build_graph(_centrelines(main + branch, radius=2.0, border={(5, 5, 0), (5, 5, 30)}))
+    prune_graph(g, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=1.0)
+    assert len(g.seg_nodes) == 3
+    assert g.counts["spurs_removed"] == 0
+
+
+def test_small_fragment_dropped_and_counted():
+    big = _line((0, 0, 0), (0, 0, 40))
+    small = _line((9, 9, 0), (9, 9, 3))
+    g = build_graph(_centrelines(big + small))
+    prune_graph(g, min_fragment_length_um=10.0)
+    assert len(g.seg_nodes) == 1
+    assert g.counts["fragments_removed"] == 1
+    assert g.node_alive.sum() == 2
+
+
+@pytest.mark.parametrize("n_parallel", [2, 3])
+def test_parallel_segments_are_kept(n_parallel):
+    # Two junction clusters joined by several disjoint paths: a multigraph.
+    vox = _line((0, 10, 0), (0, 10, 8)) + _line((0, 10, 32), (0, 10, 40))
+    for k in range(n_parallel):
+        y = 10 + 6 * (k - (n_parallel - 1) / 2)
+        vox += _line((0, 10, 8), (0, int(y), 12)) + _line((0, int(y), 12), (0, int(y), 28)) + _line((0, int(y), 28), (0, 10, 32))
+    g = build_graph(_centrelines(vox, border={(0, 10, 0), (0, 10, 40)}))
+    prune_graph(g, min_fragment_length_um=1.0)
+    between = [uv for uv in g.seg_nodes.values() if g.degrees()[uv[0]] >= 3 and g.degrees()[uv[1]] >= 3]
+    assert len(between) == n_parallel
