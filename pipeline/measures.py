@@ -28,11 +28,12 @@ middle part, is what resistance follows (r^-4).
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 import pandas as pd
 from scipy import ndimage as ndi
 
-__all__ = ["segment_table", "node_table", "summarize", "smooth_path", "soam", "path_length"]
+__all__ = ["segment_table", "node_table", "summarize", "tissue_distance", "path_length"]
 
 END_KINDS = ("junction", "blind", "border", "loop")
 
@@ -40,76 +41,6 @@ END_KINDS = ("junction", "blind", "border", "loop")
 def path_length(p):
     """Length of a polyline ``(K, 3)``, in its units."""
     return float(np.sqrt((np.diff(p, axis=0) ** 2).sum(axis=1)).sum())
-
-
-def smooth_path(p, sigma_points, *, closed=False):
-    """Gaussian-smooth a polyline along its arc.
-
-    Parameters
-    ----------
-    p : (K, 3) float ndarray
-    sigma_points : float
-        Gaussian width in points.
-    closed : bool
-        Treat as a loop (periodic); otherwise ends are fixed by point reflection.
-
-    Returns
-    -------
-    (K, 3) float ndarray
-    """
-    k = len(p)
-    if sigma_points <= 0 or k < 3:
-        return p
-    if closed:
-        q = p[:-1]
-        out = ndi.gaussian_filter1d(q, sigma_points, axis=0, mode="wrap")
-        return np.vstack([out, out[:1]])
-    w = int(min(k - 1, np.ceil(4 * sigma_points)))
-    head = 2 * p[0] - p[1:w + 1][::-1]
-    tail = 2 * p[-1] - p[-w - 1:-1][::-1]
-    ext = np.vstack([head, p, tail])
-    out = ndi.gaussian_filter1d(ext, sigma_points, axis=0, mode="nearest", truncate=4.0)
-    out = out[w:w + k]
-    # The reflection makes the filter odd-symmetric about the ends: they stay put.
-    out[0], out[-1] = p[0], p[-1]
-    return out
-
-
-def _resample(p, step):
-    d = np.sqrt((np.diff(p, axis=0) ** 2).sum(axis=1))
-    s = np.r_[0.0, np.cumsum(d)]
-    if s[-1] <= step:
-        return p[[0, -1]]
-    n = int(np.floor(s[-1] / step))
-    t = np.linspace(0.0, s[-1], n + 1)
-    return np.column_stack([np.interp(t, s, p[:, a]) for a in range(p.shape[1])])
-
-
-def soam(p):
-    """Sum-of-angles metric of a polyline (Bullitt et al. 2003), rad per unit length.
-
-    For consecutive vectors T1, T2, T3 between points, the in-plane angle is
-    the angle between T1 and T2, the torsional angle the angle between the
-    normals T1 x T2 and T2 x T3; SOAM is the sum of sqrt(IP^2 + TP^2) over the
-    total length.
-    """
-    if len(p) < 3:
-        return 0.0
-    t = np.diff(p, axis=0)
-    length = np.sqrt((t ** 2).sum(axis=1)).sum()
-    if length == 0:
-        return 0.0
-    u = t / np.maximum(np.linalg.norm(t, axis=1, keepdims=True), 1e-300)
-    ip = np.arccos(np.clip((u[:-1] * u[1:]).sum(axis=1), -1.0, 1.0))
-    tp = np.zeros_like(ip)
-    if len(u) >= 3:
-        nrm = np.cross(u[:-1], u[1:])
-        nn = np.linalg.norm(nrm, axis=1)
-        ok = (nn[:-1] > 1e-9) & (nn[1:] > 1e-9)
-        c = np.ones(len(nn) - 1)
-        c[ok] = (nrm[:-1][ok] * nrm[1:][ok]).sum(axis=1) / (nn[:-1][ok] * nn[1:][ok])
-        tp[:-1] = np.arccos(np.clip(c, -1.0, 1.0))
-    return float(np.sqrt(ip ** 2 + tp ** 2).sum() / length)
 
 
 def node_kinds(g):
@@ -126,6 +57,177 @@ def node_kinds(g):
     kinds[self_only] = "loop"
     kinds[deg == 0] = "isolated"
     return kinds, deg
+
+
+@numba.njit(cache=True)
+def _smooth_one(p, sigma_pts, closed, out):
+    k = p.shape[0]
+    if sigma_pts <= 0.0 or k < 3:
+        out[:] = p
+        return
+    w = int(np.ceil(4.0 * sigma_pts))
+    if not closed:
+        w = min(w, k - 1)
+    weights = np.empty(2 * w + 1)
+    for j in range(-w, w + 1):
+        weights[j + w] = np.exp(-0.5 * (j / sigma_pts) ** 2)
+    weights /= weights.sum()
+    if closed:
+        m = k - 1  # the last point repeats the first
+        for i in range(m):
+            for a in range(3):
+                acc = 0.0
+                for j in range(-w, w + 1):
+                    acc += weights[j + w] * p[(i + j) % m, a]
+                out[i, a] = acc
+        out[m] = out[0]
+        return
+    for i in range(k):
+        for a in range(3):
+            acc = 0.0
+            for j in range(-w, w + 1):
+                q = i + j
+                if q < 0:
+                    v = 2.0 * p[0, a] - p[min(-q, k - 1), a]
+                elif q >= k:
+                    v = 2.0 * p[k - 1, a] - p[max(2 * (k - 1) - q, 0), a]
+                else:
+                    v = p[q, a]
+                acc += weights[j + w] * v
+            out[i, a] = acc
+    # Point reflection makes the filter odd-symmetric about the ends: they stay put.
+    out[0] = p[0]
+    out[k - 1] = p[k - 1]
+
+
+@numba.njit(cache=True)
+def _soam_resampled(s, arc, step):
+    """Sum-of-angles metric of polyline ``s`` resampled every ``step`` along ``arc``."""
+    total = arc[-1]
+    if total <= step:
+        return 0.0
+    n = int(np.floor(total / step)) + 1
+    q = np.empty((n, 3))
+    j = 0
+    for i in range(n):
+        t = i * step
+        while j < len(arc) - 2 and arc[j + 1] < t:
+            j += 1
+        seg = arc[j + 1] - arc[j]
+        f = (t - arc[j]) / seg if seg > 0 else 0.0
+        for a in range(3):
+            q[i, a] = s[j, a] + f * (s[j + 1, a] - s[j, a])
+    if n < 3:
+        return 0.0
+    m = n - 1
+    u = np.empty((m, 3))
+    length = 0.0
+    for i in range(m):
+        d = np.sqrt(((q[i + 1] - q[i]) ** 2).sum())
+        length += d
+        for a in range(3):
+            u[i, a] = (q[i + 1, a] - q[i, a]) / d if d > 0 else 0.0
+    acc = 0.0
+    for i in range(m - 1):
+        c = u[i, 0] * u[i + 1, 0] + u[i, 1] * u[i + 1, 1] + u[i, 2] * u[i + 1, 2]
+        ip = np.arccos(min(1.0, max(-1.0, c)))
+        tp = 0.0
+        if i + 2 < m:
+            n1 = np.cross(u[i], u[i + 1])
+            n2 = np.cross(u[i + 1], u[i + 2])
+            a1 = np.sqrt((n1 ** 2).sum())
+            a2 = np.sqrt((n2 ** 2).sum())
+            if a1 > 1e-9 and a2 > 1e-9:
+                cc = (n1 * n2).sum() / (a1 * a2)
+                tp = np.arccos(min(1.0, max(-1.0, cc)))
+        acc += np.sqrt(ip * ip + tp * tp)
+    return acc / length if length > 0 else 0.0
+
+
+@numba.njit(cache=True)
+def _segment_measures(P, R, off, closed, excl_start, excl_end, sigma_um, soam_step, excl_factor, stat):
+    S = len(off) - 1
+    out = np.empty((S, 14))
+    smooth = np.empty_like(P)
+    for s in range(S):
+        a, b = off[s], off[s + 1]
+        p = P[a:b]
+        r = R[a:b]
+        k = b - a
+        # Smoothing width in points from the mean raw step.
+        raw = 0.0
+        for i in range(k - 1):
+            raw += np.sqrt(((p[i + 1] - p[i]) ** 2).sum())
+        mean_step = raw / (k - 1) if k > 1 else 1.0
+        sp = smooth[a:b]
+        _smooth_one(p, sigma_um / max(mean_step, 1e-12), closed[s], sp)
+        arc = np.zeros(k)
+        for i in range(k - 1):
+            arc[i + 1] = arc[i] + np.sqrt(((sp[i + 1] - sp[i]) ** 2).sum())
+        length = arc[k - 1]
+        chord = np.sqrt(((p[k - 1] - p[0]) ** 2).sum())
+        # The end points are node positions; their radius belongs to the node.
+        if k > 2:
+            lo, hi = 1, k - 1
+        else:
+            lo, hi = 0, k
+        r0 = np.median(r[lo:hi])
+        keep = np.ones(hi - lo, dtype=np.bool_)
+        for i in range(lo, hi):
+            if excl_start[s] and arc[i] < excl_factor * r0:
+                keep[i - lo] = False
+            if excl_end[s] and length - arc[i] < excl_factor * r0:
+                keep[i - lo] = False
+        if keep.sum() < 3:
+            keep[:] = True
+        idx = np.flatnonzero(keep) + lo
+        rm = r[idx]
+        if stat == 0:
+            rr = np.median(rm)
+        elif stat == 1:
+            rr = rm.mean()
+        else:
+            q10 = np.percentile(rm, 10.0)
+            q90 = np.percentile(rm, 90.0)
+            sel = rm[(rm >= q10) & (rm <= q90)]
+            rr = sel.mean() if len(sel) else rm.mean()
+        # Per-point radii for the integrals: excluded zones take the robust radius.
+        rp = np.full(k, rr)
+        for i in idx:
+            rp[i] = r[i]
+        vol = 0.0
+        surf = 0.0
+        for i in range(k - 1):
+            step = arc[i + 1] - arc[i]
+            rmid = 0.5 * (rp[i] + rp[i + 1])
+            vol += np.pi * rmid * rmid * step
+            surf += 2.0 * np.pi * rmid * step
+        # Hydraulic radius over the middle part, each point weighted by its arc step.
+        wsum = 0.0
+        inv4 = 0.0
+        for i in idx:
+            j = min(i, k - 2) if k > 1 else 0
+            wgt = arc[j + 1] - arc[j] if k > 1 else 1.0
+            wsum += wgt
+            inv4 += wgt / max(r[i], 1e-12) ** 4
+        rh = (wsum / inv4) ** 0.25 if inv4 > 0 and wsum > 0 else rr
+        n = len(rm)
+        sd = np.sqrt(((rm - rm.mean()) ** 2).sum() / (n - 1)) if n > 1 else 0.0
+        out[s, 0] = length
+        out[s, 1] = raw
+        out[s, 2] = chord
+        out[s, 3] = _soam_resampled(sp, arc, soam_step)
+        out[s, 4] = rr
+        out[s, 5] = rm.mean()
+        out[s, 6] = rm.min()
+        out[s, 7] = rm.max()
+        out[s, 8] = sd
+        out[s, 9] = n
+        out[s, 10] = rh
+        out[s, 11] = vol
+        out[s, 12] = surf
+        out[s, 13] = k
+    return out, smooth
 
 
 def segment_table(g, *, grid_spacing, radii_config, measures_config):
@@ -149,86 +251,58 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
     smoothed : list of (K, 3) ndarray
         Smoothed centreline of each row, µm.
     """
-    h = float(min(s for s in grid_spacing))
+    h = float(min(grid_spacing))
     sigma_um = measures_config["smoothing_sigma_um"]
-    sigma_um = 2.0 * h if sigma_um is None else sigma_um
-    soam_step = measures_config["soam_step_um"] or 4.0 * h
-    excl = radii_config["junction_exclusion_radii"]
-    stat = radii_config["statistic"]
-    kinds, deg = node_kinds(g)
+    sigma_um = 2.0 * h if sigma_um is None else float(sigma_um)
+    soam_step = float(measures_config["soam_step_um"] or 4.0 * h)
+    kinds, _ = node_kinds(g)
     keys = sorted(g.seg_nodes, key=lambda s: (g.seg_nodes[s], s))
-    rows, smoothed = [], []
-    for new_id, s in enumerate(keys):
-        u, v = g.seg_nodes[s]
-        p = g.seg_path[s]
-        r = g.seg_radii[s]
-        closed = u == v
-        raw_step = np.sqrt((np.diff(p, axis=0) ** 2).sum(axis=1))
-        mean_step = raw_step.mean() if len(raw_step) else h
-        sp = smooth_path(p, sigma_um / max(mean_step, 1e-12), closed=closed)
-        steps = np.sqrt((np.diff(sp, axis=0) ** 2).sum(axis=1))
-        length = float(steps.sum())
-        arc = np.r_[0.0, np.cumsum(steps)]
-        chord = float(np.linalg.norm(p[-1] - p[0]))
-        ku, kv = kinds[u], kinds[v]
-        # Points on the path proper (node positions at the ends are excluded:
-        # a junction centroid's radius belongs to the junction, not the segment).
-        inner = np.arange(1, len(p) - 1) if len(p) > 2 else np.arange(len(p))
-        r_inner = r[inner]
-        r0 = float(np.median(r_inner)) if len(r_inner) else float(np.median(r))
-        keep = np.ones(len(inner), dtype=bool)
-        if ku in ("junction", "blind") and not closed:
-            keep &= arc[inner] >= excl * r0
-        if kv in ("junction", "blind") and not closed:
-            keep &= (length - arc[inner]) >= excl * r0
-        if keep.sum() < 3:
-            keep[:] = True
-        rm = r_inner[keep] if len(r_inner) else r
-        if stat == "median":
-            rr = float(np.median(rm))
-        elif stat == "mean":
-            rr = float(np.mean(rm))
-        else:
-            lo, hi = np.percentile(rm, [10, 90])
-            sel = rm[(rm >= lo) & (rm <= hi)]
-            rr = float(sel.mean()) if len(sel) else float(np.mean(rm))
-        # Per-point radii for integrals: the junction zones take the robust radius.
-        rp = np.full(len(p), rr)
-        rp[inner[keep]] = r_inner[keep]
-        rmid = 0.5 * (rp[1:] + rp[:-1])
-        volume = float(np.pi * (rmid ** 2 * steps).sum())
-        surface = float(2 * np.pi * (rmid * steps).sum())
-        mid_w = steps[np.minimum(inner[keep], len(steps) - 1)] if len(steps) else np.ones(1)
-        with np.errstate(divide="ignore"):
-            inv4 = (mid_w / np.maximum(rm, 1e-12) ** 4).sum()
-        r_h = float((mid_w.sum() / inv4) ** 0.25) if inv4 > 0 else rr
-        rows.append({
-            "segment_id": new_id,
-            "node_from": u,
-            "node_to": v,
-            "length_um": length,
-            "length_raw_um": float(raw_step.sum()),
-            "chord_um": chord,
-            "tortuosity": length / chord if chord > 0 and not closed else np.nan,
-            "soam_rad_per_um": soam(_resample(sp, soam_step)),
-            "radius_um": rr,
-            "radius_mean_um": float(np.mean(rm)),
-            "radius_min_um": float(np.min(rm)),
-            "radius_max_um": float(np.max(rm)),
-            "radius_sd_um": float(np.std(rm, ddof=1)) if len(rm) > 1 else 0.0,
-            "radius_n_points": int(len(rm)),
-            "radius_hydraulic_um": r_h,
-            "volume_um3": volume,
-            "surface_um2": surface,
-            "end_from": ku,
-            "end_to": kv,
-            "n_points": int(len(p)),
-        })
-        smoothed.append(sp)
-    cols = ["segment_id", "node_from", "node_to", "length_um", "length_raw_um", "chord_um", "tortuosity",
-            "soam_rad_per_um", "radius_um", "radius_mean_um", "radius_min_um", "radius_max_um", "radius_sd_um",
-            "radius_n_points", "radius_hydraulic_um", "volume_um3", "surface_um2", "end_from", "end_to", "n_points"]
-    return pd.DataFrame(rows, columns=cols), keys, smoothed
+    uv = np.array([g.seg_nodes[s] for s in keys], dtype=np.int64).reshape(-1, 2)
+    lens = np.array([len(g.seg_path[s]) for s in keys], dtype=np.int64)
+    off = np.r_[0, np.cumsum(lens)].astype(np.int64)
+    if keys:
+        P = np.ascontiguousarray(np.vstack([g.seg_path[s] for s in keys]), dtype=np.float64)
+        R = np.ascontiguousarray(np.concatenate([g.seg_radii[s] for s in keys]), dtype=np.float64)
+    else:
+        P, R = np.zeros((0, 3)), np.zeros(0)
+    closed = uv[:, 0] == uv[:, 1]
+    k_from = kinds[uv[:, 0]] if len(uv) else np.zeros(0, object)
+    k_to = kinds[uv[:, 1]] if len(uv) else np.zeros(0, object)
+    # Junction zones (inflated distance) and blind tips (tapering) are left out.
+    excl_start = ~closed & np.isin(k_from, ("junction", "blind"))
+    excl_end = ~closed & np.isin(k_to, ("junction", "blind"))
+    stat = {"median": 0, "mean": 1, "trimmed_mean": 2}[radii_config["statistic"]]
+    if keys:
+        m, smooth = _segment_measures(P, R, off, closed, excl_start, excl_end, sigma_um, soam_step,
+                                      float(radii_config["junction_exclusion_radii"]), stat)
+    else:
+        m, smooth = np.zeros((0, 14)), P
+    with np.errstate(divide="ignore", invalid="ignore"):
+        tort = np.where((m[:, 2] > 0) & ~closed, m[:, 0] / m[:, 2], np.nan)
+    segs = pd.DataFrame({
+        "segment_id": np.arange(len(keys), dtype=np.int64),
+        "node_from": uv[:, 0],
+        "node_to": uv[:, 1],
+        "length_um": m[:, 0],
+        "length_raw_um": m[:, 1],
+        "chord_um": m[:, 2],
+        "tortuosity": tort,
+        "soam_rad_per_um": m[:, 3],
+        "radius_um": m[:, 4],
+        "radius_mean_um": m[:, 5],
+        "radius_min_um": m[:, 6],
+        "radius_max_um": m[:, 7],
+        "radius_sd_um": m[:, 8],
+        "radius_n_points": m[:, 9].astype(np.int64),
+        "radius_hydraulic_um": m[:, 10],
+        "volume_um3": m[:, 11],
+        "surface_um2": m[:, 12],
+        "end_from": k_from.astype(str),
+        "end_to": k_to.astype(str),
+        "n_points": m[:, 13].astype(np.int64),
+    })
+    smoothed = [smooth[off[i]:off[i + 1]] for i in range(len(keys))]
+    return segs, keys, smoothed
 
 
 def node_table(g, *, spacing, node_ids):
