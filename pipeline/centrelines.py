@@ -128,6 +128,45 @@ def _ridge(distance, voxels):
     return best
 
 
+def _single_coarse_axis(spacing, max_anisotropy):
+    """Index of the one axis much coarser than the others, or None."""
+    fine = spacing.min()
+    coarse = np.flatnonzero(spacing / fine > max_anisotropy)
+    return int(coarse[0]) if len(coarse) == 1 else None
+
+
+def _in_plane_radii(mask, spacing, axis, positions, *, ridge):
+    """Radius from the distance to background within the acquired planes.
+
+    Used for stacks with one coarse axis (typically z). A plane through a
+    tube of radius r cuts it in an ellipse whose semi-minor axis is r
+    whatever the tube's orientation, so the in-plane distance on the plane
+    nearest the centreline measures r from the fine axes alone; the coarse
+    axis only says which plane. The 3-D distance on a resampled grid would
+    instead inherit the half-plane uncertainty of the coarse axis.
+    """
+    others = [a for a in range(mask.ndim) if a != axis]
+    dist = np.empty(mask.shape, dtype=np.float32)
+    plane_sp = tuple(spacing[others])
+    for k in range(mask.shape[axis]):
+        idx = [slice(None)] * mask.ndim
+        idx[axis] = k
+        dist[tuple(idx)] = edt.edt(np.ascontiguousarray(mask[tuple(idx)]), anisotropy=plane_sp,
+                                   black_border=False, parallel=_THREADS)
+    vox = np.rint(positions / spacing).astype(np.int64)
+    vox = np.clip(vox, 0, np.array(mask.shape) - 1)
+    best = dist[tuple(vox.T)].astype(np.float64)
+    if ridge:
+        hi = np.array(mask.shape) - 1
+        for off in np.ndindex(*(3,) * (mask.ndim - 1)):
+            o = np.zeros(mask.ndim, dtype=np.int64)
+            o[others] = np.array(off) - 1
+            if not o.any():
+                continue
+            np.maximum(best, dist[tuple(np.clip(vox + o, 0, hi).T)], out=best)
+    return best
+
+
 def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
                         max_anisotropy=1.5, resample_spacing_um=None, half_voxel_correction=True):
     """Thin the mask to centrelines and measure the radius along them.
@@ -173,7 +212,6 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         resampled = True
 
     distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_THREADS)
-    crop_shape = np.asarray(mask.shape)[axes]
     border_faces = [
         (offset[a] == 0, offset[a] + mask.shape[a] == original_shape[a]) for a in axes
     ]
@@ -183,12 +221,15 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
     inner = tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))
     voxels = np.argwhere(skel[inner])
     del skel, padded
-    if half_voxel_correction:
-        radii = _ridge(distance, voxels)
+    coarse = _single_coarse_axis(spacing[axes], max_anisotropy) if resampled else None
+    if coarse is not None:
+        del distance
+        radii = _in_plane_radii(mask[0] if planar else mask, spacing[axes], coarse, voxels * sp,
+                                ridge=half_voxel_correction)
     else:
-        radii = distance[tuple(voxels.T)]
+        radii = _ridge(distance, voxels) if half_voxel_correction else distance[tuple(voxels.T)]
+        del distance
     radii = radii.astype(np.float64)
-    del distance
 
     pos = voxels * sp + offset[axes] * spacing[axes]
     if planar:
@@ -207,7 +248,6 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
     for a in axes:
         if original_shape[a] > 1:
             on_border |= (orig_idx[:, a] <= 1) | (orig_idx[:, a] >= original_shape[a] - 2)
-    del crop_shape
     return Centrelines(
         voxels=vox3,
         positions_um=positions,

@@ -13,15 +13,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import cc3d
 import numpy as np
-from scipy import ndimage as ndi
 
 from .errors import InputError
 
 __all__ = ["CleanedMask", "clean_mask"]
-
-_FG = np.ones((3, 3, 3), dtype=bool)  # 26-connectivity
-_BG = ndi.generate_binary_structure(3, 1)  # 6-connectivity
 
 
 @dataclass
@@ -85,27 +82,27 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, fill_cavities=Tru
     """
     spacing = tuple(float(s) for s in spacing)
     voxel_volume = (1.0 if planar else spacing[0]) * spacing[1] * spacing[2]
-    labels, n = ndi.label(mask, structure=_FG, output=np.int32)
-    sizes = np.bincount(labels.ravel(), minlength=n + 1)
+    # cc3d labels ten times faster than scipy.ndimage.label on large stacks
+    # and picks the narrowest label dtype.
+    labels, n = cc3d.connected_components(mask, connectivity=26, return_N=True)
+    stats = cc3d.statistics(labels, no_slice_conversion=True)
+    sizes = np.asarray(stats["voxel_counts"], dtype=np.int64)
     keep = sizes * voxel_volume >= min_object_volume_um3
     keep[0] = False
     removed = int(n - keep[1:].sum())
     removed_volume = float(sizes[1:][~keep[1:]].sum() * voxel_volume)
-    if removed:
-        mask = keep[labels]
-    del labels
-    if not mask.any():
+    if not keep.any():
         raise InputError(
             f"cleaning.min_object_volume_um3: every vessel piece is smaller than "
             f"{min_object_volume_um3:g} µm³ (largest {sizes[1:].max() * voxel_volume:.3g} µm³); "
             "expected at least one piece to keep: lower the threshold"
         )
-    # Tight bounding box of what is kept.
-    box = []
-    for axis in range(3):
-        other = tuple(a for a in range(3) if a != axis)
-        nz = np.flatnonzero(mask.any(axis=other))
-        box.append(slice(int(nz[0]), int(nz[-1]) + 1))
+    if removed:
+        mask = keep[labels]
+    del labels
+    # Tight bounding box of what is kept, from the per-label boxes.
+    boxes = np.asarray(stats["bounding_boxes"], dtype=np.int64)[keep]  # rows: zmin, zmax, ymin, ymax, xmin, xmax
+    box = [slice(int(boxes[:, 2 * a].min()), int(boxes[:, 2 * a + 1].max()) + 1) for a in range(3)]
     cropped = np.ascontiguousarray(mask[tuple(box)])
     filled = 0
     if fill_cavities:
@@ -130,11 +127,10 @@ def _fill_cavities(mask, *, planar):
     # Background touching the crop box's faces connects to the outside (the
     # box is tight, so everything beyond it is background), hence is not a cavity.
     if planar:
-        plane = mask[0]
-        labels, n = ndi.label(~plane, structure=ndi.generate_binary_structure(2, 1), output=np.int32)
+        labels, n = cc3d.connected_components(~mask[0], connectivity=4, return_N=True)
         faces = [labels[0], labels[-1], labels[:, 0], labels[:, -1]]
     else:
-        labels, n = ndi.label(~mask, structure=_BG, output=np.int32)
+        labels, n = cc3d.connected_components(~mask, connectivity=6, return_N=True)
         faces = [labels[0], labels[-1], labels[:, 0], labels[:, -1], labels[:, :, 0], labels[:, :, -1]]
     if n == 0:
         return mask, 0
