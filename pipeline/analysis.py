@@ -142,7 +142,8 @@ def analyze(mask, *, spacing, config=None, planar=None, progress=None):
 
     c = cfg["cleaning"]
     cleaned = cleaning.clean_mask(arr, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
-                                  fill_cavities=c["fill_cavities"], planar=planar)
+                                  min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"],
+                                  planar=planar)
     original_shape = arr.shape
     del arr
     tick("cleaning")

@@ -47,7 +47,8 @@ class CleanedMask:
     stats: dict
 
 
-def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, fill_cavities=True, planar=False):
+def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_um2=100.0, fill_cavities=True,
+               planar=False):
     """Remove small 26-connected pieces, fill cavities and crop.
 
     Parameters
@@ -57,8 +58,9 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, fill_cavities=Tru
     spacing : sequence of 3 float
         Voxel spacing ``(dz, dy, dx)`` in µm.
     min_object_volume_um3 : float
-        Pieces with a smaller volume are dropped. For planar masks the
-        volume of a pixel is its area times 1 µm.
+        Pieces with a smaller volume are dropped (3-D masks).
+    min_object_area_um2 : float
+        Pieces with a smaller area are dropped (planar masks).
     fill_cavities : bool
         Fill background regions enclosed by vessel (segmentation holes).
     planar : bool
@@ -81,7 +83,10 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, fill_cavities=Tru
     ((3, 3, 3), 27, (1, 1, 1))
     """
     spacing = tuple(float(s) for s in spacing)
+    # For planar masks "volume" is area and the threshold the area threshold.
     voxel_volume = (1.0 if planar else spacing[0]) * spacing[1] * spacing[2]
+    if planar:
+        min_object_volume_um3 = min_object_area_um2
     # cc3d labels ten times faster than scipy.ndimage.label on large stacks
     # and picks the narrowest label dtype.
     labels, n = cc3d.connected_components(mask, connectivity=26, return_N=True)
@@ -91,10 +96,11 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, fill_cavities=Tru
     keep[0] = False
     removed = int(n - keep[1:].sum())
     removed_volume = float(sizes[1:][~keep[1:]].sum() * voxel_volume)
+    unit = "µm²" if planar else "µm³"
     if not keep.any():
         raise InputError(
-            f"cleaning.min_object_volume_um3: every vessel piece is smaller than "
-            f"{min_object_volume_um3:g} µm³ (largest {sizes[1:].max() * voxel_volume:.3g} µm³); "
+            f"cleaning.{'min_object_area_um2' if planar else 'min_object_volume_um3'}: every vessel piece is "
+            f"smaller than {min_object_volume_um3:g} {unit} (largest {sizes[1:].max() * voxel_volume:.3g} {unit}); "
             "expected at least one piece to keep: lower the threshold"
         )
     if removed:

@@ -75,6 +75,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
     },
     "cleaning": {
         "min_object_volume_um3": Param(1000.0, float, low=0.0),
+        "min_object_area_um2": Param(100.0, float, low=0.0),
         "fill_cavities": Param(True, bool),
     },
     "centrelines": {
@@ -84,7 +85,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
     "radii": {
         "half_voxel_correction": Param(True, bool),
         "junction_exclusion_radii": Param(1.0, float, low=0.0, high=10.0),
-        "statistic": Param("median", str, choices=("median", "mean", "trimmed_mean")),
+        "statistic": Param("trimmed_mean", str, choices=("median", "mean", "trimmed_mean")),
     },
     "pruning": {
         "spur_radius_factor": Param(1.5, float, low=0.0, high=20.0),
@@ -95,6 +96,29 @@ SCHEMA: dict[str, dict[str, Param]] = {
     "measures": {
         "smoothing_sigma_um": Param(None, float, low=0.0, allow_none=True),
         "soam_step_um": Param(None, float, low=0.0, low_open=True, allow_none=True),
+    },
+    # --- levels and flow (pipeline/levels.py, pipeline/flow.py) ---
+    "levels": {
+        # 'auto', 'node:ID', a node id, or a position 'z,y,x' / [z, y, x] in µm.
+        "root": Param("auto", (str, int, list)),
+        "diameter_order_max_iter": Param(50, int, low=1, high=10000),
+    },
+    "flow": {
+        "enabled": Param(True, bool),
+        "viscosity_model": Param("constant", str, choices=("constant", "pries1992", "pries1994")),
+        "viscosity_mpa_s": Param(3.5, float, low=0.0, low_open=True),
+        "haematocrit": Param(0.45, float, low=0.0, high=0.9),
+        "plasma_viscosity_mpa_s": Param(1.2, float, low=0.0, low_open=True),
+        "inlet_pressure_pa": Param(7999.32, float),
+        "outlet_pressure_pa": Param(2666.44, float),
+        "inlet_flow_nl_min": Param(None, float, low=0.0, low_open=True, allow_none=True),
+        "blind_ends": Param("sealed", str, choices=("sealed", "outlet")),
+        "blood_density_kg_m3": Param(1055.0, float, low=0.0, low_open=True),
+        "solver": Param("auto", str, choices=("auto", "direct", "cg")),
+        "cg_threshold_nodes": Param(50000, int, low=0),
+        "cg_rtol": Param(1e-10, float, low=0.0, low_open=True, high=1e-3),
+        "cg_max_iter": Param(20000, int, low=1),
+        "min_valid_diameter_um": Param(3.3, float, low=1.1, low_open=True),
     },
 }
 

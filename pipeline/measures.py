@@ -15,10 +15,12 @@ the smoothed polyline.
 Tortuosity. The distance metric is length / chord; the sum-of-angles metric
 (SOAM) of Bullitt et al. 2003 (IEEE Trans Med Imaging 22:1163) is the summed
 in-plane and torsional angle per unit length, in rad/µm, on the smoothed
-centreline resampled every ``soam_step_um`` (default four grid spacings, so
+centreline resampled every ``soam_step_um`` (default eight grid spacings, so
 that voxel-scale jitter does not count as turning).
 
-Radii. A segment's radius is a robust statistic (median by default) of the
+Radii. A segment's radius is a robust statistic (by default the mean between
+the 10th and 90th percentiles, which averages out the lattice quantisation
+of voxel distances) of the
 radii along its middle part: points within ``junction_exclusion_radii`` radii
 of a junction end or a blind end are left out, because there the distance to
 background is inflated by the other branches or shrinks into the tip.
@@ -254,7 +256,7 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
     h = float(min(grid_spacing))
     sigma_um = measures_config["smoothing_sigma_um"]
     sigma_um = 2.0 * h if sigma_um is None else float(sigma_um)
-    soam_step = float(measures_config["soam_step_um"] or 4.0 * h)
+    soam_step = float(measures_config["soam_step_um"] or 8.0 * h)
     kinds, _ = node_kinds(g)
     keys = sorted(g.seg_nodes, key=lambda s: (g.seg_nodes[s], s))
     uv = np.array([g.seg_nodes[s] for s in keys], dtype=np.int64).reshape(-1, 2)
