@@ -1,0 +1,138 @@
+"""The command line: outputs, exit codes, refusal to overwrite, bad input."""
+
+import json
+import subprocess
+import sys
+
+import networkx as nx
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+
+from pipeline import synthetic
+from pipeline.cli import main
+from pipeline.tables import RESULT_FILES, load_result
+
+
+@pytest.fixture(scope="module")
+def tube_tif(tmp_path_factory):
+    d = tmp_path_factory.mktemp("cli")
+    mask, truth = synthetic.rasterize(synthetic.y_branch(parent_radius_um=5, parent_length_um=40,
+                                                         daughter_length_um=40), spacing=(2, 1, 1))
+    path = d / "ybranch.tif"
+    synthetic.write_volume(path, mask, spacing=(2, 1, 1), truth=truth)
+    return path
+
+
+def test_analyze_writes_complete_folder(tube_tif, tmp_path, capsys):
+    out = tmp_path / "res"
+    assert main(["analyze", str(tube_tif), "-o", str(out), "--quiet"]) == 0
+    assert sorted(p.name for p in out.iterdir()) == sorted(RESULT_FILES)
+    run = json.loads((out / "run.json").read_text())
+    assert run["spacing_um"] == [2.0, 1.0, 1.0] and run["spacing_source"] == "imagej"
+    assert len(run["input"]["sha256"]) == 64
+    assert set(run["timings_s"]) >= {"reading", "cleaning", "centrelines", "graph", "measures"}
+    assert run["config"]["pruning"]["spur_radius_factor"] == 1.5
+    segs = pd.read_csv(out / "segments.csv")
+    nodes = pd.read_csv(out / "nodes.csv")
+    assert {"segment_id", "node_from", "node_to", "length_um", "radius_um"} <= set(segs.columns)
+    assert {"node_id", "z", "y", "x", "z_um", "y_um", "x_um", "degree", "kind"} <= set(nodes.columns)
+    # Voxel (i, j, k) has its centre at (i dz, j dy, k dx).
+    assert np.allclose(nodes["z"] * 2.0, nodes["z_um"], atol=1.0)
+    # The joins hold and the GraphML reads back into networkx with the same shape.
+    assert set(segs["node_from"]) | set(segs["node_to"]) <= set(nodes["node_id"])
+    g = nx.read_graphml(out / "graph.graphml", force_multigraph=True)
+    assert g.number_of_edges() == len(segs) and g.number_of_nodes() == len(nodes)
+    res = load_result(out)
+    assert len(res.centrelines) == len(segs)
+
+
+def test_refuses_non_empty_output_without_overwrite(tube_tif, tmp_path, capsys):
+    out = tmp_path / "res"
+    out.mkdir()
+    (out / "keep.txt").write_text("mine")
+    assert main(["analyze", str(tube_tif), "-o", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--overwrite" in err[0]
+    assert (out / "keep.txt").read_text() == "mine"
+    assert main(["analyze", str(tube_tif), "-o", str(out), "--quiet", "--overwrite"]) == 0
+    assert not (out / "keep.txt").exists() and (out / "run.json").exists()
+
+
+def _bad_inputs(tmp):
+    corrupt = tmp / "corrupt.tif"
+    ok = np.zeros((10, 32, 32), np.uint8)
+    ok[3:7, 10:20, :] = 255
+    tifffile.imwrite(tmp / "full.tif", ok)
+    corrupt.write_bytes((tmp / "full.tif").read_bytes()[:600])
+    empty = tmp / "empty.npy"
+    np.save(empty, np.zeros((8, 8, 8), np.uint8))
+    full = tmp / "all.npy"
+    np.save(full, np.ones((8, 8, 8), np.uint8))
+    four = tmp / "four.npy"
+    np.save(four, np.ones((2, 3, 8, 8), np.uint8))
+    prob = tmp / "prob.npy"
+    np.save(prob, np.random.default_rng(0).random((8, 8, 8)).astype(np.float32))
+    (tmp / "mask.xyz").write_text("x")
+    return {
+        "missing": ([str(tmp / "nope.tif")], "does not exist"),
+        "corrupt": ([str(corrupt)], "truncated or corrupt"),
+        "extension": ([str(tmp / "mask.xyz")], ".tif"),
+        "empty": ([str(empty)], "no vessel"),
+        "all": ([str(full)], "every voxel is vessel"),
+        "4-D": ([str(four)], "axes"),
+        "probability": ([str(prob)], "threshold"),
+        "zero spacing": ([str(tmp / "full.tif"), "--spacing", "0", "1", "1"], "spacing"),
+        "nan spacing": ([str(tmp / "full.tif"), "--spacing", "1", "nan", "1"], "spacing"),
+    }
+
+
+@pytest.mark.parametrize("case", ["missing", "corrupt", "extension", "empty", "all", "4-D", "probability",
+                                  "zero spacing", "nan spacing"])
+def test_bad_input_one_line_exit_2_nothing_written(case, tmp_path, capsys):
+    args, fragment = _bad_inputs(tmp_path)[case]
+    out = tmp_path / "out"
+    assert main(["analyze", *args, "-o", str(out)]) == 2
+    err = [ln for ln in capsys.readouterr().err.splitlines() if "error" in ln]
+    assert len(err) == 1 and fragment in err[0], err
+    assert not out.exists()
+    assert not any(p.name.startswith(".out") for p in tmp_path.iterdir())
+
+
+def test_bad_config_exit_2(tube_tif, tmp_path, capsys):
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text("pruning:\n  spur_radius_factr: 2\n")
+    assert main(["analyze", str(tube_tif), "-o", str(tmp_path / "o"), "--config", str(cfg)]) == 2
+    assert "pruning.spur_radius_factr" in capsys.readouterr().err
+
+
+def test_threshold_binarises_probability_maps(tmp_path):
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=40, radius_um=4), spacing=(1, 1, 1))
+    prob = np.where(mask, 0.9, 0.1).astype(np.float32)
+    np.save(tmp_path / "p.npy", prob)
+    assert main(["analyze", str(tmp_path / "p.npy"), "-o", str(tmp_path / "o"), "--threshold", "0.5",
+                 "--spacing", "1", "1", "1", "--quiet"]) == 0
+    assert len(pd.read_csv(tmp_path / "o" / "segments.csv")) == 1
+
+
+def test_missing_spacing_warns_and_is_recorded(tmp_path, capsys):
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=40, radius_um=4), spacing=(1, 1, 1))
+    np.save(tmp_path / "m.npy", mask)
+    assert main(["analyze", str(tmp_path / "m.npy"), "-o", str(tmp_path / "o"), "--quiet"]) == 0
+    assert "assuming 1 µm" in capsys.readouterr().err
+    run = json.loads((tmp_path / "o" / "run.json").read_text())
+    assert run["spacing_source"] == "default" and any("assuming 1 µm" in w for w in run["warnings"])
+
+
+def test_usage_errors_exit_2():
+    # argparse exits 2 on usage errors; run as a subprocess to see the real exit code.
+    proc = subprocess.run([sys.executable, "-m", "pipeline", "analyze"], capture_output=True, text=True)
+    assert proc.returncode == 2 and "required" in proc.stderr
+
+
+def test_synth_writes_volume_and_truth(tmp_path):
+    out = tmp_path / "t.tif"
+    assert main(["synth", "tube", "-o", str(out), "--spacing", "2", "1", "1"]) == 0
+    assert out.exists() and (tmp_path / "t.truth.json").exists()
+    assert main(["synth", "tube", "-o", str(out)]) == 2  # exists, no --overwrite
