@@ -1,0 +1,77 @@
+"""Centrelines and radii: ridge correction, anisotropic resampling, border ends."""
+
+import numpy as np
+import pytest
+
+from pipeline import synthetic
+from pipeline.centrelines import extract_centrelines, resample_isotropic
+
+
+def _tube(radius, direction, spacing=(1.0, 1.0, 1.0), length=50.0):
+    mask, truth = synthetic.rasterize(
+        synthetic.straight_tube(length_um=length, radius_um=radius, direction=direction), spacing=spacing
+    )
+    return mask, truth
+
+
+def _axis_distance(points, truth):
+    # Distance of each point from the true tube axis (a straight segment).
+    seg = truth["segments"][0]
+    p = np.asarray(seg["points_um"])
+    a, b = p[0], p[-1]
+    d = (b - a) / np.linalg.norm(b - a)
+    v = points - a
+    return np.linalg.norm(v - np.outer(v @ d, d), axis=1)
+
+
+@pytest.mark.parametrize("radius", [2.0, 3.0, 4.5, 6.0])
+@pytest.mark.parametrize("direction", [(0, 0, 1), (0, 1, 2), (1, 1, 1)])
+def test_radius_along_tube(radius, direction):
+    mask, truth = _tube(radius, direction)
+    cl = extract_centrelines(mask, spacing=(1, 1, 1), offset=(0, 0, 0), original_shape=mask.shape)
+    # Away from the cut ends the centreline hugs the axis: within one voxel.
+    inner = ~cl.on_border
+    assert inner.sum() >= 0.8 * 50 / np.sqrt(3)
+    assert np.all(_axis_distance(cl.positions_um[inner], truth) <= 1.0)
+    # Issue acceptance: the radius within half a voxel.
+    assert abs(np.median(cl.radii_um[inner]) - radius) <= 0.5
+
+
+def test_ridge_is_never_worse_on_average():
+    errs = {True: [], False: []}
+    for radius in (2.5, 3.5, 5.0):
+        for direction in ((0, 1, 1), (1, 2, 3)):
+            mask, truth = _tube(radius, direction)
+            for ridge in (True, False):
+                cl = extract_centrelines(mask, spacing=(1, 1, 1), offset=(0, 0, 0), original_shape=mask.shape,
+                                         half_voxel_correction=ridge)
+                errs[ridge].append(abs(np.median(cl.radii_um[~cl.on_border]) - radius))
+    assert np.mean(errs[True]) < np.mean(errs[False])
+
+
+def test_border_ends_reach_the_face():
+    mask, truth = _tube(4.0, (0, 0, 1), length=60.0)
+    cl = extract_centrelines(mask, spacing=(1, 1, 1), offset=(0, 0, 0), original_shape=mask.shape)
+    # The tube is cut by both x faces: the centreline runs from face to face.
+    assert cl.positions_um[:, 2].min() <= 1.0
+    assert cl.positions_um[:, 2].max() >= mask.shape[2] - 2.0
+
+
+def test_resample_isotropic_keeps_the_acquired_planes():
+    mask, _ = _tube(3.0, (0, 1, 1), spacing=(3.0, 1.0, 1.0))
+    fine = resample_isotropic(mask, spacing=(3.0, 1.0, 1.0), target=1.0)
+    assert fine.shape == ((mask.shape[0] - 1) * 3 + 1, mask.shape[1], mask.shape[2])
+    # Shape-based interpolation reproduces the data on the planes that were imaged.
+    assert np.array_equal(fine[::3], mask)
+
+
+@pytest.mark.parametrize("direction", [(0, 0, 1), (0, 1, 1), (1, 0, 2)])
+def test_anisotropic_radius_matches_isotropic(direction):
+    radii = {}
+    for sp in ((1.0, 1.0, 1.0), (3.0, 1.0, 1.0)):
+        mask, _ = _tube(4.0, direction, spacing=sp, length=60.0)
+        cl = extract_centrelines(mask, spacing=sp, offset=(0, 0, 0), original_shape=mask.shape)
+        radii[sp[0]] = np.mean(cl.radii_um[~cl.on_border])
+    # Issue acceptance for whole trees is 5 %; a single tube of 4 um radius
+    # (1.3 planes at 3 um) is held to 10 %, the in-plane lattice step.
+    assert radii[3.0] == pytest.approx(radii[1.0], rel=0.10)
