@@ -14,7 +14,7 @@ $(STAMP): $(BIN)/python pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/vesselflow demo -o results --overwrite
+	$(BIN)/vesselflow demo -o results --overwrite --config configs/tumour-window-demo.yaml
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

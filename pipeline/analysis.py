@@ -7,7 +7,9 @@ bookkeeping (effective config, time per step, counts, warnings).
 
 Steps run strictly in order, each consuming only the previous step's output:
 cleaning -> centrelines (thinning + radii) -> graph (build + prune) ->
-measures -> summary.
+measures -> summary -> levels (root, branching levels, Strahler orders) ->
+flow (Poiseuille/Kirchhoff network solve) -> bifurcations (Murray's law,
+angles, flags).
 """
 
 from __future__ import annotations
@@ -19,7 +21,8 @@ import networkx as nx
 import numpy as np
 import pandas as pd
 
-from . import cleaning, centrelines, graph as graph_step, measures
+from . import bifurcations as bif_step
+from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
 from .config import load_config
 from .errors import InputError
 
@@ -48,8 +51,13 @@ class Analysis:
     centreline_radii : list of (K,) float ndarray
         Radius along each raw centreline, µm.
     spacing : tuple of 3 float
+    levels : DataFrame
+        Per-level morphometry and Murray statistics (``levels.csv``).
+    bifurcations : DataFrame
+        One row per junction (``bifurcations.csv``).
     run : dict
-        ``config``, ``timings_s``, ``counts``, ``warnings``, ``planar``.
+        ``config``, ``timings_s``, ``counts``, ``warnings``, ``planar``,
+        ``roots``, ``flow`` (solver details).
     """
 
     segments: pd.DataFrame
@@ -59,6 +67,8 @@ class Analysis:
     centrelines: list
     centreline_radii: list
     spacing: tuple
+    levels: pd.DataFrame = field(default_factory=pd.DataFrame)
+    bifurcations: pd.DataFrame = field(default_factory=pd.DataFrame)
     run: dict = field(default_factory=dict)
 
 
@@ -86,7 +96,7 @@ def _check_spacing(spacing, ndim):
     return tuple(sp)
 
 
-def analyze(mask, *, spacing, config=None, planar=None, progress=None):
+def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), progress=None):
     """Turn a binary vessel mask into a measured vessel graph.
 
     Parameters
@@ -99,6 +109,11 @@ def analyze(mask, *, spacing, config=None, planar=None, progress=None):
         Configuration overrides or a YAML file; validated here.
     planar : bool or None
         Analyse in-plane. Default: True when the mask is 2-D or has one plane.
+    inlets, outlets : sequence
+        Extra inlet / named outlet nodes for the flow model, each a node id,
+        ``'node:ID'`` or a position ``(z, y, x)`` / ``'z,y,x'`` in µm (nearest
+        node). The root comes from ``config['levels']['root']``; without
+        named outlets, ends cut by the volume border are outlets.
     progress : callable or None
         Called as ``progress(step, seconds)`` after each step.
 
@@ -175,13 +190,57 @@ def analyze(mask, *, spacing, config=None, planar=None, progress=None):
     summary = measures.summarize(segs, nodes, cleaned=cleaned, spacing=sp, planar=planar,
                                  original_shape=original_shape, tissue_dist=td)
     tick("summary")
+    notes = []
+    level_table = pd.DataFrame()
+    bif_table = pd.DataFrame(columns=bif_step.COLUMNS)
+    roots = []
+    flow_info = {"solved": False}
+    if len(segs):
+        inlet_ids = _resolve_nodes(inlets, nodes, segs, "inlet")
+        outlet_ids = _resolve_nodes(outlets, nodes, segs, "outlet")
+        lv, roots = levels_step.compute_levels(segs, nodes, config=cfg, inlets=inlet_ids, notes=notes)
+        segs = segs.merge(lv, on="segment_id", how="left", validate="one_to_one")
+        level_table = levels_step.level_table(segs)
+        summary["roots"] = [int(r) for r in roots]
+        summary["segments_without_level"] = int(segs["level"].isna().sum())
+        tick("levels")
+        if cfg["flow"]["enabled"] and roots:
+            fr = flow_step.solve_flow(segs, nodes, inlets=roots, outlets=outlet_ids or None, config=cfg)
+            new = [c for c in fr.segments.columns if c == "segment_id" or c not in segs.columns]
+            segs = segs.merge(fr.segments[new], on="segment_id", how="left", validate="one_to_one")
+            nodes = nodes.merge(fr.nodes, on="node_id", how="left", validate="one_to_one")
+            for key in ("total_inflow_nl_min", "network_resistance_pa_s_um3", "perfused_length_fraction",
+                        "max_conservation_residual", "n_inlets", "n_outlets"):
+                summary[key] = fr.summary.get(key)
+            flow_info = {"solved": True, **fr.summary}
+            warnings.extend(fr.warnings)
+            tick("flow")
+        elif cfg["flow"]["enabled"]:
+            warnings.append("flow not solved: no root or inlet node could be chosen")
+        bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed, config=cfg)
+        summary.update(bif_summary)
+        if len(bif_table) and len(level_table):
+            per_level = bif_step.levels_murray(bif_table)
+            level_table = level_table.merge(per_level, on="level", how="left")
+        tick("bifurcations")
     G = to_networkx(segs, nodes)
     counts = {**cleaned.stats, **g.counts, "resampled_isotropic": bool(cl.resampled),
               "thinning_grid_spacing_um": list(cl.grid_spacing)}
     run = {"config": cfg, "timings_s": timings, "counts": counts, "warnings": warnings, "planar": bool(planar),
-           "shape": list(original_shape), "crop_offset": list(cleaned.offset)}
+           "shape": list(original_shape), "crop_offset": list(cleaned.offset), "roots": [int(r) for r in roots],
+           "notes": notes, "flow": flow_info}
     return Analysis(segments=segs, nodes=nodes, graph=G, summary=summary, centrelines=smoothed,
-                    centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, run=run)
+                    centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=level_table,
+                    bifurcations=bif_table, run=run)
+
+
+def _resolve_nodes(specs, nodes, segments, what):
+    """Node ids for inlet/outlet specs (ids, 'node:ID' or positions in µm)."""
+    out = []
+    for spec in specs or ():
+        ids = levels_step.choose_roots(nodes, segments, root=spec, inlets=())
+        out.extend(i for i in ids if i not in out)
+    return out
 
 
 def to_networkx(segments, nodes):

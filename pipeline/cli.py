@@ -76,6 +76,16 @@ def _common(a):
     a.add_argument("--config", help="YAML config file (defaults: configs/default.yaml)")
     a.add_argument("--overwrite", action="store_true", help="replace a non-empty output folder")
     a.add_argument("--quiet", action="store_true", help="no progress lines")
+    f = a.add_argument_group("flow model")
+    f.add_argument("--root", help="root for levels and the main inlet: auto (widest border end), node:ID, "
+                                  "or Z,Y,X in µm (nearest node)")
+    f.add_argument("--inlet", action="append", default=[], metavar="SPEC",
+                   help="another inlet (node:ID or Z,Y,X µm); repeatable")
+    f.add_argument("--outlet", action="append", default=[], metavar="SPEC",
+                   help="a named outlet (node:ID or Z,Y,X µm); repeatable; default: ends cut by the border")
+    f.add_argument("--blind-ends", choices=("sealed", "outlet"),
+                   help="blind ends inside the tissue carry no flow (sealed, default) or are outlets")
+    f.add_argument("--no-flow", action="store_true", help="skip the flow model")
 
 
 def _load_cfg(args):
@@ -84,10 +94,17 @@ def _load_cfg(args):
     cfg = load_config(args.config) if args.config else load_config(None)
     if getattr(args, "threshold", None) is not None:
         cfg["input"]["threshold"] = args.threshold
-    return cfg
+    if getattr(args, "root", None) is not None:
+        cfg["levels"]["root"] = args.root
+    if getattr(args, "blind_ends", None) is not None:
+        cfg["flow"]["blind_ends"] = args.blind_ends
+    if getattr(args, "no_flow", False):
+        cfg["flow"]["enabled"] = False
+    return load_config(cfg)
 
 
-def run_analyze(mask_path, output, *, spacing=None, config, overwrite, reporter, command=None):
+def run_analyze(mask_path, output, *, spacing=None, config, overwrite, reporter, command=None, inlets=(),
+                outlets=()):
     """Read, analyse and write one sample; returns the output path."""
     from . import reading, tables
     from .analysis import analyze
@@ -102,7 +119,8 @@ def run_analyze(mask_path, output, *, spacing=None, config, overwrite, reporter,
     for w in img.warnings:
         reporter.warn(w)
     reporter.step("reading", time.perf_counter() - t0)
-    result = analyze(img.mask, spacing=img.spacing, config=config, planar=img.planar, progress=reporter.step)
+    result = analyze(img.mask, spacing=img.spacing, config=config, planar=img.planar, inlets=inlets,
+                     outlets=outlets, progress=reporter.step)
     for w in result.run["warnings"]:
         reporter.warn(w)
     result.run["timings_s"] = {"reading": round(time.perf_counter() - t0 - sum(result.run["timings_s"].values()), 4),
@@ -127,7 +145,7 @@ def _cmd_analyze(args):
     cfg = _load_cfg(args)
     rep = _Reporter(args.quiet)
     run_analyze(args.mask, args.output, spacing=args.spacing, config=cfg, overwrite=args.overwrite,
-                reporter=rep, command=sys.argv)
+                reporter=rep, command=sys.argv, inlets=args.inlet, outlets=args.outlet)
     return 0
 
 

@@ -120,6 +120,22 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "cg_max_iter": Param(20000, int, low=1),
         "min_valid_diameter_um": Param(3.3, float, low=1.1, low_open=True),
     },
+    # --- Murray's-law checks at junctions (pipeline/bifurcations.py) ---
+    "bifurcations": {
+        "enabled": Param(True, bool),
+        "ratio_min": Param(0.6667, float, low=0.0, low_open=True, allow_none=True),
+        "ratio_max": Param(1.5, float, low=0.0, low_open=True, allow_none=True),
+        "exponent_min": Param(2.0, float, low=0.0, allow_none=True),
+        "exponent_max": Param(4.0, float, low=0.0, low_open=True, allow_none=True),
+        "flag_undefined_exponent": Param(True, bool),
+        "angle_deviation_max_deg": Param(30.0, float, low=0.0, high=180.0, allow_none=True),
+        "flag_multi": Param(True, bool),
+        "flag_low_confidence": Param(True, bool),
+        "min_radius_points": Param(5, int, low=0),
+        "min_length_radii": Param(2.0, float, low=0.0),
+        "tangent_fit_radii": Param(3.0, float, low=0.0, low_open=True, high=50.0),
+        "tangent_skip_radii": Param(1.0, float, low=0.0, high=50.0),
+    },
 }
 
 

@@ -6,6 +6,8 @@ folder that is renamed at the end, so an interrupted run never leaves a
 folder that looks complete):
 
 - ``segments.csv``, ``nodes.csv``: the tables (``segment_id``/``node_id`` join them);
+- ``levels.csv``: per branching level morphometry and Murray statistics;
+- ``bifurcations.csv``: per junction Murray ratio, exponent, angles, flags;
 - ``summary.json``: sample measures;
 - ``graph.graphml``: the multigraph with node and segment attributes;
 - ``centrelines.npz``: every segment's smoothed centreline, compact:
@@ -36,7 +38,8 @@ from .errors import InputError
 
 __all__ = ["write_result", "load_result", "Result", "check_outdir", "RESULT_FILES"]
 
-RESULT_FILES = ("segments.csv", "nodes.csv", "summary.json", "graph.graphml", "centrelines.npz", "run.json")
+RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
+                "centrelines.npz", "run.json")
 
 
 def _jsonable(obj):
@@ -120,7 +123,8 @@ def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None
     try:
         result.segments.to_csv(tmp / "segments.csv", index=False)
         result.nodes.to_csv(tmp / "nodes.csv", index=False)
-        for name, table in (extra_tables or {}).items():
+        tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations, **(extra_tables or {})}
+        for name, table in tables.items():
             table.to_csv(tmp / name, index=False)
         write_json(tmp / "summary.json", result.summary)
         nx.write_graphml(_graphml(result.graph), tmp / "graph.graphml")
@@ -157,6 +161,8 @@ class Result:
     summary: dict
     run: dict
     centrelines: list
+    bifurcations: pd.DataFrame
+    levels: pd.DataFrame
 
     @property
     def spacing(self):
@@ -177,9 +183,19 @@ def load_result(outdir):
         raise InputError(f"result folder '{out}': expected a complete result, missing {', '.join(missing)}")
     segs = pd.read_csv(out / "segments.csv")
     nodes = pd.read_csv(out / "nodes.csv")
+    bifs = _read_csv(out / "bifurcations.csv")
+    levels = _read_csv(out / "levels.csv")
     summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
     run = json.loads((out / "run.json").read_text(encoding="utf-8"))
     with np.load(out / "centrelines.npz") as z:
         pts, off = z["points_um"], z["offsets"]
         lines = [pts[off[i]:off[i + 1]] for i in range(len(off) - 1)]
-    return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines)
+    return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines,
+                  bifurcations=bifs, levels=levels)
+
+
+def _read_csv(path):
+    try:
+        return pd.read_csv(path)
+    except pd.errors.EmptyDataError:  # a table with no columns (no segments)
+        return pd.DataFrame()

@@ -88,32 +88,30 @@ _NOT_Y2 = _FULL & ~_bits(lambda dz, dy, dx: dy == 1)
 _N18 = _bits(lambda dz, dy, dx: 0 < abs(dz) + abs(dy) + abs(dx) <= 2)
 _FACE6 = _bits(lambda dz, dy, dx: abs(dz) + abs(dy) + abs(dx) == 1)
 
-# Sub-iteration directions -z, +z, -y, +y, -x, +x as neighbour indices, and
-# for each neighbour index j of a deleted voxel p the direction in which p
-# lies as seen from that neighbour (-1 unless j is a face).
+# Index of a single set bit b < 2**32 from the top 5 bits of b * 0x077CB531
+# (a de Bruijn sequence).
+_LOG2_TABLE = np.zeros(32, np.int64)
+for _k in range(32):
+    _LOG2_TABLE[(((1 << _k) * 0x077CB531) & 0xFFFFFFFF) >> 27] = _k
+
+# Sub-iteration directions -z, +z, -y, +y, -x, +x as neighbour indices.
 _DIR_J = np.array([4, 22, 10, 16, 12, 14], np.int64)
-_FACE_DIR = np.full(27, -1, np.int64)
-_FACE_DIR[_DIR_J] = [1, 0, 3, 2, 5, 4]
 
-
-def _same_subfield_table():
-    # For a voxel m and a neighbour of m at index jb: the indices k < jb of
-    # m's other neighbours in the same subfield (same coordinate parities).
-    off = np.array(list(np.ndindex(3, 3, 3))) - 1
-    table = np.full((27, 8), -1, np.int64)
-    for jb in range(27):
-        ks = [k for k in range(jb) if k != 13 and ((off[k] - off[jb]) % 2 == 0).all()]
-        table[jb, : len(ks)] = ks
-    return table
-
-
-_SAME = _same_subfield_table()
 
 # Below this many items a step runs on the calling thread only.
 _PAR_MIN = 4096
 
+# Initial room in the work lists and in the relisting buffers of parallel
+# tasks (see _run).
+_LIST_MIN = 1024
+_ROOM_DIV = 4
+
+# A parallel sub-iteration splits the planes into regions of at least this
+# many planes (see _run).
+_REGION_MIN = 18
+
 # Steps that run in parallel chunks (see _in_parallel).
-_BORDER_COUNT, _BORDER_FILL, _SELECT_COUNT, _SELECT_FILL, _TEST, _RELIST_COUNT, _RELIST_WRITE, _CLEAR = range(8)
+_BORDER_COUNT, _BORDER_FILL, _SELECT_COUNT, _SELECT_FILL, _TASKS, _CLEAR = range(6)
 
 
 # ------------------------------------------------------------ simple points
@@ -175,7 +173,8 @@ def _simple_pattern(nb):
 @numba.njit(cache=True)
 def _border_slab(flat, z, ny, nx, doff, cnt, lists, fill):
     # Count (fill False) or list (fill True, from the slots in cnt[z]) the
-    # object voxels of slab z for each direction with a background neighbour.
+    # object voxels of slab z, each for the first direction with a
+    # background neighbour (see _relist).
     for y in range(1, ny - 1):
         base = (z * ny + y) * nx
         for x in range(1, nx - 1):
@@ -189,46 +188,42 @@ def _border_slab(flat, z, ny, nx, doff, cnt, lists, fill):
                 if not flat[p + doff[d]] & _FG:
                     if fill:
                         lists[d, cnt[z, d]] = p
-                        b |= _INQ0 << d
+                        flat[p] = b | (_INQ0 << d)
                     cnt[z, d] += 1
-            if fill:
-                flat[p] = b
+                    break
 
 
 @numba.njit(cache=True)
-def _select_key(p, nz, ny, nx):
-    # Subfield-major, then slab: candidates of a subfield in slab order.
-    q = p // nx
-    z = q // ny
-    return ((z & 1) * 4 + ((q - z * ny) & 1) * 2 + ((p - q * nx) & 1)) * nz + z
-
-
-@numba.njit(cache=True)
-def _select_count(flat, lists, d, lo, hi, nz, ny, nx, keep, cnt, c):
-    # Take entries lo:hi off list d; mark those that are neither deleted nor
-    # clean as candidates and count them per (subfield, slab) key.
+def _select_count(flat, lists, d, lo, hi, nz, ny, nx, key, cnt, c):
+    # Take entries lo:hi off list d. The candidates (neither deleted nor
+    # clean) get a key, subfield-major then plane, counted per chunk c;
+    # the others get -1.
     bit = _INQ0 << d
+    nyx = ny * nx
     for i in range(lo, hi):
         p = lists[d, i]
         b = flat[p]
         if not b & _FG:
-            keep[i] = 0
+            key[i] = -1
             continue
         flat[p] = b & ~bit
         if b & _CLEAN:
-            keep[i] = 0
+            key[i] = -1
             continue
-        keep[i] = 1
-        cnt[c, _select_key(p, nz, ny, nx)] += 1
+        z = p // nyx
+        r = p - z * nyx
+        y = r // nx
+        k = ((z & 1) * 4 + (y & 1) * 2 + ((r - y * nx) & 1)) * nz + z
+        key[i] = k
+        cnt[c, k] += 1
 
 
 @numba.njit(cache=True)
-def _select_fill(lists, d, lo, hi, nz, ny, nx, keep, cand, slot, c):
+def _select_fill(lists, d, lo, hi, key, cand, slot, c):
     for i in range(lo, hi):
-        if keep[i]:
-            p = lists[d, i]
-            k = _select_key(p, nz, ny, nx)
-            cand[slot[c, k]] = p
+        k = key[i]
+        if k >= 0:
+            cand[slot[c, k]] = lists[d, i]
             slot[c, k] += 1
 
 
@@ -254,14 +249,11 @@ def _test_range(flat, cand, lo, hi, offs, res, visit):
             nb = 0
             was = 0
             clean = 0
-            for j in range(27):
-                b = flat[p + offs[j]]
-                if b:
-                    was |= 1 << j
-                    if b & _FG:
-                        nb |= 1 << j
-                        if b & _CLEAN:
-                            clean |= 1 << j
+            for j in range(27):  # branch-free: the patterns are unpredictable
+                b = np.int64(flat[p + offs[j]])
+                was |= np.int64(b != 0) << j
+                nb |= (b & _FG) << j
+                clean |= (b & (b >> 1) & 1) << j
             nbs[i - first] = nb
             wass[i - first] = was
             cleans[i - first] = clean
@@ -284,62 +276,16 @@ def _test_range(flat, cand, lo, hi, offs, res, visit):
 
 
 @numba.njit(cache=True)
-def _relist_range(flat, cand, lo, hi, res, visit, offs, doff, same, lists, slot, c, write):
-    """Relist the neighbours of the deleted candidates ``lo:hi``; parallel-safe.
+def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, lists, lens):
+    """Relist the object neighbours of the deleted candidates ``lo:hi`` of sub-iteration ``d_now``.
 
-    A neighbour m is handled by one deleted voxel only, its owner: if m is
-    clean, the first deleted voxel among m's neighbours of this subfield (all
-    of which visit m); otherwise m was visited as a face neighbour, and the
-    owner is the first of the two opposite face neighbours that were deleted.
-    The owner lists m for each background direction that it is not listed
-    for, and clears its clean flag. Counts into ``slot[c]`` (write False) or
-    writes from the slots in ``slot[c]`` (write True); only the owner writes
-    m, so both passes see the same decisions.
-    """
-    for i in range(lo, hi):
-        if not res[i]:
-            continue
-        p = cand[i]
-        v = visit[i]
-        for j in range(27):
-            if not (v >> j) & 1:
-                continue
-            m = p + offs[j]
-            b = flat[m]
-            jb = 26 - j
-            if b & _CLEAN:
-                own = True
-                for t in range(8):
-                    k = same[jb, t]
-                    if k < 0:
-                        break
-                    if flat[m + offs[k]] == _DEL:
-                        own = False
-                        break
-            else:
-                own = not (j < jb and flat[m + offs[j]] == _DEL)
-            if not own:
-                continue
-            add = 0
-            for e in range(6):
-                eb = _INQ0 << e
-                if not (b & eb) and not (flat[m + doff[e]] & _FG):
-                    add |= eb
-                    if write:
-                        lists[e, slot[c, e]] = m
-                    slot[c, e] += 1
-            if write and (add or (b & _CLEAN)):
-                flat[m] = (b | add) & ~_CLEAN
-
-
-@numba.njit(cache=True)
-def _relist_serial(flat, cand, lo, hi, res, visit, offs, doff, face_dir, lists, lens):
-    """One-thread relisting of the neighbours of the deleted candidates ``lo:hi``.
-
-    A clean neighbour is listed for all its background directions (its
-    neighbourhood changed), another one for the direction of the deleted face
-    neighbour (a new background direction). Returns the index of the first
-    voxel not done because a list could overflow (``hi`` when done).
+    A voxel needs one list entry only: for the first direction, in the order
+    of the coming sub-iterations, in which its neighbour is background; its
+    test there leaves it deleted or clean. A deletion can make a neighbour
+    dirty (a clean one) or give it an earlier such direction (a face
+    neighbour), so these get listed there unless they are already. Returns
+    the index of the first voxel not done because a list could overflow
+    (``hi`` when done).
     """
     cap = lists.shape[1]
     for i in range(lo, hi):
@@ -349,32 +295,28 @@ def _relist_serial(flat, cand, lo, hi, res, visit, offs, doff, face_dir, lists, 
             if lens[e] > cap - 26:
                 return i
         p = cand[i]
-        v = visit[i]
-        for j in range(27):
-            if not (v >> j) & 1:
-                continue
+        v = np.int64(visit[i])
+        while v:
+            low = v & -v
+            v ^= low
+            j = _LOG2_TABLE[((low * 0x077CB531) & 0xFFFFFFFF) >> 27]  # index of the lowest set bit
             m = p + offs[j]
             b = flat[m]
-            if b & _CLEAN:
-                b ^= _CLEAN
-                for e in range(6):
-                    eb = _INQ0 << e
-                    if not (b & eb) and not (flat[m + doff[e]] & _FG):
-                        lists[e, lens[e]] = m
-                        lens[e] += 1
-                        b |= eb
-                flat[m] = b
-            else:
-                # Visited as clean but relisted by an earlier deleted voxel
-                # already, or visited as a face neighbour.
-                e = face_dir[j]
-                if e < 0:
-                    continue
-                eb = _INQ0 << e
-                if not b & eb:
-                    lists[e, lens[e]] = m
-                    lens[e] += 1
-                    flat[m] = b | eb
+            e = d_now
+            for t in range(1, 7):
+                e = d_now + t
+                if e >= 6:
+                    e -= 6
+                if not flat[m + doff[e]] & _FG:
+                    break
+            eb = _INQ0 << e
+            nb = b & ~_CLEAN
+            if not b & eb:
+                lists[e, lens[e]] = m
+                lens[e] += 1
+                nb |= eb
+            if nb != b:
+                flat[m] = nb
     return hi
 
 
@@ -388,67 +330,163 @@ def _clear_range(flat, cand, lo, hi, res):
 # ---------------------------------------------------------------- drivers
 
 
-@numba.njit(cache=True, parallel=True)
-def _in_parallel(task, nchunks, n, flat, nz, ny, nx, offs, doff, same, lists, d, lo, res, cand, visit, cnt, out):
-    """Run one step over ``n`` items in ``nchunks`` parallel chunks.
+@numba.njit(cache=True)
+def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, lists, lens, lo_z, hi_z, state):
+    """Run subfield pass s on planes ``lo_z[s]:hi_z[s]`` for s = 0..7, in wavefront order.
 
-    All steps share this one parallel loop, which keeps compile time down.
-    Chunk c covers items ``lo + n*c//nchunks`` to ``lo + n*(c+1)//nchunks``;
-    for the border steps a chunk is a slab.
+    Pass s on plane z runs after pass s - 1 on planes z - 1 to z + 1 and
+    before pass s + 1 on them, which is all the result depends on: this
+    equals running the passes one after another, while the few planes being
+    worked on stay in cache. ``kstart[s * nz + z]`` is the first candidate of
+    subfield s in plane z. Relisted voxels go to ``lists``/``lens``.
+
+    ``state`` is (step, s, i, deleted): where to resume and the running
+    count of deletions. Stops early, returning False, when a list is full;
+    the caller grows it and calls again.
+    """
+    base = lo_z[0]
+    n_steps = 0
+    for s in range(8):
+        n_steps = max(n_steps, hi_z[s] - base + s)
+    step = state[0]
+    s0 = state[1]
+    i0 = state[2]
+    while step < n_steps:
+        for s in range(s0, 8):
+            z = base + step - s
+            if z < lo_z[s] or z >= hi_z[s]:
+                continue
+            lo = kstart[s * nz + z]
+            hi = kstart[s * nz + z + 1]
+            if hi == lo:
+                continue
+            if i0 < 0:
+                nd = _test_range(flat, cand, lo, hi, offs, res, visit)
+                if nd == 0:
+                    continue
+                state[3] += nd
+                i = lo
+            else:  # resuming inside this unit's relisting
+                i = i0
+                i0 = -1
+            i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, lists, lens)
+            if i < hi:
+                state[0] = step
+                state[1] = s
+                state[2] = i
+                return False
+        s0 = 0
+        step += 1
+    state[0] = n_steps
+    state[1] = 0
+    state[2] = -1
+    return True
+
+
+@numba.njit(cache=True, parallel=True)
+def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, bufs, blen, lo_z, hi_z, state):
+    """Run one step in ``nchunks`` parallel chunks; all steps share this loop,
+    which keeps compile time down.
+
+    Border steps: chunk c is slab c + 1. Selection and clearing: chunk c
+    covers items ``lo + n*c//nchunks`` to ``lo + n*(c+1)//nchunks``. Tasks:
+    chunk c runs task ``lo + c`` with its own relisting buffer.
     """
     for c in prange(nchunks):
         a = lo + (n * c) // nchunks
         e = lo + (n * (c + 1)) // nchunks
-        if task == _BORDER_COUNT or task == _BORDER_FILL:
-            _border_slab(flat, c + 1, ny, nx, doff, cnt, lists, task == _BORDER_FILL)
-        elif task == _SELECT_COUNT:
-            _select_count(flat, lists, d, a, e, nz, ny, nx, res, cnt, c)
-        elif task == _SELECT_FILL:
-            _select_fill(lists, d, a, e, nz, ny, nx, res, cand, cnt, c)
-        elif task == _TEST:
-            out[c] = _test_range(flat, cand, a, e, offs, res, visit)
-        elif task == _RELIST_COUNT or task == _RELIST_WRITE:
-            _relist_range(flat, cand, a, e, res, visit, offs, doff, same, lists, cnt, c, task == _RELIST_WRITE)
+        if step == _BORDER_COUNT or step == _BORDER_FILL:
+            _border_slab(flat, c + 1, ny, nx, doff, cnt, lists, step == _BORDER_FILL)
+        elif step == _SELECT_COUNT:
+            _select_count(flat, lists, d, a, e, nz, ny, nx, visit, cnt, c)
+        elif step == _SELECT_FILL:
+            _select_fill(lists, d, a, e, visit, cand, cnt, c)
+        elif step == _TASKS:
+            t = lo + c
+            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, bufs[t], blen[t], lo_z[t], hi_z[t], state[t])
         else:
             _clear_range(flat, cand, a, e, res)
 
 
 @numba.njit(cache=True)
-def _grown(lists, lens, cand, res, visit, need, cap_max):
-    cap = lists.shape[1]
-    new_cap = max(need, min(2 * cap, cap_max))
-    new_lists = np.empty((6, new_cap), lists.dtype)
-    for d in range(6):
-        for i in range(lens[d]):
-            new_lists[d, i] = lists[d, i]
-    new_cand = np.empty(new_cap, cand.dtype)
-    new_res = np.empty(new_cap, np.uint8)
-    new_visit = np.empty(new_cap, np.uint32)
-    for i in range(cap):
-        new_cand[i] = cand[i]
-        new_res[i] = res[i]
-        new_visit[i] = visit[i]
-    return new_lists, new_cand, new_res, new_visit
+def _grown(lists, lens, need):
+    cap = lists.shape[-1]
+    new = np.empty(lists.shape[:-1] + (max(need, 2 * cap),), lists.dtype)
+    rows = lists.reshape(-1, cap)
+    new_rows = new.reshape(-1, new.shape[-1])
+    counts = lens.reshape(-1)
+    for r in range(rows.shape[0]):
+        for i in range(counts[r]):
+            new_rows[r, i] = rows[r, i]
+    return new
 
 
 @numba.njit(cache=True)
-def _run(flat, nz, ny, nx, offs, doff, face_dir, same, idx_probe, nchunks, par_min):
+def _regions(nz, n_regions):
+    """Plane ranges per pass of the parallel tasks.
+
+    Planes 1 .. nz - 2 are split into regions. Phase 1 runs one task per
+    region, pass s on the region shrunk by s + 1 planes at each inner end;
+    phase 2 runs one task per inner boundary x, pass s on planes x - s - 1 to
+    x + s + 1. Together they cover every (pass, plane) once, and phase 2 only
+    needs results of phase 1 and of itself. Tasks of one phase touch disjoint
+    planes (each reads and writes one plane beyond its own), so they run in
+    parallel.
+    """
+    n_tasks = 2 * n_regions - 1
+    lo_z = np.zeros((n_tasks, 8), np.int64)
+    hi_z = np.zeros((n_tasks, 8), np.int64)
+    inner = nz - 2
+    for r in range(n_regions):
+        a = 1 + (inner * r) // n_regions
+        b = 1 + (inner * (r + 1)) // n_regions
+        for s in range(8):
+            lo_z[r, s] = a + (s + 1 if r > 0 else 0)
+            hi_z[r, s] = b - (s + 1 if r < n_regions - 1 else 0)
+            if r < n_regions - 1:
+                lo_z[n_regions + r, s] = b - s - 1
+                hi_z[n_regions + r, s] = b + s + 1
+    return lo_z, hi_z
+
+
+@numba.njit(cache=True)
+def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div):
     """Thin the padded volume ``flat`` in place; returns the number of iterations.
 
-    ``nchunks`` parallel chunks for steps of at least ``par_min`` items.
+    Steps of at least ``par_min`` items run on ``threads`` threads. The lists
+    start with ``list_min`` plus ``1 / room_div`` of their length free; a
+    task's relisting buffer holds ``list_min`` plus ``8 / room_div`` times
+    its share of the candidates. Either grows when full.
     """
-    dummy = np.zeros(1, np.int64)
     zero = np.int64(0)  # literal arguments would compile one specialisation per value
+    nchunks = 4 * threads
+    parallel = threads > 1
+    n_regions = min(4 * threads, (nz - 2) // _REGION_MIN)
+    if n_regions < 2:
+        n_regions = 2
+        parallel_tasks = False
+    else:
+        parallel_tasks = parallel
+    n_tasks = 2 * n_regions - 1
+    lo_z, hi_z = _regions(nz, n_regions)
+    state = np.zeros((n_tasks, 5), np.int64)
+    bufs = np.empty((n_tasks, 6, 0), idx_probe.dtype)
+    blen = np.zeros((n_tasks, 6), np.int64)
+    one_lo = np.ones(8, np.int64)
+    one_hi = np.full(8, nz - 1, np.int64)
+    one_state = np.zeros(4, np.int64)
 
     # List the border voxels: count per slab, turn counts into slots, fill.
     cnt = np.zeros((nz, 7), np.int64)
     lists = np.empty((6, 0), idx_probe.dtype)
     res = np.empty(0, np.uint8)
     cand = np.empty(0, idx_probe.dtype)
-    visit = np.empty(0, np.uint32)
-    parallel = nchunks > 1 and flat.shape[0] >= par_min
-    if parallel:
-        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, same, lists, zero, zero, res, cand, visit, cnt, dummy)
+    visit = np.empty(0, np.int32)
+    kstart = np.zeros(8 * nz + 1, np.int64)
+    big = parallel and flat.shape[0] >= par_min
+    if big:
+        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
+                     res, cand, visit, cnt, kstart, bufs, blen, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
             _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(False))
@@ -465,23 +503,19 @@ def _run(flat, nz, ny, nx, offs, doff, face_dir, same, idx_probe, nchunks, par_m
     longest = 0
     for d in range(6):
         longest = max(longest, lens[d])
-    cap_max = n_fg + 32  # no list holds an object voxel twice
-    cap = min(cap_max, max(1024, longest + longest // 4))
+    cap = longest + longest // room_div + list_min
     lists = np.empty((6, cap), idx_probe.dtype)
-    if parallel:
-        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, same, lists, zero, zero, res, cand, visit, cnt, dummy)
+    if big:
+        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
+                     res, cand, visit, cnt, kstart, bufs, blen, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
             _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(True))
 
     cand = np.empty(cap, idx_probe.dtype)
-    res = np.empty(cap, np.uint8)  # subfield tags, then deleted flags, per candidate
-    visit = np.empty(cap, np.uint32)
-    slot = np.zeros((nchunks, 8), np.int64)
+    res = np.empty(cap, np.uint8)  # per candidate: deleted
+    visit = np.empty(cap, np.int32)  # per list entry: selection key; then per candidate: neighbours to relist
     kslot = np.zeros((nchunks, 8 * nz), np.int64)
-    nd_chunk = np.zeros(nchunks, np.int64)
-    sub_start = np.zeros(9, np.int64)
-    new_lens = np.zeros(6, np.int64)
     iterations = 0
     while True:
         iterations += 1
@@ -490,71 +524,89 @@ def _run(flat, nz, ny, nx, offs, doff, face_dir, same, idx_probe, nchunks, par_m
             n = lens[d]
             if n == 0:
                 continue
+            if cand.shape[0] < n:
+                cand = np.empty(lists.shape[1], idx_probe.dtype)
+                res = np.empty(lists.shape[1], np.uint8)
+                visit = np.empty(lists.shape[1], np.int32)
             # Candidates: the listed voxels that are neither deleted nor
-            # clean, by subfield and within a subfield by slab (locality).
+            # clean, by subfield and within a subfield by plane.
+            big = parallel and n >= par_min
             kslot[:] = 0
-            if n >= par_min and nchunks > 1:
-                _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, offs, doff, same, lists, d, zero, res, cand, visit, kslot, dummy)
+            if big:
+                _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                             res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
             else:
-                _select_count(flat, lists, d, zero, n, nz, ny, nx, res, kslot, zero)
+                _select_count(flat, lists, d, zero, n, nz, ny, nx, visit, kslot, zero)
             acc = 0
             for k in range(8 * nz):
-                if k % nz == 0:
-                    sub_start[k // nz] = acc
+                kstart[k] = acc
                 for c in range(nchunks):
                     q = kslot[c, k]
                     kslot[c, k] = acc
                     acc += q
-            sub_start[8] = acc
-            if n >= par_min and nchunks > 1:
-                _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, offs, doff, same, lists, d, zero, res, cand, visit, kslot, dummy)
+            kstart[8 * nz] = acc
+            n_cand = acc
+            if big:
+                _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                             res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
             else:
-                _select_fill(lists, d, zero, n, nz, ny, nx, res, cand, kslot, zero)
+                _select_fill(lists, d, zero, n, visit, cand, kslot, zero)
             lens[d] = 0
 
-            for s in range(8):
-                lo = sub_start[s]
-                m = sub_start[s + 1] - lo
-                if m == 0:
-                    continue
-                if m >= par_min and nchunks > 1:
-                    _in_parallel(np.int64(_TEST), nchunks, m, flat, nz, ny, nx, offs, doff, same, lists, d, lo, res, cand, visit, slot, nd_chunk)
-                    nd = nd_chunk.sum()
-                else:
-                    nd = _test_range(flat, cand, lo, lo + m, offs, res, visit)
-                if nd == 0:
-                    continue
-                deleted += nd
-                if m >= par_min and nchunks > 1:
-                    slot[:] = 0
-                    _in_parallel(np.int64(_RELIST_COUNT), nchunks, m, flat, nz, ny, nx, offs, doff, same, lists, d, lo, res, cand, visit, slot, dummy)
-                    need = 0
-                    for e in range(6):
-                        acc = lens[e]
-                        for c in range(nchunks):
-                            k = slot[c, e]
-                            slot[c, e] = acc
-                            acc += k
-                        new_lens[e] = acc
-                        need = max(need, acc)
-                    if need > lists.shape[1]:
-                        lists, cand, res, visit = _grown(lists, lens, cand, res, visit, need, cap_max)
-                    for e in range(6):
-                        lens[e] = new_lens[e]
-                    _in_parallel(np.int64(_RELIST_WRITE), nchunks, m, flat, nz, ny, nx, offs, doff, same, lists, d, lo, res, cand, visit, slot, dummy)
-                else:
-                    i = lo
-                    while True:
-                        i = _relist_serial(flat, cand, i, lo + m, res, visit, offs, doff, face_dir, lists, lens)
-                        if i == lo + m:
-                            break
-                        lists, cand, res, visit = _grown(lists, lens, cand, res, visit, lists.shape[1] + 64, cap_max)
-            # The sub-iteration is over: deleted voxels become background.
-            n = sub_start[8]
-            if n >= par_min and nchunks > 1:
-                _in_parallel(np.int64(_CLEAR), nchunks, n, flat, nz, ny, nx, offs, doff, same, lists, d, zero, res, cand, visit, slot, dummy)
+            if big and parallel_tasks:
+                # Phase 1 (regions), then phase 2 (boundaries), each task
+                # relisting into its own buffer; a task whose buffer fills up
+                # stops and is finished here after growing the buffers.
+                need = list_min + 8 * (n_cand // n_regions) // room_div
+                if bufs.shape[2] < need:
+                    bufs = np.empty((n_tasks, 6, need), idx_probe.dtype)
+                blen[:] = 0
+                for t in range(n_tasks):
+                    state[t, 0] = 0
+                    state[t, 1] = 0
+                    state[t, 2] = -1
+                    state[t, 3] = 0
+                for phase in range(2):
+                    first = 0 if phase == 0 else n_regions
+                    count = n_regions if phase == 0 else n_regions - 1
+                    _in_parallel(np.int64(_TASKS), count, zero, flat, nz, ny, nx, offs, doff, lists, d, first,
+                                 res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
+                    for t in range(first, first + count):
+                        while state[t, 4] == 0:
+                            bufs = _grown(bufs, blen, 0)
+                            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, bufs[t], blen[t],
+                                                lo_z[t], hi_z[t], state[t])
+                # Append the buffers to the lists.
+                need = 0
+                for e in range(6):
+                    total = lens[e]
+                    for t in range(n_tasks):
+                        total += blen[t, e]
+                    need = max(need, total)
+                if need > lists.shape[1]:
+                    lists = _grown(lists, lens, need)
+                for e in range(6):
+                    for t in range(n_tasks):
+                        k = lens[e]
+                        for i in range(blen[t, e]):
+                            lists[e, k + i] = bufs[t, e, i]
+                        lens[e] = k + blen[t, e]
+                for t in range(n_tasks):
+                    deleted += state[t, 3]
             else:
-                _clear_range(flat, cand, zero, n, res)
+                one_state[0] = 0
+                one_state[1] = 0
+                one_state[2] = -1
+                one_state[3] = 0
+                while not _task(flat, cand, kstart, nz, offs, doff, d, res, visit, lists, lens, one_lo, one_hi, one_state):
+                    lists = _grown(lists, lens, 0)
+                deleted += one_state[3]
+            # The sub-iteration is over: deleted voxels become background.
+            if big:
+                _in_parallel(np.int64(_CLEAR), nchunks, n_cand, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                             res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
+            else:
+                _clear_range(flat, cand, zero, n_cand, res)
         if deleted == 0:
             return iterations
 
@@ -609,8 +661,7 @@ def _thin(mask, threads):
     d = np.arange(-1, 2)
     offs = (d[:, None, None] * (ny * nx) + d[None, :, None] * nx + d[None, None, :]).reshape(-1).astype(np.int64)
     doff = offs[_DIR_J].copy()
-    nchunks = 4 * threads if threads > 1 else 1
-    _run(flat, nz, ny, nx, offs, doff, _FACE_DIR, _SAME, np.empty(0, idx), nchunks, _PAR_MIN)
+    _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV)
     out = np.empty(mask.shape, bool)
     np.bitwise_and(inner, _FG, out=out.view(np.uint8))
     return out

@@ -1,0 +1,812 @@
+"""Step 9, steady network flow, wall shear stress and transit times.
+
+In: the ``segments`` table (``segment_id``, ``node_from``, ``node_to``,
+``length_um``, ``radius_um``, optionally ``radius_hydraulic_um``) and the
+``nodes`` table (``node_id``, ``kind``) of a vessel multigraph, the inlet
+node ids, optionally the outlet node ids, and the config section ``flow``.
+Out: :class:`FlowResult`, per-segment flow quantities keyed by
+``segment_id``, per-node pressure and role, a summary dict and warning
+strings.
+
+Model. Every segment is a rigid straight tube in steady laminar
+(Hagen–Poiseuille) flow, resistance ``R = 8 mu L / (pi r^4)`` with the
+hydraulic radius (``radius_hydraulic_um``, the r with ``L / r^4 =
+integral dl / r^4``; ``radius_um`` where it is absent or NaN). Kirchhoff's
+current law at every node without a pressure condition gives ``L_UU p_U =
+-L_UD p_D`` with the weighted graph Laplacian ``L`` (conductances
+``1 / R``; parallel segments add), symmetric positive definite once the
+Dirichlet nodes are eliminated, because only the parts of connected
+components that hold both an inlet and an outlet are assembled. The system is assembled
+vectorised (``scipy.sparse.coo_matrix``) in SI units and solved for the
+dimensionless potential ``phi`` (1 at inlets, 0 at outlets); pressures are
+``p_out + dP * phi`` and flows ``dP * G * (phi_from - phi_to)``, which
+keeps small pressure drops exact. Conversions to table units happen once,
+at the end.
+
+Solvers. ``direct``: sparse LU (SuperLU, minimum-degree ordering on
+``A^T + A``, symmetric mode, no pivoting, which is stable for this SPD
+matrix). ``cg``: conjugate gradients (Hestenes & Stiefel 1952, J Res Natl
+Bur Stand 49:409) with Jacobi preconditioning, applied as the symmetric
+scaling ``D^-1/2 A D^-1/2``; the loop is written here with numpy kernels
+that use no BLAS thread pool, so that its run time stays steady on a busy
+machine (threaded BLAS level-1 calls slowed it several-fold under load);
+it stops at relative residual ``cg_rtol`` of the scaled system or fails
+after ``cg_max_iter`` iterations. ``auto``: direct up to
+``cg_threshold_nodes`` unknowns, else CG. A CG run that does not converge,
+a singular factorisation or a non-finite result raises
+:class:`~pipeline.errors.SolverError`; the true residual is recomputed
+after the solve and reported.
+
+Boundary conditions. Inlets (given) are at ``inlet_pressure_pa``; outlets
+are, unless given explicitly, every end node of kind ``'border'`` that is
+not an inlet, plus the ``'blind'`` ends when ``blind_ends`` is
+``'outlet'``; outlets are at ``outlet_pressure_pa``. Other end nodes are
+sealed (zero net flow, Neumann). With ``inlet_flow_nl_min`` set, all inlets
+share one unknown pressure chosen so that the total inflow equals that
+value (the problem is linear, so the unit-potential solution is scaled).
+The pressure-independent viscosity laws keep the problem linear. Note that
+in an image every vessel cut by the volume border ends in a border node,
+arteries as well as veins: making all of them outlets at one pressure is a
+modelling choice; pass ``outlets`` (and more ``inlets``) when the vessel
+types are known.
+
+Unsolved and unperfused parts. A connected component without any inlet or
+outlet is not solved: its nodes get ``pressure_pa`` NaN, its segments flow
+0 and ``perfused`` False, and a warning counts them. A component with
+inlets only or outlets only is at that one pressure, without flow.
+``perfused`` is True for a segment whose component holds both an inlet and
+an outlet, that is not a self-loop (a self-loop has zero net pressure drop
+and carries no flow) and that is not in a dead-end part: the parts removed
+by repeatedly stripping segments at sealed end nodes (a blind sprout and the
+subtree behind it) carry no flow in steady state. They are left out of the
+linear system, get flow exactly 0 and the pressure of the node they hang
+from. A dangling closed loop attached at a single node is not detected as
+dead-end; its flow is zero to rounding.
+
+Derived quantities per segment (``r`` = ``radius_um``, the robust vessel
+radius, for the local quantities; ``mu`` the segment's viscosity): mean
+speed ``|Q| / (pi r^2)``, peak speed twice the mean (parabolic profile),
+wall shear rate ``4 |Q| / (pi r^3)``, wall shear stress ``4 mu |Q| / (pi
+r^3)``, Reynolds number ``rho v 2r / mu``, transit time ``L / v`` (NaN
+where the flow is 0).
+
+Viscosity. ``constant``: ``viscosity_mpa_s``. ``pries1992``: in-vitro
+relative apparent viscosity of Pries, Neuhaus & Gaehtgens (1992, Am J
+Physiol 263:H1770), times the plasma viscosity. ``pries1994``: in-vivo law
+of Pries et al. (1994, Circ Res 75:904). Both take the tube diameter
+``2 * r_hydraulic`` in µm and the discharge haematocrit; diameters below
+``min_valid_diameter_um`` are evaluated at that diameter and counted in a
+warning. The formulas are in :func:`relative_viscosity_vitro` and
+:func:`relative_viscosity_vivo`.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings as _warnings
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import sparse
+from scipy.sparse import csgraph
+from scipy.sparse import linalg as spla
+
+from .errors import InputError, SolverError
+
+__all__ = [
+    "FlowResult",
+    "solve_flow",
+    "relative_viscosity_vitro",
+    "relative_viscosity_vivo",
+    "segment_viscosity_mpa_s",
+    "NL_MIN_PER_M3_S",
+]
+
+UM = 1e-6  # m per µm
+MPA_S = 1e-3  # Pa·s per mPa·s
+NL_MIN_PER_M3_S = 1e12 * 60.0  # (nL/min) per (m³/s)
+PA_S_UM3_PER_PA_S_M3 = 1e-18  # (Pa·s/µm³) per (Pa·s/m³)
+
+SEGMENT_COLUMNS = [
+    "flow_nl_min",
+    "pressure_from_pa",
+    "pressure_to_pa",
+    "velocity_mm_s",
+    "velocity_peak_mm_s",
+    "shear_rate_s",
+    "wss_pa",
+    "reynolds",
+    "transit_time_s",
+    "resistance_pa_s_um3",
+    "viscosity_mpa_s",
+    "perfused",
+]
+PASS_THROUGH = ("level", "strahler", "strahler_diameter")
+
+
+@dataclass
+class FlowResult:
+    """Result of :func:`solve_flow`.
+
+    Attributes
+    ----------
+    segments : DataFrame, shape (S, ...)
+        ``segment_id`` in the input order, then ``level``, ``strahler``,
+        ``strahler_diameter`` when the input has them, then
+        ``flow_nl_min`` (signed, positive from ``node_from`` to
+        ``node_to``), ``pressure_from_pa``, ``pressure_to_pa`` (NaN in
+        unsolved components), ``velocity_mm_s`` (mean speed, >= 0),
+        ``velocity_peak_mm_s``, ``shear_rate_s`` (1/s), ``wss_pa``,
+        ``reynolds``, ``transit_time_s`` (NaN where the flow is 0),
+        ``resistance_pa_s_um3``, ``viscosity_mpa_s``, ``perfused`` (bool).
+    nodes : DataFrame, shape (N, 4)
+        ``node_id``, ``pressure_pa`` (NaN in unsolved components),
+        ``role`` ('inlet', 'outlet', 'sealed', 'internal'),
+        ``inflow_nl_min`` (flow entering the network at the node: positive
+        at inlets, negative at outlets, zero to rounding elsewhere).
+    summary : dict
+        ``total_inflow_nl_min``, ``network_resistance_pa_s_um3``
+        (inlet-outlet pressure difference over total inflow; None without
+        flow), ``perfused_length_fraction``, ``max_conservation_residual``
+        (largest ``|net flow|`` at a node without a pressure condition,
+        relative to the total inflow; None without flow), ``n_inlets``,
+        ``n_outlets``, ``n_sealed``, ``n_segments``, ``n_perfused_segments``,
+        ``n_unsolved_components``, ``n_unknowns``, ``boundary`` ('pressure'
+        or 'flow'), ``inlet_pressure_pa``, ``outlet_pressure_pa``,
+        ``viscosity_model``, ``solver`` ('direct', 'cg' or 'none'),
+        ``solver_iterations`` (CG only, else None), ``solver_residual``
+        (relative residual of the linear system).
+    warnings : list of str
+        Remarks for the run log (clamped diameters, unsolved components,
+        components without an outlet, large residuals).
+    """
+
+    segments: pd.DataFrame
+    nodes: pd.DataFrame
+    summary: dict[str, Any]
+    warnings: list[str] = field(default_factory=list)
+
+
+# ---------------------------------------------------------------------------
+# viscosity laws
+# ---------------------------------------------------------------------------
+
+def _c_exponent(d: np.ndarray) -> np.ndarray:
+    # Shape of the haematocrit dependence, Pries et al. 1992 (from memory):
+    # C = (0.8 + e^(-0.075 D)) (-1 + 1 / (1 + 10^-11 D^12)) + 1 / (1 + 10^-11 D^12)
+    s = 1.0 / (1.0 + 1e-11 * d**12)
+    return (0.8 + np.exp(-0.075 * d)) * (-1.0 + s) + s
+
+
+def _haematocrit_factor(h: np.ndarray | float, c: np.ndarray) -> np.ndarray:
+    """((1 - H)^C - 1) / ((1 - 0.45)^C - 1), with its limit at C = 0.
+
+    C changes sign near D = 8 µm, where the quotient is 0/0; its limit is
+    ln(1 - H) / ln(0.55). ``expm1`` keeps the quotient accurate near there.
+    """
+    a = np.log1p(-np.asarray(h, dtype=float))
+    b = math.log(0.55)
+    c = np.asarray(c, dtype=float)
+    tiny = np.abs(c) < 1e-12
+    cs = np.where(tiny, 1.0, c)
+    return np.where(tiny, a / b, np.expm1(cs * a) / np.expm1(cs * b))
+
+
+def relative_viscosity_vitro(diameter_um, haematocrit) -> np.ndarray:
+    """In-vitro relative apparent viscosity of blood in glass tubes.
+
+    Pries AR, Neuhaus D, Gaehtgens P (1992) Am J Physiol 263:H1770 (formula
+    as recalled, not checked against the paper)::
+
+        eta_rel = 1 + (eta_045 - 1) * ((1 - H)^C - 1) / ((1 - 0.45)^C - 1)
+        eta_045 = 220 e^(-1.3 D) + 3.2 - 2.44 e^(-0.06 D^0.645)
+        C = (0.8 + e^(-0.075 D)) (-1 + 1 / (1 + 1e-11 D^12))
+            + 1 / (1 + 1e-11 D^12)
+
+    Parameters
+    ----------
+    diameter_um : float or (M,) array_like
+        Tube diameter D, µm (the fit's data base spans 3.3 to 1978 µm).
+    haematocrit : float or (M,) array_like
+        Discharge haematocrit H_D, 0 <= H_D < 1.
+
+    Returns
+    -------
+    (M,) float ndarray
+        Apparent viscosity over suspending-medium (plasma) viscosity.
+    """
+    d = np.asarray(diameter_um, dtype=float)
+    eta45 = 220.0 * np.exp(-1.3 * d) + 3.2 - 2.44 * np.exp(-0.06 * d**0.645)
+    return 1.0 + (eta45 - 1.0) * _haematocrit_factor(haematocrit, _c_exponent(d))
+
+
+def relative_viscosity_vivo(diameter_um, haematocrit) -> np.ndarray:
+    """In-vivo relative apparent viscosity (flow resistance) of microvessels.
+
+    Pries AR, Secomb TW, Gessner T, Sperandio MB, Gross JF, Gaehtgens P
+    (1994) Circ Res 75:904 (formula as recalled, not checked against the
+    paper)::
+
+        eta_vivo = [1 + (eta*_045 - 1) * ((1 - H)^C - 1) / ((1 - 0.45)^C - 1)
+                    * (D / (D - 1.1))^2] * (D / (D - 1.1))^2
+        eta*_045 = 6 e^(-0.085 D) + 3.2 - 2.44 e^(-0.06 D^0.645)
+
+    with the same C as :func:`relative_viscosity_vitro`. The
+    ``(D / (D - 1.1))^2`` factors stand for a wall layer of about 1.1 µm
+    that diverges as D approaches 1.1 µm.
+
+    Parameters
+    ----------
+    diameter_um : float or (M,) array_like
+        Vessel diameter D, µm, > 1.1.
+    haematocrit : float or (M,) array_like
+        Discharge haematocrit H_D, 0 <= H_D < 1.
+
+    Returns
+    -------
+    (M,) float ndarray
+        Apparent viscosity over plasma viscosity.
+    """
+    d = np.asarray(diameter_um, dtype=float)
+    eta45 = 6.0 * np.exp(-0.085 * d) + 3.2 - 2.44 * np.exp(-0.06 * d**0.645)
+    wall = (d / (d - 1.1)) ** 2
+    return (1.0 + (eta45 - 1.0) * _haematocrit_factor(haematocrit, _c_exponent(d)) * wall) * wall
+
+
+def segment_viscosity_mpa_s(
+    diameter_um: np.ndarray,
+    *,
+    model: str,
+    viscosity_mpa_s: float,
+    haematocrit: float,
+    plasma_viscosity_mpa_s: float,
+    min_valid_diameter_um: float,
+) -> tuple[np.ndarray, list[str]]:
+    """Apparent blood viscosity of every segment.
+
+    Parameters
+    ----------
+    diameter_um : (S,) float ndarray
+        Diameters the law is evaluated at, µm.
+    model : {'constant', 'pries1992', 'pries1994'}, keyword-only
+    viscosity_mpa_s : float, keyword-only
+        Viscosity of the constant model, mPa·s.
+    haematocrit : float, keyword-only
+        Discharge haematocrit for the Pries laws.
+    plasma_viscosity_mpa_s : float, keyword-only
+        Suspending-medium viscosity the Pries laws scale, mPa·s.
+    min_valid_diameter_um : float, keyword-only
+        Narrower diameters are evaluated at this value.
+
+    Returns
+    -------
+    viscosity : (S,) float ndarray
+        mPa·s.
+    warnings : list of str
+        One line if any diameter was clamped.
+    """
+    d = np.asarray(diameter_um, dtype=float)
+    if model == "constant":
+        return np.full(d.shape, float(viscosity_mpa_s)), []
+    if model not in ("pries1992", "pries1994"):
+        raise InputError(f"flow.viscosity_model: expected constant, pries1992 or pries1994, got {model!r}")
+    notes: list[str] = []
+    low = d < min_valid_diameter_um
+    if low.any():
+        notes.append(
+            f"viscosity: {int(low.sum())} segment(s) narrower than {min_valid_diameter_um:g} µm, "
+            f"outside the valid range of the {model} law; evaluated at {min_valid_diameter_um:g} µm"
+        )
+        d = np.maximum(d, min_valid_diameter_um)
+    law = relative_viscosity_vitro if model == "pries1992" else relative_viscosity_vivo
+    return plasma_viscosity_mpa_s * law(d, haematocrit), notes
+
+
+# ---------------------------------------------------------------------------
+# input
+# ---------------------------------------------------------------------------
+
+def _flow_config(config: Mapping[str, Any] | None) -> dict[str, Any]:
+    from .config import validate_config
+
+    section = {} if config is None else config.get("flow", config)
+    return validate_config({"flow": dict(section)})["flow"]
+
+
+def _positive(df: pd.DataFrame, col: str) -> np.ndarray:
+    x = df[col].to_numpy(dtype=float)
+    bad = ~(np.isfinite(x) & (x > 0))
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"segments: {col} must be finite and > 0; {int(bad.sum())} value(s) are not "
+            f"(first: segment_id {int(df['segment_id'].iloc[k])}, value {x[k]!r})"
+        )
+    return x
+
+
+def _node_rows(ids: pd.Index, values: Iterable[int], what: str) -> np.ndarray:
+    vals = np.asarray([int(x) for x in values], dtype=np.int64)
+    rows = ids.get_indexer(vals) if len(vals) else np.zeros(0, dtype=np.int64)
+    if (rows < 0).any():
+        raise InputError(f"{what}: node id {int(vals[rows < 0][0])} does not exist in the nodes table")
+    return np.unique(rows)
+
+
+def _wsum(index: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
+    """Float ``bincount`` (numpy returns integers for empty input)."""
+    return np.bincount(index, weights=weights, minlength=n).astype(float, copy=False)
+
+
+def _ranges(starts: np.ndarray, stops: np.ndarray) -> np.ndarray:
+    """Concatenation of ``arange(a, b)`` for every pair (vectorised)."""
+    lengths = stops - starts
+    total = int(lengths.sum())
+    if total == 0:
+        return np.zeros(0, dtype=np.int64)
+    offsets = np.repeat(starts - np.r_[0, np.cumsum(lengths)[:-1]], lengths)
+    return offsets + np.arange(total)
+
+
+def _dead_ends(u: np.ndarray, v: np.ndarray, active: np.ndarray, anchored: np.ndarray) -> np.ndarray:
+    """Active segments removed by repeatedly stripping leaves that are not anchored.
+
+    Parameters
+    ----------
+    u, v : (S,) int ndarray
+        End-node rows.
+    active : (S,) bool ndarray
+        Segments taking part (self-loops must be excluded).
+    anchored : (N,) bool ndarray
+        Nodes with a pressure condition; never stripped.
+
+    Returns
+    -------
+    (S,) bool ndarray
+    """
+    n_nodes = len(anchored)
+    seg = np.flatnonzero(active)
+    end_node = np.concatenate([u[seg], v[seg]])
+    end_seg = np.concatenate([seg, seg])
+    order = np.argsort(end_node, kind="stable")
+    inc = end_seg[order]
+    indptr = np.r_[0, np.cumsum(np.bincount(end_node, minlength=n_nodes))]
+    deg = np.diff(indptr).astype(np.int64)
+    alive = active.copy()
+    dead = np.zeros(len(u), dtype=bool)
+    frontier = np.flatnonzero((deg == 1) & ~anchored)
+    while frontier.size:
+        s = inc[_ranges(indptr[frontier], indptr[frontier + 1])]
+        s = np.unique(s[alive[s]])
+        if not s.size:
+            break
+        alive[s] = False
+        dead[s] = True
+        np.subtract.at(deg, u[s], 1)
+        np.subtract.at(deg, v[s], 1)
+        cand = np.unique(np.concatenate([u[s], v[s]]))
+        frontier = cand[(deg[cand] == 1) & ~anchored[cand]]
+    return dead
+
+
+# ---------------------------------------------------------------------------
+# linear algebra
+# ---------------------------------------------------------------------------
+
+def _assemble(u, v, g, unknown_index, phi_fixed, use):
+    """Reduced Laplacian system ``A x = b`` over the unknown nodes.
+
+    Parameters
+    ----------
+    u, v : (S,) int ndarray
+        End-node rows.
+    g : (S,) float ndarray
+        Conductances, m³/(Pa·s).
+    unknown_index : (N,) int ndarray
+        Position of each node among the unknowns, -1 for fixed or unsolved
+        nodes.
+    phi_fixed : (N,) float ndarray
+        Potential of the fixed nodes (ignored elsewhere).
+    use : (S,) bool ndarray
+        Segments to assemble (no self-loops, solved components only).
+
+    Returns
+    -------
+    A : (n, n) scipy.sparse.csr_matrix
+    b : (n,) float ndarray
+    """
+    n = int(unknown_index.max()) + 1 if len(unknown_index) else 0
+    uu, vv, gg = u[use], v[use], g[use]
+    a, c = unknown_index[uu], unknown_index[vv]
+    ia, ic = a >= 0, c >= 0
+    diag = _wsum(a[ia], gg[ia], n) + _wsum(c[ic], gg[ic], n)
+    both = ia & ic
+    rows = np.concatenate([np.arange(n), a[both], c[both]])
+    cols = np.concatenate([np.arange(n), c[both], a[both]])
+    vals = np.concatenate([diag, -gg[both], -gg[both]])
+    A = sparse.coo_matrix((vals, (rows, cols)), shape=(n, n)).tocsr()
+    only_a = ia & ~ic
+    only_c = ic & ~ia
+    b = _wsum(a[only_a], gg[only_a] * phi_fixed[vv[only_a]], n)
+    b += _wsum(c[only_c], gg[only_c] * phi_fixed[uu[only_c]], n)
+    return A, b
+
+
+def _dot(a: np.ndarray, b: np.ndarray) -> float:
+    # einsum runs its own single-threaded loop: no BLAS thread pool, so the
+    # run time does not collapse when the machine is busy, and sums are
+    # reproducible.
+    return float(np.einsum("i,i->", a, b))
+
+
+def _cg(A, b: np.ndarray, x: np.ndarray, *, rtol: float, max_iter: int) -> tuple[np.ndarray, int, bool]:
+    """Plain conjugate gradients (Hestenes & Stiefel 1952) for SPD ``A``.
+
+    Parameters
+    ----------
+    A : (n, n) sparse matrix
+        Symmetric positive definite.
+    b : (n,) float ndarray
+    x : (n,) float ndarray
+        Initial guess; updated in place.
+    rtol : float, keyword-only
+        Stop when ``||b - A x|| <= rtol ||b||`` (recursive residual).
+    max_iter : int, keyword-only
+
+    Returns
+    -------
+    x : (n,) float ndarray
+    iterations : int
+    converged : bool
+    """
+    r = b - A @ x
+    tol = rtol * math.sqrt(_dot(b, b))
+    rr = _dot(r, r)
+    if math.sqrt(rr) <= tol:
+        return x, 0, True
+    p = r.copy()
+    tmp = np.empty_like(r)
+    for it in range(1, max_iter + 1):
+        q = A @ p
+        pq = _dot(p, q)
+        if not pq > 0:  # lost positive definiteness (or NaN)
+            return x, it, False
+        alpha = rr / pq
+        np.multiply(p, alpha, out=tmp)
+        x += tmp
+        np.multiply(q, alpha, out=tmp)
+        r -= tmp
+        rr_new = _dot(r, r)
+        if math.sqrt(rr_new) <= tol:
+            return x, it, True
+        p *= rr_new / rr
+        p += r
+        rr = rr_new
+    return x, max_iter, False
+
+
+def _solve_linear(A, b, *, method: str, rtol: float, max_iter: int) -> tuple[np.ndarray, int | None]:
+    """Solve the SPD system; raise SolverError on failure."""
+    n = A.shape[0]
+    if n == 0:
+        return np.zeros(0), None
+    iterations: int | None = None
+    if method == "direct":
+        try:
+            with _warnings.catch_warnings():
+                _warnings.simplefilter("error")
+                lu = spla.splu(
+                    A.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                    options={"SymmetricMode": True},
+                )
+                x = lu.solve(b)
+        except (RuntimeError, Warning) as exc:
+            raise SolverError(f"flow: direct solve failed ({exc}); the network matrix is singular") from None
+    else:
+        diag = A.diagonal()
+        if not (np.all(np.isfinite(diag)) and np.all(diag > 0)):
+            raise SolverError("flow: CG needs a positive diagonal; the network matrix is not positive definite")
+        # Jacobi preconditioning as a symmetric diagonal scaling, D^-1/2 A D^-1/2
+        # (the same iterates as Jacobi-preconditioned CG); the stopping test is
+        # on the scaled residual.
+        scale = 1.0 / np.sqrt(diag)
+        dsc = sparse.diags(scale)
+        As = (dsc @ A @ dsc).tocsr()
+        bs = scale * b
+        y, iterations, converged = _cg(As, bs, np.sqrt(diag) * 0.5, rtol=rtol, max_iter=max_iter)
+        if not converged:
+            raise SolverError(
+                f"flow: conjugate gradients did not converge to rtol {rtol:g} within {max_iter} "
+                f"iterations; raise flow.cg_max_iter or use flow.solver: direct"
+            )
+        x = scale * y
+    if not np.all(np.isfinite(x)):
+        raise SolverError("flow: the solve produced non-finite pressures")
+    return x, iterations
+
+
+# ---------------------------------------------------------------------------
+# main entry
+# ---------------------------------------------------------------------------
+
+def solve_flow(
+    segments: pd.DataFrame,
+    nodes: pd.DataFrame,
+    *,
+    inlets: Iterable[int],
+    outlets: Iterable[int] | None = None,
+    config: Mapping[str, Any] | None = None,
+) -> FlowResult:
+    """Steady Hagen–Poiseuille flow in a vessel network.
+
+    Parameters
+    ----------
+    segments : DataFrame, shape (S, ...)
+        ``segment_id``, ``node_from``, ``node_to``, ``length_um`` (> 0),
+        ``radius_um`` (> 0), optionally ``radius_hydraulic_um`` (used for the
+        resistance; NaN or missing falls back to ``radius_um``) and
+        ``level``/``strahler``/``strahler_diameter`` (copied to the result).
+    nodes : DataFrame, shape (N, ...)
+        ``node_id`` and ``kind`` ('junction', 'blind', 'border', 'loop').
+    inlets : iterable of int, keyword-only
+        Inlet node ids (at least one).
+    outlets : iterable of int or None, keyword-only
+        Outlet node ids; None takes the border ends (and the blind ends with
+        ``blind_ends: outlet``) that are not inlets.
+    config : mapping or None, keyword-only
+        Full config or its ``flow`` section; missing keys take defaults. The
+        ``enabled`` key is for the caller; this function always solves.
+
+    Returns
+    -------
+    FlowResult
+
+    Raises
+    ------
+    InputError
+        Missing columns, invalid lengths or radii, unknown or no inlets, a
+        node both inlet and outlet, or a prescribed inflow with no inlet
+        connected to an outlet.
+    ConfigError
+        Invalid ``flow`` options.
+    SolverError
+        The linear solve failed or did not converge.
+    """
+    cfg = _flow_config(config)
+    for name, df, cols in (
+        ("segments", segments, ("segment_id", "node_from", "node_to", "length_um", "radius_um")),
+        ("nodes", nodes, ("node_id", "kind")),
+    ):
+        if not isinstance(df, pd.DataFrame):
+            raise InputError(f"{name}: expected a pandas DataFrame, got {type(df).__name__}")
+        missing = [c for c in cols if c not in df.columns]
+        if missing:
+            raise InputError(f"{name}: missing column(s) {', '.join(missing)}")
+    warn: list[str] = []
+
+    ids = pd.Index(nodes["node_id"].to_numpy(dtype=np.int64))
+    if not ids.is_unique:
+        raise InputError("nodes: node_id values must be unique")
+    seg_id = segments["segment_id"].to_numpy(dtype=np.int64)
+    if not pd.Index(seg_id).is_unique:
+        raise InputError("segments: segment_id values must be unique")
+    u = ids.get_indexer(segments["node_from"].to_numpy(dtype=np.int64))
+    v = ids.get_indexer(segments["node_to"].to_numpy(dtype=np.int64))
+    if (u < 0).any() or (v < 0).any():
+        k = int(np.flatnonzero((u < 0) | (v < 0))[0])
+        raise InputError(f"segments: segment_id {int(seg_id[k])} refers to a node id missing from nodes")
+    length_um = _positive(segments, "length_um")
+    radius_um = _positive(segments, "radius_um")
+    if "radius_hydraulic_um" in segments.columns:
+        rh = segments["radius_hydraulic_um"].to_numpy(dtype=float)
+        rh = np.where(np.isnan(rh), radius_um, rh)
+        if not (np.isfinite(rh) & (rh > 0)).all():
+            k = int(np.flatnonzero(~(np.isfinite(rh) & (rh > 0)))[0])
+            raise InputError(
+                f"segments: radius_hydraulic_um must be finite and > 0 (segment_id {int(seg_id[k])}, "
+                f"value {rh[k]!r})"
+            )
+    else:
+        rh = radius_um
+    n_seg, n_nodes = len(seg_id), len(ids)
+    kind = nodes["kind"].astype(str).to_numpy()
+    ends = np.bincount(u, minlength=n_nodes) + np.bincount(v, minlength=n_nodes)
+
+    # Boundary nodes.
+    inlet_rows = _node_rows(ids, inlets, "inlets")
+    if inlet_rows.size == 0:
+        raise InputError("inlets: at least one inlet node is needed")
+    is_inlet = np.zeros(n_nodes, dtype=bool)
+    is_inlet[inlet_rows] = True
+    if outlets is None:
+        out_mask = kind == "border"
+        if cfg["blind_ends"] == "outlet":
+            out_mask |= kind == "blind"
+        out_mask &= ~is_inlet
+    else:
+        out_rows = _node_rows(ids, outlets, "outlets")
+        out_mask = np.zeros(n_nodes, dtype=bool)
+        out_mask[out_rows] = True
+        both = out_mask & is_inlet
+        if both.any():
+            raise InputError(f"outlets: node id {int(ids[np.flatnonzero(both)[0]])} is also an inlet")
+    fixed = is_inlet | out_mask
+    role = np.full(n_nodes, "internal", dtype=object)
+    role[((kind == "blind") | (kind == "border") | (ends <= 1)) & ~fixed] = "sealed"
+    role[out_mask] = "outlet"
+    role[is_inlet] = "inlet"
+
+    # Resistances.
+    mu_mpa_s, vnotes = segment_viscosity_mpa_s(
+        2.0 * rh,
+        model=cfg["viscosity_model"],
+        viscosity_mpa_s=cfg["viscosity_mpa_s"],
+        haematocrit=cfg["haematocrit"],
+        plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
+        min_valid_diameter_um=cfg["min_valid_diameter_um"],
+    )
+    warn += vnotes
+    mu = mu_mpa_s * MPA_S
+    r_h_m = rh * UM
+    length_m = length_um * UM
+    conductance = math.pi * r_h_m**4 / (8.0 * mu * length_m)  # m³/(Pa·s)
+    resistance = 1.0 / conductance  # Pa·s/m³
+    loop = u == v
+
+    # Components and which of them can be solved.
+    if n_nodes:
+        link = ~loop
+        adj = sparse.coo_matrix((np.ones(int(link.sum())), (u[link], v[link])), shape=(n_nodes, n_nodes))
+        n_comp, comp = csgraph.connected_components(adj, directed=False)
+    else:
+        n_comp, comp = 0, np.zeros(0, dtype=np.int64)
+    comp_in = np.bincount(comp[is_inlet], minlength=n_comp) > 0
+    comp_out = np.bincount(comp[out_mask], minlength=n_comp) > 0
+    comp_fixed = comp_in | comp_out
+    solved_node = comp_fixed[comp] if n_nodes else np.zeros(0, dtype=bool)
+    flowing_node = (comp_in & comp_out)[comp] if n_nodes else np.zeros(0, dtype=bool)
+    comp_has_seg = np.bincount(comp[u], minlength=n_comp) > 0
+    n_unsolved = int((comp_has_seg & ~comp_fixed).sum())
+    if n_unsolved:
+        n_us = int((~solved_node[u]).sum())
+        warn.append(
+            f"flow: {n_unsolved} connected piece(s) ({n_us} segment(s)) have no inlet or outlet; not solved"
+        )
+    no_out = comp_has_seg & comp_in & ~comp_out
+    if no_out.any():
+        warn.append(f"flow: {int(no_out.sum())} piece(s) with an inlet have no outlet; they carry no flow")
+
+    # Segments that can carry flow: in a piece with an inlet and an outlet,
+    # not a self-loop, not in a dead-end part.
+    candidate = ~loop & flowing_node[u]
+    dead = _dead_ends(u, v, candidate, fixed)
+    perfused = candidate & ~dead
+    core_deg = np.bincount(u[perfused], minlength=n_nodes) + np.bincount(v[perfused], minlength=n_nodes)
+    core_node = flowing_node & (fixed | (core_deg > 0))
+
+    # Reduced system over the core, for the potential phi (1 at inlets, 0 at
+    # outlets); dead-end parts and pieces without flow need no solve.
+    unknown = core_node & ~fixed
+    unknown_index = np.full(n_nodes, -1, dtype=np.int64)
+    unknown_index[unknown] = np.arange(int(unknown.sum()))
+    phi_fixed = is_inlet.astype(float)
+    A, b = _assemble(u, v, conductance, unknown_index, phi_fixed, perfused)
+    n_unknown = A.shape[0]
+    method = cfg["solver"]
+    if method == "auto":
+        method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] else "cg"
+    x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
+    if n_unknown:
+        bn = float(np.linalg.norm(b))
+        lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
+    else:
+        lin_res = 0.0
+    if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
+        warn.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
+
+    phi = np.full(n_nodes, np.nan)
+    if n_comp:
+        # Pieces without an inlet-outlet pair have a constant potential.
+        phi[solved_node] = comp_in[comp[solved_node]].astype(float)
+    phi[is_inlet] = 1.0
+    phi[out_mask] = 0.0
+    phi[unknown] = x
+    hang = flowing_node & ~core_node
+    if hang.any():
+        # Each dead-end part hangs from exactly one core node and shares its
+        # potential (no flow, no pressure drop).
+        link = sparse.coo_matrix(
+            (np.ones(int(dead.sum())), (u[dead], v[dead])), shape=(n_nodes, n_nodes)
+        )
+        _, part = csgraph.connected_components(link, directed=False)
+        part_phi = np.full(int(part.max()) + 1, np.nan)
+        part_phi[part[core_node]] = phi[core_node]
+        phi[hang] = part_phi[part[hang]]
+    dphi = np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])
+    q_unit = np.where(perfused, conductance * dphi, 0.0)
+
+    def net_out(q):  # flow leaving each node into its segments
+        return _wsum(u, q, n_nodes) - _wsum(v, q, n_nodes)
+
+    unit_inflow = float(net_out(q_unit)[is_inlet].sum())
+    p_out = cfg["outlet_pressure_pa"]
+    if cfg["inlet_flow_nl_min"] is None:
+        boundary = "pressure"
+        dp = cfg["inlet_pressure_pa"] - p_out
+    else:
+        boundary = "flow"
+        if not unit_inflow > 0:
+            raise InputError(
+                "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
+            )
+        dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
+    pressure = p_out + dp * phi
+    q = dp * q_unit  # m³/s
+    node_net = net_out(q)
+    inflow = float(node_net[is_inlet].sum())
+
+    # Derived quantities (robust radius for the local ones).
+    r_m = radius_um * UM
+    aq = np.abs(q)
+    speed = aq / (math.pi * r_m**2)  # m/s
+    shear = 4.0 * aq / (math.pi * r_m**3)  # 1/s
+    with np.errstate(divide="ignore", invalid="ignore"):
+        transit = np.where(aq > 0, length_m / np.where(aq > 0, speed, 1.0), np.nan)
+    out = pd.DataFrame({"segment_id": seg_id})
+    for col in PASS_THROUGH:
+        if col in segments.columns:
+            out[col] = segments[col].array  # keeps nullable Int64 with <NA>
+    out["flow_nl_min"] = q * NL_MIN_PER_M3_S
+    out["pressure_from_pa"] = pressure[u]
+    out["pressure_to_pa"] = pressure[v]
+    out["velocity_mm_s"] = speed * 1e3
+    out["velocity_peak_mm_s"] = 2.0 * speed * 1e3
+    out["shear_rate_s"] = shear
+    out["wss_pa"] = mu * shear
+    out["reynolds"] = cfg["blood_density_kg_m3"] * speed * 2.0 * r_m / mu
+    out["transit_time_s"] = transit
+    out["resistance_pa_s_um3"] = resistance * PA_S_UM3_PER_PA_S_M3
+    out["viscosity_mpa_s"] = mu_mpa_s
+    out["perfused"] = perfused
+
+    node_out = pd.DataFrame({
+        "node_id": ids.to_numpy(),
+        "pressure_pa": pressure,
+        "role": role.astype(str),
+        "inflow_nl_min": np.where(solved_node, node_net, 0.0) * NL_MIN_PER_M3_S,
+    })
+
+    # Summary.
+    interior = solved_node & ~fixed
+    if inflow > 0:
+        residual = float(np.abs(node_net[interior]).max() / inflow) if interior.any() else 0.0
+        net_r = dp / inflow * PA_S_UM3_PER_PA_S_M3
+    else:
+        residual, net_r = None, None
+    if residual is not None and residual > 1e-6:
+        warn.append(f"flow: largest relative conservation residual {residual:.2e} at a node")
+    total_len = float(length_um.sum())
+    summary = {
+        "total_inflow_nl_min": inflow * NL_MIN_PER_M3_S,
+        "network_resistance_pa_s_um3": net_r,
+        "perfused_length_fraction": float(length_um[perfused].sum() / total_len) if total_len > 0 else 0.0,
+        "max_conservation_residual": residual,
+        "n_inlets": int(is_inlet.sum()),
+        "n_outlets": int(out_mask.sum()),
+        "n_sealed": int((role == "sealed").sum()),
+        "n_segments": int(n_seg),
+        "n_perfused_segments": int(perfused.sum()),
+        "n_unsolved_components": n_unsolved,
+        "n_unknowns": int(n_unknown),
+        "boundary": boundary,
+        "inlet_pressure_pa": float(p_out + dp),
+        "outlet_pressure_pa": float(p_out),
+        "viscosity_model": cfg["viscosity_model"],
+        "solver": method if n_unknown else "none",
+        "solver_iterations": iterations,
+        "solver_residual": lin_res,
+    }
+    return FlowResult(segments=out, nodes=node_out, summary=summary, warnings=warn)
