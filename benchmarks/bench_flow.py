@@ -243,7 +243,8 @@ def main(argv: list[str] | None = None) -> int:
                   f"> {args.timeout:.0f} (stopped) | - | - |")
         elif ref.get("failed"):
             print(f"| reference: full Laplacian + `spsolve` | SuperLU | {n_count:,} | - | "
-                  f"failed after {ref['seconds']:.0f} s ({ref['failed']}) | limit {args.ref_memory_gb * 1024:.0f} | - |")
+                  f"failed after {ref['seconds']:.0f} s ({ref['failed']}) | "
+                  f"limit {args.ref_memory_gb * 1024:.0f} | - |")
         else:
             print(f"| reference: full Laplacian + `spsolve` | SuperLU | {n_count:,} | - | "
                   f"{ref['seconds']:.2f} | {mib(ref)} | - |")
@@ -256,7 +257,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"Largest pressure difference between the routes: {diff:.1e} of the inlet-outlet drop.")
         print(f"Speed-up over the reference: {ref['seconds'] / ours['seconds']:.1f}x.")
     if not ours.get("timeout"):
-        verdict = "met" if ours["seconds"] <= 10.0 or s_count < 900_000 else "NOT met"
+        verdict = "met" if ours["seconds"] <= 10.0 else "NOT met"
         if s_count >= 900_000:
             print(f"Target (<= 10 s for 1M segments): {verdict}.")
     return 0

@@ -28,7 +28,8 @@ class CleanedMask:
     Attributes
     ----------
     mask : (Z', Y', X') bool ndarray
-        Cleaned mask cropped to its bounding box.
+        Cleaned mask cropped to its bounding box plus one voxel of
+        background on every face that is not the volume's edge.
     offset : tuple of 3 int
         Index of ``mask[0, 0, 0]`` in the original grid.
     original_shape : tuple of 3 int
@@ -80,7 +81,7 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     >>> m = np.zeros((5, 5, 5), bool); m[1:4, 1:4, 1:4] = True; m[2, 2, 2] = False
     >>> c = clean_mask(m, spacing=(1, 1, 1), min_object_volume_um3=0)
     >>> c.mask.shape, int(c.mask.sum()), c.offset
-    ((3, 3, 3), 27, (1, 1, 1))
+    ((5, 5, 5), 27, (0, 0, 0))
     """
     spacing = tuple(float(s) for s in spacing)
     # For planar masks "volume" is area and the threshold the area threshold.
@@ -108,7 +109,11 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     del labels
     # Tight bounding box of what is kept, from the per-label boxes.
     boxes = np.asarray(stats["bounding_boxes"], dtype=np.int64)[keep]  # rows: zmin, zmax, ymin, ymax, xmin, xmax
-    box = [slice(int(boxes[:, 2 * a].min()), int(boxes[:, 2 * a + 1].max()) + 1) for a in range(3)]
+    # One voxel of background is kept around it (where the volume allows), so
+    # that later steps treat the crop's faces correctly: a face with a
+    # background margin is tissue, a face on the volume's edge is a cut.
+    box = [slice(max(int(boxes[:, 2 * a].min()) - 1, 0), min(int(boxes[:, 2 * a + 1].max()) + 2, mask.shape[a]))
+           for a in range(3)]
     cropped = np.ascontiguousarray(mask[tuple(box)])
     filled = 0
     if fill_cavities:
@@ -130,8 +135,8 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
 
 
 def _fill_cavities(mask, *, planar):
-    # Background touching the crop box's faces connects to the outside (the
-    # box is tight, so everything beyond it is background), hence is not a cavity.
+    # Background touching the crop box's faces connects to the outside
+    # (everything beyond the box is background), hence is not a cavity.
     if planar:
         labels, n = cc3d.connected_components(~mask[0], connectivity=4, return_N=True)
         faces = [labels[0], labels[-1], labels[:, 0], labels[:, -1]]

@@ -276,24 +276,24 @@ def _test_range(flat, cand, lo, hi, offs, res, visit):
 
 
 @numba.njit(cache=True)
-def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, lists, lens):
+def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, out, meta):
     """Relist the object neighbours of the deleted candidates ``lo:hi`` of sub-iteration ``d_now``.
 
     A voxel needs one list entry only: for the first direction, in the order
     of the coming sub-iterations, in which its neighbour is background; its
     test there leaves it deleted or clean. A deletion can make a neighbour
     dirty (a clean one) or give it an earlier such direction (a face
-    neighbour), so these get listed there unless they are already. Returns
-    the index of the first voxel not done because a list could overflow
-    (``hi`` when done).
+    neighbour), so these get listed there unless they are already. Entries
+    go to ``out`` as ``8 * voxel + direction``; ``meta`` holds their number
+    and the count per direction. Returns the index of the first voxel not
+    done because ``out`` could overflow (``hi`` when done).
     """
-    cap = lists.shape[1]
+    room = out.shape[0] - 26
     for i in range(lo, hi):
         if not res[i]:
             continue
-        for e in range(6):
-            if lens[e] > cap - 26:
-                return i
+        if meta[0] > room:
+            return i
         p = cand[i]
         v = np.int64(visit[i])
         while v:
@@ -312,8 +312,9 @@ def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, lists, lens):
             eb = _INQ0 << e
             nb = b & ~_CLEAN
             if not b & eb:
-                lists[e, lens[e]] = m
-                lens[e] += 1
+                out[meta[0]] = 8 * np.int64(m) + e
+                meta[0] += 1
+                meta[1 + e] += 1
                 nb |= eb
             if nb != b:
                 flat[m] = nb
@@ -331,17 +332,18 @@ def _clear_range(flat, cand, lo, hi, res):
 
 
 @numba.njit(cache=True)
-def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, lists, lens, lo_z, hi_z, state):
+def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, out, meta, lo_z, hi_z, state):
     """Run subfield pass s on planes ``lo_z[s]:hi_z[s]`` for s = 0..7, in wavefront order.
 
     Pass s on plane z runs after pass s - 1 on planes z - 1 to z + 1 and
     before pass s + 1 on them, which is all the result depends on: this
     equals running the passes one after another, while the few planes being
     worked on stay in cache. ``kstart[s * nz + z]`` is the first candidate of
-    subfield s in plane z. Relisted voxels go to ``lists``/``lens``.
+    subfield s in plane z. Relisted voxels go to ``out``/``meta`` (see
+    _relist).
 
     ``state`` is (step, s, i, deleted): where to resume and the running
-    count of deletions. Stops early, returning False, when a list is full;
+    count of deletions. Stops early, returning False, when ``out`` is full;
     the caller grows it and calls again.
     """
     base = lo_z[0]
@@ -369,7 +371,7 @@ def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, lists, lens, lo
             else:  # resuming inside this unit's relisting
                 i = i0
                 i0 = -1
-            i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, lists, lens)
+            i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, out, meta)
             if i < hi:
                 state[0] = step
                 state[1] = s
@@ -384,7 +386,7 @@ def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, lists, lens, lo
 
 
 @numba.njit(cache=True, parallel=True)
-def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, bufs, blen, lo_z, hi_z, state):
+def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state):
     """Run one step in ``nchunks`` parallel chunks; all steps share this loop,
     which keeps compile time down.
 
@@ -403,22 +405,38 @@ def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, r
             _select_fill(lists, d, a, e, visit, cand, cnt, c)
         elif step == _TASKS:
             t = lo + c
-            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, bufs[t], blen[t], lo_z[t], hi_z[t], state[t])
+            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]], meta[t],
+                                lo_z[t], hi_z[t], state[t])
         else:
             _clear_range(flat, cand, a, e, res)
 
 
 @numba.njit(cache=True)
 def _grown(lists, lens, need):
-    cap = lists.shape[-1]
-    new = np.empty(lists.shape[:-1] + (max(need, 2 * cap),), lists.dtype)
-    rows = lists.reshape(-1, cap)
-    new_rows = new.reshape(-1, new.shape[-1])
-    counts = lens.reshape(-1)
-    for r in range(rows.shape[0]):
-        for i in range(counts[r]):
-            new_rows[r, i] = rows[r, i]
+    cap = lists.shape[1]
+    new = np.empty((lists.shape[0], max(need, 2 * cap)), lists.dtype)
+    for r in range(lists.shape[0]):
+        for i in range(lens[r]):
+            new[r, i] = lists[r, i]
     return new
+
+
+@numba.njit(cache=True)
+def _grown_region(abuf, aoff, meta, t):
+    # Double task t's region of the relisting buffer, keeping every task's entries.
+    n = aoff.shape[0] - 1
+    size = np.empty(n, np.int64)
+    for u in range(n):
+        size[u] = aoff[u + 1] - aoff[u]
+    size[t] = 2 * size[t] + 64
+    new_off = np.zeros(n + 1, np.int64)
+    for u in range(n):
+        new_off[u + 1] = new_off[u] + size[u]
+    new = np.empty(new_off[n], np.int64)
+    for u in range(n):
+        for k in range(meta[u, 0]):
+            new[new_off[u] + k] = abuf[aoff[u] + k]
+    return new, new_off
 
 
 @numba.njit(cache=True)
@@ -431,11 +449,13 @@ def _regions(nz, n_regions):
     x + s + 1. Together they cover every (pass, plane) once, and phase 2 only
     needs results of phase 1 and of itself. Tasks of one phase touch disjoint
     planes (each reads and writes one plane beyond its own), so they run in
-    parallel.
+    parallel. A last row holds all planes, for a sub-iteration on one thread.
     """
     n_tasks = 2 * n_regions - 1
-    lo_z = np.zeros((n_tasks, 8), np.int64)
-    hi_z = np.zeros((n_tasks, 8), np.int64)
+    lo_z = np.zeros((n_tasks + 1, 8), np.int64)
+    hi_z = np.zeros((n_tasks + 1, 8), np.int64)
+    lo_z[n_tasks] = 1  # one task for all planes, when on one thread
+    hi_z[n_tasks] = nz - 1
     inner = nz - 2
     for r in range(n_regions):
         a = 1 + (inner * r) // n_regions
@@ -453,28 +473,23 @@ def _regions(nz, n_regions):
 def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div):
     """Thin the padded volume ``flat`` in place; returns the number of iterations.
 
-    Steps of at least ``par_min`` items run on ``threads`` threads. The lists
-    start with ``list_min`` plus ``1 / room_div`` of their length free; a
-    task's relisting buffer holds ``list_min`` plus ``8 / room_div`` times
-    its share of the candidates. Either grows when full.
+    Steps of at least ``par_min`` items run on ``threads`` threads. Lists
+    and relisting buffers start with ``list_min`` entries plus ``1 /
+    room_div`` of what they hold at first (lists) or of the task's
+    candidates (buffers) to spare, and grow when full.
     """
     zero = np.int64(0)  # literal arguments would compile one specialisation per value
     nchunks = 4 * threads
     parallel = threads > 1
     n_regions = min(4 * threads, (nz - 2) // _REGION_MIN)
-    if n_regions < 2:
-        n_regions = 2
-        parallel_tasks = False
-    else:
-        parallel_tasks = parallel
-    n_tasks = 2 * n_regions - 1
+    parallel_tasks = parallel and n_regions >= 2
+    n_regions = max(n_regions, 2)
+    n_tasks = 2 * n_regions - 1  # and one more for all planes
     lo_z, hi_z = _regions(nz, n_regions)
-    state = np.zeros((n_tasks, 5), np.int64)
-    bufs = np.empty((n_tasks, 6, 0), idx_probe.dtype)
-    blen = np.zeros((n_tasks, 6), np.int64)
-    one_lo = np.ones(8, np.int64)
-    one_hi = np.full(8, nz - 1, np.int64)
-    one_state = np.zeros(4, np.int64)
+    state = np.zeros((n_tasks + 1, 5), np.int64)
+    meta = np.zeros((n_tasks + 1, 7), np.int64)
+    aoff = np.zeros(n_tasks + 2, np.int64)
+    abuf = np.empty(0, np.int64)
 
     # List the border voxels: count per slab, turn counts into slots, fill.
     cnt = np.zeros((nz, 7), np.int64)
@@ -486,7 +501,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     big = parallel and flat.shape[0] >= par_min
     if big:
         _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
-                     res, cand, visit, cnt, kstart, bufs, blen, lo_z, hi_z, state)
+                     res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
             _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(False))
@@ -507,7 +522,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     lists = np.empty((6, cap), idx_probe.dtype)
     if big:
         _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
-                     res, cand, visit, cnt, kstart, bufs, blen, lo_z, hi_z, state)
+                     res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
             _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(True))
@@ -528,13 +543,14 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                 cand = np.empty(lists.shape[1], idx_probe.dtype)
                 res = np.empty(lists.shape[1], np.uint8)
                 visit = np.empty(lists.shape[1], np.int32)
+
             # Candidates: the listed voxels that are neither deleted nor
             # clean, by subfield and within a subfield by plane.
             big = parallel and n >= par_min
             kslot[:] = 0
             if big:
                 _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
-                             res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
+                             res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _select_count(flat, lists, d, zero, n, nz, ny, nx, visit, kslot, zero)
             acc = 0
@@ -548,63 +564,70 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
             n_cand = acc
             if big:
                 _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
-                             res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
+                             res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _select_fill(lists, d, zero, n, visit, cand, kslot, zero)
             lens[d] = 0
 
-            if big and parallel_tasks:
-                # Phase 1 (regions), then phase 2 (boundaries), each task
-                # relisting into its own buffer; a task whose buffer fills up
-                # stops and is finished here after growing the buffers.
-                need = list_min + 8 * (n_cand // n_regions) // room_div
-                if bufs.shape[2] < need:
-                    bufs = np.empty((n_tasks, 6, need), idx_probe.dtype)
-                blen[:] = 0
-                for t in range(n_tasks):
-                    state[t, 0] = 0
-                    state[t, 1] = 0
-                    state[t, 2] = -1
-                    state[t, 3] = 0
-                for phase in range(2):
-                    first = 0 if phase == 0 else n_regions
-                    count = n_regions if phase == 0 else n_regions - 1
-                    _in_parallel(np.int64(_TASKS), count, zero, flat, nz, ny, nx, offs, doff, lists, d, first,
-                                 res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
-                    for t in range(first, first + count):
-                        while state[t, 4] == 0:
-                            bufs = _grown(bufs, blen, 0)
-                            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, bufs[t], blen[t],
-                                                lo_z[t], hi_z[t], state[t])
-                # Append the buffers to the lists.
-                need = 0
-                for e in range(6):
-                    total = lens[e]
-                    for t in range(n_tasks):
-                        total += blen[t, e]
-                    need = max(need, total)
-                if need > lists.shape[1]:
-                    lists = _grown(lists, lens, need)
-                for e in range(6):
-                    for t in range(n_tasks):
-                        k = lens[e]
-                        for i in range(blen[t, e]):
-                            lists[e, k + i] = bufs[t, e, i]
-                        lens[e] = k + blen[t, e]
-                for t in range(n_tasks):
-                    deleted += state[t, 3]
-            else:
-                one_state[0] = 0
-                one_state[1] = 0
-                one_state[2] = -1
-                one_state[3] = 0
-                while not _task(flat, cand, kstart, nz, offs, doff, d, res, visit, lists, lens, one_lo, one_hi, one_state):
-                    lists = _grown(lists, lens, 0)
-                deleted += one_state[3]
+            # Test and relist: on several threads phase 1 (regions), then
+            # phase 2 (boundaries); else one task for all planes. Each task
+            # relists into its own region of abuf, sized by its candidates; a
+            # task whose region fills up stops, and is finished here after
+            # the region has grown.
+            tasks_par = big and parallel_tasks
+            first_task = 0 if tasks_par else n_tasks
+            last_task = n_tasks if tasks_par else n_tasks + 1
+            for t in range(n_tasks + 1):
+                size = 0
+                if first_task <= t < last_task:
+                    for s in range(8):
+                        size += kstart[s * nz + hi_z[t, s]] - kstart[s * nz + lo_z[t, s]]
+                    size += size // room_div + list_min
+                aoff[t + 1] = aoff[t] + size
+                meta[t, :] = 0
+                state[t, 0] = 0
+                state[t, 1] = 0
+                state[t, 2] = -1
+                state[t, 3] = 0
+            if abuf.shape[0] < aoff[n_tasks + 1]:
+                abuf = np.empty(aoff[n_tasks + 1], np.int64)
+            for phase in range(2 if tasks_par else 1):
+                if tasks_par:
+                    a = 0 if phase == 0 else n_regions
+                    b = n_regions if phase == 0 else n_tasks
+                    _in_parallel(np.int64(_TASKS), b - a, zero, flat, nz, ny, nx, offs, doff, lists, d, a,
+                                 res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+                else:
+                    a = n_tasks
+                    b = n_tasks + 1
+                    state[a, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[a] : aoff[b]],
+                                        meta[a], lo_z[a], hi_z[a], state[a])
+                for t in range(a, b):
+                    while state[t, 4] == 0:
+                        abuf, aoff = _grown_region(abuf, aoff, meta, t)
+                        state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]],
+                                            meta[t], lo_z[t], hi_z[t], state[t])
+            # Move the relisted entries into the lists.
+            need = 0
+            for e in range(6):
+                total = lens[e]
+                for t in range(n_tasks + 1):
+                    total += meta[t, 1 + e]
+                need = max(need, total)
+            if need > lists.shape[1]:
+                lists = _grown(lists, lens, need)
+            for t in range(n_tasks + 1):
+                deleted += state[t, 3]
+                for k in range(aoff[t], aoff[t] + meta[t, 0]):
+                    v = abuf[k]
+                    e = v & 7
+                    lists[e, lens[e]] = v >> 3
+                    lens[e] += 1
+
             # The sub-iteration is over: deleted voxels become background.
             if big:
                 _in_parallel(np.int64(_CLEAR), nchunks, n_cand, flat, nz, ny, nx, offs, doff, lists, d, zero,
-                             res, cand, visit, kslot, kstart, bufs, blen, lo_z, hi_z, state)
+                             res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _clear_range(flat, cand, zero, n_cand, res)
         if deleted == 0:

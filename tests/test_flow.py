@@ -537,3 +537,10 @@ def test_cg_kernel_agrees_with_scipy_cg():
     assert converged and info == 0 and iterations > 0
     np.testing.assert_allclose(x, ref, rtol=0, atol=1e-8 * np.abs(ref).max())
     assert np.linalg.norm(b - a @ x) <= 1e-11 * np.linalg.norm(b)
+
+
+def test_auto_solver_keeps_direct_for_trees():
+    # Sparse LU of a tree has no fill: auto stays direct above the size threshold.
+    segs, nodes = random_tree(6, 12)
+    res = solve_flow(segs, nodes, inlets=[0], config=cfg(solver="auto", cg_threshold_nodes=10))
+    assert res.summary["solver"] == "direct"
