@@ -194,12 +194,29 @@ def _border_slab(flat, z, ny, nx, doff, cnt, lists, fill):
 
 
 @numba.njit(cache=True)
+def _divmod(p, div, inv):
+    # p // div and p % div for 0 <= p < 2**52 by a float multiply, which is
+    # much faster than an integer division; the estimate is off by at most one.
+    q = np.int64(p * inv)
+    r = p - q * div
+    if r < 0:
+        q -= 1
+        r += div
+    elif r >= div:
+        q += 1
+        r -= div
+    return q, r
+
+
+@numba.njit(cache=True)
 def _select_count(flat, lists, d, lo, hi, nz, ny, nx, key, cnt, c):
     # Take entries lo:hi off list d. The candidates (neither deleted nor
     # clean) get a key, subfield-major then plane, counted per chunk c;
     # the others get -1.
     bit = _INQ0 << d
     nyx = ny * nx
+    inv_nyx = 1.0 / nyx
+    inv_nx = 1.0 / nx
     for i in range(lo, hi):
         p = lists[d, i]
         b = flat[p]
@@ -210,10 +227,9 @@ def _select_count(flat, lists, d, lo, hi, nz, ny, nx, key, cnt, c):
         if b & _CLEAN:
             key[i] = -1
             continue
-        z = p // nyx
-        r = p - z * nyx
-        y = r // nx
-        k = ((z & 1) * 4 + (y & 1) * 2 + ((r - y * nx) & 1)) * nz + z
+        z, r = _divmod(np.int64(p), nyx, inv_nyx)
+        y, x = _divmod(r, nx, inv_nx)
+        k = ((z & 1) * 4 + (y & 1) * 2 + (x & 1)) * nz + z
         key[i] = k
         cnt[c, k] += 1
 

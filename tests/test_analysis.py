@@ -158,3 +158,22 @@ def test_bad_spacing(spacing):
     m[2:5, 2:5, :] = True
     with pytest.raises(InputError, match="spacing"):
         pipeline.analyze(m, spacing=spacing)
+
+
+def test_flow_on_a_measured_tree_conserves_mass(analyse):
+    # Kirchhoff's current law: at every internal node the signed segment flows sum to zero.
+    _, _, res = analyse("tree-flow", _tree, config={"flow": {"blind_ends": "outlet"}})
+    segs, nodes = res.segments, res.nodes
+    assert segs["perfused"].all()
+    net = np.zeros(len(nodes))
+    np.add.at(net, segs["node_from"].to_numpy(), -segs["flow_nl_min"].to_numpy())
+    np.add.at(net, segs["node_to"].to_numpy(), segs["flow_nl_min"].to_numpy())
+    internal = (nodes["role"] == "internal").to_numpy()
+    inflow = res.summary["total_inflow_nl_min"]
+    assert np.abs(net[internal]).max() <= 1e-9 * inflow
+    # All outlets share one pressure and the root is the only inlet: the
+    # outflows add up to the inflow.
+    assert net[(nodes["role"] == "outlet").to_numpy()].sum() == pytest.approx(inflow, rel=1e-9)
+    # A bifurcation table row per junction, each with a parent chosen by flow.
+    assert len(res.bifurcations) == (nodes["kind"] == "junction").sum()
+    assert (res.bifurcations["parent_by"] == "flow").all()

@@ -136,3 +136,30 @@ def test_synth_writes_volume_and_truth(tmp_path):
     assert main(["synth", "tube", "-o", str(out), "--spacing", "2", "1", "1"]) == 0
     assert out.exists() and (tmp_path / "t.truth.json").exists()
     assert main(["synth", "tube", "-o", str(out)]) == 2  # exists, no --overwrite
+
+
+def test_flow_options(tube_tif, tmp_path):
+    base = tmp_path / "flow"
+    assert main(["analyze", str(tube_tif), "-o", str(base), "--quiet", "--blind-ends", "outlet"]) == 0
+    segs = pd.read_csv(base / "segments.csv")
+    nodes = pd.read_csv(base / "nodes.csv")
+    assert segs["perfused"].all() and (segs["wss_pa"] > 0).all()
+    assert set(nodes["role"]) == {"inlet", "outlet", "internal"}
+    summary = json.loads((base / "summary.json").read_text())
+    assert summary["total_inflow_nl_min"] > 0 and summary["bifurcations"] == 1
+    # Sealed blind ends (the default): the Y's only border end is the inlet, so nothing flows.
+    sealed = tmp_path / "sealed"
+    assert main(["analyze", str(tube_tif), "-o", str(sealed), "--quiet"]) == 0
+    assert not pd.read_csv(sealed / "segments.csv")["perfused"].any()
+    off = tmp_path / "noflow"
+    assert main(["analyze", str(tube_tif), "-o", str(off), "--quiet", "--no-flow"]) == 0
+    assert "flow_nl_min" not in pd.read_csv(off / "segments.csv").columns
+    assert json.loads((off / "run.json").read_text())["config"]["flow"]["enabled"] is False
+    # An explicit root by node id moves the inlet.
+    end = int(nodes.loc[nodes["kind"] == "blind", "node_id"].iloc[0])
+    moved = tmp_path / "moved"
+    assert main(["analyze", str(tube_tif), "-o", str(moved), "--quiet", "--blind-ends", "outlet",
+                 "--root", f"node:{end}"]) == 0
+    roles = pd.read_csv(moved / "nodes.csv").set_index("node_id")["role"]
+    assert roles[end] == "inlet"
+    assert main(["analyze", str(tube_tif), "-o", str(tmp_path / "bad"), "--quiet", "--root", "node:999"]) == 2
