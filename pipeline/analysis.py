@@ -186,7 +186,9 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     warnings = []
     if len(segs) == 0:
         warnings.append("no vessel segment survived pruning; the tables are empty")
-    td = measures.tissue_distance(cleaned.mask, cleaned.offset, original_shape, sp, planar=planar)
+    td = cl.tissue_distance_um
+    if td is None:
+        td = measures.tissue_distance(cleaned.mask, cleaned.offset, original_shape, sp, planar=planar)
     summary = measures.summarize(segs, nodes, cleaned=cleaned, spacing=sp, planar=planar,
                                  original_shape=original_shape, tissue_dist=td)
     tick("summary")

@@ -100,9 +100,9 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+import numba
 import numpy as np
 import pandas as pd
-from scipy.optimize import brentq
 
 from .errors import ConfigError, InputError
 
@@ -160,24 +160,74 @@ _FLOW_RTOL = 1e-9
 # Murray's law
 # ---------------------------------------------------------------------------
 
-def _exponent_one(r0: float, daughters: np.ndarray) -> float:
-    """x with r0^x = sum(daughters^x), or NaN when undefined."""
-    if not (math.isfinite(r0) and r0 > 0) or daughters.size < 2:
-        return math.nan
-    if not np.all(np.isfinite(daughters)) or np.any(daughters <= 0):
-        return math.nan
-    if np.any(daughters >= r0):
-        return math.nan  # sum (r_i / r0)^x > 1 for every x > 0: no root
-    logs = np.log(daughters / r0)  # all < 0
+# The exponent is found for all junctions at once by Newton's method on
+# g(x) = ln(sum_i (r_i / r0)^x), which is convex and decreasing (a log-sum-exp
+# of linear functions with negative slopes) and root-bracketed by
+# [ln n / ln(r0 / min r_i), ln n / ln(r0 / max r_i)]. Started at the lower
+# end, every Newton step stays below the root (the tangent of a convex
+# function lies under it), so the iteration increases monotonically to the
+# root without a safeguard; in log form g is nearly linear and it converges
+# in a few steps even for exponents in the hundreds (daughters almost as wide
+# as the parent). The cap only guards against a stall.
+_NEWTON_MAX_ITER = 100
+_NEWTON_RTOL = 4 * np.finfo(float).eps
 
-    def f(x: float) -> float:
-        return float(np.exp(x * logs).sum()) - 1.0
 
-    # f(0) = n - 1 > 0 and f decreases; at hi, sum <= n * max_ratio^hi = 1.
-    hi = math.log(daughters.size) / -float(logs.max())
-    if f(hi) >= 0.0:  # exact root at hi (all daughters equal), up to rounding
-        return hi
-    return float(brentq(f, 0.0, hi, xtol=1e-14, rtol=1e-13, maxiter=200))
+def _exponents(r0: np.ndarray, daughters: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """Exponents x with ``r0[j]^x = sum(daughters[start[j]:start[j + 1]]^x)``.
+
+    Parameters
+    ----------
+    r0 : ndarray, shape (J,)
+        Parent radius of each junction.
+    daughters : ndarray, shape (D,)
+        Daughter radii, grouped by junction.
+    start : ndarray of int, shape (J,)
+        Index in ``daughters`` of each junction's first daughter, increasing;
+        every group is non-empty.
+
+    Returns
+    -------
+    ndarray, shape (J,)
+        NaN where a junction has fewer than two daughters, a radius is not
+        positive and finite, or a daughter is not smaller than the parent
+        (then ``sum (r_i / r0)^x > 1`` for every x > 0: no root).
+    """
+    r0 = np.asarray(r0, dtype=float)
+    d = np.asarray(daughters, dtype=float)
+    out = np.full(len(r0), np.nan)
+    if len(r0) == 0:
+        return out
+    count = np.diff(np.r_[start, len(d)])
+    group = np.repeat(np.arange(len(r0)), count)
+    fine = np.isfinite(d) & (d > 0) & (d < r0[group])  # False where r0 is NaN
+    ok = np.isfinite(r0) & (r0 > 0) & (count >= 2) & np.logical_and.reduceat(fine, start)
+    if not ok.any():
+        return out
+    sel = ok[group]
+    n = count[ok]
+    grp = np.repeat(np.arange(len(n)), n)
+    st = np.r_[0, np.cumsum(n)[:-1]]
+    logs = np.log(d[sel] / r0[group[sel]])  # all < 0
+    ln_n = np.log(n.astype(float))
+    hi = ln_n / -np.maximum.reduceat(logs, st)  # sum <= n * max_ratio^hi = 1
+    lo = ln_n / -np.minimum.reduceat(logs, st)  # sum >= n * min_ratio^lo = 1
+    # Equal daughters have their root exactly at hi (= lo), up to rounding.
+    at_hi = np.add.reduceat(np.exp(hi[grp] * logs), st) - 1.0 >= 0.0
+    x = np.where(at_hi, hi, lo)
+    active = ~at_hi
+    for _ in range(_NEWTON_MAX_ITER):
+        if not active.any():
+            break
+        w = np.exp(x[grp] * logs)
+        s = np.add.reduceat(w, st)
+        slope = np.add.reduceat(logs * w, st) / s  # g'(x) <= max(logs) < 0
+        x_new = np.minimum(x - np.log(s) / slope, hi)
+        moved = x_new - x > _NEWTON_RTOL * x
+        x = np.where(active, x_new, x)
+        active &= moved
+    out[ok] = x
+    return out
 
 
 def murray_exponent(r0, r1, r2):
@@ -191,12 +241,13 @@ def murray_exponent(r0, r1, r2):
     Returns
     -------
     float or ndarray
-        The exponent, found with a bracketed root search
-        (:func:`scipy.optimize.brentq` on ``[0, ln 2 / ln(r0 / max(r1, r2))]``,
-        where ``(r1/r0)^x + (r2/r0)^x - 1`` changes sign). NaN where a daughter
-        is not smaller than the parent (no positive root), or a radius is not
-        positive and finite. A float for scalar input, else an array of the
-        broadcast shape.
+        The exponent, found for all elements at once by Newton's method on
+        ``ln((r1/r0)^x + (r2/r0)^x)``, which is convex and decreasing, from
+        the lower end of the bracket ``[ln 2 / ln(r0 / min(r1, r2)),
+        ln 2 / ln(r0 / max(r1, r2))]`` (monotone convergence to the root, to
+        rounding). NaN where a daughter is not smaller than the parent (no
+        positive root), or a radius is not positive and finite. A float for
+        scalar input, else an array of the broadcast shape.
 
     Examples
     --------
@@ -206,9 +257,8 @@ def murray_exponent(r0, r1, r2):
     True
     """
     a, b, c = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (r0, r1, r2)))
-    out = np.empty(a.shape)
-    for idx in np.ndindex(a.shape):
-        out[idx] = _exponent_one(float(a[idx]), np.array([b[idx], c[idx]]))
+    pairs = np.column_stack([b.ravel(), c.ravel()]).ravel()  # (r1, r2) of each element in turn
+    out = _exponents(a.ravel(), pairs, np.arange(0, pairs.size, 2)).reshape(a.shape)
     return float(out) if out.ndim == 0 else out
 
 
@@ -219,7 +269,10 @@ def murray_exponent_multi(r0: float, daughters: Sequence[float]) -> float:
     parent, a radius is not positive and finite, or there are fewer than two
     daughters.
     """
-    return _exponent_one(float(r0), np.asarray(daughters, dtype=float).ravel())
+    d = np.asarray(daughters, dtype=float).ravel()
+    if d.size == 0:
+        return math.nan
+    return float(_exponents(np.array([float(r0)]), d, np.array([0]))[0])
 
 
 def murray_optimal_angles(r0, r1, r2):
@@ -261,71 +314,167 @@ def murray_optimal_angles(r0, r1, r2):
 # geometry
 # ---------------------------------------------------------------------------
 
-def _angle_deg(a: np.ndarray, b: np.ndarray) -> float:
-    """Angle between two vectors, degrees (atan2 form: accurate near 0 and 180)."""
-    if not (np.all(np.isfinite(a)) and np.all(np.isfinite(b))):
-        return math.nan
-    cross = float(np.linalg.norm(np.cross(a, b)))
-    dot = float(np.dot(a, b))
-    if cross == 0.0 and dot == 0.0:
-        return math.nan
-    return math.degrees(math.atan2(cross, dot))
+def _angles_deg(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Angles between paired rows of two (M, 3) arrays, degrees.
+
+    The atan2 form is accurate near 0 and 180 deg. NaN where a vector is not
+    finite or both the cross and the dot product vanish.
+    """
+    cross = np.sqrt((np.cross(a, b) ** 2).sum(axis=1))
+    dot = (a * b).sum(axis=1)
+    bad = ~(np.isfinite(a).all(axis=1) & np.isfinite(b).all(axis=1)) | ((cross == 0.0) & (dot == 0.0))
+    out = np.degrees(np.arctan2(cross, dot))
+    out[bad] = np.nan
+    return out
 
 
-def _out_of_plane_deg(t0: np.ndarray, t1: np.ndarray, t2: np.ndarray) -> float:
-    """Largest angle between one unit direction and the plane of the other two."""
+def _out_of_plane_deg(t0: np.ndarray, t1: np.ndarray, t2: np.ndarray) -> np.ndarray:
+    """Largest angle between one unit direction and the plane of the other two.
+
+    Row-wise over (M, 3) arrays; a pair of parallel directions spans no plane
+    and is left out; NaN where none is left or a direction is not finite.
+    """
     vecs = (t0, t1, t2)
-    if not all(np.all(np.isfinite(v)) for v in vecs):
-        return math.nan
-    vol = abs(float(np.dot(t0, np.cross(t1, t2))))
-    best = math.nan
+    vol = np.abs((t0 * np.cross(t1, t2)).sum(axis=1))
+    best = np.full(len(t0), np.nan)
     for k in range(3):
         p, q = (vecs[j] for j in range(3) if j != k)
-        s = float(np.linalg.norm(np.cross(p, q)))
-        if s <= 1e-12:
-            continue  # the other two are parallel: they span no plane
-        ang = math.degrees(math.asin(min(1.0, vol / s)))
-        if math.isnan(best) or ang > best:
-            best = ang
+        s = np.sqrt((np.cross(p, q) ** 2).sum(axis=1))
+        spans = s > 1e-12  # the other two are not parallel
+        ang = np.full(len(t0), np.nan)
+        ang[spans] = np.degrees(np.arcsin(np.minimum(1.0, vol[spans] / s[spans])))
+        best = np.where(spans & (np.isnan(best) | (ang > best)), ang, best)
+    best[~np.all([np.isfinite(v).all(axis=1) for v in vecs], axis=0)] = np.nan
     return best
 
 
-def _direction_from_node(points: np.ndarray, scale: float, skip: float, fit: float) -> tuple[np.ndarray, bool]:
-    """Unit direction of a centreline at its first point, pointing along it.
+@numba.njit(cache=True)
+def _tangent_windows(points, offsets, seg, from_start, scale, skip, fit, n_samples):
+    """Evenly resampled fitting window of each requested segment end.
 
-    ``points`` run from the node outward. Returns ``(direction, from_node)``;
-    ``from_node`` is True when the segment was too short to skip the junction
-    zone (the fit then starts at the node) or has no usable points.
+    Parameters
+    ----------
+    points : ndarray, shape (P, 3)
+        All centrelines, concatenated in segment row order.
+    offsets : ndarray of int64, shape (S + 1,)
+        Centreline ``s`` is ``points[offsets[s]:offsets[s + 1]]``.
+    seg : ndarray of int64, shape (M,)
+        Segment row of each end.
+    from_start : ndarray of bool, shape (M,)
+        The node is at the centreline's first point (else its last).
+    scale : ndarray, shape (M,)
+        Junction radius at each end.
+    skip, fit : float
+        Window from ``skip * scale`` to ``min(fit * scale, length / 2)`` of
+        arc length from the node.
+    n_samples : int
+        Samples over the window.
+
+    Returns
+    -------
+    samples : ndarray, shape (M, n_samples, 3)
+        Points at evenly spaced arc lengths over the window (``np.interp`` on
+        the arc length of the centreline with repeated points dropped).
+    ref : ndarray, shape (M, 3)
+        Vector pointing away from the node along the window, to orient the
+        fitted axis: last sample minus first sample (minus the node when
+        fitted from the node).
+    status : ndarray of int8, shape (M,)
+        0 fitted past the junction zone, 1 fitted from the node (too short to
+        skip it), 2 no window (no length); samples and ref are NaN then.
     """
-    nan3 = np.full(3, np.nan)
-    if len(points) < 2:
-        return nan3, True
-    step = np.sqrt((np.diff(points, axis=0) ** 2).sum(axis=1))
-    keep = np.r_[True, step > 0]
-    pts = points[keep]
-    if len(pts) < 2:
-        return nan3, True
-    arc = np.r_[0.0, np.cumsum(step[step > 0])]
-    total = float(arc[-1])
-    hi = min(fit * scale, 0.5 * total)
-    lo = skip * scale
-    from_node = False
-    if not hi > lo:
-        # Too short to leave the junction zone out: fit from the node itself.
-        lo, from_node = 0.0, True
-    if not hi > 0:
-        return nan3, True
-    s = np.linspace(lo, hi, _TANGENT_SAMPLES)
-    sample = np.column_stack([np.interp(s, arc, pts[:, a]) for a in range(3)])
-    centred = sample - sample.mean(axis=0)
-    _, sv, vt = np.linalg.svd(centred, full_matrices=False)
-    if not sv[0] > 0:
-        return nan3, True
-    d = vt[0]
-    ref = sample[-1] - (pts[0] if from_node else sample[0])
-    if np.dot(d, ref) < 0:
-        d = -d
-    return d / np.linalg.norm(d), from_node
+    m = seg.shape[0]
+    samples = np.full((m, n_samples, 3), np.nan)
+    ref = np.full((m, 3), np.nan)
+    status = np.full(m, 2, dtype=np.int8)
+    kmax = 0
+    for e in range(m):
+        kmax = max(kmax, offsets[seg[e] + 1] - offsets[seg[e]])
+    arc = np.empty(kmax)
+    pts = np.empty((kmax, 3))
+    for e in range(m):
+        a = offsets[seg[e]]
+        k = offsets[seg[e] + 1] - a
+        # Walk from the node outward, dropping repeated points; the running
+        # sum matches np.cumsum of the step lengths.
+        n = 0
+        prev = -1
+        for i in range(k):
+            j = a + i if from_start[e] else a + k - 1 - i
+            if prev < 0:
+                pts[0, :] = points[j, :]
+                arc[0] = 0.0
+                n = 1
+            else:
+                dz = points[j, 0] - points[prev, 0]
+                dy = points[j, 1] - points[prev, 1]
+                dx = points[j, 2] - points[prev, 2]
+                step = np.sqrt(dz * dz + dy * dy + dx * dx)
+                if step > 0:
+                    pts[n, :] = points[j, :]
+                    arc[n] = arc[n - 1] + step
+                    n += 1
+            prev = j
+        if n < 2:
+            continue
+        hi = min(fit * scale[e], 0.5 * arc[n - 1])
+        lo = skip * scale[e]
+        from_node = False
+        if not hi > lo:
+            # Too short to leave the junction zone out: fit from the node itself.
+            lo = 0.0
+            from_node = True
+        if not hi > 0:
+            continue
+        # np.linspace(lo, hi, n_samples), then np.interp per axis.
+        delta = (hi - lo) / (n_samples - 1)
+        j = 0
+        for i in range(n_samples):
+            x = hi if i == n_samples - 1 else float(i) * delta + lo
+            while j + 1 < n and arc[j + 1] <= x:
+                j += 1
+            if j == n - 1 or arc[j] == x:
+                samples[e, i, :] = pts[j, :]
+            else:
+                for c in range(3):
+                    slope = (pts[j + 1, c] - pts[j, c]) / (arc[j + 1] - arc[j])
+                    samples[e, i, c] = slope * (x - arc[j]) + pts[j, c]
+        for c in range(3):
+            ref[e, c] = samples[e, n_samples - 1, c] - (pts[0, c] if from_node else samples[e, 0, c])
+        status[e] = 1 if from_node else 0
+    return samples, ref, status
+
+
+def _directions(points: np.ndarray, offsets: np.ndarray, seg: np.ndarray, from_start: np.ndarray,
+                scale: np.ndarray, skip: float, fit: float) -> tuple[np.ndarray, np.ndarray]:
+    """Unit direction of each requested segment end, pointing away from its node.
+
+    The principal axis (total least squares line) of the evenly resampled
+    window from :func:`_tangent_windows`, oriented along the window.
+
+    Returns
+    -------
+    direction : ndarray, shape (M, 3)
+        NaN where there is no window or the window has no extent.
+    from_node : ndarray of bool, shape (M,)
+        The fit started at the node (segment too short to skip the junction
+        zone) or found no direction.
+    """
+    samples, ref, status = _tangent_windows(points, offsets, seg.astype(np.int64), from_start.astype(np.bool_),
+                                            scale.astype(float), float(skip), float(fit), _TANGENT_SAMPLES)
+    direction = np.full((len(seg), 3), np.nan)
+    has = np.flatnonzero(status < 2)
+    if len(has):
+        window = samples[has]
+        # One batched SVD (the same LAPACK routine as one call per window).
+        _, sv, vt = np.linalg.svd(window - window.mean(axis=1, keepdims=True), full_matrices=False)
+        d = vt[:, 0, :]
+        d = np.where(((d * ref[has]).sum(axis=1) < 0)[:, None], -d, d)
+        spread = sv[:, 0] > 0
+        d = d / np.sqrt((d**2).sum(axis=1))[:, None]
+        direction[has[spread]] = d[spread]
+        status[has[~spread]] = 2
+    return direction, status != 0
 
 
 # ---------------------------------------------------------------------------
@@ -369,7 +518,12 @@ def _float_column(df: pd.DataFrame, col: str) -> np.ndarray | None:
     return pd.array(df[col], dtype="Float64").to_numpy(dtype=float, na_value=np.nan)
 
 
-def _check_centrelines(centrelines: Any, n: int) -> list[np.ndarray]:
+def _check_centrelines(centrelines: Any, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Validate the centrelines and concatenate them.
+
+    Returns ``(points, offsets)``: all points in segment row order, shape
+    (P, 3), and the start of each row's points, shape (n + 1,).
+    """
     if centrelines is None or isinstance(centrelines, (str, bytes)):
         raise InputError(f"centrelines: expected a list of (K, 3) arrays, got {type(centrelines).__name__}")
     try:
@@ -378,15 +532,21 @@ def _check_centrelines(centrelines: Any, n: int) -> list[np.ndarray]:
         raise InputError(f"centrelines: expected a list of (K, 3) arrays, got {type(centrelines).__name__}") from None
     if len(items) != n:
         raise InputError(f"centrelines: expected one per segment row ({n}), got {len(items)}")
-    out = []
-    for i, c in enumerate(items):
-        arr = np.asarray(c, dtype=float)
-        if arr.ndim != 2 or arr.shape[1] != 3 or len(arr) < 2:
-            raise InputError(f"centrelines: expected (K, 3) arrays with K >= 2, got shape {arr.shape} at row {i}")
-        if not np.all(np.isfinite(arr)):
-            raise InputError(f"centrelines: expected finite coordinates, got a non-finite value at row {i}")
-        out.append(arr)
-    return out
+    arrays = [np.asarray(c, dtype=float) for c in items]
+    bad_shape = next((i for i, a in enumerate(arrays) if a.ndim != 2 or a.shape[1] != 3 or len(a) < 2), n)
+    # Rows before the first bad shape are checked for finite values first, so
+    # that the error names the first bad row, whatever is wrong with it.
+    good = arrays[:bad_shape]
+    offsets = np.r_[0, np.cumsum([len(a) for a in good], dtype=np.int64)].astype(np.int64)
+    points = np.concatenate(good) if good else np.empty((0, 3))
+    finite = np.isfinite(points).all(axis=1)
+    if not finite.all():
+        i = int(np.searchsorted(offsets, np.flatnonzero(~finite)[0], side="right")) - 1
+        raise InputError(f"centrelines: expected finite coordinates, got a non-finite value at row {i}")
+    if bad_shape < n:
+        raise InputError(f"centrelines: expected (K, 3) arrays with K >= 2, got shape {arrays[bad_shape].shape} "
+                         f"at row {bad_shape}")
+    return points, offsets
 
 
 # ---------------------------------------------------------------------------
@@ -473,7 +633,7 @@ def analyze_bifurcations(
         return _empty_table(), {"bifurcations_enabled": False}
     _require(segments, "segments", ("segment_id", "node_from", "node_to", "length_um", "radius_um"))
     _require(nodes, "nodes", ("node_id",))
-    lines = _check_centrelines(centrelines, len(segments))
+    points, offsets = _check_centrelines(centrelines, len(segments))
 
     ids = pd.Index(nodes["node_id"].to_numpy(dtype=np.int64))
     if not ids.is_unique:
@@ -492,160 +652,254 @@ def analyze_bifurcations(
         raise InputError(
             f"segments: radius_um must be finite and > 0 (segment_id {int(seg_id[k])}, value {radius[k]!r})"
         )
-    length = _float_column(segments, "length_um")
-    npts = _float_column(segments, "radius_n_points")
-    level = _float_column(segments, "level")
-    flow = _float_column(segments, "flow_nl_min")
-    wss = _float_column(segments, "wss_pa")
+    cols = {c: _float_column(segments, c) for c in ("length_um", "radius_n_points", "level", "flow_nl_min", "wss_pa")}
+    has_flow = cols["flow_nl_min"] is not None
 
     n_nodes = len(ids)
     loop = u == v
     ends = np.bincount(u, minlength=n_nodes) + np.bincount(v, minlength=n_nodes)
-    # Incidence: (node row, segment row, segment leaves the node at its start?).
-    inc_node = np.concatenate([u[~loop], v[~loop], u[loop]])
-    inc_seg = np.concatenate([np.flatnonzero(~loop), np.flatnonzero(~loop), np.flatnonzero(loop)])
-    inc_start = np.concatenate([np.ones((~loop).sum(), bool), np.zeros((~loop).sum(), bool),
-                                np.ones(loop.sum(), bool)])
-    order = np.argsort(inc_node, kind="stable")
-    inc_node, inc_seg, inc_start = inc_node[order], inc_seg[order], inc_start[order]
-    bounds = np.searchsorted(inc_node, np.arange(n_nodes + 1))
+    # Arms: the segment ends that are not self-loops, grouped by node in a
+    # stable order (ends at node_from in segment row order, then ends at
+    # node_to), which decides between equal inflows.
+    nl = np.flatnonzero(~loop)
+    arm_node = np.concatenate([u[nl], v[nl]])
+    order = np.argsort(arm_node, kind="stable")
+    arm_node = arm_node[order]
+    arm_seg = np.concatenate([nl, nl])[order]
+    arm_start = np.repeat([True, False], len(nl))[order]  # the segment leaves the node at its first point
+    is_junction = np.bincount(arm_node, minlength=n_nodes) >= 3
+    skipped = int(((ends >= 3) & ~is_junction).sum())
+    node_row = np.flatnonzero(is_junction)
+    if len(node_row) == 0:
+        return _empty_table(), _summary(_empty_table(), has_flow=has_flow, skipped=skipped)
+    keep = is_junction[arm_node]
+    arms = _Arms(
+        group=np.searchsorted(node_row, arm_node[keep]),
+        seg=arm_seg[keep],
+        start=arm_start[keep],
+        n_junctions=len(node_row),
+    )
+    loop_rows = np.flatnonzero(loop & is_junction[u])
+    loops = (np.searchsorted(node_row, u[loop_rows]), seg_id[loop_rows])
 
-    node_cols = {c: (_float_column(nodes, c) if c in nodes.columns else None)
-                 for c in ("z", "y", "x", "z_um", "y_um", "x_um")}
-
-    rows = []
-    skipped = 0
-    for n in np.flatnonzero(ends >= 3):
-        segs = inc_seg[bounds[n]:bounds[n + 1]]
-        starts = inc_start[bounds[n]:bounds[n + 1]]
-        is_loop = loop[segs]
-        notes = [f"self_loop:{int(seg_id[s])}" for s in segs[is_loop]]
-        segs, starts = segs[~is_loop], starts[~is_loop]
-        if len(segs) < 3:
-            skipped += 1
-            continue
-        rows.append(_junction_row(n, segs, starts, notes, ends=ends, ids=ids, seg_id=seg_id, radius=radius,
-                                  length=length, npts=npts, level=level, flow=flow, wss=wss, lines=lines,
-                                  node_cols=node_cols, cfg=cfg))
-    table = _typed(pd.DataFrame(rows, columns=COLUMNS)) if rows else _empty_table()
+    table = _junction_table(node_row, arms, loops, ends=ends, ids=ids, seg_id=seg_id, radius=radius, cols=cols,
+                            nodes=nodes, points=points, offsets=offsets, cfg=cfg)
     table = table.sort_values("node_id", kind="stable").reset_index(drop=True)
-    return table, _summary(table, has_flow=flow is not None, skipped=skipped)
+    return table, _summary(table, has_flow=has_flow, skipped=skipped)
 
 
-def _junction_row(n, segs, starts, notes, *, ends, ids, seg_id, radius, length, npts, level, flow, wss, lines,
-                  node_cols, cfg) -> dict[str, Any]:
-    r = radius[segs]
-    # Parent: flow into the node, else smallest level, else widest.
-    parent_k, parent_by = None, "radius"
+class _Arms:
+    """The arms (non-loop segment ends) of all junctions, grouped by junction.
+
+    Attributes
+    ----------
+    group : ndarray of int, shape (A,)
+        Junction index of each arm, non-decreasing.
+    seg : ndarray of int, shape (A,)
+        Segment row of each arm.
+    start : ndarray of bool, shape (A,)
+        The segment leaves the junction at its first centreline point.
+    first : ndarray of int, shape (J,)
+        Index of each junction's first arm.
+    """
+
+    def __init__(self, *, group: np.ndarray, seg: np.ndarray, start: np.ndarray, n_junctions: int):
+        self.group, self.seg, self.start = group, seg, start
+        self.first = np.searchsorted(group, np.arange(n_junctions))
+
+
+def _choose_parents(arms: _Arms, r: np.ndarray, sid: np.ndarray, level: np.ndarray | None,
+                    flow: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Parent arm of every junction (module notes: flow, else level, else width).
+
+    Parameters
+    ----------
+    arms : _Arms
+    r, sid : ndarray, shape (A,)
+        Radius and segment id of each arm.
+    level, flow : ndarray or None
+        Per segment row (NaN where missing).
+
+    Returns
+    -------
+    parent : ndarray of int, shape (J,)
+        Index of the parent arm.
+    parent_by : ndarray of object, shape (J,)
+        ``"flow"``, ``"level"`` or ``"radius"``.
+    converging : ndarray of bool, shape (J,)
+        More than one arm carries flow into the junction.
+    by_width : ndarray of int, shape (A,)
+        All arms, by junction, widest first (ties to the smallest id).
+    """
+    g, first = arms.group, arms.first
+    n = len(first)
+    by_width = np.lexsort((sid, -r, g))
+    parent = by_width[first]
+    parent_by = np.full(n, "radius", dtype=object)
+    converging = np.zeros(n, dtype=bool)
+    if level is not None:
+        lv = level[arms.seg]
+        known = np.isfinite(lv)
+        use = np.logical_or.reduceat(known, first)
+        by_level = np.lexsort((sid, -r, np.where(known, lv, np.inf), g))  # lowest level, widest, smallest id
+        parent = np.where(use, by_level[first], parent)
+        parent_by[use] = "level"
     if flow is not None:
-        q = flow[segs]
-        q_in = np.where(starts, -q, q)  # flow entering the node through each segment
-        qmax = float(np.nanmax(np.abs(q))) if np.any(np.isfinite(q)) else 0.0
-        if qmax > 0 and np.nanmax(q_in) > _FLOW_RTOL * qmax:
-            q_in_f = np.where(np.isfinite(q_in), q_in, -np.inf)
-            parent_k = int(np.argmax(q_in_f))  # first of equal inflows
-            parent_by = "flow"
-            if int((q_in_f > _FLOW_RTOL * qmax).sum()) > 1:
-                notes.append("converging")
-    if parent_k is None and level is not None and np.any(np.isfinite(level[segs])):
-        lv = np.where(np.isfinite(level[segs]), level[segs], np.inf)
-        cand = np.flatnonzero(lv == lv.min())
-        parent_k = int(cand[np.lexsort((seg_id[segs][cand], -r[cand]))[0]])
-        parent_by = "level"
-    if parent_k is None:
-        parent_k = int(np.lexsort((seg_id[segs], -r))[0])
-    others = np.delete(np.arange(len(segs)), parent_k)
-    others = others[np.lexsort((seg_id[segs][others], -r[others]))]  # daughter 1 the widest
-    p = segs[parent_k]
-    ds = segs[others]
-    r0, rd = float(radius[p]), radius[ds]
-    r1, r2 = float(rd[0]), float(rd[1])
-    multi = len(ds) > 2
+        q = flow[arms.seg]
+        q_in = np.where(arms.start, -q, q)  # flow entering the junction through each arm
+        any_finite = np.logical_or.reduceat(np.isfinite(q), first)
+        qmax = np.where(any_finite, np.fmax.reduceat(np.abs(q), first), 0.0)  # fmax skips NaN
+        thr = _FLOW_RTOL * qmax
+        use = (qmax > 0) & (np.fmax.reduceat(q_in, first) > thr)
+        q_in_f = np.where(np.isfinite(q_in), q_in, -np.inf)
+        top = np.maximum.reduceat(q_in_f, first)
+        idx = np.arange(len(g))
+        first_top = np.minimum.reduceat(np.where(q_in_f == top[g], idx, len(g)), first)  # first of equal inflows
+        parent = np.where(use, first_top, parent)
+        parent_by[use] = "flow"
+        converging = use & (np.add.reduceat(q_in_f > thr[g], first) > 1)
+    return parent, parent_by, converging, by_width
 
-    # Radius law.
-    ratio = float((rd**3).sum() / r0**3)
-    area = float((rd**2).sum() / r0**2)
-    expo = _exponent_one(r0, rd)
-    undefined = bool(np.any(rd >= r0))
 
-    # Directions pointing away from the node; the junction zone scales with
-    # the widest vessel meeting there.
-    scale = float(r.max())
-    dirs = []
-    for k in (parent_k, others[0], others[1]):
-        s = segs[k]
-        pts = lines[s] if starts[k] else lines[s][::-1]
-        d, from_node = _direction_from_node(pts, scale, cfg["tangent_skip_radii"], cfg["tangent_fit_radii"])
-        dirs.append(d)
-        if from_node:
-            notes.append(f"tangent_from_node:{int(seg_id[s])}")
-    t0, t1, t2 = dirs
-    a1, a2 = _angle_deg(t1, -t0), _angle_deg(t2, -t0)
-    between = _angle_deg(t1, t2)
+def _join_groups(group: np.ndarray, texts: Sequence[str], n: int) -> list[str]:
+    """``";"``-join the texts of each of ``n`` groups, keeping their given order within a group."""
+    order = np.argsort(group, kind="stable")
+    bounds = np.searchsorted(group[order], np.arange(n + 1))
+    t = [texts[i] for i in order.tolist()]
+    return [";".join(t[a:b]) for a, b in zip(bounds[:-1].tolist(), bounds[1:].tolist())]
+
+
+def _reason_strings(hits: np.ndarray) -> np.ndarray:
+    """``flag_reasons`` of each row of a (J, len(REASON_CODES)) boolean array."""
+    key = hits.astype(np.int64) @ (1 << np.arange(hits.shape[1], dtype=np.int64))
+    combos, inverse = np.unique(key, return_inverse=True)  # a handful of distinct combinations
+    text = np.array([";".join(c for b, c in enumerate(REASON_CODES) if k >> b & 1) for k in combos.tolist()],
+                    dtype=object)
+    return text[inverse.ravel()]
+
+
+def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, cols, nodes, points, offsets,
+                    cfg) -> pd.DataFrame:
+    """One row per junction, in the order of ``node_row`` (see :func:`analyze_bifurcations`)."""
+    n = len(node_row)
+    g, first = arms.group, arms.first
+    length, npts, level, flow, wss = (cols[c] for c in ("length_um", "radius_n_points", "level", "flow_nl_min",
+                                                        "wss_pa"))
+    r = radius[arms.seg]
+    parent, parent_by, converging, by_width = _choose_parents(arms, r, seg_id[arms.seg], level, flow)
+
+    # Daughters: the other arms, widest first. Dropping each junction's parent
+    # from the width order leaves every junction's daughters contiguous.
+    is_parent = np.zeros(len(g), dtype=bool)
+    is_parent[parent] = True
+    daughters = by_width[~is_parent[by_width]]
+    d_first = first - np.arange(n)
+    n_daughters = np.diff(np.r_[d_first, len(daughters)])
+    multi = n_daughters > 2
+    p = arms.seg[parent]
+    ds = arms.seg[daughters]
+    d1, d2 = ds[d_first], ds[d_first + 1]
+
+    # Radius law, with sums over all daughters.
+    r0, rd, r1, r2 = radius[p], radius[ds], radius[d1], radius[d2]
+    sum3 = np.add.reduceat(rd**3, d_first)
+    ratio = sum3 / r0**3
+    area = np.add.reduceat(rd**2, d_first) / r0**2
+    expo = _exponents(r0, rd, d_first)
+    undefined = np.logical_or.reduceat(rd >= r0[g[daughters]], d_first)
+
+    # Directions pointing away from the node, for parent, daughter 1 and 2;
+    # the junction zone scales with the widest vessel meeting there.
+    scale = np.maximum.reduceat(r, first)
+    trio = np.column_stack([parent, daughters[d_first], daughters[d_first + 1]])  # arms, (n, 3)
+    dirs, from_node = _directions(points, offsets, arms.seg[trio.ravel()], arms.start[trio.ravel()],
+                                  np.repeat(scale, 3), cfg["tangent_skip_radii"], cfg["tangent_fit_radii"])
+    t0, t1, t2 = dirs[0::3], dirs[1::3], dirs[2::3]
+    a1, a2 = _angles_deg(t1, -t0), _angles_deg(t2, -t0)
+    between = _angles_deg(t1, t2)
     oop = _out_of_plane_deg(t0, t1, t2)
-    if multi:
-        o1 = o2 = dev = math.nan
-    else:
-        o1, o2 = murray_optimal_angles(r0, r1, r2)
-        dev = max(abs(a1 - o1), abs(a2 - o2))  # NaN when an angle is NaN
+    o1, o2 = murray_optimal_angles(r0, r1, r2)
+    e1, e2 = np.abs(a1 - o1), np.abs(a2 - o2)
+    # The larger deviation; as Python's max(e1, e2): NaN when e1 is NaN, e1 when only e2 is.
+    dev = np.where(e2 > e1, e2, e1)
+    o1, o2, dev = (np.where(multi, np.nan, x) for x in (o1, o2, dev))  # optimum defined for two daughters
 
     # Flow split and shear.
-    split = w1 = w2 = math.nan
-    cube = float(r1**3 / (rd**3).sum())
+    cube = r1**3 / sum3
+    split = np.full(n, np.nan)
     if flow is not None:
-        qd = np.abs(flow[ds])
-        tot = float(qd.sum())
-        if np.isfinite(tot) and tot > 0:
-            split = float(qd[0] / tot)
-    if wss is not None and np.isfinite(wss[p]) and wss[p] > 0:
-        w1, w2 = float(wss[ds[0]] / wss[p]), float(wss[ds[1]] / wss[p])
+        tot = np.add.reduceat(np.abs(flow[ds]), d_first)
+        np.divide(np.abs(flow[d1]), tot, out=split, where=np.isfinite(tot) & (tot > 0))
+    w1, w2 = np.full(n, np.nan), np.full(n, np.nan)
+    if wss is not None:
+        ok = np.isfinite(wss[p]) & (wss[p] > 0)
+        np.divide(wss[d1], wss[p], out=w1, where=ok)
+        np.divide(wss[d2], wss[p], out=w2, where=ok)
 
-    # Confidence.
-    low = []
-    for s in np.r_[p, ds]:
-        if npts is not None and np.isfinite(npts[s]) and npts[s] < cfg["min_radius_points"]:
-            low.append(f"few_points:{int(seg_id[s])}")
-    for s in np.r_[p, ds]:
-        if np.isfinite(length[s]) and length[s] < cfg["min_length_radii"] * radius[s]:
-            low.append(f"short:{int(seg_id[s])}")
-    low_conf = bool(low)
+    # Confidence, over the parent and all daughters, parent first.
+    members = np.empty(len(g), dtype=np.int64)  # laid out like the arms: parent in each junction's first slot
+    members[first] = p
+    rest = np.ones(len(g), dtype=bool)
+    rest[first] = False
+    members[rest] = ds
+    few = np.zeros(len(g), dtype=bool)
+    if npts is not None:
+        few = np.isfinite(npts[members]) & (npts[members] < cfg["min_radius_points"])
+    short = np.isfinite(length[members]) & (length[members] < cfg["min_length_radii"] * radius[members])
+    low_conf = np.logical_or.reduceat(few | short, first)
 
-    # Flags.
-    reasons = []
-    if cfg["ratio_max"] is not None and ratio > cfg["ratio_max"]:
-        reasons.append("ratio_high")
-    if cfg["ratio_min"] is not None and ratio < cfg["ratio_min"]:
-        reasons.append("ratio_low")
-    if cfg["exponent_max"] is not None and expo > cfg["exponent_max"]:
-        reasons.append("exponent_high")
-    if cfg["exponent_min"] is not None and expo < cfg["exponent_min"]:
-        reasons.append("exponent_low")
-    if cfg["flag_undefined_exponent"] and undefined:
-        reasons.append("exponent_undefined")
-    if cfg["angle_deviation_max_deg"] is not None and dev > cfg["angle_deviation_max_deg"]:
-        reasons.append("angle")
-    if cfg["flag_multi"] and multi:
-        reasons.append("multi")
-    if cfg["flag_low_confidence"] and low_conf:
-        reasons.append("low_confidence")
+    # Notes, in this order within a row: few_points, short, self_loop,
+    # converging, tangent_from_node (parent, daughter 1, daughter 2).
+    loop_group, loop_id = loops
+    tangent_seg = arms.seg[trio.ravel()][from_node]
+    note_group = np.concatenate([g[few], g[short], loop_group, np.flatnonzero(converging),
+                                 np.repeat(np.arange(n), 3)[from_node]])
+    note_text = ([f"few_points:{i}" for i in seg_id[members[few]].tolist()]
+                 + [f"short:{i}" for i in seg_id[members[short]].tolist()]
+                 + [f"self_loop:{i}" for i in loop_id.tolist()]
+                 + ["converging"] * int(converging.sum())
+                 + [f"tangent_from_node:{i}" for i in seg_id[tangent_seg].tolist()])
+    notes = _join_groups(note_group, note_text, n)
+    daughter_text = _join_groups(g[daughters], [str(i) for i in seg_id[ds].tolist()], n)
+
+    # Flags, in REASON_CODES order; a null threshold switches its rule off.
+    # NaN values compare False, so they never trip a bound.
+    def above(values, key):
+        return np.zeros(n, dtype=bool) if cfg[key] is None else values > cfg[key]
+
+    def below(values, key):
+        return np.zeros(n, dtype=bool) if cfg[key] is None else values < cfg[key]
+
+    hits = np.column_stack([
+        above(ratio, "ratio_max"), below(ratio, "ratio_min"),
+        above(expo, "exponent_max"), below(expo, "exponent_min"),
+        undefined & bool(cfg["flag_undefined_exponent"]),
+        above(dev, "angle_deviation_max_deg"),
+        multi & bool(cfg["flag_multi"]),
+        low_conf & bool(cfg["flag_low_confidence"]),
+    ])
 
     def voxel(c):
-        val = node_cols[c]
-        return int(round(val[n])) if val is not None and np.isfinite(val[n]) else None
+        if c not in nodes.columns:
+            return pd.array([None] * n, dtype="Int64")
+        val = _float_column(nodes, c)[node_row]
+        known = np.isfinite(val)
+        return pd.arrays.IntegerArray(np.where(known, np.rint(val), 0).astype(np.int64), ~known)
 
     def micron(c):
-        val = node_cols[c]
-        return float(val[n]) if val is not None else math.nan
+        return _float_column(nodes, c)[node_row] if c in nodes.columns else np.full(n, np.nan)
 
-    return {
-        "node_id": int(ids[n]),
+    lv = level[p] if level is not None else np.full(n, np.nan)
+    known_lv = np.isfinite(lv)
+    table = pd.DataFrame({
+        "node_id": ids.to_numpy()[node_row],
         "z": voxel("z"), "y": voxel("y"), "x": voxel("x"),
         "z_um": micron("z_um"), "y_um": micron("y_um"), "x_um": micron("x_um"),
-        "level": int(level[p]) if level is not None and np.isfinite(level[p]) else None,
-        "degree": int(ends[n]),
-        "parent_segment": int(seg_id[p]),
+        "level": pd.arrays.IntegerArray(np.where(known_lv, lv, 0).astype(np.int64), ~known_lv),
+        "degree": ends[node_row],
+        "parent_segment": seg_id[p],
         "parent_by": parent_by,
-        "daughter_segments": ";".join(str(int(seg_id[s])) for s in ds),
+        "daughter_segments": daughter_text,
         "radius_parent_um": r0,
         "radius_daughter1_um": r1,
         "radius_daughter2_um": r2,
@@ -665,10 +919,11 @@ def _junction_row(n, segs, starts, notes, *, ends, ids, seg_id, radius, length, 
         "wss_ratio_daughter1": w1,
         "wss_ratio_daughter2": w2,
         "low_confidence": low_conf,
-        "confidence_notes": ";".join(low + notes),
-        "flagged": bool(reasons),
-        "flag_reasons": ";".join(reasons),
-    }
+        "confidence_notes": notes,
+        "flagged": hits.any(axis=1),
+        "flag_reasons": _reason_strings(hits),
+    })
+    return _typed(table)
 
 
 def _median(values: np.ndarray) -> float | None:
@@ -676,15 +931,19 @@ def _median(values: np.ndarray) -> float | None:
     return float(np.median(finite)) if finite.size else None
 
 
-def _codes(table: pd.DataFrame) -> list[set[str]]:
-    return [set(s.split(";")) - {""} for s in table["flag_reasons"].astype(str)]
+def _code_hits(table: pd.DataFrame) -> np.ndarray:
+    """Boolean (rows, len(REASON_CODES)) array: which codes each row's ``flag_reasons`` names."""
+    # A table holds only a handful of distinct reason strings: parse each once.
+    inverse, texts = pd.factorize(table["flag_reasons"].astype(str).to_numpy(dtype=object))
+    per_text = np.array([[c in set(t.split(";")) for c in REASON_CODES] for t in texts], dtype=bool)
+    return per_text.reshape(len(texts), len(REASON_CODES))[inverse]
 
 
 def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int) -> dict[str, Any]:
     n = len(table)
-    codes = _codes(table)
-    counts = {c: int(sum(c in s for s in codes)) for c in REASON_CODES}
-    within = sum(not (s & set(MURRAY_CODES)) for s in codes)
+    hits = _code_hits(table)
+    counts = {c: int(hits[:, k].sum()) for k, c in enumerate(REASON_CODES)}
+    within = int((~hits[:, [REASON_CODES.index(c) for c in MURRAY_CODES]].any(axis=1)).sum())
     split_err = None
     if has_flow and n:
         err = np.abs(table["flow_split_daughter1"].to_numpy(float) - table["flow_split_cube_law"].to_numpy(float))

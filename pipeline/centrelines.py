@@ -42,7 +42,7 @@ from skimage.morphology import skeletonize
 
 from .thinning import thin
 
-__all__ = ["Centrelines", "extract_centrelines", "resample_isotropic"]
+__all__ = ["Centrelines", "extract_centrelines", "resample_isotropic", "tissue_quantiles"]
 
 _THREADS = 2
 
@@ -67,6 +67,10 @@ class Centrelines:
         Voxel lies within one voxel of the original volume's border.
     resampled : bool
         Whether the mask was resampled to an isotropic grid.
+    tissue_distance_um : tuple of 2 float or None
+        Median and 95th percentile of the distance from tissue (non-vessel)
+        voxels of the whole volume to the nearest vessel, when the distance
+        map was computed on the original grid; None otherwise.
     """
 
     voxels: np.ndarray
@@ -76,6 +80,7 @@ class Centrelines:
     grid_shape: tuple
     on_border: np.ndarray
     resampled: bool
+    tissue_distance_um: tuple | None = None
 
 
 def resample_isotropic(mask, *, spacing, target):
@@ -138,8 +143,8 @@ def _single_coarse_axis(spacing, max_anisotropy):
     return int(coarse[0]) if len(coarse) == 1 else None
 
 
-def _in_plane_radii(mask, spacing, axis, positions, *, ridge):
-    """Radius from the distance to background within the acquired planes.
+def _in_plane_distance(mask, spacing, axis):
+    """Distance to background within each plane normal to ``axis``.
 
     Used for stacks with one coarse axis (typically z). A plane through a
     tube of radius r cuts it in an ellipse whose semi-minor axis is r
@@ -156,18 +161,59 @@ def _in_plane_radii(mask, spacing, axis, positions, *, ridge):
         idx[axis] = k
         dist[tuple(idx)] = edt.edt(np.ascontiguousarray(mask[tuple(idx)]), anisotropy=plane_sp,
                                    black_border=False, parallel=_THREADS)
+    return dist
+
+
+def _in_plane_radii(dist, spacing, axis, positions, *, ridge):
+    """Sample :func:`_in_plane_distance` at physical positions (ridge within the plane)."""
+    others = [a for a in range(dist.ndim) if a != axis]
     vox = np.rint(positions / spacing).astype(np.int64)
-    vox = np.clip(vox, 0, np.array(mask.shape) - 1)
+    vox = np.clip(vox, 0, np.array(dist.shape) - 1)
     best = dist[tuple(vox.T)].astype(np.float64)
     if ridge:
-        hi = np.array(mask.shape) - 1
-        for off in np.ndindex(*(3,) * (mask.ndim - 1)):
-            o = np.zeros(mask.ndim, dtype=np.int64)
+        hi = np.array(dist.shape) - 1
+        for off in np.ndindex(*(3,) * (dist.ndim - 1)):
+            o = np.zeros(dist.ndim, dtype=np.int64)
             o[others] = np.array(off) - 1
             if not o.any():
                 continue
             np.maximum(best, dist[tuple(np.clip(vox + o, 0, hi).T)], out=best)
     return best
+
+
+def _two_label_distance(crop, offset, shape, spacing):
+    """Distance map of the whole volume with vessel (1) and tissue (2) labels.
+
+    ``edt`` gives every voxel its distance to the nearest voxel of another
+    label: for vessel voxels the distance to tissue, for tissue voxels the
+    distance to vessel. Array faces are not background (they are cuts).
+    """
+    labels = np.full(tuple(int(n) for n in shape), 2, dtype=np.uint8)
+    sl = tuple(slice(o, o + n) for o, n in zip(offset, crop.shape))
+    labels[sl][crop] = 1
+    return edt.edt(labels, anisotropy=tuple(spacing), black_border=False, parallel=_THREADS)
+
+
+def tissue_quantiles(flat, n_tissue):
+    """Median and 95th percentile of tissue distances, by in-place partition.
+
+    ``flat`` holds 0 for vessel voxels and a positive distance for each of
+    the ``n_tissue`` tissue voxels, so the tissue quantiles (numpy's default,
+    linear definition) are order statistics of ``flat`` shifted by the vessel
+    count; ``flat`` is reordered in place, no copy is made.
+    """
+    if n_tissue <= 0:
+        return 0.0, 0.0
+    n_vessel = flat.size - n_tissue
+    ranks = [n_vessel + q * (n_tissue - 1) for q in (0.5, 0.95)]
+    kth = sorted({int(np.floor(r)) for r in ranks} | {min(int(np.floor(r)) + 1, flat.size - 1) for r in ranks})
+    flat.partition(kth)
+    out = []
+    for r in ranks:
+        lo = int(np.floor(r))
+        hi = min(lo + 1, flat.size - 1)
+        out.append(float(flat[lo] + (r - lo) * (flat[hi] - flat[lo])))
+    return out[0], out[1]
 
 
 def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
@@ -214,11 +260,27 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         sp = np.full(len(axes), float(resample_spacing_um))
         resampled = True
 
-    distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_THREADS)
     border_faces = [
         (offset[a] == 0, offset[a] + mask.shape[a] == original_shape[a]) for a in axes
     ]
-    width = int(np.ceil(float(distance.max()) / sp.min())) + 2
+    coarse = _single_coarse_axis(spacing[axes], max_anisotropy) if resampled else None
+    tissue_q = None
+    if not resampled:
+        # One two-label transform of the whole volume serves two steps: vessel
+        # voxels get their distance to tissue (the radii), tissue voxels their
+        # distance to the nearest vessel (the summary), at the cost of one.
+        full = _two_label_distance(work, offset[axes], original_shape[axes], sp)
+        distance = full[tuple(slice(o, o + n) for o, n in zip(offset[axes], work.shape))]
+        rmax = float(np.max(distance, where=work, initial=0.0))
+    elif coarse is None:
+        full = None
+        distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_THREADS)
+        rmax = float(distance.max())
+    else:
+        full = distance = None
+        plane_dist = _in_plane_distance(mask[0] if planar else mask, spacing[axes], coarse)
+        rmax = float(plane_dist.max())
+    width = int(np.ceil(rmax / sp.min())) + 2
     padded, pads = _edge_pad(work, border_faces, width)
     # 3-D: the project's subfield thinning (pipeline/thinning.py). scikit-image's
     # 3-D skeletonize deletes objects of even width entirely (scikit-image
@@ -228,14 +290,15 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
     inner = tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))
     voxels = np.argwhere(skel[inner])
     del skel, padded
-    coarse = _single_coarse_axis(spacing[axes], max_anisotropy) if resampled else None
     if coarse is not None:
-        del distance
-        radii = _in_plane_radii(mask[0] if planar else mask, spacing[axes], coarse, voxels * sp,
-                                ridge=half_voxel_correction)
+        radii = _in_plane_radii(plane_dist, spacing[axes], coarse, voxels * sp, ridge=half_voxel_correction)
+        del plane_dist
     else:
         radii = _ridge(distance, voxels) if half_voxel_correction else distance[tuple(voxels.T)]
-        del distance
+    if full is not None:
+        np.putmask(distance, work, 0.0)  # vessel voxels: distance 0 to the nearest vessel
+        tissue_q = tissue_quantiles(full.reshape(-1), int(full.size - np.count_nonzero(work)))
+    del distance, full
     radii = radii.astype(np.float64)
 
     pos = voxels * sp + offset[axes] * spacing[axes]
@@ -263,4 +326,5 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         grid_shape=grid_shape,
         on_border=on_border,
         resampled=resampled,
+        tissue_distance_um=tissue_q,
     )

@@ -33,6 +33,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 import pandas as pd
+
+from .centrelines import tissue_quantiles
 from scipy import ndimage as ndi
 
 __all__ = ["segment_table", "node_table", "summarize", "tissue_distance", "path_length"]
@@ -339,9 +341,8 @@ def tissue_distance(mask, offset, original_shape, spacing, *, planar=False):
     """Distance from every non-vessel voxel to the nearest vessel voxel, µm.
 
     Returns ``(median, p95)``; the whole imaged volume counts as tissue.
-    Vessel voxels have distance 0 and every tissue voxel a positive one, so
-    the tissue quantiles are order statistics of the whole distance map
-    shifted by the vessel count: one in-place partition, no copy.
+    Used when the centreline step did not already compute it on the
+    original grid (resampled stacks).
     """
     import edt
 
@@ -354,21 +355,7 @@ def tissue_distance(mask, offset, original_shape, spacing, *, planar=False):
         d = edt.edt(tissue, anisotropy=tuple(spacing), black_border=False, parallel=2)
     n_tissue = int(np.count_nonzero(tissue))
     del tissue
-    if n_tissue == 0:
-        return 0.0, 0.0
-    flat = d.reshape(-1)
-    n_vessel = flat.size - n_tissue
-    # numpy's default (linear) quantile definition over the tissue values.
-    ranks = {q: n_vessel + q * (n_tissue - 1) for q in (0.5, 0.95)}
-    kth = sorted({int(np.floor(r)) for r in ranks.values()} | {min(int(np.floor(r)) + 1, flat.size - 1) for r in ranks.values()})
-    flat.partition(kth)
-    out = []
-    for q in (0.5, 0.95):
-        r = ranks[q]
-        lo = int(np.floor(r))
-        hi = min(lo + 1, flat.size - 1)
-        out.append(float(flat[lo] + (r - lo) * (flat[hi] - flat[lo])))
-    return out[0], out[1]
+    return tissue_quantiles(d.reshape(-1), n_tissue)
 
 
 def summarize(segments, nodes, *, cleaned, spacing, planar, original_shape, tissue_dist):
