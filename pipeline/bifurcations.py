@@ -167,7 +167,7 @@ _FLOW_RTOL = 1e-9
 # end, every Newton step stays below the root (the tangent of a convex
 # function lies under it), so the iteration increases monotonically to the
 # root without a safeguard; in log form g is nearly linear and it converges
-# in a few steps even for exponents in the hundreds (daughters almost as wide
+# in a few steps even for exponents in the thousands (daughters almost as wide
 # as the parent). The cap only guards against a stall.
 _NEWTON_MAX_ITER = 100
 _NEWTON_RTOL = 4 * np.finfo(float).eps
@@ -821,7 +821,7 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, cols, n
     o1, o2 = murray_optimal_angles(r0, r1, r2)
     e1, e2 = np.abs(a1 - o1), np.abs(a2 - o2)
     # The larger deviation; as Python's max(e1, e2): NaN when e1 is NaN, e1 when only e2 is.
-    dev = np.where(e2 > e1, e2, e1)
+    dev = np.maximum(e1, e2)  # NaN when either angle is undefined
     o1, o2, dev = (np.where(multi, np.nan, x) for x in (o1, o2, dev))  # optimum defined for two daughters
 
     # Flow split and shear.

@@ -98,6 +98,44 @@ def test_generalised_exponent_three_daughters():
     assert sum(v**x for v in rs) == pytest.approx(1.0, abs=1e-10)
 
 
+# Ratios from the cube-law range out to daughters almost as wide as the
+# parent (exponents in the thousands) and very unequal pairs. All are well
+# conditioned: d(sum (r_i/r0)^x)/dx is not tiny at the root, so rounding moves
+# the root by ulps (unlike, say, (1 - 1e-9, 0.5), where any double-precision
+# solver is uncertain in the tenth digit).
+EXTREME_PAIRS = [(0.5, 0.5), (0.9, 0.1), (0.999, 1e-3), (0.9999, 0.9998), (0.3, 1e-6), (0.99, 0.98), (1e-3, 2e-3)]
+
+
+def reference_exponent(ratios):
+    # The defining equation sum (r_i / r0)^x = 1 solved by scipy's brentq to
+    # rounding (rtol at its floor of 4 eps) on [0, ln n / ln(1 / max ratio)],
+    # where the left side falls from n to at most 1.
+    from scipy.optimize import brentq
+
+    ratios = np.asarray(ratios, dtype=float)
+    hi = math.log(len(ratios)) / -math.log(ratios.max())
+    f = lambda x: float(np.sum(ratios**x)) - 1.0  # noqa: E731
+    return hi if f(hi) >= 0 else brentq(f, 0.0, hi, xtol=1e-300, rtol=4 * np.finfo(float).eps, maxiter=500)
+
+
+def test_exponent_matches_a_reference_root_finder_over_extreme_ratios():
+    r0 = 3.0
+    r1 = np.array([a for a, _ in EXTREME_PAIRS]) * r0
+    r2 = np.array([b for _, b in EXTREME_PAIRS]) * r0
+    x = murray_exponent(r0, r1, r2)  # all pairs in one call
+    expected = [reference_exponent([a / r0, b / r0]) for a, b in zip(r1, r2)]
+    assert max(expected) > 1000
+    # Both are converged to rounding: 1e-12 relative leaves room for the
+    # conditioning of the roots (a few hundred ulps).
+    np.testing.assert_allclose(x, expected, rtol=1e-12)
+    for a, b, xe in zip(r1, r2, expected):
+        assert murray_exponent(r0, a, b) == pytest.approx(xe, rel=1e-12)  # scalar call, same value
+    for rs in ([0.8, 0.6, 0.4], [0.999, 0.5, 0.5, 0.01], [0.2] * 5 + [0.7]):
+        assert murray_exponent_multi(2.0, [2.0 * v for v in rs]) == pytest.approx(reference_exponent(rs), rel=1e-12)
+    assert math.isnan(murray_exponent_multi(1.0, [])) and math.isnan(murray_exponent_multi(1.0, [0.5]))
+    assert murray_exponent(np.ones((0, 2)), 0.5, 0.5).shape == (0, 2)
+
+
 def test_optimal_angles_symmetric_cube_law():
     # Murray 1926 (J Gen Physiol 9:835): symmetric cube law, cos theta =
     # r0^2 / (2 r1^2) = 2^(-1/3): 37.47 deg per daughter, 74.9 deg between.
@@ -583,6 +621,104 @@ def test_levels_murray_groups_by_parent_level():
     assert out["murray_exponent_median"].tolist() == [3.0, 2.0, 4.0]  # NaN left out
     assert out["murray_ratio_median"].tolist() == pytest.approx([1.0, 1.0, 1.1])
     assert out["bifurcations_flagged_fraction"].tolist() == [0.0, 0.5, 0.0]
+
+
+# --- curved centrelines and many junctions at once ---
+
+def reference_direction(points, scale, skip=1.0, fit=3.0, samples=17):
+    """The fit of the module notes written out with numpy, one segment end:
+    points from the node outward, repeated points dropped, the window
+    resampled evenly in arc length, principal axis oriented away from the node."""
+    step = np.sqrt((np.diff(points, axis=0) ** 2).sum(axis=1))
+    pts = points[np.r_[True, step > 0]]
+    arc = np.r_[0.0, np.cumsum(step[step > 0])]
+    hi, lo = min(fit * scale, 0.5 * arc[-1]), skip * scale
+    from_node = not hi > lo
+    s = np.linspace(0.0 if from_node else lo, hi, samples)
+    sample = np.column_stack([np.interp(s, arc, pts[:, a]) for a in range(3)])
+    d = np.linalg.svd(sample - sample.mean(axis=0))[2][0]
+    return -d if np.dot(d, sample[-1] - (pts[0] if from_node else sample[0])) < 0 else d
+
+
+@pytest.mark.parametrize("towards", [False, True])
+def test_curved_daughter_direction_is_the_principal_axis_of_the_window(towards):
+    # Daughter 1 follows a circular arc of radius 15 um (about 3 junction
+    # radii), sampled unevenly with repeated points, so its direction depends
+    # on the window, the resampling and the fit: it must equal the reference
+    # fit of the same centreline to rounding.
+    segs, nodes, lines = star(murray_junction())
+    c = np.array([50.0, 50.0, 50.0])
+    t = np.sort(np.r_[np.linspace(0.0, 1.6, 40) ** 1.5, 0.3, 0.3, 0.7])  # uneven, two repeats
+    bend = 15.0
+    arc = c + bend * np.c_[np.sin(t), np.zeros_like(t), 1.0 - np.cos(t)]  # starts along +z at the node
+    lines[1] = arc[::-1] if towards else arc
+    if towards:
+        segs.loc[1, ["node_from", "node_to"]] = [2, 0]
+    nodes.loc[nodes["node_id"] == 2, ["z_um", "y_um", "x_um"]] = arc[-1]
+    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    d1 = reference_direction(arc, 6.0)  # junction radius: the parent's 6 um
+    expected = math.degrees(math.acos(np.clip(np.dot(d1, -unit(PARENT_DIR)), -1.0, 1.0)))
+    assert row["angle_daughter1_deg"] == pytest.approx(expected, abs=1e-9)
+    assert abs(row["angle_daughter1_deg"] - THETA) > 1.0  # the arc really moves it
+
+
+def random_star(rng, offset):
+    """A junction with 3-5 arms of random width, length, orientation and flow,
+    wiggly centrelines with repeated points, sometimes a self-loop; node and
+    segment ids shifted by ``offset``."""
+    n_arms = int(rng.integers(3, 6))
+    with_flow, with_level = rng.random() < 0.7, rng.random() < 0.6
+    arms = []
+    for _ in range(n_arms):
+        a = {"direction": rng.normal(size=3), "radius": float(rng.choice([2.0, 3.0, 3.0, 4.5, 6.0])),
+             "towards": bool(rng.random() < 0.5), "length": float(rng.uniform(2.0, 60.0)),
+             "n_points": int(rng.integers(2, 30)), "wss": float(rng.choice([0.0, 1.0, 2.5]))}
+        if with_flow and rng.random() < 0.9:
+            a["flow"] = float(rng.choice([-5.0, -2.0, 0.0, 2.0, 5.0]))  # ties and zeros on purpose
+        if with_level and rng.random() < 0.8:
+            a["level"] = int(rng.integers(0, 3))
+        arms.append(a)
+    extra = []
+    if rng.random() < 0.3:
+        t = np.linspace(0, 2 * np.pi, 40)
+        loop_line = np.array([50.0, 50.0, 50.0]) + 5.0 * np.c_[np.zeros_like(t), 1 - np.cos(t), np.sin(t)]
+        extra.append({"row": {"segment_id": 99, "node_from": 0, "node_to": 0, "length_um": 31.4, "radius_um": 2.0,
+                              "radius_n_points": 20, "radius_sd_um": 0.1}, "line": loop_line})
+    segs, nodes, lines = star(arms, extra=extra)
+    for k in range(len(lines)):
+        pts = lines[k].copy()
+        pts[1:-1] += rng.normal(scale=0.3, size=pts[1:-1].shape)  # wiggle, ends kept on the nodes
+        j = int(rng.integers(0, len(pts)))
+        lines[k] = np.insert(pts, j, pts[j], axis=0)  # a repeated point
+    segs["segment_id"] += offset
+    segs["node_from"] += offset
+    segs["node_to"] += offset
+    nodes["node_id"] += offset
+    return segs, nodes, lines
+
+
+def test_many_junctions_at_once_equal_each_alone():
+    # The junctions are analysed all at once; each row must not depend on the
+    # other junctions in the graph: the table of 60 disjoint random junctions
+    # equals the rows of each junction analysed on its own.
+    rng = np.random.default_rng(7)
+    stars = [random_star(rng, 1000 * (k + 1)) for k in reversed(range(60))]  # node ids out of order
+    alone = [analyze_bifurcations(*s, config=None) for s in stars]
+    segs = pd.concat([s for s, _, _ in stars], ignore_index=True)
+    segs["level"] = pd.array(segs["level"], dtype="Int64")
+    nodes = pd.concat([n for _, n, _ in stars], ignore_index=True)
+    lines = [c for _, _, cs in stars for c in cs]
+    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    expected = pd.concat([t for t, _ in alone], ignore_index=True).sort_values("node_id").reset_index(drop=True)
+    pd.testing.assert_frame_equal(table, expected, check_exact=False, rtol=1e-12)
+    assert set(table["parent_by"]) == {"flow", "level", "radius"}  # every parent rule was exercised
+    assert table["confidence_notes"].str.contains("self_loop").any()
+    assert table["confidence_notes"].str.contains("converging").any()
+    assert (table["daughter_segments"].str.count(";") >= 2).any()
+    for key in ("bifurcations", "bifurcations_flagged", "bifurcations_low_confidence", "multifurcations"):
+        assert summary[key] == sum(s[key] for _, s in alone)
+    for code in REASON_CODES:
+        assert summary["flag_counts"][code] == sum(s["flag_counts"][code] for _, s in alone)
 
 
 # ---------------------------------------------------------------------------
