@@ -820,7 +820,6 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, cols, n
     oop = _out_of_plane_deg(t0, t1, t2)
     o1, o2 = murray_optimal_angles(r0, r1, r2)
     e1, e2 = np.abs(a1 - o1), np.abs(a2 - o2)
-    # The larger deviation; as Python's max(e1, e2): NaN when e1 is NaN, e1 when only e2 is.
     dev = np.maximum(e1, e2)  # NaN when either angle is undefined
     o1, o2, dev = (np.where(multi, np.nan, x) for x in (o1, o2, dev))  # optimum defined for two daughters
 

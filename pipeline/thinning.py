@@ -94,8 +94,18 @@ _LOG2_TABLE = np.zeros(32, np.int64)
 for _k in range(32):
     _LOG2_TABLE[(((1 << _k) * 0x077CB531) & 0xFFFFFFFF) >> 27] = _k
 
-# Sub-iteration directions -z, +z, -y, +y, -x, +x as neighbour indices.
+# Sub-iteration directions -z, +z, -y, +y, -x, +x as neighbour indices;
+# for a face neighbour index j of p, the direction in which p lies as seen
+# from that neighbour (-1 for other j); and _UP_TO[d, e], the directions
+# that come up to e in the sub-iterations after d, as a 6-bit mask.
 _DIR_J = np.array([4, 22, 10, 16, 12, 14], np.int64)
+_FACE_DIR = np.full(27, -1, np.int64)
+_FACE_DIR[_DIR_J] = [1, 0, 3, 2, 5, 4]
+_UP_TO = np.zeros((6, 6), np.int64)
+for _d in range(6):
+    for _e in range(6):
+        for _t in range(1, (_e - _d - 1) % 6 + 2):
+            _UP_TO[_d, _e] |= 1 << ((_d + _t) % 6)
 
 
 # Below this many items a step runs on the calling thread only.
@@ -105,6 +115,9 @@ _PAR_MIN = 4096
 # tasks (see _run).
 _LIST_MIN = 1024
 _ROOM_DIV = 4
+
+# Rows per tile of the cache-friendly processing order (see _task).
+_TILE_ROWS = 32
 
 # A parallel sub-iteration splits the planes into regions of at least this
 # many planes (see _run).
@@ -209,10 +222,10 @@ def _divmod(p, div, inv):
 
 
 @numba.njit(cache=True)
-def _select_count(flat, lists, d, lo, hi, nz, ny, nx, key, cnt, c):
+def _select_count(flat, lists, d, lo, hi, nz, ny, nx, ntile, rows, key, cnt, c):
     # Take entries lo:hi off list d. The candidates (neither deleted nor
-    # clean) get a key, subfield-major then plane, counted per chunk c;
-    # the others get -1.
+    # clean) get a key (subfield s, plane, row tile for pass s; see _task),
+    # counted per chunk c; the others get -1.
     bit = _INQ0 << d
     nyx = ny * nx
     inv_nyx = 1.0 / nyx
@@ -229,7 +242,8 @@ def _select_count(flat, lists, d, lo, hi, nz, ny, nx, key, cnt, c):
             continue
         z, r = _divmod(np.int64(p), nyx, inv_nyx)
         y, x = _divmod(r, nx, inv_nx)
-        k = ((z & 1) * 4 + (y & 1) * 2 + (x & 1)) * nz + z
+        s = (z & 1) * 4 + (y & 1) * 2 + (x & 1)
+        k = (s * nz + z) * ntile + (y + s) // rows
         key[i] = k
         cnt[c, k] += 1
 
@@ -298,11 +312,12 @@ def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, out, meta):
     A voxel needs one list entry only: for the first direction, in the order
     of the coming sub-iterations, in which its neighbour is background; its
     test there leaves it deleted or clean. A deletion can make a neighbour
-    dirty (a clean one) or give it an earlier such direction (a face
-    neighbour), so these get listed there unless they are already. Entries
-    go to ``out`` as ``8 * voxel + direction``; ``meta`` holds their number
-    and the count per direction. Returns the index of the first voxel not
-    done because ``out`` could overflow (``hi`` when done).
+    dirty (a clean one: list it there) or give it a new such direction, the
+    deleted voxel's (a face neighbour: list it there if that comes before
+    every direction it is listed for). Entries go to ``out`` as
+    ``8 * voxel + direction``; ``meta`` holds their number and the count per
+    direction. Returns the index of the first voxel not done because ``out``
+    could overflow (``hi`` when done).
     """
     room = out.shape[0] - 26
     for i in range(lo, hi):
@@ -317,14 +332,22 @@ def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, out, meta):
             v ^= low
             j = _LOG2_TABLE[((low * 0x077CB531) & 0xFFFFFFFF) >> 27]  # index of the lowest set bit
             m = p + offs[j]
-            b = flat[m]
-            e = d_now
-            for t in range(1, 7):
-                e = d_now + t
-                if e >= 6:
-                    e -= 6
-                if not flat[m + doff[e]] & _FG:
-                    break
+            b = np.int64(flat[m])
+            e_p = _FACE_DIR[j]  # where p lies as seen from m, if a face neighbour
+            if b & _CLEAN:
+                e = e_p
+                for t in range(1, 7):
+                    e = d_now + t
+                    if e >= 6:
+                        e -= 6
+                    if e == e_p or not flat[m + doff[e]] & _FG:
+                        break
+            elif e_p < 0 or (b >> 2) & _UP_TO[d_now, e_p]:
+                # Relisted already (it was clean), or listed for p's
+                # direction or an earlier one.
+                continue
+            else:
+                e = e_p
             eb = _INQ0 << e
             nb = b & ~_CLEAN
             if not b & eb:
@@ -348,61 +371,71 @@ def _clear_range(flat, cand, lo, hi, res):
 
 
 @numba.njit(cache=True)
-def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, out, meta, lo_z, hi_z, state):
-    """Run subfield pass s on planes ``lo_z[s]:hi_z[s]`` for s = 0..7, in wavefront order.
+def _task(flat, cand, kstart, nz, ntile, offs, doff, d_now, res, visit, out, meta, lo_z, hi_z, state):
+    """Run subfield pass s on planes ``lo_z[s]:hi_z[s]`` for s = 0..7, in cache-friendly order.
 
-    Pass s on plane z runs after pass s - 1 on planes z - 1 to z + 1 and
-    before pass s + 1 on them, which is all the result depends on: this
-    equals running the passes one after another, while the few planes being
-    worked on stay in cache. ``kstart[s * nz + z]`` is the first candidate of
-    subfield s in plane z. Relisted voxels go to ``out``/``meta`` (see
-    _relist).
+    The result depends only on pass s at a voxel running after pass s - 1
+    and before pass s + 1 at its 26-neighbours. So instead of one pass after
+    the other over the whole volume, the rows are cut into tiles of ``rows``
+    rows (the caller's choice), shifted back by s rows for pass s, and tile by tile the passes run
+    as a wavefront over the planes: pass s on plane z together with pass
+    s - 1 on plane z + 1. The planes and rows being worked on stay in cache.
+    ``kstart[(s * nz + z) * ntile + tile]`` is the first candidate of such a
+    unit. Relisted voxels go to ``out``/``meta`` (see _relist).
 
-    ``state`` is (step, s, i, deleted): where to resume and the running
-    count of deletions. Stops early, returning False, when ``out`` is full;
-    the caller grows it and calls again.
+    ``state`` is (tile, step, s, i, deleted, done): where to resume and the
+    running count of deletions. Stops early, returning False, when ``out``
+    is full; the caller grows it and calls again.
     """
     base = lo_z[0]
     n_steps = 0
     for s in range(8):
         n_steps = max(n_steps, hi_z[s] - base + s)
-    step = state[0]
-    s0 = state[1]
-    i0 = state[2]
-    while step < n_steps:
-        for s in range(s0, 8):
-            z = base + step - s
-            if z < lo_z[s] or z >= hi_z[s]:
-                continue
-            lo = kstart[s * nz + z]
-            hi = kstart[s * nz + z + 1]
-            if hi == lo:
-                continue
-            if i0 < 0:
-                nd = _test_range(flat, cand, lo, hi, offs, res, visit)
-                if nd == 0:
+    tile = state[0]
+    step = state[1]
+    s0 = state[2]
+    i0 = state[3]
+    while tile < ntile:
+        while step < n_steps:
+            for s in range(s0, 8):
+                z = base + step - s
+                if z < lo_z[s] or z >= hi_z[s]:
                     continue
-                state[3] += nd
-                i = lo
-            else:  # resuming inside this unit's relisting
-                i = i0
-                i0 = -1
-            i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, out, meta)
-            if i < hi:
-                state[0] = step
-                state[1] = s
-                state[2] = i
-                return False
-        s0 = 0
-        step += 1
-    state[0] = n_steps
+                k = (s * nz + z) * ntile + tile
+                lo = kstart[k]
+                hi = kstart[k + 1]
+                if hi == lo:
+                    continue
+                if i0 < 0:
+                    nd = _test_range(flat, cand, lo, hi, offs, res, visit)
+                    if nd == 0:
+                        continue
+                    state[4] += nd
+                    i = lo
+                else:  # resuming inside this unit's relisting
+                    i = i0
+                    i0 = -1
+                i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, out, meta)
+                if i < hi:
+                    state[0] = tile
+                    state[1] = step
+                    state[2] = s
+                    state[3] = i
+                    return False
+            s0 = 0
+            step += 1
+        step = 0
+        tile += 1
+    state[0] = ntile
     state[1] = 0
-    state[2] = -1
+    state[2] = 0
+    state[3] = -1
     return True
 
 
 @numba.njit(cache=True, parallel=True)
-def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state):
+def _in_parallel(step, nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, abuf, aoff, meta,
+                 lo_z, hi_z, state):
     """Run one step in ``nchunks`` parallel chunks; all steps share this loop,
     which keeps compile time down.
 
@@ -416,12 +449,12 @@ def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, r
         if step == _BORDER_COUNT or step == _BORDER_FILL:
             _border_slab(flat, c + 1, ny, nx, doff, cnt, lists, step == _BORDER_FILL)
         elif step == _SELECT_COUNT:
-            _select_count(flat, lists, d, a, e, nz, ny, nx, visit, cnt, c)
+            _select_count(flat, lists, d, a, e, nz, ny, nx, ntile, rows, visit, cnt, c)
         elif step == _SELECT_FILL:
             _select_fill(lists, d, a, e, visit, cand, cnt, c)
         elif step == _TASKS:
             t = lo + c
-            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]], meta[t],
+            state[t, 5] = _task(flat, cand, kstart, nz, ntile, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]], meta[t],
                                 lo_z[t], hi_z[t], state[t])
         else:
             _clear_range(flat, cand, a, e, res)
@@ -516,13 +549,14 @@ def _regions(nz, n_regions):
 
 
 @numba.njit(cache=True)
-def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div):
+def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div, rows):
     """Thin the padded volume ``flat`` in place; returns the number of iterations.
 
     Steps of at least ``par_min`` items run on ``threads`` threads. The
     lists start with ``list_min`` entries plus ``1 / room_div`` of their
     first content to spare, a task's relisting buffer with ``list_min`` plus
-    ``1 + 4 / room_div`` entries per candidate; both grow when full.
+    ``1 + 4 / room_div`` entries per candidate; both grow when full. Tiles of
+    ``rows`` rows order the work (see _task).
     """
     zero = np.int64(0)  # literal arguments would compile one specialisation per value
     nchunks = 4 * threads
@@ -532,7 +566,8 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     n_regions = max(n_regions, 2)
     n_tasks = 2 * n_regions - 1  # and one more for all planes
     lo_z, hi_z = _regions(nz, n_regions)
-    state = np.zeros((n_tasks + 1, 5), np.int64)
+    state = np.zeros((n_tasks + 1, 6), np.int64)
+    ntile = (ny + 6) // rows + 1
     meta = np.zeros((n_tasks + 1, 7), np.int64)
     aoff = np.zeros(n_tasks + 2, np.int64)
     abuf = np.empty(0, np.int64)
@@ -543,10 +578,11 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     res = np.empty(0, np.uint8)
     cand = np.empty(0, idx_probe.dtype)
     visit = np.empty(0, np.int32)
-    kstart = np.zeros(8 * nz + 1, np.int64)
+    n_keys = 8 * nz * ntile
+    kstart = np.zeros(n_keys + 1, np.int64)
     big = parallel and flat.shape[0] >= par_min
     if big:
-        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
+        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, ntile, rows, offs, doff, lists, zero, zero,
                      res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
@@ -567,7 +603,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     cap = longest + longest // room_div + list_min
     lists = np.empty((6, cap), idx_probe.dtype)
     if big:
-        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
+        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, ntile, rows, offs, doff, lists, zero, zero,
                      res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
@@ -576,7 +612,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     cand = np.empty(cap, idx_probe.dtype)
     res = np.empty(cap, np.uint8)  # per candidate: deleted
     visit = np.empty(cap, np.int32)  # per list entry: selection key; then per candidate: neighbours to relist
-    kslot = np.zeros((nchunks, 8 * nz), np.int64)
+    kslot = np.zeros((nchunks, n_keys), np.int64)
     zslot = np.zeros((6, nz), np.int64)
     iterations = 0
     while True:
@@ -596,21 +632,21 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
             big = parallel and n >= par_min
             kslot[:] = 0
             if big:
-                _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, zero,
                              res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
-                _select_count(flat, lists, d, zero, n, nz, ny, nx, visit, kslot, zero)
+                _select_count(flat, lists, d, zero, n, nz, ny, nx, ntile, rows, visit, kslot, zero)
             acc = 0
-            for k in range(8 * nz):
+            for k in range(n_keys):
                 kstart[k] = acc
                 for c in range(nchunks):
                     q = kslot[c, k]
                     kslot[c, k] = acc
                     acc += q
-            kstart[8 * nz] = acc
+            kstart[n_keys] = acc
             n_cand = acc
             if big:
-                _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, zero,
                              res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _select_fill(lists, d, zero, n, visit, cand, kslot, zero)
@@ -628,31 +664,29 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                 size = 0
                 if first_task <= t < last_task:
                     for s in range(8):
-                        size += kstart[s * nz + hi_z[t, s]] - kstart[s * nz + lo_z[t, s]]
+                        size += kstart[(s * nz + hi_z[t, s]) * ntile] - kstart[(s * nz + lo_z[t, s]) * ntile]
                     size += 4 * size // room_div + list_min  # observed: up to 1.7 entries per candidate
                 aoff[t + 1] = aoff[t] + size
                 meta[t, :] = 0
-                state[t, 0] = 0
-                state[t, 1] = 0
-                state[t, 2] = -1
-                state[t, 3] = 0
+                state[t, :] = 0
+                state[t, 3] = -1
             if abuf.shape[0] < aoff[n_tasks + 1]:
                 abuf = np.empty(aoff[n_tasks + 1], np.int64)
             for phase in range(2 if tasks_par else 1):
                 if tasks_par:
                     a = 0 if phase == 0 else n_regions
                     b = n_regions if phase == 0 else n_tasks
-                    _in_parallel(np.int64(_TASKS), b - a, zero, flat, nz, ny, nx, offs, doff, lists, d, a,
+                    _in_parallel(np.int64(_TASKS), b - a, zero, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, a,
                                  res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
                 else:
                     a = n_tasks
                     b = n_tasks + 1
-                    state[a, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[a] : aoff[b]],
+                    state[a, 5] = _task(flat, cand, kstart, nz, ntile, offs, doff, d, res, visit, abuf[aoff[a] : aoff[b]],
                                         meta[a], lo_z[a], hi_z[a], state[a])
                 for t in range(a, b):
-                    while state[t, 4] == 0:
+                    while state[t, 5] == 0:
                         abuf, aoff = _grown_region(abuf, aoff, meta, t)
-                        state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]],
+                        state[t, 5] = _task(flat, cand, kstart, nz, ntile, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]],
                                             meta[t], lo_z[t], hi_z[t], state[t])
             # Move the relisted entries into the lists.
             need = 0
@@ -665,11 +699,11 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                 lists = _grown(lists, lens, need)
             _merge(abuf, aoff, meta, lists, lens, zslot, ny * nx)
             for t in range(n_tasks + 1):
-                deleted += state[t, 3]
+                deleted += state[t, 4]
 
             # The sub-iteration is over: deleted voxels become background.
             if big:
-                _in_parallel(np.int64(_CLEAR), nchunks, n_cand, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                _in_parallel(np.int64(_CLEAR), nchunks, n_cand, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, zero,
                              res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _clear_range(flat, cand, zero, n_cand, res)
@@ -727,7 +761,7 @@ def _thin(mask, threads):
     d = np.arange(-1, 2)
     offs = (d[:, None, None] * (ny * nx) + d[None, :, None] * nx + d[None, None, :]).reshape(-1).astype(np.int64)
     doff = offs[_DIR_J].copy()
-    _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV)
+    _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV, _TILE_ROWS)
     out = np.empty(mask.shape, bool)
     np.bitwise_and(inner, _FG, out=out.view(np.uint8))
     return out
