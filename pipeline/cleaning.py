@@ -14,6 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import cc3d
+import numba
 import numpy as np
 
 from .errors import InputError
@@ -91,8 +92,7 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     # cc3d labels ten times faster than scipy.ndimage.label on large stacks
     # and picks the narrowest label dtype.
     labels, n = cc3d.connected_components(mask, connectivity=26, return_N=True)
-    stats = cc3d.statistics(labels, no_slice_conversion=True)
-    sizes = np.asarray(stats["voxel_counts"], dtype=np.int64)
+    sizes = _label_sizes(labels.reshape(-1), n)
     keep = sizes * voxel_volume >= min_object_volume_um3
     keep[0] = False
     removed = int(n - keep[1:].sum())
@@ -107,13 +107,14 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     if removed:
         mask = keep[labels]
     del labels
-    # Tight bounding box of what is kept, from the per-label boxes.
-    boxes = np.asarray(stats["bounding_boxes"], dtype=np.int64)[keep]  # rows: zmin, zmax, ymin, ymax, xmin, xmax
-    # One voxel of background is kept around it (where the volume allows), so
-    # that later steps treat the crop's faces correctly: a face with a
-    # background margin is tissue, a face on the volume's edge is a cut.
-    box = [slice(max(int(boxes[:, 2 * a].min()) - 1, 0), min(int(boxes[:, 2 * a + 1].max()) + 2, mask.shape[a]))
-           for a in range(3)]
+    # Tight bounding box of what is kept, plus one voxel of background (where
+    # the volume allows), so that later steps treat the crop's faces
+    # correctly: a face with a background margin is tissue, a face on the
+    # volume's edge is a cut.
+    box = []
+    for axis in range(3):
+        nz = np.flatnonzero(mask.any(axis=tuple(a for a in range(3) if a != axis)))
+        box.append(slice(max(int(nz[0]) - 1, 0), min(int(nz[-1]) + 2, mask.shape[axis])))
     cropped = np.ascontiguousarray(mask[tuple(box)])
     filled = 0
     if fill_cavities:
@@ -132,6 +133,16 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
         spacing=spacing,
         stats=stats,
     )
+
+
+@numba.njit(cache=True)
+def _label_sizes(flat, n):
+    # A histogram of the labels in one pass; np.bincount would first copy the
+    # label volume to int64 (8 bytes per voxel).
+    out = np.zeros(n + 1, dtype=np.int64)
+    for i in range(flat.size):
+        out[flat[i]] += 1
+    return out
 
 
 def _fill_cavities(mask, *, planar):
