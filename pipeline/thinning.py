@@ -116,9 +116,6 @@ _PAR_MIN = 4096
 _LIST_MIN = 1024
 _ROOM_DIV = 4
 
-# Rows per tile of the cache-friendly processing order (see _task).
-_TILE_ROWS = 32
-
 # A parallel sub-iteration splits the planes into regions of at least this
 # many planes (see _run).
 _REGION_MIN = 18
@@ -222,10 +219,10 @@ def _divmod(p, div, inv):
 
 
 @numba.njit(cache=True)
-def _select_count(flat, lists, d, lo, hi, nz, ny, nx, ntile, rows, key, cnt, c):
+def _select_count(flat, lists, d, lo, hi, nz, ny, nx, key, cnt, c):
     # Take entries lo:hi off list d. The candidates (neither deleted nor
-    # clean) get a key (subfield s, plane, row tile for pass s; see _task),
-    # counted per chunk c; the others get -1.
+    # clean) get a key, subfield-major then plane, counted per chunk c; the
+    # others get -1.
     bit = _INQ0 << d
     nyx = ny * nx
     inv_nyx = 1.0 / nyx
@@ -242,8 +239,7 @@ def _select_count(flat, lists, d, lo, hi, nz, ny, nx, ntile, rows, key, cnt, c):
             continue
         z, r = _divmod(np.int64(p), nyx, inv_nyx)
         y, x = _divmod(r, nx, inv_nx)
-        s = (z & 1) * 4 + (y & 1) * 2 + (x & 1)
-        k = (s * nz + z) * ntile + (y + s) // rows
+        k = ((z & 1) * 4 + (y & 1) * 2 + (x & 1)) * nz + z
         key[i] = k
         cnt[c, k] += 1
 
@@ -315,15 +311,17 @@ def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, out, meta):
     dirty (a clean one: list it there) or give it a new such direction, the
     deleted voxel's (a face neighbour: list it there if that comes before
     every direction it is listed for). Entries go to ``out`` as
-    ``8 * voxel + direction``; ``meta`` holds their number and the count per
-    direction. Returns the index of the first voxel not done because ``out``
-    could overflow (``hi`` when done).
+    ``8 * voxel + direction``; ``meta[0]`` holds their number. Returns the
+    index of the first voxel not done because ``out`` could overflow
+    (``hi`` when done).
     """
     room = out.shape[0] - 26
+    k = meta[0]
     for i in range(lo, hi):
         if not res[i]:
             continue
-        if meta[0] > room:
+        if k > room:
+            meta[0] = k
             return i
         p = cand[i]
         v = np.int64(visit[i])
@@ -351,12 +349,12 @@ def _relist(flat, cand, lo, hi, res, visit, offs, doff, d_now, out, meta):
             eb = _INQ0 << e
             nb = b & ~_CLEAN
             if not b & eb:
-                out[meta[0]] = 8 * np.int64(m) + e
-                meta[0] += 1
-                meta[1 + e] += 1
+                out[k] = 8 * np.int64(m) + e
+                k += 1
                 nb |= eb
             if nb != b:
                 flat[m] = nb
+    meta[0] = k
     return hi
 
 
@@ -371,19 +369,18 @@ def _clear_range(flat, cand, lo, hi, res):
 
 
 @numba.njit(cache=True)
-def _task(flat, cand, kstart, nz, ntile, offs, doff, d_now, res, visit, out, meta, lo_z, hi_z, state):
-    """Run subfield pass s on planes ``lo_z[s]:hi_z[s]`` for s = 0..7, in cache-friendly order.
+def _task(flat, cand, kstart, nz, offs, doff, d_now, res, visit, out, meta, lo_z, hi_z, state):
+    """Run subfield pass s on planes ``lo_z[s]:hi_z[s]`` for s = 0..7, in wavefront order.
 
     The result depends only on pass s at a voxel running after pass s - 1
     and before pass s + 1 at its 26-neighbours. So instead of one pass after
-    the other over the whole volume, the rows are cut into tiles of ``rows``
-    rows (the caller's choice), shifted back by s rows for pass s, and tile by tile the passes run
-    as a wavefront over the planes: pass s on plane z together with pass
-    s - 1 on plane z + 1. The planes and rows being worked on stay in cache.
-    ``kstart[(s * nz + z) * ntile + tile]`` is the first candidate of such a
-    unit. Relisted voxels go to ``out``/``meta`` (see _relist).
+    the other over the whole volume, the passes run as a wavefront over the
+    planes, pass s on plane z together with pass s - 1 on plane z + 1, and
+    the few planes being worked on stay in cache. ``kstart[s * nz + z]`` is
+    the first candidate of subfield s in plane z. Relisted voxels go to
+    ``out``/``meta`` (see _relist).
 
-    ``state`` is (tile, step, s, i, deleted, done): where to resume and the
+    ``state`` is (step, s, i, deleted, done): where to resume and the
     running count of deletions. Stops early, returning False, when ``out``
     is full; the caller grows it and calls again.
     """
@@ -391,50 +388,43 @@ def _task(flat, cand, kstart, nz, ntile, offs, doff, d_now, res, visit, out, met
     n_steps = 0
     for s in range(8):
         n_steps = max(n_steps, hi_z[s] - base + s)
-    tile = state[0]
-    step = state[1]
-    s0 = state[2]
-    i0 = state[3]
-    while tile < ntile:
-        while step < n_steps:
-            for s in range(s0, 8):
-                z = base + step - s
-                if z < lo_z[s] or z >= hi_z[s]:
+    step = state[0]
+    s0 = state[1]
+    i0 = state[2]
+    while step < n_steps:
+        for s in range(s0, 8):
+            z = base + step - s
+            if z < lo_z[s] or z >= hi_z[s]:
+                continue
+            lo = kstart[s * nz + z]
+            hi = kstart[s * nz + z + 1]
+            if hi == lo:
+                continue
+            if i0 < 0:
+                nd = _test_range(flat, cand, lo, hi, offs, res, visit)
+                if nd == 0:
                     continue
-                k = (s * nz + z) * ntile + tile
-                lo = kstart[k]
-                hi = kstart[k + 1]
-                if hi == lo:
-                    continue
-                if i0 < 0:
-                    nd = _test_range(flat, cand, lo, hi, offs, res, visit)
-                    if nd == 0:
-                        continue
-                    state[4] += nd
-                    i = lo
-                else:  # resuming inside this unit's relisting
-                    i = i0
-                    i0 = -1
-                i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, out, meta)
-                if i < hi:
-                    state[0] = tile
-                    state[1] = step
-                    state[2] = s
-                    state[3] = i
-                    return False
-            s0 = 0
-            step += 1
-        step = 0
-        tile += 1
-    state[0] = ntile
+                state[3] += nd
+                i = lo
+            else:  # resuming inside this unit's relisting
+                i = i0
+                i0 = -1
+            i = _relist(flat, cand, i, hi, res, visit, offs, doff, d_now, out, meta)
+            if i < hi:
+                state[0] = step
+                state[1] = s
+                state[2] = i
+                return False
+        s0 = 0
+        step += 1
+    state[0] = n_steps
     state[1] = 0
-    state[2] = 0
-    state[3] = -1
+    state[2] = -1
     return True
 
 
 @numba.njit(cache=True, parallel=True)
-def _in_parallel(step, nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, abuf, aoff, meta,
+def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, res, cand, visit, cnt, kstart, abuf, aoff, meta,
                  lo_z, hi_z, state):
     """Run one step in ``nchunks`` parallel chunks; all steps share this loop,
     which keeps compile time down.
@@ -449,12 +439,12 @@ def _in_parallel(step, nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, li
         if step == _BORDER_COUNT or step == _BORDER_FILL:
             _border_slab(flat, c + 1, ny, nx, doff, cnt, lists, step == _BORDER_FILL)
         elif step == _SELECT_COUNT:
-            _select_count(flat, lists, d, a, e, nz, ny, nx, ntile, rows, visit, cnt, c)
+            _select_count(flat, lists, d, a, e, nz, ny, nx, visit, cnt, c)
         elif step == _SELECT_FILL:
             _select_fill(lists, d, a, e, visit, cand, cnt, c)
         elif step == _TASKS:
             t = lo + c
-            state[t, 5] = _task(flat, cand, kstart, nz, ntile, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]], meta[t],
+            state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]], meta[t],
                                 lo_z[t], hi_z[t], state[t])
         else:
             _clear_range(flat, cand, a, e, res)
@@ -493,21 +483,27 @@ def _merge(abuf, aoff, meta, lists, lens, zslot, nyx):
     """Append the relisted entries of all tasks to the lists, each batch in plane order.
 
     Plane order keeps the next selection's reads of the volume sequential.
+    Returns the lists, grown if needed.
     """
     inv = 1.0 / nyx
-    zslot[:] = 0
+    zslot.fill(0)
     for t in range(aoff.shape[0] - 1):
         for k in range(aoff[t], aoff[t] + meta[t, 0]):
             v = abuf[k]
             z, _ = _divmod(v >> 3, nyx, inv)
             zslot[v & 7, z] += 1
+    new_lens = np.empty(6, np.int64)
+    need = 0
     for e in range(6):
         pos = lens[e]
         for z in range(zslot.shape[1]):
             k = zslot[e, z]
             zslot[e, z] = pos
             pos += k
-        lens[e] = pos
+        new_lens[e] = pos
+        need = max(need, pos)
+    if need > lists.shape[1]:
+        lists = _grown(lists, lens, need)
     for t in range(aoff.shape[0] - 1):
         for k in range(aoff[t], aoff[t] + meta[t, 0]):
             v = abuf[k]
@@ -516,6 +512,9 @@ def _merge(abuf, aoff, meta, lists, lens, zslot, nyx):
             e = v & 7
             lists[e, zslot[e, z]] = m
             zslot[e, z] += 1
+    for e in range(6):
+        lens[e] = new_lens[e]
+    return lists
 
 
 @numba.njit(cache=True)
@@ -549,16 +548,15 @@ def _regions(nz, n_regions):
 
 
 @numba.njit(cache=True)
-def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div, rows):
+def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div):
     """Thin the padded volume ``flat`` in place; returns the number of iterations.
 
     Steps of at least ``par_min`` items run on ``threads`` threads. The
     lists start with ``list_min`` entries plus ``1 / room_div`` of their
     first content to spare, a task's relisting buffer with ``list_min`` plus
-    ``1 + 4 / room_div`` entries per candidate; both grow when full. Tiles of
-    ``rows`` rows order the work (see _task).
+    ``1 + 4 / room_div`` entries per candidate; both grow when full.
     """
-    zero = np.int64(0)  # literal arguments would compile one specialisation per value
+    zero = nz - nz  # a literal 0 argument would compile a specialisation of its own
     nchunks = 4 * threads
     parallel = threads > 1
     n_regions = min(4 * threads, (nz - 2) // _REGION_MIN)
@@ -566,9 +564,8 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     n_regions = max(n_regions, 2)
     n_tasks = 2 * n_regions - 1  # and one more for all planes
     lo_z, hi_z = _regions(nz, n_regions)
-    state = np.zeros((n_tasks + 1, 6), np.int64)
-    ntile = (ny + 6) // rows + 1
-    meta = np.zeros((n_tasks + 1, 7), np.int64)
+    state = np.zeros((n_tasks + 1, 5), np.int64)
+    meta = np.zeros((n_tasks + 1, 1), np.int64)  # per task: relisted entries
     aoff = np.zeros(n_tasks + 2, np.int64)
     abuf = np.empty(0, np.int64)
 
@@ -578,11 +575,11 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     res = np.empty(0, np.uint8)
     cand = np.empty(0, idx_probe.dtype)
     visit = np.empty(0, np.int32)
-    n_keys = 8 * nz * ntile
+    n_keys = 8 * nz
     kstart = np.zeros(n_keys + 1, np.int64)
     big = parallel and flat.shape[0] >= par_min
     if big:
-        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, ntile, rows, offs, doff, lists, zero, zero,
+        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
                      res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
@@ -603,7 +600,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     cap = longest + longest // room_div + list_min
     lists = np.empty((6, cap), idx_probe.dtype)
     if big:
-        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, ntile, rows, offs, doff, lists, zero, zero,
+        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
                      res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
     else:
         for z in range(1, nz - 1):
@@ -630,12 +627,12 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
             # Candidates: the listed voxels that are neither deleted nor
             # clean, by subfield and within a subfield by plane.
             big = parallel and n >= par_min
-            kslot[:] = 0
+            kslot.fill(0)
             if big:
-                _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, zero,
+                _in_parallel(np.int64(_SELECT_COUNT), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
                              res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
-                _select_count(flat, lists, d, zero, n, nz, ny, nx, ntile, rows, visit, kslot, zero)
+                _select_count(flat, lists, d, zero, n, nz, ny, nx, visit, kslot, zero)
             acc = 0
             for k in range(n_keys):
                 kstart[k] = acc
@@ -644,9 +641,9 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                     kslot[c, k] = acc
                     acc += q
             kstart[n_keys] = acc
-            n_cand = acc
+            n_cand = kstart[n_keys]
             if big:
-                _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, zero,
+                _in_parallel(np.int64(_SELECT_FILL), nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, zero,
                              res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _select_fill(lists, d, zero, n, visit, cand, kslot, zero)
@@ -664,46 +661,38 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                 size = 0
                 if first_task <= t < last_task:
                     for s in range(8):
-                        size += kstart[(s * nz + hi_z[t, s]) * ntile] - kstart[(s * nz + lo_z[t, s]) * ntile]
+                        size += kstart[s * nz + hi_z[t, s]] - kstart[s * nz + lo_z[t, s]]
                     size += 4 * size // room_div + list_min  # observed: up to 1.7 entries per candidate
                 aoff[t + 1] = aoff[t] + size
                 meta[t, :] = 0
                 state[t, :] = 0
-                state[t, 3] = -1
+                state[t, 2] = -1
             if abuf.shape[0] < aoff[n_tasks + 1]:
                 abuf = np.empty(aoff[n_tasks + 1], np.int64)
             for phase in range(2 if tasks_par else 1):
                 if tasks_par:
                     a = 0 if phase == 0 else n_regions
                     b = n_regions if phase == 0 else n_tasks
-                    _in_parallel(np.int64(_TASKS), b - a, zero, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, a,
+                    _in_parallel(np.int64(_TASKS), b - a, zero, flat, nz, ny, nx, offs, doff, lists, d, a,
                                  res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
                 else:
                     a = n_tasks
                     b = n_tasks + 1
-                    state[a, 5] = _task(flat, cand, kstart, nz, ntile, offs, doff, d, res, visit, abuf[aoff[a] : aoff[b]],
+                    state[a, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[a] : aoff[b]],
                                         meta[a], lo_z[a], hi_z[a], state[a])
                 for t in range(a, b):
-                    while state[t, 5] == 0:
+                    while state[t, 4] == 0:
                         abuf, aoff = _grown_region(abuf, aoff, meta, t)
-                        state[t, 5] = _task(flat, cand, kstart, nz, ntile, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]],
+                        state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]],
                                             meta[t], lo_z[t], hi_z[t], state[t])
             # Move the relisted entries into the lists.
-            need = 0
-            for e in range(6):
-                total = lens[e]
-                for t in range(n_tasks + 1):
-                    total += meta[t, 1 + e]
-                need = max(need, total)
-            if need > lists.shape[1]:
-                lists = _grown(lists, lens, need)
-            _merge(abuf, aoff, meta, lists, lens, zslot, ny * nx)
+            lists = _merge(abuf, aoff, meta, lists, lens, zslot, ny * nx)
             for t in range(n_tasks + 1):
-                deleted += state[t, 4]
+                deleted += state[t, 3]
 
             # The sub-iteration is over: deleted voxels become background.
             if big:
-                _in_parallel(np.int64(_CLEAR), nchunks, n_cand, flat, nz, ny, nx, ntile, rows, offs, doff, lists, d, zero,
+                _in_parallel(np.int64(_CLEAR), nchunks, n_cand, flat, nz, ny, nx, offs, doff, lists, d, zero,
                              res, cand, visit, kslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             else:
                 _clear_range(flat, cand, zero, n_cand, res)
@@ -751,17 +740,43 @@ def thin(mask, *, threads=None):
         numba.set_num_threads(previous)
 
 
+@numba.njit(cache=True, parallel=True)
+def _planes(src, dst, load):
+    """Copy a bool volume (as uint8) into the padded working volume (load), or the object bit back out."""
+    if load:
+        nz, ny, nx = src.shape
+        for z in prange(nz + 2):
+            for y in range(ny + 2):
+                if z == 0 or z == nz + 1 or y == 0 or y == ny + 1:
+                    for x in range(nx + 2):
+                        dst[z, y, x] = 0
+                else:
+                    dst[z, y, 0] = 0
+                    dst[z, y, nx + 1] = 0
+                    for x in range(nx):
+                        dst[z, y, x + 1] = src[z - 1, y - 1, x]
+    else:
+        nz, ny, nx = dst.shape
+        for z in prange(nz):
+            for y in range(ny):
+                for x in range(nx):
+                    dst[z, y, x] = src[z + 1, y + 1, x + 1] & _FG
+
+
 def _thin(mask, threads):
     nz, ny, nx = (s + 2 for s in mask.shape)
-    work = np.zeros((nz, ny, nx), np.uint8)
-    inner = work[1:-1, 1:-1, 1:-1]
-    np.not_equal(mask, 0, out=inner.view(bool))
+    if mask.dtype == bool and mask.flags.c_contiguous:
+        work = np.empty((nz, ny, nx), np.uint8)
+        _planes(mask.view(np.uint8), work, True)
+    else:
+        work = np.zeros((nz, ny, nx), np.uint8)
+        np.not_equal(mask, 0, out=work[1:-1, 1:-1, 1:-1].view(bool))
     flat = work.reshape(-1)
     idx = np.int32 if flat.size < 2**31 else np.int64
     d = np.arange(-1, 2)
     offs = (d[:, None, None] * (ny * nx) + d[None, :, None] * nx + d[None, None, :]).reshape(-1).astype(np.int64)
     doff = offs[_DIR_J].copy()
-    _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV, _TILE_ROWS)
+    _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV)
     out = np.empty(mask.shape, bool)
-    np.bitwise_and(inner, _FG, out=out.view(np.uint8))
+    _planes(work, out.view(np.uint8), False)
     return out

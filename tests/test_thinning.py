@@ -353,13 +353,12 @@ def naive_thin(x):
             return v[1:-1, 1:-1, 1:-1]
 
 
-@pytest.mark.parametrize("tile_rows", [32, 3])
 @pytest.mark.parametrize("par_min", [None, 64])
 @pytest.mark.parametrize("name", ["blob_small", "blob_odd_shape", "torus_small", "tubes_small", "blob_tall", "tubes_tall"])
-def test_work_lists_match_whole_volume_scans(name, par_min, tile_rows, monkeypatch):
+def test_work_lists_match_whole_volume_scans(name, par_min, monkeypatch):
     # Exactly the result of the plain algorithm: the work lists, clean flags,
-    # relisting and the processing order (wavefront over planes, row tiles,
-    # parallel regions) change nothing.
+    # relisting and the processing order (wavefront over planes, parallel
+    # regions) change nothing.
     x = {
         "blob_small": lambda: blob((22, 22, 22), 7, 1.8, 0.5),
         "blob_odd_shape": lambda: blob((21, 19, 23), 8, 1.6, 0.45),
@@ -369,7 +368,6 @@ def test_work_lists_match_whole_volume_scans(name, par_min, tile_rows, monkeypat
         "blob_tall": lambda: blob((61, 17, 19), 9, 1.7, 0.5),
         "tubes_tall": lambda: capsule((58, 16, 16), (2, 8, 8), (55, 8, 8), 4.5) | capsule((58, 16, 16), (20, 2, 2), (40, 14, 13), 2.5),
     }[name]()
-    monkeypatch.setattr(thinning, "_TILE_ROWS", tile_rows)
     threads = 1
     if par_min is not None:
         if numba.config.NUMBA_NUM_THREADS < 2:
