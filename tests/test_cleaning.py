@@ -50,3 +50,27 @@ def test_nothing_left_is_an_input_error():
     m[2:4, 2:4, 2:4] = True
     with pytest.raises(InputError, match="min_object_volume_um3"):
         clean_mask(m, spacing=(1, 1, 1), min_object_volume_um3=1000.0)
+
+
+def test_speck_inside_a_filled_cavity_is_filled_with_it():
+    m = np.zeros((24, 24, 24), bool)
+    m[2:22, 2:22, 2:22] = True
+    m[6:18, 6:18, 6:18] = False  # an enclosed cavity...
+    m[11:13, 11:13, 11:13] = True  # ...with a small piece floating in it
+    c = clean_mask(m, spacing=(1, 1, 1), min_object_volume_um3=100.0)
+    # The result is the solid block: scipy's binary_fill_holes of the input.
+    sl = tuple(slice(o, o + n) for o, n in zip(c.offset, c.mask.shape))
+    out = np.zeros_like(m)
+    out[sl] = c.mask
+    assert np.array_equal(out, ndi.binary_fill_holes(m))
+    assert c.stats["removed_pieces"] == 1
+
+
+def test_hollow_speck_is_removed_not_filled():
+    m = np.zeros((30, 30, 30), bool)
+    m[:, 10:16, 10:16] = True  # a vessel crossing the volume
+    m[22:27, 22:27, 22:27] = True
+    m[24, 24, 24] = False  # a small hollow speck
+    c = clean_mask(m, spacing=(1, 1, 1), min_object_volume_um3=200.0)
+    assert c.stats["removed_pieces"] == 1 and c.stats["filled_cavity_voxels"] == 0
+    assert c.stats["vessel_voxels"] == 30 * 36
