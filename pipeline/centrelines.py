@@ -36,6 +36,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import edt
+import numba
 import numpy as np
 from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
@@ -124,16 +125,29 @@ def _edge_pad(mask, border_faces, width):
 
 
 def _ridge(distance, voxels):
-    best = distance[tuple(voxels.T)]
-    hi = np.array(distance.shape) - 1
-    nd = voxels.shape[1]
-    for off in np.ndindex(*(3,) * nd):
-        o = np.array(off) - 1
-        if not o.any():
-            continue
-        idx = np.clip(voxels + o, 0, hi)
-        np.maximum(best, distance[tuple(idx.T)], out=best)
-    return best
+    """Largest distance among each voxel and its 26 (8 in 2-D) neighbours."""
+    if distance.ndim == 2:
+        d3 = distance[None]
+        v3 = np.column_stack([np.zeros(len(voxels), dtype=np.int64), voxels])
+    else:
+        d3, v3 = distance, voxels
+    return _ridge3(d3, np.ascontiguousarray(v3, dtype=np.int64))
+
+
+@numba.njit(cache=True)
+def _ridge3(d, vox):
+    nz, ny, nx = d.shape
+    out = np.empty(len(vox), dtype=np.float64)
+    for i in range(len(vox)):
+        z, y, x = vox[i, 0], vox[i, 1], vox[i, 2]
+        best = 0.0
+        for a in range(max(z - 1, 0), min(z + 2, nz)):
+            for b in range(max(y - 1, 0), min(y + 2, ny)):
+                for c in range(max(x - 1, 0), min(x + 2, nx)):
+                    if d[a, b, c] > best:
+                        best = d[a, b, c]
+        out[i] = best
+    return out
 
 
 def _single_coarse_axis(spacing, max_anisotropy):
@@ -195,25 +209,56 @@ def _two_label_distance(crop, offset, shape, spacing):
 
 
 def tissue_quantiles(flat, n_tissue):
-    """Median and 95th percentile of tissue distances, by in-place partition.
+    """Median and 95th percentile of tissue distances.
 
     ``flat`` holds 0 for vessel voxels and a positive distance for each of
     the ``n_tissue`` tissue voxels, so the tissue quantiles (numpy's default,
     linear definition) are order statistics of ``flat`` shifted by the vessel
-    count; ``flat`` is reordered in place, no copy is made.
+    count. They are selected exactly in two compiled passes (a histogram
+    locates the bin of each order statistic, then that bin's values are
+    sorted), without copying the map.
     """
     if n_tissue <= 0:
         return 0.0, 0.0
     n_vessel = flat.size - n_tissue
     ranks = [n_vessel + q * (n_tissue - 1) for q in (0.5, 0.95)]
-    kth = sorted({int(np.floor(r)) for r in ranks} | {min(int(np.floor(r)) + 1, flat.size - 1) for r in ranks})
-    flat.partition(kth)
+    wanted = sorted({int(np.floor(r)) for r in ranks} | {min(int(np.floor(r)) + 1, flat.size - 1) for r in ranks})
+    values = dict(zip(wanted, _order_statistics(flat, np.asarray(wanted, dtype=np.int64))))
     out = []
     for r in ranks:
         lo = int(np.floor(r))
         hi = min(lo + 1, flat.size - 1)
-        out.append(float(flat[lo] + (r - lo) * (flat[hi] - flat[lo])))
+        out.append(float(values[lo] + (r - lo) * (values[hi] - values[lo])))
     return out[0], out[1]
+
+
+@numba.njit(cache=True)
+def _order_statistics(flat, ks):
+    """Exact k-th smallest values of ``flat`` for sorted ranks ``ks``."""
+    nbins = 1 << 16
+    hi = 0.0
+    for v in flat:
+        if v > hi:
+            hi = v
+    scale = (nbins - 1) / hi if hi > 0 else 0.0
+    counts = np.zeros(nbins, dtype=np.int64)
+    for v in flat:
+        counts[int(v * scale)] += 1
+    cum = np.cumsum(counts)
+    out = np.empty(len(ks), dtype=flat.dtype)
+    for j in range(len(ks)):
+        k = ks[j]
+        b = np.searchsorted(cum, k, side="right")
+        before = cum[b - 1] if b > 0 else 0
+        vals = np.empty(counts[b], dtype=flat.dtype)
+        m = 0
+        for v in flat:
+            if int(v * scale) == b:
+                vals[m] = v
+                m += 1
+        vals.sort()
+        out[j] = vals[k - before]
+    return out
 
 
 def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
