@@ -17,10 +17,11 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 
+# (script, full-size arguments, quick arguments)
 BENCHES = [
-    ("bench_analyze.py", [], ["--size", "192"]),
+    ("bench_analyze.py", ["--size", "512"], ["--size", "192"]),
     ("bench_thinning.py", [], ["--quick"]),
-    ("bench_flow.py", [], ["--segments", "20000"]),
+    ("bench_flow.py", ["--segments", "1000000", "--timeout", "120"], ["--segments", "20000"]),
 ]
 
 

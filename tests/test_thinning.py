@@ -75,9 +75,8 @@ def cube2(shape, at):
 
 
 def y_junction():
-    return capsule((30, 40, 40), (15, 8, 8), (15, 20, 20), 3.5) | capsule((30, 40, 40), (15, 20, 20), (15, 32, 10), 3.5) | capsule(
-        (30, 40, 40), (15, 20, 20), (15, 20, 34), 3.5
-    )
+    shape, hub = (30, 40, 40), (15, 20, 20)
+    return capsule(shape, (15, 8, 8), hub, 3.5) | capsule(shape, hub, (15, 32, 10), 3.5) | capsule(shape, hub, (15, 20, 34), 3.5)
 
 
 CASES = {
@@ -178,9 +177,11 @@ def test_curves_are_one_voxel_thin(name):
     assert not ndi.binary_erosion(s, np.ones((2, 2, 2), bool), border_value=0).any(), "a 2x2x2 block is left"
 
 
-@pytest.mark.parametrize(
-    "name", ["capsule_x", "capsule_oblique", "tube_through_array", "y_junction", "torus", "blob_a", "blob_b", "blob_c", "shell_with_cavity"]
-)
+SKIMAGE_COMPARED = ["capsule_x", "capsule_oblique", "tube_through_array", "y_junction", "torus", "blob_a", "blob_b", "blob_c",
+                    "shell_with_cavity"]
+
+
+@pytest.mark.parametrize("name", SKIMAGE_COMPARED)
 def test_size_close_to_skimage(name):
     # Not for the slab and the ball: both are valid curve skeletons of a
     # box or ball, but short and of arbitrary length (slab: 21 voxels here,
@@ -365,10 +366,14 @@ def test_work_lists_match_whole_volume_scans(name, par_min, monkeypatch):
         "blob_small": lambda: blob((22, 22, 22), 7, 1.8, 0.5),
         "blob_odd_shape": lambda: blob((21, 19, 23), 8, 1.6, 0.45),
         "torus_small": lambda: torus(8, 3),
-        "tubes_small": lambda: capsule((17, 23, 25), (8, 3, 3), (8, 20, 21), 3.2) | capsule((17, 23, 25), (2, 12, 20), (15, 12, 2), 2.6),
+        "tubes_small": lambda: (
+            capsule((17, 23, 25), (8, 3, 3), (8, 20, 21), 3.2) | capsule((17, 23, 25), (2, 12, 20), (15, 12, 2), 2.6)
+        ),
         # Tall enough (>= 38 padded planes) for the parallel region tasks.
         "blob_tall": lambda: blob((61, 17, 19), 9, 1.7, 0.5),
-        "tubes_tall": lambda: capsule((58, 16, 16), (2, 8, 8), (55, 8, 8), 4.5) | capsule((58, 16, 16), (20, 2, 2), (40, 14, 13), 2.5),
+        "tubes_tall": lambda: (
+            capsule((58, 16, 16), (2, 8, 8), (55, 8, 8), 4.5) | capsule((58, 16, 16), (20, 2, 2), (40, 14, 13), 2.5)
+        ),
     }[name]()
     threads = 1
     if par_min is not None:
