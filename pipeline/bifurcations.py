@@ -104,6 +104,7 @@ import numba
 import numpy as np
 import pandas as pd
 
+from ._checks import segment_end_rows
 from .errors import ConfigError, InputError
 
 __all__ = [
@@ -635,17 +636,7 @@ def analyze_bifurcations(
     _require(nodes, "nodes", ("node_id",))
     points, offsets = _check_centrelines(centrelines, len(segments))
 
-    ids = pd.Index(nodes["node_id"].to_numpy(dtype=np.int64))
-    if not ids.is_unique:
-        raise InputError("nodes: node_id values must be unique")
-    seg_id = segments["segment_id"].to_numpy(dtype=np.int64)
-    if not pd.Index(seg_id).is_unique:
-        raise InputError("segments: segment_id values must be unique")
-    u = ids.get_indexer(segments["node_from"].to_numpy(dtype=np.int64))
-    v = ids.get_indexer(segments["node_to"].to_numpy(dtype=np.int64))
-    if (u < 0).any() or (v < 0).any():
-        k = int(np.flatnonzero((u < 0) | (v < 0))[0])
-        raise InputError(f"segments: segment_id {int(seg_id[k])} refers to a node id missing from nodes")
+    ids, seg_id, u, v = segment_end_rows(segments, nodes)
     radius = _float_column(segments, "radius_um")
     if not np.all(np.isfinite(radius) & (radius > 0)):
         k = int(np.flatnonzero(~(np.isfinite(radius) & (radius > 0)))[0])

@@ -96,6 +96,7 @@ from scipy import sparse
 from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
+from ._checks import segment_end_rows
 from .errors import InputError, SolverError
 
 __all__ = [
@@ -605,17 +606,7 @@ def solve_flow(
             raise InputError(f"{name}: missing column(s) {', '.join(missing)}")
     warn: list[str] = []
 
-    ids = pd.Index(nodes["node_id"].to_numpy(dtype=np.int64))
-    if not ids.is_unique:
-        raise InputError("nodes: node_id values must be unique")
-    seg_id = segments["segment_id"].to_numpy(dtype=np.int64)
-    if not pd.Index(seg_id).is_unique:
-        raise InputError("segments: segment_id values must be unique")
-    u = ids.get_indexer(segments["node_from"].to_numpy(dtype=np.int64))
-    v = ids.get_indexer(segments["node_to"].to_numpy(dtype=np.int64))
-    if (u < 0).any() or (v < 0).any():
-        k = int(np.flatnonzero((u < 0) | (v < 0))[0])
-        raise InputError(f"segments: segment_id {int(seg_id[k])} refers to a node id missing from nodes")
+    ids, seg_id, u, v = segment_end_rows(segments, nodes)
     length_um = _positive(segments, "length_um")
     radius_um = _positive(segments, "radius_um")
     if "radius_hydraulic_um" in segments.columns:
