@@ -15,7 +15,7 @@ skeleton show whether the topology was kept.
 
 Usage::
 
-    python benchmarks/bench_thinning.py [--size 512] [--threads 2] [--repeat 1] [--quick]
+    python benchmarks/bench_thinning.py [--size 512] [--threads 2] [--repeat 1] [--passive] [--quick]
 
 Prints a markdown table; ``benchmarks/run.py`` collects it into RESULTS.md.
 Target (2-core machine, 512^3): ``thin`` with 2 threads at least 3x faster
@@ -27,6 +27,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import subprocess
 import sys
 import time
@@ -98,25 +99,28 @@ def make_bed(size, fraction, seed=0):
     return path
 
 
-def _result(cmd):
-    proc = subprocess.run([sys.executable, "-c", *cmd], capture_output=True, text=True, cwd=HERE.parent)
+def _result(cmd, env=None):
+    env = None if env is None else {**os.environ, **env}
+    proc = subprocess.run([sys.executable, "-c", *cmd], capture_output=True, text=True, cwd=HERE.parent, env=env)
     if proc.returncode != 0:
         raise RuntimeError(f"{cmd[1:]} failed:\n{proc.stderr[-2000:]}")
     line = [ln for ln in proc.stdout.splitlines() if ln.startswith("RESULT ")][-1]
     return json.loads(line[7:])
 
 
-def bench_volume(name, path, threads, repeat):
+def bench_volume(name, path, threads, repeat, passive):
     info = _result([INFO, str(path)])
     n_vox = math.prod(info["shape"])
-    runs = [("skimage skeletonize", "skimage", 1, 1)]
-    runs += [("thin", "thin", 1, repeat)]
+    runs = [("skimage skeletonize", "skimage", 1, 1, None)]
+    runs += [("thin", "thin", 1, repeat, None)]
     if threads > 1:
-        runs += [("thin", "thin", threads, repeat)]
+        runs += [("thin", "thin", threads, repeat, None)]
+        if passive:
+            runs += [("thin, OMP_WAIT_POLICY=PASSIVE", "thin", threads, repeat, {"OMP_WAIT_POLICY": "PASSIVE"})]
     rows = []
     ref = None
-    for label, route, nthr, rep in runs:
-        r = _result([ROUTE, route, str(path), str(nthr), str(rep)])
+    for label, route, nthr, rep, env in runs:
+        r = _result([ROUTE, route, str(path), str(nthr), str(rep)], env)
         if ref is None:
             ref = r["seconds"]
         kept = r["euler"] == info["euler"] and r["components"] == info["components"] and r["subset"]
@@ -136,6 +140,8 @@ def main(argv=None):
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--repeat", type=int, default=1, help="runs of thin per route (best is reported)")
     ap.add_argument("--quick", action="store_true", help="a 128^3 bed only, for a smoke run")
+    ap.add_argument("--passive", action="store_true",
+                    help="also time thin with OpenMP threads that sleep instead of spinning when idle (helps on busy machines)")
     args = ap.parse_args(argv)
     size = 128 if args.quick else args.size
 
@@ -148,7 +154,7 @@ def main(argv=None):
 
     heads, rows = [], []
     for name, path in volumes:
-        head, r = bench_volume(name, path, args.threads, args.repeat)
+        head, r = bench_volume(name, path, args.threads, args.repeat, args.passive)
         heads.append(head)
         rows += r
     lines = [
