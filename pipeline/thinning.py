@@ -70,9 +70,22 @@ the number of border voxels.
 
 from __future__ import annotations
 
-import numba
-import numpy as np
-from numba import prange
+import os
+
+# Idle OpenMP threads (numba's usual threading layer) spin by default. On a
+# machine where other processes use the cores, a spinning thread takes the
+# time slice that another of ours needs at the next barrier, and each of the
+# few hundred parallel steps of a thinning then costs a time slice: measured
+# on a busy 2-core machine, a 128^3 volume took 0.63 s on two threads against
+# 0.06 s on one, and 0.05 s with sleeping idle threads, which cost nothing
+# measurable on an idle machine. So idle threads sleep unless the environment
+# says otherwise. This acts only if set before the OpenMP runtime loads, i.e.
+# before the first parallel numba call of the process.
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
+import numba  # noqa: E402
+import numpy as np  # noqa: E402
+from numba import prange  # noqa: E402
 
 __all__ = ["thin"]
 
@@ -138,11 +151,12 @@ _LIST_MIN = 1024
 _ROOM_DIV = 4
 
 # A parallel sub-iteration splits the planes into regions of at least this
-# many planes (see _run).
+# many planes: a boundary task spans 16 planes and reads and writes one more
+# on each side, and two of them must not meet (see _regions).
 _REGION_MIN = 18
 
 # Steps that run in parallel chunks (see _in_parallel).
-_BORDER_COUNT, _BORDER_FILL, _SELECT_COUNT, _SELECT_FILL, _TASKS, _CLEAR = range(6)
+_BORDER_COUNT, _BORDER_FILL, _SELECT_COUNT, _SELECT_FILL, _TASKS, _MERGE_COUNT, _MERGE_FILL, _CLEAR = range(8)
 
 
 # ------------------------------------------------------------ simple points
@@ -452,7 +466,8 @@ def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, r
 
     Border steps: chunk c is slab c + 1. Selection and clearing: chunk c
     covers items ``lo + n*c//nchunks`` to ``lo + n*(c+1)//nchunks``. Tasks:
-    chunk c runs task ``lo + c`` with its own relisting buffer.
+    chunk c runs task ``lo + c`` with its own relisting buffer. Merging:
+    chunk c moves task c's buffer.
     """
     for c in prange(nchunks):
         a = lo + (n * c) // nchunks
@@ -463,6 +478,8 @@ def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, r
             _select_count(flat, lists, d, a, e, nz, ny, nx, visit, cnt, c)
         elif step == _SELECT_FILL:
             _select_fill(lists, d, a, e, visit, cand, cnt, c)
+        elif step == _MERGE_COUNT or step == _MERGE_FILL:
+            _merge_task(abuf, aoff, meta, c, cnt, lists, nz, ny * nx, step == _MERGE_FILL)
         elif step == _TASKS:
             t = lo + c
             state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]], meta[t],
@@ -473,6 +490,7 @@ def _in_parallel(step, nchunks, n, flat, nz, ny, nx, offs, doff, lists, d, lo, r
 
 @numba.njit(cache=True)
 def _grown(lists, lens, need):
+    # The lists with room for at least ``need`` entries each, keeping their content.
     cap = lists.shape[1]
     new = np.empty((lists.shape[0], max(need, 2 * cap)), lists.dtype)
     for r in range(lists.shape[0]):
@@ -500,42 +518,19 @@ def _grown_region(abuf, aoff, meta, t):
 
 
 @numba.njit(cache=True)
-def _merge(abuf, aoff, meta, lists, lens, zslot, nyx):
-    """Append the relisted entries of all tasks to the lists, each batch in plane order.
-
-    Plane order keeps the next selection's reads of the volume sequential.
-    Returns the lists, grown if needed.
-    """
+def _merge_task(abuf, aoff, meta, t, slot, lists, nz, nyx, fill):
+    # Count (fill False) or move (fill True, from the slots) the entries task
+    # t relisted, per list and plane: slot[t, e * nz + z].
     inv = 1.0 / nyx
-    zslot.fill(0)
-    for t in range(aoff.shape[0] - 1):
-        for k in range(aoff[t], aoff[t] + meta[t, 0]):
-            v = abuf[k]
-            z, _ = _divmod(v >> 3, nyx, inv)
-            zslot[v & 7, z] += 1
-    new_lens = np.empty(6, np.int64)
-    need = 0
-    for e in range(6):
-        pos = lens[e]
-        for z in range(zslot.shape[1]):
-            k = zslot[e, z]
-            zslot[e, z] = pos
-            pos += k
-        new_lens[e] = pos
-        need = max(need, pos)
-    if need > lists.shape[1]:
-        lists = _grown(lists, lens, need)
-    for t in range(aoff.shape[0] - 1):
-        for k in range(aoff[t], aoff[t] + meta[t, 0]):
-            v = abuf[k]
-            m = v >> 3
-            z, _ = _divmod(m, nyx, inv)
-            e = v & 7
-            lists[e, zslot[e, z]] = m
-            zslot[e, z] += 1
-    for e in range(6):
-        lens[e] = new_lens[e]
-    return lists
+    for k in range(aoff[t], aoff[t] + meta[t, 0]):
+        v = abuf[k]
+        m = v >> 3
+        e = v & 7
+        z, _ = _divmod(m, nyx, inv)
+        j = e * nz + z
+        if fill:
+            lists[e, slot[t, j]] = m
+        slot[t, j] += 1
 
 
 @numba.njit(cache=True)
@@ -631,7 +626,8 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     res = np.empty(cap, np.uint8)  # per candidate: deleted
     visit = np.empty(cap, np.int32)  # per list entry: selection key; then per candidate: neighbours to relist
     kslot = np.zeros((nchunks, n_keys), np.int64)
-    zslot = np.zeros((6, nz), np.int64)
+    zslot = np.zeros((n_tasks + 1, 6 * nz), np.int64)
+    new_lens = np.zeros(6, np.int64)
     iterations = 0
     while True:
         iterations += 1
@@ -706,8 +702,33 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                         abuf, aoff = _grown_region(abuf, aoff, meta, t)
                         state[t, 4] = _task(flat, cand, kstart, nz, offs, doff, d, res, visit, abuf[aoff[t] : aoff[t + 1]],
                                             meta[t], lo_z[t], hi_z[t], state[t])
-            # Move the relisted entries into the lists.
-            lists = _merge(abuf, aoff, meta, lists, lens, zslot, ny * nx)
+            # Append the relisted entries to the lists, each batch in plane
+            # order (which keeps the next selection's reads sequential).
+            zslot.fill(0)
+            if tasks_par:
+                _in_parallel(np.int64(_MERGE_COUNT), n_tasks, zero, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                             res, cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+            else:
+                _merge_task(abuf, aoff, meta, n_tasks, zslot, lists, nz, ny * nx, np.bool_(False))
+            need = 0
+            for e in range(6):
+                pos = lens[e]
+                for z in range(nz):
+                    for t in range(n_tasks + 1):
+                        k = zslot[t, e * nz + z]
+                        zslot[t, e * nz + z] = pos
+                        pos += k
+                new_lens[e] = pos
+                need = max(need, pos)
+            if need > lists.shape[1]:
+                lists = _grown(lists, lens, need)
+            if tasks_par:
+                _in_parallel(np.int64(_MERGE_FILL), n_tasks, zero, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                             res, cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+            else:
+                _merge_task(abuf, aoff, meta, n_tasks, zslot, lists, nz, ny * nx, np.bool_(True))
+            for e in range(6):
+                lens[e] = new_lens[e]
             for t in range(n_tasks + 1):
                 deleted += state[t, 3]
 
