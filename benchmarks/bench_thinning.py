@@ -86,17 +86,11 @@ print("RESULT " + json.dumps({"shape": list(mask.shape), "foreground": int(np.co
 
 
 def make_bed(size, fraction, seed=0):
-    import numpy as np
+    # The same cached volume as bench_analyze.py, so both measure one bed.
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_analyze import make_volume
 
-    from pipeline import synthetic
-
-    WORK.mkdir(exist_ok=True)
-    path = WORK / f"bed_{size}_{fraction:g}_{seed}.npy"
-    if not path.exists():
-        net = synthetic.capillary_bed(shape_um=(size, size, size), vessel_fraction=fraction, seed=seed)
-        mask, _ = synthetic.rasterize(net, spacing=(1, 1, 1), shape=(size, size, size))
-        np.save(path, mask)
-    return path
+    return make_volume(size, fraction, seed)
 
 
 def _result(cmd, env=None):
