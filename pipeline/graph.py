@@ -271,7 +271,10 @@ def build_graph(centrelines):
         node_border.append(centrelines.on_border[ends])
         n_nodes += len(ends)
     flat, starts, stops, offs, first_vox, last_vox = _trace(adj.indptr, adj.indices.astype(np.int64), node_of)
-    node_pos = list(node_pos)
+    # Nodes found so far (junction clusters, then ends), as flat arrays;
+    # loop nodes are appended after tracing.
+    base_pos = np.vstack(node_pos) if node_pos else np.zeros((0, 3))
+    base_rad = np.concatenate(node_rad) if node_rad else np.zeros(0)
     seg_nodes, seg_path, seg_radii = {}, {}, {}
     dropped_loops = 0
     sid = 0
@@ -294,14 +297,14 @@ def build_graph(centrelines):
             if u == v and len(inner) < 3:
                 dropped_loops += 1
                 continue
-            path = np.vstack([_node_position(u, node_pos, n_nodes), pos[inner], _node_position(v, node_pos, n_nodes)])
-            radii = np.r_[_node_value(u, node_rad), rad[inner], _node_value(v, node_rad)]
+            path = np.vstack([base_pos[u][None, :], pos[inner], base_pos[v][None, :]])
+            radii = np.r_[base_rad[u], rad[inner], base_rad[v]]
         seg_nodes[sid] = (u, v)
         seg_path[sid] = path
         seg_radii[sid] = radii
         sid += 1
-    all_pos = np.vstack(node_pos + ([np.asarray(extra_pos)] if extra_pos else [])) if (node_pos or extra_pos) else np.zeros((0, 3))
-    all_rad = np.concatenate(node_rad + ([np.asarray(extra_rad)] if extra_rad else [])) if (node_rad or extra_rad) else np.zeros(0)
+    all_pos = np.vstack([base_pos] + ([np.asarray(extra_pos)] if extra_pos else []))
+    all_rad = np.concatenate([base_rad] + ([np.asarray(extra_rad)] if extra_rad else []))
     all_border = np.concatenate(node_border + ([np.asarray(extra_border, bool)] if extra_border else [])) if (node_border or extra_border) else np.zeros(0, bool)
     g = VesselGraph(
         node_pos_um=all_pos,
@@ -314,23 +317,6 @@ def build_graph(centrelines):
         counts={"centreline_voxels": int(m), "junction_artefact_loops": dropped_loops},
     )
     return g
-
-
-def _node_position(n, node_pos, n_nodes):
-    # node_pos is a list of blocks; look up without stacking per call.
-    for block in node_pos:
-        if n < len(block):
-            return block[n][None, :]
-        n -= len(block)
-    raise IndexError(n)
-
-
-def _node_value(n, node_vals):
-    for block in node_vals:
-        if n < len(block):
-            return block[n]
-        n -= len(block)
-    raise IndexError(n)
 
 
 def _polyline_length(p):
