@@ -157,6 +157,7 @@ def _cmd_synth(args):
         raise InputError(f"output '{out}' exists; pass --overwrite to replace it")
     if args.kind not in synthetic.SYNTH_KINDS:
         raise InputError(f"synth kind: expected one of {', '.join(synthetic.SYNTH_KINDS)}, got '{args.kind}'")
+    out.parent.mkdir(parents=True, exist_ok=True)
     mask, truth = synthetic.synthesize(args.kind, spacing=tuple(args.spacing), seed=args.seed,
                                        roughness=args.roughness, specks=args.specks, holes=args.holes)
     synthetic.write_volume(out, mask, spacing=tuple(args.spacing), truth=truth)

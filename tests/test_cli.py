@@ -132,9 +132,9 @@ def test_usage_errors_exit_2():
 
 
 def test_synth_writes_volume_and_truth(tmp_path):
-    out = tmp_path / "t.tif"
+    out = tmp_path / "new" / "t.tif"  # a folder that does not exist yet
     assert main(["synth", "tube", "-o", str(out), "--spacing", "2", "1", "1"]) == 0
-    assert out.exists() and (tmp_path / "t.truth.json").exists()
+    assert out.exists() and (out.parent / "t.truth.json").exists()
     assert main(["synth", "tube", "-o", str(out)]) == 2  # exists, no --overwrite
 
 
