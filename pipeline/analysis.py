@@ -26,7 +26,7 @@ from . import cleaning, centrelines, flow as flow_step, graph as graph_step, lev
 from .config import load_config
 from .errors import InputError
 
-__all__ = ["Analysis", "analyze"]
+__all__ = ["Analysis", "analyze", "analyze_file"]
 
 
 @dataclass
@@ -253,3 +253,82 @@ def to_networkx(segments, nodes):
     for row in segments.to_dict("records"):
         G.add_edge(int(row["node_from"]), int(row["node_to"]), key=int(row["segment_id"]), **row)
     return G
+
+
+def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, inlets=(), outlets=(),
+                 progress=None, warn=None, run_info=None, memory_limit_bytes=None):
+    """Read one mask file, analyse it and write its result folder.
+
+    Parameters
+    ----------
+    path : str or Path
+        Mask file (any format :func:`pipeline.reading.read_mask` reads).
+    outdir : str or Path
+        Result folder, written atomically (see :mod:`pipeline.tables`).
+    spacing : sequence of float, optional
+        ``(dz, dy, dx)`` µm overriding the file's metadata.
+    config : dict or path, optional
+        Validated with :func:`pipeline.config.load_config`.
+    overwrite : bool
+        Replace a non-empty ``outdir``.
+    inlets, outlets : sequence, optional
+        Passed to :func:`analyze`.
+    progress : callable, optional
+        ``progress(step, seconds)`` after each step, ``"reading"`` first.
+    warn : callable, optional
+        ``warn(message)`` for every warning as it arises.
+    run_info : dict, optional
+        Extra entries for ``run.json`` (the command line, batch bookkeeping).
+    memory_limit_bytes : int, optional
+        Memory the analysis may use; overrides ``input.max_memory_gb``.
+
+    Returns
+    -------
+    outdir : Path
+        The result folder.
+    result : Analysis
+        The analysis that was written.
+
+    Raises
+    ------
+    InputError
+        For unreadable or invalid input, or a non-empty ``outdir`` without
+        ``overwrite``; nothing is written then.
+    """
+    import datetime as _dt
+    import platform
+    from pathlib import Path as _Path
+
+    from . import __version__, reading, tables
+
+    cfg = load_config(config)
+    tables.check_outdir(outdir, overwrite=overwrite)
+    t0 = time.perf_counter()
+    limit = memory_limit_bytes
+    if limit is None and cfg["input"]["max_memory_gb"] is not None:
+        limit = int(cfg["input"]["max_memory_gb"] * 2**30)
+    img = reading.read_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"], memory_limit_bytes=limit)
+    for w in img.warnings:
+        if warn is not None:
+            warn(w)
+    read_s = time.perf_counter() - t0
+    if progress is not None:
+        progress("reading", read_s)
+    result = analyze(img.mask, spacing=img.spacing, config=cfg, planar=img.planar, inlets=inlets, outlets=outlets,
+                     progress=progress)
+    for w in result.run["warnings"]:
+        if warn is not None:
+            warn(w)
+    result.run["timings_s"] = {"reading": round(read_s, 4), **result.run["timings_s"]}
+    result.run["warnings"] = list(img.warnings) + list(result.run["warnings"])
+    info = {
+        "vesselflow_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "input": {"path": str(_Path(path).resolve()), "sha256": img.sha256, "dtype": img.original_dtype,
+                  "axes": img.axes_found},
+        "spacing_um": list(img.spacing),
+        "spacing_source": img.spacing_source,
+        "python": platform.python_version(),
+        **(run_info or {}),
+    }
+    return tables.write_result(result, outdir, run_info=info, overwrite=overwrite), result

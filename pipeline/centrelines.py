@@ -41,11 +41,10 @@ import numpy as np
 from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
 
+from ._parallel import threads as _threads
 from .thinning import thin
 
 __all__ = ["Centrelines", "extract_centrelines", "resample_isotropic", "tissue_quantiles"]
-
-_THREADS = 2
 
 
 @dataclass
@@ -102,8 +101,8 @@ def resample_isotropic(mask, *, spacing, target):
         physical frame as the input; the output spans the input's extent.
     """
     spacing = np.asarray(spacing, dtype=float)
-    inside = edt.edt(mask, anisotropy=tuple(spacing), black_border=False, parallel=_THREADS)
-    outside = edt.edt(~mask, anisotropy=tuple(spacing), black_border=False, parallel=_THREADS)
+    inside = edt.edt(mask, anisotropy=tuple(spacing), black_border=False, parallel=_threads())
+    outside = edt.edt(~mask, anisotropy=tuple(spacing), black_border=False, parallel=_threads())
     phi = np.subtract(inside, outside, dtype=np.float32)
     del inside, outside
     out_shape = tuple(int(np.floor((n - 1) * s / target + 1e-9)) + 1 for n, s in zip(mask.shape, spacing))
@@ -174,7 +173,7 @@ def _in_plane_distance(mask, spacing, axis):
         idx = [slice(None)] * mask.ndim
         idx[axis] = k
         dist[tuple(idx)] = edt.edt(np.ascontiguousarray(mask[tuple(idx)]), anisotropy=plane_sp,
-                                   black_border=False, parallel=_THREADS)
+                                   black_border=False, parallel=_threads())
     return dist
 
 
@@ -205,7 +204,7 @@ def _two_label_distance(crop, offset, shape, spacing):
     labels = np.full(tuple(int(n) for n in shape), 2, dtype=np.uint8)
     sl = tuple(slice(o, o + n) for o, n in zip(offset, crop.shape))
     labels[sl][crop] = 1
-    return edt.edt(labels, anisotropy=tuple(spacing), black_border=False, parallel=_THREADS)
+    return edt.edt(labels, anisotropy=tuple(spacing), black_border=False, parallel=_threads())
 
 
 def tissue_quantiles(flat, n_tissue):
@@ -319,7 +318,7 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         rmax = float(np.max(distance, where=work, initial=0.0))
     elif coarse is None:
         full = None
-        distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_THREADS)
+        distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_threads())
         rmax = float(distance.max())
     else:
         full = distance = None

@@ -54,6 +54,7 @@ __all__ = [
     "available_memory_bytes",
     "SUPPORTED_EXTENSIONS",
     "DEFAULT_SPACING_WARNING",
+    "sha256_file",
 ]
 
 SUPPORTED_EXTENSIONS: tuple[str, ...] = (
@@ -1144,7 +1145,8 @@ def _format_of(path: Path, path_text: str) -> str:
     )
 
 
-def _sha256_file(path: Path) -> str:
+def sha256_file(path: str | os.PathLike[str]) -> str:
+    """SHA-256 hex digest of a file's bytes, read in 4 MiB blocks."""
     digest = hashlib.sha256()
     with open(path, "rb") as fp:
         for block in iter(lambda: fp.read(1 << 22), b""):
@@ -1241,7 +1243,7 @@ def read_mask(
         del raw
         if opened.log is not None:
             notes.extend(f"{kind}: {m}" for m in opened.log.messages(logging.WARNING))
-    digest = _sha256_file(p)
+    digest = sha256_file(p)
     return MaskImage(
         mask=mask,
         spacing=spacing3,

@@ -58,3 +58,18 @@ def test_bad_yaml_file(tmp_path):
         load_config(p)
     with pytest.raises(ConfigError, match="not found"):
         load_config(tmp_path / "missing.yaml")
+
+
+@pytest.mark.parametrize("path", sorted((ROOT / "configs").glob("*.yaml")), ids=lambda p: p.name)
+def test_every_shipped_config_is_valid_and_explained(path):
+    # Presets are validated like any user config, and each says why it
+    # departs from the defaults: every preset key sits under a comment.
+    cfg = load_config(path)
+    assert set(cfg) == set(default_config())
+    text = path.read_text(encoding="utf-8")
+    assert text.lstrip().startswith("#")
+    if path.name != "default.yaml":
+        data = yaml.safe_load(text)
+        assert data, "a preset lists at least one setting"
+        changed = {(s, k) for s, kv in data.items() for k in kv}
+        assert all(cfg[s][k] != default_config()[s][k] for s, k in changed), "a preset repeats a default"

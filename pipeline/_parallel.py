@@ -1,0 +1,50 @@
+"""Thread budget of the compiled steps (distance transforms, thinning).
+
+One analysis uses every core it may run on by default. A batch running
+several samples side by side gives each sample its share instead, so that
+workers x threads never exceeds the cores (oversubscribed threads make
+every sample slower).
+"""
+
+from __future__ import annotations
+
+import os
+from contextlib import contextmanager
+
+import numba
+
+__all__ = ["threads", "limit_threads", "available_cores"]
+
+_budget: int | None = None
+
+
+def available_cores() -> int:
+    """Cores this process may run on (its CPU affinity where the OS tells)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def threads() -> int:
+    """Threads a compiled step may use now."""
+    n = _budget if _budget is not None else available_cores()
+    return max(1, min(n, numba.config.NUMBA_NUM_THREADS))
+
+
+@contextmanager
+def limit_threads(n):
+    """Run the enclosed steps with at most ``n`` threads each.
+
+    Sets numba's thread count for the calling thread (numba keeps it per
+    thread) and the budget the distance transforms read.
+    """
+    global _budget
+    previous_budget, previous_numba = _budget, numba.get_num_threads()
+    _budget = max(1, int(n))
+    numba.set_num_threads(threads())
+    try:
+        yield
+    finally:
+        _budget = previous_budget
+        numba.set_num_threads(previous_numba)
