@@ -189,7 +189,34 @@ def validate_config(overrides: Mapping[str, Any] | None) -> dict[str, dict[str, 
                     f"config: unknown key '{sec}.{key}' (known in '{sec}': {', '.join(SCHEMA[sec])})"
                 )
             cfg[sec][key] = SCHEMA[sec][key].check(f"{sec}.{key}", value)
+    _check_root_form(cfg["levels"]["root"])
     return cfg
+
+
+def _check_root_form(root: Any) -> None:
+    """levels.root must read as 'auto', a node id or a position (its node is found later)."""
+    expected = "expected 'auto', 'node:ID', a node id or a position 'z,y,x' in µm"
+    if isinstance(root, bool):
+        raise ConfigError(f"levels.root: {expected}, got {root!r}")
+    if isinstance(root, int):
+        return
+    if isinstance(root, str):
+        text = root.strip().lower()
+        if text == "auto":
+            return
+        if text.startswith("node:"):
+            if text[5:].strip().isdigit():
+                return
+            raise ConfigError(f"levels.root: {expected}, got {root!r}")
+        parts = text.split(",")
+    else:
+        parts = list(root)
+    try:
+        ok = len(parts) == 3 and all(math.isfinite(float(v)) for v in parts)
+    except (TypeError, ValueError):
+        ok = False
+    if not ok:
+        raise ConfigError(f"levels.root: {expected}, got {root!r}")
 
 
 def load_config(source: str | Path | Mapping[str, Any] | None = None) -> dict[str, dict[str, Any]]:

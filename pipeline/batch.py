@@ -1,0 +1,813 @@
+"""Batch processing of a whole study on Dask.
+
+In: a folder of mask files or a sample sheet CSV (``sample_id, path, group``
+and optionally ``spacing_z, spacing_y, spacing_x``, ``root``), a config.
+Out: one result folder per sample under ``OUTDIR/<sample_id>/`` (exactly as
+:func:`pipeline.analysis.analyze_file` writes it) and the study tables:
+
+- ``failures.csv``: ``sample_id, path, step, error`` of every failed sample;
+- ``cohort_summary.csv``: one row per analysed sample, its group and every
+  summary measure (reviewed where a ``review.csv`` exists);
+- ``cohort_segments.parquet``, ``cohort_bifurcations.parquet``: every
+  sample's rows with ``sample_id`` and ``group`` columns;
+- ``group_comparison.csv``: per measure and pair of groups n, mean, sd,
+  median, the difference of means, a Mann-Whitney U test and its
+  Benjamini-Hochberg q-value across measures;
+- ``batch.json``: version, input, config, state and per-sample status.
+
+Samples run as Dask tasks: on an embedded local cluster (one single-threaded
+worker process per core, each with a memory limit) or on an existing cluster
+given by its scheduler address. A sample whose complete result matches its
+input checksum and effective settings is skipped, so an interrupted batch
+resumes where it stopped; result folders are written atomically, so an
+interrupted sample never leaves a folder that looks complete.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import json
+import math
+import os
+import re
+import shutil
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .config import load_config
+from .errors import ConfigError, InputError, VesselflowError
+
+__all__ = ["Sample", "read_sample_sheet", "find_samples", "collect_samples", "run_batch", "BatchResult",
+           "cohort_tables", "group_comparison", "SHEET_COLUMNS", "STUDY_FILES"]
+
+SHEET_COLUMNS = ("sample_id", "path", "group")
+OPTIONAL_COLUMNS = ("spacing_z", "spacing_y", "spacing_x", "root")
+STUDY_FILES = ("failures.csv", "cohort_summary.csv", "cohort_segments.parquet", "cohort_bifurcations.parquet",
+               "group_comparison.csv")
+FAILURE_COLUMNS = ("sample_id", "path", "step", "error")
+COMPARISON_COLUMNS = ("measure", "group_a", "group_b", "n_a", "mean_a", "sd_a", "median_a", "n_b", "mean_b",
+                      "sd_b", "median_b", "difference", "mann_whitney_u", "p_value", "q_value")
+# Order in which one sample's steps run; a failure is charged to the step after
+# the last one that finished.
+STEPS = ("reading", "cleaning", "centrelines", "graph", "measures", "summary", "levels", "flow", "bifurcations",
+         "writing")
+_ID_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
+
+
+@dataclass(frozen=True)
+class Sample:
+    """One row of a study: a mask file, its group and per-sample settings."""
+
+    sample_id: str
+    path: Path
+    group: str
+    spacing: tuple | None = None
+    root: str | None = None
+    origin: str = ""  # where the row came from, for messages
+
+
+@dataclass
+class BatchResult:
+    """What :func:`run_batch` did: per-sample status and the study tables."""
+
+    outdir: Path
+    status: pd.DataFrame  # sample_id, group, path, status, step, error, seconds
+    failures: pd.DataFrame
+    cohort_summary: pd.DataFrame
+    group_comparison: pd.DataFrame
+    interrupted: bool = False
+
+    @property
+    def n_failed(self):
+        return int((self.status["status"] == "failed").sum())
+
+
+# --------------------------------------------------------------------------- #
+# Inputs
+# --------------------------------------------------------------------------- #
+
+
+def _suffix(name):
+    from .reading import SUPPORTED_EXTENSIONS
+
+    low = name.lower()
+    for ext in sorted(SUPPORTED_EXTENSIONS, key=len, reverse=True):
+        if low.endswith(ext):
+            return ext
+    return None
+
+
+def _check_id(sample_id, where):
+    if not _ID_OK.match(sample_id):
+        raise InputError(f"{where}: sample_id must start with a letter or digit and hold only letters, digits, "
+                         f"'.', '_' or '-' (it names the result folder), got '{sample_id}'")
+
+
+def read_sample_sheet(path):
+    """Read and check a sample sheet CSV.
+
+    Parameters
+    ----------
+    path : str or Path
+        CSV with columns ``sample_id, path, group`` and optionally
+        ``spacing_z, spacing_y, spacing_x`` (µm, all three or none) and
+        ``root`` (as the config's ``levels.root``). Relative paths resolve
+        against the sheet's folder.
+
+    Returns
+    -------
+    list of Sample
+
+    Raises
+    ------
+    InputError
+        Naming the line of the first problem: an unknown or missing column,
+        a missing or unsupported file, a duplicate ``sample_id``, a bad
+        spacing or root.
+    """
+    sheet = Path(path)
+    try:
+        text = sheet.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise InputError(f"sample sheet '{sheet}': file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"sample sheet '{sheet}': cannot be read as UTF-8 text ({exc})") from None
+    rows = list(csv.reader(text.splitlines()))
+    if not rows or not any(c.strip() for c in rows[0]):
+        raise InputError(f"sample sheet '{sheet}': expected a header line with {', '.join(SHEET_COLUMNS)}, "
+                         "got an empty file")
+    header = [c.strip() for c in rows[0]]
+    unknown = [c for c in header if c not in SHEET_COLUMNS + OPTIONAL_COLUMNS]
+    if unknown:
+        raise InputError(f"sample sheet '{sheet}' line 1: unknown column '{unknown[0]}'; expected "
+                         f"{', '.join(SHEET_COLUMNS)} and optionally {', '.join(OPTIONAL_COLUMNS)}")
+    missing = [c for c in SHEET_COLUMNS if c not in header]
+    if missing:
+        raise InputError(f"sample sheet '{sheet}' line 1: missing column '{missing[0]}'; expected "
+                         f"{', '.join(SHEET_COLUMNS)}")
+    dup_cols = sorted({c for c in header if header.count(c) > 1})
+    if dup_cols:
+        raise InputError(f"sample sheet '{sheet}' line 1: column '{dup_cols[0]}' appears more than once")
+    spacing_cols = [c for c in ("spacing_z", "spacing_y", "spacing_x") if c in header]
+    if spacing_cols and len(spacing_cols) != 3:
+        raise InputError(f"sample sheet '{sheet}' line 1: expected all of spacing_z, spacing_y, spacing_x or none, "
+                         f"got only {', '.join(spacing_cols)}")
+    samples, seen = [], {}
+    for lineno, raw in enumerate(rows[1:], start=2):
+        if not any(c.strip() for c in raw):
+            continue  # blank lines are harmless
+        where = f"sample sheet '{sheet}' line {lineno}"
+        if len(raw) != len(header):
+            raise InputError(f"{where}: expected {len(header)} fields as in the header, got {len(raw)}")
+        rec = {k: v.strip() for k, v in zip(header, raw)}
+        sid = rec["sample_id"]
+        if not sid:
+            raise InputError(f"{where}: sample_id is empty")
+        _check_id(sid, where)
+        where = f"{where} (sample '{sid}')"
+        if sid in seen:
+            raise InputError(f"{where}: duplicate sample_id, first used on line {seen[sid]}")
+        seen[sid] = lineno
+        if not rec["group"]:
+            raise InputError(f"{where}: group is empty; expected a group name such as 'control'")
+        if not rec["path"]:
+            raise InputError(f"{where}: path is empty")
+        p = Path(rec["path"]).expanduser()
+        if not p.is_absolute():
+            p = sheet.parent / p
+        if not p.is_file():
+            raise InputError(f"{where}: mask file '{rec['path']}' not found (looked for '{p}')")
+        if _suffix(p.name) is None:
+            from .reading import SUPPORTED_EXTENSIONS
+
+            raise InputError(f"{where}: unsupported file type of '{rec['path']}'; expected one of "
+                             + ", ".join(SUPPORTED_EXTENSIONS))
+        spacing = None
+        if spacing_cols:
+            vals = [rec[c] for c in ("spacing_z", "spacing_y", "spacing_x")]
+            if any(vals):
+                if not all(vals):
+                    raise InputError(f"{where}: expected spacing_z, spacing_y and spacing_x all given or all empty")
+                try:
+                    spacing = tuple(float(v) for v in vals)
+                except ValueError:
+                    raise InputError(f"{where}: spacing must be numbers of µm, got {', '.join(vals)}") from None
+                bad = [f"{c}={v}" for c, v in zip(("spacing_z", "spacing_y", "spacing_x"), spacing)
+                       if not (math.isfinite(v) and v > 0)]
+                if bad:
+                    raise InputError(f"{where}: spacing must be positive finite µm, got {', '.join(bad)}")
+        root = rec.get("root") or None
+        if root is not None:
+            try:
+                load_config({"levels": {"root": root}})
+            except ConfigError as exc:
+                raise InputError(f"{where}: root: {exc}") from None
+        samples.append(Sample(sid, p.resolve(), rec["group"], spacing, root, origin=f"line {lineno}"))
+    if not samples:
+        raise InputError(f"sample sheet '{sheet}': expected at least one sample row, got none")
+    return samples
+
+
+def find_samples(folder, *, exclude=None):
+    """Every supported mask file below ``folder``, as samples.
+
+    The group is the first sub-folder a file lies in (``study/control/a.tif``
+    is in group ``control``), or ``all`` for files directly in ``folder``. The
+    sample id is the file name without its extension, prefixed by its
+    sub-folders where two names collide. Hidden files and folders, and
+    ``exclude`` (the batch's own output folder), are skipped.
+    """
+    root = Path(folder).resolve()
+    skip = Path(exclude).resolve() if exclude is not None else None
+    files = []
+    for dirpath, dirnames, filenames in os.walk(root):
+        d = Path(dirpath)
+        dirnames[:] = sorted(n for n in dirnames if not n.startswith(".") and (skip is None or d / n != skip))
+        files.extend(d / n for n in sorted(filenames) if not n.startswith(".") and _suffix(n) is not None)
+    if not files:
+        from .reading import SUPPORTED_EXTENSIONS
+
+        raise InputError(f"input folder '{folder}': expected mask files ({', '.join(SUPPORTED_EXTENSIONS)}), "
+                         "found none")
+    stems = [f.name[: -len(_suffix(f.name))] for f in files]
+    counts = {s: stems.count(s) for s in stems}
+    samples, seen = [], set()
+    for f, stem in zip(files, stems):
+        rel = f.relative_to(root)
+        sid = stem if counts[stem] == 1 else "_".join([*rel.parent.parts, stem])
+        sid = re.sub(r"[^A-Za-z0-9._-]", "_", sid).lstrip("._-") or "sample"
+        if sid in seen:
+            raise InputError(f"input folder '{folder}': two files map to sample id '{sid}' ({rel}); "
+                             "rename one or use a sample sheet")
+        seen.add(sid)
+        group = rel.parts[0] if len(rel.parts) > 1 else "all"
+        samples.append(Sample(sid, f, group, origin=str(rel)))
+    return samples
+
+
+def collect_samples(source, *, exclude=None):
+    """Samples of a folder (:func:`find_samples`) or a CSV sheet (:func:`read_sample_sheet`)."""
+    p = Path(source)
+    if p.is_dir():
+        return find_samples(p, exclude=exclude)
+    if not p.exists():
+        raise InputError(f"batch input '{p}': not found; expected a folder of masks or a sample sheet .csv")
+    if p.suffix.lower() != ".csv":
+        raise InputError(f"batch input '{p}': expected a folder of masks or a sample sheet .csv, got a "
+                         f"'{p.suffix or 'file without extension'}' file")
+    return read_sample_sheet(p)
+
+
+# --------------------------------------------------------------------------- #
+# One sample (runs on a Dask worker)
+# --------------------------------------------------------------------------- #
+
+
+def _canonical(obj):
+    from .tables import _jsonable
+
+    return json.loads(json.dumps(_jsonable(obj)))
+
+
+def _settings(sample, config):
+    cfg = load_config(config)
+    if sample.root is not None:
+        cfg["levels"]["root"] = sample.root
+        cfg = load_config(cfg)
+    return cfg
+
+
+def _is_complete(folder, *, sha256, config, spacing):
+    """Whether ``folder`` holds a complete result of this input and these settings."""
+    from .tables import RESULT_FILES
+
+    if not all((folder / f).is_file() for f in RESULT_FILES):
+        return False
+    try:
+        run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return (run.get("input", {}).get("sha256") == sha256 and run.get("config") == _canonical(config)
+            and run.get("batch", {}).get("spacing_override_um") == (list(spacing) if spacing else None))
+
+
+def _worker_share():
+    """(threads per sample, memory limit in bytes) on the current Dask worker."""
+    from ._parallel import available_cores
+
+    try:
+        from distributed import get_worker
+
+        w = get_worker()
+        slots = max(1, int(w.state.nthreads))
+        limit = getattr(getattr(w, "memory_manager", None), "memory_limit", None)
+    except (ImportError, ValueError, AttributeError):
+        slots, limit = 1, None
+    return max(1, available_cores() // slots), (int(limit) if limit else None)
+
+
+def process_sample(sample, sample_dir, config, *, force=False, threads=None, memory_limit_bytes=None):
+    """Analyse one sample into ``sample_dir`` unless a matching result is there.
+
+    Never raises for a sample's own problems: returns a status record
+    (``status`` is ``done``, ``skipped`` or ``failed``, with the ``step`` and
+    ``error`` of a failure), so that one bad sample fails alone.
+    """
+    from ._parallel import limit_threads
+    from .analysis import analyze_file
+    from .reading import sha256_file
+
+    t0 = time.perf_counter()
+    out = Path(sample_dir)
+    rec = {"sample_id": sample.sample_id, "group": sample.group, "path": str(sample.path), "status": "failed",
+           "step": "reading", "error": "", "seconds": 0.0}
+    done_steps = []
+    cfg = load_config(config)
+    try:
+        cfg = _settings(sample, cfg)
+        sha = sha256_file(sample.path)
+        if not force and _is_complete(out, sha256=sha, config=cfg, spacing=sample.spacing):
+            rec.update(status="skipped", step="", seconds=round(time.perf_counter() - t0, 3))
+            return rec
+        share_threads, share_memory = _worker_share()
+        # A previous review of the same input and settings is kept (the graph
+        # is deterministic, so its node ids still apply); one of a different
+        # input or config is set aside, not lost.
+        old_review = out / "review.csv"
+        review_bytes = old_review.read_bytes() if old_review.is_file() else None
+        same_inputs = review_bytes is not None and _is_complete(out, sha256=sha, config=cfg, spacing=sample.spacing)
+        with limit_threads(threads or share_threads):
+            analyze_file(sample.path, out, spacing=sample.spacing, config=cfg, overwrite=True,
+                         progress=lambda step, s: done_steps.append(step),
+                         memory_limit_bytes=memory_limit_bytes or share_memory,
+                         run_info={"batch": {"sample_id": sample.sample_id, "group": sample.group,
+                                             "spacing_override_um": list(sample.spacing) if sample.spacing else None}})
+        if review_bytes is not None:
+            name = "review.csv" if same_inputs else "review-superseded.csv"
+            (out / name).write_bytes(review_bytes)
+        rec.update(status="done", step="", seconds=round(time.perf_counter() - t0, 3))
+    except Exception as exc:  # one sample's failure must not stop the study
+        rec["step"] = _failed_step(done_steps, cfg)
+        msg = str(exc) if isinstance(exc, VesselflowError) else f"{type(exc).__name__}: {exc}"
+        rec.update(error=" ".join(msg.split()), seconds=round(time.perf_counter() - t0, 3))
+    return rec
+
+
+def _failed_step(done_steps, config):
+    """The step a failure is charged to: the one after the last that finished."""
+    if not done_steps:
+        return "reading"
+    order = [st for st in STEPS if st != "flow" or config["flow"]["enabled"]]
+    last = done_steps[-1]
+    return order[min(order.index(last) + 1, len(order) - 1)] if last in order else "writing"
+
+
+# --------------------------------------------------------------------------- #
+# The engine
+# --------------------------------------------------------------------------- #
+
+
+class _Progress:
+    """Counts on one terminal line, or plain log lines when not on a terminal."""
+
+    def __init__(self, total, *, quiet=False, stream=None, workers=None):
+        self.total, self.quiet = total, quiet
+        self.stream = stream or sys.stderr
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.done = self.failed = self.skipped = 0
+        self.start = time.monotonic()
+        self.computed_s = []
+        self.workers = workers
+
+    def _eta(self):
+        left = self.total - self.done - self.failed - self.skipped
+        if not left or not self.computed_s:
+            return ""
+        elapsed = time.monotonic() - self.start
+        per = elapsed / max(1, self.done + self.failed)
+        secs = per * left
+        return f", ETA {int(secs // 60)}m{int(secs % 60):02d}s"
+
+    def line(self):
+        left = self.total - self.done - self.failed - self.skipped
+        return (f"{self.done + self.skipped}/{self.total} done ({self.skipped} skipped), {self.failed} failed, "
+                f"{left} left{self._eta()}")
+
+    def update(self, rec):
+        status = rec["status"]
+        if status == "done":
+            self.done += 1
+            self.computed_s.append(rec["seconds"])
+        elif status == "skipped":
+            self.skipped += 1
+        else:
+            self.failed += 1
+        if self.quiet:
+            return
+        if self.tty:
+            print(f"\rvesselflow batch: {self.line()}\x1b[K", end="", file=self.stream, flush=True)
+            if status == "failed":
+                print(f"\nvesselflow batch: {rec['sample_id']} failed in {rec['step']}: {rec['error']}",
+                      file=self.stream, flush=True)
+        else:
+            what = {"done": f"done in {rec['seconds']:.1f} s", "skipped": "skipped (complete result matches)",
+                    "failed": f"failed in {rec['step']}: {rec['error']}"}[status]
+            print(f"vesselflow batch: {rec['sample_id']} {what} [{self.line()}]", file=self.stream, flush=True)
+
+    def info(self, msg):
+        if not self.quiet:
+            end = "\n" if not self.tty else "\n"
+            print(f"vesselflow batch: {msg}", file=self.stream, end=end, flush=True)
+
+    def finish(self):
+        if not self.quiet and self.tty:
+            print(file=self.stream, flush=True)
+
+
+def _client(*, workers, scheduler, memory_limit):
+    """A Dask client on an existing scheduler or an embedded local cluster."""
+    import dask
+    from distributed import Client, LocalCluster
+
+    if scheduler:
+        _check_reachable(scheduler)
+        try:
+            return Client(scheduler, timeout="10s", set_as_default=False), None
+        except (OSError, TimeoutError) as exc:
+            raise InputError(f"--scheduler '{scheduler}': cannot connect to a Dask scheduler there ({exc})") from None
+    # A worker killed for memory takes its sample with it: the scheduler gives
+    # up on it at once (Dask's default retries 3 times) and run_batch tries it
+    # exactly once more.
+    # Each worker holds only the sample it runs (saturation 1), so a killed
+    # worker takes no queued sample down with it.
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0,
+                          "distributed.scheduler.worker-saturation": 1.0,
+                          "distributed.worker.daemon": False,
+                          "distributed.admin.log-level": "error"}):
+        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, memory_limit=memory_limit,
+                               dashboard_address=None, host="127.0.0.1", silence_logs=50)
+        return Client(cluster, set_as_default=False), cluster
+
+
+def _check_reachable(address):
+    """Fail at once, not after the client's timeout, when nothing listens there."""
+    import socket
+    from urllib.parse import urlsplit
+
+    parts = urlsplit(address if "://" in address else f"tcp://{address}")
+    try:
+        host, port = parts.hostname, parts.port
+    except ValueError:
+        host = port = None
+    if parts.scheme not in ("tcp", "tls") or not host or not port:
+        raise InputError(f"--scheduler: expected an address such as tcp://HOST:8786, got '{address}'")
+    try:
+        socket.create_connection((host, port), timeout=5).close()
+    except OSError as exc:
+        raise InputError(f"--scheduler '{address}': cannot connect to a Dask scheduler there ({exc.strerror or exc})"
+                         ) from None
+
+
+def _default_workers():
+    from ._parallel import available_cores
+
+    return available_cores()
+
+
+def _clean_partials(outdir):
+    """Remove half-written sample folders an interrupted run left behind."""
+    for p in Path(outdir).glob(".*.partial-*"):
+        if p.is_dir():
+            shutil.rmtree(p, ignore_errors=True)
+    for p in Path(outdir).glob(".*.old-*"):
+        if p.is_dir():
+            shutil.rmtree(p, ignore_errors=True)
+
+
+def _write_atomic(path, write):
+    tmp = path.with_name(f".{path.name}.partial")
+    write(tmp)
+    os.replace(tmp, path)
+
+
+def _check_batch_outdir(outdir, *, overwrite):
+    out = Path(outdir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"output '{out}': expected a folder, got an existing file")
+    if out.is_dir() and any(out.iterdir()) and not (out / "batch.json").is_file() and not overwrite:
+        raise InputError(f"output folder '{out}' is not empty and holds no earlier batch; pass --overwrite to "
+                         "write into it anyway")
+
+
+def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, force=False, overwrite=False,
+              memory_limit=None, quiet=False, stream=None, input_label=None):
+    """Analyse every sample on Dask, then write the study tables.
+
+    Parameters
+    ----------
+    samples : list of Sample
+        From :func:`collect_samples`; ids must be unique.
+    outdir : str or Path
+        Batch folder; an earlier batch there is resumed.
+    config : dict or path, optional
+        Validated with :func:`pipeline.config.load_config` before any work.
+    workers : int, optional
+        Worker processes of the embedded cluster; default one per core.
+    scheduler : str, optional
+        Address of an existing Dask scheduler (``tcp://HOST:PORT``); then
+        ``workers`` and ``memory_limit`` are the cluster's business.
+    force : bool
+        Redo samples whose complete result matches.
+    overwrite : bool
+        Write into a non-empty folder that holds no earlier batch.
+    memory_limit : str or int, optional
+        Per worker (bytes, or a Dask size string such as ``"4GB"``); default
+        the available memory shared equally.
+    quiet : bool
+        No progress output.
+
+    Returns
+    -------
+    BatchResult
+
+    Raises
+    ------
+    InputError, ConfigError
+        Before any work, for a bad config, output folder or sample list.
+    KeyboardInterrupt
+        After cancelling the samples in flight; finished samples are kept.
+    """
+    cfg = load_config(config)
+    out = Path(outdir)
+    _check_batch_outdir(out, overwrite=overwrite)
+    ids = [s.sample_id for s in samples]
+    if len(set(ids)) != len(ids):
+        dup = next(i for i in ids if ids.count(i) > 1)
+        raise InputError(f"samples: sample_id '{dup}' appears more than once")
+    if not samples:
+        raise InputError("samples: expected at least one sample, got none")
+    for s in samples:
+        _settings(s, cfg)  # a bad per-sample root fails before any work
+    if workers is not None and (not isinstance(workers, int) or workers < 1):
+        raise InputError(f"--workers: expected a whole number of at least 1, got {workers!r}")
+    nworkers = workers or min(_default_workers(), len(samples))
+    if memory_limit is None and not scheduler:
+        from .reading import available_memory_bytes
+
+        avail = available_memory_bytes()
+        memory_limit = int(avail / nworkers) if avail else "auto"
+    out.mkdir(parents=True, exist_ok=True)
+    _clean_partials(out)
+    for name in STUDY_FILES:  # derived from the sample folders: stale ones must not outlive this run
+        (out / name).unlink(missing_ok=True)
+    started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    meta = {"vesselflow_version": _version(), "created": started, "state": "running",
+            "input": input_label, "config": cfg, "scheduler": scheduler or "local",
+            "workers": None if scheduler else nworkers, "force": bool(force)}
+    from .tables import write_json
+
+    _write_atomic(out / "batch.json", lambda p: write_json(p, meta))
+    prog = _Progress(len(samples), quiet=quiet, stream=stream)
+    prog.info(f"{len(samples)} samples on " + (f"the scheduler at {scheduler}" if scheduler else
+                                               f"{nworkers} local worker{'s' if nworkers > 1 else ''}"))
+    records = {}
+    interrupted = False
+    client, cluster = _client(workers=nworkers, scheduler=scheduler, memory_limit=memory_limit)
+    futures = {}
+    try:
+        from distributed import as_completed
+
+        def submit(s, attempt):
+            fut = client.submit(process_sample, s, str(out / s.sample_id), cfg, force=force, pure=False,
+                                key=f"vesselflow-sample-{s.sample_id}-{attempt}-{os.urandom(4).hex()}")
+            futures[fut] = (s, attempt)
+            return fut
+
+        queue = as_completed([submit(s, 1) for s in samples], loop=client.loop)
+        for fut in queue:
+            s, attempt = futures[fut]
+            try:
+                rec = fut.result()
+            except Exception as exc:  # the worker itself died (memory limit, signal)
+                if _is_killed_worker(exc) and attempt == 1:
+                    # Samples queued on a dying worker die with it although they
+                    # never ran; one more attempt tells them from the culprit.
+                    queue.add(submit(s, 2))
+                    continue
+                rec = _worker_failure(s, exc, memory_limit)
+            records[s.sample_id] = rec
+            prog.update(rec)
+    except KeyboardInterrupt:
+        interrupted = True
+        client.cancel(list(futures), force=True)
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+        _clean_partials(out)
+        prog.finish()
+    status = pd.DataFrame([records.get(s.sample_id, {"sample_id": s.sample_id, "group": s.group,
+                                                      "path": str(s.path), "status": "not run", "step": "",
+                                                      "error": "", "seconds": 0.0}) for s in samples])
+    meta.update(state="interrupted" if interrupted else "complete",
+                finished=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+                counts={k: int((status["status"] == k).sum()) for k in ("done", "skipped", "failed", "not run")},
+                samples=status.to_dict("records"))
+    failures = status.loc[status["status"] == "failed", list(FAILURE_COLUMNS)].reset_index(drop=True)
+    if interrupted:
+        _write_atomic(out / "batch.json", lambda p: write_json(p, meta))
+        raise KeyboardInterrupt
+    ok = [s for s in samples if records[s.sample_id]["status"] in ("done", "skipped")]
+    tables = cohort_tables(out, ok)
+    _write_atomic(out / "failures.csv", lambda p: failures.to_csv(p, index=False))
+    _write_atomic(out / "cohort_summary.csv", lambda p: tables["summary"].to_csv(p, index=False))
+    _write_atomic(out / "cohort_segments.parquet", lambda p: tables["segments"].to_parquet(p, index=False))
+    _write_atomic(out / "cohort_bifurcations.parquet",
+                  lambda p: tables["bifurcations"].to_parquet(p, index=False))
+    _write_atomic(out / "group_comparison.csv", lambda p: tables["comparison"].to_csv(p, index=False))
+    _write_atomic(out / "batch.json", lambda p: write_json(p, meta))  # last: marks the batch complete
+    prog.info(f"{meta['counts']['done']} analysed, {meta['counts']['skipped']} skipped, "
+              f"{meta['counts']['failed']} failed; tables in {out}")
+    return BatchResult(outdir=out, status=status, failures=failures, cohort_summary=tables["summary"],
+                       group_comparison=tables["comparison"])
+
+
+def _version():
+    from . import __version__
+
+    return __version__
+
+
+def _is_killed_worker(exc):
+    return type(exc).__name__ == "KilledWorker"
+
+
+def _worker_failure(sample, exc, memory_limit):
+    name = type(exc).__name__
+    if _is_killed_worker(exc):
+        lim = f" of {memory_limit / 2**30:.1f} GiB" if isinstance(memory_limit, (int, float)) else ""
+        error = (f"the worker process died while analysing this sample (most often its memory limit{lim} was "
+                 "exceeded; give workers more memory with --memory-limit or use fewer --workers)")
+    else:
+        error = f"{name}: {' '.join(str(exc).split())}"
+    return {"sample_id": sample.sample_id, "group": sample.group, "path": str(sample.path), "status": "failed",
+            "step": "worker", "error": error, "seconds": 0.0}
+
+
+# --------------------------------------------------------------------------- #
+# Study tables
+# --------------------------------------------------------------------------- #
+
+
+def _flatten_summary(summary):
+    row = {}
+    for k, v in summary.items():
+        if isinstance(v, dict):
+            for kk, vv in v.items():
+                if isinstance(vv, (int, float, bool)) or vv is None:
+                    row[f"{'flag_count' if k == 'flag_counts' else k}_{kk}"] = vv
+        elif isinstance(v, (int, float, bool)) or v is None:
+            row[k] = v
+    return row
+
+
+def cohort_tables(outdir, samples):
+    """Study tables from the samples' result folders.
+
+    Parameters
+    ----------
+    outdir : str or Path
+        Batch folder holding ``<sample_id>/`` result folders.
+    samples : list of Sample
+        Those to include (the analysed ones), in order.
+
+    Returns
+    -------
+    dict
+        ``summary``, ``segments``, ``bifurcations`` and ``comparison``
+        DataFrames. A sample with a ``review.csv`` contributes its reviewed
+        summary (bifurcations marked ``artefact`` left out) and its decisions
+        as ``review_decision``/``review_note`` columns.
+    """
+    from .tables import load_result
+
+    rows, segs, bifs = [], [], []
+    for s in samples:
+        res = load_result(Path(outdir) / s.sample_id)
+        summary, bif = res.summary, res.bifurcations
+        reviewed = (res.path / "review.csv").is_file()
+        if reviewed:
+            from .review import apply_review
+
+            summary, bif = apply_review(res)
+        rows.append({"sample_id": s.sample_id, "group": s.group, "reviewed": reviewed,
+                     **_flatten_summary(summary)})
+        for table, into in ((res.segments, segs), (bif, bifs)):
+            t = table.copy()
+            t.insert(0, "group", s.group)
+            t.insert(0, "sample_id", s.sample_id)
+            into.append(t)
+    summary = pd.DataFrame(rows)
+    if summary.empty:
+        summary = pd.DataFrame(columns=["sample_id", "group", "reviewed"])
+    segments = pd.concat(segs, ignore_index=True) if segs else pd.DataFrame(columns=["sample_id", "group"])
+    bifurcations = (pd.concat([b for b in bifs if len(b.columns)], ignore_index=True)
+                    if any(len(b.columns) for b in bifs) else pd.DataFrame(columns=["sample_id", "group"]))
+    return {"summary": summary, "segments": _parquet_safe(segments), "bifurcations": _parquet_safe(bifurcations),
+            "comparison": group_comparison(summary)}
+
+
+def _parquet_safe(df):
+    # Columns mixing strings and missing values (reason lists, notes) must be
+    # one type for Parquet.
+    for c in df.columns:
+        if df[c].dtype == object:
+            df[c] = df[c].map(lambda v: None if v is None or (isinstance(v, float) and math.isnan(v)) else str(v))
+    return df
+
+
+def group_comparison(summary, *, group="group", measures=None):
+    """Per-measure group statistics and pairwise tests.
+
+    Parameters
+    ----------
+    summary : DataFrame
+        One row per sample with a ``group`` column and numeric measures.
+    group : str
+        Name of the group column.
+    measures : list of str, optional
+        Default: every numeric column but booleans and ``sample_id``.
+
+    Returns
+    -------
+    DataFrame
+        One row per measure and pair of groups (groups in order of first
+        appearance; with one group, one row per measure with empty ``b``
+        columns): ``measure, group_a, group_b, n_a, mean_a, sd_a, median_a,
+        n_b, mean_b, sd_b, median_b, difference`` (``mean_b - mean_a``),
+        ``mann_whitney_u`` (the statistic of group a), ``p_value`` (two-sided
+        Mann-Whitney U, :func:`scipy.stats.mannwhitneyu`) and ``q_value``
+        (Benjamini-Hochberg over the measures of the same pair of groups,
+        :func:`scipy.stats.false_discovery_control`). sd uses n - 1. Missing
+        values are left out per measure; a test needs a value in each group.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> df = pd.DataFrame({"group": ["a", "a", "a", "b", "b", "b"], "x_um": [1, 2, 3, 4, 5, 6]})
+    >>> row = group_comparison(df).iloc[0]
+    >>> float(row["difference"]), float(row["mann_whitney_u"]), round(float(row["p_value"]), 3)
+    (3.0, 0.0, 0.1)
+    """
+    from scipy import stats
+
+    if summary.empty or group not in summary:
+        return pd.DataFrame(columns=list(COMPARISON_COLUMNS))
+    if measures is None:
+        measures = [c for c in summary.columns if c not in (group, "sample_id")
+                    and pd.api.types.is_numeric_dtype(summary[c]) and not pd.api.types.is_bool_dtype(summary[c])]
+    groups = list(dict.fromkeys(summary[group].astype(str)))
+    pairs = [(a, b) for i, a in enumerate(groups) for b in groups[i + 1:]] or [(groups[0], None)]
+    labels = summary[group].astype(str)
+
+    def describe(values):
+        v = values[np.isfinite(values)]
+        if v.size == 0:
+            return 0, np.nan, np.nan, np.nan, v
+        sd = float(np.std(v, ddof=1)) if v.size > 1 else np.nan
+        return int(v.size), float(np.mean(v)), sd, float(np.median(v)), v
+
+    rows = []
+    for a, b in pairs:
+        block = []
+        for m in measures:
+            col = pd.to_numeric(summary[m], errors="coerce").to_numpy(float)
+            na, ma, sa, mda, va = describe(col[(labels == a).to_numpy()])
+            row = {"measure": m, "group_a": a, "group_b": b, "n_a": na, "mean_a": ma, "sd_a": sa, "median_a": mda}
+            if b is None:
+                row.update(n_b=0, mean_b=np.nan, sd_b=np.nan, median_b=np.nan, difference=np.nan,
+                           mann_whitney_u=np.nan, p_value=np.nan)
+            else:
+                nb, mb, sb, mdb, vb = describe(col[(labels == b).to_numpy()])
+                row.update(n_b=nb, mean_b=mb, sd_b=sb, median_b=mdb, difference=mb - ma if na and nb else np.nan)
+                if na and nb:
+                    res = stats.mannwhitneyu(va, vb, alternative="two-sided")
+                    row.update(mann_whitney_u=float(res.statistic), p_value=float(res.pvalue))
+                else:
+                    row.update(mann_whitney_u=np.nan, p_value=np.nan)
+            block.append(row)
+        p = np.array([r["p_value"] for r in block], float)
+        q = np.full(p.shape, np.nan)
+        ok = np.isfinite(p)
+        if ok.any():
+            q[ok] = stats.false_discovery_control(p[ok], method="bh")
+        for r, qq in zip(block, q):
+            r["q_value"] = qq
+        rows.extend(block)
+    return pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
