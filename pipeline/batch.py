@@ -451,7 +451,8 @@ def _client(*, workers, scheduler, memory_limit):
                           "distributed.worker.daemon": False,
                           "distributed.admin.log-level": "error"}):
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, memory_limit=memory_limit,
-                               dashboard_address=None, host="127.0.0.1", silence_logs=50)
+                               dashboard_address=":0", scheduler_kwargs={"dashboard": False}, host="127.0.0.1",
+                               silence_logs=50)
         return Client(cluster, set_as_default=False), cluster
 
 
@@ -506,7 +507,7 @@ def _check_batch_outdir(outdir, *, overwrite):
 
 
 def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, force=False, overwrite=False,
-              memory_limit=None, quiet=False, stream=None, input_label=None):
+              memory_limit=None, threads=None, quiet=False, stream=None, input_label=None):
     """Analyse every sample on Dask, then write the study tables.
 
     Parameters
@@ -529,8 +530,15 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     memory_limit : str or int, optional
         Per worker (bytes, or a Dask size string such as ``"4GB"``); default
         the available memory shared equally.
+    threads : int, optional
+        Threads of each sample's compiled steps (distance transforms,
+        thinning); default the worker's cores divided by its task slots.
     quiet : bool
         No progress output.
+    stream : file, optional
+        Where progress goes; default stderr.
+    input_label : str, optional
+        What ``batch.json`` records as the input (the folder or sheet).
 
     Returns
     -------
@@ -556,6 +564,8 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
         _settings(s, cfg)  # a bad per-sample root fails before any work
     if workers is not None and (not isinstance(workers, int) or workers < 1):
         raise InputError(f"--workers: expected a whole number of at least 1, got {workers!r}")
+    if threads is not None and (not isinstance(threads, int) or threads < 1):
+        raise InputError(f"--threads: expected a whole number of at least 1, got {threads!r}")
     nworkers = workers or min(_default_workers(), len(samples))
     if memory_limit is None and not scheduler:
         from .reading import available_memory_bytes
@@ -578,13 +588,25 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
                                                f"{nworkers} local worker{'s' if nworkers > 1 else ''}"))
     records = {}
     interrupted = False
-    client, cluster = _client(workers=nworkers, scheduler=scheduler, memory_limit=memory_limit)
+    import logging
+
+    # The embedded cluster's routine INFO lines (workers starting, closing)
+    # would bury the progress lines; real problems still show.
+    dask_log = logging.getLogger("distributed")
+    log_level = dask_log.level
+    dask_log.setLevel(logging.ERROR)
+    try:
+        client, cluster = _client(workers=nworkers, scheduler=scheduler, memory_limit=memory_limit)
+    except BaseException:
+        dask_log.setLevel(log_level)
+        raise
     futures = {}
     try:
         from distributed import as_completed
 
         def submit(s, attempt):
-            fut = client.submit(process_sample, s, str(out / s.sample_id), cfg, force=force, pure=False,
+            fut = client.submit(process_sample, s, str(out / s.sample_id), cfg, force=force, threads=threads,
+                                pure=False,
                                 key=f"vesselflow-sample-{s.sample_id}-{attempt}-{os.urandom(4).hex()}")
             futures[fut] = (s, attempt)
             return fut
@@ -610,6 +632,7 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
         client.close()
         if cluster is not None:
             cluster.close()
+        dask_log.setLevel(log_level)
         _clean_partials(out)
         prog.finish()
     status = pd.DataFrame([records.get(s.sample_id, {"sample_id": s.sample_id, "group": s.group,

@@ -116,6 +116,7 @@ __all__ = [
     "murray_exponent_multi",
     "murray_optimal_angles",
     "levels_murray",
+    "summarize_bifurcations",
 ]
 
 #: Flag reason codes, in the order they appear in ``flag_reasons``.
@@ -950,6 +951,33 @@ def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int) -> dict[str, 
         "flow_split_error_median": split_err,
         "junctions_skipped": int(skipped),
     }
+
+
+def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int = 0) -> dict[str, Any]:
+    """The bifurcation part of ``summary.json``, from a bifurcations table.
+
+    Parameters
+    ----------
+    table : DataFrame
+        Rows of :data:`COLUMNS` (as returned by :func:`analyze_bifurcations`
+        or read back from ``bifurcations.csv``), possibly a subset of them,
+        for example without the rows a reviewer marked as artefacts. A table
+        without columns counts as no junction.
+    has_flow : bool, keyword-only
+        Whether the flow model ran (``flow_split_error_median`` is None
+        otherwise).
+    skipped : int, keyword-only
+        ``junctions_skipped``, carried over: it cannot be recomputed from
+        the table.
+
+    Returns
+    -------
+    dict
+        The keys listed under ``summary`` in :func:`analyze_bifurcations`.
+    """
+    if table.shape[1] == 0:
+        table = _empty_table()
+    return _summary(table, has_flow=has_flow, skipped=skipped)
 
 
 def levels_murray(table: pd.DataFrame) -> pd.DataFrame:

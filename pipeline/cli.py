@@ -4,15 +4,17 @@ In: command-line arguments. Out: result folders, exit codes
 (0 success, 2 bad input or usage with one clear line and nothing written,
 1 unexpected failure).
 
-Commands: ``analyze`` (one mask), ``synth`` (a synthetic volume with its
-ground truth), ``demo`` (the bundled volumes).
+Commands: ``analyze`` (one mask), ``batch`` (a whole study on Dask),
+``report`` (figures and an HTML report of a result or batch folder),
+``synth`` (a synthetic volume with its ground truth), ``demo`` (the bundled
+volumes), ``summarize`` (a result's summary, optionally with the review
+applied), ``view`` (napari viewer and bifurcation review; imports napari only
+when run).
 """
 
 from __future__ import annotations
 
 import argparse
-import datetime as _dt
-import platform
 import sys
 import time
 from pathlib import Path
@@ -48,7 +50,14 @@ def _parser():
     a = sub.add_parser("analyze", help="analyse one mask into a result folder")
     a.add_argument("mask", help="mask file: .tif/.tiff, .ome.tif, .nii/.nii.gz, .npy, .npz")
     a.add_argument("-o", "--output", required=True, help="result folder (must be empty unless --overwrite)")
+    a.add_argument("--report", action="store_true", help="also write report.html and figures/ into the result")
     _common(a)
+
+    r = sub.add_parser("report", help="figures and a self-contained report.html of a result or batch folder")
+    r.add_argument("outdir", help="a result folder (from analyze) or a batch folder (from batch)")
+    r.add_argument("--mask", help="mask file for the projection map (default: the input recorded in run.json)")
+    r.add_argument("--overwrite", action="store_true", help="replace an existing report.html and figures/")
+    r.add_argument("--quiet", action="store_true", help="no progress lines")
 
     s = sub.add_parser("synth", help="write a synthetic volume and its ground truth")
     s.add_argument("kind", help="what to build (see --help of the synthetic module)")
@@ -60,13 +69,49 @@ def _parser():
     s.add_argument("--holes", type=int, default=0)
     s.add_argument("--overwrite", action="store_true")
 
+    b = sub.add_parser("batch", help="analyse a whole study (a folder or a sample sheet) on Dask")
+    b.add_argument("input", help="folder of mask files (groups = first sub-folders) or a sample sheet .csv "
+                                 "(sample_id, path, group[, spacing_z, spacing_y, spacing_x, root])")
+    b.add_argument("-o", "--output", required=True, help="batch folder (an earlier batch there is resumed)")
+    b.add_argument("--config", help="YAML config file (defaults: configs/default.yaml)")
+    b.add_argument("--workers", type=int, help="local worker processes (default: one per core)")
+    b.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask cluster, e.g. tcp://HOST:8786")
+    b.add_argument("--memory-limit", metavar="SIZE", help="memory per local worker, e.g. 6GB (default: the "
+                                                          "available memory shared equally)")
+    b.add_argument("--threads", type=int, help="threads per sample for the compiled steps "
+                                               "(default: the worker's cores shared by its samples)")
+    b.add_argument("--force", action="store_true", help="redo samples that already have a matching result")
+    b.add_argument("--overwrite", action="store_true", help="write into a non-empty folder that holds no batch")
+    b.add_argument("--quiet", action="store_true", help="no progress lines")
+    b.add_argument("--report", action="store_true", help="also write the study report (report.html)")
+
     d = sub.add_parser("demo", help="analyse the bundled synthetic volumes")
     d.add_argument("-o", "--output", default="results", help="folder for one result folder per volume")
     d.add_argument("--input-dir", default="synthetic_volumes")
     d.add_argument("--config", help="YAML config file")
     d.add_argument("--overwrite", action="store_true")
     d.add_argument("--quiet", action="store_true")
+    _review_parsers(sub)
     return p
+
+
+def _review_parsers(sub):
+    from .review import COLOUR_MEASURES
+
+    m = sub.add_parser("summarize", help="print a result's summary, or recompute it with the review applied")
+    m.add_argument("outdir", help="result folder")
+    m.add_argument("--apply-review", action="store_true",
+                   help="leave out the bifurcations marked 'artefact' in review.csv; writes summary_reviewed.json")
+    m.add_argument("--overwrite", action="store_true", help="replace an existing summary_reviewed.json")
+
+    v = sub.add_parser("view", help="inspect a result in napari and review its flagged bifurcations")
+    v.add_argument("outdir", help="result folder")
+    v.add_argument("--mask", help="mask file to show (default: the input recorded in run.json)")
+    v.add_argument("--colour-by", default="radius", choices=tuple(COLOUR_MEASURES),
+                   help="measure that colours the centrelines (default: radius)")
+    v.add_argument("--bifurcation", type=int, metavar="NODE_ID", help="centre and zoom on this junction")
+    v.add_argument("--screenshot", metavar="FILE.png", help="render a picture without a window, then exit")
+    v.add_argument("--overwrite", action="store_true", help="replace an existing screenshot file")
 
 
 def _common(a):
@@ -105,38 +150,12 @@ def _load_cfg(args):
 
 def run_analyze(mask_path, output, *, spacing=None, config, overwrite, reporter, command=None, inlets=(),
                 outlets=()):
-    """Read, analyse and write one sample; returns the output path."""
-    from . import reading, tables
-    from .analysis import analyze
+    """Read, analyse and write one sample with progress lines; returns the output path."""
+    from .analysis import analyze_file
 
-    tables.check_outdir(output, overwrite=overwrite)
-    t0 = time.perf_counter()
-    limit = None
-    if config["input"]["max_memory_gb"] is not None:
-        limit = int(config["input"]["max_memory_gb"] * 2**30)
-    img = reading.read_mask(mask_path, spacing=spacing, threshold=config["input"]["threshold"],
-                            memory_limit_bytes=limit)
-    for w in img.warnings:
-        reporter.warn(w)
-    reporter.step("reading", time.perf_counter() - t0)
-    result = analyze(img.mask, spacing=img.spacing, config=config, planar=img.planar, inlets=inlets,
-                     outlets=outlets, progress=reporter.step)
-    for w in result.run["warnings"]:
-        reporter.warn(w)
-    result.run["timings_s"] = {"reading": round(time.perf_counter() - t0 - sum(result.run["timings_s"].values()), 4),
-                               **result.run["timings_s"]}
-    result.run["warnings"] = list(img.warnings) + list(result.run["warnings"])
-    info = {
-        "vesselflow_version": __version__,
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "command": command,
-        "input": {"path": str(Path(mask_path).resolve()), "sha256": img.sha256, "dtype": img.original_dtype,
-                  "axes": img.axes_found},
-        "spacing_um": list(img.spacing),
-        "spacing_source": img.spacing_source,
-        "python": platform.python_version(),
-    }
-    out = tables.write_result(result, output, run_info=info, overwrite=overwrite)
+    out, result = analyze_file(mask_path, output, spacing=spacing, config=config, overwrite=overwrite,
+                               inlets=inlets, outlets=outlets, progress=reporter.step, warn=reporter.warn,
+                               run_info={"command": command})
     reporter.info(f"wrote {out} ({len(result.segments)} segments, {len(result.nodes)} nodes)")
     return out
 
@@ -144,8 +163,23 @@ def run_analyze(mask_path, output, *, spacing=None, config, overwrite, reporter,
 def _cmd_analyze(args):
     cfg = _load_cfg(args)
     rep = _Reporter(args.quiet)
-    run_analyze(args.mask, args.output, spacing=args.spacing, config=cfg, overwrite=args.overwrite,
-                reporter=rep, command=sys.argv, inlets=args.inlet, outlets=args.outlet)
+    out = run_analyze(args.mask, args.output, spacing=args.spacing, config=cfg, overwrite=args.overwrite,
+                      reporter=rep, command=sys.argv, inlets=args.inlet, outlets=args.outlet)
+    if args.report:
+        from .report import build_report
+
+        t0 = time.perf_counter()
+        page = build_report(out)
+        rep.step("report", time.perf_counter() - t0)
+        rep.info(f"wrote {page}")
+    return 0
+
+
+def _cmd_report(args):
+    from .report import build_report
+
+    page = build_report(args.outdir, mask=args.mask, overwrite=args.overwrite)
+    _Reporter(args.quiet).info(f"wrote {page}")
     return 0
 
 
@@ -163,6 +197,23 @@ def _cmd_synth(args):
     synthetic.write_volume(out, mask, spacing=tuple(args.spacing), truth=truth)
     print(f"vesselflow: wrote {out} {mask.shape} and its ground truth", file=sys.stderr)
     return 0
+
+
+def _cmd_batch(args):
+    from . import batch
+
+    cfg = _load_cfg(args)
+    samples = batch.collect_samples(args.input, exclude=args.output)
+    if args.workers is not None and args.workers < 1:
+        raise InputError(f"--workers: expected a whole number of at least 1, got {args.workers}")
+    res = batch.run_batch(samples, args.output, config=cfg, workers=args.workers, scheduler=args.scheduler,
+                          force=args.force, overwrite=args.overwrite, memory_limit=args.memory_limit,
+                          threads=args.threads, quiet=args.quiet, input_label=str(Path(args.input).resolve()))
+    if getattr(args, "report", False):
+        from .report import build_report
+
+        build_report(res.outdir, overwrite=True)
+    return 1 if res.n_failed else 0
 
 
 def _cmd_demo(args):
@@ -183,11 +234,87 @@ def _cmd_demo(args):
     return 0
 
 
+def _cmd_summarize(args):
+    import json
+    import os
+
+    from . import review, tables
+
+    result = tables.load_result(args.outdir)
+    if not args.apply_review:
+        print(json.dumps(result.summary, indent=2))
+        return 0
+    if not (Path(args.outdir) / review.REVIEW_FILE).is_file():
+        raise InputError(f"--apply-review: expected {review.REVIEW_FILE} in '{args.outdir}', found none "
+                         "(review the flagged bifurcations with: vesselflow view OUTDIR)")
+    out = Path(args.outdir) / "summary_reviewed.json"
+    if out.exists() and not args.overwrite:
+        raise InputError(f"'{out}' exists; pass --overwrite to replace it")
+    summary, _ = review.apply_review(result)
+    tmp = out.with_name(f".{out.name}.partial")
+    tables.write_json(tmp, summary)
+    os.replace(tmp, out)  # a reader never sees half a file
+    for key, before, after in review.changed_measures(result.summary, summary):
+        print(f"{key}: {after}" if before is None else f"{key}: {before} -> {after}")
+    print(f"vesselflow: wrote {out}", file=sys.stderr)
+    return 0
+
+
+def _cmd_view(args):
+    import os as _os
+
+    from . import tables
+
+    result = tables.load_result(args.outdir)  # a clear error before the slow napari import
+    if args.bifurcation is not None:
+        _check_junction(result, args.bifurcation)
+    if args.screenshot:
+        shot = Path(args.screenshot)
+        if shot.suffix.lower() != ".png":
+            raise InputError(f"--screenshot: expected a .png file name, got '{shot}'")
+        if shot.exists() and not args.overwrite:
+            raise InputError(f"--screenshot: '{shot}' exists; pass --overwrite to replace it")
+    if sys.platform.startswith("linux") and not (_os.environ.get("DISPLAY") or _os.environ.get("WAYLAND_DISPLAY")):
+        raise InputError("view: no display (DISPLAY is not set); on a machine without a screen run it under a "
+                         "virtual one, for example: xvfb-run -a vesselflow view ...")
+    try:
+        from . import viewer
+    except ImportError as exc:
+        raise InputError(f"view: needs napari and a Qt 6 binding ({exc}); install them with: "
+                         "pip install 'vesselflow[viewer]'") from None
+    if args.screenshot:
+        viewer.render_screenshot(args.outdir, args.screenshot, mask_path=args.mask, colour_by=args.colour_by,
+                                 bifurcation=args.bifurcation, overwrite=args.overwrite)
+        print(f"vesselflow: wrote {args.screenshot}", file=sys.stderr)
+        return 0
+    import napari
+
+    v, panel = viewer.open_result(args.outdir, mask_path=args.mask, colour_by=args.colour_by, show=True)
+    if args.bifurcation is not None:
+        panel.goto(args.bifurcation)
+    napari.run()
+    return 0
+
+
+def _check_junction(result, node_id):
+    b = result.bifurcations
+    if len(b) and int(node_id) in set(b["node_id"].astype(int).tolist()):
+        return
+    nodes = result.nodes
+    hit = nodes[nodes["node_id"] == int(node_id)] if len(nodes) else nodes
+    if not len(hit):
+        raise InputError(f"--bifurcation: node_id {node_id} is not a node of '{result.path}' "
+                         f"(nodes.csv has ids {nodes['node_id'].min()} to {nodes['node_id'].max()})")
+    raise InputError(f"--bifurcation: node {node_id} is a {hit['kind'].iloc[0]} node, not a bifurcation "
+                     "(expected a node_id from bifurcations.csv)")
+
+
 def main(argv=None):
     """Entry point of the ``vesselflow`` command; returns the exit code."""
     parser = _parser()
     args = parser.parse_args(argv)
-    handlers = {"analyze": _cmd_analyze, "synth": _cmd_synth, "demo": _cmd_demo}
+    handlers = {"analyze": _cmd_analyze, "synth": _cmd_synth, "demo": _cmd_demo, "batch": _cmd_batch,
+                "report": _cmd_report, "summarize": _cmd_summarize, "view": _cmd_view}
     try:
         return handlers[args.command](args)
     except (InputError, ConfigError) as exc:
@@ -197,7 +324,11 @@ def main(argv=None):
         print(f"vesselflow: failed: {exc}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
-        print("vesselflow: interrupted; nothing was written", file=sys.stderr)
+        if args.command == "batch":
+            print("vesselflow: interrupted; finished samples are kept, run the same command again to resume",
+                  file=sys.stderr)
+        else:
+            print("vesselflow: interrupted; nothing was written", file=sys.stderr)
         return 130
 
 

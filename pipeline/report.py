@@ -1,0 +1,1179 @@
+"""Figures and a self-contained HTML report over a result folder or a batch folder.
+
+In: a folder written by vesselflow, read back and never changed apart from
+the two report entries below:
+
+- a **sample folder** (``run.json`` and ``segments.csv``, as ``analyze``
+  writes it, read with :func:`pipeline.tables.load_result`), and optionally
+  the mask it was made from (``run.json["input"]["path"]`` or ``mask=``),
+  read with :func:`pipeline.reading.read_mask` for the projection map; an
+  optional ``review.csv`` of review decisions is shown beside the flagged
+  bifurcations;
+- a **batch folder** (``cohort_summary.csv``, ``group_comparison.csv``,
+  ``failures.csv``, ``batch.json`` and one sample folder per sample).
+
+Out: ``report.html`` and ``figures/<name>.png`` + ``figures/<name>.svg`` in
+that folder. The HTML is self-contained: figures are embedded as base64 PNG
+``data:`` URIs, styles are inline, there is no script, and a
+Content-Security-Policy in the page forbids loading anything else, so it
+opens offline and can be mailed as one file. Everything is built in memory
+first, then written into a temporary sibling folder and moved into place;
+``report.html`` is moved last, so its presence marks a complete report.
+
+Figures of a sample: a projection map of the mask along z with centrelines
+coloured by branching level and one coloured by wall shear stress (flagged
+bifurcations circled and numbered by node id), radius and length
+distributions, radius by branching level with the ratios between levels, the
+Murray plot of r0³ against r1³ + r2³ with the identity line, the junction
+exponents with 2 and 3 marked, wall shear stress against diameter, and flow
+against radius with a slope-3 guide (Q ∝ r³ under Murray's law; Murray CD
+1926, PNAS 12:207). Figures of a study: box-and-point plots per group for
+the main measures, annotated with the comparison table's q-values.
+
+Colours: continuous values use viridis or cividis, whose lightness rises
+monotonically so they read in grey and by colour-blind readers; categories
+(branching levels, groups) use the Okabe–Ito palette (Okabe M, Ito K (2002)
+Color Universal Design (CUD): how to make figures and presentations that
+are friendly to colorblind people). Rendering uses matplotlib
+:class:`~matplotlib.figure.Figure` objects directly (no pyplot, no display).
+"""
+
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import io
+import json
+import math
+import os
+import re
+import shutil
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from matplotlib.collections import LineCollection
+from matplotlib.colors import BoundaryNorm, ListedColormap, LogNorm, Normalize
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+from . import __version__
+from .errors import InputError
+
+__all__ = ["build_report", "load_sample", "SampleData", "sample_figures", "study_figures", "figure_map_level",
+           "figure_map_wss", "figure_distributions", "figure_radius_by_level", "figure_murray", "figure_exponents",
+           "figure_wss_diameter", "figure_flow_radius", "figure_study_measure", "OKABE_ITO", "SAMPLE_FIGURES",
+           "STUDY_MEASURES"]
+
+#: Okabe–Ito colour-blind-safe palette (Okabe & Ito 2002), reordered so the
+#: colours that stand out most on a light grey background come first.
+OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#000000", "#F0E442")
+
+#: Figure names of a sample report, in page order.
+SAMPLE_FIGURES = ("map_level", "map_wss", "distributions", "radius_by_level", "murray", "exponents",
+                  "wss_diameter", "flow_radius")
+
+#: Summary measures shown per group in a study report (those present are used).
+STUDY_MEASURES = ("total_length_mm", "length_density_mm_per_mm3", "vessel_volume_fraction",
+                  "junction_density_per_mm3", "radius_median_um", "tortuosity_mean", "murray_exponent_median",
+                  "fraction_within_tolerance", "bifurcations_flagged", "total_inflow_nl_min")
+
+REPORT_NAME = "report.html"
+FIGURE_DIR = "figures"
+
+# Numbering every flagged junction on a dense capillary bed buries the map
+# in digits; past this many they are circled only and the table lists them.
+_MAX_NUMBERED = 60
+# Projection maps: the mask is shown in light grey so that every palette
+# colour (and the dark flag circles) keeps its contrast on top of it.
+_MASK_GREY = ListedColormap(["#ffffff", "#d0d0d0"])
+_FLAG_COLOUR = "#000000"
+_DPI = 150
+_LOW_Q = 0.05
+
+_CAUTION = ("Research software. Flows, pressures and wall shear stresses in this report are model estimates "
+            "from idealised physics (Poiseuille flow in rigid tubes, Kirchhoff's law) on a segmented image; "
+            "they are not measurements and must not be used for clinical decisions. A flagged bifurcation is "
+            "a question for review, not a verdict: many are segmentation artefacts.")
+
+# Labels with units for summary measures; anything else is labelled from its
+# name's unit suffix by _label().
+_LABELS = {
+    "total_length_mm": "total vessel length (mm)",
+    "length_density_mm_per_mm3": "length density (mm/mm³)",
+    "vessel_volume_fraction": "vessel volume fraction (dimensionless)",
+    "junction_density_per_mm3": "junction density (per mm³)",
+    "endpoint_density_per_mm3": "end-point density (per mm³)",
+    "radius_median_um": "median segment radius (µm)",
+    "radius_mean_um": "mean segment radius (µm)",
+    "tortuosity_mean": "mean tortuosity, length/chord (dimensionless)",
+    "murray_exponent_median": "median junction exponent (dimensionless)",
+    "murray_ratio_median": "median Murray ratio (r1³+r2³)/r0³ (dimensionless)",
+    "fraction_within_tolerance": "bifurcations within tolerance (fraction)",
+    "bifurcations_flagged": "flagged bifurcations (count)",
+    "total_inflow_nl_min": "total inflow (nL/min)",
+    "perfused_length_fraction": "perfused length (fraction)",
+}
+_SUFFIXES = (("_mm_per_mm3", "mm/mm³"), ("_per_mm3", "per mm³"), ("_pa_s_um3", "Pa·s/µm³"),
+             ("_rad_per_um", "rad/µm"), ("_nl_min", "nL/min"), ("_mm3", "mm³"), ("_um2", "µm²"),
+             ("_um3", "µm³"), ("_mm", "mm"), ("_um", "µm"), ("_pa", "Pa"), ("_mm_s", "mm/s"), ("_s", "s"),
+             ("_deg", "°"), ("_fraction", "fraction"))
+
+
+# --------------------------------------------------------------------------- entry point
+
+
+def build_report(outdir, *, mask=None, overwrite=False) -> Path:
+    """Build ``report.html`` and ``figures/`` for a sample or a batch folder.
+
+    Parameters
+    ----------
+    outdir : str or Path
+        A result folder written by ``vesselflow analyze`` (has ``run.json``
+        and ``segments.csv``) or a batch folder (has ``cohort_summary.csv``).
+    mask : str or Path, optional
+        The mask file for the projection map of a sample; default: the input
+        recorded in ``run.json``. When neither can be read the map is drawn
+        from the centrelines alone and the report says so. Not accepted for a
+        batch folder.
+    overwrite : bool
+        Replace an existing report (``report.html`` and ``figures/``).
+
+    Returns
+    -------
+    Path
+        The written ``report.html``.
+
+    Raises
+    ------
+    InputError
+        If ``outdir`` is not a sample or batch folder, is incomplete, already
+        holds a report and ``overwrite`` is False, or ``mask`` cannot be read.
+        Nothing is written then.
+    """
+    out = Path(outdir)
+    if not out.exists():
+        raise InputError(f"report: folder '{out}' does not exist; expected a result or batch folder")
+    if not out.is_dir():
+        raise InputError(f"report: '{out}' is a file; expected a result folder (run.json, segments.csv) "
+                         "or a batch folder (cohort_summary.csv)")
+    kind = _folder_kind(out)
+    if kind is None:
+        raise InputError(f"report: folder '{out}' is neither a result folder (expected run.json and "
+                         "segments.csv) nor a batch folder (expected cohort_summary.csv)")
+    if not overwrite and ((out / REPORT_NAME).exists() or (out / FIGURE_DIR).exists()):
+        raise InputError(f"report: '{out}' already has {REPORT_NAME} or {FIGURE_DIR}/; "
+                         "pass --overwrite to replace them")
+    if kind == "batch":
+        if mask is not None:
+            raise InputError("report: --mask applies to one sample; a batch folder reads each sample's own")
+        page, figures = _study_report(out)
+    else:
+        page, figures = _sample_report(out, mask=mask)
+    return _publish(out, page, figures)
+
+
+def _folder_kind(out):
+    if (out / "cohort_summary.csv").is_file():
+        return "batch"
+    if (out / "run.json").is_file() and (out / "segments.csv").is_file():
+        return "sample"
+    return None
+
+
+@dataclass
+class _Rendered:
+    """One figure rendered in memory."""
+
+    name: str
+    title: str
+    caption: str
+    png: bytes
+    svg: bytes
+
+
+def _render(fig, name, title, caption):
+    png, svg = io.BytesIO(), io.BytesIO()
+    fig.savefig(png, format="png", dpi=_DPI, metadata={"Software": None})
+    # A fixed hash salt and no date keep the SVG identical from run to run.
+    import matplotlib
+
+    with matplotlib.rc_context({"svg.hashsalt": "vesselflow", "svg.fonttype": "path"}):
+        fig.savefig(svg, format="svg", metadata={"Date": None})
+    return _Rendered(name=name, title=title, caption=caption, png=png.getvalue(), svg=svg.getvalue())
+
+
+def _publish(out, page, figures):
+    """Write the report atomically: temp sibling folder, then renames, page last.
+
+    On any failure the earlier report, if there was one, is put back and
+    nothing new is left behind.
+    """
+    tmp = Path(tempfile.mkdtemp(prefix=".report.partial-", dir=out))
+    old, moved, placed = None, [], False
+    try:
+        fdir = tmp / FIGURE_DIR
+        fdir.mkdir()
+        for r in figures:
+            (fdir / f"{r.name}.png").write_bytes(r.png)
+            (fdir / f"{r.name}.svg").write_bytes(r.svg)
+        (tmp / REPORT_NAME).write_text(page, encoding="utf-8")
+        old = Path(tempfile.mkdtemp(prefix=".report.old-", dir=out))
+        # The old page goes first so that no moment shows a complete-looking
+        # report next to figures that are not its own.
+        for name in (REPORT_NAME, FIGURE_DIR):
+            if (out / name).exists():
+                os.rename(out / name, old / name)
+                moved.append(name)
+        os.rename(fdir, out / FIGURE_DIR)
+        placed = True
+        os.replace(tmp / REPORT_NAME, out / REPORT_NAME)
+    except BaseException:
+        if placed:
+            shutil.rmtree(out / FIGURE_DIR, ignore_errors=True)
+        for name in moved:
+            os.rename(old / name, out / name)
+        raise
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    return out / REPORT_NAME
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _label(measure):
+    if measure in _LABELS:
+        return _LABELS[measure]
+    text = measure
+    for suf, unit in _SUFFIXES:
+        if measure.endswith(suf):
+            return f"{measure[: -len(suf)].replace('_', ' ')} ({unit})"
+    if measure.startswith("flag_count_") or measure in ("segments", "nodes", "junctions", "bifurcations"):
+        return f"{text.replace('_', ' ')} (count)"
+    return f"{text.replace('_', ' ')} (dimensionless)"
+
+
+def _col(df, name):
+    """A numeric column, or all-NaN when it is absent (for example with --no-flow)."""
+    if name in df.columns:
+        return pd.to_numeric(df[name], errors="coerce").to_numpy(float)
+    return np.full(len(df), np.nan)
+
+
+def _bool_col(df, name):
+    if name not in df.columns:
+        return np.zeros(len(df), bool)
+    s = df[name]
+    if s.dtype == bool:
+        return s.to_numpy()
+    return s.astype(str).str.strip().str.lower().isin(("true", "1", "yes")).to_numpy()
+
+
+def _fmt(v, digits=3):
+    if v is None:
+        return "–"
+    if isinstance(v, (bool, np.bool_)):
+        return "yes" if v else "no"
+    if isinstance(v, (int, np.integer)):
+        return str(int(v))
+    if isinstance(v, (float, np.floating)):
+        f = float(v)
+        if not math.isfinite(f):
+            return "–"
+        if f == int(f) and abs(f) < 1e6:
+            return str(int(f))
+        return f"{f:.{digits}g}"
+    return str(v)
+
+
+def _fmt_q(q):
+    if q is None or not np.isfinite(q):
+        return "n/a"
+    return f"{q:.2g}" if q >= 0.001 else f"{q:.1e}"
+
+
+def _esc(v):
+    return html.escape(str(v), quote=True)
+
+
+def _anchor(text):
+    return "s-" + re.sub(r"[^A-Za-z0-9_-]+", "-", str(text)).strip("-")
+
+
+def _table(df, *, classes=None, max_rows=None, row_class=None):
+    """An HTML table from a DataFrame; every cell escaped."""
+    rows = df if max_rows is None else df.head(max_rows)
+    head = "".join(f"<th>{_esc(c)}</th>" for c in rows.columns)
+    body = []
+    for i, (_, r) in enumerate(rows.iterrows()):
+        cls = f' class="{row_class[i]}"' if row_class is not None and row_class[i] else ""
+        body.append(f"<tr{cls}>" + "".join(f"<td>{_esc(_fmt(v))}</td>" for v in r.to_list()) + "</tr>")
+    note = ""
+    if max_rows is not None and len(df) > max_rows:
+        note = f'<p class="note">First {max_rows} of {len(df)} rows; the CSV file has them all.</p>'
+    cls = f' class="{classes}"' if classes else ""
+    return (f"<div class=\"scroll\"><table{cls}><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody>"
+            f"</table></div>{note}")
+
+
+def _kv_table(pairs):
+    rows = "".join(f"<tr><th>{_esc(k)}</th><td>{_esc(v)}</td></tr>" for k, v in pairs)
+    return f'<div class="scroll"><table class="kv"><tbody>{rows}</tbody></table></div>'
+
+
+def _new_figure(w=6.4, h=4.8):
+    return Figure(figsize=(w, h), layout="constrained")
+
+
+def _no_data(ax, text):
+    ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes, fontsize=11, color="#333333")
+
+
+def _log_axes(ax, *, x=None, y=None):
+    """Log scale on the axes whose data are given, ticks written as plain numbers.
+
+    Over less than two decades ticks go at 1, 2 and 5 × 10^k (matplotlib's
+    default then labels minor ticks in scientific notation and crowds the
+    axis); over more, at powers of ten only.
+    """
+    for values, axis, setter in ((x, ax.xaxis, ax.set_xscale), (y, ax.yaxis, ax.set_yscale)):
+        if values is None:
+            continue
+        v = np.asarray(values, float)
+        v = v[np.isfinite(v) & (v > 0)]
+        setter("log")
+        decades = np.log10(v.max() / v.min()) if len(v) else 0.0
+        axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0) if decades < 2 else (1.0,)))
+        axis.set_major_formatter(FuncFormatter(lambda t, _: f"{t:g}"))
+        axis.set_minor_formatter(NullFormatter())
+
+
+def _level_colours(levels):
+    """Colour per segment by branching level, with legend entries.
+
+    Up to eight distinct levels take Okabe–Ito colours; deeper networks take a
+    discrete cividis map, since eight categorical colours are all the palette
+    has and a sequential map still reads in order and in grey.
+    """
+    lev = np.asarray(levels, float)
+    present = np.unique(lev[np.isfinite(lev)]).astype(int)
+    colours = np.tile(np.array([[0.6, 0.6, 0.6, 1.0]]), (len(lev), 1))
+    if len(present) <= len(OKABE_ITO):
+        from matplotlib.colors import to_rgba
+
+        lut = {lv: to_rgba(OKABE_ITO[i]) for i, lv in enumerate(present)}
+        for i, v in enumerate(lev):
+            if np.isfinite(v):
+                colours[i] = lut[int(v)]
+        handles = [Line2D([], [], color=lut[lv], lw=2.5, label=f"level {lv}") for lv in present]
+        return colours, handles, None
+    from matplotlib import colormaps
+
+    cmap = colormaps["cividis"].resampled(len(present))
+    bounds = np.arange(present.min() - 0.5, present.max() + 1.5)
+    norm = BoundaryNorm(bounds, cmap.N)
+    ok = np.isfinite(lev)
+    colours[ok] = cmap(norm(lev[ok]))
+    return colours, [], (cmap, norm)
+
+
+# --------------------------------------------------------------------------- sample figures
+
+
+@dataclass
+class SampleData:
+    """What the sample figures need, read once."""
+
+    name: str
+    segments: pd.DataFrame
+    nodes: pd.DataFrame
+    bifurcations: pd.DataFrame
+    levels: pd.DataFrame
+    summary: dict
+    run: dict
+    centrelines: list
+    mip: np.ndarray | None = None
+    notes: list = field(default_factory=list)
+
+    @property
+    def spacing(self):
+        return tuple(float(s) for s in self.run.get("spacing_um", (1.0, 1.0, 1.0)))
+
+    @property
+    def has_flow(self):
+        return bool(np.isfinite(_col(self.segments, "flow_nl_min")).any())
+
+
+def load_sample(outdir, *, mask=None, read_mip=True):
+    """Read a result folder (and its mask, for the projection) for the figures.
+
+    Parameters
+    ----------
+    outdir : str or Path
+        A result folder written by ``analyze``.
+    mask : str or Path, optional
+        Mask file; default the input recorded in ``run.json``.
+    read_mip : bool
+        Read the mask and project it; False draws maps from centrelines only.
+
+    Returns
+    -------
+    SampleData
+    """
+    from .tables import load_result
+
+    out = Path(outdir)
+
+    res = load_result(out)
+    data = SampleData(name=out.name, segments=res.segments, nodes=res.nodes, bifurcations=res.bifurcations,
+                       levels=res.levels, summary=res.summary, run=res.run, centrelines=res.centrelines)
+    if read_mip:
+        data.mip = _read_mip(data, mask)
+    return data
+
+
+def _read_mip(data, mask):
+    """Maximum-intensity projection of the mask along z, or None with a note."""
+    from . import reading
+
+    run = data.run
+    explicit = mask is not None
+    path = Path(mask) if explicit else Path(run.get("input", {}).get("path") or "")
+    if not explicit and (not str(path) or str(path) == "." or not path.is_file()):
+        data.notes.append(f"The mask '{path}' recorded in run.json was not found, so the maps show the "
+                          "centrelines alone, without the mask projection.")
+        return None
+    spacing = data.spacing[1:] if run.get("planar") else data.spacing
+    threshold = (run.get("config") or {}).get("input", {}).get("threshold")
+    try:
+        # Only the boolean mask is held here, not the analysis' work arrays.
+        img = reading.read_mask(path, spacing=spacing, threshold=threshold, bytes_per_voxel=2.0)
+    except InputError as exc:
+        if explicit:
+            raise InputError(f"report: --mask: {exc}") from None
+        data.notes.append(f"The mask recorded in run.json could not be read ({exc}), so the maps show the "
+                          "centrelines alone.")
+        return None
+    want = run.get("shape")
+    if want is not None and list(img.shape) != list(want):
+        msg = (f"report: mask '{path}' has shape {list(img.shape)}; the analysis was of shape {list(want)}")
+        if explicit:
+            raise InputError(msg + "; expected the mask this result was made from")
+        data.notes.append(msg[len('report: '):] + ", so the maps show the centrelines alone.")
+        return None
+    sha = run.get("input", {}).get("sha256")
+    if sha and img.sha256 != sha:
+        data.notes.append(f"The mask file '{path}' differs from the one analysed (SHA-256 does not match "
+                          "run.json); its projection is shown as found.")
+    return img.mask.any(axis=0)
+
+
+def _map_axes(ax, data):
+    """Draw the mask projection (if any) and set µm axes with y down, as in the image."""
+    dz, dy, dx = data.spacing
+    if data.mip is not None:
+        ny, nx = data.mip.shape
+        ax.imshow(data.mip, cmap=_MASK_GREY, vmin=0, vmax=1, interpolation="nearest", origin="upper",
+                  extent=(-dx / 2, (nx - 0.5) * dx, (ny - 0.5) * dy, -dy / 2))
+    else:
+        pts = np.vstack(data.centrelines) if data.centrelines else np.zeros((0, 3))
+        shape = data.run.get("shape")
+        if shape is not None:
+            ax.set_xlim(-dx / 2, (shape[2] - 0.5) * dx)
+            ax.set_ylim((shape[1] - 0.5) * dy, -dy / 2)
+        elif len(pts):
+            ax.set_xlim(pts[:, 2].min() - 5, pts[:, 2].max() + 5)
+            ax.set_ylim(pts[:, 1].max() + 5, pts[:, 1].min() - 5)
+    ax.set_aspect("equal")
+    ax.set_xlabel("x (µm)")
+    ax.set_ylabel("y (µm)")
+
+
+def _centreline_collection(data, colours=None, **kw):
+    lines = [c[:, [2, 1]] for c in data.centrelines]
+    r = _col(data.segments, "radius_um")
+    rmax = np.nanmax(r) if np.isfinite(r).any() else 1.0
+    # Width follows radius so the trunk reads as a trunk; clipped so the
+    # thinnest capillaries stay visible.
+    widths = 0.6 + 2.4 * np.clip(np.nan_to_num(r / rmax), 0, 1)
+    if colours is not None:
+        kw["colors"] = colours
+    return LineCollection(lines, linewidths=widths, capstyle="round", **kw)
+
+
+def _flag_overlay(ax, data, numbered_note):
+    b = data.bifurcations
+    if b.empty or "flagged" not in b.columns:
+        return 0
+    fl = b[_bool_col(b, "flagged")]
+    if fl.empty:
+        return 0
+    ax.scatter(fl["x_um"], fl["y_um"], s=140, facecolors="none", edgecolors=_FLAG_COLOUR, linewidths=1.3,
+               zorder=5, label=f"flagged bifurcation ({len(fl)})", gid="flagged-circles")
+    if len(fl) <= _MAX_NUMBERED:
+        for _, r in fl.iterrows():
+            ax.annotate(str(int(r["node_id"])), (r["x_um"], r["y_um"]), xytext=(5, 5), textcoords="offset points",
+                        fontsize=7, color=_FLAG_COLOUR, zorder=6,
+                        bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.8))
+    else:
+        numbered_note.append(f"{len(fl)} flagged bifurcations are circled but not numbered (too many to read); "
+                             "the bifurcation table lists them.")
+    return len(fl)
+
+
+def figure_map_level(data, notes):
+    """Projection map with centrelines coloured by branching level."""
+    fig = _new_figure(7.2, 6.4)
+    ax = fig.add_subplot()
+    _map_axes(ax, data)
+    colours, handles, seq = _level_colours(_col(data.segments, "level"))
+    ax.add_collection(_centreline_collection(data, colours, zorder=3, gid="centrelines"))
+    n = _flag_overlay(ax, data, notes)
+    if n:
+        how = ", numbered by node id" if n <= _MAX_NUMBERED else ""
+        handles = handles + [Line2D([], [], ls="none", marker="o", mfc="none", mec=_FLAG_COLOUR, ms=9,
+                                    label=f"flagged bifurcation ({n}){how}")]
+    if seq is not None:
+        cmap, norm = seq
+        from matplotlib.cm import ScalarMappable
+
+        cb = fig.colorbar(ScalarMappable(norm=norm, cmap=cmap), ax=ax, shrink=0.8)
+        lv = np.arange(int(norm.boundaries[0] + 0.5), int(norm.boundaries[-1] + 0.5))
+        cb.set_ticks(lv[:: max(1, len(lv) // 12)])
+        cb.set_label("branching level (generations from the root)")
+    if handles:
+        # Outside the axes: inside, the legend hides part of the network.
+        fig.legend(handles=handles, fontsize=7, loc="outside lower center", ncols=min(4, len(handles)))
+    ax.set_title("Centrelines by branching level" + ("" if data.mip is not None else " (no mask found)"))
+    return fig
+
+
+def figure_map_wss(data, notes):
+    """Projection map with centrelines coloured by wall shear stress."""
+    fig = _new_figure(7.2, 6.4)
+    ax = fig.add_subplot()
+    _map_axes(ax, data)
+    wss = _col(data.segments, "wss_pa")
+    good = np.isfinite(wss) & (wss > 0)
+    if good.any():
+        lo, hi = np.nanmin(wss[good]), np.nanmax(wss[good])
+        # A log scale when the range spans more than a decade, else the
+        # colour steps would all sit at one end.
+        norm = LogNorm(lo, hi) if hi > 10 * lo else Normalize(lo, hi)
+        grey = _centreline_collection(data, "#9a9a9a", linestyles="dotted", zorder=2)
+        grey.set_visible(not good.all())
+        ax.add_collection(grey)
+        lc = _centreline_collection(data, cmap="viridis", norm=norm, zorder=3, gid="centrelines")
+        arr = np.where(good, wss, np.nan)
+        lc.set_array(np.ma.masked_invalid(arr))
+        ax.add_collection(lc)
+        cb = fig.colorbar(lc, ax=ax, shrink=0.8)
+        cb.set_label("wall shear stress (Pa)")
+    else:
+        _no_data(ax, "no wall shear stress (flow model not run)")
+    _flag_overlay(ax, data, [])
+    ax.set_title("Centrelines by wall shear stress (model estimate)")
+    return fig
+
+
+def figure_distributions(data, notes):
+    """Histograms of segment radius and segment length."""
+    fig = _new_figure(9.0, 3.8)
+    a1, a2 = fig.subplots(1, 2)
+    for ax, col, lab, colour in ((a1, "radius_um", "segment radius (µm)", OKABE_ITO[0]),
+                                 (a2, "length_um", "segment length (µm)", OKABE_ITO[1])):
+        v = _col(data.segments, col)
+        v = v[np.isfinite(v)]
+        if len(v):
+            ax.hist(v, bins=min(40, max(5, int(np.sqrt(len(v)) * 2))), color=colour, edgecolor="white")
+            med = float(np.median(v))
+            ax.axvline(med, color="k", ls="--", lw=1, label=f"median {med:.3g} µm")
+            ax.legend(fontsize=8)
+        else:
+            _no_data(ax, "no segments")
+        ax.set_xlabel(lab)
+        ax.set_ylabel("segments (count)")
+    a1.set_title("Radius")
+    a2.set_title("Length")
+    return fig
+
+
+def figure_radius_by_level(data, notes):
+    """Segment radius per branching level on a log axis, with the level ratios."""
+    fig = _new_figure(7.0, 4.8)
+    ax = fig.add_subplot()
+    lev, r = _col(data.segments, "level"), _col(data.segments, "radius_um")
+    ok = np.isfinite(lev) & np.isfinite(r) & (r > 0)
+    if not ok.any():
+        _no_data(ax, "no branching levels")
+    else:
+        rng = np.random.default_rng(0)  # fixed jitter: the same figure every run
+        jitter = rng.uniform(-0.18, 0.18, ok.sum())
+        ax.scatter(lev[ok] + jitter, r[ok], s=12, color=OKABE_ITO[0], alpha=0.6, lw=0, label="segment",
+                   gid="segments")
+        L = data.levels
+        if not L.empty and "level" in L.columns:
+            lv, mean = _col(L, "level"), _col(L, "radius_mean_um")
+            ax.scatter(lv, mean, marker="_", s=500, color="k", lw=2, zorder=4, label="level mean")
+            ratio = _col(L, "radius_ratio")
+            top = np.nanmax(r[ok]) * 1.25
+            for i in range(len(L)):
+                if np.isfinite(ratio[i]) and np.isfinite(lv[i]):
+                    ax.text(lv[i] - 0.5, top, f"×{ratio[i]:.2f}", ha="center", va="bottom", fontsize=8)
+            ax.set_ylim(np.nanmin(r[ok]) / 1.3, top * 1.35)
+        _log_axes(ax, y=[np.nanmin(r[ok]) / 1.3, top * 1.35] if not L.empty else r[ok])
+        ax.set_xticks(np.unique(lev[ok]).astype(int))
+        ax.legend(fontsize=8, loc="lower left")
+    ax.set_xlabel("branching level (generations from the root)")
+    ax.set_ylabel("segment radius (µm, log scale)")
+    ax.set_title("Radius by level; ×: mean radius ratio to the level before")
+    return fig
+
+
+def _murray_xy(b):
+    r0, r1, r2 = _col(b, "radius_parent_um"), _col(b, "radius_daughter1_um"), _col(b, "radius_daughter2_um")
+    x, y = r0 ** 3, r1 ** 3 + r2 ** 3
+    ok = np.isfinite(x) & np.isfinite(y) & (x > 0) & (y > 0)
+    return x, y, ok
+
+
+def figure_murray(data, notes):
+    """Murray plot: r0³ against r1³ + r2³ with the identity line; flagged junctions marked."""
+    fig = _new_figure(6.0, 5.6)
+    ax = fig.add_subplot()
+    b = data.bifurcations
+    x, y, ok = _murray_xy(b) if not b.empty else (np.zeros(0), np.zeros(0), np.zeros(0, bool))
+    if not ok.any():
+        _no_data(ax, "no bifurcations")
+    else:
+        flag = _bool_col(b, "flagged")
+        lo, hi = min(x[ok].min(), y[ok].min()) / 1.5, max(x[ok].max(), y[ok].max()) * 1.5
+        ax.plot([lo, hi], [lo, hi], color="k", lw=1, label="identity: r0³ = r1³ + r2³ (Murray 1926)",
+                gid="identity")
+        cfg = (data.run.get("config") or {}).get("bifurcations", {})
+        rmin, rmax = cfg.get("ratio_min"), cfg.get("ratio_max")
+        if rmin and rmax:
+            ax.plot([lo, hi], [lo * rmax, hi * rmax], color="k", lw=0.8, ls="--",
+                    label=f"flag limits: ratio {rmin:g} and {rmax:g}")
+            ax.plot([lo, hi], [lo * rmin, hi * rmin], color="k", lw=0.8, ls="--")
+        m = ok & ~flag
+        ax.scatter(x[m], y[m], s=22, color=OKABE_ITO[0], alpha=0.8, lw=0, label=f"not flagged ({m.sum()})",
+                   gid="not-flagged")
+        m = ok & flag
+        ax.scatter(x[m], y[m], s=40, marker="X", color=OKABE_ITO[3], lw=0, label=f"flagged ({m.sum()})",
+                   gid="flagged")
+        _log_axes(ax, x=[lo, hi], y=[lo, hi])
+        ax.set_xlim(lo, hi)
+        ax.set_ylim(lo, hi)
+        ax.set_aspect("equal")
+        ax.legend(fontsize=8, loc="upper left")
+        if (~ok).sum():
+            notes.append(f"{int((~ok).sum())} junction(s) without three measured radii are left out of the "
+                         "Murray plot.")
+    ax.set_xlabel("parent radius cubed r0³ (µm³)")
+    ax.set_ylabel("sum of daughter radii cubed r1³ + r2³ (µm³)")
+    ax.set_title("Murray plot")
+    return fig
+
+
+def figure_exponents(data, notes):
+    """Distribution of junction exponents x (r0^x = r1^x + r2^x), with 2 and 3 marked."""
+    fig = _new_figure(6.4, 4.4)
+    ax = fig.add_subplot()
+    e = _col(data.bifurcations, "murray_exponent") if not data.bifurcations.empty else np.zeros(0)
+    fin = e[np.isfinite(e)]
+    undefined = int(len(e) - len(fin))
+    lo, hi = 0.0, 8.0
+    if len(fin):
+        # Near-equal radii give exponents in the tens; they pile up in the
+        # end bins instead of stretching the axis.
+        clipped = np.clip(fin, lo + 1e-9, hi - 1e-9)
+        ax.hist(clipped, bins=np.arange(lo, hi + 0.25, 0.25), color=OKABE_ITO[5], edgecolor="white")
+        beyond = int(((fin <= lo) | (fin >= hi)).sum())
+        if beyond:
+            notes.append(f"{beyond} junction exponent(s) outside [{lo:g}, {hi:g}] are shown in the end bins.")
+        med = float(np.median(fin))
+        ax.axvline(med, color="k", lw=1, ls=":", label=f"median {med:.2f}")
+    else:
+        _no_data(ax, "no defined junction exponents")
+    ax.axvline(2.0, color=OKABE_ITO[1], lw=2, label="2: area-preserving", gid="x2")
+    ax.axvline(3.0, color=OKABE_ITO[3], lw=2, label="3: Murray's cube law", gid="x3")
+    ax.set_xlim(lo, hi)
+    ax.legend(fontsize=8)
+    ax.set_xlabel("junction exponent x, r0^x = r1^x + r2^x (dimensionless)")
+    ax.set_ylabel("bifurcations (count)")
+    ax.set_title(f"Junction exponents ({len(fin)} defined, {undefined} undefined)")
+    return fig
+
+
+def figure_wss_diameter(data, notes):
+    """Wall shear stress against vessel diameter, perfused segments."""
+    fig = _new_figure(6.4, 4.6)
+    ax = fig.add_subplot()
+    d, w = 2 * _col(data.segments, "radius_um"), _col(data.segments, "wss_pa")
+    ok = np.isfinite(d) & np.isfinite(w) & (w > 0) & (d > 0)
+    if not ok.any():
+        _no_data(ax, "no wall shear stress (flow model not run)")
+    else:
+        ax.scatter(d[ok], w[ok], s=14, color=OKABE_ITO[2], alpha=0.7, lw=0, label=f"segment ({ok.sum()})")
+        if w[ok].max() > 10 * w[ok].min():
+            _log_axes(ax, y=w[ok])
+        ax.legend(fontsize=8)
+    ax.set_xlabel("diameter 2r (µm)")
+    ax.set_ylabel("wall shear stress (Pa)")
+    ax.set_title("Wall shear stress against diameter (model estimate)")
+    return fig
+
+
+def figure_flow_radius(data, notes):
+    """|flow| against radius on log-log axes with a slope-3 guide (Q ∝ r³)."""
+    fig = _new_figure(6.4, 4.8)
+    ax = fig.add_subplot()
+    r, q = _col(data.segments, "radius_um"), np.abs(_col(data.segments, "flow_nl_min"))
+    ok = np.isfinite(r) & np.isfinite(q) & (r > 0) & (q > 0)
+    if not ok.any():
+        _no_data(ax, "no flows (flow model not run)")
+    else:
+        lr, lq = np.log10(r[ok]), np.log10(q[ok])
+        ax.scatter(r[ok], q[ok], s=14, color=OKABE_ITO[0], alpha=0.7, lw=0, label=f"segment ({ok.sum()})")
+        # The guide passes through the median point so it sits on the cloud.
+        r_ref, q_ref = 10 ** np.median(lr), 10 ** np.median(lq)
+        rg = np.array([r[ok].min(), r[ok].max()])
+        ax.plot(rg, q_ref * (rg / r_ref) ** 3, color="k", lw=1.2, ls="--",
+                label="slope 3: Q ∝ r³ (Murray 1926)", gid="slope3")
+        if len(np.unique(lr)) > 1:
+            slope = np.polyfit(lr, lq, 1)[0]
+            ax.plot([], [], " ", label=f"least-squares slope {slope:.2f}")
+        _log_axes(ax, x=r[ok], y=q[ok])
+        ax.legend(fontsize=8, loc="upper left")
+    ax.set_xlabel("segment radius (µm, log scale)")
+    ax.set_ylabel("|flow| (nL/min, log scale)")
+    ax.set_title("Flow against radius (model estimate)")
+    return fig
+
+
+_SAMPLE_BUILDERS = {
+    "map_level": (figure_map_level, "Map by branching level",
+                  "Projection of the mask along z (grey) with centrelines coloured by branching level "
+                  "(Okabe–Ito colours); line width follows radius. Circles: flagged bifurcations, numbered "
+                  "by node id (the bifurcation table below)."),
+    "map_wss": (figure_map_wss, "Map by wall shear stress",
+                "The same projection with centrelines coloured by model wall shear stress (viridis); "
+                "dotted grey: segments without flow."),
+    "distributions": (figure_distributions, "Radius and length", "Histograms over all segments."),
+    "radius_by_level": (figure_radius_by_level, "Radius by branching level",
+                        "Segment radii per level (log axis); bars: level means; ×: ratio of the mean radius "
+                        "to that of the level before (levels.csv, radius_ratio). Under Murray's cube law a "
+                        "symmetric split gives 2^(-1/3) ≈ 0.79."),
+    "murray": (figure_murray, "Murray plot",
+               "Each point is one junction: parent radius cubed against the sum of daughter radii cubed. "
+               "On the identity line the cube law r0³ = r1³ + r2³ holds (Murray 1926); dashed: the flag "
+               "limits of the Murray ratio."),
+    "exponents": (figure_exponents, "Junction exponents",
+                  "The exponent x solving r0^x = r1^x + r2^x at each junction. 2 preserves cross-sectional "
+                  "area; 3 is Murray's cube law (minimum work)."),
+    "wss_diameter": (figure_wss_diameter, "Wall shear stress against diameter",
+                     "Model wall shear stress 4μQ/(πr³) per perfused segment. Under the cube law it is the "
+                     "same in every vessel (Murray 1926)."),
+    "flow_radius": (figure_flow_radius, "Flow against radius",
+                    "Model flow per perfused segment on log-log axes. The dashed guide has slope 3: Murray's "
+                    "law predicts Q ∝ r³."),
+}
+
+
+def sample_figures(data, notes):
+    """Build the sample figures that the data supports.
+
+    Parameters
+    ----------
+    data : SampleData
+    notes : list of str
+        Receives remarks for the report (left-out points, unnumbered flags).
+
+    Returns
+    -------
+    dict of str -> (Figure, title, caption)
+    """
+    out = {}
+    names = list(SAMPLE_FIGURES)
+    if not data.has_flow:
+        names = [n for n in names if n not in ("map_wss", "wss_diameter", "flow_radius")]
+        notes.append("The flow model was not run (or solved nothing), so the flow figures are left out.")
+    if data.bifurcations.empty:
+        names = [n for n in names if n not in ("murray", "exponents")]
+        notes.append("The network has no bifurcations, so the Murray figures are left out.")
+    for n in names:
+        fn, title, caption = _SAMPLE_BUILDERS[n]
+        out[n] = (fn(data, notes), title, caption)
+    return out
+
+
+# --------------------------------------------------------------------------- study figures
+
+
+def _box_and_points(ax, groups, values, colours):
+    pos = np.arange(1, len(groups) + 1)
+    data = [v[np.isfinite(v)] for v in values]
+    ax.boxplot([d if len(d) else [np.nan] for d in data], positions=pos, widths=0.5, showfliers=False,
+               medianprops=dict(color="k", lw=1.5), boxprops=dict(color="#555555"),
+               whiskerprops=dict(color="#555555"), capprops=dict(color="#555555"))
+    rng = np.random.default_rng(0)
+    for p, d, c, g in zip(pos, data, colours, groups):
+        ax.scatter(p + rng.uniform(-0.12, 0.12, len(d)), d, s=30, color=c, edgecolor="k", lw=0.5, zorder=3,
+                   label=f"{g} (n = {len(d)})")
+    ax.set_xticks(pos)
+    ax.set_xticklabels([str(g) for g in groups])
+
+
+def figure_study_measure(cohort, comparison, measure, groups):
+    """Box-and-point plot of one summary measure per group, annotated with q."""
+    fig = _new_figure(5.2, 4.4)
+    ax = fig.add_subplot()
+    colours = [OKABE_ITO[i % len(OKABE_ITO)] for i in range(len(groups))]
+    vals = [pd.to_numeric(cohort.loc[cohort["group"].astype(str) == g, measure], errors="coerce").to_numpy(float)
+            for g in groups]
+    _box_and_points(ax, groups, vals, colours)
+    lines = []
+    if comparison is not None and not comparison.empty:
+        rows = comparison[comparison["measure"] == measure]
+        for _, r in rows.iterrows():
+            lines.append(f"{r['group_a']} vs {r['group_b']}: q = {_fmt_q(_num(r.get('q_value')))}")
+    ax.set_title(measure + ("\n" + "; ".join(lines) if lines else ""), fontsize=9)
+    ax.set_xlabel("group")
+    ax.set_ylabel(_label(measure))
+    ax.legend(fontsize=7, loc="best")
+    return fig
+
+
+def _num(v):
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return float("nan")
+    return f
+
+
+def study_figures(cohort, comparison):
+    """Build one box-and-point figure per main measure present in the cohort table.
+
+    Returns
+    -------
+    dict of str -> (Figure, title, caption)
+    """
+    groups = sorted(cohort["group"].astype(str).unique())
+    out = {}
+    for m in STUDY_MEASURES:
+        if m not in cohort.columns or not np.isfinite(pd.to_numeric(cohort[m], errors="coerce")).any():
+            continue
+        fig = figure_study_measure(cohort, comparison, m, groups)
+        out[f"study_{m}"] = (fig, _label(m), "Boxes: median and quartiles per group; points: samples. q: "
+                                             "Benjamini–Hochberg-adjusted p-value of the Mann–Whitney U test "
+                                             "(group_comparison.csv).")
+    return out
+
+
+# --------------------------------------------------------------------------- HTML
+
+
+_CSS = """
+body{font-family:"DejaVu Sans",Arial,Helvetica,sans-serif;margin:2em auto;max-width:1100px;color:#1a1a1a;
+line-height:1.4;padding:0 1em}
+h1{font-size:1.6em;margin-bottom:.2em}h2{border-bottom:2px solid #0072B2;padding-bottom:.2em;margin-top:1.6em}
+.caution{border-left:6px solid #D55E00;background:#fff4ec;padding:.6em 1em;margin:1em 0}
+table{border-collapse:collapse;margin:.5em 0;font-size:.85em}
+th,td{border:1px solid #c8c8c8;padding:.2em .5em;text-align:left;vertical-align:top}
+thead th{background:#eef3f8}table.kv th{background:#f6f6f6;font-weight:normal;color:#333}
+tr.low-q td{background:#fff7d6}tr.flag td{background:#fdf0ea}
+figure{margin:1em 0;page-break-inside:avoid}figure img{max-width:100%;height:auto;border:1px solid #ddd}
+figcaption{font-size:.85em;color:#333;margin-top:.3em}
+.grid{display:flex;flex-wrap:wrap;gap:1em}.grid figure{flex:1 1 460px;margin:0}
+pre{background:#f6f6f6;padding:.6em;overflow-x:auto;font-size:.8em}
+.note{font-size:.85em;color:#444}ul.warn li{color:#7a3300}nav a{margin-right:1em}
+.muted{color:#666}.scroll{overflow-x:auto;max-width:100%}
+"""
+
+# The page loads nothing from outside: images only as data: URIs, no
+# scripts, no fonts; the browser enforces it.
+_CSP = "default-src 'none'; img-src data:; style-src 'unsafe-inline'"
+
+
+def _page(title, body):
+    return ("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
+            f"<meta http-equiv=\"Content-Security-Policy\" content=\"{_CSP}\">\n"
+            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n"
+            f"<title>{_esc(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n{body}\n</body>\n</html>\n")
+
+
+def _figure_html(r, *, anchor=None):
+    uri = "data:image/png;base64," + base64.b64encode(r.png).decode("ascii")
+    aid = f' id="{_esc(anchor)}"' if anchor else ""
+    return (f"<figure{aid}><img src=\"{uri}\" alt=\"{_esc(r.title)}\">"
+            f"<figcaption><b>{_esc(r.title)}.</b> {_esc(r.caption)} "
+            f"<span class=\"muted\">(figures/{_esc(r.name)}.png, .svg)</span></figcaption></figure>")
+
+
+def _render_all(figs):
+    rendered = []
+    for name, (fig, title, caption) in figs.items():
+        rendered.append(_render(fig, name, title, caption))
+    return rendered
+
+
+def _warnings_html(items):
+    if not items:
+        return "<p>None.</p>"
+    return '<ul class="warn">' + "".join(f"<li>{_esc(w)}</li>" for w in items) + "</ul>"
+
+
+def _config_html(cfg):
+    import yaml
+
+    text = yaml.safe_dump(cfg or {}, sort_keys=False, default_flow_style=False, allow_unicode=True)
+    return f"<pre>{_esc(text)}</pre>"
+
+
+def _summary_rows(summary):
+    rows = []
+    for k, v in summary.items():
+        if isinstance(v, dict):
+            for kk, vv in v.items():
+                rows.append((f"{k}.{kk}", _fmt(vv)))
+        elif isinstance(v, list):
+            rows.append((k, ", ".join(_fmt(x) for x in v)))
+        else:
+            rows.append((k, _fmt(v)))
+    return rows
+
+
+def _generated():
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def _sources_html():
+    return ("<ul>"
+            "<li>Murray CD (1926) The physiological principle of minimum work. I. The vascular system and the "
+            "cost of blood volume. PNAS 12:207–214 (cube law, Q ∝ r³, equal wall shear stress).</li>"
+            "<li>Murray CD (1926) The physiological principle of minimum work applied to the angle of "
+            "branching of arteries. J Gen Physiol 9:835–841 (optimal angles).</li>"
+            "<li>Benjamini Y, Hochberg Y (1995) Controlling the false discovery rate. J R Stat Soc B "
+            "57:289–300 (q-values in the study report).</li>"
+            "<li>Okabe M, Ito K (2002) Color Universal Design (CUD): how to make figures and presentations "
+            "that are friendly to colorblind people (category colours); viridis and cividis for continuous "
+            "values.</li></ul>")
+
+
+def _review_table(out, fl):
+    """Join review decisions (``review.csv``, optional) onto the flagged junctions by node id."""
+    path = out / "review.csv"
+    if not path.is_file():
+        return fl, None
+    try:
+        rev = pd.read_csv(path)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, OSError) as exc:
+        return fl, f"review.csv could not be read ({type(exc).__name__}); review decisions are not shown."
+    if "node_id" not in rev.columns:
+        return fl, "review.csv has no node_id column; review decisions are not shown."
+    rev = rev.drop_duplicates("node_id", keep="last")
+    keep = [c for c in rev.columns if c != "node_id"]
+    rev = rev.rename(columns={c: f"review {c}" for c in keep})
+    return fl.merge(rev, on="node_id", how="left"), f"Review decisions from review.csv ({len(rev)} rows)."
+
+
+def _sample_report(out, *, mask):
+    data = load_sample(out, mask=mask)
+    notes = list(data.notes)
+    figs = sample_figures(data, notes)
+    rendered = _render_all(figs)
+    run, summary = data.run, data.summary
+    inp = run.get("input") or {}
+    parts = [f"<h1>vesselflow report: {_esc(data.name)}</h1>",
+             f"<p class=\"muted\">Built {_esc(_generated())} by vesselflow {_esc(__version__)} from the result "
+             f"folder written {_esc(run.get('created', '?'))} by vesselflow "
+             f"{_esc(run.get('vesselflow_version', '?'))}.</p>",
+             f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)}</div>",
+             "<nav><a href=\"#inputs\">Inputs</a><a href=\"#warnings\">Warnings</a><a href=\"#summary\">Summary</a>"
+             "<a href=\"#figures\">Figures</a><a href=\"#levels\">Levels</a><a href=\"#bifurcations\">Bifurcations"
+             "</a><a href=\"#config\">Configuration</a></nav>"]
+    spacing = run.get("spacing_um")
+    parts.append("<h2 id=\"inputs\">Inputs</h2>" + _kv_table([
+        ("mask file", inp.get("path", "?")),
+        ("SHA-256", inp.get("sha256", "?")),
+        ("stored type and axes", f"{inp.get('dtype', '?')}, {inp.get('axes', '?')}"),
+        ("shape (Z, Y, X) voxels", ", ".join(str(s) for s in run.get("shape", []))),
+        ("spacing (dz, dy, dx) µm", ", ".join(_fmt(s, 4) for s in spacing) if spacing else "?"),
+        ("spacing source", run.get("spacing_source", "?")),
+        ("planar (2-D)", _fmt(bool(run.get("planar", False)))),
+        ("command", " ".join(str(c) for c in run.get("command") or []) or "(library call)"),
+        ("analysis version", run.get("vesselflow_version", "?")),
+        ("report version", __version__),
+        ("projection map", "mask projection" if data.mip is not None else "centrelines only (mask not read)"),
+    ]))
+    if run.get("spacing_source") == "default":
+        notes.insert(0, "No spacing was found in the file or given: 1 µm was assumed, so every length, "
+                        "density and flow in this report scales with that assumption.")
+    parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analysis (run.json)</h3>"
+                 + _warnings_html(run.get("warnings") or []) + "<h3>From the report</h3>" + _warnings_html(notes)
+                 + ("<h3>Run notes</h3>" + _warnings_html(run["notes"]) if run.get("notes") else ""))
+    parts.append("<h2 id=\"summary\">Summary</h2>" + _kv_table(_summary_rows(summary)))
+    parts.append("<h2 id=\"figures\">Figures</h2>")
+    parts.append("<div class=\"grid\">" + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered)
+                 + "</div>")
+    parts.append("<h2 id=\"levels\">Branching levels</h2>"
+                 + (_table(data.levels) if not data.levels.empty else "<p>No levels.</p>"))
+    parts.append("<h2 id=\"bifurcations\">Flagged bifurcations</h2>" + _bifurcation_html(out, data.bifurcations))
+    flow = run.get("flow") or {}
+    if flow:
+        parts.append("<h2 id=\"flow\">Flow model</h2>" + _kv_table([(k, _fmt(v)) for k, v in flow.items()]))
+    parts.append("<h2 id=\"config\">Effective configuration</h2>" + _config_html(run.get("config")))
+    counts = run.get("counts") or {}
+    timings = run.get("timings_s") or {}
+    parts.append("<h2 id=\"run\">Run record</h2>"
+                 + _kv_table([(k, _fmt(v) if not isinstance(v, list) else ", ".join(_fmt(x) for x in v))
+                              for k, v in counts.items()]
+                             + [(f"time: {k} (s)", _fmt(v)) for k, v in timings.items()]))
+    parts.append("<h2 id=\"sources\">Sources</h2>" + _sources_html())
+    return _page(f"vesselflow report: {data.name}", "\n".join(parts)), rendered
+
+
+def _bifurcation_html(out, b):
+    if b.empty or "flagged" not in b.columns:
+        return "<p>No bifurcations.</p>"
+    fl = b[_bool_col(b, "flagged")]
+    head = f"<p>{len(fl)} of {len(b)} bifurcations flagged; the node id is the number on the maps.</p>"
+    if fl.empty:
+        return head
+    cols = [c for c in ("node_id", "level", "degree", "radius_parent_um", "radius_daughter1_um",
+                        "radius_daughter2_um", "murray_ratio", "murray_exponent", "angle_deviation_deg",
+                        "low_confidence", "flag_reasons") if c in fl.columns]
+    fl = fl[cols].copy()
+    if "flag_reasons" in fl.columns:
+        fl["flag_reasons"] = fl["flag_reasons"].fillna("").astype(str).str.replace(";", ", ")
+    fl, note = _review_table(out, fl)
+    return head + (f"<p class=\"note\">{_esc(note)}</p>" if note else "") + _table(fl, classes="bif")
+
+
+def _read_table(path, required, what):
+    try:
+        df = pd.read_csv(path)
+    except FileNotFoundError:
+        return None
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise InputError(f"report: {what} '{path}' could not be read as CSV ({exc})") from None
+    missing = [c for c in required if c not in df.columns]
+    if missing:
+        raise InputError(f"report: {what} '{path}': expected columns {', '.join(required)}; "
+                         f"missing {', '.join(missing)}")
+    return df
+
+
+def _study_report(out):
+    cohort = _read_table(out / "cohort_summary.csv", ("sample_id", "group"), "cohort summary")
+    if cohort.empty:
+        raise InputError(f"report: cohort summary '{out / 'cohort_summary.csv'}' has no samples; "
+                         "expected one row per sample")
+    comparison = _read_table(out / "group_comparison.csv",
+                             ("measure", "group_a", "group_b", "p_value", "q_value"), "group comparison")
+    failures = _read_table(out / "failures.csv", ("sample_id", "path", "step", "error"), "failures table")
+    try:
+        batch = json.loads((out / "batch.json").read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        batch = {}
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"report: '{out / 'batch.json'}' is not valid JSON ({exc})") from None
+    notes = []
+    if comparison is None:
+        notes.append("group_comparison.csv is missing: no q-values are shown.")
+    if failures is None:
+        notes.append("failures.csv is missing: failed samples, if any, are not listed.")
+
+    # Sample sections first: reading them finds folders that are missing.
+    samples = []
+    for _, row in cohort.iterrows():
+        sid = str(row["sample_id"])
+        folder = out / sid
+        try:
+            sd = load_sample(folder, read_mip=False)
+        except InputError as exc:
+            notes.append(f"sample {sid}: {exc}")
+            sd = None
+        samples.append((sid, str(row["group"]), sd))
+
+    figs = study_figures(cohort, comparison)
+    thumbs = {}
+    for sid, _, sd in samples:
+        if sd is not None and sd.centrelines:
+            fig = figure_map_level(sd, [])
+            thumbs[sid] = _render(fig, f"sample_{_anchor(sid)[2:]}_map_level", f"{sid}: centrelines by level",
+                                  "Centrelines projected along z, coloured by branching level; circles: flagged "
+                                  "bifurcations by node id (drawn without the mask).")
+    rendered = _render_all(figs)
+    groups = sorted(cohort["group"].astype(str).unique())
+    parts = [f"<h1>vesselflow study report: {_esc(out.name)}</h1>",
+             f"<p class=\"muted\">Built {_esc(_generated())} by vesselflow {_esc(__version__)}; batch run "
+             f"{_esc(batch.get('created', '?'))} by vesselflow "
+             f"{_esc(batch.get('version') or batch.get('vesselflow_version') or '?')} on "
+             f"{_esc(batch.get('input', '?'))}. "
+             f"{len(cohort)} samples in {len(groups)} groups: {_esc(', '.join(groups))}.</p>",
+             f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)} Group differences are "
+             "exploratory unless the study was designed and powered for them.</div>",
+             "<nav><a href=\"#samples\">Samples</a><a href=\"#warnings\">Warnings</a><a href=\"#measures\">Measures"
+             "</a><a href=\"#comparison\">Comparison</a><a href=\"#failures\">Failures</a>"
+             "<a href=\"#config\">Configuration</a></nav>"]
+    srows = []
+    for sid, grp, sd in samples:
+        run = sd.run if sd is not None else {}
+        srows.append({"sample": sid, "group": grp, "mask file": (run.get("input") or {}).get("path", "–"),
+                      "spacing (dz, dy, dx) µm": ", ".join(_fmt(s, 4) for s in run.get("spacing_um", [])) or "–",
+                      "spacing source": run.get("spacing_source", "–"),
+                      "warnings": len(run.get("warnings") or []) if sd is not None else "–",
+                      "version": run.get("vesselflow_version", "–")})
+    stab = pd.DataFrame(srows)
+    parts.append("<h2 id=\"samples\">Samples and inputs</h2>" + _table(stab)
+                 + "<p>" + " ".join(f"<a href=\"#{_anchor(sid)}\">{_esc(sid)}</a>" for sid, _, _ in samples)
+                 + "</p>")
+    allw = [f"{sid}: {w}" for sid, _, sd in samples if sd is not None for w in (sd.run.get("warnings") or [])]
+    parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analyses</h3>" + _warnings_html(allw)
+                 + "<h3>From the report</h3>" + _warnings_html(notes))
+    parts.append("<h2 id=\"measures\">Measures by group</h2><div class=\"grid\">"
+                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered) + "</div>")
+    parts.append("<h2 id=\"comparison\">Group comparison</h2>")
+    if comparison is not None and not comparison.empty:
+        low = [("low-q" if _num(q) < _LOW_Q else "") for q in comparison["q_value"]]
+        parts.append(f"<p>Highlighted: q &lt; {_LOW_Q:g} (Benjamini–Hochberg across measures). difference = "
+                     "mean of group b − mean of group a.</p>" + _table(comparison, row_class=low))
+    else:
+        parts.append("<p>No comparison table.</p>")
+    parts.append("<h2 id=\"failures\">Failed samples</h2>"
+                 + (_table(failures) if failures is not None and not failures.empty else "<p>None.</p>"))
+    parts.append("<h2 id=\"cohort\">Cohort summary</h2>" + _table(cohort))
+    parts.append("<h2 id=\"per-sample\">Per sample</h2>")
+    for sid, grp, sd in samples:
+        sec = [f"<section id=\"{_esc(_anchor(sid))}\"><h3>{_esc(sid)} <span class=\"muted\">({_esc(grp)})</span>"
+               "</h3>"]
+        if sd is None:
+            sec.append("<p>Result folder missing or incomplete (see the notes).</p></section>")
+            parts.append("".join(sec))
+            continue
+        run, s = sd.run, sd.summary
+        inp = run.get("input") or {}
+        sec.append(_kv_table([("mask file", inp.get("path", "?")),
+                              ("spacing (dz, dy, dx) µm", ", ".join(_fmt(v, 4) for v in run.get("spacing_um", []))),
+                              ("spacing source", run.get("spacing_source", "?"))]
+                             + [(_label(m), _fmt(s.get(m))) for m in STUDY_MEASURES if m in s]))
+        sec.append("<p><b>Warnings:</b></p>" + _warnings_html(run.get("warnings") or []))
+        if sid in thumbs:
+            sec.append(_figure_html(thumbs[sid]))
+        if (out / sid / REPORT_NAME).is_file():
+            sec.append(f"<p class=\"note\">This sample has its own report: {_esc(sid)}/{REPORT_NAME}.</p>")
+        sec.append("</section>")
+        parts.append("".join(sec))
+    parts.append("<h2 id=\"config\">Effective configuration</h2>" + _config_html(batch.get("config")))
+    parts.append("<h2 id=\"sources\">Sources</h2>" + _sources_html())
+    return _page(f"vesselflow study report: {out.name}", "\n".join(parts)), rendered + list(thumbs.values())

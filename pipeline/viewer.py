@@ -1,0 +1,884 @@
+"""Look at a result folder in napari and review its flagged bifurcations.
+
+In: a result folder (and the mask it was computed from). Out: napari layers,
+the review panel (a dock widget) that writes ``review.csv`` on every change,
+and screenshots.
+
+This and ``napari.yaml`` are the only parts of vesselflow that import napari
+or Qt; the command line imports this module only for ``vesselflow view``, and
+it needs the optional extra (``pip install 'vesselflow[viewer]'``).
+
+Everything is shown in physical units: the world frame is µm, with voxel
+(i, j, k) at (i·dz, j·dy, k·dx). The mask is an image layer with
+``scale = spacing``; centrelines, nodes and bifurcations are placed at their
+µm positions from ``centrelines.npz``, ``nodes.csv`` and ``bifurcations.csv``
+(scale 1).
+
+Layers:
+
+``mask``
+    The binary mask, as a faint maximum projection in 3-D.
+``centrelines``
+    Every segment's smoothed centreline as a chain of short vectors, coloured
+    by the chosen measure (:data:`pipeline.review.COLOUR_MEASURES`) with the
+    ``viridis`` colour map; grey where a segment has no value. The legend is
+    a colour bar in the review panel and a text line on the canvas.
+``nodes``
+    All nodes, light grey.
+``flagged bifurcations``
+    The flagged junctions, drawn over everything else; magenta until
+    reviewed, then orange (``confirmed``), grey (``artefact``) or light blue
+    (``unsure``).
+``current bifurcation``
+    A white ring round the junction under review.
+
+The review panel lists the flagged junctions in a sortable table; Previous
+and Next follow the table's order; choosing a row centres and zooms the
+camera on the junction and shows its parent and daughter radii and measures;
+the decision buttons and the note field save ``review.csv`` at once.
+
+For napari's own menus the module provides an npe2 reader (open a result
+folder: File > Open Folder) and the review panel as a widget
+(Plugins > vesselflow > Bifurcation review), which finds the result through
+the layers the reader made.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import napari
+import numpy as np
+import pandas as pd
+from napari.utils.colormaps import ensure_colormap
+from qtpy import QtCore, QtGui, QtWidgets
+
+from . import reading, review as rv, tables
+from .errors import InputError
+
+__all__ = [
+    "ReviewPanel",
+    "open_result",
+    "render_screenshot",
+    "read_mask_for",
+    "result_layers",
+    "napari_get_reader",
+    "FLAGGED_RGBA",
+    "DECISION_RGBA",
+    "CENTRELINE_COLORMAP",
+]
+
+CENTRELINE_COLORMAP = "viridis"
+#: Face colour of a flagged junction not yet reviewed (magenta: not in viridis,
+#: so it never blends into the centreline colours).
+FLAGGED_RGBA = (1.0, 0.0, 1.0, 1.0)
+#: Face colour of a reviewed flagged junction, per decision.
+DECISION_RGBA = {
+    "confirmed": (1.0, 0.55, 0.0, 1.0),
+    "artefact": (0.5, 0.5, 0.5, 1.0),
+    "unsure": (0.35, 0.75, 1.0, 1.0),
+}
+NO_VALUE_RGBA = (0.6, 0.6, 0.6, 1.0)
+NODE_RGBA = (0.85, 0.85, 0.85, 1.0)
+CURRENT_RGBA = (1.0, 1.0, 1.0, 1.0)
+
+_META_KEY = "vesselflow_result"
+# Markers are sized from the local vessel radius so they read as "this junction"
+# without hiding the vessels round it: a flagged marker a little wider than the
+# parent vessel, the ring round it wider still, and the close-up view a few
+# parent diameters across (never below 40 µm, so thin capillaries keep context).
+_FLAG_SIZE_RADII = 2.4
+_RING_SIZE_RADII = 4.0
+_VIEW_RADII = 8.0
+_VIEW_MIN_UM = 40.0
+_SCREENSHOT_SIZE = (768, 1024)
+
+
+# ---------------------------------------------------------------------------
+# napari version differences
+# ---------------------------------------------------------------------------
+
+def _camera(viewer):
+    # napari 0.9 moved the camera to viewer.scene and deprecated viewer.camera.
+    scene = getattr(viewer, "scene", None)
+    return scene.camera if scene is not None else viewer.camera
+
+
+def _text_overlay(viewer):
+    canvas = getattr(viewer, "canvas", None)
+    overlays = getattr(canvas, "overlays", None)
+    if overlays is not None and hasattr(overlays, "text"):
+        return overlays.text
+    return viewer.text_overlay
+
+
+# ---------------------------------------------------------------------------
+# data -> layers
+# ---------------------------------------------------------------------------
+
+def read_mask_for(result: tables.Result, mask_path: str | os.PathLike[str] | None = None):
+    """The mask of a result, as a boolean (Z, Y, X) array.
+
+    Parameters
+    ----------
+    result : pipeline.tables.Result
+    mask_path : path, optional
+        Default: the input recorded in ``run.json``.
+
+    Returns
+    -------
+    mask : ndarray of bool or None
+        None when no path was given and the recorded file no longer exists.
+    message : str or None
+        Why the mask is missing, for a warning.
+
+    Raises
+    ------
+    InputError
+        If ``mask_path`` is given but cannot be read, or the mask's shape
+        differs from the one the result was computed from.
+    """
+    recorded = (result.run.get("input") or {}).get("path")
+    if mask_path is None:
+        if not recorded or not Path(recorded).is_file():
+            return None, (f"the mask recorded in run.json ('{recorded}') is not there; showing the graph without "
+                          "it (pass --mask PATH)")
+        mask_path = recorded
+    path = Path(mask_path)
+    if not path.is_file():
+        raise InputError(f"--mask: expected a mask file, got '{path}' (not found)")
+    threshold = ((result.run.get("config") or {}).get("input") or {}).get("threshold")
+    img = reading.read_mask(path, spacing=result.spacing if len(result.spacing) == 3 else None, threshold=threshold)
+    shape = tuple(result.run.get("shape") or ())
+    if shape and tuple(img.mask.shape) != shape:
+        raise InputError(f"mask '{path}': expected shape {shape} (the volume this result was computed from), "
+                         f"got {tuple(img.mask.shape)}")
+    return img.mask, None
+
+
+def _colours(values: np.ndarray, *, measure: str):
+    """RGBA per value and the colour limits (grey for NaN)."""
+    finite = values[np.isfinite(values)]
+    if finite.size:
+        lo, hi = float(finite.min()), float(finite.max())
+    else:
+        lo, hi = 0.0, 1.0
+    if measure == "murray_ratio" and finite.size:
+        # Centre the scale on the cube law (ratio 1) so above and below read alike.
+        half = max(abs(hi - 1.0), abs(1.0 - lo), 1e-6)
+        lo, hi = 1.0 - half, 1.0 + half
+    span = hi - lo if hi > lo else 1.0
+    t = np.clip((np.nan_to_num(values, nan=lo) - lo) / span, 0.0, 1.0)
+    rgba = np.asarray(ensure_colormap(CENTRELINE_COLORMAP).map(t), dtype=np.float32).reshape(-1, 4)
+    rgba[~np.isfinite(values)] = NO_VALUE_RGBA
+    return rgba, (lo, hi)
+
+
+def _centreline_vectors(result: tables.Result):
+    """(N, 2, 3) napari vectors (start, step) along every centreline, and each one's segment row."""
+    starts, steps, owner = [], [], []
+    for row, p in enumerate(result.centrelines):
+        p = np.asarray(p, dtype=float)
+        if len(p) < 2:
+            continue
+        starts.append(p[:-1])
+        steps.append(np.diff(p, axis=0))
+        owner.append(np.full(len(p) - 1, row))
+    if not starts:
+        return np.zeros((0, 2, 3)), np.zeros(0, dtype=np.int64)
+    return np.stack([np.vstack(starts), np.vstack(steps)], axis=1), np.concatenate(owner)
+
+
+def _flagged(result: tables.Result) -> pd.DataFrame:
+    b = result.bifurcations
+    if b.shape[1] == 0 or "flagged" not in b.columns:
+        return pd.DataFrame(columns=["node_id", "z_um", "y_um", "x_um", "radius_parent_um"])
+    return b[b["flagged"].astype(bool)].reset_index(drop=True)
+
+
+def _flag_colours(node_ids, decisions: dict) -> np.ndarray:
+    out = np.array([DECISION_RGBA.get(decisions.get(int(n)), FLAGGED_RGBA) for n in node_ids], dtype=float)
+    return out.reshape(-1, 4)
+
+
+def result_layers(result: tables.Result, *, mask: np.ndarray | None = None, colour_by: str = "radius",
+                  review: pd.DataFrame | None = None) -> list[tuple[Any, dict, str]]:
+    """napari layer data tuples for a result folder.
+
+    Parameters
+    ----------
+    result : pipeline.tables.Result
+    mask : ndarray of bool, optional, keyword-only
+        Shown with ``scale = spacing``.
+    colour_by : str, keyword-only
+        A key of :data:`pipeline.review.COLOUR_MEASURES`.
+    review : DataFrame, optional, keyword-only
+        Decisions that colour the flagged junctions (default: none).
+
+    Returns
+    -------
+    list of (data, kwargs, layer_type)
+        ``mask`` (if given), ``centrelines``, ``nodes``,
+        ``flagged bifurcations``; every layer's metadata names the folder.
+    """
+    meta = {_META_KEY: str(Path(result.path).resolve())}
+    spacing = tuple(float(s) for s in result.spacing)
+    layers: list[tuple[Any, dict, str]] = []
+    if mask is not None:
+        layers.append((np.asarray(mask).view(np.uint8), dict(
+            name="mask", scale=spacing, colormap="gray", contrast_limits=(0, 1), opacity=0.35,
+            # A maximum projection added to what lies behind keeps the centrelines
+            # inside the vessels visible, and renders several times faster than an
+            # iso-surface with software OpenGL.
+            rendering="mip", blending="additive", metadata=dict(meta)), "image"))
+    values = rv.segment_measure(result, colour_by)
+    vec, owner = _centreline_vectors(result)
+    rgba, _ = _colours(values, measure=colour_by)
+    radius = result.segments["radius_um"].to_numpy(float) if len(result.segments) else np.ones(0)
+    width = float(np.clip(0.4 * np.nanmedian(radius), 0.5, 5.0)) if radius.size else 1.0
+    layers.append((vec, dict(
+        name="centrelines", edge_color=rgba[owner] if len(owner) else "white", edge_width=width, length=1.0,
+        vector_style="line", features=pd.DataFrame({
+            "segment_id": result.segments["segment_id"].to_numpy(np.int64)[owner] if len(owner) else [],
+            "value": values[owner] if len(owner) else []}),
+        metadata={**meta, "colour_by": colour_by}), "vectors"))
+    nodes = result.nodes
+    npos = nodes[["z_um", "y_um", "x_um"]].to_numpy(float) if len(nodes) else np.zeros((0, 3))
+    nrad = nodes["radius_um"].to_numpy(float) if "radius_um" in nodes.columns else np.full(len(nodes), 1.0)
+    nrad = np.where(np.isfinite(nrad) & (nrad > 0), nrad, 1.0)
+    layers.append((npos, dict(
+        name="nodes", size=0.8 * nrad, face_color=np.tile(NODE_RGBA, (len(npos), 1)), border_width=0, opacity=0.6,
+        features=pd.DataFrame({"node_id": nodes["node_id"].to_numpy(np.int64) if len(nodes) else [],
+                               "kind": nodes["kind"].astype(str).to_numpy() if len(nodes) else []}),
+        metadata=dict(meta)), "points"))
+    flag = _flagged(result)
+    decisions = {} if review is None else dict(zip(review["node_id"].astype(int), review["decision"]))
+    fpos = flag[["z_um", "y_um", "x_um"]].to_numpy(float) if len(flag) else np.zeros((0, 3))
+    frad = flag["radius_parent_um"].to_numpy(float) if len(flag) else np.zeros(0)
+    layers.append((fpos, dict(
+        name="flagged bifurcations", size=_FLAG_SIZE_RADII * np.where(np.isfinite(frad), frad, 2.0),
+        face_color=_flag_colours(flag["node_id"], decisions),
+        border_width=0, blending="translucent_no_depth",
+        features=pd.DataFrame({"node_id": flag["node_id"].to_numpy(np.int64) if len(flag) else []}),
+        metadata=dict(meta)), "points"))
+    return layers
+
+
+# ---------------------------------------------------------------------------
+# review panel
+# ---------------------------------------------------------------------------
+
+class _SortItem(QtWidgets.QTableWidgetItem):
+    """Table cell that sorts by a key (numbers as numbers, NaN last) and shows text."""
+
+    def __init__(self, text: str, key):
+        super().__init__(text)
+        self.key = key
+        self.setFlags(self.flags() & ~QtCore.Qt.ItemFlag.ItemIsEditable)
+
+    def __lt__(self, other):
+        a, b = self.key, getattr(other, "key", None)
+        if isinstance(a, float) and isinstance(b, float):
+            if math.isnan(a) or math.isnan(b):
+                return not math.isnan(a) and math.isnan(b)
+            return a < b
+        return str(a) < str(b)
+
+
+def _num(v) -> float:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return math.nan
+    return f
+
+
+def _fmt(v, digits=3) -> str:
+    f = _num(v)
+    return "–" if math.isnan(f) else f"{f:.{digits}g}"
+
+
+class ReviewPanel(QtWidgets.QWidget):
+    """Dock widget: the flagged bifurcations of one result folder and their review.
+
+    Also the npe2 widget contribution (napari passes ``napari_viewer``); it
+    then finds the folder through the layers the vesselflow reader added.
+
+    Parameters
+    ----------
+    napari_viewer : napari.Viewer
+    outdir : path, optional, keyword-only
+        The result folder; default: the folder named by layers the vesselflow
+        reader added to the viewer (else the panel offers to open one).
+    mask_path : path, optional, keyword-only
+    colour_by : str, keyword-only
+        Initial centreline measure.
+    add_layers : bool, keyword-only
+        Add the result's layers (False when the reader already did).
+    """
+
+    COLUMNS = ("node", "level", "reasons", "ratio", "exponent", "decision", "note")
+
+    def __init__(self, napari_viewer, *, outdir=None, mask_path=None, colour_by="radius", add_layers=True):
+        super().__init__()
+        self.viewer = napari_viewer
+        self.result: tables.Result | None = None
+        self.review = rv.empty_review()
+        self.flagged = pd.DataFrame()
+        self.current_node: int | None = None
+        self.colour_by = colour_by
+        self._base_zoom: float | None = None
+        self._syncing = False
+        self._build()
+        if outdir is None:
+            outdir = self._folder_from_layers()
+            add_layers = outdir is None and add_layers
+        if outdir is not None:
+            self.load(outdir, mask_path=mask_path, colour_by=colour_by, add_layers=add_layers)
+
+    # -- widgets -----------------------------------------------------------
+    def _build(self):
+        lay = QtWidgets.QVBoxLayout(self)
+        self.title = QtWidgets.QLabel("No result folder open")
+        self.title.setWordWrap(True)
+        self.open_button = QtWidgets.QPushButton("Open result folder…")
+        self.open_button.clicked.connect(self._choose_folder)
+        lay.addWidget(self.title)
+        lay.addWidget(self.open_button)
+
+        row = QtWidgets.QHBoxLayout()
+        row.addWidget(QtWidgets.QLabel("Colour by"))
+        self.colour_box = QtWidgets.QComboBox()
+        for key, (label, unit) in rv.COLOUR_MEASURES.items():
+            self.colour_box.addItem(f"{label}" + (f" ({unit})" if unit else ""), key)
+        self.colour_box.currentIndexChanged.connect(self._colour_changed)
+        row.addWidget(self.colour_box, 1)
+        lay.addLayout(row)
+        legend = QtWidgets.QHBoxLayout()
+        self.legend_lo = QtWidgets.QLabel("")
+        self.legend_bar = QtWidgets.QLabel()
+        self.legend_hi = QtWidgets.QLabel("")
+        legend.addWidget(self.legend_lo)
+        legend.addWidget(self.legend_bar, 1)
+        legend.addWidget(self.legend_hi)
+        lay.addLayout(legend)
+
+        self.table = QtWidgets.QTableWidget(0, len(self.COLUMNS))
+        self.table.setHorizontalHeaderLabels(list(self.COLUMNS))
+        self.table.setSelectionBehavior(QtWidgets.QAbstractItemView.SelectionBehavior.SelectRows)
+        self.table.setSelectionMode(QtWidgets.QAbstractItemView.SelectionMode.SingleSelection)
+        self.table.verticalHeader().setVisible(False)
+        self.table.horizontalHeader().setStretchLastSection(True)
+        self.table.setSortingEnabled(True)
+        self.table.currentCellChanged.connect(self._row_changed)
+        lay.addWidget(self.table, 2)
+
+        nav = QtWidgets.QHBoxLayout()
+        self.prev_button = QtWidgets.QPushButton("◀ Previous")
+        self.next_button = QtWidgets.QPushButton("Next ▶")
+        self.prev_button.clicked.connect(self.previous)
+        self.next_button.clicked.connect(self.next)
+        nav.addWidget(self.prev_button)
+        nav.addWidget(self.next_button)
+        lay.addLayout(nav)
+
+        self.details = QtWidgets.QLabel("")
+        self.details.setWordWrap(True)
+        self.details.setTextFormat(QtCore.Qt.TextFormat.RichText)
+        self.details.setTextInteractionFlags(QtCore.Qt.TextInteractionFlag.TextSelectableByMouse)
+        lay.addWidget(self.details, 1)
+
+        dec = QtWidgets.QHBoxLayout()
+        self.decision_buttons = {}
+        for d in rv.DECISIONS:
+            b = QtWidgets.QPushButton(d.capitalize())
+            b.setCheckable(True)
+            b.clicked.connect(lambda _checked=False, d=d: self.decide(d))
+            dec.addWidget(b)
+            self.decision_buttons[d] = b
+        self.clear_button = QtWidgets.QPushButton("Clear")
+        self.clear_button.clicked.connect(self.clear)
+        dec.addWidget(self.clear_button)
+        lay.addLayout(dec)
+        self.note = QtWidgets.QLineEdit()
+        self.note.setPlaceholderText("note (optional; saved with the decision)")
+        self.note.editingFinished.connect(self._note_done)
+        lay.addWidget(self.note)
+        self.status = QtWidgets.QLabel("")
+        self.status.setWordWrap(True)
+        lay.addWidget(self.status)
+        self._enable(False)
+
+    def _enable(self, on: bool):
+        for w in (self.prev_button, self.next_button, self.clear_button, self.note, *self.decision_buttons.values()):
+            w.setEnabled(on)
+
+    # -- loading -----------------------------------------------------------
+    def _folder_from_layers(self):
+        for layer in self.viewer.layers:
+            path = layer.metadata.get(_META_KEY) if isinstance(layer.metadata, dict) else None
+            if path:
+                return path
+        return None
+
+    def _choose_folder(self):
+        path = QtWidgets.QFileDialog.getExistingDirectory(self, "Open a vesselflow result folder")
+        if path:
+            try:
+                self.load(path, add_layers=True)
+            except InputError as exc:
+                self.status.setText(f"Cannot open: {exc}")
+
+    def load(self, outdir, *, mask_path=None, colour_by=None, add_layers=True):
+        """Show the result folder ``outdir`` and its saved review.
+
+        Raises
+        ------
+        InputError
+            If the folder is incomplete, its ``review.csv`` invalid, or the
+            mask unreadable.
+        """
+        result = tables.load_result(outdir)
+        self.review = rv.load_review(outdir)
+        rv.apply_review(result, self.review)  # checks the review's node ids against this result
+        self.result = result
+        self.colour_by = colour_by or self.colour_by
+        if self.colour_by not in rv.available_measures(result):
+            rv.segment_measure(result, self.colour_by)  # raises with the reason
+        self.flagged = _flagged(result)
+        if add_layers:
+            mask, why = read_mask_for(result, mask_path)
+            if why:
+                self.status.setText(why)
+            for data, kwargs, kind in result_layers(result, mask=mask, colour_by=self.colour_by,
+                                                    review=self.review):
+                getattr(self.viewer, f"add_{kind}")(data, **kwargs)
+        self._layer("flagged bifurcations")
+        ring = self._layer("current bifurcation")
+        if ring is None:
+            self.viewer.add_points(np.zeros((0, 3)), name="current bifurcation", size=1.0,
+                                   face_color="transparent", border_color="white", border_width=0.12,
+                                   border_width_is_relative=True, blending="translucent_no_depth",
+                                   metadata={_META_KEY: str(Path(result.path).resolve())})
+        self.viewer.layers.selection.active = self._layer("flagged bifurcations")
+        available = rv.available_measures(result)
+        model = self.colour_box.model()
+        for i in range(self.colour_box.count()):
+            model.item(i).setEnabled(self.colour_box.itemData(i) in available)
+        self._syncing = True
+        self.colour_box.setCurrentIndex(self.colour_box.findData(self.colour_by))
+        self._syncing = False
+        self._recolour()
+        self.open_button.setVisible(False)
+        self._fill_table()
+        self._update_title()
+        self._enable(len(self.flagged) > 0)
+        self.viewer.reset_view()
+        self._base_zoom = float(_camera(self.viewer).zoom)
+
+    def _layer(self, name):
+        for layer in self.viewer.layers:
+            if layer.name == name:
+                return layer
+        return None
+
+    # -- table -------------------------------------------------------------
+    def _decision_of(self, node_id):
+        hit = self.review[self.review["node_id"] == int(node_id)]
+        if len(hit):
+            return str(hit["decision"].iloc[0]), str(hit["note"].iloc[0])
+        return "", ""
+
+    def _fill_table(self):
+        self._syncing = True
+        self.table.setSortingEnabled(False)
+        self.table.setRowCount(len(self.flagged))
+        for r, b in enumerate(self.flagged.itertuples(index=False)):
+            node = int(b.node_id)
+            decision, note = self._decision_of(node)
+            level = _num(getattr(b, "level", math.nan))
+            reasons = getattr(b, "flag_reasons", "")
+            reasons = "" if not isinstance(reasons, str) else reasons.replace(";", ", ")
+            cells = [
+                _SortItem(str(node), float(node)),
+                _SortItem("–" if math.isnan(level) else str(int(level)), level),
+                _SortItem(reasons, reasons),
+                _SortItem(_fmt(b.murray_ratio), _num(b.murray_ratio)),
+                _SortItem(_fmt(b.murray_exponent), _num(b.murray_exponent)),
+                _SortItem(decision, decision),
+                _SortItem(note, note),
+            ]
+            cells[0].setData(QtCore.Qt.ItemDataRole.UserRole, node)
+            for c, item in enumerate(cells):
+                self.table.setItem(r, c, item)
+        self.table.setSortingEnabled(True)
+        self.table.resizeColumnsToContents()
+        self._syncing = False
+
+    def table_rows(self) -> list[dict]:
+        """The table as shown (current sort order): one dict per row, by column name."""
+        out = []
+        for r in range(self.table.rowCount()):
+            out.append({name: self.table.item(r, c).text() for c, name in enumerate(self.COLUMNS)})
+        return out
+
+    def _row_of(self, node_id):
+        for r in range(self.table.rowCount()):
+            if self.table.item(r, 0).data(QtCore.Qt.ItemDataRole.UserRole) == int(node_id):
+                return r
+        return None
+
+    def _row_changed(self, row, _col, _prev_row, _prev_col):
+        if self._syncing or row < 0:
+            return
+        node = self.table.item(row, 0).data(QtCore.Qt.ItemDataRole.UserRole)
+        if node != self.current_node:
+            self.goto(node)
+
+    def _update_title(self):
+        r = self.result
+        counts = {d: int((self.review["decision"] == d).sum()) for d in rv.DECISIONS}
+        done = sum(int(n) in set(self.review["node_id"].tolist()) for n in self.flagged["node_id"])
+        self.title.setText(f"<b>{Path(r.path).name}</b>: {len(self.flagged)} flagged of "
+                           f"{len(r.bifurcations)} bifurcations; reviewed {done} "
+                           f"({counts['confirmed']} confirmed, {counts['artefact']} artefact, "
+                           f"{counts['unsure']} unsure)")
+
+    # -- navigation --------------------------------------------------------
+    def goto(self, node_id):
+        """Centre and zoom the camera on junction ``node_id`` and show its measures.
+
+        Raises
+        ------
+        InputError
+            If ``node_id`` is not a junction of the result.
+        """
+        b = self.result.bifurcations
+        hit = b[b["node_id"].astype(np.int64) == int(node_id)] if len(b) else b
+        if not len(hit):
+            raise InputError(f"bifurcation: node_id {node_id} is not a junction of '{self.result.path}' "
+                             "(expected a node_id from bifurcations.csv)")
+        row = hit.iloc[0]
+        self.current_node = int(node_id)
+        pos = tuple(float(row[c]) for c in ("z_um", "y_um", "x_um"))
+        r0 = _num(row["radius_parent_um"])
+        r0 = r0 if math.isfinite(r0) and r0 > 0 else 2.0
+        cam = _camera(self.viewer)
+        for axis, value in enumerate(pos):
+            if axis < self.viewer.dims.ndim:
+                self.viewer.dims.set_point(axis, value)
+        window = max(_VIEW_RADII * r0, _VIEW_MIN_UM)
+        extent = np.asarray(self.viewer.layers.extent.world, dtype=float)
+        shown = list(self.viewer.dims.displayed)
+        size = float(np.max(extent[1, shown] - extent[0, shown])) if extent.size else window
+        base = self._base_zoom or float(cam.zoom)
+        cam.center = pos if self.viewer.dims.ndisplay == 3 else pos[1:]
+        cam.zoom = base * max(size / window, 1.0)
+        ring = self._layer("current bifurcation")
+        if ring is not None:
+            ring.data = np.asarray([pos])
+            ring.size = np.asarray([_RING_SIZE_RADII * r0])
+        r = self._row_of(node_id)
+        self._syncing = True
+        if r is not None:
+            self.table.selectRow(r)
+            self.table.setCurrentCell(r, 0)
+            self.table.scrollToItem(self.table.item(r, 0))
+        else:
+            self.table.clearSelection()
+        self._syncing = False
+        decision, note = self._decision_of(node_id)
+        for d, btn in self.decision_buttons.items():
+            btn.setChecked(d == decision)
+        self.note.setText(note)
+        self._enable(True)
+        self.details.setText(self._details_html(row, decision))
+
+    def _details_html(self, b, decision):
+        lines = [f"<b>junction {int(b['node_id'])}</b> at z {b['z_um']:.1f}, y {b['y_um']:.1f}, "
+                 f"x {b['x_um']:.1f} µm; level {_fmt(b.get('level'))}"]
+        reasons = b.get("flag_reasons")
+        lines.append("flags: " + (reasons.replace(";", ", ") if isinstance(reasons, str) and reasons else "none"))
+        segs = self.result.segments.set_index("segment_id")
+
+        def seg_line(role, sid, radius):
+            extra = ""
+            if sid is not None and sid in segs.index:
+                s = segs.loc[sid]
+                extra = f", length {_fmt(s.get('length_um'))} µm"
+                if "flow_nl_min" in segs.columns:
+                    extra += f", |flow| {_fmt(abs(_num(s.get('flow_nl_min'))))} nL/min"
+                if "wss_pa" in segs.columns:
+                    extra += f", WSS {_fmt(abs(_num(s.get('wss_pa'))))} Pa"
+            name = "" if sid is None else f" (segment {sid})"
+            return f"{role}{name}: r = {_fmt(radius)} µm{extra}"
+
+        daughters = [int(x) for x in str(b.get("daughter_segments", "")).split(";") if x.strip().isdigit()]
+        lines.append(seg_line("parent", int(b["parent_segment"]), b["radius_parent_um"]))
+        lines.append(seg_line("daughter 1", daughters[0] if daughters else None, b["radius_daughter1_um"]))
+        lines.append(seg_line("daughter 2", daughters[1] if len(daughters) > 1 else None, b["radius_daughter2_um"]))
+        if len(daughters) > 2:
+            lines.append(f"further daughters: {', '.join(str(d) for d in daughters[2:])}")
+        lines.append(f"Murray ratio (r1³+r2³)/r0³ = {_fmt(b['murray_ratio'])}; exponent = "
+                     f"{_fmt(b['murray_exponent'])}; asymmetry r2/r1 = {_fmt(b.get('asymmetry'))}")
+        lines.append(f"angles {_fmt(b.get('angle_daughter1_deg'))}° / {_fmt(b.get('angle_daughter2_deg'))}° "
+                     f"(optimum {_fmt(b.get('angle_optimal_daughter1_deg'))}° / "
+                     f"{_fmt(b.get('angle_optimal_daughter2_deg'))}°)")
+        if math.isfinite(_num(b.get("flow_split_daughter1"))):
+            lines.append(f"flow split to daughter 1: {_fmt(b['flow_split_daughter1'])} "
+                         f"(cube law {_fmt(b.get('flow_split_cube_law'))})")
+        notes = b.get("confidence_notes")
+        if isinstance(notes, str) and notes:
+            lines.append(f"notes: {notes.replace(';', ', ')}")
+        lines.append(f"review: {decision or 'not reviewed'}")
+        return "<br>".join(lines)
+
+    def _order(self) -> list[int]:
+        return [self.table.item(r, 0).data(QtCore.Qt.ItemDataRole.UserRole) for r in range(self.table.rowCount())]
+
+    def next(self):
+        """Go to the next flagged junction in the table's order (wraps round)."""
+        self._step(+1)
+
+    def previous(self):
+        """Go to the previous flagged junction in the table's order (wraps round)."""
+        self._step(-1)
+
+    def _step(self, k):
+        order = self._order()
+        if not order:
+            return
+        if self.current_node in order:
+            i = (order.index(self.current_node) + k) % len(order)
+        else:
+            i = 0 if k > 0 else len(order) - 1
+        self.goto(order[i])
+
+    # -- decisions ---------------------------------------------------------
+    def decide(self, decision, note=None):
+        """Record ``decision`` for the current junction and save ``review.csv``."""
+        if self.current_node is None:
+            return
+        note = self.note.text() if note is None else note
+        self.review = rv.record_decision(self.review, self.current_node, decision=decision, note=note)
+        self._saved()
+
+    def clear(self):
+        """Remove the current junction's decision and save ``review.csv``."""
+        if self.current_node is None:
+            return
+        self.review = rv.clear_decision(self.review, self.current_node)
+        self.note.clear()
+        self._saved()
+
+    def set_note(self, text):
+        """Set the current junction's note (saved at once if it has a decision)."""
+        self.note.setText(text)
+        self._note_done()
+
+    def _note_done(self):
+        if self.current_node is None:
+            return
+        decision, note = self._decision_of(self.current_node)
+        if not decision:
+            if self.note.text():
+                self.status.setText("Choose a decision to save the note.")
+            return
+        if note != self.note.text():
+            self.decide(decision, self.note.text())
+
+    def _saved(self):
+        path = rv.save_review(self.result.path, self.review)
+        node = self.current_node
+        decision, _ = self._decision_of(node)
+        for d, btn in self.decision_buttons.items():
+            btn.setChecked(d == decision)
+        self._fill_table()
+        self.goto(node)
+        self._update_title()
+        layer = self._layer("flagged bifurcations")
+        if layer is not None and len(self.flagged):
+            layer.face_color = _flag_colours(self.flagged["node_id"],
+                                             dict(zip(self.review["node_id"].astype(int), self.review["decision"])))
+        self.status.setText(f"Saved {path.name} ({len(self.review)} decisions).")
+
+    # -- colour ------------------------------------------------------------
+    def _colour_changed(self, index):
+        if self._syncing or self.result is None:
+            return
+        self.set_colour_by(self.colour_box.itemData(index))
+
+    def set_colour_by(self, measure):
+        """Colour the centrelines by ``measure`` (a key of :data:`pipeline.review.COLOUR_MEASURES`)."""
+        rv.segment_measure(self.result, measure)  # raises for an unavailable measure
+        self.colour_by = measure
+        self._syncing = True
+        self.colour_box.setCurrentIndex(self.colour_box.findData(measure))
+        self._syncing = False
+        self._recolour()
+
+    def _recolour(self):
+        values = rv.segment_measure(self.result, self.colour_by)
+        rgba, (lo, hi) = _colours(values, measure=self.colour_by)
+        layer = self._layer("centrelines")
+        if layer is not None and len(layer.data):
+            _, owner = _centreline_vectors(self.result)
+            layer.edge_color = rgba[owner]
+            layer.metadata["colour_by"] = self.colour_by
+        label, unit = rv.COLOUR_MEASURES[self.colour_by]
+        unit_text = f" {unit}" if unit else ""
+        self.legend_lo.setText(f"{lo:.3g}")
+        self.legend_hi.setText(f"{hi:.3g}{unit_text}")
+        grad = np.asarray(ensure_colormap(CENTRELINE_COLORMAP).map(np.linspace(0, 1, 256)), dtype=float)
+        img = np.ascontiguousarray(np.repeat((grad[None, :, :3] * 255).astype(np.uint8), 12, axis=0))
+        qimg = QtGui.QImage(img.data, img.shape[1], img.shape[0], 3 * img.shape[1],
+                            QtGui.QImage.Format.Format_RGB888).copy()
+        self.legend_bar.setPixmap(QtGui.QPixmap.fromImage(qimg).scaled(
+            160, 12, QtCore.Qt.AspectRatioMode.IgnoreAspectRatio))
+        self.legend_bar.setToolTip(f"{label}{unit_text}, {CENTRELINE_COLORMAP}; grey: no value")
+        overlay = _text_overlay(self.viewer)
+        overlay.text = (f"centrelines: {label}{(' [' + unit + ']') if unit else ''} {lo:.3g} (purple) to "
+                        f"{hi:.3g} (yellow), grey: none; flagged junctions: magenta")
+        overlay.visible = True
+
+
+# ---------------------------------------------------------------------------
+# entry points
+# ---------------------------------------------------------------------------
+
+def open_result(outdir, *, mask_path=None, colour_by="radius", show=True, viewer=None):
+    """Open a result folder in a napari viewer with the review panel docked.
+
+    Parameters
+    ----------
+    outdir : path
+    mask_path : path, optional, keyword-only
+        Default: the input recorded in ``run.json``.
+    colour_by : str, keyword-only
+    show : bool, keyword-only
+        Show the window (False for screenshots and tests).
+    viewer : napari.Viewer, optional, keyword-only
+        Add to this viewer instead of a new one.
+
+    Returns
+    -------
+    (napari.Viewer, ReviewPanel)
+
+    Raises
+    ------
+    InputError
+        Incomplete folder, invalid review, unreadable mask, unknown measure.
+    """
+    result = tables.load_result(outdir)
+    rv.segment_measure(result, colour_by)  # fail before a window opens
+    planar = bool(result.run.get("planar"))
+    own = viewer is None
+    if own:
+        viewer = napari.Viewer(title=f"vesselflow: {Path(outdir).name}", ndisplay=2 if planar else 3, show=show)
+    try:
+        panel = ReviewPanel(viewer, outdir=outdir, mask_path=mask_path, colour_by=colour_by, add_layers=True)
+        viewer.window.add_dock_widget(panel, name="Bifurcation review", area="right")
+    except BaseException:
+        if own:
+            viewer.close()
+        raise
+    return viewer, panel
+
+
+def _realise_hidden(viewer):
+    # A never-shown Qt window has no GL surface and napari renders it black;
+    # WA_DontShowOnScreen lets Qt create the surface without mapping a window.
+    win = getattr(viewer.window, "_qt_window", None)
+    if win is None:
+        return
+    win.setAttribute(QtCore.Qt.WidgetAttribute.WA_DontShowOnScreen, True)
+    win.resize(_SCREENSHOT_SIZE[1] + 400, _SCREENSHOT_SIZE[0] + 200)
+    win.show()
+    QtWidgets.QApplication.processEvents()
+
+
+def render_screenshot(outdir, path, *, mask_path=None, colour_by="radius", bifurcation=None, overwrite=False,
+                      size=_SCREENSHOT_SIZE):
+    """Render the canvas to a PNG file without showing a window.
+
+    Parameters
+    ----------
+    outdir : path
+        Result folder.
+    path : path
+        PNG file to write (atomically).
+    mask_path, colour_by : keyword-only
+        As for :func:`open_result`.
+    bifurcation : int, optional, keyword-only
+        Centre and zoom on this junction; default: the whole sample.
+    overwrite : bool, keyword-only
+        Replace an existing file.
+    size : (int, int), keyword-only
+        Height and width in pixels.
+
+    Returns
+    -------
+    ndarray, shape (H, W, 4)
+        The RGBA picture written.
+
+    Raises
+    ------
+    InputError
+        Bad folder, junction or file name, or an existing file without ``overwrite``.
+    """
+    out = Path(path)
+    if out.suffix.lower() != ".png":
+        raise InputError(f"--screenshot: expected a .png file name, got '{out}'")
+    if out.exists() and not overwrite:
+        raise InputError(f"--screenshot: '{out}' exists; pass --overwrite to replace it")
+    viewer, panel = open_result(outdir, mask_path=mask_path, colour_by=colour_by, show=False)
+    try:
+        _realise_hidden(viewer)
+        viewer.reset_view()
+        panel._base_zoom = float(_camera(viewer).zoom)
+        if bifurcation is not None:
+            panel.goto(bifurcation)
+        img = np.asarray(viewer.screenshot(canvas_only=True, size=tuple(size)))
+    finally:
+        viewer.close()
+    _write_png(out, img)
+    return img
+
+
+def _write_png(path: Path, img: np.ndarray):
+    from PIL import Image
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial.png", dir=path.parent)
+    os.close(fd)
+    try:
+        Image.fromarray(np.ascontiguousarray(img)).save(tmp, format="PNG")
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def napari_get_reader(path):
+    """npe2 reader: a function reading a vesselflow result folder, or None for other paths."""
+    if isinstance(path, (list, tuple)):
+        if len(path) != 1:
+            return None
+        path = path[0]
+    p = Path(path)
+    if not (p.is_dir() and (p / "run.json").is_file() and (p / "bifurcations.csv").is_file()):
+        return None
+    return _read_result
+
+
+def _read_result(path):
+    if isinstance(path, (list, tuple)):
+        path = path[0]
+    result = tables.load_result(path)
+    mask, _ = read_mask_for(result)
+    return result_layers(result, mask=mask, review=rv.load_review(path))
+

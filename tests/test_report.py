@@ -1,0 +1,531 @@
+"""The report: figures and a self-contained report.html per sample and per study."""
+
+import base64
+import importlib.util
+import json
+import os
+import re
+import shutil
+import subprocess
+import xml.etree.ElementTree as ET
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from matplotlib import colormaps
+from matplotlib import image as mpimg
+from matplotlib.colors import to_hex
+from scipy import stats
+
+import pipeline
+from pipeline import report, synthetic
+from pipeline.cli import main
+
+SPACING = (2.0, 1.0, 1.0)
+CONFIG = "flow:\n  blind_ends: outlet\n"  # small trees: let terminal branches drain, so flow is solved
+
+
+def _tree(*, seed, exponent, broken):
+    # Depth 3 keeps each analysis well under a second.
+    return synthetic.binary_tree(depth=3, root_radius_um=5.0, exponent=exponent, length_radius_ratio=7.0,
+                                 min_radius_um=1.8, jitter_deg=6.0, broken_fraction=broken, seed=seed)
+
+
+def _write_tree(path, **kw):
+    mask, truth = synthetic.rasterize(_tree(**kw), spacing=SPACING, specks=3, seed=3)
+    synthetic.write_volume(path, mask, spacing=SPACING, truth=truth)
+    return mask
+
+
+@pytest.fixture(scope="module")
+def sample(tmp_path_factory):
+    """One tree analysed through the CLI with --report; half its junctions broken on purpose."""
+    d = tmp_path_factory.mktemp("report")
+    tif = d / "tree.tif"
+    mask = _write_tree(tif, seed=29, exponent=2.3, broken=0.5)
+    out = d / "tree"
+    assert main(["analyze", str(tif), "-o", str(out), "--blind-ends", "outlet", "--report", "--quiet"]) == 0
+    return tif, out, mask
+
+
+def _not_blank(path):
+    """A rendered image with content: an empty canvas has one colour and zero spread."""
+    img = mpimg.imread(path)
+    rgb = img[..., :3].reshape(-1, 3)
+    q = (rgb * 255).round().astype(np.int64)
+    colours = len(np.unique(q[:, 0] << 16 | q[:, 1] << 8 | q[:, 2]))
+    non_white = float((rgb.min(axis=1) < 0.95).mean())
+    # Thresholds: a figure with axes, labels and data has hundreds of colours
+    # (anti-aliasing) and several per cent of ink; a blank or text-only page
+    # has a handful of colours and well under one per cent.
+    return rgb.std() > 0.03 and colours > 64 and non_white > 0.02
+
+
+class _Refs(HTMLParser):
+    """Every reference a page makes, the ids it defines, and its tags."""
+
+    def __init__(self):
+        super().__init__()
+        self.refs, self.ids, self.tags, self.imgs = [], set(), [], []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        for k, v in attrs:
+            if k in ("src", "href", "srcset", "poster", "data", "action", "background"):
+                self.refs.append((tag, k, v or ""))
+            if k == "id":
+                self.ids.add(v)
+            if tag == "img" and k == "src":
+                self.imgs.append(v)
+
+
+def _parse(page):
+    p = _Refs()
+    p.feed(page.read_text(encoding="utf-8"))
+    return p
+
+
+# --------------------------------------------------------------------------- sample report
+
+
+def test_sample_report_files(sample):
+    _, out, _ = sample
+    figs = out / "figures"
+    assert (out / "report.html").is_file()
+    # A tree with solved flow and junctions has every sample figure.
+    assert sorted(p.stem for p in figs.glob("*.png")) == sorted(report.SAMPLE_FIGURES)
+    assert sorted(p.stem for p in figs.glob("*.svg")) == sorted(report.SAMPLE_FIGURES)
+    for png in figs.glob("*.png"):
+        assert _not_blank(png), png.name
+    for svg in figs.glob("*.svg"):
+        root = ET.parse(svg).getroot()  # W3C SVG 1.1: the document element is <svg> in the SVG namespace
+        assert root.tag == "{http://www.w3.org/2000/svg}svg", svg.name
+    assert not [p for p in out.iterdir() if p.name.startswith(".report")]  # no temporary leftovers
+
+
+def test_html_references_only_embedded_content(sample):
+    _, out, _ = sample
+    page = out / "report.html"
+    p = _parse(page)
+    text = page.read_text(encoding="utf-8")
+    assert {"script", "link", "iframe", "object", "embed"}.isdisjoint(p.tags)
+    assert "url(" not in text and "@import" not in text  # no CSS fetches
+    for tag, attr, ref in p.refs:
+        assert ref.startswith("data:") or ref.startswith("#"), (tag, attr, ref[:80])
+        if ref.startswith("#"):
+            assert ref[1:] in p.ids, ref  # every in-page link lands somewhere
+    # Each embedded image is byte for byte the PNG written under figures/.
+    written = {f.read_bytes() for f in (out / "figures").glob("*.png")}
+    embedded = {base64.b64decode(s.split(",", 1)[1]) for s in p.imgs}
+    assert embedded == written
+
+
+def test_report_lists_provenance(sample):
+    tif, out, _ = sample
+    text = (out / "report.html").read_text(encoding="utf-8")
+    run = json.loads((out / "run.json").read_text())
+    assert str(tif.resolve()) in text and run["input"]["sha256"] in text
+    assert "2, 1, 1" in text and run["spacing_source"] == "imagej" and ">imagej<" in text
+    assert f"vesselflow {pipeline.__version__}" in text
+    assert "spur_radius_factor: 1.5" in text  # the effective config, as YAML
+    assert "Research use only" in text and "not be used for clinical decisions" in text
+    assert 'id="warnings"' in text
+
+
+def test_map_shows_the_mask_projection_and_flagged_junctions(sample):
+    _, out, mask = sample
+    data = report.load_sample(out)
+    fig = report.figure_map_level(data, [])
+    ax = fig.axes[0]
+    img = ax.images[0]
+    # The maximum-intensity projection of a binary mask along z is its
+    # logical OR over z; computed here from the mask the volume was made of.
+    assert np.array_equal(np.asarray(img.get_array()), mask.any(axis=0))
+    dz, dy, dx = SPACING
+    ny, nx = mask.shape[1:]
+    # Voxel (i, j, k) has its centre at (i dz, j dy, k dx) µm (README), so
+    # pixel edges sit half a voxel either side of the centres.
+    assert np.allclose(img.get_extent(), (-dx / 2, (nx - 0.5) * dx, (ny - 0.5) * dy, -dy / 2))
+    b = pd.read_csv(out / "bifurcations.csv")
+    flagged = b[b["flagged"].astype(bool)]
+    assert len(flagged) > 0  # the fixture breaks half the junctions on purpose
+    circles = [c for c in ax.collections if c.get_gid() == "flagged-circles"][0]
+    got = np.asarray(circles.get_offsets())
+    want = flagged[["x_um", "y_um"]].to_numpy()
+    assert np.allclose(got[np.lexsort(got.T)], want[np.lexsort(want.T)])
+    numbers = sorted(int(t.get_text()) for t in ax.texts if t.get_text().isdigit())
+    assert numbers == sorted(flagged["node_id"].astype(int))
+
+
+def test_murray_plot_identity_and_flagged_points(sample):
+    _, out, _ = sample
+    data = report.load_sample(out, read_mip=False)
+    ax = report.figure_murray(data, []).axes[0]
+    ident = [ln for ln in ax.get_lines() if ln.get_gid() == "identity"][0]
+    # Murray CD (1926) PNAS 12:207: the cube law r0³ = r1³ + r2³ is the line y = x here.
+    assert np.allclose(ident.get_xdata(), ident.get_ydata()) and np.ptp(ident.get_xdata()) > 0
+    assert ax.get_xscale() == ax.get_yscale() == "log"
+    b = pd.read_csv(out / "bifurcations.csv")
+    x = b["radius_parent_um"] ** 3
+    y = b["radius_daughter1_um"] ** 3 + b["radius_daughter2_um"] ** 3
+    for gid, sel in (("flagged", b["flagged"].astype(bool)), ("not-flagged", ~b["flagged"].astype(bool))):
+        pts = np.asarray([c for c in ax.collections if c.get_gid() == gid][0].get_offsets())
+        want = np.c_[x[sel], y[sel]]
+        assert len(pts) == len(want)
+        assert np.allclose(pts[np.lexsort(pts.T)], want[np.lexsort(want.T)], rtol=1e-12)
+    # The written SVG holds the same number of flagged markers (one <use> each).
+    svg = ET.parse(out / "figures" / "murray.svg").getroot()
+    group = [g for g in svg.iter("{http://www.w3.org/2000/svg}g") if g.get("id") == "flagged"][0]
+    n_use = sum(1 for e in group.iter() if e.tag == "{http://www.w3.org/2000/svg}use")
+    assert n_use == int(b["flagged"].astype(bool).sum())
+
+
+def test_flow_guide_has_slope_three(sample):
+    _, out, _ = sample
+    ax = report.figure_flow_radius(report.load_sample(out, read_mip=False), []).axes[0]
+    guide = [ln for ln in ax.get_lines() if ln.get_gid() == "slope3"][0]
+    lx, ly = np.log10(guide.get_xdata()), np.log10(guide.get_ydata())
+    # Murray CD (1926) PNAS 12:207: under the cube law flow scales as r³,
+    # a slope of 3 on log-log axes. Tolerance: float rounding only.
+    assert np.ptp(lx) > 0 and np.isclose(np.diff(ly) / np.diff(lx), 3.0, rtol=1e-9).all()
+    assert ax.get_xscale() == ax.get_yscale() == "log"
+
+
+def test_exponent_marks_at_two_and_three(sample):
+    _, out, _ = sample
+    ax = report.figure_exponents(report.load_sample(out, read_mip=False), []).axes[0]
+    marks = {ln.get_gid(): set(ln.get_xdata()) for ln in ax.get_lines() if ln.get_gid()}
+    # x = 2: area-preserving branching; x = 3: Murray's cube law (Murray 1926, PNAS 12:207).
+    assert marks["x2"] == {2.0} and marks["x3"] == {3.0}
+
+
+def test_colours_read_in_grey_and_for_colour_blind_readers(sample):
+    _, out, _ = sample
+    data = report.load_sample(out, read_mip=False)
+    # Okabe M, Ito K (2002) Color Universal Design: the eight colours as
+    # recalled (black, orange, sky blue, bluish green, yellow, blue,
+    # vermillion, reddish purple), the set widely reproduced since.
+    okabe_ito = {"#000000", "#e69f00", "#56b4e9", "#009e73", "#f0e442", "#0072b2", "#d55e00", "#cc79a7"}
+    assert {c.lower() for c in report.OKABE_ITO} == okabe_ito
+    ax = report.figure_map_level(data, []).axes[0]
+    lines = [c for c in ax.collections if c.get_gid() == "centrelines"][0]
+    assert {to_hex(c) for c in lines.get_colors()} <= okabe_ito
+    wss = [c for c in report.figure_map_wss(data, []).axes[0].collections if c.get_gid() == "centrelines"][0]
+    lut = colormaps[wss.get_cmap().name](np.linspace(0, 1, 256))[:, :3]
+    # Grey rendering keeps the order of values when luma rises monotonically
+    # (ITU-R BT.709 luma weights 0.2126, 0.7152, 0.0722).
+    luma = lut @ np.array([0.2126, 0.7152, 0.0722])
+    assert np.all(np.diff(luma) > 0)
+
+
+def test_every_axis_has_a_label(sample):
+    _, out, _ = sample
+    data = report.load_sample(out)
+    for name, (fig, _, _) in report.sample_figures(data, []).items():
+        for ax in fig.axes:
+            if ax.get_label() == "<colorbar>":
+                assert ax.get_ylabel() or ax.get_xlabel(), name
+                continue
+            assert ax.get_xlabel() and ax.get_ylabel(), name
+            # Units in brackets, or a count, or dimensionless by name.
+            for lab in (ax.get_xlabel(), ax.get_ylabel()):
+                assert re.search(r"\((.+)\)", lab), (name, lab)
+
+
+def test_map_without_the_mask_says_so(sample, tmp_path):
+    _, out, _ = sample
+    copy = tmp_path / "moved"
+    shutil.copytree(out, copy)
+    run = json.loads((copy / "run.json").read_text())
+    run["input"]["path"] = str(tmp_path / "gone.tif")
+    (copy / "run.json").write_text(json.dumps(run))
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    text = (copy / "report.html").read_text(encoding="utf-8")
+    assert "centrelines alone" in text and "gone.tif" in text
+    assert _not_blank(copy / "figures" / "map_level.png")
+    data = report.load_sample(copy)
+    assert data.mip is None and not report.figure_map_level(data, []).axes[0].images
+
+
+def test_no_flow_sample_leaves_flow_figures_out(sample, tmp_path):
+    tif, _, _ = sample
+    out = tmp_path / "noflow"
+    assert main(["analyze", str(tif), "-o", str(out), "--no-flow", "--report", "--quiet"]) == 0
+    names = {p.stem for p in (out / "figures").glob("*.png")}
+    assert names == set(report.SAMPLE_FIGURES) - {"map_wss", "wss_diameter", "flow_radius"}
+    assert "flow model was not run" in (out / "report.html").read_text(encoding="utf-8")
+
+
+# --------------------------------------------------------------------------- CLI and atomic writes
+
+
+def _one_error_line(capsys):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("vesselflow: error: "), err
+    return err[0]
+
+
+def _listing(folder):
+    return sorted(str(p.relative_to(folder)) for p in folder.rglob("*"))
+
+
+def test_report_refuses_bad_folders(tmp_path, capsys):
+    f = tmp_path / "file.txt"
+    f.write_text("x")
+    before = _listing(tmp_path)
+    assert main(["report", str(f)]) == 2
+    assert "expected a result folder" in _one_error_line(capsys)
+    assert main(["report", str(tmp_path / "absent")]) == 2
+    assert "does not exist" in _one_error_line(capsys)
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert main(["report", str(empty)]) == 2
+    assert "cohort_summary.csv" in _one_error_line(capsys)
+    part = tmp_path / "part"
+    part.mkdir()
+    (part / "run.json").write_text("{}")
+    (part / "segments.csv").write_text("segment_id\n")
+    assert main(["report", str(part)]) == 2
+    assert "missing" in _one_error_line(capsys)
+    assert _listing(tmp_path) == sorted(before + ["empty", "part", "part/run.json", "part/segments.csv"])
+
+
+def test_report_refuses_to_overwrite(sample, tmp_path, capsys):
+    _, out, _ = sample
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    old = (copy / "report.html").read_bytes()
+    assert main(["report", str(copy)]) == 2
+    assert "--overwrite" in _one_error_line(capsys)
+    assert (copy / "report.html").read_bytes() == old
+    assert main(["report", str(copy), "--mask", str(tmp_path / "nope.tif"), "--overwrite"]) == 2
+    assert "nope.tif" in _one_error_line(capsys)
+    assert (copy / "report.html").read_bytes() == old
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    assert (copy / "report.html").read_bytes() != old  # the build time differs
+    assert not [p for p in copy.iterdir() if p.name.startswith(".report")]
+
+
+def test_failed_build_keeps_the_old_report(sample, tmp_path, monkeypatch):
+    _, out, _ = sample
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    before = {p: p.read_bytes() for p in [copy / "report.html", *sorted((copy / "figures").iterdir())]}
+
+    def boom(*a, **k):
+        raise RuntimeError("drawing failed")
+
+    monkeypatch.setitem(report._SAMPLE_BUILDERS, "exponents", (boom, "t", "c"))
+    with pytest.raises(RuntimeError):
+        report.build_report(copy, overwrite=True)
+    monkeypatch.undo()
+
+    real_replace = os.replace
+
+    def fail_replace(src, dst):
+        if Path(dst).name == "report.html":
+            raise OSError("disk full")
+        return real_replace(src, dst)
+
+    monkeypatch.setattr(report.os, "replace", fail_replace)
+    with pytest.raises(OSError):
+        report.build_report(copy, overwrite=True)
+    after = {p: p.read_bytes() for p in [copy / "report.html", *sorted((copy / "figures").iterdir())]}
+    assert after == before
+    assert not [p for p in copy.iterdir() if p.name.startswith(".report")]
+
+
+# --------------------------------------------------------------------------- study report
+
+
+def _has_batch():
+    return importlib.util.find_spec("pipeline.batch") is not None
+
+
+def _bh(p):
+    # Benjamini Y, Hochberg Y (1995) J R Stat Soc B 57:289: step-up adjusted p-values.
+    p = np.asarray(p, float)
+    order = np.argsort(p)
+    ranked = p[order] * len(p) / np.arange(1, len(p) + 1)
+    q = np.minimum.accumulate(ranked[::-1])[::-1].clip(max=1)
+    out = np.empty_like(q)
+    out[order] = q
+    return out
+
+
+def _hand_made_batch(out, rows):
+    """The batch folder format, written by hand from result folders as the batch spec says."""
+    from pipeline.tables import load_result
+
+    cohort = []
+    for r in rows:
+        s = load_result(out / r["sample_id"]).summary
+        flat = {k: v for k, v in s.items() if isinstance(v, (int, float)) and not isinstance(v, bool)}
+        flat.update({f"flag_count_{k}": v for k, v in s["flag_counts"].items()})
+        cohort.append({"sample_id": r["sample_id"], "group": r["group"], **flat})
+    cohort = pd.DataFrame(cohort)
+    cohort.to_csv(out / "cohort_summary.csv", index=False)
+    comp = []
+    for m in [c for c in cohort.columns if c not in ("sample_id", "group")]:
+        a = cohort.loc[cohort.group == "ctrl", m].astype(float)
+        b = cohort.loc[cohort.group == "trt", m].astype(float)
+        u, p = stats.mannwhitneyu(a, b, alternative="two-sided")
+        comp.append(dict(measure=m, group_a="ctrl", group_b="trt", n_a=len(a), mean_a=a.mean(), sd_a=a.std(),
+                         median_a=a.median(), n_b=len(b), mean_b=b.mean(), sd_b=b.std(), median_b=b.median(),
+                         difference=b.mean() - a.mean(), mann_whitney_u=u, p_value=p))
+    comp = pd.DataFrame(comp)
+    comp["q_value"] = _bh(comp["p_value"].fillna(1.0))
+    comp.to_csv(out / "group_comparison.csv", index=False)
+    pd.DataFrame([dict(sample_id="ctrl-bad", path=str(out.parent / "bad.tif"), step="reading",
+                       error="not a TIFF file")]).to_csv(out / "failures.csv", index=False)
+    (out / "batch.json").write_text(json.dumps({"version": pipeline.__version__, "created": "now",
+                                                "config": {"flow": {"blind_ends": "outlet"}}}))
+
+
+@pytest.fixture(scope="module")
+def study_inputs(tmp_path_factory):
+    """Two groups of two trees (cube law against a flatter law with broken junctions) and one bad file."""
+    d = tmp_path_factory.mktemp("study")
+    rows = []
+    for i, (group, exponent, broken) in enumerate((("ctrl", 3.0, 0.0), ("ctrl", 3.0, 0.0), ("trt", 2.3, 0.5),
+                                                   ("trt", 2.3, 0.5))):
+        path = d / f"{group}{i}.tif"
+        _write_tree(path, seed=10 + i, exponent=exponent, broken=broken)
+        rows.append({"sample_id": f"{group}-{i}", "path": str(path), "group": group})
+    (d / "bad.tif").write_bytes(b"not a tiff " * 10)
+    cfg = d / "cfg.yaml"
+    cfg.write_text(CONFIG)
+    return d, rows, cfg
+
+
+@pytest.fixture(scope="module")
+def study(study_inputs):
+    """A batch folder written to the batch format by hand, so the report tests do not hang on a cluster."""
+    d, rows, cfg = study_inputs
+    out = d / "batch"
+    out.mkdir()
+    for r in rows:
+        assert main(["analyze", r["path"], "-o", str(out / r["sample_id"]), "--config", str(cfg), "--quiet"]) == 0
+    _hand_made_batch(out, rows)
+    assert main(["report", str(out), "--quiet"]) == 0
+    return out, rows
+
+
+def test_report_of_a_real_batch(study_inputs):
+    if not _has_batch():
+        pytest.skip("pipeline/batch.py is not there yet; the hand-made batch folder stands in")
+    d, rows, cfg = study_inputs
+    sheet = d / "sheet.csv"
+    bad = {"sample_id": "ctrl-bad", "path": str(d / "bad.tif"), "group": "ctrl"}
+    pd.DataFrame(rows + [bad]).to_csv(sheet, index=False)
+    out = d / "real-batch"
+    # Exit code 1: one sample fails on purpose; the other four are the study.
+    assert main(["batch", str(sheet), "-o", str(out), "--workers", "1", "--quiet", "--config", str(cfg)]) == 1
+    assert main(["report", str(out), "--quiet"]) == 0
+    cohort = pd.read_csv(out / "cohort_summary.csv")
+    assert sorted(cohort["sample_id"]) == sorted(r["sample_id"] for r in rows)
+    for m in (m for m in report.STUDY_MEASURES if m in cohort.columns):
+        assert _not_blank(out / "figures" / f"study_{m}.png"), m
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert "ctrl-bad" in text and all(f'id="{report._anchor(r["sample_id"])}"' in text for r in rows)
+
+
+def test_study_report_files(study):
+    out, rows = study
+    cohort = pd.read_csv(out / "cohort_summary.csv")
+    measures = [m for m in report.STUDY_MEASURES if m in cohort.columns]
+    assert len(measures) >= 8
+    figs = out / "figures"
+    for m in measures:
+        assert _not_blank(figs / f"study_{m}.png"), m
+        assert ET.parse(figs / f"study_{m}.svg").getroot().tag.endswith("svg")
+    p = _parse(out / "report.html")
+    for tag, attr, ref in p.refs:
+        assert ref.startswith("data:") or (ref.startswith("#") and ref[1:] in p.ids), (tag, ref[:80])
+    text = (out / "report.html").read_text(encoding="utf-8")
+    for r in rows:  # a section per sample, linked from the sample list
+        assert f'href="#{report._anchor(r["sample_id"])}"' in text
+    assert "ctrl-bad" in text and "not a TIFF file" in text  # the failure is listed
+    assert "Research use only" in text
+
+
+def test_study_plots_show_the_cohort_and_its_q_values(study):
+    out, _ = study
+    cohort = pd.read_csv(out / "cohort_summary.csv")
+    comp = pd.read_csv(out / "group_comparison.csv")
+    groups = sorted(cohort["group"].astype(str).unique())
+    for m in ("total_length_mm", "murray_exponent_median", "bifurcations_flagged"):
+        ax = report.figure_study_measure(cohort, comp, m, groups).axes[0]
+        for i, g in enumerate(groups):
+            vals = np.sort(cohort.loc[cohort["group"] == g, m].to_numpy(float))
+            pts = [c for c in ax.collections if c.get_label().startswith(f"{g} (")][0]
+            assert np.allclose(np.sort(np.asarray(pts.get_offsets())[:, 1]), vals)
+            # The box's middle line is the group median (numpy's median).
+            med = [ln for ln in ax.get_lines()
+                   if len(ln.get_xdata()) == 2 and np.allclose(ln.get_xdata(), [i + 0.75, i + 1.25])]
+            assert any(np.allclose(ln.get_ydata(), np.median(vals)) for ln in med), (m, g)
+        q_shown = float(re.search(r"q = ([0-9.e+-]+)", ax.get_title()).group(1))
+        q_csv = float(comp.loc[comp["measure"] == m, "q_value"].iloc[0])
+        # Two significant digits are shown: rounding moves a value by at most 5 %.
+        assert q_shown == pytest.approx(q_csv, rel=0.05)
+        assert "(" in ax.get_ylabel()
+
+
+def test_study_report_refuses_a_mask(study, capsys):
+    out, _ = study
+    assert main(["report", str(out), "--mask", "x.tif", "--overwrite"]) == 2
+    assert "--mask" in _one_error_line(capsys)
+
+
+# --------------------------------------------------------------------------- headless browser
+
+
+def _chromium():
+    exe = shutil.which("chromium") or shutil.which("chromium-browser")
+    if exe is None:
+        if os.environ.get("CI") == "true":
+            pytest.fail("CI=true but chromium is not installed (.ci/run installs Debian's chromium)")
+        pytest.skip("chromium not installed; CI installs it")
+    return exe
+
+
+def _render(exe, page, tmp, *, dump=False):
+    """Render a page headless; returns (exit code, stdout, console lines, screenshot path)."""
+    shot = tmp / "shot.png"
+    cmd = [exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+           "--disable-background-networking", "--disable-component-update", "--disable-sync",
+           "--disable-dev-shm-usage", f"--user-data-dir={tmp / 'profile'}", "--enable-logging=stderr", "--v=0",
+           "--window-size=1200,2000"]
+    cmd += ["--dump-dom"] if dump else [f"--screenshot={shot}"]
+    proc = subprocess.run(cmd + [page.resolve().as_uri()], capture_output=True, text=True, timeout=120,
+                          stdin=subprocess.DEVNULL)
+    # The page has no script, so any console message is a blocked load, a
+    # policy violation or a parse problem.
+    console = [ln for ln in proc.stderr.splitlines() if ":CONSOLE" in ln or "Uncaught" in ln]
+    return proc.returncode, proc.stdout, console, shot
+
+
+def test_console_check_catches_a_broken_page(tmp_path):
+    # The check below must be able to fail: a page that loads a missing file
+    # under the report's own Content-Security-Policy logs a console line.
+    exe = _chromium()
+    bad = tmp_path / "bad.html"
+    bad.write_text(f'<!DOCTYPE html><html><head><meta http-equiv="Content-Security-Policy" '
+                   f'content="{report._CSP}"></head><body><img src="missing.png"></body></html>')
+    rc, _, console, _ = _render(exe, bad, tmp_path)
+    assert rc == 0 and console
+
+
+@pytest.mark.parametrize("which", ["sample", "study"])
+def test_report_renders_in_headless_chromium(which, request, tmp_path):
+    exe = _chromium()
+    out = request.getfixturevalue(which)[1 if which == "sample" else 0]
+    page = out / "report.html"
+    rc, _, console, shot = _render(exe, page, tmp_path / "a")
+    assert rc == 0 and not console, console
+    assert shot.is_file() and _not_blank(shot)
+    rc, dom, console, _ = _render(exe, page, tmp_path / "b", dump=True)
+    assert rc == 0 and not console, console
+    assert "<h1>vesselflow" in dom and dom.count("<img") == len(list((out / "figures").glob("*.png")))
