@@ -22,6 +22,7 @@ BENCHES = [
     ("bench_analyze.py", ["--size", "512"], ["--size", "192"]),
     ("bench_thinning.py", [], ["--quick"]),
     ("bench_flow.py", ["--segments", "1000000", "--timeout", "120"], ["--segments", "20000"]),
+    ("bench_batch.py", ["--size", "320"], ["--size", "96", "--samples", "4"]),
 ]
 
 

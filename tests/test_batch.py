@@ -404,3 +404,47 @@ def test_a_killed_worker_fails_its_sample_alone(beds, tmp_path):
     done = res.status[res.status["status"] == "done"]["sample_id"]
     assert len(done) == 5
     _complete_or_absent(out, [s.sample_id for s in samples])
+
+
+# --------------------------------------------------------------------------- #
+# Reviews
+# --------------------------------------------------------------------------- #
+
+
+def test_batch_picks_up_reviews_and_keeps_them(tmp_path):
+    from pipeline import review
+
+    net = synthetic.binary_tree(depth=3, root_radius_um=5.0, exponent=3.0, seed=3, broken_fraction=0.5,
+                                broken_ratio=0.95, min_radius_um=2.0)
+    mask, _ = synthetic.rasterize(net, spacing=SPACING)
+    np.save(tmp_path / "tree.npy", mask)
+    sheet = tmp_path / "sheet.csv"
+    sheet.write_text(f"sample_id,path,group\ntree,{tmp_path / 'tree.npy'},treated\n", encoding="utf-8")
+    out = tmp_path / "out"
+    run = ["batch", str(sheet), "-o", str(out), "--workers", "1", "--quiet"]
+    assert main(run) == 0
+    bifs = pd.read_csv(out / "tree" / "bifurcations.csv")
+    flagged = bifs.loc[bifs["flagged"], "node_id"].tolist()
+    assert len(flagged) >= 2
+    before = pd.read_csv(out / "cohort_summary.csv").iloc[0]
+    assert not before["reviewed"] and before["bifurcations_flagged"] == len(flagged)
+    decisions = review.record_decision(review.empty_review(), flagged[0], decision="artefact", note="merged lumen")
+    review.save_review(out / "tree", review.record_decision(decisions, flagged[1], decision="confirmed"))
+
+    assert main(run) == 0  # skipped, but the tables now count the review
+    after = pd.read_csv(out / "cohort_summary.csv").iloc[0]
+    assert after["reviewed"] and after["bifurcations_flagged"] == len(flagged) - 1
+    cb = pd.read_parquet(out / "cohort_bifurcations.parquet").set_index("node_id")
+    assert cb.loc[flagged[0], "review_decision"] == "artefact" and cb.loc[flagged[0], "review_note"] == "merged lumen"
+    assert cb.loc[flagged[1], "review_decision"] == "confirmed"
+
+    saved = review.load_review(out / "tree")
+    assert main(run + ["--force"]) == 0  # same input and settings: the review still applies
+    pd.testing.assert_frame_equal(review.load_review(out / "tree"), saved)
+    assert pd.read_csv(out / "cohort_summary.csv").iloc[0]["bifurcations_flagged"] == len(flagged) - 1
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text("pruning:\n  spur_radius_factor: 2.0\n", encoding="utf-8")
+    assert main(run + ["--config", str(cfg)]) == 0  # new settings: node ids may differ, set the review aside
+    assert not (out / "tree" / "review.csv").exists()
+    assert (out / "tree" / "review-superseded.csv").is_file()
+    assert not pd.read_csv(out / "cohort_summary.csv").iloc[0]["reviewed"]

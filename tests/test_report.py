@@ -1,7 +1,6 @@
 """The report: figures and a self-contained report.html per sample and per study."""
 
 import base64
-import importlib.util
 import json
 import os
 import re
@@ -340,10 +339,6 @@ def test_failed_build_keeps_the_old_report(sample, tmp_path, monkeypatch):
 # --------------------------------------------------------------------------- study report
 
 
-def _has_batch():
-    return importlib.util.find_spec("pipeline.batch") is not None
-
-
 def _bh(p):
     # Benjamini Y, Hochberg Y (1995) J R Stat Soc B 57:289: step-up adjusted p-values.
     p = np.asarray(p, float)
@@ -414,8 +409,6 @@ def study(study_inputs):
 
 
 def test_report_of_a_real_batch(study_inputs):
-    if not _has_batch():
-        pytest.skip("pipeline/batch.py is not there yet; the hand-made batch folder stands in")
     d, rows, cfg = study_inputs
     sheet = d / "sheet.csv"
     bad = {"sample_id": "ctrl-bad", "path": str(d / "bad.tif"), "group": "ctrl"}
