@@ -14,6 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import cc3d
+import fill_voids
 import numba
 import numpy as np
 
@@ -85,6 +86,7 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     ((5, 5, 5), 27, (0, 0, 0))
     """
     spacing = tuple(float(s) for s in spacing)
+    given = mask
     # For planar masks "volume" is area and the threshold the area threshold.
     voxel_volume = (1.0 if planar else spacing[0]) * spacing[1] * spacing[2]
     if planar:
@@ -118,6 +120,8 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     cropped = np.ascontiguousarray(mask[tuple(box)])
     filled = 0
     if fill_cavities:
+        if np.may_share_memory(cropped, given):
+            cropped = cropped.copy()  # filled in place: never write into the caller's array
         cropped, filled = _fill_cavities(cropped, planar=planar)
     stats = {
         "kept_pieces": int(keep[1:].sum()),
@@ -146,25 +150,18 @@ def _label_sizes(flat, n):
 
 
 def _fill_cavities(mask, *, planar):
-    # Background touching the crop box's faces connects to the outside
-    # (everything beyond the box is background), hence is not a cavity.
-    if planar:
-        labels, n = cc3d.connected_components(~mask[0], connectivity=4, return_N=True)
-        faces = [labels[0], labels[-1], labels[:, 0], labels[:, -1]]
-    else:
-        labels, n = cc3d.connected_components(~mask, connectivity=6, return_N=True)
-        faces = [labels[0], labels[-1], labels[:, 0], labels[:, -1], labels[:, :, 0], labels[:, :, -1]]
-    if n == 0:
-        return mask, 0
-    outside = np.zeros(n + 1, dtype=bool)
-    for f in faces:
-        outside[np.unique(f)] = True
-    cavity = ~outside
-    cavity[0] = False
-    if not cavity.any():
-        return mask, 0
-    hole = cavity[labels]
-    if planar:
-        hole = hole[None]
-    filled = int(np.count_nonzero(hole))
-    return mask | hole, filled
+    """Fill background not connected to the crop box's faces; returns (mask, filled voxels).
+
+    Background beyond the box is all background, so background touching a
+    face connects to the outside and is no cavity. fill_voids flood-fills the
+    outside from the faces through face neighbours (6-connected in 3-D,
+    4-connected in 2-D), the complement of the vessel's 26-connectivity, in
+    place and with no label volume: at 512^3 it takes about a third of the
+    time of labelling every background piece, and 850 MiB less memory
+    (benchmarks/RESULTS.md).
+    """
+    plane = mask[0] if planar else mask
+    if not plane.flags.writeable or not plane.flags.c_contiguous:
+        plane = np.ascontiguousarray(plane).copy()
+    filled_plane, filled = fill_voids.fill(plane, in_place=True, return_fill_count=True)
+    return (filled_plane[None] if planar else filled_plane), int(filled)
