@@ -131,9 +131,11 @@ def test_changed_config_redoes(study, tmp_path):
     assert main(["batch", str(sheet), "-o", str(out), "--workers", "1", "--quiet"]) == 0
     cfg = tmp_path / "c.yaml"
     cfg.write_text("pruning:\n  min_fragment_length_um: 12.0\n", encoding="utf-8")
-    assert main(["batch", str(sheet), "-o", str(out), "--workers", "1", "--quiet", "--config", str(cfg)]) == 0
+    assert main(["batch", str(sheet), "-o", str(out), "--workers", "1", "--quiet", "--config", str(cfg),
+                 "--report"]) == 0
     meta = json.loads((out / "batch.json").read_text())
     assert meta["counts"]["done"] == 1
+    assert (out / "report.html").is_file() and any((out / "figures").glob("*.png"))
     assert load_result(out / "c0").run["config"]["pruning"]["min_fragment_length_um"] == 12.0
 
 
