@@ -81,7 +81,6 @@ class BatchResult:
     failures: pd.DataFrame
     cohort_summary: pd.DataFrame
     group_comparison: pd.DataFrame
-    interrupted: bool = False
 
     @property
     def n_failed(self):
@@ -270,9 +269,10 @@ def collect_samples(source, *, exclude=None):
 
 
 def _canonical(obj):
-    from .tables import _jsonable
+    # As run.json stores it, so that the two compare equal.
+    from .tables import to_jsonable
 
-    return json.loads(json.dumps(_jsonable(obj)))
+    return json.loads(json.dumps(to_jsonable(obj)))
 
 
 def _settings(sample, config):
@@ -376,18 +376,18 @@ def _failed_step(done_steps, config):
 class _Progress:
     """Counts on one terminal line, or plain log lines when not on a terminal."""
 
-    def __init__(self, total, *, quiet=False, stream=None, workers=None):
+    def __init__(self, total, *, quiet=False, stream=None):
         self.total, self.quiet = total, quiet
         self.stream = stream or sys.stderr
         self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
         self.done = self.failed = self.skipped = 0
         self.start = time.monotonic()
-        self.computed_s = []
-        self.workers = workers
+        self.pending_line = False  # a status line without its newline is on the terminal
 
     def _eta(self):
+        # Skipped samples cost next to nothing: the rate is that of the analysed ones.
         left = self.total - self.done - self.failed - self.skipped
-        if not left or not self.computed_s:
+        if not left or not self.done + self.failed:
             return ""
         elapsed = time.monotonic() - self.start
         per = elapsed / max(1, self.done + self.failed)
@@ -403,7 +403,6 @@ class _Progress:
         status = rec["status"]
         if status == "done":
             self.done += 1
-            self.computed_s.append(rec["seconds"])
         elif status == "skipped":
             self.skipped += 1
         else:
@@ -411,10 +410,10 @@ class _Progress:
         if self.quiet:
             return
         if self.tty:
-            print(f"\rvesselflow batch: {self.line()}\x1b[K", end="", file=self.stream, flush=True)
             if status == "failed":
-                print(f"\nvesselflow batch: {rec['sample_id']} failed in {rec['step']}: {rec['error']}",
-                      file=self.stream, flush=True)
+                self.info(f"{rec['sample_id']} failed in {rec['step']}: {rec['error']}")
+            print(f"\rvesselflow batch: {self.line()}\x1b[K", end="", file=self.stream, flush=True)
+            self.pending_line = True
         else:
             what = {"done": f"done in {rec['seconds']:.1f} s", "skipped": "skipped (complete result matches)",
                     "failed": f"failed in {rec['step']}: {rec['error']}"}[status]
@@ -422,12 +421,13 @@ class _Progress:
 
     def info(self, msg):
         if not self.quiet:
-            end = "\n" if not self.tty else "\n"
-            print(f"vesselflow batch: {msg}", file=self.stream, end=end, flush=True)
+            self.finish()
+            print(f"vesselflow batch: {msg}", file=self.stream, flush=True)
 
     def finish(self):
-        if not self.quiet and self.tty:
+        if self.pending_line:
             print(file=self.stream, flush=True)
+            self.pending_line = False
 
 
 def _client(*, workers, scheduler, memory_limit):

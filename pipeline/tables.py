@@ -59,6 +59,11 @@ def _jsonable(obj):
     return obj
 
 
+def to_jsonable(obj):
+    """``obj`` with numpy scalars and arrays as Python values and non-finite floats as None."""
+    return _jsonable(obj)
+
+
 def write_json(path, data):
     Path(path).write_text(json.dumps(_jsonable(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
 

@@ -450,3 +450,28 @@ def test_batch_picks_up_reviews_and_keeps_them(tmp_path):
     assert not (out / "tree" / "review.csv").exists()
     assert (out / "tree" / "review-superseded.csv").is_file()
     assert not pd.read_csv(out / "cohort_summary.csv").iloc[0]["reviewed"]
+
+
+def test_progress_on_a_terminal_and_in_a_log():
+    import io
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    recs = [{"sample_id": "a", "status": "done", "seconds": 2.0, "step": "", "error": ""},
+            {"sample_id": "b", "status": "failed", "seconds": 0.1, "step": "reading", "error": "bad file"},
+            {"sample_id": "c", "status": "skipped", "seconds": 0.0, "step": "", "error": ""}]
+    term, log = Terminal(), io.StringIO()
+    for stream in (term, log):
+        p = batch._Progress(4, stream=stream)
+        for r in recs:
+            p.update(r)
+        p.finish()
+    t = term.getvalue()
+    # One rewritten status line (carriage returns), failures on lines of their own.
+    assert t.count("\r") == 3 and "\nvesselflow batch: b failed in reading: bad file\n" in t
+    assert "2/4 done (1 skipped), 1 failed, 1 left, ETA" in t and t.endswith("\n")
+    lines = log.getvalue().splitlines()
+    assert "\r" not in log.getvalue() and len(lines) == 3
+    assert lines[1].startswith("vesselflow batch: b failed in reading: bad file")
