@@ -61,6 +61,9 @@ class VesselGraph:
         Radius at each path point, µm.
     counts : dict
         What construction and pruning removed.
+    seg_length_um : dict int -> float
+        Polyline length of each path, µm (kept by pruning; filled on demand
+        for segments missing from it).
     """
 
     node_pos_um: np.ndarray
@@ -71,6 +74,7 @@ class VesselGraph:
     seg_path: dict
     seg_radii: dict
     counts: dict = field(default_factory=dict)
+    seg_length_um: dict = field(default_factory=dict)
 
     def incidence(self):
         """Map node id to the list of incident segment ids (self-loops twice)."""
@@ -116,11 +120,13 @@ def voxel_adjacency(voxels):
         d = int(o @ strides)
         if d <= 0:  # each unordered pair once
             continue
-        target = lin + d
+        # Sorted needles: numpy's binary search narrows from the previous
+        # hit, several times faster than random-order lookups.
+        target = lin_sorted + d
         pos = np.searchsorted(lin_sorted, target)
         pos = np.minimum(pos, m - 1)
         hit = lin_sorted[pos] == target
-        rows.append(np.flatnonzero(hit))
+        rows.append(order[hit])
         cols.append(order[pos[hit]])
     r = np.concatenate(rows)
     c = np.concatenate(cols)
@@ -275,33 +281,53 @@ def build_graph(centrelines):
     # loop nodes are appended after tracing.
     base_pos = np.vstack(node_pos) if node_pos else np.zeros((0, 3))
     base_rad = np.concatenate(node_rad) if node_rad else np.zeros(0)
-    seg_nodes, seg_path, seg_radii = {}, {}, {}
-    dropped_loops = 0
+    n_inner = np.diff(offs)
+    loop = starts < 0  # a closed loop of two-neighbour voxels: its first voxel becomes a node
+    # A path that ran into visited voxels only happens on malformed input: skipped.
+    normal = ~loop & (stops >= 0)
+    tiny_loop = normal & (starts == stops) & (n_inner < 3)
+    dropped_loops = int(tiny_loop.sum())
+    normal &= ~tiny_loop
+    # Every normal path at once: [node u, inner voxels..., node v] as indices
+    # into one table of voxel then node positions, cut into per-segment views.
+    K = np.flatnonzero(normal)
+    bounds = np.r_[0, np.cumsum(n_inner[K] + 2)]
+    idx = np.empty(bounds[-1], dtype=np.int64)
+    inner = np.ones(bounds[-1], dtype=bool)
+    inner[bounds[:-1]] = False
+    inner[bounds[1:] - 1] = False
+    idx[bounds[:-1]] = m + starts[K]
+    idx[bounds[1:] - 1] = m + stops[K]
+    idx[inner] = flat[np.repeat(normal, n_inner)]
+    pts = np.vstack([pos, base_pos])[idx]
+    rads = np.concatenate([rad, base_rad])[idx]
+    steps = np.sqrt((np.diff(pts, axis=0) ** 2).sum(axis=1))
+    steps[bounds[1:-1] - 1] = 0.0  # not a step: from one path's end to the next path's start
+    lengths = np.add.reduceat(np.r_[steps, 0.0], bounds[:-1]) if len(K) else np.zeros(0)
+    paths = np.split(pts, bounds[1:-1])
+    radii_of = np.split(rads, bounds[1:-1])
+    normal_rank = np.cumsum(normal) - 1
+    seg_nodes, seg_path, seg_radii, seg_length = {}, {}, {}, {}
     sid = 0
     extra_pos, extra_rad, extra_border = [], [], []
-    for k in range(len(starts)):
-        inner = flat[offs[k]:offs[k + 1]]
-        u, v = int(starts[k]), int(stops[k])
-        if u < 0:  # a closed loop of two-neighbour voxels: its first voxel becomes a node
+    for k in np.flatnonzero(normal | loop):
+        if loop[k]:
+            ring = flat[offs[k]:offs[k + 1]]
             u = v = n_nodes + len(extra_pos)
-            extra_pos.append(pos[inner[0]])
-            extra_rad.append(rad[inner[0]])
-            extra_border.append(bool(centrelines.on_border[inner[0]]))
-            inner = np.r_[inner, inner[:1]]
-            path = pos[inner]
-            radii = rad[inner]
+            extra_pos.append(pos[ring[0]])
+            extra_rad.append(rad[ring[0]])
+            extra_border.append(bool(centrelines.on_border[ring[0]]))
+            ring = np.r_[ring, ring[:1]]
+            path, radii = pos[ring], rad[ring]
+            length = _polyline_length(path)
         else:
-            if v < 0:
-                # Path that ran into visited voxels only happens on malformed input; skip it.
-                continue
-            if u == v and len(inner) < 3:
-                dropped_loops += 1
-                continue
-            path = np.vstack([base_pos[u][None, :], pos[inner], base_pos[v][None, :]])
-            radii = np.r_[base_rad[u], rad[inner], base_rad[v]]
+            j = normal_rank[k]
+            u, v = int(starts[k]), int(stops[k])
+            path, radii, length = paths[j], radii_of[j], float(lengths[j])
         seg_nodes[sid] = (u, v)
         seg_path[sid] = path
         seg_radii[sid] = radii
+        seg_length[sid] = length
         sid += 1
     all_pos = np.vstack([base_pos] + ([np.asarray(extra_pos)] if extra_pos else []))
     all_rad = np.concatenate([base_rad] + ([np.asarray(extra_rad)] if extra_rad else []))
@@ -315,6 +341,7 @@ def build_graph(centrelines):
         seg_path=seg_path,
         seg_radii=seg_radii,
         counts={"centreline_voxels": int(m), "junction_artefact_loops": dropped_loops},
+        seg_length_um=seg_length,
     )
     return g
 
@@ -348,11 +375,19 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
     spurs = dissolved = rounds = 0
     next_id = max(g.seg_nodes, default=-1) + 1
 
+    lengths = g.seg_length_um
+
+    def seg_len(s):
+        if s not in lengths:
+            lengths[s] = _polyline_length(g.seg_path[s])
+        return lengths[s]
+
     def remove_segment(s):
         u, v = g.seg_nodes.pop(s)
         inc[u].remove(s)
         inc[v].remove(s)
         del g.seg_path[s], g.seg_radii[s]
+        lengths.pop(s, None)
 
     while rounds < max_rounds:
         rounds += 1
@@ -373,7 +408,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             if g.node_on_border[end]:
                 continue
             limit = max(spur_radius_factor * g.node_radius_um[junc], min_spur_length_um)
-            if _polyline_length(g.seg_path[s]) < limit:
+            if seg_len(s) < limit:
                 doomed.append((s, end))
         # A junction must keep at least one segment: never remove all its spurs at once.
         by_junction = defaultdict(list)
@@ -382,7 +417,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             by_junction[v if end == u else u].append((s, end))
         for junc, items in by_junction.items():
             if len(items) >= len(inc[junc]):
-                items = sorted(items, key=lambda it: _polyline_length(g.seg_path[it[0]]))[:-1]
+                items = sorted(items, key=lambda it: seg_len(it[0]))[:-1]
             for s, end in items:
                 remove_segment(s)
                 g.node_alive[end] = False
@@ -398,6 +433,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             pb, rb = _oriented(g, b, n, at_end=False)
             ua = _other(g.seg_nodes[a], n)
             ub = _other(g.seg_nodes[b], n)
+            merged_length = seg_len(a) + seg_len(b)  # the paths share node n's point
             remove_segment(a)
             remove_segment(b)
             s = next_id
@@ -405,6 +441,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             g.seg_nodes[s] = (ua, ub)
             g.seg_path[s] = np.vstack([pa, pb[1:]])
             g.seg_radii[s] = np.r_[ra, rb[1:]]
+            lengths[s] = merged_length
             inc[ua].append(s)
             inc[ub].append(s)
             g.node_alive[n] = False
@@ -426,7 +463,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         _, comp = csgraph.connected_components(a, directed=False)
         comp_len = np.zeros(comp.max() + 1)
         for s in seg_ids:
-            comp_len[comp[g.seg_nodes[s][0]]] += _polyline_length(g.seg_path[s])
+            comp_len[comp[g.seg_nodes[s][0]]] += seg_len(s)
         small = comp_len < min_fragment_length_um
         for s in seg_ids:
             if small[comp[g.seg_nodes[s][0]]]:

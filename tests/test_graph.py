@@ -110,3 +110,21 @@ def test_parallel_segments_are_kept(n_parallel):
     prune_graph(g, min_fragment_length_um=1.0)
     between = [uv for uv in g.seg_nodes.values() if g.degrees()[uv[0]] >= 3 and g.degrees()[uv[1]] >= 3]
     assert len(between) == n_parallel
+
+
+@pytest.mark.parametrize("shape", ["plus_with_spur_and_ring", "ring_only"])
+def test_kept_lengths_are_the_path_lengths(shape):
+    # Pruning decides on cached path lengths; after building, removing spurs
+    # and merging through dissolved nodes each must still equal the polyline
+    # length of its path computed directly (sum of Euclidean steps).
+    t = np.linspace(0, 2 * np.pi, 200, endpoint=False)
+    ring = [(3, int(round(30 + 8 * np.cos(a))), int(round(30 + 8 * np.sin(a)))) for a in t]
+    vox = ring
+    if shape == "plus_with_spur_and_ring":
+        vox = vox + _line((10, 0, 10), (10, 40, 10)) + _line((10, 20, 0), (10, 20, 40)) + _line((10, 31, 11), (10, 31, 12))
+    g = build_graph(_centrelines(vox, radius=2.0))
+    prune_graph(g, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=1.0)
+    assert set(g.seg_length_um) == set(g.seg_path)
+    for s, p in g.seg_path.items():
+        direct = float(np.linalg.norm(np.diff(p, axis=0), axis=1).sum())
+        assert g.seg_length_um[s] == pytest.approx(direct, rel=1e-12)
