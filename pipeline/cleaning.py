@@ -31,7 +31,8 @@ class CleanedMask:
     ----------
     mask : (Z', Y', X') bool ndarray
         Cleaned mask cropped to its bounding box plus one voxel of
-        background on every face that is not the volume's edge.
+        background on every face that is not the volume's edge;
+        C-contiguous.
     offset : tuple of 3 int
         Index of ``mask[0, 0, 0]`` in the original grid.
     original_shape : tuple of 3 int
@@ -163,5 +164,10 @@ def _fill_cavities(mask, *, planar):
     plane = mask[0] if planar else mask
     if not plane.flags.writeable or not plane.flags.c_contiguous:
         plane = np.ascontiguousarray(plane).copy()
-    filled_plane, filled = fill_voids.fill(plane, in_place=True, return_fill_count=True)
+    # fill_voids works on Fortran-ordered arrays (it would copy a C-ordered
+    # one and return Fortran order): hand it the transposed view, which is
+    # Fortran-ordered, so it fills our C-ordered buffer in place. Cavities do
+    # not depend on the axis order.
+    filled_t, filled = fill_voids.fill(plane.T, in_place=True, return_fill_count=True)
+    filled_plane = filled_t.T
     return (filled_plane[None] if planar else filled_plane), int(filled)

@@ -85,6 +85,8 @@ def test_cavity_fill_never_writes_into_the_callers_array():
     out = clean_mask(m, spacing=(1, 1, 1), min_object_volume_um3=0)
     assert out.mask[2, 2, 2] and out.stats["filled_cavity_voxels"] == 1
     assert np.array_equal(m, before)
+    # Later steps (thinning, distance transforms) walk the crop in C order.
+    assert out.mask.flags.c_contiguous
 
 
 def test_cavity_fill_reaches_out_through_faces_only():
