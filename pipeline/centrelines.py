@@ -37,6 +37,7 @@ from dataclasses import dataclass
 
 import edt
 import numba
+from numba import prange
 import numpy as np
 from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
@@ -222,7 +223,7 @@ def tissue_quantiles(flat, n_tissue):
     n_vessel = flat.size - n_tissue
     ranks = [n_vessel + q * (n_tissue - 1) for q in (0.5, 0.95)]
     wanted = sorted({int(np.floor(r)) for r in ranks} | {min(int(np.floor(r)) + 1, flat.size - 1) for r in ranks})
-    values = dict(zip(wanted, _order_statistics(flat, np.asarray(wanted, dtype=np.int64))))
+    values = dict(zip(wanted, _order_statistics(flat, np.asarray(wanted, dtype=np.int64), _threads())))
     out = []
     for r in ranks:
         lo = int(np.floor(r))
@@ -231,32 +232,62 @@ def tissue_quantiles(flat, n_tissue):
     return out[0], out[1]
 
 
-@numba.njit(cache=True)
-def _order_statistics(flat, ks):
-    """Exact k-th smallest values of ``flat`` for sorted ranks ``ks``."""
+@numba.njit(cache=True, parallel=True)
+def _order_statistics(flat, ks, nchunks=1):
+    """Exact k-th smallest values of ``flat`` (non-negative) for sorted ranks ``ks``.
+
+    Three passes, the first two split over threads: the maximum, a histogram
+    of 65 536 bins, then one gather of the values in the bins that hold the
+    wanted ranks, which are sorted.
+    """
     nbins = 1 << 16
-    hi = 0.0
-    for v in flat:
-        if v > hi:
-            hi = v
+    n = flat.size
+    nchunks = max(1, nchunks)
+    step = (n + nchunks - 1) // nchunks
+    his = np.zeros(nchunks, dtype=np.float64)
+    for c in prange(nchunks):
+        h = 0.0
+        for i in range(c * step, min(n, (c + 1) * step)):
+            if flat[i] > h:
+                h = flat[i]
+        his[c] = h
+    hi = his.max()
     scale = (nbins - 1) / hi if hi > 0 else 0.0
-    counts = np.zeros(nbins, dtype=np.int64)
-    for v in flat:
-        counts[int(v * scale)] += 1
+    part = np.zeros((nchunks, nbins), dtype=np.int64)
+    for c in prange(nchunks):
+        for i in range(c * step, min(n, (c + 1) * step)):
+            part[c, int(flat[i] * scale)] += 1
+    counts = part.sum(axis=0)
     cum = np.cumsum(counts)
+    # Each wanted rank's bin gets a slot; ranks sharing a bin share it.
+    slot_of = np.full(nbins, -1, dtype=np.int64)
+    bins = np.empty(len(ks), dtype=np.int64)
+    nslots = 0
+    for j in range(len(ks)):
+        b = np.searchsorted(cum, ks[j], side="right")
+        bins[j] = b
+        if slot_of[b] < 0:
+            slot_of[b] = nslots
+            nslots += 1
+    starts = np.zeros(nslots + 1, dtype=np.int64)
+    for j in range(len(ks)):
+        b = bins[j]
+        starts[slot_of[b] + 1] = counts[b]
+    starts = np.cumsum(starts)
+    vals = np.empty(starts[-1], dtype=flat.dtype)
+    fill = starts[:-1].copy()
+    for i in range(n):
+        sl = slot_of[int(flat[i] * scale)]
+        if sl >= 0:
+            vals[fill[sl]] = flat[i]
+            fill[sl] += 1
+    for sl in range(nslots):
+        vals[starts[sl]:starts[sl + 1]].sort()
     out = np.empty(len(ks), dtype=flat.dtype)
     for j in range(len(ks)):
-        k = ks[j]
-        b = np.searchsorted(cum, k, side="right")
+        b = bins[j]
         before = cum[b - 1] if b > 0 else 0
-        vals = np.empty(counts[b], dtype=flat.dtype)
-        m = 0
-        for v in flat:
-            if int(v * scale) == b:
-                vals[m] = v
-                m += 1
-        vals.sort()
-        out[j] = vals[k - before]
+        out[j] = vals[starts[slot_of[b]] + ks[j] - before]
     return out
 
 

@@ -93,3 +93,21 @@ def test_tissue_distance_from_the_shared_map_matches_scipy():
     # Reference: SciPy's exact EDT of the tissue, numpy's default quantiles.
     ref = ndi.distance_transform_edt(~full)[~full]
     assert cl.tissue_distance_um == pytest.approx((np.quantile(ref, 0.5), np.quantile(ref, 0.95)), rel=1e-5)
+
+
+@pytest.mark.parametrize("n, chunks", [(1, 1), (9, 2), (1000, 3), (200_000, 2)])
+def test_tissue_quantiles_match_numpy(n, chunks):
+    # Reference: numpy.quantile (linear interpolation, numpy's default) on the
+    # tissue values alone; the compiled selection must give the same numbers
+    # whatever the thread split, with vessel zeros in the map and tied values.
+    from pipeline.centrelines import _order_statistics, tissue_quantiles
+
+    rng = np.random.default_rng(n)
+    flat = np.round(rng.random(n) * 40, 1).astype(np.float32) + 0.1  # ties, as on a voxel grid
+    flat[rng.random(n) < 0.3] = 0.0
+    tissue = flat[flat > 0]
+    got = tissue_quantiles(flat, tissue.size)
+    want = np.quantile(tissue, [0.5, 0.95]) if tissue.size else (0.0, 0.0)
+    assert got == pytest.approx(tuple(want), rel=1e-6)  # float32 values, float64 interpolation
+    ks = np.unique(rng.integers(0, n, 4)).astype(np.int64)
+    assert np.array_equal(_order_statistics(flat, ks, chunks), np.sort(flat)[ks])
