@@ -209,10 +209,11 @@ def _cmd_batch(args):
     res = batch.run_batch(samples, args.output, config=cfg, workers=args.workers, scheduler=args.scheduler,
                           force=args.force, overwrite=args.overwrite, memory_limit=args.memory_limit,
                           threads=args.threads, quiet=args.quiet, input_label=str(Path(args.input).resolve()))
-    if getattr(args, "report", False):
+    if args.report:
         from .report import build_report
 
-        build_report(res.outdir, overwrite=True)
+        page = build_report(res.outdir, overwrite=True)
+        _Reporter(args.quiet).info(f"wrote {page}")
     return 1 if res.n_failed else 0
 
 
