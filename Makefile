@@ -14,7 +14,7 @@ $(STAMP): $(BIN)/python pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/vesselflow demo -o results --overwrite --config configs/tumour-window-demo.yaml
+	$(BIN)/vesselflow demo -o results --overwrite --config configs/tumour-window-demo.yaml --report
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

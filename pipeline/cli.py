@@ -91,6 +91,7 @@ def _parser():
     d.add_argument("--config", help="YAML config file")
     d.add_argument("--overwrite", action="store_true")
     d.add_argument("--quiet", action="store_true")
+    d.add_argument("--report", action="store_true", help="also write each volume's report.html")
     _review_parsers(sub)
     return p
 
@@ -231,7 +232,11 @@ def _cmd_demo(args):
     out.mkdir(parents=True, exist_ok=True)
     for f in files:
         rep.info(f"analysing {f.name}")
-        run_analyze(f, out / f.name.split(".")[0], config=cfg, overwrite=True, reporter=rep, command=sys.argv)
+        res = run_analyze(f, out / f.name.split(".")[0], config=cfg, overwrite=True, reporter=rep, command=sys.argv)
+        if args.report:
+            from .report import build_report
+
+            rep.info(f"wrote {build_report(res, overwrite=True)}")
     return 0
 
 

@@ -163,3 +163,12 @@ def test_flow_options(tube_tif, tmp_path):
     roles = pd.read_csv(moved / "nodes.csv").set_index("node_id")["role"]
     assert roles[end] == "inlet"
     assert main(["analyze", str(tube_tif), "-o", str(tmp_path / "bad"), "--quiet", "--root", "node:999"]) == 2
+
+
+def test_demo_analyses_every_volume_with_reports(tube_tif, tmp_path):
+    out = tmp_path / "results"
+    assert main(["demo", "-o", str(out), "--input-dir", str(tube_tif.parent), "--report", "--quiet"]) == 0
+    folder = out / "ybranch"
+    assert all((folder / f).is_file() for f in RESULT_FILES)
+    assert (folder / "report.html").is_file()
+    assert main(["demo", "-o", str(out), "--input-dir", str(tmp_path / "none"), "--quiet"]) == 2
