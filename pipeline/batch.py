@@ -566,6 +566,15 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
         raise InputError(f"--workers: expected a whole number of at least 1, got {workers!r}")
     if threads is not None and (not isinstance(threads, int) or threads < 1):
         raise InputError(f"--threads: expected a whole number of at least 1, got {threads!r}")
+    if isinstance(memory_limit, str):
+        from dask.utils import parse_bytes
+
+        try:
+            memory_limit = int(parse_bytes(memory_limit))
+        except (ValueError, TypeError):
+            raise InputError(f"--memory-limit: expected a size such as 6GB or 500MB, got '{memory_limit}'") from None
+        if memory_limit <= 0:
+            raise InputError(f"--memory-limit: expected a positive size, got {memory_limit} bytes")
     nworkers = workers or min(_default_workers(), len(samples))
     if memory_limit is None and not scheduler:
         from .reading import available_memory_bytes

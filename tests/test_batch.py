@@ -299,6 +299,15 @@ def test_folder_input_groups_by_subfolder(study, tmp_path):
     assert len(batch.collect_samples(tmp_path / "in", exclude=out)) == 3
 
 
+@pytest.mark.parametrize("args, needle", [(["--memory-limit", "lots"], "--memory-limit"),
+                                          (["--workers", "0"], "--workers"), (["--threads", "0"], "--threads")])
+def test_bad_engine_options_fail_before_any_work(study, tmp_path, capsys, args, needle):
+    out = tmp_path / "out"
+    code = main(["batch", str(study["sheet"]), "-o", str(out), "--quiet", *args])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and needle in err[0] and not out.exists()
+
+
 def test_refuses_a_foreign_non_empty_folder(study, tmp_path, capsys):
     out = tmp_path / "out"
     out.mkdir()
