@@ -484,3 +484,11 @@ def test_progress_on_a_terminal_and_in_a_log():
     lines = log.getvalue().splitlines()
     assert "\r" not in log.getvalue() and len(lines) == 3
     assert lines[1].startswith("vesselflow batch: b failed in reading: bad file")
+
+
+def test_shipped_demo_sheet_is_valid():
+    # The example sheet in synthetic_volumes/ must keep matching its volumes.
+    sheet = Path(__file__).resolve().parents[1] / "synthetic_volumes" / "tw-study.csv"
+    samples = batch.read_sample_sheet(sheet)
+    assert [(s.sample_id, s.group) for s in samples] == [("tw-ctrl-01", "control"), ("tw-trt-01", "treated")]
+    assert all(s.path.is_file() for s in samples)
