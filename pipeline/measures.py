@@ -35,7 +35,6 @@ import numpy as np
 import pandas as pd
 
 from .centrelines import tissue_quantiles
-from scipy import ndimage as ndi
 
 __all__ = ["segment_table", "node_table", "summarize", "tissue_distance", "path_length"]
 

@@ -7,10 +7,8 @@ import math
 import statistics
 import subprocess
 import sys
-from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from pipeline import review, synthetic, tables
