@@ -482,19 +482,16 @@ def _default_workers():
 
 
 def _clean_partials(outdir):
-    """Remove half-written sample folders an interrupted run left behind."""
+    """Remove half-written sample folders and tables an interrupted run left behind."""
     for p in Path(outdir).glob(".*.partial-*"):
         if p.is_dir():
             shutil.rmtree(p, ignore_errors=True)
+    for p in Path(outdir).glob(".*.partial"):
+        if p.is_file():
+            p.unlink(missing_ok=True)
     for p in Path(outdir).glob(".*.old-*"):
         if p.is_dir():
             shutil.rmtree(p, ignore_errors=True)
-
-
-def _write_atomic(path, write):
-    tmp = path.with_name(f".{path.name}.partial")
-    write(tmp)
-    os.replace(tmp, path)
 
 
 def _check_batch_outdir(outdir, *, overwrite):
@@ -589,9 +586,9 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     meta = {"vesselflow_version": _version(), "created": started, "state": "running",
             "input": input_label, "config": cfg, "scheduler": scheduler or "local",
             "workers": None if scheduler else nworkers, "force": bool(force)}
-    from .tables import write_json
+    from .tables import write_atomic, write_json
 
-    _write_atomic(out / "batch.json", lambda p: write_json(p, meta))
+    write_atomic(out / "batch.json", lambda p: write_json(p, meta))
     prog = _Progress(len(samples), quiet=quiet, stream=stream)
     prog.info(f"{len(samples)} samples on " + (f"the scheduler at {scheduler}" if scheduler else
                                                f"{nworkers} local worker{'s' if nworkers > 1 else ''}"))
@@ -653,17 +650,17 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
                 samples=status.to_dict("records"))
     failures = status.loc[status["status"] == "failed", list(FAILURE_COLUMNS)].reset_index(drop=True)
     if interrupted:
-        _write_atomic(out / "batch.json", lambda p: write_json(p, meta))
+        write_atomic(out / "batch.json", lambda p: write_json(p, meta))
         raise KeyboardInterrupt
     ok = [s for s in samples if records[s.sample_id]["status"] in ("done", "skipped")]
     tables = cohort_tables(out, ok)
-    _write_atomic(out / "failures.csv", lambda p: failures.to_csv(p, index=False))
-    _write_atomic(out / "cohort_summary.csv", lambda p: tables["summary"].to_csv(p, index=False))
-    _write_atomic(out / "cohort_segments.parquet", lambda p: tables["segments"].to_parquet(p, index=False))
-    _write_atomic(out / "cohort_bifurcations.parquet",
+    write_atomic(out / "failures.csv", lambda p: failures.to_csv(p, index=False))
+    write_atomic(out / "cohort_summary.csv", lambda p: tables["summary"].to_csv(p, index=False))
+    write_atomic(out / "cohort_segments.parquet", lambda p: tables["segments"].to_parquet(p, index=False))
+    write_atomic(out / "cohort_bifurcations.parquet",
                   lambda p: tables["bifurcations"].to_parquet(p, index=False))
-    _write_atomic(out / "group_comparison.csv", lambda p: tables["comparison"].to_csv(p, index=False))
-    _write_atomic(out / "batch.json", lambda p: write_json(p, meta))  # last: marks the batch complete
+    write_atomic(out / "group_comparison.csv", lambda p: tables["comparison"].to_csv(p, index=False))
+    write_atomic(out / "batch.json", lambda p: write_json(p, meta))  # last: marks the batch complete
     prog.info(f"{meta['counts']['done']} analysed, {meta['counts']['skipped']} skipped, "
               f"{meta['counts']['failed']} failed; tables in {out}")
     return BatchResult(outdir=out, status=status, failures=failures, cohort_summary=tables["summary"],

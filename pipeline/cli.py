@@ -242,7 +242,6 @@ def _cmd_demo(args):
 
 def _cmd_summarize(args):
     import json
-    import os
 
     from . import review, tables
 
@@ -257,9 +256,7 @@ def _cmd_summarize(args):
     if out.exists() and not args.overwrite:
         raise InputError(f"'{out}' exists; pass --overwrite to replace it")
     summary, _ = review.apply_review(result)
-    tmp = out.with_name(f".{out.name}.partial")
-    tables.write_json(tmp, summary)
-    os.replace(tmp, out)  # a reader never sees half a file
+    tables.write_atomic(out, lambda tmp: tables.write_json(tmp, summary))
     for key, before, after in review.changed_measures(result.summary, summary):
         print(f"{key}: {after}" if before is None else f"{key}: {before} -> {after}")
     print(f"vesselflow: wrote {out}", file=sys.stderr)

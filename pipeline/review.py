@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
-import tempfile
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -40,6 +39,7 @@ import pandas as pd
 
 from . import bifurcations as _bif
 from .errors import InputError
+from .tables import write_atomic
 
 __all__ = [
     "REVIEW_FILE",
@@ -203,17 +203,11 @@ def save_review(outdir: str | os.PathLike[str], review: pd.DataFrame) -> Path:
         raise InputError(f"review: expected an existing result folder, got '{out}'")
     table = _validate(review, where="review", first_line=0)
     table.loc[table["reviewed_at"] == "", "reviewed_at"] = _now()
-    fd, tmp = tempfile.mkstemp(prefix=f".{REVIEW_FILE}.", suffix=".partial", dir=out)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+    def write(tmp):
+        with open(tmp, "w", encoding="utf-8", newline="") as fh:
             table.to_csv(fh, index=False, columns=list(REVIEW_COLUMNS))
-            fh.flush()
-            os.fsync(fh.fileno())  # the data is on disk before the name points at it
-        os.replace(tmp, out / REVIEW_FILE)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return out / REVIEW_FILE
+
+    return write_atomic(out / REVIEW_FILE, write)
 
 
 def record_decision(review: pd.DataFrame, node_id: int, *, decision: str, note: str = "",

@@ -36,7 +36,7 @@ import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["write_result", "load_result", "Result", "check_outdir", "RESULT_FILES"]
+__all__ = ["write_result", "load_result", "Result", "check_outdir", "write_atomic", "RESULT_FILES"]
 
 RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
                 "centrelines.npz", "run.json")
@@ -62,6 +62,39 @@ def _jsonable(obj):
 def to_jsonable(obj):
     """``obj`` with numpy scalars and arrays as Python values and non-finite floats as None."""
     return _jsonable(obj)
+
+
+def write_atomic(path, write):
+    """Write one file atomically.
+
+    ``write(tmp)`` fills a temporary file beside ``path``; it is flushed to
+    disk and then renamed over ``path``, so a reader (or a crash) never sees
+    half a file. On failure the temporary file is removed and ``path`` is
+    left as it was.
+
+    Parameters
+    ----------
+    path : str or Path
+    write : callable
+        Called with the temporary file's Path.
+
+    Returns
+    -------
+    Path
+    """
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp)
+    try:
+        write(tmp)
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())  # the data is on disk before the name points at it
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
 
 
 def write_json(path, data):

@@ -47,7 +47,6 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -853,14 +852,7 @@ def _write_png(path: Path, img: np.ndarray):
     from PIL import Image
 
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial.png", dir=path.parent)
-    os.close(fd)
-    try:
-        Image.fromarray(np.ascontiguousarray(img)).save(tmp, format="PNG")
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    tables.write_atomic(path, lambda tmp: Image.fromarray(np.ascontiguousarray(img)).save(tmp, format="PNG"))
 
 
 def napari_get_reader(path):
