@@ -435,43 +435,28 @@ def load_sample(outdir, *, mask=None, read_mip=True):
     data = SampleData(name=out.name, segments=res.segments, nodes=res.nodes, bifurcations=res.bifurcations,
                        levels=res.levels, summary=res.summary, run=res.run, centrelines=res.centrelines)
     if read_mip:
-        data.mip = _read_mip(data, mask)
+        data.mip = _read_mip(data, res, mask)
     return data
 
 
-def _read_mip(data, mask):
+def _read_mip(data, result, mask):
     """Maximum-intensity projection of the mask along z, or None with a note."""
-    from . import reading
+    from .tables import read_result_mask
 
-    run = data.run
     explicit = mask is not None
-    path = Path(mask) if explicit else Path(run.get("input", {}).get("path") or "")
-    if not explicit and (not str(path) or str(path) == "." or not path.is_file()):
-        data.notes.append(f"The mask '{path}' recorded in run.json was not found, so the maps show the "
-                          "centrelines alone, without the mask projection.")
-        return None
-    spacing = data.spacing[1:] if run.get("planar") else data.spacing
-    threshold = (run.get("config") or {}).get("input", {}).get("threshold")
     try:
-        # Only the boolean mask is held here, not the analysis' work arrays.
-        img = reading.read_mask(path, spacing=spacing, threshold=threshold, bytes_per_voxel=2.0)
+        img, notes = read_result_mask(result, mask)
     except InputError as exc:
         if explicit:
-            raise InputError(f"report: --mask: {exc}") from None
-        data.notes.append(f"The mask recorded in run.json could not be read ({exc}), so the maps show the "
+            raise InputError(f"report: {exc}") from None
+        data.notes.append(f"The mask recorded in run.json could not be used ({exc}), so the maps show the "
                           "centrelines alone.")
         return None
-    want = run.get("shape")
-    if want is not None and list(img.shape) != list(want):
-        msg = (f"report: mask '{path}' has shape {list(img.shape)}; the analysis was of shape {list(want)}")
-        if explicit:
-            raise InputError(msg + "; expected the mask this result was made from")
-        data.notes.append(msg[len('report: '):] + ", so the maps show the centrelines alone.")
+    if img is None:
+        data.notes.append(f"{notes[0][0].upper()}{notes[0][1:]}, so the maps show the centrelines alone, without "
+                          "the mask projection.")
         return None
-    sha = run.get("input", {}).get("sha256")
-    if sha and img.sha256 != sha:
-        data.notes.append(f"The mask file '{path}' differs from the one analysed (SHA-256 does not match "
-                          "run.json); its projection is shown as found.")
+    data.notes.extend(f"{n[0].upper()}{n[1:]}; its projection is shown as found." for n in notes)
     return img.mask.any(axis=0)
 
 
@@ -971,18 +956,15 @@ def _sources_html():
 
 def _review_table(out, fl):
     """Join review decisions (``review.csv``, optional) onto the flagged junctions by node id."""
-    path = out / "review.csv"
-    if not path.is_file():
+    from .review import REVIEW_FILE, load_review
+
+    if not (out / REVIEW_FILE).is_file():
         return fl, None
     try:
-        rev = pd.read_csv(path)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, OSError) as exc:
-        return fl, f"review.csv could not be read ({type(exc).__name__}); review decisions are not shown."
-    if "node_id" not in rev.columns:
-        return fl, "review.csv has no node_id column; review decisions are not shown."
-    rev = rev.drop_duplicates("node_id", keep="last")
-    keep = [c for c in rev.columns if c != "node_id"]
-    rev = rev.rename(columns={c: f"review {c}" for c in keep})
+        rev = load_review(out)  # validated: one row per node id
+    except InputError as exc:
+        return fl, f"review.csv could not be read ({exc}); review decisions are not shown."
+    rev = rev.rename(columns={c: f"review {c}" for c in rev.columns if c != "node_id"})
     return fl.merge(rev, on="node_id", how="left"), f"Review decisions from review.csv ({len(rev)} rows)."
 
 

@@ -36,7 +36,8 @@ import pandas as pd
 
 from .errors import InputError
 
-__all__ = ["write_result", "load_result", "Result", "check_outdir", "write_atomic", "RESULT_FILES"]
+__all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "write_atomic",
+           "RESULT_FILES"]
 
 RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
                 "centrelines.npz", "run.json")
@@ -230,6 +231,55 @@ def load_result(outdir):
         lines = [pts[off[i]:off[i + 1]] for i in range(len(off) - 1)]
     return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines,
                   bifurcations=bifs, levels=levels)
+
+
+def read_result_mask(result, mask_path=None):
+    """Read the mask a result was computed from, for display (viewer, report maps).
+
+    Parameters
+    ----------
+    result : Result
+    mask_path : str or Path, optional
+        Default: the input recorded in ``run.json``.
+
+    Returns
+    -------
+    image : MaskImage or None
+        None when no path was given and the recorded file is gone.
+    notes : list of str
+        Why the mask is missing, or that the file differs from the one
+        analysed (its checksum does not match ``run.json``).
+
+    Raises
+    ------
+    InputError
+        If the file cannot be read as a mask, or its shape differs from the
+        volume the result was computed from.
+    """
+    from . import reading
+
+    run = result.run
+    recorded = (run.get("input") or {}).get("path")
+    if mask_path is None:
+        if not recorded or not Path(recorded).is_file():
+            return None, [f"the mask recorded in run.json ('{recorded}') is not there"]
+        mask_path = recorded
+    path = Path(mask_path)
+    if not path.is_file():
+        raise InputError(f"--mask: expected a mask file, got '{path}' (not found)")
+    spacing = result.spacing[1:] if run.get("planar") else result.spacing
+    threshold = ((run.get("config") or {}).get("input") or {}).get("threshold")
+    # Only the boolean mask is held for display, none of the analysis' work arrays.
+    img = reading.read_mask(path, spacing=spacing, threshold=threshold, bytes_per_voxel=2.0)
+    shape = tuple(run.get("shape") or ())
+    if shape and tuple(img.shape) != shape:
+        raise InputError(f"mask '{path}': expected shape {shape} (the volume this result was computed from), "
+                         f"got {tuple(img.shape)}")
+    notes = []
+    sha = (run.get("input") or {}).get("sha256")
+    if sha and img.sha256 != sha:
+        notes.append(f"the mask file '{path}' differs from the one analysed (its SHA-256 does not match run.json)")
+    return img, notes
 
 
 def _read_csv(path):

@@ -56,7 +56,7 @@ import pandas as pd
 from napari.utils.colormaps import ensure_colormap
 from qtpy import QtCore, QtGui, QtWidgets
 
-from . import reading, review as rv, tables
+from . import review as rv, tables
 from .errors import InputError
 
 __all__ = [
@@ -133,7 +133,8 @@ def read_mask_for(result: tables.Result, mask_path: str | os.PathLike[str] | Non
     mask : ndarray of bool or None
         None when no path was given and the recorded file no longer exists.
     message : str or None
-        Why the mask is missing, for a warning.
+        Why the mask is missing, or that it differs from the one analysed,
+        for a warning.
 
     Raises
     ------
@@ -141,22 +142,10 @@ def read_mask_for(result: tables.Result, mask_path: str | os.PathLike[str] | Non
         If ``mask_path`` is given but cannot be read, or the mask's shape
         differs from the one the result was computed from.
     """
-    recorded = (result.run.get("input") or {}).get("path")
-    if mask_path is None:
-        if not recorded or not Path(recorded).is_file():
-            return None, (f"the mask recorded in run.json ('{recorded}') is not there; showing the graph without "
-                          "it (pass --mask PATH)")
-        mask_path = recorded
-    path = Path(mask_path)
-    if not path.is_file():
-        raise InputError(f"--mask: expected a mask file, got '{path}' (not found)")
-    threshold = ((result.run.get("config") or {}).get("input") or {}).get("threshold")
-    img = reading.read_mask(path, spacing=result.spacing if len(result.spacing) == 3 else None, threshold=threshold)
-    shape = tuple(result.run.get("shape") or ())
-    if shape and tuple(img.mask.shape) != shape:
-        raise InputError(f"mask '{path}': expected shape {shape} (the volume this result was computed from), "
-                         f"got {tuple(img.mask.shape)}")
-    return img.mask, None
+    img, notes = tables.read_result_mask(result, mask_path)
+    if img is None:
+        return None, notes[0] + "; showing the graph without it (pass --mask PATH)"
+    return img.mask, ("; ".join(notes) or None)
 
 
 def _colours(values: np.ndarray, *, measure: str):

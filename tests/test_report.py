@@ -522,3 +522,21 @@ def test_report_renders_in_headless_chromium(which, request, tmp_path):
     rc, dom, console, _ = _render(exe, page, tmp_path / "b", dump=True)
     assert rc == 0 and not console, console
     assert "<h1>vesselflow" in dom and dom.count("<img") == len(list((out / "figures").glob("*.png")))
+
+
+def test_review_decisions_appear_in_the_flagged_table(sample, tmp_path):
+    from pipeline import review
+
+    _, out, _ = sample
+    copy = tmp_path / "reviewed"
+    shutil.copytree(out, copy)
+    flagged = pd.read_csv(copy / "bifurcations.csv").query("flagged")["node_id"].tolist()
+    assert flagged
+    review.save_review(copy, review.record_decision(review.empty_review(), flagged[0], decision="artefact",
+                                                    note="two vessels crossing"))
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    text = (copy / "report.html").read_text(encoding="utf-8")
+    assert "two vessels crossing" in text and "artefact" in text
+    (copy / "review.csv").write_text("node_id,decision\n1,maybe\n", encoding="utf-8")  # invalid: still a report
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    assert "review decisions are not shown" in (copy / "report.html").read_text(encoding="utf-8")
