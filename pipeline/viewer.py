@@ -729,8 +729,9 @@ class ReviewPanel(QtWidgets.QWidget):
             160, 12, QtCore.Qt.AspectRatioMode.IgnoreAspectRatio))
         self.legend_bar.setToolTip(f"{label}{unit_text}, {CENTRELINE_COLORMAP}; grey: no value")
         overlay = _text_overlay(self.viewer)
-        overlay.text = (f"centrelines: {label}{(' [' + unit + ']') if unit else ''} {lo:.3g} (purple) to "
-                        f"{hi:.3g} (yellow), grey: none; flagged junctions: magenta")
+        # Two short lines: one long line is cut off on a screenshot-sized canvas.
+        overlay.text = (f"centrelines: {label}{(' [' + unit + ']') if unit else ''}\n"
+                        f"{lo:.3g} (purple) to {hi:.3g} (yellow), grey: none; flagged junctions: magenta")
         overlay.visible = True
 
 
