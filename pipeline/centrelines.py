@@ -42,6 +42,7 @@ import numpy as np
 from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
 
+from ._distance import tissue_quantiles, two_label_distance
 from ._parallel import threads as _threads
 from .thinning import thin
 
@@ -102,10 +103,9 @@ def resample_isotropic(mask, *, spacing, target):
         physical frame as the input; the output spans the input's extent.
     """
     spacing = np.asarray(spacing, dtype=float)
-    inside = edt.edt(mask, anisotropy=tuple(spacing), black_border=False, parallel=_threads())
-    outside = edt.edt(~mask, anisotropy=tuple(spacing), black_border=False, parallel=_threads())
-    phi = np.subtract(inside, outside, dtype=np.float32)
-    del inside, outside
+    # Signed distance, positive inside: one two-label transform gives both sides.
+    phi = two_label_distance(mask, spacing=tuple(spacing))
+    np.negative(phi, out=phi, where=~mask)
     out_shape = tuple(int(np.floor((n - 1) * s / target + 1e-9)) + 1 for n, s in zip(mask.shape, spacing))
     scale = target / spacing
     fine = ndi.affine_transform(phi, scale, output_shape=out_shape, order=1, output=np.float32, mode="nearest")
@@ -124,18 +124,52 @@ def _edge_pad(mask, border_faces, width):
     return np.pad(mask, pads, mode="edge"), pads
 
 
-def _ridge(distance, voxels):
-    """Largest distance among each voxel and its 26 (8 in 2-D) neighbours."""
+def _pad_width(mask, border_faces, spacing):
+    """Voxels of edge padding that let the thinning erode a cut end in the pad.
+
+    Thinning eats into the extruded end of a cut vessel by the largest
+    radius that fits in its cross-section, which is the largest in-plane
+    distance to background on the cut face (a plane cuts a tube of radius r
+    in an ellipse whose inscribed circle has radius r). Measuring it on the
+    faces alone needs no distance map of the whole crop before thinning.
+    """
+    deepest = 0.0
+    for axis in range(mask.ndim):
+        for side, cut in zip((0, -1), border_faces[axis]):
+            if not cut:
+                continue
+            face = np.ascontiguousarray(np.take(mask, side, axis=axis))
+            if not face.any():
+                continue
+            face_sp = tuple(float(s) for a, s in enumerate(spacing) if a != axis)
+            if face.ndim == 1:
+                face, face_sp = face[None], (1.0,) + face_sp
+            d = two_label_distance(face, spacing=face_sp)
+            r = float(np.max(d, where=face, initial=0.0))
+            # A face that is all vessel: the thinning erodes at most the face's extent.
+            deepest = max(deepest, r if np.isfinite(r) else float(max(face.shape) * max(face_sp)))
+    width = int(np.ceil(deepest / float(np.min(spacing)))) + 2
+    # Even, so the thinning's subfields (voxel parities) keep their phase on
+    # the unpadded grid: the skeleton then does not depend on the pad width.
+    return width + width % 2
+
+
+def _ridge(distance, voxels, mask):
+    """Largest distance among each voxel and its 26 (8 in 2-D) vessel neighbours.
+
+    Only vessel voxels count: in a two-label map a tissue neighbour holds its
+    distance to the vessel, not a radius.
+    """
     if distance.ndim == 2:
-        d3 = distance[None]
+        d3, m3 = distance[None], mask[None]
         v3 = np.column_stack([np.zeros(len(voxels), dtype=np.int64), voxels])
     else:
-        d3, v3 = distance, voxels
-    return _ridge3(d3, np.ascontiguousarray(v3, dtype=np.int64))
+        d3, m3, v3 = distance, mask, voxels
+    return _ridge3(d3, m3, np.ascontiguousarray(v3, dtype=np.int64))
 
 
 @numba.njit(cache=True)
-def _ridge3(d, vox):
+def _ridge3(d, m, vox):
     nz, ny, nx = d.shape
     out = np.empty(len(vox), dtype=np.float64)
     for i in range(len(vox)):
@@ -144,7 +178,7 @@ def _ridge3(d, vox):
         for a in range(max(z - 1, 0), min(z + 2, nz)):
             for b in range(max(y - 1, 0), min(y + 2, ny)):
                 for c in range(max(x - 1, 0), min(x + 2, nx)):
-                    if d[a, b, c] > best:
+                    if m[a, b, c] and d[a, b, c] > best:
                         best = d[a, b, c]
         out[i] = best
     return out
@@ -195,102 +229,6 @@ def _in_plane_radii(dist, spacing, axis, positions, *, ridge):
     return best
 
 
-def _two_label_distance(crop, offset, shape, spacing):
-    """Distance map of the whole volume with vessel (1) and tissue (2) labels.
-
-    ``edt`` gives every voxel its distance to the nearest voxel of another
-    label: for vessel voxels the distance to tissue, for tissue voxels the
-    distance to vessel. Array faces are not background (they are cuts).
-    """
-    labels = np.full(tuple(int(n) for n in shape), 2, dtype=np.uint8)
-    sl = tuple(slice(o, o + n) for o, n in zip(offset, crop.shape))
-    labels[sl][crop] = 1
-    return edt.edt(labels, anisotropy=tuple(spacing), black_border=False, parallel=_threads())
-
-
-def tissue_quantiles(flat, n_tissue):
-    """Median and 95th percentile of tissue distances.
-
-    ``flat`` holds 0 for vessel voxels and a positive distance for each of
-    the ``n_tissue`` tissue voxels, so the tissue quantiles (numpy's default,
-    linear definition) are order statistics of ``flat`` shifted by the vessel
-    count. They are selected exactly in two compiled passes (a histogram
-    locates the bin of each order statistic, then that bin's values are
-    sorted), without copying the map.
-    """
-    if n_tissue <= 0:
-        return 0.0, 0.0
-    n_vessel = flat.size - n_tissue
-    ranks = [n_vessel + q * (n_tissue - 1) for q in (0.5, 0.95)]
-    wanted = sorted({int(np.floor(r)) for r in ranks} | {min(int(np.floor(r)) + 1, flat.size - 1) for r in ranks})
-    values = dict(zip(wanted, _order_statistics(flat, np.asarray(wanted, dtype=np.int64), _threads())))
-    out = []
-    for r in ranks:
-        lo = int(np.floor(r))
-        hi = min(lo + 1, flat.size - 1)
-        out.append(float(values[lo] + (r - lo) * (values[hi] - values[lo])))
-    return out[0], out[1]
-
-
-@numba.njit(cache=True, parallel=True)
-def _order_statistics(flat, ks, nchunks=1):
-    """Exact k-th smallest values of ``flat`` (non-negative) for sorted ranks ``ks``.
-
-    Three passes, the first two split over threads: the maximum, a histogram
-    of 65 536 bins, then one gather of the values in the bins that hold the
-    wanted ranks, which are sorted.
-    """
-    nbins = 1 << 16
-    n = flat.size
-    nchunks = max(1, nchunks)
-    step = (n + nchunks - 1) // nchunks
-    his = np.zeros(nchunks, dtype=np.float64)
-    for c in prange(nchunks):
-        h = 0.0
-        for i in range(c * step, min(n, (c + 1) * step)):
-            if flat[i] > h:
-                h = flat[i]
-        his[c] = h
-    hi = his.max()
-    scale = (nbins - 1) / hi if hi > 0 else 0.0
-    part = np.zeros((nchunks, nbins), dtype=np.int64)
-    for c in prange(nchunks):
-        for i in range(c * step, min(n, (c + 1) * step)):
-            part[c, int(flat[i] * scale)] += 1
-    counts = part.sum(axis=0)
-    cum = np.cumsum(counts)
-    # Each wanted rank's bin gets a slot; ranks sharing a bin share it.
-    slot_of = np.full(nbins, -1, dtype=np.int64)
-    bins = np.empty(len(ks), dtype=np.int64)
-    nslots = 0
-    for j in range(len(ks)):
-        b = np.searchsorted(cum, ks[j], side="right")
-        bins[j] = b
-        if slot_of[b] < 0:
-            slot_of[b] = nslots
-            nslots += 1
-    starts = np.zeros(nslots + 1, dtype=np.int64)
-    for j in range(len(ks)):
-        b = bins[j]
-        starts[slot_of[b] + 1] = counts[b]
-    starts = np.cumsum(starts)
-    vals = np.empty(starts[-1], dtype=flat.dtype)
-    fill = starts[:-1].copy()
-    for i in range(n):
-        sl = slot_of[int(flat[i] * scale)]
-        if sl >= 0:
-            vals[fill[sl]] = flat[i]
-            fill[sl] += 1
-    for sl in range(nslots):
-        vals[starts[sl]:starts[sl + 1]].sort()
-    out = np.empty(len(ks), dtype=flat.dtype)
-    for j in range(len(ks)):
-        b = bins[j]
-        before = cum[b - 1] if b > 0 else 0
-        out[j] = vals[starts[slot_of[b]] + ks[j] - before]
-    return out
-
-
 def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
                         max_anisotropy=1.5, resample_spacing_um=None, half_voxel_correction=True):
     """Thin the mask to centrelines and measure the radius along them.
@@ -339,23 +277,9 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         (offset[a] == 0, offset[a] + mask.shape[a] == original_shape[a]) for a in axes
     ]
     coarse = _single_coarse_axis(spacing[axes], max_anisotropy) if resampled else None
-    tissue_q = None
-    if not resampled:
-        # One two-label transform of the whole volume serves two steps: vessel
-        # voxels get their distance to tissue (the radii), tissue voxels their
-        # distance to the nearest vessel (the summary), at the cost of one.
-        full = _two_label_distance(work, offset[axes], original_shape[axes], sp)
-        distance = full[tuple(slice(o, o + n) for o, n in zip(offset[axes], work.shape))]
-        rmax = float(np.max(distance, where=work, initial=0.0))
-    elif coarse is None:
-        full = None
-        distance = edt.edt(work, anisotropy=tuple(sp), black_border=False, parallel=_threads())
-        rmax = float(distance.max())
-    else:
-        full = distance = None
-        plane_dist = _in_plane_distance(mask[0] if planar else mask, spacing[axes], coarse)
-        rmax = float(plane_dist.max())
-    width = int(np.ceil(rmax / sp.min())) + 2
+    # Thinning first, distances after: the two never hold their working
+    # memory at the same time, which keeps the peak of a large stack down.
+    width = _pad_width(work, border_faces, sp)
     padded, pads = _edge_pad(work, border_faces, width)
     # 3-D: the project's subfield thinning (pipeline/thinning.py). scikit-image's
     # 3-D skeletonize deletes objects of even width entirely (scikit-image
@@ -365,15 +289,29 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
     inner = tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))
     voxels = np.argwhere(skel[inner])
     del skel, padded
+    tissue_q = None
     if coarse is not None:
+        plane_dist = _in_plane_distance(mask[0] if planar else mask, spacing[axes], coarse)
         radii = _in_plane_radii(plane_dist, spacing[axes], coarse, voxels * sp, ridge=half_voxel_correction)
         del plane_dist
+    elif resampled:
+        distance = two_label_distance(work, spacing=tuple(sp))
+        radii = _ridge(distance, voxels, work) if half_voxel_correction else distance[tuple(voxels.T)]
+        del distance
     else:
-        radii = _ridge(distance, voxels) if half_voxel_correction else distance[tuple(voxels.T)]
-    if full is not None:
+        # One two-label transform of the whole volume serves two steps: vessel
+        # voxels get their distance to tissue (the radii), tissue voxels their
+        # distance to the nearest vessel (the summary), at the cost of one.
+        inside = tuple(slice(o, o + n) for o, n in zip(offset[axes], work.shape))
+        vessel = np.zeros(tuple(int(n) for n in original_shape[axes]), dtype=bool)
+        vessel[inside] = work
+        full = two_label_distance(vessel, spacing=tuple(sp))
+        del vessel
+        distance = full[inside]
+        radii = _ridge(distance, voxels, work) if half_voxel_correction else distance[tuple(voxels.T)]
         np.putmask(distance, work, 0.0)  # vessel voxels: distance 0 to the nearest vessel
         tissue_q = tissue_quantiles(full.reshape(-1), int(full.size - np.count_nonzero(work)))
-    del distance, full
+        del distance, full
     radii = radii.astype(np.float64)
 
     pos = voxels * sp + offset[axes] * spacing[axes]

@@ -34,7 +34,7 @@ import numba
 import numpy as np
 import pandas as pd
 
-from .centrelines import tissue_quantiles
+from ._distance import tissue_quantiles, two_label_distance
 
 __all__ = ["segment_table", "node_table", "summarize", "tissue_distance", "path_length"]
 
@@ -343,17 +343,14 @@ def tissue_distance(mask, offset, original_shape, spacing, *, planar=False):
     Used when the centreline step did not already compute it on the
     original grid (resampled stacks).
     """
-    import edt
-
-    tissue = np.ones(original_shape, dtype=bool)
-    sl = tuple(slice(o, o + n) for o, n in zip(offset, mask.shape))
-    np.logical_not(mask, out=tissue[sl])
+    vessel = np.zeros(tuple(int(n) for n in original_shape), dtype=bool)
+    vessel[tuple(slice(o, o + n) for o, n in zip(offset, mask.shape))] = mask
     if planar:
-        d = edt.edt(tissue[0], anisotropy=tuple(spacing[1:]), black_border=False, parallel=2)
-    else:
-        d = edt.edt(tissue, anisotropy=tuple(spacing), black_border=False, parallel=2)
-    n_tissue = int(np.count_nonzero(tissue))
-    del tissue
+        vessel, spacing = vessel[0], spacing[1:]
+    d = two_label_distance(vessel, spacing=tuple(float(s) for s in spacing))
+    np.putmask(d, vessel, 0.0)  # vessel voxels: distance 0 to the nearest vessel
+    n_tissue = int(vessel.size - np.count_nonzero(vessel))
+    del vessel
     return tissue_quantiles(d.reshape(-1), n_tissue)
 
 
