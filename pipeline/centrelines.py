@@ -35,7 +35,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import edt
 import numba
 from numba import prange
 import numpy as np
@@ -43,7 +42,6 @@ from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
 
 from ._distance import tissue_quantiles, two_label_distance
-from ._parallel import threads as _threads
 from .thinning import thin
 
 __all__ = ["Centrelines", "extract_centrelines", "resample_isotropic", "tissue_quantiles"]
@@ -203,12 +201,14 @@ def _in_plane_distance(mask, spacing, axis):
     """
     others = [a for a in range(mask.ndim) if a != axis]
     dist = np.empty(mask.shape, dtype=np.float32)
-    plane_sp = tuple(spacing[others])
+    plane_sp = tuple(float(s) for s in spacing[others])
     for k in range(mask.shape[axis]):
         idx = [slice(None)] * mask.ndim
         idx[axis] = k
-        dist[tuple(idx)] = edt.edt(np.ascontiguousarray(mask[tuple(idx)]), anisotropy=plane_sp,
-                                   black_border=False, parallel=_threads())
+        plane = np.ascontiguousarray(mask[tuple(idx)])
+        d = two_label_distance(plane, spacing=plane_sp)
+        np.putmask(d, ~plane, 0.0)  # tissue: no radius
+        dist[tuple(idx)] = d
     return dist
 
 

@@ -6,18 +6,28 @@ kept, with the crop offset into the original grid and counts of what changed.
 
 Pieces are 26-connected (the foreground connectivity used throughout); the
 background is 6-connected, the complementary choice, so a cavity is a
-6-connected background region that touches no face of the volume.
+6-connected background region that touches no face of the volume. Planar
+masks use the 2-D pair, 8-connected vessel and 4-connected background.
+
+Both are found on runs, not voxels: each row (fixed z and y) of the mask is
+listed as its runs of vessel voxels in one parallel scan, and runs are joined
+with a union-find where they touch runs of the rows before them (26-adjacent:
+overlapping once widened by one voxel; 6-adjacent: overlapping). A vessel
+volume has a few runs per row, so this labels a 512^3 stack several times
+faster than a labelled voxel volume would, and with no label volume at all:
+the pieces' sizes are sums of run lengths, the cavities the background runs
+(the gaps between kept runs) whose component reaches no face.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-import cc3d
-import fill_voids
 import numba
+from numba import prange
 import numpy as np
 
+from ._parallel import threads as _threads
 from .errors import InputError
 
 __all__ = ["CleanedMask", "clean_mask"]
@@ -87,87 +97,290 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     ((5, 5, 5), 27, (0, 0, 0))
     """
     spacing = tuple(float(s) for s in spacing)
-    given = mask
+    mask = np.ascontiguousarray(mask, dtype=bool)
+    nz, ny, nx = mask.shape
     # For planar masks "volume" is area and the threshold the area threshold.
     voxel_volume = (1.0 if planar else spacing[0]) * spacing[1] * spacing[2]
     if planar:
         min_object_volume_um3 = min_object_area_um2
-    # cc3d labels ten times faster than scipy.ndimage.label on large stacks
-    # and picks the narrowest label dtype.
-    labels, n = cc3d.connected_components(mask, connectivity=26, return_N=True)
-    sizes = _label_sizes(labels.reshape(-1), n)
+    threads = _threads()
+    rows, x0, x1 = _runs(mask, threads)
+    piece = _join(rows, x0, x1, ny, diagonal=True)
+    n = int(piece.max()) + 1 if len(piece) else 0
+    sizes = _piece_sizes(piece, x0, x1, n)
     keep = sizes * voxel_volume >= min_object_volume_um3
-    keep[0] = False
-    removed = int(n - keep[1:].sum())
-    removed_volume = float(sizes[1:][~keep[1:]].sum() * voxel_volume)
+    removed = int(n - keep.sum())
+    removed_volume = float(sizes[~keep].sum() * voxel_volume)
     unit = "µm²" if planar else "µm³"
     if not keep.any():
         raise InputError(
             f"cleaning.{'min_object_area_um2' if planar else 'min_object_volume_um3'}: every vessel piece is "
-            f"smaller than {min_object_volume_um3:g} {unit} (largest {sizes[1:].max() * voxel_volume:.3g} {unit}); "
+            f"smaller than {min_object_volume_um3:g} {unit} (largest {sizes.max(initial=0) * voxel_volume:.3g} {unit}); "
             "expected at least one piece to keep: lower the threshold"
         )
-    if removed:
-        mask = keep[labels]
-    del labels
     # Tight bounding box of what is kept, plus one voxel of background (where
     # the volume allows), so that later steps treat the crop's faces
     # correctly: a face with a background margin is tissue, a face on the
-    # volume's edge is a cut.
-    box = []
-    for axis in range(3):
-        nz = np.flatnonzero(mask.any(axis=tuple(a for a in range(3) if a != axis)))
-        box.append(slice(max(int(nz[0]) - 1, 0), min(int(nz[-1]) + 2, mask.shape[axis])))
-    cropped = np.ascontiguousarray(mask[tuple(box)])
+    # volume's edge is a cut. The kept runs move to the crop's frame in place.
+    k, lo, hi = _keep_runs(rows, x0, x1, piece, keep, ny)
+    del piece
+    box = tuple(slice(max(int(a) - 1, 0), min(int(b) + 1, n_)) for a, b, n_ in zip(lo, hi, mask.shape))
+    shape = tuple(b.stop - b.start for b in box)
+    rows, x0, x1 = rows[:k], x0[:k], x1[:k]
+    _to_crop(rows, x0, x1, ny, shape[1], box[0].start, box[1].start, box[2].start)
+    cropped = np.empty(shape, dtype=bool)
+    _paint(cropped.reshape(-1, shape[2]), rows, x0, x1, True, threads)
     filled = 0
     if fill_cavities:
-        if np.may_share_memory(cropped, given):
-            cropped = cropped.copy()  # filled in place: never write into the caller's array
-        cropped, filled = _fill_cavities(cropped, planar=planar)
+        filled = _fill_cavities(cropped, rows, x0, x1, planar=planar, threads=threads)
     stats = {
-        "kept_pieces": int(keep[1:].sum()),
+        "kept_pieces": int(keep.sum()),
         "removed_pieces": removed,
         "removed_volume_um3": removed_volume,
         "filled_cavity_voxels": int(filled),
-        "vessel_voxels": int(np.count_nonzero(cropped)),
+        "vessel_voxels": int(sizes[keep].sum()) + int(filled),
     }
     return CleanedMask(
         mask=cropped,
         offset=tuple(int(b.start) for b in box),
-        original_shape=tuple(int(s) for s in mask.shape),
+        original_shape=(nz, ny, nx),
         spacing=spacing,
         stats=stats,
     )
 
 
+@numba.njit(cache=True, parallel=True)
+def _runs(mask, threads):
+    """Runs of True voxels in each row: sorted row index ``z * Y + y``, start, stop."""
+    nz, ny, nx = mask.shape
+    flat = mask.reshape(nz * ny, nx)
+    nrows = nz * ny
+    nchunks = min(nrows, 4 * threads)
+    counts = np.zeros(nrows, dtype=np.int64)
+    for c in prange(nchunks):
+        for r in range(c * nrows // nchunks, (c + 1) * nrows // nchunks):
+            row = flat[r]
+            k = 0
+            prev = False
+            for x in range(nx):
+                v = row[x]
+                if v and not prev:
+                    k += 1
+                prev = v
+            counts[r] = k
+    start = np.zeros(nrows + 1, dtype=np.int64)
+    start[1:] = np.cumsum(counts)
+    total = start[nrows]
+    rows = np.empty(total, dtype=np.int64)
+    # Row lengths fit in 32 bits; halving the run arrays halves their page faults.
+    x0 = np.empty(total, dtype=np.int32)
+    x1 = np.empty(total, dtype=np.int32)
+    for c in prange(nchunks):
+        for r in range(c * nrows // nchunks, (c + 1) * nrows // nchunks):
+            if counts[r] == 0:
+                continue
+            row = flat[r]
+            k = start[r]
+            prev = False
+            for x in range(nx):
+                v = row[x]
+                if v and not prev:
+                    rows[k] = r
+                    x0[k] = x
+                elif prev and not v:
+                    x1[k] = x
+                    k += 1
+                prev = v
+            if prev:
+                x1[k] = nx
+    return rows, x0, x1
+
+
 @numba.njit(cache=True)
-def _label_sizes(flat, n):
-    # A histogram of the labels in one pass; np.bincount would first copy the
-    # label volume to int64 (8 bytes per voxel).
-    out = np.zeros(n + 1, dtype=np.int64)
-    for i in range(flat.size):
-        out[flat[i]] += 1
-    return out
+def _find(parent, i):
+    while parent[i] != i:
+        parent[i] = parent[parent[i]]  # path halving
+        i = parent[i]
+    return i
 
 
-def _fill_cavities(mask, *, planar):
-    """Fill background not connected to the crop box's faces; returns (mask, filled voxels).
+@numba.njit(cache=True)
+def _join_rows(parent, x0, x1, a, a_end, b, b_end, widen):
+    """Join the runs ``a:a_end`` of one row with the runs ``b:b_end`` of another."""
+    while a < a_end and b < b_end:
+        if x0[a] < x1[b] + widen and x0[b] < x1[a] + widen:
+            ra = _find(parent, a)
+            rb = _find(parent, b)
+            if ra != rb:
+                # The smaller index wins, so labels follow row-major order.
+                if ra < rb:
+                    parent[rb] = ra
+                else:
+                    parent[ra] = rb
+        if x1[a] < x1[b]:
+            a += 1
+        else:
+            b += 1
+
+
+@numba.njit(cache=True)
+def _join_runs(rows, x0, x1, ny, nrows, diagonal):
+    """Component of each run, numbered 0.. in order of first appearance."""
+    n = len(rows)
+    start = np.searchsorted(rows, np.arange(nrows + 1))
+    # 32-bit run indices: half the memory to touch (2^31 runs would need a
+    # volume of several terabytes).
+    parent = np.arange(n, dtype=np.int32)
+    # 26-adjacency (diagonal): the row before in the plane and the three rows
+    # around it in the plane before, runs widened by one voxel. 6-adjacency:
+    # the row before in the plane and the same row in the plane before.
+    widen = 1 if diagonal else 0
+    for r in range(nrows):
+        a, a_end = start[r], start[r + 1]
+        if a == a_end:
+            continue
+        z, y = r // ny, r % ny
+        if y > 0:
+            _join_rows(parent, x0, x1, a, a_end, start[r - 1], start[r], widen)
+        if z > 0:
+            q = r - ny
+            if diagonal:
+                lo_row = q - 1 if y > 0 else q
+                hi_row = q + 1 if y < ny - 1 else q
+                for p in range(lo_row, hi_row + 1):
+                    _join_rows(parent, x0, x1, a, a_end, start[p], start[p + 1], widen)
+            else:
+                _join_rows(parent, x0, x1, a, a_end, start[q], start[q + 1], widen)
+    label = np.empty(n, dtype=np.int32)
+    k = 0
+    for i in range(n):
+        root = _find(parent, i)
+        if root == i:
+            label[i] = k
+            k += 1
+        else:
+            label[i] = label[root]  # the root has the smaller index: labelled already
+    return label
+
+
+def _join(rows, x0, x1, ny, *, diagonal, nrows=None):
+    if nrows is None:
+        nrows = int(rows[-1]) + 1 if len(rows) else 0
+    return _join_runs(rows, x0, x1, ny, nrows, diagonal)
+
+
+@numba.njit(cache=True)
+def _piece_sizes(piece, x0, x1, n):
+    sizes = np.zeros(n, dtype=np.int64)
+    for i in range(len(piece)):
+        sizes[piece[i]] += x1[i] - x0[i]
+    return sizes
+
+
+@numba.njit(cache=True)
+def _keep_runs(rows, x0, x1, piece, keep, ny):
+    """Move the runs of kept pieces to the front, in order; count and bounding box."""
+    k = 0
+    lo = np.full(3, np.iinfo(np.int64).max)
+    hi = np.zeros(3, dtype=np.int64)
+    for i in range(len(rows)):
+        if not keep[piece[i]]:
+            continue
+        r = rows[i]
+        rows[k], x0[k], x1[k] = r, x0[i], x1[i]
+        k += 1
+        z, y = r // ny, r % ny
+        lo[0], hi[0] = min(lo[0], z), max(hi[0], z + 1)
+        lo[1], hi[1] = min(lo[1], y), max(hi[1], y + 1)
+        lo[2], hi[2] = min(lo[2], x0[i]), max(hi[2], x1[i])
+    return k, lo, hi
+
+
+@numba.njit(cache=True)
+def _to_crop(rows, x0, x1, ny, crop_ny, z0, y0, xs):
+    # Row-major order is kept, so the rows stay sorted.
+    for i in range(len(rows)):
+        z, y = rows[i] // ny, rows[i] % ny
+        rows[i] = (z - z0) * crop_ny + (y - y0)
+        x0[i] -= xs
+        x1[i] -= xs
+
+
+@numba.njit(cache=True, parallel=True)
+def _paint(flat, rows, x0, x1, clear, threads):
+    """Set the runs in the row-major ``flat`` (rows, X); with ``clear`` zero every row first.
+
+    Rows are split over threads, so the first touch of a new array's pages
+    is shared too.
+    """
+    nrows = flat.shape[0]
+    start = np.searchsorted(rows, np.arange(nrows + 1))
+    nchunks = min(nrows, 4 * threads)
+    for c in prange(nchunks):
+        for r in range(c * nrows // nchunks, (c + 1) * nrows // nchunks):
+            if clear:
+                flat[r, :] = False
+            for i in range(start[r], start[r + 1]):
+                flat[r, x0[i]:x1[i]] = True
+
+
+@numba.njit(cache=True)
+def _gaps(rows, x0, x1, nrows, nx):
+    """Runs of background of each row, given the sorted vessel runs."""
+    n = len(rows)
+    total = n + nrows
+    brow = np.empty(total, dtype=np.int64)
+    b0 = np.empty(total, dtype=x0.dtype)
+    b1 = np.empty(total, dtype=x1.dtype)
+    k = 0
+    i = 0
+    for r in range(nrows):
+        x = 0
+        while i < n and rows[i] == r:
+            if x0[i] > x:
+                brow[k], b0[k], b1[k] = r, x, x0[i]
+                k += 1
+            x = x1[i]
+            i += 1
+        if x < nx:
+            brow[k], b0[k], b1[k] = r, x, nx
+            k += 1
+    return brow[:k], b0[:k], b1[:k]
+
+
+@numba.njit(cache=True)
+def _enclosed(brow, b0, b1, label, nz, ny, nx, planar):
+    """Compact the background runs whose component touches no face to the front; their count."""
+    n = len(brow)
+    reach = np.zeros(label.max() + 1 if n else 0, dtype=np.bool_)
+    for i in range(n):
+        z, y = brow[i] // ny, brow[i] % ny
+        face = b0[i] == 0 or b1[i] == nx or y == 0 or y == ny - 1
+        if not planar:
+            face = face or z == 0 or z == nz - 1
+        if face:
+            reach[label[i]] = True
+    k = 0
+    for i in range(n):
+        if not reach[label[i]]:
+            brow[k], b0[k], b1[k] = brow[i], b0[i], b1[i]
+            k += 1
+    return k
+
+
+def _fill_cavities(cropped, rows, x0, x1, *, planar, threads):
+    """Fill background not connected to the crop box's faces, in place; returns the voxels filled.
 
     Background beyond the box is all background, so background touching a
-    face connects to the outside and is no cavity. fill_voids flood-fills the
-    outside from the faces through face neighbours (6-connected in 3-D,
-    4-connected in 2-D), the complement of the vessel's 26-connectivity, in
-    place and with no label volume: on the 512^3 benchmark bed it took about
-    a third of the time of labelling every background piece, and 850 MiB
-    less memory.
+    face connects to the outside and is no cavity. In a planar mask the
+    plane itself is not a face.
     """
-    plane = mask[0] if planar else mask
-    if not plane.flags.writeable or not plane.flags.c_contiguous:
-        plane = np.ascontiguousarray(plane).copy()
-    # fill_voids works on Fortran-ordered arrays (it would copy a C-ordered
-    # one and return Fortran order): hand it the transposed view, which is
-    # Fortran-ordered, so it fills our C-ordered buffer in place. Cavities do
-    # not depend on the axis order.
-    filled_t, filled = fill_voids.fill(plane.T, in_place=True, return_fill_count=True)
-    filled_plane = filled_t.T
-    return (filled_plane[None] if planar else filled_plane), int(filled)
+    nz, ny, nx = cropped.shape
+    brow, b0, b1 = _gaps(rows, x0, x1, nz * ny, nx)
+    label = _join(brow, b0, b1, ny, diagonal=False, nrows=nz * ny)
+    k = _enclosed(brow, b0, b1, label, nz, ny, nx, planar)
+    if k == 0:
+        return 0
+    brow, b0, b1 = brow[:k], b0[:k], b1[:k]
+    _paint(cropped.reshape(-1, nx), brow, b0, b1, False, threads)
+    return int((b1 - b0).sum())
