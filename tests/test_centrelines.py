@@ -114,3 +114,16 @@ def test_pad_width_from_the_faces_is_enough(direction):
         inner[w] = skel[tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))]
     assert inner[width].any()
     assert np.array_equal(inner[width], inner[width + 20])
+
+
+def test_ridge_reads_vessel_voxels_only():
+    # A one-voxel-thick line: every vessel voxel is one voxel from background,
+    # so the ridge (largest distance among the vessel neighbours) is exactly
+    # one spacing. The tissue voxels beside the line hold their distance to the
+    # vessel in the shared two-label map (sqrt(2) on the diagonals) and must
+    # not be read as radii.
+    m = np.zeros((9, 9, 40), bool)
+    m[4, 4, :] = True
+    cl = extract_centrelines(m, spacing=(1, 1, 1), offset=(0, 0, 0), original_shape=(11, 11, 40))
+    assert len(cl.radii_um) >= 38
+    np.testing.assert_array_equal(cl.radii_um, 1.0)
