@@ -304,12 +304,7 @@ def _planes(mask, out, dy2, dx2, nchunks, root):
             for y in range(ny):
                 _row(mask[z, y], out[z, y], dx2)
             for x0 in range(0, nx, span):
-                for y in range(ny):
-                    _gather(mask, out, z, y, x0, c, _REACH + y)
-                for t in range(min(_GROUP, (nx - x0 + _TILE - 1) // _TILE)):
-                    _tile(c[t], ny, dy2, res[t], scratch)
-                for y in range(ny):
-                    _scatter(res, out, z, y, x0, y, root)
+                _columns(mask, out, z, x0, False, dy2, root, c, res, scratch)
 
 
 @numba.njit(cache=True, parallel=True)
@@ -323,13 +318,24 @@ def _depth(mask, out, dz2, nchunks):
         c, res, scratch = _buffers(nz)
         for item in range(ch * items // nchunks, (ch + 1) * items // nchunks):
             y = item // ngroups
-            x0 = (item - y * ngroups) * span
-            for z in range(nz):
-                _gather(mask, out, z, y, x0, c, _REACH + z)
-            for t in range(min(_GROUP, (nx - x0 + _TILE - 1) // _TILE)):
-                _tile(c[t], nz, dz2, res[t], scratch)
-            for z in range(nz):
-                _scatter(res, out, z, y, x0, z, True)
+            _columns(mask, out, y, (item - y * ngroups) * span, True, dz2, True, c, res, scratch)
+
+
+@numba.njit(cache=True)
+def _columns(mask, out, fixed, x0, along_z, d2, root, c, res, scratch):
+    """One strided pass over a group of adjacent x columns starting at ``x0``.
+
+    Along y in plane ``z = fixed``, or along z in row ``y = fixed``.
+    """
+    n = out.shape[0] if along_z else out.shape[1]
+    for i in range(n):
+        z, y = (i, fixed) if along_z else (fixed, i)
+        _gather(mask, out, z, y, x0, c, _REACH + i)
+    for t in range(min(_GROUP, (out.shape[2] - x0 + _TILE - 1) // _TILE)):
+        _tile(c[t], n, d2, res[t], scratch)
+    for i in range(n):
+        z, y = (i, fixed) if along_z else (fixed, i)
+        _scatter(res, out, z, y, x0, i, root)
 
 
 @numba.njit(cache=True)
