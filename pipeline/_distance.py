@@ -37,7 +37,7 @@ import numpy as np
 
 from ._parallel import threads as _threads
 
-__all__ = ["two_label_distance", "tissue_quantiles"]
+__all__ = ["two_label_distance", "volume_distance", "tissue_distance_quantiles", "tissue_quantiles"]
 
 # Columns gathered per tile in the strided passes: a tile row of 32 float32
 # spans two cache lines, so each strided load brings in whole lines that are
@@ -112,6 +112,43 @@ def two_label_distance(mask, *, spacing, threads=None):
     finally:
         numba.set_num_threads(previous)
     return out.reshape(shape)
+
+
+def volume_distance(crop, *, offset, shape, spacing):
+    """Two-label distance map of the whole volume around a cropped vessel mask.
+
+    Parameters
+    ----------
+    crop : (z, y, x) or (y, x) bool ndarray
+        Vessel mask of the crop; everything outside it is tissue.
+    offset : sequence of int
+        Index of ``crop``'s first voxel in the volume.
+    shape : sequence of int
+        Shape of the volume.
+    spacing : sequence of float
+
+    Returns
+    -------
+    full : float32 ndarray of ``shape``
+        See :func:`two_label_distance`.
+    inside : tuple of slice
+        Where the crop lies in ``full``.
+    """
+    inside = tuple(slice(int(o), int(o) + n) for o, n in zip(offset, crop.shape))
+    vessel = np.zeros(tuple(int(n) for n in shape), dtype=bool)
+    vessel[inside] = crop
+    full = two_label_distance(vessel, spacing=tuple(float(s) for s in spacing))
+    return full, inside
+
+
+def tissue_distance_quantiles(full, crop, inside):
+    """Median and 95th percentile of the tissue voxels' distance to the nearest vessel.
+
+    ``full`` and ``inside`` come from :func:`volume_distance` with ``crop``;
+    the vessel voxels of ``full`` are set to 0 in place.
+    """
+    np.putmask(full[inside], crop, 0.0)
+    return tissue_quantiles(full.reshape(-1), int(full.size - np.count_nonzero(crop)))
 
 
 @numba.njit(cache=True)

@@ -41,7 +41,7 @@ import numpy as np
 from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
 
-from ._distance import tissue_quantiles, two_label_distance
+from ._distance import tissue_distance_quantiles, two_label_distance, volume_distance
 from .thinning import thin
 
 __all__ = ["Centrelines", "extract_centrelines", "resample_isotropic"]
@@ -302,16 +302,12 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         # One two-label transform of the whole volume serves two steps: vessel
         # voxels get their distance to tissue (the radii), tissue voxels their
         # distance to the nearest vessel (the summary), at the cost of one.
-        inside = tuple(slice(o, o + n) for o, n in zip(offset[axes], work.shape))
-        vessel = np.zeros(tuple(int(n) for n in original_shape[axes]), dtype=bool)
-        vessel[inside] = work
-        full = two_label_distance(vessel, spacing=tuple(sp))
-        del vessel
+        full, inside = volume_distance(work, offset=offset[axes], shape=original_shape[axes], spacing=sp)
         distance = full[inside]
         radii = _ridge(distance, voxels, work) if half_voxel_correction else distance[tuple(voxels.T)]
-        np.putmask(distance, work, 0.0)  # vessel voxels: distance 0 to the nearest vessel
-        tissue_q = tissue_quantiles(full.reshape(-1), int(full.size - np.count_nonzero(work)))
-        del distance, full
+        del distance
+        tissue_q = tissue_distance_quantiles(full, work, inside)
+        del full
     radii = radii.astype(np.float64)
 
     pos = voxels * sp + offset[axes] * spacing[axes]

@@ -34,7 +34,7 @@ import numba
 import numpy as np
 import pandas as pd
 
-from ._distance import tissue_quantiles, two_label_distance
+from ._distance import tissue_distance_quantiles, volume_distance
 
 __all__ = ["segment_table", "node_table", "summarize", "tissue_distance", "path_length"]
 
@@ -343,15 +343,10 @@ def tissue_distance(mask, offset, original_shape, spacing, *, planar=False):
     Used when the centreline step did not already compute it on the
     original grid (resampled stacks).
     """
-    vessel = np.zeros(tuple(int(n) for n in original_shape), dtype=bool)
-    vessel[tuple(slice(o, o + n) for o, n in zip(offset, mask.shape))] = mask
     if planar:
-        vessel, spacing = vessel[0], spacing[1:]
-    d = two_label_distance(vessel, spacing=tuple(float(s) for s in spacing))
-    np.putmask(d, vessel, 0.0)  # vessel voxels: distance 0 to the nearest vessel
-    n_tissue = int(vessel.size - np.count_nonzero(vessel))
-    del vessel
-    return tissue_quantiles(d.reshape(-1), n_tissue)
+        mask, offset, original_shape, spacing = mask[0], offset[1:], original_shape[1:], spacing[1:]
+    full, inside = volume_distance(mask, offset=offset, shape=original_shape, spacing=spacing)
+    return tissue_distance_quantiles(full, mask, inside)
 
 
 def summarize(segments, nodes, *, cleaned, spacing, planar, original_shape, tissue_dist):

@@ -64,3 +64,15 @@ def test_soam_of_a_straight_line_is_zero():
     pts = np.column_stack([np.linspace(0, 50, 101), np.zeros(101), np.linspace(0, 20, 101)])
     arc = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))]
     assert _soam_resampled(pts, arc, 2.0) == pytest.approx(0.0, abs=1e-6)
+
+
+def test_planar_tissue_distance_matches_scipy():
+    # Planar masks are held as (1, Y, X): the distance is in-plane only.
+    rng = np.random.default_rng(1)
+    crop = rng.random((1, 20, 30)) < 0.05
+    full = np.zeros((30, 40), bool)
+    full[4:24, 6:36] = crop[0]
+    # Reference: SciPy's exact EDT in the plane, numpy's default quantiles.
+    ref = ndi.distance_transform_edt(~full, sampling=(0.5, 2.0))[~full]
+    med, p95 = tissue_distance(crop, (0, 4, 6), (1, 30, 40), (3.0, 0.5, 2.0), planar=True)
+    assert (med, p95) == pytest.approx(tuple(np.quantile(ref, [0.5, 0.95])), rel=1e-5)  # float32 map
