@@ -59,8 +59,12 @@ def _parser():
     r.add_argument("--overwrite", action="store_true", help="replace an existing report.html and figures/")
     r.add_argument("--quiet", action="store_true", help="no progress lines")
 
-    s = sub.add_parser("synth", help="write a synthetic volume and its ground truth")
-    s.add_argument("kind", help="what to build (see --help of the synthetic module)")
+    from .synthetic import SYNTH_KINDS
+
+    kinds = "\n".join(f"  {name:8s} {k.summary}" for name, k in SYNTH_KINDS.items())
+    s = sub.add_parser("synth", help="write a synthetic volume and its ground truth",
+                       formatter_class=argparse.RawDescriptionHelpFormatter, epilog="kinds:\n" + kinds)
+    s.add_argument("kind", help="what to build: one of the kinds below")
     s.add_argument("-o", "--output", required=True, help="output TIFF path")
     s.add_argument("--spacing", nargs=3, type=float, metavar=("Z", "Y", "X"), default=(1.0, 1.0, 1.0))
     s.add_argument("--seed", type=int, default=0)
