@@ -289,12 +289,25 @@ def _is_complete(folder, *, sha256, config, spacing):
 
     if not all((folder / f).is_file() for f in RESULT_FILES):
         return False
-    try:
-        run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+    run = _read_run(folder)
+    if run is None:
         return False
     return (run.get("input", {}).get("sha256") == sha256 and run.get("config") == _canonical(config)
             and run.get("batch", {}).get("spacing_override_um") == (list(spacing) if spacing else None))
+
+
+def _read_run(folder):
+    """The result's run.json as a dict, or None when missing or unreadable."""
+    try:
+        run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return run if isinstance(run, dict) else None
+
+
+def _batch_run(folder):
+    """The batch run that wrote the result in ``folder`` (None if unknown)."""
+    return ((_read_run(folder) or {}).get("batch") or {}).get("run")
 
 
 def _worker_share():
@@ -312,12 +325,19 @@ def _worker_share():
     return max(1, available_cores() // slots), (int(limit) if limit else None)
 
 
-def process_sample(sample, sample_dir, config, *, force=False, threads=None, memory_limit_bytes=None):
+def process_sample(sample, sample_dir, config, *, force=False, threads=None, memory_limit_bytes=None,
+                   batch_run=None):
     """Analyse one sample into ``sample_dir`` unless a matching result is there.
 
     Never raises for a sample's own problems: returns a status record
     (``status`` is ``done``, ``skipped`` or ``failed``, with the ``step`` and
     ``error`` of a failure), so that one bad sample fails alone.
+
+    ``batch_run`` names the batch run, and is recorded in the result. A
+    matching result written by the same run counts as ``done``, not
+    ``skipped``: Dask runs a finished task again when the worker holding its
+    record dies before the record is collected, and that second call finds
+    the result the first one wrote.
     """
     from ._parallel import limit_threads
     from .analysis import analyze_file
@@ -333,7 +353,8 @@ def process_sample(sample, sample_dir, config, *, force=False, threads=None, mem
         cfg = _settings(sample, cfg)
         sha = sha256_file(sample.path)
         if not force and _is_complete(out, sha256=sha, config=cfg, spacing=sample.spacing):
-            rec.update(status="skipped", step="", seconds=round(time.perf_counter() - t0, 3))
+            this_run = batch_run is not None and _batch_run(out) == batch_run
+            rec.update(status="done" if this_run else "skipped", step="", seconds=round(time.perf_counter() - t0, 3))
             return rec
         share_threads, share_memory = _worker_share()
         # A previous review of the same input and settings is kept (the graph
@@ -347,7 +368,8 @@ def process_sample(sample, sample_dir, config, *, force=False, threads=None, mem
                          progress=lambda step, s: done_steps.append(step),
                          memory_limit_bytes=memory_limit_bytes or share_memory,
                          run_info={"batch": {"sample_id": sample.sample_id, "group": sample.group,
-                                             "spacing_override_um": list(sample.spacing) if sample.spacing else None}})
+                                             "spacing_override_um": list(sample.spacing) if sample.spacing else None,
+                                             "run": batch_run}})
         if review_bytes is not None:
             name = "review.csv" if same_inputs else "review-superseded.csv"
             (out / name).write_bytes(review_bytes)
@@ -583,7 +605,8 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     for name in STUDY_FILES:  # derived from the sample folders: stale ones must not outlive this run
         (out / name).unlink(missing_ok=True)
     started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
-    meta = {"vesselflow_version": _version(), "created": started, "state": "running",
+    run_id = f"{started}-{os.urandom(4).hex()}"
+    meta = {"vesselflow_version": _version(), "created": started, "run": run_id, "state": "running",
             "input": input_label, "config": cfg, "scheduler": scheduler or "local",
             "workers": None if scheduler else nworkers, "force": bool(force)}
     from .tables import write_atomic, write_json
@@ -612,7 +635,7 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
 
         def submit(s, attempt):
             fut = client.submit(process_sample, s, str(out / s.sample_id), cfg, force=force, threads=threads,
-                                pure=False,
+                                batch_run=run_id, pure=False,
                                 key=f"vesselflow-sample-{s.sample_id}-{attempt}-{os.urandom(4).hex()}")
             futures[fut] = (s, attempt)
             return fut

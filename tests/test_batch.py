@@ -371,6 +371,24 @@ def test_ctrl_c_leaves_no_half_written_sample_and_resumes(beds, tmp_path):
     assert meta["counts"]["skipped"] == len(finished) and meta["counts"]["done"] == 6 - len(finished)
 
 
+def test_a_result_of_the_same_run_counts_as_done(tmp_path):
+    # Dask runs a finished task again when the worker holding its record dies
+    # before the record is collected; the second call finds the result the
+    # first one wrote. It was analysed by this run: "done", not "skipped".
+    # A later run finds the same result and skips it.
+    path = tmp_path / "y.tif"
+    _ybranch(path, 4.0)
+    sample = batch.find_samples(tmp_path)[0]
+    out = tmp_path / "out" / sample.sample_id
+    first = batch.process_sample(sample, str(out), None, batch_run="run-a")
+    mtime = (out / "segments.csv").stat().st_mtime_ns
+    again = batch.process_sample(sample, str(out), None, batch_run="run-a")
+    later = batch.process_sample(sample, str(out), None, batch_run="run-b")
+    assert (first["status"], again["status"], later["status"]) == ("done", "done", "skipped")
+    assert (out / "segments.csv").stat().st_mtime_ns == mtime  # found complete, not redone
+    assert json.loads((out / "run.json").read_text())["batch"]["run"] == "run-a"
+
+
 def test_a_killed_worker_fails_its_sample_alone(beds, tmp_path):
     # A worker killed mid-sample (as the OS or Dask's nanny does when memory
     # runs out) fails that sample only; the restarted worker does the rest.
