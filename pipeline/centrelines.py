@@ -36,7 +36,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numba
-from numba import prange
 import numpy as np
 from scipy import ndimage as ndi
 from skimage.morphology import skeletonize

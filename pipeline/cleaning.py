@@ -105,7 +105,7 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
         min_object_volume_um3 = min_object_area_um2
     threads = _threads()
     rows, x0, x1 = _runs(mask, threads)
-    piece = _join(rows, x0, x1, ny, diagonal=True)
+    piece = _join_runs(rows, x0, x1, ny, nz * ny, True)
     n = int(piece.max()) + 1 if len(piece) else 0
     sizes = _piece_sizes(piece, x0, x1, n)
     keep = sizes * voxel_volume >= min_object_volume_um3
@@ -263,12 +263,6 @@ def _join_runs(rows, x0, x1, ny, nrows, diagonal):
     return label
 
 
-def _join(rows, x0, x1, ny, *, diagonal, nrows=None):
-    if nrows is None:
-        nrows = int(rows[-1]) + 1 if len(rows) else 0
-    return _join_runs(rows, x0, x1, ny, nrows, diagonal)
-
-
 @numba.njit(cache=True)
 def _piece_sizes(piece, x0, x1, n):
     sizes = np.zeros(n, dtype=np.int64)
@@ -377,7 +371,7 @@ def _fill_cavities(cropped, rows, x0, x1, *, planar, threads):
     """
     nz, ny, nx = cropped.shape
     brow, b0, b1 = _gaps(rows, x0, x1, nz * ny, nx)
-    label = _join(brow, b0, b1, ny, diagonal=False, nrows=nz * ny)
+    label = _join_runs(brow, b0, b1, ny, nz * ny, False)
     k = _enclosed(brow, b0, b1, label, nz, ny, nx, planar)
     if k == 0:
         return 0
