@@ -292,8 +292,13 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     Raises
     ------
     InputError
-        For unreadable or invalid input, or a non-empty ``outdir`` without
-        ``overwrite``; nothing is written then.
+        For unreadable or invalid input, a non-empty ``outdir`` without
+        ``overwrite``, an ``outdir`` that is not a vesselflow result or holds
+        files vesselflow did not write, or one that contains the input;
+        nothing is written then.
+    StorageError
+        When the result cannot be written (disk full, no permission);
+        nothing is left half-written.
     """
     import datetime as _dt
     import platform
@@ -302,7 +307,8 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     from . import __version__, reading, tables
 
     cfg = load_config(config)
-    tables.check_outdir(outdir, overwrite=overwrite)
+    tables.check_outdir(outdir, overwrite=overwrite, inputs=[path])
+    tables.check_writable(outdir)
     t0 = time.perf_counter()
     limit = memory_limit_bytes
     if limit is None and cfg["input"]["max_memory_gb"] is not None:
@@ -331,4 +337,4 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
         "python": platform.python_version(),
         **(run_info or {}),
     }
-    return tables.write_result(result, outdir, run_info=info, overwrite=overwrite), result
+    return tables.write_result(result, outdir, run_info=info, overwrite=overwrite, inputs=[path]), result

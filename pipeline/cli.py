@@ -230,13 +230,19 @@ def _cmd_demo(args):
     if not files:
         raise InputError(f"demo: expected .tif volumes in '{src}', found none")
     out = Path(args.output)
-    tables.check_outdir(out, overwrite=args.overwrite)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"output '{out}': expected a folder, got an existing file")
+    if out.is_dir() and any(out.iterdir()) and not args.overwrite:
+        raise InputError(f"output folder '{out}' is not empty; pass --overwrite to replace the demo results in it")
+    targets = [(f, out / f.name.split(".")[0]) for f in files]
+    for f, target in targets:  # every refusal before any work
+        tables.check_outdir(target, overwrite=args.overwrite, inputs=[f])
     cfg = _load_cfg(args)
     rep = _Reporter(args.quiet)
     out.mkdir(parents=True, exist_ok=True)
-    for f in files:
+    for f, target in targets:
         rep.info(f"analysing {f.name}")
-        res = run_analyze(f, out / f.name.split(".")[0], config=cfg, overwrite=True, reporter=rep, command=sys.argv)
+        res = run_analyze(f, target, config=cfg, overwrite=True, reporter=rep, command=sys.argv)
         if args.report:
             from .report import build_report
 
@@ -329,6 +335,14 @@ def main(argv=None):
         return 2
     except VesselflowError as exc:
         print(f"vesselflow: failed: {exc}", file=sys.stderr)
+        return 1
+    except OSError as exc:  # the environment (disk, permissions) rather than a bug: one line, no traceback
+        where = f" '{exc.filename}'" if exc.filename else ""
+        print(f"vesselflow: failed: cannot access{where}: {exc.strerror or exc}", file=sys.stderr)
+        return 1
+    except MemoryError:
+        print(f"vesselflow: failed: not enough memory for '{args.command}'; crop or downsample the input, or use "
+              "a machine with more memory", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         if args.command == "batch":

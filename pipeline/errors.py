@@ -1,11 +1,11 @@
 """Exception hierarchy shared by every step.
 
-In: nothing. Out: ``VesselflowError`` and its three subclasses. The CLI maps
+In: nothing. Out: ``VesselflowError`` and its four subclasses. The CLI maps
 ``InputError`` and ``ConfigError`` to exit code 2 with a one-line message,
-anything else to exit code 1.
+``StorageError`` and anything else to exit code 1 (also one line).
 """
 
-__all__ = ["VesselflowError", "InputError", "ConfigError", "SolverError"]
+__all__ = ["VesselflowError", "InputError", "ConfigError", "SolverError", "StorageError"]
 
 
 class VesselflowError(Exception):
@@ -25,3 +25,12 @@ class ConfigError(VesselflowError, ValueError):
 
 class SolverError(VesselflowError, RuntimeError):
     """A numerical solve did not converge or produced non-finite values."""
+
+
+class StorageError(VesselflowError, OSError):
+    """Writing or reading a file failed for a reason of the environment.
+
+    A full disk, a missing permission, a read-only file system: the message
+    names the path, the system's reason and what is needed. Whatever was
+    being written is removed again, so nothing is left half-written.
+    """

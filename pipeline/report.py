@@ -49,7 +49,6 @@ import math
 import os
 import re
 import shutil
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -62,7 +61,7 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
 from . import __version__
-from .errors import InputError
+from .errors import InputError, VesselflowError
 
 __all__ = ["build_report", "load_sample", "SampleData", "sample_figures", "study_figures", "figure_map_level",
            "figure_map_wss", "figure_distributions", "figure_radius_by_level", "figure_murray", "figure_exponents",
@@ -213,7 +212,13 @@ def _publish(out, page, figures):
     On any failure the earlier report, if there was one, is put back and
     nothing new is left behind.
     """
-    tmp = Path(tempfile.mkdtemp(prefix=".report.partial-", dir=out))
+    from .tables import clean_stale_partials, make_partial_dir, storage_error
+
+    try:
+        clean_stale_partials(out)
+        tmp = make_partial_dir(out, "report")
+    except OSError as exc:
+        raise storage_error(exc, out / REPORT_NAME) from None
     old, moved, placed = None, [], False
     try:
         fdir = tmp / FIGURE_DIR
@@ -222,7 +227,7 @@ def _publish(out, page, figures):
             (fdir / f"{r.name}.png").write_bytes(r.png)
             (fdir / f"{r.name}.svg").write_bytes(r.svg)
         (tmp / REPORT_NAME).write_text(page, encoding="utf-8")
-        old = Path(tempfile.mkdtemp(prefix=".report.old-", dir=out))
+        old = make_partial_dir(out, "report", "old")
         # The old page goes first so that no moment shows a complete-looking
         # report next to figures that are not its own.
         for name in (REPORT_NAME, FIGURE_DIR):
@@ -232,11 +237,13 @@ def _publish(out, page, figures):
         os.rename(fdir, out / FIGURE_DIR)
         placed = True
         os.replace(tmp / REPORT_NAME, out / REPORT_NAME)
-    except BaseException:
+    except BaseException as exc:
         if placed:
             shutil.rmtree(out / FIGURE_DIR, ignore_errors=True)
         for name in moved:
             os.rename(old / name, out / name)
+        if isinstance(exc, OSError) and not isinstance(exc, VesselflowError):
+            raise storage_error(exc, out / REPORT_NAME) from None
         raise
     finally:
         shutil.rmtree(tmp, ignore_errors=True)

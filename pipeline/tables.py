@@ -15,18 +15,33 @@ folder that looks complete):
   centreline, ``offsets`` (S + 1,) int64 so segment ``i`` is
   ``points_um[offsets[i]:offsets[i + 1]]``;
 - ``run.json``: version, input and its checksum, spacing and its source,
-  effective config, time per step, counts and warnings.
+  effective config, time per step, counts and warnings, and ``files``: the
+  size and SHA-256 of every other file of the result. ``run.json`` is the
+  mark of a vesselflow result: ``--overwrite`` replaces only a folder that
+  carries it and holds nothing but files vesselflow writes.
 
-:func:`load_result` reads a folder back.
+:func:`load_result` reads a folder back and checks every file against
+``run.json``; :func:`verify_result` does the check alone.
+
+Temporary folders and files are named ``.NAME.partial-HOST-PID-XXXX`` so
+that a later run into the same parent can tell the leftovers of a killed
+process (:func:`clean_stale_partials`) from the work of one still running.
+Everything written honours the process umask, so a lab's shared folder stays
+readable to colleagues.
 """
 
 from __future__ import annotations
 
+import errno
+import hashlib
 import json
 import math
 import os
+import re
 import shutil
+import socket
 import tempfile
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -34,13 +49,20 @@ import networkx as nx
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from .errors import InputError, StorageError
 
 __all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "write_atomic",
-           "RESULT_FILES"]
+           "RESULT_FILES", "OWNED_NAMES", "verify_result", "is_result_folder", "clean_stale_partials",
+           "make_partial_dir", "storage_error", "file_digest", "check_writable"]
 
 RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
                 "centrelines.npz", "run.json")
+#: Every name vesselflow itself may write into a result folder (the result,
+#: the report, the review and what is derived from it). ``--overwrite``
+#: replaces a folder only when it holds nothing else.
+OWNED_NAMES = RESULT_FILES + ("report.html", "figures", "review.csv", "review-superseded.csv",
+                              "summary_reviewed.json")
+_PARTIAL_TAGS = (".partial-", ".old-")
 
 
 def _jsonable(obj):
@@ -84,31 +106,215 @@ def write_atomic(path, write):
     Path
     """
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}{_partial_tag('partial')}", dir=path.parent)
+    except OSError as exc:
+        raise storage_error(exc, path, "write") from None
     os.close(fd)
     tmp = Path(tmp)
     try:
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600 whatever the umask
         write(tmp)
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())  # the data is on disk before the name points at it
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         tmp.unlink(missing_ok=True)
+        if isinstance(exc, OSError) and not isinstance(exc, StorageError):
+            raise storage_error(exc, path, "write") from None
         raise
     return path
+
+
+# --------------------------------------------------------------------------- #
+# Temporary names, the umask, environment failures
+# --------------------------------------------------------------------------- #
+
+_UMASK_LOCK = threading.Lock()
+
+
+def _umask():
+    """The process umask, read without changing it where the system allows."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    with _UMASK_LOCK:  # os.umask can only be read by setting it
+        old = os.umask(0o022)
+        os.umask(old)
+    return old
+
+
+def _host():
+    return re.sub(r"[^A-Za-z0-9]", "", socket.gethostname())[:32] or "host"
+
+
+def _partial_tag(kind):
+    """``.partial-HOST-PID-`` (or ``.old-...``): who made a temporary name."""
+    return f".{kind}-{_host()}-{os.getpid()}-"
+
+
+_TAG_RE = re.compile(r"^\..+\.(partial|old)-([A-Za-z0-9]+)-(\d+)-[^/]*$")
+
+
+def make_partial_dir(parent, name, kind="partial"):
+    """A new temporary folder ``.NAME.partial-HOST-PID-XXXX`` in ``parent``.
+
+    Its mode honours the umask (``tempfile.mkdtemp`` makes 0700 whatever the
+    umask), so the result folder it becomes is as readable as any other.
+    """
+    path = Path(tempfile.mkdtemp(prefix=f".{name}{_partial_tag(kind)}", dir=parent))
+    os.chmod(path, 0o777 & ~_umask())
+    return path
+
+
+def _pid_alive(pid):
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # alive, someone else's
+        return True
+    except OSError:
+        return True
+    return True
+
+
+def clean_stale_partials(parent):
+    """Remove temporary folders and files that killed vesselflow runs left in ``parent``.
+
+    Only names vesselflow gives its temporary files (``.NAME.partial-HOST-PID-XXXX``,
+    ``.NAME.old-HOST-PID-XXXX``) are touched, and only those made on this host
+    by a process that no longer exists, so a run still going in the same
+    folder (another analyze, another batch) keeps its work.
+
+    Returns
+    -------
+    list of Path
+        What was removed.
+    """
+    removed = []
+    parent = Path(parent)
+    try:
+        entries = list(parent.iterdir())
+    except OSError:
+        return removed
+    host = _host()
+    for p in entries:
+        m = _TAG_RE.match(p.name)
+        if not m or m.group(2) != host or _pid_alive(int(m.group(3))):
+            continue
+        try:
+            if p.is_dir() and not p.is_symlink():
+                shutil.rmtree(p)
+            else:
+                p.unlink()
+            removed.append(p)
+        except OSError:
+            pass  # not ours to fight over; the next run tries again
+    return removed
+
+
+_STORAGE_NEEDS = {
+    errno.ENOSPC: "free some space on that disk or write elsewhere",
+    errno.EDQUOT: "free some of your quota or write elsewhere",
+    errno.EACCES: "write permission on that folder",
+    errno.EPERM: "write permission on that folder",
+    errno.EROFS: "a writable file system",
+}
+
+
+def storage_error(exc, path, what="write"):
+    """A :class:`StorageError` naming ``path``, the system's reason and what is needed."""
+    reason = exc.strerror or type(exc).__name__
+    need = _STORAGE_NEEDS.get(exc.errno)
+    tail = f"; needs {need}" if need else ""
+    return StorageError(f"cannot {what} '{path}': {reason}{tail}; nothing was left half-written")
 
 
 def write_json(path, data):
     Path(path).write_text(json.dumps(_jsonable(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
 
 
-def check_outdir(outdir, *, overwrite):
-    """Refuse a non-empty output folder unless ``overwrite``; raises InputError."""
+def check_writable(path):
+    """Raise :class:`StorageError` early when ``path`` (or the folder it would be made in) cannot be written.
+
+    Catches a read-only file system or a missing permission before any work;
+    a full disk can only be found by writing, and :func:`write_result` then
+    cleans up after itself.
+    """
+    p = Path(path).resolve()
+    while not p.exists():
+        p = p.parent
+    if not p.is_dir():
+        raise InputError(f"output '{path}': '{p}' is a file, expected a folder")
+    try:
+        readonly = bool(os.statvfs(p).f_flag & os.ST_RDONLY)
+    except (OSError, AttributeError):
+        readonly = False
+    if readonly:
+        raise storage_error(OSError(errno.EROFS, os.strerror(errno.EROFS)), path)
+    if not os.access(p, os.W_OK | os.X_OK):
+        raise storage_error(OSError(errno.EACCES, os.strerror(errno.EACCES)), path)
+
+
+def is_result_folder(folder):
+    """Whether ``folder`` carries vesselflow's mark: a ``run.json`` that vesselflow wrote."""
+    run = _read_json(Path(folder) / "run.json")
+    return isinstance(run, dict) and "vesselflow_version" in run
+
+
+def _foreign_entries(folder):
+    """Entries of ``folder`` that vesselflow did not write (names outside OWNED_NAMES)."""
+    return sorted(p.name for p in Path(folder).iterdir()
+                  if p.name not in OWNED_NAMES and not _TAG_RE.match(p.name))
+
+
+def check_outdir(outdir, *, overwrite, inputs=()):
+    """Check that a result may be written to ``outdir``; raises InputError otherwise.
+
+    Parameters
+    ----------
+    outdir : str or Path
+    overwrite : bool
+        Allow replacing an existing result. Only a folder that is a
+        vesselflow result (it has vesselflow's ``run.json``) and holds
+        nothing but files vesselflow writes is ever replaced; anything else
+        is refused, so ``--overwrite`` can never delete a user's files.
+    inputs : sequence of str or Path
+        Files the run reads: an output folder that is, or contains, one of
+        them is refused whatever ``overwrite`` says.
+    """
     out = Path(outdir)
     if out.exists() and not out.is_dir():
         raise InputError(f"output '{out}': expected a folder, got an existing file")
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
+    target = out.resolve()
+    for src in inputs:
+        src = Path(src).resolve()
+        if target == src or target in src.parents:
+            raise InputError(f"output folder '{out}' contains the input '{src}'; expected a separate folder "
+                             "for the result (for example a new sub-folder)")
+    if not out.is_dir():
+        return
+    try:
+        empty = not any(p for p in out.iterdir() if not _TAG_RE.match(p.name))
+    except OSError as exc:
+        raise storage_error(exc, out, "read") from None
+    if empty:
+        return
+    if not overwrite:
         raise InputError(f"output folder '{out}' is not empty; pass --overwrite to replace it")
+    if not is_result_folder(out):
+        raise InputError(f"--overwrite: '{out}' is not a vesselflow result folder (no run.json of vesselflow's); "
+                         "it is never replaced: choose a new or empty folder")
+    foreign = _foreign_entries(out)
+    if foreign:
+        shown = ", ".join(foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
+        raise InputError(f"--overwrite: result folder '{out}' also holds files vesselflow did not write ({shown}); "
+                         "move them out first or choose another folder")
 
 
 def _graphml(G):
@@ -135,8 +341,34 @@ def _scalar(v):
     return str(v)
 
 
-def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None):
+def file_digest(path):
+    """``{"bytes": size, "sha256": hex}`` of a file, read in 1 MiB blocks."""
+    h = hashlib.sha256()
+    size = 0
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+            size += len(block)
+    return {"bytes": size, "sha256": h.hexdigest()}
+
+
+def _read_json(path):
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None, inputs=()):
     """Write a result folder atomically.
+
+    The folder is filled under a temporary name beside ``outdir`` and renamed
+    at the end, ``run.json`` last with the size and SHA-256 of every other
+    file, so a folder with a ``run.json`` is complete and can be checked.
+    When an earlier result is replaced, its ``review.csv`` is carried over:
+    as ``review.csv`` when the input checksum and settings are unchanged (the
+    graph is deterministic, so its node ids still apply), else as
+    ``review-superseded.csv``; a reviewer's work is never lost.
 
     Parameters
     ----------
@@ -145,49 +377,127 @@ def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None
     run_info : dict
         Merged into ``run.json`` (version, input, checksum, spacing source...).
     overwrite : bool
-        Replace a non-empty ``outdir``.
+        Replace an existing result (see :func:`check_outdir`).
     extra_tables : dict of str -> DataFrame, optional
         Further CSV tables (for example ``levels.csv``).
+    inputs : sequence of str or Path
+        Files the run read; ``outdir`` may not be or contain one.
 
     Raises
     ------
     InputError
-        If ``outdir`` is not empty and ``overwrite`` is False.
+        If ``outdir`` may not be written (see :func:`check_outdir`).
+    StorageError
+        If the disk is full, or the folder is not writable; nothing is left
+        behind then and an earlier result is kept as it was.
     """
     out = Path(outdir)
-    check_outdir(out, overwrite=overwrite)
+    check_outdir(out, overwrite=overwrite, inputs=inputs)
     parent = out.resolve().parent
-    parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=parent))
     try:
-        result.segments.to_csv(tmp / "segments.csv", index=False)
-        result.nodes.to_csv(tmp / "nodes.csv", index=False)
-        tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations, **(extra_tables or {})}
-        for name, table in tables.items():
-            table.to_csv(tmp / name, index=False)
-        write_json(tmp / "summary.json", result.summary)
-        nx.write_graphml(_graphml(result.graph), tmp / "graph.graphml")
-        lens = [len(p) for p in result.centrelines]
-        offsets = np.r_[0, np.cumsum(lens)].astype(np.int64)
-        pts = np.vstack(result.centrelines).astype(np.float32) if lens else np.zeros((0, 3), np.float32)
-        rad = (np.concatenate(result.centreline_radii).astype(np.float32) if lens else np.zeros(0, np.float32))
-        np.savez_compressed(tmp / "centrelines.npz", points_um=pts, radii_um=rad, offsets=offsets,
-                            segment_id=result.segments["segment_id"].to_numpy(np.int64),
-                            spacing_um=np.asarray(result.spacing, float))
+        parent.mkdir(parents=True, exist_ok=True)
+        clean_stale_partials(parent)
+        tmp = make_partial_dir(parent, out.name)
+    except OSError as exc:
+        raise storage_error(exc, out) from None
+    try:
+        _fill_result(tmp, result, extra_tables)
         run = dict(result.run)
         run.update(run_info)
+        run["files"] = {f.name: file_digest(f) for f in sorted(tmp.iterdir())}
+        if out.is_dir():
+            _carry_review(out, tmp, run)
         write_json(tmp / "run.json", run)  # written last: its presence marks a complete folder
+        _fsync_dir(tmp)
         if out.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=parent))
+            old = make_partial_dir(parent, out.name, "old")
             os.rename(out, old / "x")
             os.rename(tmp, out)
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.rename(tmp, out)
-    except BaseException:
+    except BaseException as exc:
         shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(exc, OSError) and not isinstance(exc, StorageError):
+            raise storage_error(exc, out) from None
         raise
     return out
+
+
+def _fill_result(tmp, result, extra_tables):
+    result.segments.to_csv(tmp / "segments.csv", index=False)
+    result.nodes.to_csv(tmp / "nodes.csv", index=False)
+    tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations, **(extra_tables or {})}
+    for name, table in tables.items():
+        table.to_csv(tmp / name, index=False)
+    write_json(tmp / "summary.json", result.summary)
+    nx.write_graphml(_graphml(result.graph), tmp / "graph.graphml")
+    lens = [len(p) for p in result.centrelines]
+    offsets = np.r_[0, np.cumsum(lens)].astype(np.int64)
+    pts = np.vstack(result.centrelines).astype(np.float32) if lens else np.zeros((0, 3), np.float32)
+    rad = (np.concatenate(result.centreline_radii).astype(np.float32) if lens else np.zeros(0, np.float32))
+    np.savez_compressed(tmp / "centrelines.npz", points_um=pts, radii_um=rad, offsets=offsets,
+                        segment_id=result.segments["segment_id"].to_numpy(np.int64),
+                        spacing_um=np.asarray(result.spacing, float))
+
+
+def _fsync_dir(folder):
+    # The files' data reach the disk before the rename publishes the folder.
+    for f in folder.iterdir():
+        with open(f, "rb") as fh:
+            os.fsync(fh.fileno())
+
+
+def _carry_review(old_dir, new_dir, new_run):
+    src = old_dir / "review.csv"
+    if not src.is_file():
+        return
+    old_run = _read_json(old_dir / "run.json") or {}
+    same = ((old_run.get("input") or {}).get("sha256") == (new_run.get("input") or {}).get("sha256")
+            and _canonical(old_run.get("config")) == _canonical(new_run.get("config")))
+    shutil.copyfile(src, new_dir / ("review.csv" if same else "review-superseded.csv"))
+
+
+def _canonical(obj):
+    return json.loads(json.dumps(_jsonable(obj), sort_keys=True))
+
+
+def verify_result(outdir):
+    """Check a result folder against the sizes and checksums in its ``run.json``.
+
+    Returns
+    -------
+    list of str
+        One line per problem (a file missing, truncated or changed since it
+        was written, a ``run.json`` that cannot be read or lists no files);
+        empty when the folder is exactly what vesselflow wrote.
+    """
+    out = Path(outdir)
+    problems = [f"{f} is missing" for f in RESULT_FILES if not (out / f).is_file()]
+    if problems:
+        return problems
+    run = _read_json(out / "run.json")
+    if not isinstance(run, dict):
+        return ["run.json cannot be read as JSON"]
+    files = run.get("files")
+    if not isinstance(files, dict) or not files:
+        return ["run.json lists no file checksums (written by an older vesselflow, or not by vesselflow)"]
+    for name, want in sorted(files.items()):
+        path = out / name
+        if not path.is_file():
+            problems.append(f"{name} is missing")
+            continue
+        try:
+            got = file_digest(path)
+        except OSError as exc:
+            problems.append(f"{name} cannot be read ({exc.strerror})")
+            continue
+        if not isinstance(want, dict) or got["bytes"] != want.get("bytes"):
+            problems.append(f"{name} has {got['bytes']} bytes, run.json recorded "
+                            f"{want.get('bytes') if isinstance(want, dict) else '?'}")
+        elif got["sha256"] != want.get("sha256"):
+            problems.append(f"{name} differs from what was written (SHA-256 does not match run.json)")
+    return problems
 
 
 @dataclass
@@ -208,27 +518,49 @@ class Result:
         return tuple(self.run["spacing_um"])
 
 
-def load_result(outdir):
+def load_result(outdir, *, verify=True):
     """Read a result folder written by :func:`write_result`.
+
+    Parameters
+    ----------
+    outdir : str or Path
+    verify : bool
+        Check every file against the sizes and checksums in ``run.json``
+        first (:func:`verify_result`). Results of vesselflow versions that
+        recorded no checksums are read unchecked.
 
     Raises
     ------
     InputError
-        If the folder is missing or incomplete.
+        If the folder is missing or incomplete, or a file was truncated or
+        changed after it was written.
     """
     out = Path(outdir)
     missing = [f for f in RESULT_FILES if not (out / f).is_file()]
     if missing:
         raise InputError(f"result folder '{out}': expected a complete result, missing {', '.join(missing)}")
-    segs = pd.read_csv(out / "segments.csv")
-    nodes = pd.read_csv(out / "nodes.csv")
-    bifs = _read_csv(out / "bifurcations.csv")
-    levels = _read_csv(out / "levels.csv")
-    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
-    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
-    with np.load(out / "centrelines.npz") as z:
-        pts, off = z["points_um"], z["offsets"]
-        lines = [pts[off[i]:off[i + 1]] for i in range(len(off) - 1)]
+    if verify:
+        run = _read_json(out / "run.json")
+        if not isinstance(run, dict):
+            raise InputError(f"result folder '{out}': run.json cannot be read as JSON; analyse the mask again")
+        if run.get("files"):
+            problems = verify_result(out)
+            if problems:
+                raise InputError(f"result folder '{out}': expected the files as written, but "
+                                 f"{'; '.join(problems[:3])}; analyse the mask again")
+    try:
+        segs = pd.read_csv(out / "segments.csv")
+        nodes = pd.read_csv(out / "nodes.csv")
+        bifs = _read_csv(out / "bifurcations.csv")
+        levels = _read_csv(out / "levels.csv")
+        summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+        run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+        with np.load(out / "centrelines.npz") as z:
+            pts, off = z["points_um"], z["offsets"]
+            lines = [pts[off[i]:off[i + 1]] for i in range(len(off) - 1)]
+    except (ValueError, KeyError, OSError, EOFError, pd.errors.ParserError) as exc:
+        raise InputError(f"result folder '{out}': a file cannot be read ({type(exc).__name__}: "
+                         f"{' '.join(str(exc).split())[:200]}); analyse the mask again") from None
     return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines,
                   bifurcations=bifs, levels=levels)
 

@@ -59,3 +59,64 @@ def radius_errors(truth, result):
         _, j = tree.query(p[len(p) // 2])
         out.append(result.segments["radius_um"].iloc[owner[j]] / s["radius_um"] - 1.0)
     return np.asarray(out)
+
+
+def _tree_snapshot(folder):
+    """{relative path: bytes or 'dir'} of everything under ``folder``, hidden entries included."""
+    from pathlib import Path
+
+    out = {}
+    for p in sorted(Path(folder).rglob("*")):
+        out[str(p.relative_to(folder))] = "dir" if p.is_dir() else p.read_bytes()
+    return out
+
+
+@pytest.fixture
+def snapshot():
+    """Snapshot a folder tree, to assert later that nothing in it changed."""
+    return _tree_snapshot
+
+
+@pytest.fixture
+def small_disk(tmp_path):
+    """A factory of small tmpfs mounts: ``small_disk(size_kib, readonly=False) -> Path``.
+
+    A real full (or read-only) file system, not a mocked ``write``: the
+    errors then come from the kernel exactly as on a lab's full disk. Needs
+    root; skipped locally without it, an error under CI (which runs as root).
+    """
+    import os
+    import subprocess
+
+    mounts = []
+
+    def make(size_kib, *, readonly=False):
+        where = tmp_path / f"disk{len(mounts)}"
+        where.mkdir()
+        opts = f"size={int(size_kib)}k" + (",ro" if readonly else "")
+        proc = subprocess.run(["mount", "-t", "tmpfs", "-o", opts, "tmpfs", str(where)], capture_output=True,
+                              text=True)
+        if proc.returncode != 0:
+            if os.environ.get("CI") == "true":
+                pytest.fail(f"cannot mount a tmpfs for the full-disk tests: {proc.stderr.strip()}")
+            pytest.skip(f"cannot mount a tmpfs here (needs root): {proc.stderr.strip()}")
+        mounts.append(where)
+        return where
+
+    yield make
+    for where in reversed(mounts):
+        subprocess.run(["umount", "-l", str(where)], capture_output=True)
+
+
+def fill_disk(folder):
+    """Fill the file system holding ``folder`` to the last byte; returns the filler's path."""
+    from pathlib import Path
+
+    filler = Path(folder) / "filler.bin"
+    with open(filler, "wb", buffering=0) as fh:
+        try:
+            while True:
+                fh.write(bytes(4096))
+        except OSError:  # ENOSPC: full
+            pass
+    return filler

@@ -56,8 +56,9 @@ def test_refuses_non_empty_output_without_overwrite(tube_tif, tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--overwrite" in err[0]
     assert (out / "keep.txt").read_text() == "mine"
-    assert main(["analyze", str(tube_tif), "-o", str(out), "--quiet", "--overwrite"]) == 0
-    assert not (out / "keep.txt").exists() and (out / "run.json").exists()
+    # A folder of the user's files is never replaced, --overwrite or not.
+    assert main(["analyze", str(tube_tif), "-o", str(out), "--quiet", "--overwrite"]) == 2
+    assert (out / "keep.txt").read_text() == "mine" and not (out / "run.json").exists()
 
 
 def _bad_inputs(tmp):
