@@ -13,25 +13,35 @@ Out: one result folder per sample under ``OUTDIR/<sample_id>/`` (exactly as
 - ``group_comparison.csv``: per measure and pair of groups n, mean, sd,
   median, the difference of means, a Mann-Whitney U test and its
   Benjamini-Hochberg q-value across measures;
-- ``batch.json``: version, input, config, state and per-sample status.
+- ``batch.json``: version, input, config, state and per-sample status. The
+  state ends as ``complete``, ``complete with failures``, ``interrupted``
+  (Ctrl-C), ``cluster lost`` (the scheduler went away, or no worker was left
+  for ``worker_timeout`` seconds) or ``failed`` (the study tables could not
+  be written); finished samples are kept in every case and a rerun resumes.
+
+One batch at a time writes into a folder: a lock file
+(``.vesselflow-batch.lock``, an advisory ``flock`` that the system releases
+when its process dies) refuses a second batch at once and names the running
+one; a lock left by a process that is gone is taken over with a notice.
 
 Samples run as Dask tasks: on an embedded local cluster (one single-threaded
 worker process per core, each with a memory limit) or on an existing cluster
 given by its scheduler address. A sample whose complete result matches its
 input checksum and effective settings is skipped, so an interrupted batch
-resumes where it stopped; result folders are written atomically, so an
-interrupted sample never leaves a folder that looks complete.
+resumes where it stopped; result folders are written atomically and checked
+against the sizes and checksums in their ``run.json``, so an interrupted or
+damaged sample is redone, never counted.
 """
 
 from __future__ import annotations
 
+import concurrent.futures
 import csv
 import datetime as _dt
 import json
 import math
 import os
 import re
-import shutil
 import sys
 import time
 from dataclasses import dataclass
@@ -41,13 +51,16 @@ import numpy as np
 import pandas as pd
 
 from .config import load_config
-from .errors import ConfigError, InputError, VesselflowError
+from .errors import ConfigError, EngineError, InputError, StorageError, VesselflowError
 
 __all__ = ["Sample", "read_sample_sheet", "find_samples", "collect_samples", "run_batch", "BatchResult",
            "cohort_tables", "group_comparison", "SHEET_COLUMNS", "STUDY_FILES"]
 
 SHEET_COLUMNS = ("sample_id", "path", "group")
 OPTIONAL_COLUMNS = ("spacing_z", "spacing_y", "spacing_x", "root")
+LOCK_FILE = ".vesselflow-batch.lock"
+#: Final states of ``batch.json`` (``running`` while a batch runs).
+FINAL_STATES = ("complete", "complete with failures", "interrupted", "cluster lost", "failed")
 STUDY_FILES = ("failures.csv", "cohort_summary.csv", "cohort_segments.parquet", "cohort_bifurcations.parquet",
                "group_comparison.csv")
 FAILURE_COLUMNS = ("sample_id", "path", "step", "error")
@@ -285,15 +298,15 @@ def _settings(sample, config):
 
 def _is_complete(folder, *, sha256, config, spacing):
     """Whether ``folder`` holds a complete result of this input and these settings."""
-    from .tables import RESULT_FILES
+    from .tables import verify_result
 
-    if not all((folder / f).is_file() for f in RESULT_FILES):
-        return False
     run = _read_run(folder)
-    if run is None:
+    if run is None or not (run.get("input", {}).get("sha256") == sha256 and run.get("config") == _canonical(config)
+                           and run.get("batch", {}).get("spacing_override_um") == (list(spacing) if spacing else None)):
         return False
-    return (run.get("input", {}).get("sha256") == sha256 and run.get("config") == _canonical(config)
-            and run.get("batch", {}).get("spacing_override_um") == (list(spacing) if spacing else None))
+    # Every file as written (sizes and checksums in run.json): a truncated or
+    # edited table is redone, never skipped into the cohort tables.
+    return not verify_result(folder)
 
 
 def _read_run(folder):
@@ -308,6 +321,13 @@ def _read_run(folder):
 def _batch_run(folder):
     """The batch run that wrote the result in ``folder`` (None if unknown)."""
     return ((_read_run(folder) or {}).get("batch") or {}).get("run")
+
+
+def _finished_by(folder, run_id):
+    """Whether batch run ``run_id`` wrote a complete, intact result in ``folder``."""
+    from .tables import verify_result
+
+    return folder.is_dir() and _batch_run(folder) == run_id and not verify_result(folder)
 
 
 def _worker_share():
@@ -357,12 +377,8 @@ def process_sample(sample, sample_dir, config, *, force=False, threads=None, mem
             rec.update(status="done" if this_run else "skipped", step="", seconds=round(time.perf_counter() - t0, 3))
             return rec
         share_threads, share_memory = _worker_share()
-        # A previous review of the same input and settings is kept (the graph
-        # is deterministic, so its node ids still apply); one of a different
-        # input or config is set aside, not lost.
-        old_review = out / "review.csv"
-        review_bytes = old_review.read_bytes() if old_review.is_file() else None
-        same_inputs = review_bytes is not None and _is_complete(out, sha256=sha, config=cfg, spacing=sample.spacing)
+        # An earlier review is carried over by write_result (kept when input
+        # and settings match, else set aside as review-superseded.csv).
         with limit_threads(threads or share_threads):
             analyze_file(sample.path, out, spacing=sample.spacing, config=cfg, overwrite=True,
                          progress=lambda step, s: done_steps.append(step),
@@ -370,9 +386,6 @@ def process_sample(sample, sample_dir, config, *, force=False, threads=None, mem
                          run_info={"batch": {"sample_id": sample.sample_id, "group": sample.group,
                                              "spacing_override_um": list(sample.spacing) if sample.spacing else None,
                                              "run": batch_run}})
-        if review_bytes is not None:
-            name = "review.csv" if same_inputs else "review-superseded.csv"
-            (out / name).write_bytes(review_bytes)
         rec.update(status="done", step="", seconds=round(time.perf_counter() - t0, 3))
     except Exception as exc:  # one sample's failure must not stop the study
         rec["step"] = _failed_step(done_steps, cfg)
@@ -446,6 +459,10 @@ class _Progress:
             self.finish()
             print(f"vesselflow batch: {msg}", file=self.stream, flush=True)
 
+    def warn(self, msg):
+        self.finish()  # warnings show even with quiet
+        print(f"vesselflow batch: warning: {msg}", file=self.stream, flush=True)
+
     def finish(self):
         if self.pending_line:
             print(file=self.stream, flush=True)
@@ -503,30 +520,147 @@ def _default_workers():
     return available_cores()
 
 
-def _clean_partials(outdir):
-    """Remove half-written sample folders and tables an interrupted run left behind."""
-    for p in Path(outdir).glob(".*.partial-*"):
-        if p.is_dir():
-            shutil.rmtree(p, ignore_errors=True)
-    for p in Path(outdir).glob(".*.partial"):
-        if p.is_file():
-            p.unlink(missing_ok=True)
-    for p in Path(outdir).glob(".*.old-*"):
-        if p.is_dir():
-            shutil.rmtree(p, ignore_errors=True)
+def _check_batch_outdir(outdir, *, overwrite, samples):
+    """Refuse, before any work, an output folder whose contents a batch could harm.
 
+    A folder holding no earlier batch is written into only with
+    ``overwrite``, and then only when none of the batch's own file names is
+    taken by a file of the user's. Each sample folder that exists must be a
+    vesselflow result holding only files vesselflow writes (a rerun may
+    replace it) and must not contain the sample's input.
+    """
+    from .tables import check_outdir
 
-def _check_batch_outdir(outdir, *, overwrite):
     out = Path(outdir)
     if out.exists() and not out.is_dir():
         raise InputError(f"output '{out}': expected a folder, got an existing file")
-    if out.is_dir() and any(out.iterdir()) and not (out / "batch.json").is_file() and not overwrite:
-        raise InputError(f"output folder '{out}' is not empty and holds no earlier batch; pass --overwrite to "
-                         "write into it anyway")
+    if not out.is_dir():
+        return
+    ours = (out / "batch.json").is_file()
+    if any(out.iterdir()) and not ours:
+        if not overwrite:
+            raise InputError(f"output folder '{out}' is not empty and holds no earlier batch; pass --overwrite to "
+                             "write into it anyway")
+        taken = [n for n in STUDY_FILES if (out / n).exists()]
+        if taken:
+            raise InputError(f"--overwrite: '{out}' holds no earlier batch but has files named like the study "
+                             f"tables ({', '.join(taken)}); they are not vesselflow's and are never replaced: "
+                             "choose another folder")
+    for s in samples:
+        try:
+            check_outdir(out / s.sample_id, overwrite=True, inputs=[s.path])
+        except InputError as exc:
+            raise InputError(f"sample '{s.sample_id}': {exc}") from None
+
+
+class _BatchLock:
+    """One batch per folder: an exclusive ``flock`` on ``OUTDIR/.vesselflow-batch.lock``.
+
+    The system releases the lock when its process dies however it dies, so a
+    lock whose process is gone is simply taken over; the file's content (pid,
+    host, start time, command) names the holder in the refusal and in the
+    takeover notice.
+    """
+
+    def __init__(self, path, fd, previous):
+        self.path, self.fd, self.previous = path, fd, previous
+
+    @classmethod
+    def acquire(cls, outdir):
+        import fcntl
+        import socket
+
+        path = Path(outdir) / LOCK_FILE
+        for _ in range(5):
+            fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o666)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                holder = _lock_holder(fd)
+                os.close(fd)
+                who = (f"process {holder.get('pid')} on {holder.get('host')}, started {holder.get('started')}"
+                       if holder else "another process")
+                raise InputError(f"batch folder '{outdir}' is in use by another vesselflow batch ({who}); wait for "
+                                 "it to finish or choose another folder") from None
+            try:
+                same = os.fstat(fd).st_ino == os.stat(path).st_ino
+            except FileNotFoundError:
+                same = False
+            if not same:  # the holder removed the file between our open and our lock: try again
+                os.close(fd)
+                continue
+            previous = _lock_holder(fd)
+            info = {"pid": os.getpid(), "host": socket.gethostname(),
+                    "started": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+                    "command": " ".join(sys.argv)}
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, (json.dumps(info) + "\n").encode("utf-8"), 0)
+            return cls(path, fd, previous)
+        raise InputError(f"batch folder '{outdir}': could not take its lock {path} (it keeps changing)")
+
+    def takeover_notice(self):
+        p = self.previous
+        if not p:
+            return None
+        return (f"took over the lock of an earlier batch (process {p.get('pid')} on {p.get('host')}, started "
+                f"{p.get('started')}) that is no longer running")
+
+    def release(self):
+        try:
+            self.path.unlink(missing_ok=True)  # while still locked: no one else holds this name
+        except OSError:
+            pass
+        os.close(self.fd)
+
+
+def _lock_holder(fd):
+    try:
+        data = os.pread(fd, 4096, 0)
+        info = json.loads(data.decode("utf-8")) if data.strip() else None
+    except (OSError, ValueError):
+        return None
+    return info if isinstance(info, dict) else None
+
+
+class _QuietInterrupt:
+    """Worker processes ignore SIGINT: a Ctrl-C reaches the whole process group,
+    and the batch itself stops them in order; without this every worker
+    prints its own KeyboardInterrupt traceback."""
+
+    def setup(self, worker=None):
+        import signal
+        import threading
+
+        if threading.current_thread() is threading.main_thread():
+            signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _start_engine(*, workers, scheduler, memory_limit):
+    import signal
+    import threading
+
+    # Processes started while SIGINT is ignored inherit that across exec, so
+    # the workers of the embedded cluster never see the terminal's Ctrl-C.
+    main = threading.current_thread() is threading.main_thread()
+    old = signal.signal(signal.SIGINT, signal.SIG_IGN) if main and not scheduler else None
+    try:
+        client, cluster = _client(workers=workers, scheduler=scheduler, memory_limit=memory_limit)
+    finally:
+        if old is not None:
+            signal.signal(signal.SIGINT, old)
+    if cluster is not None:
+        try:  # workers the nanny restarts later (after a memory kill) get the same
+            from distributed.diagnostics.plugin import WorkerPlugin
+
+            plugin = type("VesselflowQuietInterrupt", (_QuietInterrupt, WorkerPlugin), {"name": "vesselflow-quiet"})
+            client.register_plugin(plugin())
+        except Exception:  # an older distributed: the first workers are covered already
+            pass
+    return client, cluster
 
 
 def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, force=False, overwrite=False,
-              memory_limit=None, threads=None, quiet=False, stream=None, input_label=None):
+              memory_limit=None, threads=None, quiet=False, stream=None, input_label=None, worker_timeout=120.0):
     """Analyse every sample on Dask, then write the study tables.
 
     Parameters
@@ -545,7 +679,8 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     force : bool
         Redo samples whose complete result matches.
     overwrite : bool
-        Write into a non-empty folder that holds no earlier batch.
+        Write into a non-empty folder that holds no earlier batch (never
+        replacing a file that is not vesselflow's).
     memory_limit : str or int, optional
         Per worker (bytes, or a Dask size string such as ``"4GB"``); default
         the available memory shared equally.
@@ -558,6 +693,10 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
         Where progress goes; default stderr.
     input_label : str, optional
         What ``batch.json`` records as the input (the folder or sheet).
+    worker_timeout : float
+        Seconds the cluster may have no worker at all before the batch stops
+        as ``cluster lost`` (a cluster whose workers all died would otherwise
+        wait for ever).
 
     Returns
     -------
@@ -566,25 +705,34 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     Raises
     ------
     InputError, ConfigError
-        Before any work, for a bad config, output folder or sample list.
+        Before any work, for a bad config, output folder or sample list, or
+        a folder another batch is writing into.
+    EngineError
+        The scheduler was lost or no worker was left; ``batch.json`` says
+        ``cluster lost`` and finished samples are kept.
+    StorageError
+        The study tables could not be written (disk full, no permission);
+        ``batch.json`` says ``failed``, the sample results are kept.
     KeyboardInterrupt
         After cancelling the samples in flight; finished samples are kept.
     """
     cfg = load_config(config)
     out = Path(outdir)
-    _check_batch_outdir(out, overwrite=overwrite)
     ids = [s.sample_id for s in samples]
     if len(set(ids)) != len(ids):
         dup = next(i for i in ids if ids.count(i) > 1)
         raise InputError(f"samples: sample_id '{dup}' appears more than once")
     if not samples:
         raise InputError("samples: expected at least one sample, got none")
+    _check_batch_outdir(out, overwrite=overwrite, samples=samples)
     for s in samples:
         _settings(s, cfg)  # a bad per-sample root fails before any work
     if workers is not None and (not isinstance(workers, int) or workers < 1):
         raise InputError(f"--workers: expected a whole number of at least 1, got {workers!r}")
     if threads is not None and (not isinstance(threads, int) or threads < 1):
         raise InputError(f"--threads: expected a whole number of at least 1, got {threads!r}")
+    if not (isinstance(worker_timeout, (int, float)) and math.isfinite(worker_timeout) and worker_timeout > 0):
+        raise InputError(f"--worker-timeout: expected a positive number of seconds, got {worker_timeout!r}")
     if isinstance(memory_limit, str):
         from dask.utils import parse_bytes
 
@@ -600,8 +748,31 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
 
         avail = available_memory_bytes()
         memory_limit = int(avail / nworkers) if avail else "auto"
-    out.mkdir(parents=True, exist_ok=True)
-    _clean_partials(out)
+    from .tables import check_writable, clean_stale_partials, storage_error, write_atomic, write_json
+
+    check_writable(out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise storage_error(exc, out, "create") from None
+    lock = _BatchLock.acquire(out)
+    try:
+        return _run_locked(samples, out, cfg, lock=lock, nworkers=nworkers, scheduler=scheduler, force=force,
+                           memory_limit=memory_limit, threads=threads, quiet=quiet, stream=stream,
+                           input_label=input_label, worker_timeout=float(worker_timeout),
+                           helpers=(clean_stale_partials, write_atomic, write_json))
+    finally:
+        lock.release()
+
+
+def _run_locked(samples, out, cfg, *, lock, nworkers, scheduler, force, memory_limit, threads, quiet, stream,
+                input_label, worker_timeout, helpers):
+    clean_stale_partials, write_atomic, write_json = helpers
+    prog = _Progress(len(samples), quiet=quiet, stream=stream)
+    notice = lock.takeover_notice()
+    if notice:
+        prog.info(notice)
+    clean_stale_partials(out)
     for name in STUDY_FILES:  # derived from the sample folders: stale ones must not outlive this run
         (out / name).unlink(missing_ok=True)
     started = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
@@ -609,30 +780,106 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     meta = {"vesselflow_version": _version(), "created": started, "run": run_id, "state": "running",
             "input": input_label, "config": cfg, "scheduler": scheduler or "local",
             "workers": None if scheduler else nworkers, "force": bool(force)}
-    from .tables import write_atomic, write_json
-
     write_atomic(out / "batch.json", lambda p: write_json(p, meta))
-    prog = _Progress(len(samples), quiet=quiet, stream=stream)
+    records = {}
+
+    def finish(state, **extra):
+        """batch.json in its final state; the per-sample status table."""
+        for s in samples:  # what the lost or interrupted run finished on disk still counts
+            if s.sample_id not in records and _finished_by(out / s.sample_id, run_id):
+                records[s.sample_id] = {"sample_id": s.sample_id, "group": s.group, "path": str(s.path),
+                                        "status": "done", "step": "", "error": "", "seconds": 0.0}
+        status = pd.DataFrame([records.get(s.sample_id, {"sample_id": s.sample_id, "group": s.group,
+                                                          "path": str(s.path), "status": "not run", "step": "",
+                                                          "error": "", "seconds": 0.0}) for s in samples])
+        meta.update(state=state, finished=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+                    counts={k: int((status["status"] == k).sum()) for k in ("done", "skipped", "failed", "not run")},
+                    samples=[{k: v for k, v in r.items() if not (isinstance(v, float) and math.isnan(v))}
+                             for r in status.to_dict("records")], **extra)
+        write_atomic(out / "batch.json", lambda p: write_json(p, meta))
+        return status
+
     prog.info(f"{len(samples)} samples on " + (f"the scheduler at {scheduler}" if scheduler else
                                                f"{nworkers} local worker{'s' if nworkers > 1 else ''}"))
-    records = {}
-    interrupted = False
+    try:
+        ending = _run_samples(samples, out, cfg, records, prog, run_id=run_id, nworkers=nworkers,
+                              scheduler=scheduler, force=force, memory_limit=memory_limit, threads=threads,
+                              worker_timeout=worker_timeout)
+    except KeyboardInterrupt:
+        finish("interrupted")
+        raise
+    except BaseException as exc:
+        finish("failed", error=f"{type(exc).__name__}: {' '.join(str(exc).split())}")
+        raise
+    finally:
+        clean_stale_partials(out)
+        prog.finish()
+    if ending is not None:
+        status = finish("cluster lost", error=ending)
+        n = int(status["status"].isin(("done", "skipped")).sum())
+        raise EngineError(f"{ending}; {n} of {len(samples)} samples are finished and kept in '{out}'; run the same "
+                          "command again to resume")
+    failed = sum(r["status"] == "failed" for r in records.values())
+    try:
+        ok = [s for s in samples if records[s.sample_id]["status"] in ("done", "skipped")]
+        tables = cohort_tables(out, ok)
+        for sid, msg in tables["warnings"].items():
+            records[sid]["warning"] = msg
+            prog.warn(f"{sid}: {msg}")
+        failures = pd.DataFrame([records[s.sample_id] for s in samples if records[s.sample_id]["status"] == "failed"],
+                                columns=list(FAILURE_COLUMNS)).reset_index(drop=True)
+        write_atomic(out / "failures.csv", lambda p: failures.to_csv(p, index=False, columns=list(FAILURE_COLUMNS)))
+        write_atomic(out / "cohort_summary.csv", lambda p: tables["summary"].to_csv(p, index=False))
+        write_atomic(out / "cohort_segments.parquet", lambda p: tables["segments"].to_parquet(p, index=False))
+        write_atomic(out / "cohort_bifurcations.parquet",
+                     lambda p: tables["bifurcations"].to_parquet(p, index=False))
+        write_atomic(out / "group_comparison.csv", lambda p: tables["comparison"].to_csv(p, index=False))
+    except BaseException as exc:
+        # Half a set of study tables is worse than none: remove this run's,
+        # which also frees the space batch.json needs to record the failure.
+        for name in STUDY_FILES:
+            (out / name).unlink(missing_ok=True)
+        finish("interrupted" if isinstance(exc, KeyboardInterrupt) else "failed",
+               error=f"study tables not written: {' '.join(str(exc).split())}")
+        raise
+    status = finish("complete with failures" if failed else "complete")  # last: marks the batch finished
+    prog.info(f"{meta['counts']['done']} analysed, {meta['counts']['skipped']} skipped, "
+              f"{meta['counts']['failed']} failed; tables in {out}")
+    return BatchResult(outdir=out, status=status, failures=failures, cohort_summary=tables["summary"],
+                       group_comparison=tables["comparison"])
+
+
+def _run_samples(samples, out, cfg, records, prog, *, run_id, nworkers, scheduler, force, memory_limit, threads,
+                 worker_timeout):
+    """Run every sample on the engine, filling ``records``.
+
+    Returns None when every sample has a record, or the reason the cluster
+    was lost. Raises KeyboardInterrupt after cancelling what is in flight.
+    """
     import logging
 
-    # The embedded cluster's routine INFO lines (workers starting, closing)
-    # would bury the progress lines; real problems still show.
-    dask_log = logging.getLogger("distributed")
-    log_level = dask_log.level
-    dask_log.setLevel(logging.ERROR)
+    # The engine's own log lines (workers starting and closing, a lost
+    # connection) would bury the progress lines; the batch reports what
+    # matters itself, in one line.
+    import distributed  # noqa: F401  (configures its loggers on import)
+
+    loggers = [logging.getLogger(n) for n in ["distributed", *[n for n in logging.root.manager.loggerDict
+                                                                if n.startswith("distributed.")]]]
+    levels = [lg.level for lg in loggers]
+    for lg in loggers:
+        lg.setLevel(logging.CRITICAL)
+
+    def restore_logs():
+        for lg, level in zip(loggers, levels):
+            lg.setLevel(level)
+
     try:
-        client, cluster = _client(workers=nworkers, scheduler=scheduler, memory_limit=memory_limit)
+        client, cluster = _start_engine(workers=nworkers, scheduler=scheduler, memory_limit=memory_limit)
     except BaseException:
-        dask_log.setLevel(log_level)
+        restore_logs()
         raise
     futures = {}
     try:
-        from distributed import as_completed
-
         def submit(s, attempt):
             fut = client.submit(process_sample, s, str(out / s.sample_id), cfg, force=force, threads=threads,
                                 batch_run=run_id, pure=False,
@@ -640,54 +887,62 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
             futures[fut] = (s, attempt)
             return fut
 
-        queue = as_completed([submit(s, 1) for s in samples], loop=client.loop)
-        for fut in queue:
-            s, attempt = futures[fut]
-            try:
-                rec = fut.result()
-            except Exception as exc:  # the worker itself died (memory limit, signal)
-                if _is_killed_worker(exc) and attempt == 1:
-                    # Samples queued on a dying worker die with it although they
-                    # never ran; one more attempt tells them from the culprit.
-                    queue.add(submit(s, 2))
-                    continue
-                rec = _worker_failure(s, exc, memory_limit)
-            records[s.sample_id] = rec
-            prog.update(rec)
+        pending = {submit(s, 1) for s in samples}
+        no_workers_since = None
+        where = f"the scheduler at {scheduler}" if scheduler else "the local cluster"
+        while pending:
+            finished = [f for f in pending if f.done()]
+            if not finished:
+                if client.status not in ("running", "newly-created"):
+                    return f"lost the connection to {where}"
+                nw = len((client.scheduler_info() or {}).get("workers", {}))
+                now = time.monotonic()
+                if nw:
+                    no_workers_since = None
+                elif no_workers_since is None:
+                    no_workers_since = now
+                elif now - no_workers_since > worker_timeout:
+                    return f"{where} had no worker for {worker_timeout:g} s"
+                time.sleep(0.1)
+                continue
+            for fut in finished:
+                pending.discard(fut)
+                s, attempt = futures[fut]
+                try:
+                    rec = fut.result()
+                except Exception as exc:  # the worker itself died (memory limit, signal), or the cluster went
+                    if _is_cancelled(exc) or client.status not in ("running", "newly-created"):
+                        return f"lost the connection to {where}"
+                    if _is_killed_worker(exc) and attempt == 1:
+                        # Samples queued on a dying worker die with it although they
+                        # never ran; one more attempt tells them from the culprit.
+                        pending.add(submit(s, 2))
+                        continue
+                    rec = _worker_failure(s, exc, memory_limit)
+                records[s.sample_id] = rec
+                prog.update(rec)
+        return None
     except KeyboardInterrupt:
-        interrupted = True
-        client.cancel(list(futures), force=True)
+        try:
+            client.cancel(list(futures), force=True)
+        except Exception:  # the cluster may be gone already
+            pass
+        raise
     finally:
-        client.close()
+        try:
+            client.close(timeout=10)
+        except Exception:
+            pass
         if cluster is not None:
-            cluster.close()
-        dask_log.setLevel(log_level)
-        _clean_partials(out)
-        prog.finish()
-    status = pd.DataFrame([records.get(s.sample_id, {"sample_id": s.sample_id, "group": s.group,
-                                                      "path": str(s.path), "status": "not run", "step": "",
-                                                      "error": "", "seconds": 0.0}) for s in samples])
-    meta.update(state="interrupted" if interrupted else "complete",
-                finished=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-                counts={k: int((status["status"] == k).sum()) for k in ("done", "skipped", "failed", "not run")},
-                samples=status.to_dict("records"))
-    failures = status.loc[status["status"] == "failed", list(FAILURE_COLUMNS)].reset_index(drop=True)
-    if interrupted:
-        write_atomic(out / "batch.json", lambda p: write_json(p, meta))
-        raise KeyboardInterrupt
-    ok = [s for s in samples if records[s.sample_id]["status"] in ("done", "skipped")]
-    tables = cohort_tables(out, ok)
-    write_atomic(out / "failures.csv", lambda p: failures.to_csv(p, index=False))
-    write_atomic(out / "cohort_summary.csv", lambda p: tables["summary"].to_csv(p, index=False))
-    write_atomic(out / "cohort_segments.parquet", lambda p: tables["segments"].to_parquet(p, index=False))
-    write_atomic(out / "cohort_bifurcations.parquet",
-                  lambda p: tables["bifurcations"].to_parquet(p, index=False))
-    write_atomic(out / "group_comparison.csv", lambda p: tables["comparison"].to_csv(p, index=False))
-    write_atomic(out / "batch.json", lambda p: write_json(p, meta))  # last: marks the batch complete
-    prog.info(f"{meta['counts']['done']} analysed, {meta['counts']['skipped']} skipped, "
-              f"{meta['counts']['failed']} failed; tables in {out}")
-    return BatchResult(outdir=out, status=status, failures=failures, cohort_summary=tables["summary"],
-                       group_comparison=tables["comparison"])
+            try:
+                cluster.close(timeout=10)
+            except Exception:
+                pass
+        restore_logs()
+
+
+def _is_cancelled(exc):
+    return isinstance(exc, concurrent.futures.CancelledError)
 
 
 def _version():
@@ -743,22 +998,36 @@ def cohort_tables(outdir, samples):
     -------
     dict
         ``summary``, ``segments``, ``bifurcations`` and ``comparison``
-        DataFrames. A sample with a ``review.csv`` contributes its reviewed
-        summary (bifurcations marked ``artefact`` left out) and its decisions
-        as ``review_decision``/``review_note`` columns.
+        DataFrames, and ``warnings`` (sample id -> message). A sample with a
+        ``review.csv`` contributes its reviewed summary (bifurcations marked
+        ``artefact`` left out) and its decisions as
+        ``review_decision``/``review_note`` columns. A review that cannot be
+        used (malformed, or naming nodes that are not junctions) is that
+        sample's warning, not the study's failure: the sample enters
+        unreviewed, with the problem in ``review_problem``. A result that
+        cannot be read back is left out with a warning.
     """
+    from .review import apply_review
     from .tables import load_result
 
-    rows, segs, bifs = [], [], []
+    rows, segs, bifs, warnings = [], [], [], {}
     for s in samples:
-        res = load_result(Path(outdir) / s.sample_id)
+        try:
+            res = load_result(Path(outdir) / s.sample_id)
+        except InputError as exc:
+            warnings[s.sample_id] = f"left out of the study tables: {exc}"
+            continue
         summary, bif = res.summary, res.bifurcations
-        reviewed = (res.path / "review.csv").is_file()
-        if reviewed:
-            from .review import apply_review
-
-            summary, bif = apply_review(res)
-        rows.append({"sample_id": s.sample_id, "group": s.group, "reviewed": reviewed,
+        reviewed, problem = False, ""
+        if (res.path / "review.csv").exists():
+            try:
+                summary, bif = apply_review(res)
+                reviewed = True
+            except InputError as exc:
+                problem = " ".join(str(exc).split())
+                warnings[s.sample_id] = f"review not applied: {problem}"
+                summary, bif = res.summary, res.bifurcations
+        rows.append({"sample_id": s.sample_id, "group": s.group, "reviewed": reviewed, "review_problem": problem,
                      **_flatten_summary(summary)})
         for table, into in ((res.segments, segs), (bif, bifs)):
             t = table.copy()
@@ -767,12 +1036,12 @@ def cohort_tables(outdir, samples):
             into.append(t)
     summary = pd.DataFrame(rows)
     if summary.empty:
-        summary = pd.DataFrame(columns=["sample_id", "group", "reviewed"])
+        summary = pd.DataFrame(columns=["sample_id", "group", "reviewed", "review_problem"])
     segments = pd.concat(segs, ignore_index=True) if segs else pd.DataFrame(columns=["sample_id", "group"])
     bifurcations = (pd.concat([b for b in bifs if len(b.columns)], ignore_index=True)
                     if any(len(b.columns) for b in bifs) else pd.DataFrame(columns=["sample_id", "group"]))
     return {"summary": summary, "segments": _parquet_safe(segments), "bifurcations": _parquet_safe(bifurcations),
-            "comparison": group_comparison(summary)}
+            "comparison": group_comparison(summary), "warnings": warnings}
 
 
 def _parquet_safe(df):

@@ -84,6 +84,9 @@ def _parser():
                                                           "available memory shared equally)")
     b.add_argument("--threads", type=int, help="threads per sample for the compiled steps "
                                                "(default: the worker's cores shared by its samples)")
+    b.add_argument("--worker-timeout", type=float, default=120.0, metavar="SECONDS",
+                   help="stop the batch (state 'cluster lost') when the cluster has had no worker this long "
+                        "(default: 120)")
     b.add_argument("--force", action="store_true", help="redo samples that already have a matching result")
     b.add_argument("--overwrite", action="store_true", help="write into a non-empty folder that holds no batch")
     b.add_argument("--quiet", action="store_true", help="no progress lines")
@@ -205,15 +208,25 @@ def _cmd_synth(args):
 
 
 def _cmd_batch(args):
+    import logging
+
     from . import batch
 
+    # The engine logs its own view of a lost connection or a closing worker,
+    # in tracebacks, sometimes after the batch has returned; the batch says
+    # what matters in one line, and this process ends with the command.
+    import distributed  # noqa: F401  (its logging config sets levels on child loggers: set them after)
+
+    for name in ["distributed", *[n for n in logging.root.manager.loggerDict if n.startswith("distributed.")]]:
+        logging.getLogger(name).setLevel(logging.CRITICAL + 1)
     cfg = _load_cfg(args)
     samples = batch.collect_samples(args.input, exclude=args.output)
     if args.workers is not None and args.workers < 1:
         raise InputError(f"--workers: expected a whole number of at least 1, got {args.workers}")
     res = batch.run_batch(samples, args.output, config=cfg, workers=args.workers, scheduler=args.scheduler,
                           force=args.force, overwrite=args.overwrite, memory_limit=args.memory_limit,
-                          threads=args.threads, quiet=args.quiet, input_label=str(Path(args.input).resolve()))
+                          threads=args.threads, quiet=args.quiet, input_label=str(Path(args.input).resolve()),
+                          worker_timeout=args.worker_timeout)
     if args.report:
         from .report import build_report
 

@@ -1,11 +1,11 @@
 """Exception hierarchy shared by every step.
 
-In: nothing. Out: ``VesselflowError`` and its four subclasses. The CLI maps
+In: nothing. Out: ``VesselflowError`` and its five subclasses. The CLI maps
 ``InputError`` and ``ConfigError`` to exit code 2 with a one-line message,
 ``StorageError`` and anything else to exit code 1 (also one line).
 """
 
-__all__ = ["VesselflowError", "InputError", "ConfigError", "SolverError", "StorageError"]
+__all__ = ["VesselflowError", "InputError", "ConfigError", "SolverError", "StorageError", "EngineError"]
 
 
 class VesselflowError(Exception):
@@ -33,4 +33,11 @@ class StorageError(VesselflowError, OSError):
     A full disk, a missing permission, a read-only file system: the message
     names the path, the system's reason and what is needed. Whatever was
     being written is removed again, so nothing is left half-written.
+    """
+
+
+class EngineError(VesselflowError, RuntimeError):
+    """The batch engine stopped: the Dask scheduler was lost, or no worker was left.
+
+    Results already on disk are kept; running the same batch again resumes.
     """
