@@ -265,6 +265,7 @@ def _cmd_demo(args):
 
 def _cmd_summarize(args):
     import json
+    import os
 
     from . import review, tables
 
@@ -272,7 +273,7 @@ def _cmd_summarize(args):
     if not args.apply_review:
         print(json.dumps(result.summary, indent=2))
         return 0
-    if not (Path(args.outdir) / review.REVIEW_FILE).is_file():
+    if not os.path.lexists(Path(args.outdir) / review.REVIEW_FILE):  # a folder or a broken link: review says why
         raise InputError(f"--apply-review: expected {review.REVIEW_FILE} in '{args.outdir}', found none "
                          "(review the flagged bifurcations with: vesselflow view OUTDIR)")
     out = Path(args.outdir) / "summary_reviewed.json"

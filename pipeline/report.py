@@ -8,7 +8,9 @@ the two report entries below:
   the mask it was made from (``run.json["input"]["path"]`` or ``mask=``),
   read with :func:`pipeline.reading.read_mask` for the projection map; an
   optional ``review.csv`` of review decisions is shown beside the flagged
-  bifurcations;
+  bifurcations (checked as ``summarize --apply-review`` checks it: an
+  invalid one stops a sample report, and is a note in that sample's section
+  of a study report);
 - a **batch folder** (``cohort_summary.csv``, ``group_comparison.csv``,
   ``failures.csv``, ``batch.json`` and one sample folder per sample).
 
@@ -151,8 +153,9 @@ def build_report(outdir, *, mask=None, overwrite=False) -> Path:
     ------
     InputError
         If ``outdir`` is not a sample or batch folder, is incomplete, already
-        holds a report and ``overwrite`` is False, or ``mask`` cannot be read.
-        Nothing is written then.
+        holds a report and ``overwrite`` is False, ``mask`` cannot be read, or
+        a sample folder's ``review.csv`` is invalid
+        (:func:`pipeline.review.check_review`). Nothing is written then.
     """
     out = Path(outdir)
     if not out.exists():
@@ -961,22 +964,41 @@ def _sources_html():
             "values.</li></ul>")
 
 
-def _review_table(out, fl):
-    """Join review decisions (``review.csv``, optional) onto the flagged junctions by node id."""
-    from .review import REVIEW_FILE, load_review
+def _checked_review(out, data):
+    """The sample's ``review.csv`` checked against its result, or None when it has none.
 
-    if not (out / REVIEW_FILE).is_file():
+    The same check as ``summarize --apply-review`` (:func:`pipeline.review.check_review`),
+    so both accept and reject the same files.
+
+    Raises
+    ------
+    InputError
+        If the review is malformed or names a node that is not a junction.
+    """
+    from .review import REVIEW_FILE, check_review
+    from .tables import Result
+
+    if not os.path.lexists(out / REVIEW_FILE):
+        return None
+    result = Result(path=out, segments=data.segments, nodes=data.nodes, summary=data.summary, run=data.run,
+                    centrelines=data.centrelines, bifurcations=data.bifurcations, levels=data.levels)
+    return check_review(result)
+
+
+def _review_table(fl, review):
+    """Join checked review decisions (or None: no ``review.csv``) onto the flagged junctions by node id."""
+    if review is None:
         return fl, None
-    try:
-        rev = load_review(out)  # validated: one row per node id
-    except InputError as exc:
-        return fl, f"review.csv could not be read ({exc}); review decisions are not shown."
-    rev = rev.rename(columns={c: f"review {c}" for c in rev.columns if c != "node_id"})
+    rev = review.rename(columns={c: f"review {c}" for c in review.columns if c != "node_id"})
     return fl.merge(rev, on="node_id", how="left"), f"Review decisions from review.csv ({len(rev)} rows)."
 
 
 def _sample_report(out, *, mask):
     data = load_sample(out, mask=mask)
+    try:
+        review = _checked_review(out, data)
+    except InputError as exc:
+        raise InputError(f"report: {exc}") from None
     notes = list(data.notes)
     figs = sample_figures(data, notes)
     rendered = _render_all(figs)
@@ -1016,7 +1038,8 @@ def _sample_report(out, *, mask):
                  + "</div>")
     parts.append("<h2 id=\"levels\">Branching levels</h2>"
                  + (_table(data.levels) if not data.levels.empty else "<p>No levels.</p>"))
-    parts.append("<h2 id=\"bifurcations\">Flagged bifurcations</h2>" + _bifurcation_html(out, data.bifurcations))
+    parts.append("<h2 id=\"bifurcations\">Flagged bifurcations</h2>"
+                 + _bifurcation_html(data.bifurcations, review))
     flow = run.get("flow") or {}
     if flow:
         parts.append("<h2 id=\"flow\">Flow model</h2>" + _kv_table([(k, _fmt(v)) for k, v in flow.items()]))
@@ -1031,7 +1054,7 @@ def _sample_report(out, *, mask):
     return _page(f"vesselflow report: {data.name}", "\n".join(parts)), rendered
 
 
-def _bifurcation_html(out, b):
+def _bifurcation_html(b, review):
     if b.empty or "flagged" not in b.columns:
         return "<p>No bifurcations.</p>"
     fl = b[_bool_col(b, "flagged")]
@@ -1044,7 +1067,7 @@ def _bifurcation_html(out, b):
     fl = fl[cols].copy()
     if "flag_reasons" in fl.columns:
         fl["flag_reasons"] = fl["flag_reasons"].fillna("").astype(str).str.replace(";", ", ")
-    fl, note = _review_table(out, fl)
+    fl, note = _review_table(fl, review)
     return head + (f"<p class=\"note\">{_esc(note)}</p>" if note else "") + _table(fl, classes="bif")
 
 
@@ -1084,6 +1107,7 @@ def _study_report(out):
 
     # Sample sections first: reading them finds folders that are missing.
     samples = []
+    bad_reviews = {}
     for _, row in cohort.iterrows():
         sid = str(row["sample_id"])
         folder = out / sid
@@ -1092,6 +1116,13 @@ def _study_report(out):
         except InputError as exc:
             notes.append(f"sample {sid}: {exc}")
             sd = None
+        if sd is not None:
+            # One sample's bad review is that sample's problem, not the study's.
+            try:
+                _checked_review(folder, sd)
+            except InputError as exc:
+                bad_reviews[sid] = f"The review of this sample is not valid: {exc}. Fix or remove review.csv."
+                notes.append(f"sample {sid}: {bad_reviews[sid]}")
         samples.append((sid, str(row["group"]), sd))
 
     figs = study_figures(cohort, comparison)
@@ -1157,6 +1188,8 @@ def _study_report(out):
                               ("spacing source", run.get("spacing_source", "?"))]
                              + [(_label(m), _fmt(s.get(m))) for m in STUDY_MEASURES if m in s]))
         sec.append("<p><b>Warnings:</b></p>" + _warnings_html(run.get("warnings") or []))
+        if sid in bad_reviews:
+            sec.append(f"<p class=\"note\"><b>Review:</b> {_esc(bad_reviews[sid])}</p>")
         if sid in thumbs:
             sec.append(_figure_html(thumbs[sid]))
         if (out / sid / REPORT_NAME).is_file():

@@ -18,8 +18,12 @@ holds one row per reviewed junction:
 
 The file is rewritten whole on every change, atomically (a temporary file in
 the same folder replaced with :func:`os.replace`), so a crash never leaves a
-half-written review. Reading validates every row and names the line and the
-value that is wrong.
+half-written review. Reading validates every row; anything malformed (a node
+id that is not a whole number from 0 to the int64 maximum, bytes that are not
+UTF-8, a folder in place of the file) is one :class:`InputError` line naming
+the file, the line, the column and the value. :func:`check_review` adds the
+check against the result (every node id a junction of it) and is the one
+check behind ``summarize --apply-review``, the study tables and the report.
 
 This module is part of the analysis core: it never imports napari or Qt, so
 ``vesselflow summarize --apply-review`` and ``vesselflow batch`` work without
@@ -28,8 +32,12 @@ the viewer installed.
 
 from __future__ import annotations
 
+import csv
 import datetime as _dt
+import io
+import math
 import os
+import re
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -47,6 +55,7 @@ __all__ = [
     "DECISIONS",
     "empty_review",
     "load_review",
+    "check_review",
     "save_review",
     "record_decision",
     "clear_decision",
@@ -77,71 +86,195 @@ def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
-def _validate(raw: pd.DataFrame, *, where: str, first_line: int) -> pd.DataFrame:
-    """Check a review table of strings and return it typed.
+#: Largest node id: node ids are stored as int64.
+_MAX_NODE_ID = int(np.iinfo(np.int64).max)
+#: Spaces a person may leave around a value (after a comma, say); any other
+#: white space (no-break spaces, line breaks) makes the value malformed.
+_PAD = " \t"
+_DIGITS = re.compile(r"[0-9]+")
 
-    ``first_line`` is the line number of the first data row in ``where``
-    (2 for a CSV file with a header), so messages point at the line a person
-    would open; for an in-memory table it is the row position.
-    """
-    missing = [c for c in REVIEW_COLUMNS if c not in raw.columns]
+
+#: Longest value quoted whole in a message; longer ones are cut.
+_SHOWN_CHARS = 60
+
+
+def _shown(value: Any) -> str:
+    """``value`` for a message: text quoted, bytes that are not UTF-8 as ``\\xNN``, long values cut."""
+    text = value if isinstance(value, str) else repr(value)
+    more = f" ... ({len(text)} characters)" if len(text) > _SHOWN_CHARS else ""
+    text = text[:_SHOWN_CHARS]
+    if not isinstance(value, str):
+        return text + more
+    if _not_utf8(text):
+        return repr(text.encode("utf-8", "surrogateescape")) + more
+    return repr(text) + more
+
+
+def _not_utf8(value: Any) -> bool:
+    return isinstance(value, str) and any("\udc80" <= ch <= "\udcff" for ch in value)
+
+
+def _node_id(value: Any) -> int:
+    """``value`` as a node id (0 to the int64 maximum); ValueError for anything else."""
+    if isinstance(value, (bool, np.bool_)):
+        raise ValueError(value)
+    if isinstance(value, (int, np.integer)):
+        number = int(value)
+    elif isinstance(value, (float, np.floating)):
+        if not (math.isfinite(value) and float(value).is_integer()):
+            raise ValueError(value)
+        number = int(value)
+    else:
+        text = str(value).strip(_PAD)
+        # Only ASCII digits: int() would also take '1_000', '+3', Arabic-Indic
+        # digits and no-break spaces, none of which a person means as an id.
+        if not _DIGITS.fullmatch(text) or len(text.lstrip("0")) > len(str(_MAX_NODE_ID)):
+            raise ValueError(value)
+        number = int(text)
+    if not 0 <= number <= _MAX_NODE_ID:
+        raise ValueError(value)
+    return number
+
+
+def _check_columns(columns: list[Any], where: str) -> None:
+    bad = [str(c) for c in columns if _not_utf8(c)]
+    if bad:
+        raise InputError(f"{where}: header: expected UTF-8 text, got {_shown(bad[0])} "
+                         "(save the file as UTF-8)")
+    seen = set()
+    for c in columns:
+        if c in seen:
+            raise InputError(f"{where}: header: expected each of {', '.join(REVIEW_COLUMNS)} once; "
+                             f"column {str(c)!r} appears twice")
+        seen.add(c)
+    missing = [c for c in REVIEW_COLUMNS if c not in columns]
     if missing:
         raise InputError(f"{where}: expected columns {', '.join(REVIEW_COLUMNS)}; missing {', '.join(missing)}")
-    extra = [str(c) for c in raw.columns if c not in REVIEW_COLUMNS]
+    # Plain names as they are; a name with odd spaces or characters quoted, so they show.
+    extra = [str(c) if str(c).isprintable() and str(c).strip() == str(c) != "" else repr(str(c))
+             for c in columns if c not in REVIEW_COLUMNS]
     if extra:
         raise InputError(f"{where}: expected columns {', '.join(REVIEW_COLUMNS)}; got unknown {', '.join(extra)}")
+
+
+def _check_rows(rows, *, where: str) -> tuple[pd.DataFrame, dict[int, str]]:
+    """Check review rows and return them typed, with where each node id was found.
+
+    ``rows`` yields ``(at, values)``: ``at`` says where the row is (``"line 4"``
+    of a file, ``"row 0"`` of a table) and ``values`` holds the cells of
+    :data:`REVIEW_COLUMNS` in that order.
+    """
     ids, decisions, notes, stamps = [], [], [], []
-    seen: dict[int, int] = {}
-    for pos, row in enumerate(raw[list(REVIEW_COLUMNS)].itertuples(index=False)):
-        line = pos + first_line
-        node, decision, note, stamp = ("" if _missing(v) else v for v in row)
+    found: dict[int, str] = {}
+    for at, values in rows:
+        node, decision, note, stamp = ("" if _missing(v) else v for v in values)
+        for column, value in zip(REVIEW_COLUMNS, (node, decision, note, stamp)):
+            if _not_utf8(value):
+                raise InputError(f"{where} {at}: {column}: expected UTF-8 text, got {_shown(value)} "
+                                 "(save the file as UTF-8)")
         try:
-            node_id = _as_int(node)
+            node_id = _node_id(node)
         except ValueError:
-            raise InputError(f"{where} line {line}: node_id: expected an integer node id, got {str(node)!r}") from None
-        if node_id in seen:
-            raise InputError(f"{where} line {line}: node_id {node_id} is reviewed twice (also on line "
-                             f"{seen[node_id]}); expected one row per junction")
-        seen[node_id] = line
-        decision = str(decision).strip()
+            raise InputError(f"{where} {at}: node_id: expected a node id, a whole number from 0 to "
+                             f"{_MAX_NODE_ID}, got {_shown(node)}") from None
+        if node_id in found:
+            raise InputError(f"{where} {at}: node_id {node_id} is reviewed twice (also on {found[node_id]}); "
+                             "expected one row per junction")
+        found[node_id] = at
+        decision = str(decision).strip(_PAD)
         if decision not in DECISIONS:
-            raise InputError(f"{where} line {line}: decision: expected one of {', '.join(DECISIONS)}, "
-                             f"got {decision!r}")
-        stamp = str(stamp).strip()
+            raise InputError(f"{where} {at}: decision: expected one of {', '.join(DECISIONS)}, "
+                             f"got {_shown(decision)}")
+        stamp = str(stamp).strip(_PAD)
         if stamp:
             try:
+                if not stamp.isascii():
+                    raise ValueError(stamp)
                 _dt.datetime.fromisoformat(stamp)
-            except ValueError:
-                raise InputError(f"{where} line {line}: reviewed_at: expected an ISO 8601 date and time "
-                                 f"(for example 2024-05-01T14:03:00+00:00), got {stamp!r}") from None
+            except (ValueError, OverflowError):
+                raise InputError(f"{where} {at}: reviewed_at: expected an ISO 8601 date and time "
+                                 f"(for example 2024-05-01T14:03:00+00:00), got {_shown(stamp)}") from None
         ids.append(node_id)
         decisions.append(decision)
         notes.append(str(note))
         stamps.append(stamp)
     out = pd.DataFrame({"node_id": pd.Series(ids, dtype=np.int64), "decision": pd.Series(decisions, dtype=object),
                         "note": pd.Series(notes, dtype=object), "reviewed_at": pd.Series(stamps, dtype=object)})
-    return out.sort_values("node_id", kind="stable").reset_index(drop=True)
+    return out.sort_values("node_id", kind="stable").reset_index(drop=True), found
+
+
+def _validate(raw: pd.DataFrame, *, where: str = "review") -> pd.DataFrame:
+    """Check an in-memory review table and return it typed; messages name the row position."""
+    return _check_table(raw, where=where)[0]
+
+
+def _check_table(raw: pd.DataFrame, *, where: str) -> tuple[pd.DataFrame, dict[int, str]]:
+    _check_columns(list(raw.columns), where)
+    rows = ((f"row {pos}", values) for pos, values in
+            enumerate(raw[list(REVIEW_COLUMNS)].itertuples(index=False, name=None)))
+    return _check_rows(rows, where=where)
 
 
 def _missing(v: Any) -> bool:
-    return v is None or v is pd.NA or (isinstance(v, float) and np.isnan(v))
+    return v is None or v is pd.NA or (isinstance(v, (float, np.floating)) and np.isnan(v))
 
 
-def _as_int(v: Any) -> int:
-    if isinstance(v, (bool, np.bool_)):
-        raise ValueError(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        if float(v).is_integer():
-            return int(v)
-        raise ValueError(v)
-    text = str(v).strip()
-    return int(text)  # raises ValueError for '', '3.5', 'abc'
+def _read_file(path: Path) -> tuple[pd.DataFrame, dict[int, str]] | None:
+    """Read and check a review file; None when there is none.
+
+    Returns the table and, per node id, the line it is on (the first line of
+    its row: a quoted note may span several).
+    """
+    if not os.path.lexists(path):
+        return None
+    if path.is_dir():
+        raise InputError(f"{path}: expected a file, got a folder (move it away or remove it)")
+    if not path.exists():
+        raise InputError(f"{path}: expected a file, got a link to a missing file")
+    if not path.is_file():
+        raise InputError(f"{path}: expected a regular file, got a special file")
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise InputError(f"{path}: expected a readable file, got: {exc.strerror or exc}") from None
+    # Bytes that are not UTF-8 are kept (as lone surrogates) so that the check
+    # below can name the line and column they are in.
+    text = data.decode("utf-8-sig", errors="surrogateescape")
+    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
+    header: list[str] | None = None
+    rows: list[tuple[str, list[str]]] = []
+    start = 1
+    try:
+        for record in reader:
+            line, start = start, reader.line_num + 1
+            if not any(cell.strip(_PAD) for cell in record):
+                continue  # a blank line or an empty row carries no decision
+            if header is None:
+                header = record
+                _check_columns(header, f"{path} line {line}")
+                continue
+            if len(record) > len(header):
+                raise InputError(f"{path} line {line}: expected at most {len(header)} fields "
+                                 f"({', '.join(header)}), got {len(record)}")
+            cells = dict(zip(header, record + [""] * (len(header) - len(record))))
+            rows.append((f"line {line}", [cells[c] for c in REVIEW_COLUMNS]))
+    except csv.Error as exc:
+        if "field limit" in str(exc):
+            raise InputError(f"{path} line {start}: expected fields of at most {csv.field_size_limit()} "
+                             "characters, got a longer one (a quote that is never closed takes in the lines "
+                             "after it)") from None
+        raise InputError(f"{path} line {start}: expected CSV with matched quotes (a quoted field ends with a "
+                         f"quote followed by a comma or the line end), got: {exc}") from None
+    if header is None:
+        raise InputError(f"{path}: expected a header line {','.join(REVIEW_COLUMNS)}, got an empty file")
+    return _check_rows(rows, where=str(path))
 
 
 def load_review(outdir: str | os.PathLike[str]) -> pd.DataFrame:
     """Read ``OUTDIR/review.csv``.
+
+    Only the file is checked here; :func:`check_review` also checks it
+    against the result (every ``node_id`` a junction of it).
 
     Parameters
     ----------
@@ -158,22 +291,79 @@ def load_review(outdir: str | os.PathLike[str]) -> pd.DataFrame:
     Raises
     ------
     InputError
-        If the file cannot be parsed, a column is missing or unknown, or a
-        row has a non-integer or repeated ``node_id``, a decision outside
-        :data:`DECISIONS` or a ``reviewed_at`` that is not ISO 8601; the
-        message names the line and the value.
+        If the file cannot be read (a folder, unreadable, not UTF-8, not
+        CSV), a column is missing, unknown or repeated, or a row has a
+        ``node_id`` that is not a whole number from 0 to the int64 maximum
+        or is repeated, a decision outside :data:`DECISIONS` or a
+        ``reviewed_at`` that is not ISO 8601. The message is one line naming
+        the file, the line, the column and the value.
     """
-    path = Path(outdir) / REVIEW_FILE
-    if not path.is_file():
-        return empty_review()
-    try:
-        raw = pd.read_csv(path, dtype=str, keep_default_na=False)
-    except pd.errors.EmptyDataError:
-        raise InputError(f"{path}: expected a header line {','.join(REVIEW_COLUMNS)}, got an empty file") from None
-    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path}: expected a CSV file with columns {', '.join(REVIEW_COLUMNS)}: "
-                         f"{str(exc).strip()}") from None
-    return _validate(raw, where=str(path), first_line=2)
+    read = _read_file(Path(outdir) / REVIEW_FILE)
+    return empty_review() if read is None else read[0]
+
+
+def check_review(result, review: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The review of a result, checked in full against that result.
+
+    This is the one check behind every command that reads a review
+    (:func:`apply_review`, so ``summarize --apply-review`` and the study
+    tables, and the sample report), so they agree on what is valid.
+
+    Parameters
+    ----------
+    result : pipeline.tables.Result
+        A result folder read with :func:`pipeline.tables.load_result`.
+    review : DataFrame, optional
+        Columns :data:`REVIEW_COLUMNS`; default: ``review.csv`` of the result
+        folder, read with :func:`load_review` (no rows when there is none).
+
+    Returns
+    -------
+    DataFrame
+        The review as :func:`load_review` returns it.
+
+    Raises
+    ------
+    InputError
+        For everything :func:`load_review` rejects; when a ``node_id`` is not
+        a junction of ``result`` (a ``node_id`` of ``bifurcations.csv``); or
+        when the result has bifurcations switched off but the review has
+        rows. One line naming the file and line (``review row N`` for a
+        table given in memory: its position in ``review``), the column and
+        the value.
+    """
+    if review is None:
+        read = _read_file(Path(result.path) / REVIEW_FILE)
+        table, found = read if read is not None else (empty_review(), {})
+        where = str(Path(result.path) / REVIEW_FILE)
+    else:
+        (table, found), where = _check_table(review, where="review"), "review"
+    if result.summary.get("bifurcations_enabled") is False and len(table):
+        raise InputError(f"{where}: expected no decisions, as this result has no bifurcation table "
+                         f"(bifurcations were switched off); got {len(table)}")
+    bifs = result.bifurcations
+    known = set(bifs["node_id"].astype(np.int64).tolist()) if "node_id" in bifs.columns else set()
+    unknown = [int(n) for n in table["node_id"] if int(n) not in known]
+    if unknown:
+        first = min(unknown, key=lambda n: _line_number(found.get(n)))
+        at = f"{where} {found[first]}" if first in found else where
+        raise InputError(f"{at}: node_id {first} is not a junction of the result in '{result.path}' (expected a "
+                         f"node_id from bifurcations.csv; {_node_kind(result, first)})"
+                         + (f"; {len(unknown) - 1} more unknown" if len(unknown) > 1 else ""))
+    return table
+
+
+def _line_number(at: str | None) -> int:
+    return int(at.split()[-1]) if at else 0
+
+
+def _node_kind(result, node_id: int) -> str:
+    """What ``nodes.csv`` says about ``node_id``, for a message."""
+    nodes = getattr(result, "nodes", None)
+    if nodes is None or not {"node_id", "kind"} <= set(nodes.columns):
+        return "it is not listed there"
+    hit = nodes.loc[nodes["node_id"].astype(np.int64) == node_id, "kind"]
+    return f"nodes.csv lists it as a {hit.iloc[0]} node" if len(hit) else "nodes.csv has no such node"
 
 
 def save_review(outdir: str | os.PathLike[str], review: pd.DataFrame) -> Path:
@@ -201,7 +391,7 @@ def save_review(outdir: str | os.PathLike[str], review: pd.DataFrame) -> Path:
     out = Path(outdir)
     if not out.is_dir():
         raise InputError(f"review: expected an existing result folder, got '{out}'")
-    table = _validate(review, where="review", first_line=0)
+    table = _validate(review, where="review")
     table.loc[table["reviewed_at"] == "", "reviewed_at"] = _now()
     def write(tmp):
         with open(tmp, "w", encoding="utf-8", newline="") as fh:
@@ -228,20 +418,37 @@ def record_decision(review: pd.DataFrame, node_id: int, *, decision: str, note: 
     Raises
     ------
     InputError
-        If ``decision`` is not one of :data:`DECISIONS`.
+        If ``node_id`` is not a whole number from 0 to the int64 maximum, or
+        ``decision`` is not one of :data:`DECISIONS`.
     """
+    node_id = _checked_node_id(node_id)
     if decision not in DECISIONS:
         raise InputError(f"decision: expected one of {', '.join(DECISIONS)}, got {decision!r}")
-    row = pd.DataFrame({"node_id": [int(node_id)], "decision": [decision], "note": [str(note or "")],
+    row = pd.DataFrame({"node_id": [node_id], "decision": [decision], "note": [str(note or "")],
                         "reviewed_at": [reviewed_at or _now()]})
-    rest = review[review["node_id"].astype(np.int64) != int(node_id)]
+    rest = review[review["node_id"].astype(np.int64) != node_id]
     table = pd.concat([rest[list(REVIEW_COLUMNS)], row], ignore_index=True) if len(rest) else row
-    return _validate(table, where="review", first_line=0)
+    return _validate(table, where="review")
 
 
 def clear_decision(review: pd.DataFrame, node_id: int) -> pd.DataFrame:
-    """A copy of ``review`` without the row of ``node_id`` (back to not reviewed)."""
-    return review[review["node_id"].astype(np.int64) != int(node_id)].reset_index(drop=True)
+    """A copy of ``review`` without the row of ``node_id`` (back to not reviewed).
+
+    Raises
+    ------
+    InputError
+        If ``node_id`` is not a whole number from 0 to the int64 maximum.
+    """
+    node_id = _checked_node_id(node_id)
+    return review[review["node_id"].astype(np.int64) != node_id].reset_index(drop=True)
+
+
+def _checked_node_id(node_id: Any) -> int:
+    try:
+        return _node_id(node_id)
+    except ValueError:
+        raise InputError(f"node_id: expected a node id, a whole number from 0 to {_MAX_NODE_ID}, "
+                         f"got {_shown(node_id)}") from None
 
 
 def apply_review(result, review: pd.DataFrame | None = None) -> tuple[dict[str, Any], pd.DataFrame]:
@@ -272,23 +479,15 @@ def apply_review(result, review: pd.DataFrame | None = None) -> tuple[dict[str, 
     Raises
     ------
     InputError
-        If the review names a node that is not a junction of this result, or
-        the result has bifurcations switched off but a review has rows.
+        If :func:`check_review` rejects the review: a malformed file or row,
+        a node that is not a junction of this result, or decisions on a
+        result with bifurcations switched off.
     """
-    review = load_review(result.path) if review is None else _validate(review, where="review", first_line=0)
+    review = check_review(result, review)
     bifs = result.bifurcations.copy()
     summary = dict(result.summary)
     if bifs.shape[1] == 0:  # written without columns: no junction at all
         bifs = pd.DataFrame(columns=_bif.COLUMNS)
-    if summary.get("bifurcations_enabled") is False and len(review):
-        raise InputError(f"review: {len(review)} decision(s) given, but this result has no bifurcation table "
-                         "(bifurcations were switched off)")
-    known = set(bifs["node_id"].astype(np.int64).tolist())
-    unknown = [int(n) for n in review["node_id"] if int(n) not in known]
-    if unknown:
-        raise InputError(f"review: node_id {unknown[0]} is not a junction of the result in '{result.path}' "
-                         f"(expected a node_id from bifurcations.csv)"
-                         + (f"; {len(unknown) - 1} more unknown" if len(unknown) > 1 else ""))
     decision = dict(zip(review["node_id"].tolist(), review["decision"].tolist()))
     note = dict(zip(review["node_id"].tolist(), review["note"].tolist()))
     ids = bifs["node_id"].astype(np.int64)

@@ -524,7 +524,7 @@ def test_report_renders_in_headless_chromium(which, request, tmp_path):
     assert "<h1>vesselflow" in dom and dom.count("<img") == len(list((out / "figures").glob("*.png")))
 
 
-def test_review_decisions_appear_in_the_flagged_table(sample, tmp_path):
+def test_review_decisions_appear_in_the_flagged_table(sample, tmp_path, capsys):
     from pipeline import review
 
     _, out, _ = sample
@@ -537,6 +537,55 @@ def test_review_decisions_appear_in_the_flagged_table(sample, tmp_path):
     assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
     text = (copy / "report.html").read_text(encoding="utf-8")
     assert "two vessels crossing" in text and "artefact" in text
-    (copy / "review.csv").write_text("node_id,decision\n1,maybe\n", encoding="utf-8")  # invalid: still a report
+    # An invalid review stops the report, as it stops summarize --apply-review; the old report stays.
+    old = (copy / "report.html").read_bytes()
+    (copy / "review.csv").write_text("node_id,decision\n1,maybe\n", encoding="utf-8")
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 2
+    assert "missing note, reviewed_at" in _one_error_line(capsys)
+    assert (copy / "report.html").read_bytes() == old
+
+
+_REVIEW_HEAD = "node_id,decision,note,reviewed_at\n"
+
+
+@pytest.mark.parametrize("rows, expected", [
+    ("123456789012345678901234567890,artefact,,\n", r"review.csv line 2: node_id: .*'123456789012345678901234567890'"),
+    ("1e400,artefact,,\n", r"review.csv line 2: node_id: .*'1e400'"),
+    ("{flagged},artefact,,\n{flagged},unsure,,\n", r"review.csv line 3: node_id \d+ is reviewed twice"),
+    ("{flagged},artefact,,\n{end},unsure,,\n", r"review.csv line 3: node_id \d+ is not a junction"),
+], ids=["id-30-digits", "id-1e400", "duplicated-id", "not-a-junction"])
+def test_report_refuses_an_invalid_review(sample, tmp_path, capsys, rows, expected):
+    _, out, _ = sample
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    flagged = pd.read_csv(copy / "bifurcations.csv").query("flagged")["node_id"].iloc[0]
+    nodes = pd.read_csv(copy / "nodes.csv")
+    end = nodes.loc[nodes["kind"] != "junction", "node_id"].iloc[0]
+    (copy / "review.csv").write_text(_REVIEW_HEAD + rows.format(flagged=flagged, end=end), encoding="utf-8")
+    before = _listing(copy)
+    old = (copy / "report.html").read_bytes()
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 2
+    line = _one_error_line(capsys)
+    assert re.search(expected, line), line
+    assert line.startswith("vesselflow: error: report: ")
+    assert _listing(copy) == before and (copy / "report.html").read_bytes() == old
+    # summarize --apply-review rejects the same file with the same words.
+    assert main(["summarize", str(copy), "--apply-review"]) == 2
+    assert _one_error_line(capsys) == line.replace("error: report: ", "error: ", 1)
+
+
+def test_a_bad_review_is_a_note_in_the_study_report(study, tmp_path, capsys):
+    out, rows = study
+    copy = tmp_path / "batch"
+    shutil.copytree(out, copy)
+    sid = rows[2]["sample_id"]
+    (copy / sid / "review.csv").write_text(_REVIEW_HEAD + "123456789012345678901234567890,artefact,,\n",
+                                           encoding="utf-8")
+    # One sample's review does not stop the study report.
     assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
-    assert "review decisions are not shown" in (copy / "report.html").read_text(encoding="utf-8")
+    assert not capsys.readouterr().err
+    text = (copy / "report.html").read_text(encoding="utf-8")
+    section = text[text.index(f'<section id="{report._anchor(sid)}"'):]
+    section = section[:section.index("</section>")]
+    assert "The review of this sample is not valid" in section and "123456789012345678901234567890" in section
+    assert text.count("The review of this sample is not valid") == 2  # the section and the report's notes

@@ -1,12 +1,15 @@
 """Tests of pipeline/review.py: the review.csv format and the reviewed summary (no napari, no Qt)."""
 
 import csv
+import dataclasses
 import hashlib
 import json
 import math
+import re
 import statistics
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -211,3 +214,214 @@ def test_core_does_not_import_napari(folder, tmp_path):
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr[-2000:]
+
+
+# --------------------------------------------------------------------------- malformed review files
+
+HEADER = b"node_id,decision,note,reviewed_at\n"
+# Malformed files, each with the value its one error line must name (a regular expression).
+# None as the content: review.csv is a folder.
+MALFORMED = {
+    "id-30-digits": (HEADER + b"123456789012345678901234567890,artefact,,\n",
+                     r"line 2: node_id: expected .*got '123456789012345678901234567890'"),
+    "id-minus-30-digits": (HEADER + b"-123456789012345678901234567890,artefact,,\n",
+                           r"line 2: node_id: expected .*got '-123456789012345678901234567890'"),
+    "id-past-int64": (HEADER + b"9223372036854775808,artefact,,\n", r"line 2: node_id: .*got '9223372036854775808'"),
+    "id-negative": (HEADER + b"-1,artefact,,\n", r"line 2: node_id: .*got '-1'"),
+    "id-1e400": (HEADER + b"1e400,artefact,,\n", r"line 2: node_id: .*got '1e400'"),
+    "id-nan": (HEADER + b"nan,artefact,,\n", r"line 2: node_id: .*got 'nan'"),
+    "id-inf": (HEADER + b"inf,artefact,,\n", r"line 2: node_id: .*got 'inf'"),
+    "id-float": (HEADER + b"3.5,artefact,,\n", r"line 2: node_id: .*got '3.5'"),
+    "id-empty": (HEADER + b",artefact,,\n", r"line 2: node_id: .*got ''"),
+    # Python's int() accepts all of these; none is a node id a person or vesselflow writes.
+    "id-no-break-space": (HEADER + "\u00a03,artefact,,\n".encode(), r"line 2: node_id: .*got '\\xa03'"),
+    "id-inner-space": (HEADER + b"1 2,artefact,,\n", r"line 2: node_id: .*got '1 2'"),
+    "id-underscore": (HEADER + b"1_0,artefact,,\n", r"line 2: node_id: .*got '1_0'"),
+    "id-arabic-digit": (HEADER + "\u0663,artefact,,\n".encode(), "line 2: node_id: .*got '\u0663'"),
+    "decision": (HEADER + b"0,maybe,,\n", r"line 2: decision: expected one of .*got 'maybe'"),
+    "date": (HEADER + b"0,artefact,,2024-13-45T00:00:00+00:00\n", r"line 2: reviewed_at: .*got '2024-13-45T"),
+    "duplicated-id": (HEADER + b"0,artefact,,\n0,confirmed,,\n", r"line 3: node_id 0 is reviewed twice"),
+    "unknown-column": (b"node_id,decision,note,reviewed_at,score\n0,artefact,,,1\n", r"line 1: .*unknown score"),
+    "repeated-column": (b"node_id,decision,note,reviewed_at,note\n0,artefact,,,\n", r"'note' appears twice"),
+    "too-many-fields": (HEADER + b"0,artefact,,,extra\n", r"line 2: expected at most 4 fields.*got 5"),
+    "unclosed-quote": (HEADER + b'0,artefact,"starts a note,\n1,confirmed,,\n', r"line 2: .*quote"),
+    "non-utf8-note": (HEADER + b"0,artefact,caf\xe9,\n", r"line 2: note: expected UTF-8 text, got .*caf\\xe9"),
+    "non-utf8-header": (b"node_id,d\xe9cision,note,reviewed_at\n0,artefact,,\n", r"line 1: .*expected UTF-8 text"),
+    # The line a person opens: the second row starts on line 4, after a note over two lines.
+    "line-after-multiline-note": (HEADER + b'0,artefact,"two\nlines",\n1,maybe,,\n', r"line 4: decision: .*'maybe'"),
+    "folder": (None, r"expected a file, got a folder"),
+}
+
+
+def _write_review(out, content):
+    path = out / "review.csv"
+    if content is None:
+        path.mkdir()
+        (path / "inside.csv").write_bytes(HEADER)
+    else:
+        path.write_bytes(content)
+    return path
+
+
+def _one_error_line(capsys):
+    captured = capsys.readouterr()
+    err = captured.err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("vesselflow: error: "), err
+    assert "Traceback" not in captured.err and not captured.out
+    return err[0]
+
+
+@pytest.mark.parametrize("content, expected", MALFORMED.values(), ids=MALFORMED.keys())
+def test_malformed_review_is_one_input_error(folder, tmp_path, content, expected):
+    out = _fresh(folder, tmp_path)
+    path = _write_review(out, content)
+    with pytest.raises(InputError, match=expected) as err:
+        review.load_review(out)
+    assert str(err.value).startswith(str(path))  # names the file
+    assert "\n" not in str(err.value)
+    with pytest.raises(InputError, match=expected):
+        review.check_review(tables.load_result(out))
+
+
+@pytest.mark.parametrize("content, expected", MALFORMED.values(), ids=MALFORMED.keys())
+def test_malformed_review_stops_summarize_and_report(folder, tmp_path, capsys, content, expected):
+    out = _fresh(folder, tmp_path)
+    _write_review(out, content)
+    assert main(["summarize", str(out), "--apply-review"]) == 2
+    line = _one_error_line(capsys)
+    assert re.search(expected, line) and "review.csv" in line, line
+    assert not (out / "summary_reviewed.json").exists()
+    listing = sorted(p.name for p in out.iterdir())
+    assert main(["report", str(out), "--quiet"]) == 2
+    line = _one_error_line(capsys)
+    assert re.search(expected, line) and "review.csv" in line, line
+    assert sorted(p.name for p in out.iterdir()) == listing  # no report.html, no figures/, no temporary folder
+
+
+def test_unreadable_review_is_one_input_error(folder, tmp_path, capsys, monkeypatch):
+    out = _fresh(folder, tmp_path)
+    _write_review(out, HEADER)
+    real = Path.read_bytes
+
+    def denied(self):
+        if self.name == "review.csv":
+            raise PermissionError(13, "Permission denied", str(self))
+        return real(self)
+
+    # The tests may run as root, which chmod does not stop: refuse the read instead.
+    monkeypatch.setattr(Path, "read_bytes", denied)
+    with pytest.raises(InputError, match=r"review.csv: expected a readable file.*Permission denied"):
+        review.load_review(out)
+    assert main(["summarize", str(out), "--apply-review"]) == 2
+    assert "Permission denied" in _one_error_line(capsys)
+    assert main(["report", str(out), "--quiet"]) == 2
+    assert "Permission denied" in _one_error_line(capsys)
+    assert not (out / "summary_reviewed.json").exists() and not (out / "report.html").exists()
+
+
+def test_unknown_node_id_is_rejected_alike_by_summarize_and_report(folder, tmp_path, capsys):
+    out = _fresh(folder, tmp_path)
+    ends = [r["node_id"] for r in _csv_rows(out / "nodes.csv") if r["kind"] != "junction"]
+    flagged = [r["node_id"] for r in _csv_rows(out / "bifurcations.csv") if r["flagged"] == "True"]
+    # Syntactically valid, so the file itself reads; the second row names an end point, not a junction.
+    (out / "review.csv").write_bytes(HEADER + f"{flagged[0]},artefact,,\n{ends[0]},confirmed,,\n".encode())
+    assert len(review.load_review(out)) == 2
+    with pytest.raises(InputError, match=rf"review.csv line 3: node_id {ends[0]} is not a junction"):
+        review.check_review(tables.load_result(out))
+    with pytest.raises(InputError, match=rf"review.csv line 3: node_id {ends[0]} is not a junction"):
+        review.apply_review(tables.load_result(out))
+    assert main(["summarize", str(out), "--apply-review"]) == 2
+    from_summarize = _one_error_line(capsys)
+    assert main(["report", str(out), "--quiet"]) == 2
+    from_report = _one_error_line(capsys)
+    # The same check, word for word; report only says which command failed.
+    assert from_report == from_summarize.replace("vesselflow: error: ", "vesselflow: error: report: ", 1)
+    assert not (out / "summary_reviewed.json").exists() and not (out / "report.html").exists()
+
+
+def test_check_review_returns_the_validated_table(folder, tmp_path):
+    out = _fresh(folder, tmp_path)
+    result = tables.load_result(out)
+    assert len(review.check_review(result)) == 0  # no review.csv: no decisions
+    flagged = [int(r["node_id"]) for r in _csv_rows(out / "bifurcations.csv") if r["flagged"] == "True"]
+    r = review.record_decision(review.empty_review(), flagged[0], decision="artefact")
+    assert review.check_review(result, r)["node_id"].tolist() == [flagged[0]]
+    review.save_review(out, r)
+    got = review.check_review(result)
+    assert got["node_id"].tolist() == [flagged[0]] and got["node_id"].dtype == np.int64
+    with pytest.raises(InputError, match=r"review row 1: node_id 123456 is not a junction .*has no such node"):
+        review.check_review(result, review.record_decision(r, 123456, decision="unsure"))
+    off = dataclasses.replace(result, summary={**result.summary, "bifurcations_enabled": False})
+    with pytest.raises(InputError, match=r"review.csv: expected no decisions.*switched off\); got 1"):
+        review.check_review(off)
+
+
+@pytest.mark.parametrize("value", [10**30, -(10**30), 2**63, -1, 3.5, float("inf"), float("nan"), "1e400", True])
+def test_in_memory_review_rejects_bad_node_ids(tmp_path, value):
+    import pandas as pd
+
+    table = pd.DataFrame({"node_id": [value], "decision": ["artefact"], "note": [""], "reviewed_at": [""]},
+                         dtype=object)
+    with pytest.raises(InputError, match=r"review row 0: node_id: expected"):
+        review.save_review(tmp_path, table)
+    assert not list(tmp_path.iterdir())
+    if not isinstance(value, (float, bool, str)):
+        with pytest.raises(InputError, match=r"node_id: expected"):
+            review.record_decision(review.empty_review(), value, decision="artefact")
+
+
+def test_legitimate_csv_variants_still_read(folder, tmp_path, capsys):
+    out = _fresh(folder, tmp_path)
+    flagged = [r["node_id"] for r in _csv_rows(out / "bifurcations.csv") if r["flagged"] == "True"]
+    a, b = flagged[:2]
+    note = 'two vessels, "kissing"\nsecond line of the note'
+    # A byte-order mark (spreadsheets write one), CRLF line ends, a quoted note over two lines, a blank line,
+    # an empty row, spaces after the commas and a row that leaves out its empty last field.
+    text = ("\ufeffnode_id,decision,note,reviewed_at\r\n"
+            f'{a},artefact,"{note.replace(chr(34), chr(34) * 2)}",2024-05-01T14:03:00+00:00\r\n'
+            "\r\n,,,\r\n"
+            f" {b}, unsure ,caf\u00e9\r\n")
+    (out / "review.csv").write_bytes(text.encode("utf-8"))
+    got = review.load_review(out)
+    assert got["node_id"].tolist() == sorted([int(a), int(b)])
+    by_id = dict(zip(got["node_id"], zip(got["decision"], got["note"])))
+    assert by_id[int(a)] == ("artefact", note) and by_id[int(b)] == ("unsure", "caf\u00e9")
+    assert main(["summarize", str(out), "--apply-review"]) == 0
+    assert json.loads((out / "summary_reviewed.json").read_text())["bifurcations_excluded_by_review"] == 1
+    capsys.readouterr()
+    # The note over two lines survives a save and a read (RFC 4180 quoting).
+    review.save_review(out, got)
+    assert review.load_review(out)["note"].tolist() == got["note"].tolist()
+    assert _csv_rows(out / "review.csv")[0]["note"] == note
+
+
+def test_damaged_review_files_never_raise_anything_but_input_error(folder, tmp_path):
+    # Byte-level damage (flipped, dropped and inserted bytes) of a valid review: every outcome is a table
+    # or an InputError, never another exception.
+    out = _fresh(folder, tmp_path)
+    flagged = [r["node_id"] for r in _csv_rows(out / "bifurcations.csv") if r["flagged"] == "True"]
+    good = (HEADER + "".join(f'{n},artefact,"a note, with ""quotes""",2024-05-01T14:03:00+00:00\n'
+                             for n in flagged).encode())
+    result = tables.load_result(out)
+    rng = np.random.default_rng(7)
+    alphabet = np.frombuffer(b'0123456789-+.eE ,"\n\r\t\x00\xff\xc3', dtype=np.uint8)
+    outcomes = set()
+    for _ in range(300):
+        data = bytearray(good)
+        for _ in range(int(rng.integers(1, 4))):
+            i = int(rng.integers(0, len(data)))
+            how = int(rng.integers(0, 3))
+            if how == 0:
+                data[i] = int(rng.choice(alphabet))
+            elif how == 1:
+                del data[i]
+            else:
+                data[i:i] = bytes(rng.choice(alphabet, size=int(rng.integers(1, 30))))
+        (out / "review.csv").write_bytes(bytes(data))
+        try:
+            review.check_review(result)
+            outcomes.add("read")
+        except InputError as exc:
+            assert "\n" not in str(exc), str(exc)
+            outcomes.add("rejected")
+    assert outcomes == {"read", "rejected"}
