@@ -14,6 +14,7 @@ angles, flags).
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 
@@ -23,10 +24,17 @@ import pandas as pd
 
 from . import bifurcations as bif_step
 from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
+from . import reading
 from .config import load_config
 from .errors import InputError
 
 __all__ = ["Analysis", "analyze", "analyze_file"]
+
+# Median segment radius, µm, beyond which the spacing is more likely wrong
+# than the sample (common practice): capillaries have radii of 2-4 µm and the
+# widest vessels micro-CT casts resolve, even an aorta, stay below 1 mm;
+# below 0.1 µm is far under optical resolution.
+_PLAUSIBLE_MEDIAN_RADIUS_UM = (0.1, 1000.0)
 
 
 @dataclass
@@ -96,7 +104,8 @@ def _check_spacing(spacing, ndim):
     return tuple(sp)
 
 
-def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), progress=None):
+def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), progress=None,
+            memory_limit_bytes=None):
     """Turn a binary vessel mask into a measured vessel graph.
 
     Parameters
@@ -116,6 +125,10 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         named outlets, ends cut by the volume border are outlets.
     progress : callable or None
         Called as ``progress(step, seconds)`` after each step.
+    memory_limit_bytes : int or None
+        Memory the analysis may use; default: the available memory. A volume
+        whose estimate (:func:`pipeline.reading.check_memory`, counting the
+        isotropic thinning grid) exceeds it is refused before any work.
 
     Returns
     -------
@@ -140,6 +153,9 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         arr = arr[None]
     if planar is None:
         planar = arr.shape[0] == 1
+    cc = cfg["centrelines"]
+    reading.check_memory("mask array", arr.shape, sp, planar=planar, memory_limit_bytes=memory_limit_bytes,
+                         max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"])
     if not arr.any():
         raise InputError("mask: expected some vessel voxels, got an empty mask (every voxel is 0)")
     if arr.all():
@@ -162,7 +178,6 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     original_shape = arr.shape
     del arr
     tick("cleaning")
-    cc = cfg["centrelines"]
     cl = centrelines.extract_centrelines(
         cleaned.mask, spacing=sp, offset=cleaned.offset, original_shape=original_shape, planar=planar,
         max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"],
@@ -191,6 +206,12 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         td = measures.tissue_distance(cleaned.mask, cleaned.offset, original_shape, sp, planar=planar)
     summary = measures.summarize(segs, nodes, cleaned=cleaned, spacing=sp, planar=planar,
                                  original_shape=original_shape, tissue_dist=td)
+    median_radius = float(segs["radius_um"].median()) if len(segs) else math.nan
+    lo, hi = _PLAUSIBLE_MEDIAN_RADIUS_UM
+    if math.isfinite(median_radius) and not lo <= median_radius <= hi:
+        shown = ", ".join(f"{v:g}" for v in sp)
+        warnings.append(f"median vessel radius {median_radius:.3g} µm is outside {lo:g}-{hi:g} µm, the vessels "
+                        f"microscopy and micro-CT resolve; check the voxel spacing ({shown} µm, Z Y X) and its unit")
     tick("summary")
     notes = []
     level_table = pd.DataFrame()
@@ -313,7 +334,13 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     limit = memory_limit_bytes
     if limit is None and cfg["input"]["max_memory_gb"] is not None:
         limit = int(cfg["input"]["max_memory_gb"] * 2**30)
-    img = reading.read_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"], memory_limit_bytes=limit)
+    if limit is None:
+        # One figure, taken before the mask is loaded, for both memory checks.
+        limit = reading.available_memory_bytes()
+    cc = cfg["centrelines"]
+    img = reading.read_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"], memory_limit_bytes=limit,
+                            implausible_spacing=cfg["input"]["implausible_spacing"],
+                            max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"])
     for w in img.warnings:
         if warn is not None:
             warn(w)
@@ -321,7 +348,7 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     if progress is not None:
         progress("reading", read_s)
     result = analyze(img.mask, spacing=img.spacing, config=cfg, planar=img.planar, inlets=inlets, outlets=outlets,
-                     progress=progress)
+                     progress=progress, memory_limit_bytes=limit)
     for w in result.run["warnings"]:
         if warn is not None:
             warn(w)

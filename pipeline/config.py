@@ -72,6 +72,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
     "input": {
         "threshold": Param(None, float, allow_none=True),
         "max_memory_gb": Param(None, float, low=0.0, low_open=True, allow_none=True),
+        "implausible_spacing": Param("warn", str, choices=("warn", "error")),
     },
     "cleaning": {
         "min_object_volume_um3": Param(1000.0, float, low=0.0),

@@ -25,6 +25,16 @@ Conventions
 * A voxel is vessel when it is non-zero, provided the image has at most two
   distinct values one of which is 0. Anything else needs an explicit threshold
   (vessel = value > threshold).
+* Spacing is checked for plausibility before any pixel data are loaded: a
+  value outside :data:`PLAUSIBLE_SPACING_UM` (a unit mix-up: nanometres or
+  millimetres taken as µm) or in-plane axes far apart with z finer than one
+  of them (values given in X Y Z order) gives one warning, or an error when
+  asked for (``implausible_spacing='error'``). A NIfTI header without a
+  spatial unit is read in the one unit (µm or mm) that makes its ``pixdim``
+  plausible, and refused when both or neither do.
+* The memory check counts the isotropic grid that the centrelines step thins
+  on when it resamples (see :func:`thinning_grid_shape`), so a spacing that
+  would make that grid astronomical fails here, before any allocation.
 """
 
 from __future__ import annotations
@@ -52,6 +62,10 @@ __all__ = [
     "mask_from_array",
     "estimate_memory_bytes",
     "available_memory_bytes",
+    "check_memory",
+    "thinning_grid_shape",
+    "spacing_problem",
+    "PLAUSIBLE_SPACING_UM",
     "SUPPORTED_EXTENSIONS",
     "DEFAULT_SPACING_WARNING",
     "sha256_file",
@@ -71,6 +85,26 @@ SUPPORTED_EXTENSIONS: tuple[str, ...] = (
 DEFAULT_SPACING_WARNING = "no voxel spacing in the file or arguments; assuming 1 µm on every axis"
 
 _AXES_EXPECTED = "expected a 2-D or 3-D binary mask (Y, X or Z, Y, X)"
+
+# Voxel sizes, µm, that the imaging this package is for produces (common
+# practice): optical microscopy resolves about 0.2 µm at best, so even
+# oversampled pixels stay above about 0.05 µm; micro-CT of vascular casts has
+# voxels of a few to tens of µm, whole-animal scans up to about 100 µm. A
+# value outside is almost always a unit mix-up: nanometres read as µm are
+# 1000x too large, millimetres read as µm 1000x too small.
+PLAUSIBLE_SPACING_UM: tuple[float, float] = (0.05, 100.0)
+
+# Scanners and cameras sample x and y alike, so the in-plane pixel sizes of a
+# stack agree or nearly so, and z is the coarsest axis or equal (common
+# practice). In-plane sizes further apart than this factor, with z finer than
+# the coarser of them, look like a spacing given in X Y Z order.
+_IN_PLANE_RATIO_MAX = 3.0
+
+_IMPLAUSIBLE_SPACING_MODES = ("warn", "error")
+
+# Spatial unit codes of the NIfTI-1 header as nibabel names them (nifti1.h:
+# xyzt_units & 0x07; 1 metre, 2 millimetre, 3 micrometre, 0 unspecified).
+_NIFTI_UNIT_TO_UM = {"meter": 1e6, "mm": 1e3, "micron": 1.0}
 
 # Slabs of about 4 Mi voxels keep per-step temporaries (bool comparisons,
 # bincounts) in the tens of MiB whatever the volume size.
@@ -137,7 +171,11 @@ class MaskImage:
         ``min(dy, dx)``.
     spacing_source : str
         Where the spacing came from: ``'argument'``, ``'ome'``, ``'imagej'``,
-        ``'tiff-resolution'``, ``'nifti'``, ``'npz'`` or ``'default'``.
+        ``'tiff-resolution'``, ``'nifti'``, ``'npz'`` or ``'default'``; for a
+        NIfTI header without a spatial unit, ``'nifti-no-unit-um'`` or
+        ``'nifti-no-unit-mm'``: the unit chosen because only it makes the
+        ``pixdim`` values a plausible voxel size (the choice is also in
+        ``warnings``).
     planar : bool
         True when the input has a single z plane (a 2-D image).
     path : str or None
@@ -182,7 +220,8 @@ class MaskImage:
 # --------------------------------------------------------------------------- #
 
 
-def estimate_memory_bytes(shape: Sequence[int], bytes_per_voxel: float = 16.0) -> int:
+def estimate_memory_bytes(shape: Sequence[int], bytes_per_voxel: float = 16.0, *,
+                          grid_shape: Sequence[int] | None = None) -> int:
     """Estimate the memory needed to analyse a volume.
 
     Parameters
@@ -192,17 +231,87 @@ def estimate_memory_bytes(shape: Sequence[int], bytes_per_voxel: float = 16.0) -
     bytes_per_voxel : float, optional
         Peak working memory per voxel of the whole analysis (mask, distance
         map, labels, skeleton, ...). Default 16.
+    grid_shape : sequence of int, optional
+        Shape of the isotropic grid the centrelines are thinned on when the
+        volume is resampled (:func:`thinning_grid_shape`).
 
     Returns
     -------
     int
-        ``ceil(n_voxels * bytes_per_voxel)`` in bytes.
+        ``ceil(n_voxels * bytes_per_voxel)`` in bytes; with ``grid_shape``,
+        the larger of that and ``n_grid * bytes_per_voxel + 2 * n_voxels``.
+
+    Notes
+    -----
+    On a resampled volume the thinning, distance and radius steps work on
+    the grid, while the mask and its cleaned copy (one byte per voxel each)
+    stay alive on the input grid.
     """
     bpv = _positive_number("bytes_per_voxel", bytes_per_voxel)
-    n_voxels = 1
-    for n in shape:
-        n_voxels *= int(n)  # Python ints: no overflow for huge shapes
-    return int(math.ceil(n_voxels * bpv))
+    n_voxels = math.prod(int(n) for n in shape)  # Python ints: no overflow for huge shapes
+    need = n_voxels * bpv
+    if grid_shape is not None:
+        n_grid = math.prod(int(n) for n in grid_shape)
+        need = max(need, n_grid * bpv + 2 * n_voxels)
+    return int(math.ceil(need))
+
+
+def thinning_grid_shape(
+    shape: Sequence[int],
+    spacing: Sequence[float],
+    *,
+    planar: bool = False,
+    max_anisotropy: float | None = None,
+    resample_spacing_um: float | None = None,
+) -> tuple[int, int, int] | None:
+    """Shape of the isotropic grid the centrelines step thins a volume on.
+
+    Follows the rule of :func:`pipeline.centrelines.extract_centrelines`: the
+    volume is resampled when its coarsest spacing exceeds the finest by more
+    than ``max_anisotropy`` (to ``resample_spacing_um``, or the finest
+    spacing), or when ``resample_spacing_um`` is set and differs from the
+    spacing.
+
+    Parameters
+    ----------
+    shape : sequence of 3 int
+        Volume shape ``(Z, Y, X)``.
+    spacing : sequence of 3 float
+        Voxel spacing in µm, ``(dz, dy, dx)``.
+    planar : bool, optional
+        In-plane analysis: only y and x are resampled.
+    max_anisotropy : float, optional
+        ``centrelines.max_anisotropy``; None: no resampling for anisotropy.
+    resample_spacing_um : float, optional
+        ``centrelines.resample_spacing_um``.
+
+    Returns
+    -------
+    tuple of 3 int or None
+        The grid's shape, or None when the input grid is thinned as it is.
+        An upper bound: the step resamples the mask cropped to its vessels.
+    """
+    grid = _thinning_grid(shape, spacing, planar, max_anisotropy, resample_spacing_um)
+    return None if grid is None else grid[0]
+
+
+def _thinning_grid(shape: Sequence[int], spacing: Sequence[float], planar: bool,
+                   max_anisotropy: float | None,
+                   resample_spacing_um: float | None) -> tuple[tuple[int, int, int], float] | None:
+    axes = (1, 2) if planar else (0, 1, 2)
+    sp = [float(spacing[a]) for a in axes]
+    if max_anisotropy is not None and max(sp) / min(sp) > max_anisotropy:
+        target = float(resample_spacing_um or min(sp))
+    elif resample_spacing_um is not None and not np.allclose(sp, resample_spacing_um):
+        target = float(resample_spacing_um)
+    else:
+        return None
+    out = [int(n) for n in shape]
+    for a in axes:
+        # The output shape of pipeline.centrelines.resample_isotropic, in Python
+        # floats and ints so that an absurd grid is a number, not an overflow.
+        out[a] = int(math.floor((out[a] - 1) * float(spacing[a]) / target + 1e-9)) + 1
+    return (out[0], out[1], out[2]), target
 
 
 def available_memory_bytes() -> int | None:
@@ -294,26 +403,79 @@ def _cgroup_memory_limit() -> int | None:
 
 
 def _format_bytes(n: float) -> str:
-    for unit, size in (("GiB", _GIB), ("MiB", float(1 << 20)), ("KiB", 1024.0)):
+    for unit, size in (("PiB", float(1 << 50)), ("TiB", float(1 << 40)), ("GiB", _GIB),
+                       ("MiB", float(1 << 20)), ("KiB", 1024.0)):
         if n >= size:
             return f"{n / size:.1f} {unit}"
     return f"{int(n)} bytes"
 
 
-def _check_memory(label: str, shape3: tuple[int, int, int], bytes_per_voxel: float,
-                  memory_limit_bytes: float | None, notes: list[str]) -> None:
-    need = estimate_memory_bytes(shape3, bytes_per_voxel)
+def check_memory(
+    label: str,
+    shape: Sequence[int],
+    spacing: Sequence[float],
+    *,
+    planar: bool = False,
+    bytes_per_voxel: float = 16.0,
+    memory_limit_bytes: float | None = None,
+    max_anisotropy: float | None = None,
+    resample_spacing_um: float | None = None,
+) -> str | None:
+    """Refuse a volume whose analysis would not fit in memory.
+
+    Parameters
+    ----------
+    label : str
+        How messages name the volume, e.g. ``"mask 'a.tif'"``.
+    shape : sequence of 3 int
+        Volume shape ``(Z, Y, X)``.
+    spacing : sequence of 3 float
+        Voxel spacing in µm, ``(dz, dy, dx)``.
+    planar : bool, optional
+        In-plane analysis.
+    bytes_per_voxel : float, optional
+        Peak analysis memory per voxel (see :func:`estimate_memory_bytes`).
+    memory_limit_bytes : float, optional
+        Memory the analysis may use; default: :func:`available_memory_bytes`.
+    max_anisotropy, resample_spacing_um : float, optional
+        The ``centrelines`` options, to count the thinning grid
+        (:func:`thinning_grid_shape`).
+
+    Returns
+    -------
+    str or None
+        A note when the available memory could not be determined (nothing
+        was checked), else None.
+
+    Raises
+    ------
+    InputError
+        When the estimate exceeds the limit; the message gives the shapes,
+        both sizes, and the likely mistake when the spacing is implausible.
+    """
+    shape3 = tuple(int(n) for n in shape)
+    grid = _thinning_grid(shape3, spacing, planar, max_anisotropy, resample_spacing_um)
+    need = estimate_memory_bytes(shape3, bytes_per_voxel, grid_shape=None if grid is None else grid[0])
     limit = memory_limit_bytes if memory_limit_bytes is not None else available_memory_bytes()
     if limit is None:
-        notes.append("could not determine the available memory; memory check skipped")
-        return
-    if need > limit:
-        z, y, x = shape3
-        raise InputError(
-            f"{label} ({z} x {y} x {x} voxels) needs about {_format_bytes(need)} to analyse; "
-            f"only {_format_bytes(limit)} are available; crop or downsample the mask, "
-            "or raise the memory limit"
-        )
+        return "could not determine the available memory; memory check skipped"
+    if need <= limit:
+        return None
+    z, y, x = shape3
+    what = f"{z} x {y} x {x} voxels"
+    remedy = "crop or downsample the mask, or raise the memory limit"
+    if grid is not None:
+        (gz, gy, gx), target = grid
+        what += f"; {gz} x {gy} x {gx} voxels once resampled to {target:g} µm for thinning"
+        remedy = ("crop or downsample the mask, set centrelines.resample_spacing_um to a coarser "
+                  "spacing, or raise the memory limit")
+    message = (f"{label} ({what}) needs about {_format_bytes(need)} to analyse; "
+               f"only {_format_bytes(limit)} are available; {remedy}")
+    problem = spacing_problem(spacing, planar=planar)
+    if problem is not None:
+        shown = _fmt_shown(spacing, planar)
+        message += f"; the voxel spacing {_fmt_axes(planar)} = {shown} µm looks wrong: {problem}"
+    raise InputError(message)
 
 
 # --------------------------------------------------------------------------- #
@@ -371,6 +533,104 @@ def _parse_spacing_argument(spacing: Any) -> tuple[float, ...] | None:
     return tuple(out)
 
 
+def _check_mode(implausible_spacing: Any) -> str:
+    if not isinstance(implausible_spacing, str) or implausible_spacing not in _IMPLAUSIBLE_SPACING_MODES:
+        raise InputError(f"implausible_spacing: expected 'warn' or 'error', got {implausible_spacing!r}")
+    return implausible_spacing
+
+
+def _optional_positive(name: str, value: Any) -> float | None:
+    return None if value is None else _positive_number(name, value)
+
+
+# --------------------------------------------------------------------------- #
+# Spacing plausibility
+# --------------------------------------------------------------------------- #
+
+
+def _plausible(values: Sequence[float]) -> bool:
+    lo, hi = PLAUSIBLE_SPACING_UM
+    return all(lo <= v <= hi for v in values)
+
+
+def spacing_problem(spacing: Sequence[float], *, planar: bool = False) -> str | None:
+    """The likely mistake behind an implausible voxel spacing, in words.
+
+    Parameters
+    ----------
+    spacing : sequence of 3 float
+        Voxel spacing in µm, ``(dz, dy, dx)``.
+    planar : bool, optional
+        Only ``dy`` and ``dx`` matter (a single plane).
+
+    Returns
+    -------
+    str or None
+        None when every value lies within :data:`PLAUSIBLE_SPACING_UM` and,
+        for a stack, the in-plane values agree within a factor of 3 or z is
+        the coarsest axis; otherwise what looks wrong and what was likely
+        meant.
+
+    Examples
+    --------
+    >>> spacing_problem((2.0, 0.6, 0.6)) is None
+    True
+    >>> spacing_problem((0.6, 0.6, 3.0)).startswith("in-plane spacings")
+    True
+    """
+    dz, dy, dx = (float(v) for v in spacing)
+    values = (dy, dx) if planar else (dz, dy, dx)
+    lo, hi = PLAUSIBLE_SPACING_UM
+    problems = []
+    if any(v > hi for v in values):
+        text = f"values above {hi:g} µm are coarser than microscopy and micro-CT voxels"
+        scaled = tuple(v / 1000 for v in values)
+        if _plausible(scaled):
+            text += (f"; 1000x too large, likely nanometres given as µm (or µm values labelled as "
+                     f"millimetres), i.e. {_fmt_spacing(scaled)} µm")
+        problems.append(text)
+    if any(v < lo for v in values):
+        text = f"values below {lo:g} µm are finer than optical microscopy resolves"
+        scaled = tuple(v * 1000 for v in values)
+        if _plausible(scaled):
+            text += f"; 1000x too small, likely millimetres given as µm, i.e. {_fmt_spacing(scaled)} µm"
+        problems.append(text)
+    if not problems and not planar:
+        fine, coarse = sorted((dy, dx))
+        if coarse > _IN_PLANE_RATIO_MAX * fine and dz < coarse:
+            problems.append(
+                f"in-plane spacings dy, dx differ {coarse / fine:.3g}x and z is not the coarsest axis, "
+                f"where stacks have dy ≈ dx and dz ≥ dy; likely given in X Y Z order instead of Z Y X, "
+                f"i.e. {_fmt_spacing((dx, dy, dz))} µm"
+            )
+    return "; ".join(problems) or None
+
+
+def _fmt_axes(planar: bool) -> str:
+    return "(dy, dx)" if planar else "(dz, dy, dx)"
+
+
+def _fmt_shown(spacing: Sequence[float], planar: bool) -> str:
+    return _fmt_spacing(tuple(spacing)[1:] if planar else spacing)
+
+
+def _check_spacing_plausible(label: str, spacing: tuple[float, float, float], where: str, planar: bool,
+                             mode: str, notes: list[str]) -> None:
+    """One warning line in ``notes``, or an InputError in mode 'error'."""
+    problem = spacing_problem(spacing, planar=planar)
+    if problem is None:
+        return
+    text = (f"{label}: voxel spacing {_fmt_axes(planar)} = {_fmt_shown(spacing, planar)} µm ({where}) "
+            f"looks wrong: {problem}")
+    if mode == "error":
+        lo, hi = PLAUSIBLE_SPACING_UM
+        raise InputError(
+            f"{text}; expected voxel sizes of {lo:g}-{hi:g} µm in Z Y X order: pass the right spacing "
+            "(--spacing Z Y X in µm), or set input.implausible_spacing to warn to go on"
+        )
+    notes.append(f"{text}; check it, or pass the right spacing (--spacing Z Y X in µm)")
+
+
 # --------------------------------------------------------------------------- #
 # Spacing from metadata
 # --------------------------------------------------------------------------- #
@@ -386,6 +646,7 @@ class _FileSpacing:
     source: str
     description: str  # e.g. "the OME metadata", for messages
     dz_default: float = 1.0  # µm assumed for a missing dz on 3-D data
+    note: str | None = None  # for the warnings when this spacing is used
 
 
 def _unit_factor(unit: Any) -> float | None:
@@ -436,6 +697,8 @@ def _resolve_spacing(
         result = (dz, dy, dx)
         source = "argument"
     elif found is not None:
+        if found.note is not None:
+            notes.append(found.note)
         for axis, value in (("dz", found.dz), ("dy", found.dy), ("dx", found.dx)):
             if value is None or (axis == "dz" and planar):
                 continue
@@ -978,6 +1241,7 @@ def _open_nifti(path: Path, path_text: str, label: str, stack: contextlib.ExitSt
         dtype = np.dtype(header.get_data_dtype())
         zooms = tuple(header.get_zooms())
         space_unit = header.get_xyzt_units()[0]
+        unit_code = int(header["xyzt_units"]) & 0x07  # nifti1.h XYZT_TO_SPACE
     except Exception as exc:
         raise _corrupt("NIfTI", path_text, _short_reason(exc)) from None
 
@@ -993,23 +1257,18 @@ def _open_nifti(path: Path, path_text: str, label: str, stack: contextlib.ExitSt
     _check_dtype(label, dtype)
 
     found: _FileSpacing | None = None
+    problem: str | None = None
     if len(zooms) >= 2:
-        factor = {"meter": 1e6, "mm": 1e3, "micron": 1.0}.get(space_unit)
+        pixdim = [_float_from_metadata(v) for v in zooms[: 3 if len(shape) >= 3 else 2]]
+        factor = _NIFTI_UNIT_TO_UM.get(space_unit)
+        source = "nifti"
+        note = None
         if factor is None:
-            factor = 1e3
-            assumed = True
-        else:
-            assumed = False
-        zx = _float_from_metadata(zooms[0]) * factor
-        zy = _float_from_metadata(zooms[1]) * factor
-        zz = _float_from_metadata(zooms[2]) * factor if len(zooms) >= 3 and len(shape) >= 3 else None
-        found = _FileSpacing(zz, zy, zx, "nifti", "the NIfTI header", dz_default=factor)
-        if assumed:
-            values = (zy, zx) if layout.planar else (zz if zz is not None else factor, zy, zx)
-            notes.append(
-                f"the NIfTI header of {label} gives no spatial unit; assuming millimetres as the "
-                f"NIfTI standard says, i.e. {_fmt_spacing(values)} µm"
-            )
+            factor, source, note, problem = _unitless_nifti_unit(label, pixdim, unit_code, layout.planar)
+        if problem is None:
+            zx, zy = pixdim[0] * factor, pixdim[1] * factor
+            zz = pixdim[2] * factor if len(pixdim) == 3 else None
+            found = _FileSpacing(zz, zy, zx, source, "the NIfTI header", dz_default=factor, note=note)
 
     def load() -> tuple[np.ndarray, bool]:
         try:
@@ -1024,7 +1283,52 @@ def _open_nifti(path: Path, path_text: str, label: str, stack: contextlib.ExitSt
         arr = arr.reshape(tuple(spatial))
         return arr.transpose(2, 1, 0), writable
 
-    return _Opened(layout, dtype, found, None, load, log)
+    return _Opened(layout, dtype, found, problem, load, log)
+
+
+def _unitless_nifti_unit(label: str, pixdim: list[float], unit_code: int,
+                         planar: bool) -> tuple[float, str, str | None, str | None]:
+    """µm per pixdim unit for a header without a spatial unit, or why none can be chosen.
+
+    The NIfTI-1 standard (nifti1.h) defines spatial unit code 0 as
+    "unspecified units" and names no default. Files written without a unit
+    hold millimetres (MRI tools) as well as micrometres (microscopy exports),
+    so the unit is the one, µm or mm, that makes every ``pixdim`` value a
+    plausible voxel size (:data:`PLAUSIBLE_SPACING_UM`).
+
+    Returns
+    -------
+    factor : float
+        µm per pixdim unit.
+    source : str
+        ``'nifti-no-unit-um'`` or ``'nifti-no-unit-mm'``.
+    note : str or None
+        The choice, for the warnings (used only when no spacing argument
+        overrides the header).
+    problem : str or None
+        When both or neither unit fit: the message asking for a spacing.
+    """
+    values = pixdim[:2] if planar else pixdim
+    axes = "(x, y)" if len(values) == 2 else "(x, y, z)"
+    shown = f"pixdim {axes} = {_fmt_spacing(values)}"
+    header = f"{label}: the NIfTI header gives no spatial unit (xyzt_units spatial code {unit_code})"
+    if not all(math.isfinite(v) and v > 0 for v in values):
+        # Not a size in any unit: the spacing check names the bad value.
+        return 1.0, "nifti", None, None
+    fits = [(name, word, factor) for name, word, factor in (("um", "micrometres", 1.0), ("mm", "millimetres", 1e3))
+            if _plausible([v * factor for v in values])]
+    lo, hi = PLAUSIBLE_SPACING_UM
+    if len(fits) == 1:
+        name, word, factor = fits[0]
+        spacing = [v * factor for v in values][::-1]  # (z,) y, x
+        note = (
+            f"{header}; {shown} is a plausible voxel size ({lo:g}-{hi:g} µm) only in {word}, so the "
+            f"spacing is read as {_fmt_spacing(spacing)} µm ({'Y X' if len(spacing) == 2 else 'Z Y X'}); "
+            "pass --spacing Z Y X in µm if that is wrong"
+        )
+        return factor, f"nifti-no-unit-{name}", note, None
+    how = "plausible both as µm and as mm" if fits else "plausible neither as µm nor as mm"
+    return 1.0, "nifti", None, f"{header} and {shown} is {how} (voxel sizes of {lo:g}-{hi:g} µm)"
 
 
 def _read_npy_header(fp: Any) -> tuple[tuple[int, ...], bool, np.dtype]:
@@ -1172,6 +1476,9 @@ def read_mask(
     threshold: float | None = None,
     memory_limit_bytes: float | None = None,
     bytes_per_voxel: float = 16.0,
+    implausible_spacing: str = "warn",
+    max_anisotropy: float | None = None,
+    resample_spacing_um: float | None = None,
 ) -> MaskImage:
     """Read a binary vessel mask from a file.
 
@@ -1192,6 +1499,13 @@ def read_mask(
         Memory the analysis may use; default: :func:`available_memory_bytes`.
     bytes_per_voxel : float, optional
         Peak analysis memory per voxel used for the estimate. Default 16.
+    implausible_spacing : {'warn', 'error'}, optional
+        What an implausible spacing (:func:`spacing_problem`) gives: a line
+        in ``warnings`` (default) or an :class:`InputError`.
+    max_anisotropy, resample_spacing_um : float, optional
+        The ``centrelines`` options of the analysis that follows; with them
+        the memory estimate counts the isotropic thinning grid
+        (:func:`thinning_grid_shape`). Default: no resampling is counted.
 
     Returns
     -------
@@ -1202,22 +1516,28 @@ def read_mask(
     InputError
         Missing, unsupported, truncated or corrupt file; more than three real
         axes; a non-binary image without ``threshold``; NaN values; an empty
-        or all-vessel mask; an invalid spacing; or a volume that would not fit
-        in memory (checked from the header, before pixel data are loaded).
+        or all-vessel mask; an invalid spacing; a NIfTI header without a unit
+        whose values do not tell µm from mm; an implausible spacing with
+        ``implausible_spacing='error'``; or a volume that would not fit in
+        memory (checked from the header, before pixel data are loaded).
 
     Notes
     -----
     The spacing is taken, in order of precedence, from ``spacing``, OME-XML
     ``PhysicalSize*``, ImageJ ``unit``/``spacing`` with the TIFF resolution,
     TIFF resolution tags in pixels per centimetre, the NIfTI ``pixdim`` with
-    ``xyzt_units`` (unknown unit: millimetres, with a warning), the ``.npz``
-    ``spacing`` array; otherwise 1 µm with a warning.
+    ``xyzt_units`` (no unit: µm or mm, whichever alone makes the values a
+    plausible voxel size, with a warning; an error when that is not clear),
+    the ``.npz`` ``spacing`` array; otherwise 1 µm with a warning.
     """
     arg_spacing = _parse_spacing_argument(spacing)
     threshold = _check_threshold(threshold)
     bytes_per_voxel = _positive_number("bytes_per_voxel", bytes_per_voxel)
     if memory_limit_bytes is not None:
         memory_limit_bytes = _positive_number("memory_limit_bytes", memory_limit_bytes)
+    mode = _check_mode(implausible_spacing)
+    max_anisotropy = _optional_positive("max_anisotropy", max_anisotropy)
+    resample_spacing_um = _optional_positive("resample_spacing_um", resample_spacing_um)
 
     path_text = os.fspath(path)
     if not isinstance(path_text, str):
@@ -1237,7 +1557,14 @@ def read_mask(
         spacing3, source = _resolve_spacing(
             label, arg_spacing, opened.spacing, opened.spacing_problem, layout.planar, notes
         )
-        _check_memory(label, layout.shape3, bytes_per_voxel, memory_limit_bytes, notes)
+        if source != "default":
+            where = "from the spacing argument" if source == "argument" else f"from {opened.spacing.description}"
+            _check_spacing_plausible(label, spacing3, where, layout.planar, mode, notes)
+        note = check_memory(label, layout.shape3, spacing3, planar=layout.planar,
+                            bytes_per_voxel=bytes_per_voxel, memory_limit_bytes=memory_limit_bytes,
+                            max_anisotropy=max_anisotropy, resample_spacing_um=resample_spacing_um)
+        if note is not None:
+            notes.append(note)
         raw, may_overwrite = opened.load()
         mask = _binarise(label, raw, threshold=threshold, in_place=may_overwrite)
         del raw
@@ -1262,6 +1589,7 @@ def mask_from_array(
     *,
     spacing: Sequence[float] | None = None,
     threshold: float | None = None,
+    implausible_spacing: str = "warn",
 ) -> MaskImage:
     """Make a :class:`MaskImage` from an in-memory array.
 
@@ -1275,6 +1603,8 @@ def mask_from_array(
         Without it 1 µm is assumed on every axis, with a warning.
     threshold : float, optional
         Binarise as ``value > threshold``; required for non-binary images.
+    implausible_spacing : {'warn', 'error'}, optional
+        As for :func:`read_mask`.
 
     Returns
     -------
@@ -1289,12 +1619,15 @@ def mask_from_array(
     """
     arg_spacing = _parse_spacing_argument(spacing)
     threshold = _check_threshold(threshold)
+    mode = _check_mode(implausible_spacing)
     label = "mask array"
     arr = np.asarray(array)
     _check_dtype(label, arr.dtype)
     layout, stored = _layout_positional(label, arr.shape)
     notes: list[str] = []
     spacing3, source = _resolve_spacing(label, arg_spacing, None, None, layout.planar, notes)
+    if source == "argument":
+        _check_spacing_plausible(label, spacing3, "from the spacing argument", layout.planar, mode, notes)
     digest = _sha256_array(arr)
     raw = arr.reshape(stored).reshape(layout.shape3)
     mask = _binarise(label, raw, threshold=threshold, in_place=False)

@@ -44,6 +44,8 @@ def test_override_merges_and_casts():
         ({"radii": {"statistic": "mode"}}, "radii.statistic"),
         ({"cleaning": {"min_object_volume_um3": float("nan")}}, "cleaning.min_object_volume_um3"),
         ({"pruning": {"max_rounds": True}}, "pruning.max_rounds"),
+        ({"input": {"implausible_spacing": "ignore"}}, "input.implausible_spacing"),
+        ({"input": {"implausible_spacing": True}}, "input.implausible_spacing"),
     ],
 )
 def test_bad_values_name_the_key(overrides, fragment):

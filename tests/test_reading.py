@@ -3,13 +3,16 @@
 from __future__ import annotations
 
 import hashlib
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
 import pytest
 import tifffile
 
-from pipeline import reading
+from pipeline import centrelines, reading, synthetic
+from pipeline.analysis import analyze, analyze_file
+from pipeline.cli import main
 from pipeline.errors import InputError
 from pipeline.reading import (
     DEFAULT_SPACING_WARNING,
@@ -22,6 +25,8 @@ from pipeline.reading import (
 
 # (dz, dy, dx) in µm; all different so that an axis mix-up shows.
 SPACING = (2.0, 0.5, 0.25)
+
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def _volume(shape=(6, 7, 8), seed=0) -> np.ndarray:
@@ -143,7 +148,9 @@ def test_nifti_axes_are_converted_from_xyz_to_zyx(tmp_path, suffix):
 
 @pytest.mark.parametrize(
     ("unit", "factor", "warned"),
-    [("mm", 1000.0, False), ("micron", 1.0, False), ("meter", 1e6, False), ("unknown", 1000.0, True)],
+    # No unit: 0.25-2 is a plausible voxel size in µm only (250-2000 µm is not
+    # a microscope voxel), so it is read as µm, with a note.
+    [("mm", 1000.0, False), ("micron", 1.0, False), ("meter", 1e6, False), ("unknown", 1.0, True)],
 )
 def test_nifti_units_converted_to_micrometres(tmp_path, unit, factor, warned):
     data = _volume()
@@ -153,7 +160,7 @@ def test_nifti_units_converted_to_micrometres(tmp_path, unit, factor, warned):
     nib.save(img, path)
     out = read_mask(path)
     assert out.spacing == pytest.approx((2.0 * factor, 0.5 * factor, 0.25 * factor))
-    assert any("millimetres" in w for w in out.warnings) is warned
+    assert any("gives no spatial unit" in w for w in out.warnings) is warned
 
 
 @pytest.mark.parametrize(
@@ -682,3 +689,231 @@ def test_thresholds_outside_the_stored_range():
     np.testing.assert_array_equal(out.mask, data > 150)
     with pytest.raises(InputError, match="no vessel voxel"):
         mask_from_array(data.astype(np.float16), threshold=1e300)
+
+
+# --------------------------------------------------------------------------- #
+# Spacing plausibility
+# --------------------------------------------------------------------------- #
+
+
+def _unitless_nifti(path, pixdim, shape=(6, 7, 8)):
+    """A NIfTI of ``_volume(shape)`` with pixdim ``(x, y, z)`` and no unit.
+
+    ``xyzt_units`` 0 is NIFTI_UNITS_UNKNOWN in the NIfTI-1 standard (nifti1.h).
+    """
+    img = nib.Nifti1Image(np.ascontiguousarray(_volume(shape).T), np.diag([*pixdim, 1.0]))
+    img.header.set_xyzt_units(0)
+    nib.save(img, path)
+    return path
+
+
+@pytest.mark.parametrize(
+    ("pixdim", "spacing", "source", "unit_word"),
+    [
+        # A two-photon voxel (x, y, z): 0.6 x 0.6 x 2 µm; as mm it would be
+        # 600 µm pixels, far coarser than any microscope or micro-CT voxel.
+        ((0.6, 0.6, 2.0), (2.0, 0.6, 0.6), "nifti-no-unit-um", "micrometres"),
+        # 1 µm voxels stored in mm; as µm they would be 1 nm, below optical resolution.
+        ((0.001, 0.001, 0.001), (1.0, 1.0, 1.0), "nifti-no-unit-mm", "millimetres"),
+    ],
+)
+def test_unitless_nifti_takes_the_only_plausible_unit_and_records_it(tmp_path, pixdim, spacing, source, unit_word):
+    path = _unitless_nifti(tmp_path / "u.nii.gz", pixdim)
+    out = read_mask(path)
+    assert out.spacing == pytest.approx(spacing)
+    assert out.spacing_source == source
+    notes = [w for w in out.warnings if "gives no spatial unit" in w]
+    assert len(notes) == 1
+    assert unit_word in notes[0] and str(path) in notes[0] and "--spacing" in notes[0]
+    # A spacing argument replaces the header, and with it the note on its unit.
+    out = read_mask(path, spacing=(3.0, 0.5, 0.5))
+    assert out.spacing_source == "argument"
+    assert not any("gives no spatial unit" in w for w in out.warnings)
+
+
+@pytest.mark.parametrize(
+    ("pixdim", "why"),
+    [
+        # 0.08 µm (oversampled super-resolution) or 80 µm (micro-CT): both plausible.
+        ((0.08, 0.08, 0.08), "plausible both as µm and as mm"),
+        # 0.001 µm or 5000 µm on some axis: neither.
+        ((0.001, 0.001, 5.0), "plausible neither as µm nor as mm"),
+    ],
+)
+def test_unitless_nifti_without_a_clear_unit_asks_for_spacing(tmp_path, pixdim, why):
+    path = _unitless_nifti(tmp_path / "u.nii", pixdim)
+    with pytest.raises(InputError, match="--spacing") as info:
+        read_mask(path)
+    message = str(info.value)
+    assert "gives no spatial unit" in message and why in message and str(path) in message
+    assert "\n" not in message
+    # An explicit spacing settles it.
+    out = read_mask(path, spacing=(2.0, 0.6, 0.6))
+    assert out.spacing == (2.0, 0.6, 0.6) and out.spacing_source == "argument"
+
+
+# Voxel sizes of real stacks (dz, dy, dx), µm: two-photon, confocal,
+# light-sheet, micro-CT (the ranges of the presets in configs/).
+PLAUSIBLE_SPACINGS = [SPACING, (1.0, 1.0, 1.0), (5.0, 1.0, 1.0), (3.0, 0.6, 0.6), (0.3, 0.1, 0.1),
+                      (20.0, 20.0, 20.0), (1.0, 2.0, 2.0)]
+
+IMPLAUSIBLE_SPACINGS = [
+    # (0.6, 0.6, 3) µm in X Y Z order given as Z Y X: in-plane axes 5x apart, z finest.
+    ((0.6, 0.6, 3.0), "(0.6, 0.6, 3)", "order"),
+    # 2 x 0.6 x 0.6 µm written in nanometres.
+    ((2000.0, 600.0, 600.0), "(2000, 600, 600)", "nanometres"),
+    # 2 x 0.6 x 0.6 µm written in millimetres.
+    ((0.002, 0.0006, 0.0006), "(0.002, 0.0006, 0.0006)", "millimetres"),
+]
+
+
+def _read_with_spacing(how, tmp_path, spacing, **kwargs):
+    data = _volume()
+    if how == "argument":
+        path = tmp_path / "m.npy"
+        np.save(path, data)
+        return read_mask(path, spacing=spacing, **kwargs)
+    if how == "npz":
+        path = tmp_path / "m.npz"
+        np.savez(path, mask=data, spacing=np.array(spacing))
+        return read_mask(path, **kwargs)
+    return mask_from_array(data, spacing=spacing, **kwargs)
+
+
+@pytest.mark.parametrize("how", ["argument", "npz", "array"])
+@pytest.mark.parametrize("spacing", PLAUSIBLE_SPACINGS)
+def test_plausible_spacing_gives_no_warning(tmp_path, how, spacing):
+    out = _read_with_spacing(how, tmp_path, spacing, implausible_spacing="error")
+    assert out.spacing == spacing
+    assert not any("spacing" in w for w in out.warnings)
+
+
+@pytest.mark.parametrize("how", ["argument", "npz", "array"])
+@pytest.mark.parametrize(("spacing", "shown", "mistake"), IMPLAUSIBLE_SPACINGS)
+def test_implausible_spacing_warns_once_or_fails_when_asked(tmp_path, how, spacing, shown, mistake):
+    out = _read_with_spacing(how, tmp_path, spacing)
+    assert out.spacing == spacing  # a warning, the values are kept
+    hits = [w for w in out.warnings if "voxel spacing" in w]
+    assert len(hits) == 1
+    assert shown in hits[0] and mistake in hits[0] and "\n" not in hits[0]
+    with pytest.raises(InputError, match="implausible_spacing") as info:
+        _read_with_spacing(how, tmp_path, spacing, implausible_spacing="error")
+    assert shown in str(info.value) and mistake in str(info.value)
+
+
+def test_planar_spacing_checks_in_plane_values_only(tmp_path):
+    plane = _volume()[2]
+    assert not mask_from_array(plane, spacing=(0.6, 0.6), implausible_spacing="error").warnings
+    with pytest.raises(InputError, match="nanometres"):
+        mask_from_array(plane, spacing=(600.0, 600.0), implausible_spacing="error")
+
+
+@pytest.mark.parametrize("mode", ["ignore", None, True])
+def test_bad_implausible_spacing_option_fails(tmp_path, mode):
+    with pytest.raises(InputError, match=r"implausible_spacing: expected 'warn' or 'error', got"):
+        mask_from_array(_volume(), spacing=SPACING, implausible_spacing=mode)
+
+
+def test_implausible_spacing_error_from_config_writes_nothing(tmp_path):
+    path = tmp_path / "m.npy"
+    np.save(path, _volume())
+    out = tmp_path / "res"
+    with pytest.raises(InputError, match=r"nanometres.*input\.implausible_spacing"):
+        analyze_file(path, out, spacing=(2000, 600, 600), config={"input": {"implausible_spacing": "error"}})
+    assert not out.exists()
+
+
+# --------------------------------------------------------------------------- #
+# Memory of the isotropic thinning grid
+# --------------------------------------------------------------------------- #
+
+
+@pytest.mark.parametrize(
+    ("spacing", "max_anisotropy", "resample"),
+    [
+        ((2.0, 0.5, 0.5), 1.5, None),  # anisotropic: the finest spacing
+        ((2.0, 0.5, 0.5), 1.5, 0.7),  # anisotropic: the configured spacing
+        ((1.2, 1.0, 1.0), 1.5, None),  # below the anisotropy limit: no grid
+        ((1.0, 1.0, 1.0), 1.5, 0.5),  # isotropic, resampled on request
+        ((1.0, 1.0, 1.0), 1.5, 1.0),  # already at the requested spacing: no grid
+    ],
+)
+def test_thinning_grid_shape_is_the_grid_centrelines_thins_on(spacing, max_anisotropy, resample):
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=12, radius_um=2.5), spacing=spacing)
+    cl = centrelines.extract_centrelines(mask, spacing=spacing, offset=(0, 0, 0), original_shape=mask.shape,
+                                         max_anisotropy=max_anisotropy, resample_spacing_um=resample)
+    grid = reading.thinning_grid_shape(mask.shape, spacing, max_anisotropy=max_anisotropy,
+                                       resample_spacing_um=resample)
+    if cl.resampled:
+        assert grid == cl.grid_shape
+    else:
+        assert grid is None
+
+
+@pytest.mark.parametrize(
+    ("options", "grid"),
+    [
+        ({"resample_spacing_um": 0.1}, "101 x 31 x 18 voxels"),
+        ({"max_anisotropy": 1.5}, "41 x 13 x 8 voxels"),  # finest spacing, 0.25 µm
+    ],
+)
+def test_memory_check_counts_the_resampled_grid(tmp_path, options, grid):
+    path = tmp_path / "m.npy"
+    np.save(path, _volume((6, 7, 8)))
+    limit = 2 * estimate_memory_bytes((6, 7, 8))
+    assert read_mask(path, spacing=SPACING, memory_limit_bytes=limit).shape == (6, 7, 8)
+    with pytest.raises(InputError, match="needs about") as info:
+        read_mask(path, spacing=SPACING, memory_limit_bytes=limit, **options)
+    assert grid in str(info.value)
+
+
+TWO_PHOTON = ROOT / "configs" / "two-photon-window.yaml"
+
+
+@pytest.mark.parametrize("case", ["nifti-says-mm", "spacing-in-nm"])
+def test_1000x_spacing_with_two_photon_preset_is_exit_2_before_any_work(tmp_path, capsys, case):
+    # 0.6 x 0.6 x 2 µm voxels taken as 600 x 600 x 2000 µm: the preset's 1 µm
+    # thinning grid would have about 1e14 voxels.
+    data = _volume((64, 64, 64))
+    if case == "nifti-says-mm":
+        path = tmp_path / "m.nii.gz"
+        img = nib.Nifti1Image(np.ascontiguousarray(data.T), np.diag([0.6, 0.6, 2.0, 1.0]))
+        img.header.set_xyzt_units("mm")  # the values are µm, the header says mm
+        nib.save(img, path)
+        extra = []
+    else:
+        path = tmp_path / "m.npy"
+        np.save(path, data)
+        extra = ["--spacing", "2000", "600", "600"]
+    out = tmp_path / "res"
+    code = main(["analyze", str(path), "-o", str(out), "--quiet", "--config", str(TWO_PHOTON), *extra])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len(err) == 1 and err[0].startswith("vesselflow: error: ")
+    assert "needs about" in err[0] and "resampled to 1 µm" in err[0]
+    assert "(2000, 600, 600)" in err[0] and "nanometres" in err[0]
+    assert not out.exists()
+
+
+def test_analyze_checks_memory_of_the_resampled_grid_before_work():
+    with pytest.raises(InputError, match=r"mask array \(64 x 64 x 64 voxels; .* resampled to 1 µm.*needs about"):
+        analyze(_volume((64, 64, 64)), spacing=(2000.0, 600.0, 600.0),
+                config={"centrelines": {"resample_spacing_um": 1.0}})
+
+
+# --------------------------------------------------------------------------- #
+# Plausibility of the measured radii
+# --------------------------------------------------------------------------- #
+
+
+@pytest.mark.parametrize(("scale", "warned"), [(1.0, False), (500.0, True), (0.01, True)])
+def test_implausible_median_radius_is_a_run_warning(scale, warned):
+    # A 4-voxel radius tube: 4 µm at 1 µm voxels, 2 mm at 500 µm, 0.04 µm at 10 nm.
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=60, radius_um=4), spacing=(1, 1, 1))
+    config = {"cleaning": {"min_object_volume_um3": 0.0},
+              "pruning": {"min_spur_length_um": 0.0, "min_fragment_length_um": 0.0}}
+    res = analyze(mask, spacing=(scale, scale, scale), config=config)
+    hits = [w for w in res.run["warnings"] if "median vessel radius" in w]
+    assert len(hits) == int(warned)
+    if warned:
+        assert "spacing" in hits[0]
