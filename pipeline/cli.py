@@ -72,6 +72,7 @@ def _parser():
     s.add_argument("--specks", type=int, default=0)
     s.add_argument("--holes", type=int, default=0)
     s.add_argument("--overwrite", action="store_true")
+    s.add_argument("--quiet", action="store_true", help="no progress lines")
 
     b = sub.add_parser("batch", help="analyse a whole study (a folder or a sample sheet) on Dask")
     b.add_argument("input", help="folder of mask files (groups = first sub-folders) or a sample sheet .csv "
@@ -203,7 +204,7 @@ def _cmd_synth(args):
     mask, truth = synthetic.synthesize(args.kind, spacing=tuple(args.spacing), seed=args.seed,
                                        roughness=args.roughness, specks=args.specks, holes=args.holes)
     synthetic.write_volume(out, mask, spacing=tuple(args.spacing), truth=truth)
-    print(f"vesselflow: wrote {out} {mask.shape} and its ground truth", file=sys.stderr)
+    _Reporter(args.quiet).info(f"wrote {out} {mask.shape} and its ground truth")
     return 0
 
 

@@ -2053,19 +2053,22 @@ def write_volume(
     d = _spacing(spacing)
     if compression is not None and not isinstance(compression, str):
         raise _bad("compression", "None or a compression name such as 'zlib'", compression)
+    from .tables import write_atomic
+
     p = Path(path)
     data = np.where(arr != 0, np.uint8(255), np.uint8(0))
-    tifffile.imwrite(
-        p,
+    # Atomic writes: a full disk leaves the earlier file (or none), never half a volume.
+    write_atomic(p, lambda tmp: tifffile.imwrite(
+        tmp,
         data,
         imagej=True,
         resolution=(1.0 / d[2], 1.0 / d[1]),
         metadata={"spacing": float(d[0]), "unit": "um", "axes": "ZYX"},
         compression=compression,
-    )
+    ))
     if truth is not None:
         text = json.dumps(truth, separators=(",", ":"), default=_json_default)
-        truth_path_for(p).write_text(text + "\n", encoding="utf-8")
+        write_atomic(truth_path_for(p), lambda tmp: tmp.write_text(text + "\n", encoding="utf-8"))
     return p
 
 

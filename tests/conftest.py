@@ -61,6 +61,13 @@ def radius_errors(truth, result):
     return np.asarray(out)
 
 
+def write_ybranch(path, radius, *, spacing=(1.0, 1.0, 1.0)):
+    """Write a Y-branch mask of parent radius ``radius`` µm (30 µm arms) as an ImageJ TIFF with its truth."""
+    net = synthetic.y_branch(parent_radius_um=radius, parent_length_um=30, daughter_length_um=30)
+    mask, truth = synthetic.rasterize(net, spacing=spacing)
+    synthetic.write_volume(path, mask, spacing=spacing, truth=truth)
+
+
 def _tree_snapshot(folder):
     """{relative path: bytes or 'dir'} of everything under ``folder``, hidden entries included."""
     from pathlib import Path

@@ -14,17 +14,12 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from conftest import write_ybranch
 from pipeline import batch, synthetic
 from pipeline.cli import main
 from pipeline.tables import RESULT_FILES, load_result
 
 SPACING = (1.0, 1.0, 1.0)
-
-
-def _ybranch(path, radius):
-    net = synthetic.y_branch(parent_radius_um=radius, parent_length_um=30, daughter_length_um=30)
-    mask, truth = synthetic.rasterize(net, spacing=SPACING)
-    synthetic.write_volume(path, mask, spacing=SPACING, truth=truth)
 
 
 @pytest.fixture(scope="module")
@@ -35,10 +30,10 @@ def study(tmp_path_factory):
     vols.mkdir()
     rows = []
     for i, r in enumerate((4.0, 4.5, 5.0)):
-        _ybranch(vols / f"ctrl{i}.tif", r)
+        write_ybranch(vols / f"ctrl{i}.tif", r)
         rows.append((f"ctrl{i}", f"volumes/ctrl{i}.tif", "control"))
     for i, r in enumerate((6.0, 6.5)):
-        _ybranch(vols / f"trt{i}.tif", r)
+        write_ybranch(vols / f"trt{i}.tif", r)
         rows.append((f"trt{i}", f"volumes/trt{i}.tif", "treated"))
     good = (vols / "ctrl0.tif").read_bytes()
     (vols / "corrupt.tif").write_bytes(good[: len(good) // 3])  # truncated in its image data
@@ -378,7 +373,7 @@ def test_a_result_of_the_same_run_counts_as_done(tmp_path):
     # first one wrote. It was analysed by this run: "done", not "skipped".
     # A later run finds the same result and skips it.
     path = tmp_path / "y.tif"
-    _ybranch(path, 4.0)
+    write_ybranch(path, 4.0)
     sample = batch.find_samples(tmp_path)[0]
     out = tmp_path / "out" / sample.sample_id
     first = batch.process_sample(sample, str(out), None, batch_run="run-a")

@@ -18,18 +18,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from conftest import fill_disk
+from conftest import fill_disk, write_ybranch
 from pipeline import batch, synthetic
 from pipeline.cli import main
 from pipeline.tables import load_result
 
 SPACING = (1.0, 1.0, 1.0)
-
-
-def _ybranch(path, radius):
-    net = synthetic.y_branch(parent_radius_um=radius, parent_length_um=30, daughter_length_um=30)
-    mask, truth = synthetic.rasterize(net, spacing=SPACING)
-    synthetic.write_volume(path, mask, spacing=SPACING, truth=truth)
 
 
 @pytest.fixture(scope="module")
@@ -38,7 +32,7 @@ def sheet(tmp_path_factory):
     root = tmp_path_factory.mktemp("bsafe")
     rows = []
     for i, (r, g) in enumerate(((4.0, "control"), (4.5, "control"), (6.0, "treated"), (6.5, "treated"))):
-        _ybranch(root / f"s{i}.tif", r)
+        write_ybranch(root / f"s{i}.tif", r)
         rows.append(f"s{i},{root / f's{i}.tif'},{g}\n")
     path = root / "sheet.csv"
     path.write_text("sample_id,path,group\n" + "".join(rows), encoding="utf-8")

@@ -240,3 +240,26 @@ def test_report_on_a_full_disk_is_one_line(result_on_full_disk, capsys, snapshot
     line = _one_error_line(capsys)
     assert "No space left on device" in line and "report.html" in line
     assert snapshot(result_on_full_disk) == before
+
+
+@pytest.mark.parametrize("command", ["analyze", "synth", "demo", "batch"])
+def test_every_command_on_a_read_only_disk_is_one_line(command, mask_tif, small_disk, tmp_path, capsys):
+    disk = small_disk(1024, readonly=True)
+    sheet = tmp_path / "sheet.csv"
+    sheet.write_text(f"sample_id,path,group\ny,{mask_tif},all\n", encoding="utf-8")
+    args = {"analyze": ["analyze", str(mask_tif), "-o", str(disk / "res")],
+            "synth": ["synth", "tube", "-o", str(disk / "t.tif")],
+            "demo": ["demo", "--input-dir", str(mask_tif.parent), "-o", str(disk / "demo")],
+            "batch": ["batch", str(sheet), "-o", str(disk / "study"), "--workers", "1"]}[command]
+    assert main([*args, "--quiet"]) == 1
+    line = _one_error_line(capsys)
+    assert "Read-only file system" in line and str(disk) in line, line
+
+
+def test_synth_on_a_full_disk_leaves_nothing(small_disk, capsys):
+    disk = small_disk(1024)
+    filler = fill_disk(disk)
+    os.truncate(filler, filler.stat().st_size - 4096)
+    assert main(["synth", "bed", "-o", str(disk / "bed.tif")]) == 1
+    assert "No space left on device" in _one_error_line(capsys)
+    assert sorted(p.name for p in disk.iterdir()) == ["filler.bin"]
