@@ -323,3 +323,19 @@ def test_ctrl_c_prints_one_line(many, tmp_path):
     assert proc.returncode == 130
     assert len(after) == 1 and "interrupted" in after[0], rest
     assert _state(out)["state"] == "interrupted"
+
+
+def test_batch_files_honour_the_umask(sheet, tmp_path):
+    import stat
+
+    out = tmp_path / "out"
+    old = os.umask(0o027)  # a lab group may read, others not
+    try:
+        assert main(["batch", str(sheet), "-o", str(out), "--workers", "1", "--quiet"]) == 0
+    finally:
+        os.umask(old)
+    modes = {p.relative_to(out).as_posix(): stat.S_IMODE(p.stat().st_mode) for p in [out, *out.rglob("*")]}
+    # POSIX: mkdir(2) 0777 and open(2) 0666, less the umask 027.
+    wrong = {k: oct(m) for k, m in modes.items()
+             if m != (0o750 if (out / k).is_dir() else 0o640)}
+    assert not wrong, wrong
