@@ -24,6 +24,7 @@ import pandas as pd
 
 from . import bifurcations as bif_step
 from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
+from . import radii as radii_step
 from . import reading
 from .config import load_config
 from .errors import InputError
@@ -189,6 +190,9 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     graph_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
                            min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"])
     tick("graph")
+    if cfg["radii"]["estimator"] == "wall_fit":
+        _fit_wall_radii(g, cleaned, sp, planar)
+        tick("radii")
     segs, keys, smoothed = measures.segment_table(g, grid_spacing=cl.grid_spacing, radii_config=cfg["radii"],
                                                   measures_config=cfg["measures"])
     alive = np.flatnonzero(g.node_alive)
@@ -255,6 +259,21 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     return Analysis(segments=segs, nodes=nodes, graph=G, summary=summary, centrelines=smoothed,
                     centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=level_table,
                     bifurcations=bif_table, run=run)
+
+
+def _fit_wall_radii(g, cleaned, spacing, planar):
+    """Replace each segment's distance-map radii by wall-fit radii (pipeline/radii.py)."""
+    keys = list(g.seg_path)
+    if not keys:
+        return
+    lens = np.array([len(g.seg_path[s]) for s in keys], dtype=np.int64)
+    off = np.r_[0, np.cumsum(lens)]
+    P = np.vstack([g.seg_path[s] for s in keys])
+    R0 = np.concatenate([g.seg_radii[s] for s in keys])
+    R, _ = radii_step.wall_radii(cleaned.mask, spacing=spacing, offset=cleaned.offset, points_um=P, offsets=off,
+                                 radii_um=R0, planar=planar)
+    for i, s in enumerate(keys):
+        g.seg_radii[s] = R[off[i]:off[i + 1]]
 
 
 def _resolve_nodes(specs, nodes, segments, what):

@@ -68,7 +68,7 @@ COMPARISON_COLUMNS = ("measure", "group_a", "group_b", "n_a", "mean_a", "sd_a", 
                       "sd_b", "median_b", "difference", "mann_whitney_u", "p_value", "q_value")
 # Order in which one sample's steps run; a failure is charged to the step after
 # the last one that finished.
-STEPS = ("reading", "cleaning", "centrelines", "graph", "measures", "summary", "levels", "flow", "bifurcations",
+STEPS = ("reading", "cleaning", "centrelines", "graph", "radii", "measures", "summary", "levels", "flow", "bifurcations",
          "writing")
 _ID_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
 
@@ -398,7 +398,8 @@ def _failed_step(done_steps, config):
     """The step a failure is charged to: the one after the last that finished."""
     if not done_steps:
         return "reading"
-    order = [st for st in STEPS if st != "flow" or config["flow"]["enabled"]]
+    order = [st for st in STEPS if (st != "flow" or config["flow"]["enabled"])
+             and (st != "radii" or config["radii"]["estimator"] == "wall_fit")]
     last = done_steps[-1]
     return order[min(order.index(last) + 1, len(order) - 1)] if last in order else "writing"
 

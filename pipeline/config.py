@@ -85,6 +85,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
     },
     "radii": {
         "half_voxel_correction": Param(True, bool),
+        "estimator": Param("wall_fit", str, choices=("wall_fit", "distance_map")),
         "junction_exclusion_radii": Param(1.0, float, low=0.0, high=10.0),
         "statistic": Param("trimmed_mean", str, choices=("median", "mean", "trimmed_mean")),
     },
