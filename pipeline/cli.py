@@ -100,6 +100,13 @@ def _parser():
     d.add_argument("--overwrite", action="store_true")
     d.add_argument("--quiet", action="store_true")
     d.add_argument("--report", action="store_true", help="also write each volume's report.html")
+
+    c = sub.add_parser("score", help="score a result against the ground truth of a synthetic volume")
+    c.add_argument("outdir", metavar="RESULT_DIR", help="result folder (from analyze)")
+    c.add_argument("truth", metavar="TRUTH.json", help="the volume's ground truth, NAME.truth.json (from synth)")
+    c.add_argument("-o", "--output", metavar="SCORE.json", help="also write the scores as JSON to this file "
+                                                                "(outside the result folder)")
+    c.add_argument("--overwrite", action="store_true", help="replace an existing score file")
     _review_parsers(sub)
     return p
 
@@ -324,6 +331,41 @@ def _cmd_view(args):
     return 0
 
 
+def _cmd_score(args):
+    import json
+
+    from . import scoring, tables
+
+    out = Path(args.output) if args.output else None
+    if out is not None:
+        if out.suffix.lower() != ".json":
+            raise InputError(f"--output: expected a .json file name, got '{out}'")
+        if out.is_dir():
+            raise InputError(f"--output: expected a file name, got the folder '{out}'")
+        if Path(args.outdir).resolve() in out.resolve().parents:
+            raise InputError(f"--output: expected a file outside the result folder '{args.outdir}' (a result "
+                             f"folder holds only the result's own files), got '{out}'")
+        if out.exists() or out.is_symlink():
+            if not args.overwrite:
+                raise InputError(f"--output: '{out}' exists; pass --overwrite to replace it")
+            try:
+                old = json.loads(out.read_text(encoding="utf-8"))
+            except (OSError, ValueError):
+                old = None
+            if not (isinstance(old, dict) and old.get("format") == scoring.SCORE_FORMAT):
+                raise InputError(f"--overwrite: '{out}' is not a score file vesselflow wrote; it is never "
+                                 "replaced: choose another file name")
+    truth = scoring.load_truth(args.truth)
+    s = scoring.score(args.outdir, truth)  # reads and checks the result folder
+    print(scoring.format_score(s))
+    if out is not None:
+        doc = {**s, "result": str(args.outdir), "truth": str(args.truth)}
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tables.write_atomic(out, lambda tmp: tables.write_json(tmp, doc))
+        print(f"vesselflow: wrote {out}", file=sys.stderr)
+    return 0
+
+
 def _check_junction(result, node_id):
     b = result.bifurcations
     if len(b) and int(node_id) in set(b["node_id"].astype(int).tolist()):
@@ -342,7 +384,8 @@ def main(argv=None):
     parser = _parser()
     args = parser.parse_args(argv)
     handlers = {"analyze": _cmd_analyze, "synth": _cmd_synth, "demo": _cmd_demo, "batch": _cmd_batch,
-                "report": _cmd_report, "summarize": _cmd_summarize, "view": _cmd_view}
+                "report": _cmd_report, "summarize": _cmd_summarize, "view": _cmd_view,
+                "score": _cmd_score}
     try:
         return handlers[args.command](args)
     except (InputError, ConfigError) as exc:
