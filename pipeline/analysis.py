@@ -188,6 +188,8 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     g = graph_step.build_graph(cl)
     p = cfg["pruning"]
     graph_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
+                           junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
+                           voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
                            min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"])
     tick("graph")
     if cfg["radii"]["estimator"] == "wall_fit":

@@ -350,8 +350,9 @@ def _polyline_length(p):
     return float(np.sqrt((np.diff(p, axis=0) ** 2).sum(axis=1)).sum())
 
 
-def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20):
-    """Remove spurs and small fragments; dissolve degree-2 nodes (in place).
+def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
+                junction_merge_radii=1.0, wall_loop_radii=2.0, voxel_um=None):
+    """Remove spurs, wall artefacts and small fragments; dissolve degree-2 nodes (in place).
 
     Parameters
     ----------
@@ -364,15 +365,31 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         Connected pieces with less centreline than this go.
     max_rounds : int
         Upper bound on spur/merge rounds.
+    junction_merge_radii : float
+        Two junctions joined by a segment shorter than this times the larger
+        of their radii (or than two voxels) are one junction of a thick
+        vessel seen through a bumpy wall: they merge, and the segment goes.
+        0 turns merging off.
+    wall_loop_radii : float
+        A loop whose vessels are not each longer than this times the local
+        radius is a handle or hole through a vessel wall, not an
+        anastomosis: a self-loop shorter than this, or of two parallel
+        segments between the same junctions the thinner when one of them is
+        shorter than this, goes. 0 keeps every loop.
+    voxel_um : float, optional
+        The coarsest spacing of the grid the centrelines were traced on, µm:
+        twice it is the floor of what counts as short.
 
     Returns
     -------
     VesselGraph
         ``g`` itself, with ``counts`` updated: ``spurs_removed``,
-        ``nodes_dissolved``, ``fragments_removed``, ``pruning_rounds``.
+        ``junctions_merged``, ``wall_loops_removed``, ``nodes_dissolved``,
+        ``fragments_removed``, ``pruning_rounds``.
     """
     inc = g.incidence()
-    spurs = dissolved = rounds = 0
+    spurs = dissolved = rounds = merged = loops = 0
+    floor = 2.0 * float(voxel_um) if voxel_um else 0.0
     next_id = max(g.seg_nodes, default=-1) + 1
 
     lengths = g.seg_length_um
@@ -423,6 +440,14 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
                 g.node_alive[end] = False
                 spurs += 1
                 changed = True
+        if junction_merge_radii > 0:
+            n_merged = _merge_close_junctions(g, inc, seg_len, remove_segment, junction_merge_radii, floor)
+            merged += n_merged
+            changed |= n_merged > 0
+        if wall_loop_radii > 0:
+            n_loops = _remove_wall_loops(g, inc, seg_len, remove_segment, wall_loop_radii, floor)
+            loops += n_loops
+            changed |= n_loops > 0
         # Dissolve nodes with exactly two segment ends that are not a self-loop.
         for n in np.flatnonzero(g.node_alive):
             segs = inc[n]
@@ -474,9 +499,78 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
     # Nodes with no segment left (isolated voxels) are not part of the graph.
     g.node_alive &= np.array([len(inc[i]) > 0 for i in range(len(g.node_pos_um))], dtype=bool)
     g.counts.update(
-        spurs_removed=spurs, nodes_dissolved=dissolved, fragments_removed=fragments, pruning_rounds=rounds
+        spurs_removed=spurs, junctions_merged=merged, wall_loops_removed=loops, nodes_dissolved=dissolved,
+        fragments_removed=fragments, pruning_rounds=rounds
     )
     return g
+
+
+def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
+    """Merge junction pairs joined by a segment short against their radii; returns how many."""
+    cands = []
+    for s, (u, v) in g.seg_nodes.items():
+        if u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
+            continue
+        limit = max(factor * max(g.node_radius_um[u], g.node_radius_um[v]), floor)
+        if seg_len(s) < limit:
+            cands.append((seg_len(s), s))
+    touched = set()
+    n = 0
+    for _, s in sorted(cands):  # shortest first; each node merges once per round
+        u, v = g.seg_nodes[s]
+        if u in touched or v in touched:
+            continue
+        touched.update((u, v))
+        remove_segment(s)
+        # The merged node sits between the two, weighted by cross-section.
+        wu, wv = g.node_radius_um[u] ** 2, g.node_radius_um[v] ** 2
+        pos = (wu * g.node_pos_um[u] + wv * g.node_pos_um[v]) / max(wu + wv, 1e-12)
+        g.node_pos_um[u] = pos
+        g.node_radius_um[u] = max(g.node_radius_um[u], g.node_radius_um[v])
+        g.node_on_border[u] |= g.node_on_border[v]
+        for t in list(inc[v]):
+            a, b = g.seg_nodes[t]
+            g.seg_nodes[t] = (u if a == v else a, u if b == v else b)
+            inc[u].append(t)
+        inc[v] = []
+        g.node_alive[v] = False
+        for t in set(inc[u]):  # paths end at their nodes' positions
+            a, b = g.seg_nodes[t]
+            path = g.seg_path[t].copy()
+            if a == u:
+                path[0] = pos
+            if b == u:
+                path[-1] = pos
+            g.seg_path[t] = path
+            g.seg_length_um.pop(t, None)
+        n += 1
+    return n
+
+
+def _remove_wall_loops(g, inc, seg_len, remove_segment, factor, floor):
+    """Remove self-loops and parallel segments short against the local radius; returns how many."""
+    doomed = set()
+    pairs = defaultdict(list)
+    for s, (u, v) in g.seg_nodes.items():
+        local = max(factor * max(g.node_radius_um[u], g.node_radius_um[v]), floor)
+        if u == v:
+            if seg_len(s) < local:
+                doomed.add(s)
+        else:
+            pairs[(min(u, v), max(u, v))].append(s)
+    for (u, v), segs in pairs.items():
+        if len(segs) < 2:
+            continue
+        local = max(factor * max(g.node_radius_um[u], g.node_radius_um[v]), floor)
+        if min(seg_len(s) for s in segs) >= local:
+            continue  # every vessel of the loop is long: a real loop
+        # Keep the thickest of the parallel paths: the vessel; the others run
+        # through the wall.
+        thick = max(segs, key=lambda s: (float(np.median(g.seg_radii[s])), -seg_len(s)))
+        doomed.update(s for s in segs if s != thick)
+    for s in doomed:
+        remove_segment(s)
+    return len(doomed)
 
 
 def _other(uv, n):

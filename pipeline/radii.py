@@ -90,166 +90,295 @@ def segment_tangents(points_um, offsets, *, window_points=3):
 
 
 @numba.njit(cache=True)
+def _solve3(a00, a01, a02, a11, a12, a22, b0, b1, b2):
+    """Solve a symmetric 3 x 3 system by Cramer's rule; returns (x0, x1, x2, ok)."""
+    c00 = a11 * a22 - a12 * a12
+    c01 = a02 * a12 - a01 * a22
+    c02 = a01 * a12 - a02 * a11
+    det = a00 * c00 + a01 * c01 + a02 * c02
+    scale = abs(a00 * a11 * a22) + 1e-300
+    if not np.isfinite(det) or abs(det) < 1e-12 * scale:
+        return 0.0, 0.0, 0.0, False
+    c11 = a00 * a22 - a02 * a02
+    c12 = a01 * a02 - a00 * a12
+    c22 = a00 * a11 - a01 * a01
+    x0 = (c00 * b0 + c01 * b1 + c02 * b2) / det
+    x1 = (c01 * b0 + c11 * b1 + c12 * b2) / det
+    x2 = (c02 * b0 + c12 * b1 + c22 * b2) / det
+    return x0, x1, x2, True
+
+
+@numba.njit(cache=True)
+def _kasa(u, v, w, lam):
+    """Weighted algebraic circle fit (Kasa 1976): u^2 + v^2 + D u + E v + F = 0.
+
+    ``lam`` pulls the centre (-D/2, -E/2) towards the origin. Returns
+    (cx, cy, r, ok).
+    """
+    s_uu = s_uv = s_vv = s_u = s_v = s_w = s_uz = s_vz = s_z = 0.0
+    for i in range(len(u)):
+        wi = w[i]
+        if wi == 0.0:
+            continue
+        z = u[i] * u[i] + v[i] * v[i]
+        s_uu += wi * u[i] * u[i]
+        s_uv += wi * u[i] * v[i]
+        s_vv += wi * v[i] * v[i]
+        s_u += wi * u[i]
+        s_v += wi * v[i]
+        s_w += wi
+        s_uz += wi * u[i] * z
+        s_vz += wi * v[i] * z
+        s_z += wi * z
+    d, e, f, ok = _solve3(s_uu + 0.25 * lam, s_uv, s_u, s_vv + 0.25 * lam, s_v, s_w, -s_uz, -s_vz, -s_z)
+    if not ok:
+        return 0.0, 0.0, 0.0, False
+    cx, cy = -0.5 * d, -0.5 * e
+    r2 = cx * cx + cy * cy - f
+    if not r2 > 0:
+        return 0.0, 0.0, 0.0, False
+    return cx, cy, np.sqrt(r2), True
+
+
+@numba.njit(cache=True)
 def _circle_fit(u, v, w, r0, lam):
-    """Weighted robust geometric circle fit in the plane; returns (r, ok)."""
+    """Weighted robust circle fit in the plane; returns (r, ok).
+
+    An algebraic fit (one linear solve) gives the circle, Tukey's biweight on
+    the distances to it removes what is not this vessel's wall (attached
+    blobs, handles, another vessel in the slab), a second algebraic fit uses
+    what is left, and two Gauss-Newton steps on the geometric distance take
+    off the algebraic fit's small bias.
+    """
     n = len(u)
-    cx, cy = 0.0, 0.0
-    wsum = w.sum()
-    r = 0.0
+    cx, cy, r, ok = _kasa(u, v, w, lam)
+    if not ok:
+        return r0, False
+    res = np.empty(n)
     for i in range(n):
-        r += w[i] * np.sqrt(u[i] * u[i] + v[i] * v[i])
-    r /= wsum
-    rw = w.copy()
-    for outer in range(4):
-        for it in range(12):
-            # Normal equations of sum rw (rho - r)^2 + lam (cx^2 + cy^2).
-            A = np.zeros((3, 3))
-            g = np.zeros(3)
-            for i in range(n):
-                dx = u[i] - cx
-                dy = v[i] - cy
-                rho = np.sqrt(dx * dx + dy * dy)
-                if rho < 1e-9:
-                    continue
-                e = rho - r
-                j0 = -dx / rho
-                j1 = -dy / rho
-                j2 = -1.0
-                wi = rw[i]
-                A[0, 0] += wi * j0 * j0
-                A[0, 1] += wi * j0 * j1
-                A[0, 2] += wi * j0 * j2
-                A[1, 1] += wi * j1 * j1
-                A[1, 2] += wi * j1 * j2
-                A[2, 2] += wi * j2 * j2
-                g[0] += wi * j0 * e
-                g[1] += wi * j1 * e
-                g[2] += wi * j2 * e
-            A[1, 0] = A[0, 1]
-            A[2, 0] = A[0, 2]
-            A[2, 1] = A[1, 2]
-            A[0, 0] += lam
-            A[1, 1] += lam
-            g[0] += lam * cx
-            g[1] += lam * cy
-            det = np.linalg.det(A)
-            if not np.isfinite(det) or abs(det) < 1e-12:
-                return r0, False
-            step = np.linalg.solve(A, -g)
-            cx += step[0]
-            cy += step[1]
-            r += step[2]
-            if abs(step[0]) + abs(step[1]) + abs(step[2]) < 1e-4 * max(r0, 1e-6):
-                break
-        # Tukey's biweight on the residuals: blobs, handles and the walls of
-        # other vessels in the slab weigh nothing.
-        res = np.empty(n)
+        res[i] = abs(np.sqrt((u[i] - cx) ** 2 + (v[i] - cy) ** 2) - r)
+    scale = max(1.4826 * np.median(res), 0.15 * r0)
+    c = 4.685 * scale
+    rw = np.empty(n)
+    wsum = 0.0
+    kept = 0.0
+    for i in range(n):
+        q = res[i] / c
+        rw[i] = w[i] * (1.0 - q * q) ** 2 if q < 1.0 else 0.0
+        wsum += w[i]
+        kept += rw[i]
+    if kept < 0.3 * wsum:
+        return r0, False
+    cx, cy, r, ok = _kasa(u, v, rw, lam)
+    if not ok:
+        return r0, False
+    for it in range(2):
+        a00 = a01 = a02 = a11 = a12 = a22 = 0.0
+        g0 = g1 = g2 = 0.0
         for i in range(n):
+            wi = rw[i]
+            if wi == 0.0:
+                continue
             dx = u[i] - cx
             dy = v[i] - cy
-            res[i] = abs(np.sqrt(dx * dx + dy * dy) - r)
-        scale = 1.4826 * np.median(res)
-        floor = 0.15 * r0
-        if scale < floor:
-            scale = floor
-        c = 4.685 * scale
-        for i in range(n):
-            q = res[i] / c
-            rw[i] = w[i] * (1.0 - q * q) ** 2 if q < 1.0 else 0.0
-        if rw.sum() < 0.5 * wsum:
+            rho = np.sqrt(dx * dx + dy * dy)
+            if rho < 1e-9:
+                continue
+            e = rho - r
+            j0 = -dx / rho
+            j1 = -dy / rho
+            a00 += wi * j0 * j0
+            a01 += wi * j0 * j1
+            a02 -= wi * j0
+            a11 += wi * j1 * j1
+            a12 -= wi * j1
+            a22 += wi
+            g0 += wi * j0 * e
+            g1 += wi * j1 * e
+            g2 -= wi * e
+        s0, s1, s2, ok = _solve3(a00 + lam, a01, a02, a11 + lam, a12, a22, -(g0 + lam * cx), -(g1 + lam * cy), -g2)
+        if not ok:
             break
+        cx += s0
+        cy += s1
+        r += s2
     ok = np.isfinite(r) and r > 0
     return r, ok
 
 
+def _wall_faces(mask):
+    """Bit ``2a + (s > 0)`` set where vessel voxel's neighbour at ``s`` along axis ``a`` is tissue.
+
+    Faces on the array's edge are cuts through a vessel, not walls, and are
+    left out. One byte per voxel, so the fit visits walls without testing
+    six neighbours of every voxel near every centreline point.
+    """
+    faces = np.zeros(mask.shape, dtype=np.uint8)
+    for a in range(3):
+        lo = [slice(None)] * 3
+        hi = [slice(None)] * 3
+        lo[a] = slice(0, -1)
+        hi[a] = slice(1, None)
+        lo, hi = tuple(lo), tuple(hi)
+        # Neighbour above is tissue: bit 2a + 1; below: bit 2a.
+        faces[lo] |= ((mask[lo] & ~mask[hi]).view(np.uint8) << (2 * a + 1)).astype(np.uint8)
+        faces[hi] |= ((mask[hi] & ~mask[lo]).view(np.uint8) << (2 * a)).astype(np.uint8)
+    return faces
+
+
+@numba.njit(cache=True)
+def _box(shape, sp, origin, p, t, h, reach, lo, hi):
+    """Voxel box around the disc of radius ``reach`` and half-thickness ``h``; returns its voxel count."""
+    vol = 1
+    for a in range(3):
+        ext = h * abs(t[a]) + reach * np.sqrt(max(0.0, 1.0 - t[a] * t[a])) + 0.5 * sp[a]
+        c = (p[a] - origin[a]) / sp[a]
+        lo[a] = max(0, int(np.floor(c - ext / sp[a])))
+        hi[a] = min(shape[a] - 1, int(np.ceil(c + ext / sp[a])))
+        vol *= max(0, hi[a] - lo[a] + 1)
+    return vol
+
+
+@numba.njit(cache=True)
+def _fit_one(faces, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W):
+    """Radius from the wall around one centreline point; returns (r, number of wall points) or (r0, 0)."""
+    h = max(0.75 * r0, smax)
+    reach = 1.6 * r0 + 1.5 * smax
+    # Cross-section basis e1, e2 perpendicular to t.
+    e1 = np.empty(3)
+    if abs(t[0]) < 0.9:  # e1 from the z axis, or from y when t is nearly along z
+        e1[0], e1[1], e1[2] = 1.0 - t[0] * t[0], -t[0] * t[1], -t[0] * t[2]
+    else:
+        e1[0], e1[1], e1[2] = -t[1] * t[0], 1.0 - t[1] * t[1], -t[1] * t[2]
+    e1 /= np.sqrt((e1 ** 2).sum())
+    e2 = np.empty(3)
+    e2[0] = t[1] * e1[2] - t[2] * e1[1]
+    e2[1] = t[2] * e1[0] - t[0] * e1[2]
+    e2[2] = t[0] * e1[1] - t[1] * e1[0]
+    n = 0
+    cap = len(U)
+    slack = 0.5 * smax
+    for z in range(lo[0], hi[0] + 1):
+        for y in range(lo[1], hi[1] + 1):
+            for x in range(lo[2], hi[2] + 1):
+                f = faces[z, y, x]
+                if f == 0:
+                    continue
+                # Whole voxel outside the slab or beyond reach (with half a
+                # voxel to spare): none of its faces can count.
+                v0 = origin[0] + z * sp[0] - p[0]
+                v1 = origin[1] + y * sp[1] - p[1]
+                v2 = origin[2] + x * sp[2] - p[2]
+                va = v0 * t[0] + v1 * t[1] + v2 * t[2]
+                if abs(va) > h + slack:
+                    continue
+                w0 = v0 - va * t[0]
+                w1 = v1 - va * t[1]
+                w2 = v2 - va * t[2]
+                if w0 * w0 + w1 * w1 + w2 * w2 > (reach + slack) ** 2:
+                    continue
+                for bit in range(6):
+                    if not (f >> bit) & 1:
+                        continue
+                    a = bit // 2
+                    half = 0.5 if bit & 1 else -0.5
+                    q0 = origin[0] + (z + (half if a == 0 else 0.0)) * sp[0] - p[0]
+                    q1 = origin[1] + (y + (half if a == 1 else 0.0)) * sp[1] - p[1]
+                    q2 = origin[2] + (x + (half if a == 2 else 0.0)) * sp[2] - p[2]
+                    along = q0 * t[0] + q1 * t[1] + q2 * t[2]
+                    if abs(along) > h:
+                        continue
+                    c0 = q0 - along * t[0]
+                    c1 = q1 - along * t[1]
+                    c2 = q2 - along * t[2]
+                    if c0 * c0 + c1 * c1 + c2 * c2 > reach * reach or n >= cap:
+                        continue
+                    U[n] = c0 * e1[0] + c1 * e1[1] + c2 * e1[2]
+                    V[n] = c0 * e2[0] + c1 * e2[1] + c2 * e2[2]
+                    W[n] = wax[a]
+                    n += 1
+    if n < 6:
+        return r0, 0
+    # A weak pull of the centre towards the centreline: 5 % of the total
+    # weight per µm^2, enough to settle a direction no wall point
+    # constrains, too little to bias a well-posed fit.
+    lam = 0.05 * W[:n].sum() / max(r0 * r0, smin * smin)
+    r, ok = _circle_fit(U[:n], V[:n], W[:n], r0, lam)
+    if ok and r0 / 2.5 <= r <= 2.5 * r0:
+        return r, n
+    return r0, 0
+
+
 @numba.njit(parallel=True, cache=True)
-def _fit_all(mask, sp, origin, P, T, R0, out, nfit):
-    nz, ny, nx = mask.shape
+def _fit_all(faces, sp, origin, P, T, R0, todo, out, nfit, nchunks):
     smin = min(sp[0], min(sp[1], sp[2]))
     smax = max(sp[0], max(sp[1], sp[2]))
     wax = np.empty(3)
     for a in range(3):
         wax[a] = (smin / sp[a]) ** 2
-    M = len(P)
-    for i in numba.prange(M):
-        p = P[i]
-        t = T[i]
-        r0 = R0[i]
-        out[i] = r0
-        nfit[i] = 0
-        if not (r0 > 0):
-            continue
-        h = max(0.75 * r0, smax)
-        reach = 1.8 * r0 + 1.5 * smax
-        # Cross-section basis e1, e2 perpendicular to t.
-        e1 = np.empty(3)
-        if abs(t[0]) < 0.9:  # e1 from the z axis, or from y when t is nearly along z
-            e1[0], e1[1], e1[2] = 1.0 - t[0] * t[0], -t[0] * t[1], -t[0] * t[2]
-        else:
-            e1[0], e1[1], e1[2] = -t[1] * t[0], 1.0 - t[1] * t[1], -t[1] * t[2]
-        e1 /= np.sqrt((e1 ** 2).sum())
-        e2 = np.empty(3)
-        e2[0] = t[1] * e1[2] - t[2] * e1[1]
-        e2[1] = t[2] * e1[0] - t[0] * e1[2]
-        e2[2] = t[0] * e1[1] - t[1] * e1[0]
+    M = len(todo)
+    for chunk in numba.prange(nchunks):
+        # One set of buffers per chunk of points, grown when a box needs more.
+        U = np.empty(4096)
+        V = np.empty(4096)
+        W = np.empty(4096)
         lo = np.empty(3, np.int64)
         hi = np.empty(3, np.int64)
-        ext = max(reach, h)
-        for a in range(3):
-            c = (p[a] - origin[a]) / sp[a]
-            lo[a] = max(0, int(np.floor(c - ext / sp[a])))
-            hi[a] = min(mask.shape[a] - 1, int(np.ceil(c + ext / sp[a])))
-        cap = 6 * (hi[0] - lo[0] + 1) * (hi[1] - lo[1] + 1) * (hi[2] - lo[2] + 1)
-        if cap <= 0:
-            continue
-        U = np.empty(cap)
-        V = np.empty(cap)
-        W = np.empty(cap)
-        n = 0
-        for z in range(lo[0], hi[0] + 1):
-            for y in range(lo[1], hi[1] + 1):
-                for x in range(lo[2], hi[2] + 1):
-                    if not mask[z, y, x]:
-                        continue
-                    for a in range(3):
-                        for sgn in (-1, 1):
-                            zz, yy, xx = z, y, x
-                            if a == 0:
-                                zz += sgn
-                            elif a == 1:
-                                yy += sgn
-                            else:
-                                xx += sgn
-                            # A face on the array's edge is a cut, not a wall.
-                            if zz < 0 or yy < 0 or xx < 0 or zz >= nz or yy >= ny or xx >= nx:
-                                continue
-                            if mask[zz, yy, xx]:
-                                continue
-                            q0 = origin[0] + (z + (0.5 * sgn if a == 0 else 0.0)) * sp[0] - p[0]
-                            q1 = origin[1] + (y + (0.5 * sgn if a == 1 else 0.0)) * sp[1] - p[1]
-                            q2 = origin[2] + (x + (0.5 * sgn if a == 2 else 0.0)) * sp[2] - p[2]
-                            along = q0 * t[0] + q1 * t[1] + q2 * t[2]
-                            if abs(along) > h:
-                                continue
-                            c0 = q0 - along * t[0]
-                            c1 = q1 - along * t[1]
-                            c2 = q2 - along * t[2]
-                            if c0 * c0 + c1 * c1 + c2 * c2 > reach * reach:
-                                continue
-                            U[n] = c0 * e1[0] + c1 * e1[1] + c2 * e1[2]
-                            V[n] = c0 * e2[0] + c1 * e2[1] + c2 * e2[2]
-                            W[n] = wax[a]
-                            n += 1
-        if n < 6:
-            continue
-        # A weak pull of the centre towards the centreline: 5 % of the
-        # total weight per µm^2, enough to settle a direction no wall point
-        # constrains, too little to bias a well-posed fit.
-        lam = 0.05 * W[:n].sum() / max(r0 * r0, smin * smin)
-        r, ok = _circle_fit(U[:n], V[:n], W[:n], r0, lam)
-        if ok and r0 / 2.5 <= r <= 2.5 * r0:
+        for j in range(chunk * M // nchunks, (chunk + 1) * M // nchunks):
+            i = todo[j]
+            r0 = R0[i]
+            out[i] = r0
+            nfit[i] = 0
+            if not (r0 > 0):
+                continue
+            h = max(0.75 * r0, smax)
+            reach = 1.6 * r0 + 1.5 * smax
+            # A face per voxel on average at most, six at the very most.
+            need = 6 * _box(faces.shape, sp, origin, P[i], T[i], h, reach, lo, hi)
+            if need > len(U):
+                U = np.empty(need)
+                V = np.empty(need)
+                W = np.empty(need)
+            r, k = _fit_one(faces, sp, origin, P[i], T[i], r0, smin, smax, wax, lo, hi, U, V, W)
             out[i] = r
-            nfit[i] = n
+            nfit[i] = k
+
+
+@numba.njit(cache=True)
+def _stride_points(P, off, R0, smax):
+    """Points to fit: ends of every segment and one per three quarters of a slab width between."""
+    keep = np.zeros(len(P), dtype=np.bool_)
+    for s in range(len(off) - 1):
+        a, b = off[s], off[s + 1]
+        keep[a] = True
+        keep[b - 1] = True
+        acc = 0.0
+        for i in range(a + 1, b - 1):
+            acc += np.sqrt(((P[i] - P[i - 1]) ** 2).sum())
+            if acc >= 1.5 * max(0.75 * R0[i], smax):
+                keep[i] = True
+                acc = 0.0
+    return np.flatnonzero(keep)
+
+
+@numba.njit(cache=True)
+def _fill_between(P, off, out, nfit):
+    """Linear interpolation along the arc between fitted points; unfitted points keep their first radius."""
+    for s in range(len(off) - 1):
+        a, b = off[s], off[s + 1]
+        prev = -1
+        for i in range(a, b):
+            if nfit[i] < 0:
+                continue
+            if prev >= 0 and i - prev > 1:
+                arc = np.zeros(i - prev + 1)
+                for k in range(prev + 1, i + 1):
+                    arc[k - prev] = arc[k - prev - 1] + np.sqrt(((P[k] - P[k - 1]) ** 2).sum())
+                tot = arc[-1]
+                for k in range(prev + 1, i):
+                    w = arc[k - prev] / tot if tot > 0 else 0.5
+                    out[k] = (1.0 - w) * out[prev] + w * out[i]
+            prev = i
 
 
 def wall_radii(mask, *, spacing, offset, points_um, offsets, radii_um, planar=False):
@@ -287,8 +416,16 @@ def wall_radii(mask, *, spacing, offset, points_um, offsets, radii_um, planar=Fa
     sp = np.asarray(spacing, dtype=np.float64)
     origin = np.asarray(offset, dtype=np.float64) * sp
     P = np.ascontiguousarray(points_um, dtype=np.float64)
-    T = segment_tangents(P, offsets)
-    out = np.empty_like(R0)
-    nfit = np.zeros(len(R0), dtype=np.int64)
-    _fit_all(np.ascontiguousarray(mask), sp, origin, P, T, R0, out, nfit)
+    off = np.ascontiguousarray(offsets, dtype=np.int64)
+    T = segment_tangents(P, off)
+    out = R0.copy()
+    # -1: not fitted here (filled by interpolation); 0: fit failed; > 0: wall points used.
+    nfit = np.full(len(R0), -1, dtype=np.int64)
+    # Slabs of neighbouring points overlap: fitting once per three quarters
+    # of a slab's width (slabs overlapping by a quarter) and interpolating
+    # between loses nothing the slab resolves.
+    todo = _stride_points(P, off, R0, float(sp.max()))
+    nchunks = max(1, min(len(todo), 64 * numba.get_num_threads()))
+    _fit_all(_wall_faces(np.ascontiguousarray(mask, dtype=bool)), sp, origin, P, T, R0, todo, out, nfit, nchunks)
+    _fill_between(P, off, out, nfit)
     return out, nfit > 0
