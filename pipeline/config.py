@@ -94,6 +94,8 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "min_spur_length_um": Param(2.0, float, low=0.0),
         "junction_merge_radii": Param(1.0, float, low=0.0, high=10.0),
         "wall_loop_radii": Param(2.0, float, low=0.0, high=20.0),
+        "spur_protrusion_radii": Param(3.0, float, low=0.0, high=20.0),
+        "small_loop_radii": Param(8.0, float, low=0.0, high=100.0),
         "min_fragment_length_um": Param(10.0, float, low=0.0),
         "max_rounds": Param(20, int, low=1, high=1000),
     },

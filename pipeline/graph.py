@@ -351,7 +351,8 @@ def _polyline_length(p):
 
 
 def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
-                junction_merge_radii=1.0, wall_loop_radii=2.0, voxel_um=None):
+                junction_merge_radii=1.0, wall_loop_radii=2.0, spur_protrusion_radii=3.0, small_loop_radii=8.0,
+                voxel_um=None):
     """Remove spurs, wall artefacts and small fragments; dissolve degree-2 nodes (in place).
 
     Parameters
@@ -376,6 +377,15 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         anastomosis: a self-loop shorter than this, or of two parallel
         segments between the same junctions the thinner when one of them is
         shorter than this, goes. 0 keeps every loop.
+    spur_protrusion_radii : float
+        A terminal spur that sticks out of its junction's vessel (its length
+        less the junction's radius) by less than this many of its own radii
+        is a blob on the wall, not a branch, and goes. 0 turns this off.
+    small_loop_radii : float
+        A loop whose whole perimeter is shorter than this times the largest
+        radius on it encircles a hole in a vessel wall or runs through a
+        handle: its thinnest segment goes (repeated while such loops
+        remain). 0 keeps every loop.
     voxel_um : float, optional
         The coarsest spacing of the grid the centrelines were traced on, µm:
         twice it is the floor of what counts as short.
@@ -425,7 +435,12 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             if g.node_on_border[end]:
                 continue
             limit = max(spur_radius_factor * g.node_radius_um[junc], min_spur_length_um)
-            if seg_len(s) < limit:
+            # What sticks out of the junction's vessel, against the spur's own
+            # thickness: a blob on the wall protrudes by about its own width,
+            # a branch by many of its radii.
+            protrusion = seg_len(s) - g.node_radius_um[junc]
+            stub = spur_protrusion_radii > 0 and protrusion < spur_protrusion_radii * _seg_radius(g, s)
+            if seg_len(s) < limit or stub:
                 doomed.append((s, end))
         # A junction must keep at least one segment: never remove all its spurs at once.
         by_junction = defaultdict(list)
@@ -446,6 +461,10 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             changed |= n_merged > 0
         if wall_loop_radii > 0:
             n_loops = _remove_wall_loops(g, inc, seg_len, remove_segment, wall_loop_radii, floor)
+            loops += n_loops
+            changed |= n_loops > 0
+        if small_loop_radii > 0:
+            n_loops = _remove_small_loops(g, inc, seg_len, remove_segment, small_loop_radii)
             loops += n_loops
             changed |= n_loops > 0
         # Dissolve nodes with exactly two segment ends that are not a self-loop.
@@ -496,6 +515,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         dead = small[comp] & g.node_alive
         fragments = int(np.unique(comp[dead]).size)
         g.node_alive &= ~dead
+    _refine_junctions(g, inc)
     # Nodes with no segment left (isolated voxels) are not part of the graph.
     g.node_alive &= np.array([len(inc[i]) > 0 for i in range(len(g.node_pos_um))], dtype=bool)
     g.counts.update(
@@ -503,6 +523,114 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         fragments_removed=fragments, pruning_rounds=rounds
     )
     return g
+
+
+def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
+    """Move each junction to where its vessels' axes meet.
+
+    Thinning places a junction where the medial axes of the branches meet,
+    which lies off the branch point by up to a radius and wanders on rough
+    walls. Each incident segment's centreline between ``near_radii`` and
+    ``far_radii`` junction radii from the node is fitted with a line (its
+    first principal axis); the junction moves to the point nearest all the
+    lines in the least-squares sense (weighted by each vessel's
+    cross-section), when that point is within two junction radii of the
+    thinned one. Segment paths end at their nodes, so their end points move
+    with it.
+    """
+    for n in np.flatnonzero(g.node_alive):
+        segs = inc[n]
+        if len(segs) < 3 or len(set(segs)) < len(segs):
+            continue
+        r = g.node_radius_um[n]
+        p0 = g.node_pos_um[n]
+        A = np.zeros((3, 3))
+        b = np.zeros(3)
+        used = 0
+        for s in segs:
+            u, v = g.seg_nodes[s]
+            path = g.seg_path[s] if u == n else g.seg_path[s][::-1]
+            d = np.linalg.norm(path - p0, axis=1)
+            sel = path[(d >= near_radii * r) & (d <= far_radii * r)]
+            if len(sel) < 3:
+                continue
+            c = sel.mean(axis=0)
+            _, _, vt = np.linalg.svd(sel - c, full_matrices=False)
+            t = vt[0]
+            w = _seg_radius(g, s) ** 2
+            P = np.eye(3) - np.outer(t, t)
+            A += w * P
+            b += w * P @ c
+            used += 1
+        if used < 3 or np.linalg.cond(A) > 1e6:
+            continue
+        x = np.linalg.solve(A, b)
+        if not np.all(np.isfinite(x)) or np.linalg.norm(x - p0) > 2.0 * r:
+            continue
+        g.node_pos_um[n] = x
+        for s in set(segs):
+            u, v = g.seg_nodes[s]
+            path = g.seg_path[s].copy()
+            if u == n:
+                path[0] = x
+            if v == n:
+                path[-1] = x
+            g.seg_path[s] = path
+            g.seg_length_um[s] = _polyline_length(path)
+
+
+def _seg_radius(g, s):
+    r = g.seg_radii[s]
+    return float(np.median(r[1:-1] if len(r) > 2 else r))
+
+
+def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
+    """Remove the thinnest segment of each loop shorter than ``factor`` local radii; returns how many."""
+    import heapq
+
+    def local(s):
+        u, v = g.seg_nodes[s]
+        return factor * max(g.node_radius_um[u], g.node_radius_um[v], _seg_radius(g, s))
+
+    # Candidates, thinnest first: a loop is broken at its thinnest segment.
+    cands = sorted((s for s in g.seg_nodes if seg_len(s) < local(s)), key=lambda s: (_seg_radius(g, s), s))
+    removed = 0
+    for s in cands:
+        if s not in g.seg_nodes:
+            continue
+        u, v = g.seg_nodes[s]
+        budget = local(s) - seg_len(s)
+        if u == v:
+            remove_segment(s)  # a self-loop this short
+            removed += 1
+            continue
+        # Shortest other path from u to v within the budget (Dijkstra, bounded).
+        rs = _seg_radius(g, s)
+        dist = {u: 0.0}
+        heap = [(0.0, u)]
+        found = False
+        while heap:
+            d, n = heapq.heappop(heap)
+            if n == v:
+                found = True
+                break
+            if d > dist.get(n, np.inf):
+                continue
+            for t in inc[n]:
+                if t == s:
+                    continue
+                a, b = g.seg_nodes[t]
+                m = b if a == n else a
+                nd = d + seg_len(t)
+                # Only loops whose other segments are at least as thick: the
+                # thinnest segment is the one broken.
+                if nd <= budget and nd < dist.get(m, np.inf) and _seg_radius(g, t) >= rs:
+                    dist[m] = nd
+                    heapq.heappush(heap, (nd, m))
+        if found:
+            remove_segment(s)
+            removed += 1
+    return removed
 
 
 def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
@@ -542,7 +670,7 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
             if b == u:
                 path[-1] = pos
             g.seg_path[t] = path
-            g.seg_length_um.pop(t, None)
+            g.seg_length_um[t] = _polyline_length(path)
         n += 1
     return n
 
