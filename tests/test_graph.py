@@ -8,6 +8,8 @@ import networkx as nx
 import numpy as np
 import pytest
 
+import pipeline
+from pipeline import synthetic
 from pipeline.centrelines import Centrelines
 from pipeline.graph import build_graph, prune_graph, voxel_adjacency
 
@@ -128,3 +130,65 @@ def test_kept_lengths_are_the_path_lengths(shape):
     for s, p in g.seg_path.items():
         direct = float(np.linalg.norm(np.diff(p, axis=0), axis=1).sum())
         assert g.seg_length_um[s] == pytest.approx(direct, rel=1e-12)
+
+
+# --------------------------------------------------------------------------- wall artefacts
+# A thick vessel with what segmentations add to real walls: a blob stuck on
+# the wall, a handle (a thin bridge from the wall back to the wall), a hole
+# through the wall. None is a vessel: the graph must stay one segment with no
+# junction and no loop, and count what it removed. Real loops (a ladder's
+# rungs, each many radii long) must all stay. Checked against the truth the
+# generator records and against skimage's Euler number for the mask's loops.
+
+def _thick_tube(radius=7.0, spacing=(1.0, 1.0, 1.0)):
+    shape = [int(80 / s) + 1 for s in spacing]
+    net = synthetic.straight_tube(length_um=300, radius_um=radius, direction=(0, 0, 1), centre_um=(40.3, 40.6, 40.0))
+    mask, truth = synthetic.rasterize(net, spacing=spacing, shape=shape)
+    return mask, np.asarray(spacing)
+
+
+def _ball(mask, spacing, centre_um, radius_um):
+    zz, yy, xx = np.meshgrid(*[np.arange(n) * s for n, s in zip(mask.shape, spacing)], indexing="ij")
+    mask |= (zz - centre_um[0]) ** 2 + (yy - centre_um[1]) ** 2 + (xx - centre_um[2]) ** 2 <= radius_um ** 2
+
+
+@pytest.mark.parametrize("blob_radius", [2.0, 3.5, 5.0])
+def test_a_blob_on_the_wall_is_no_branch(blob_radius):
+    mask, sp = _thick_tube()
+    _ball(mask, sp, (40.3, 40.6 + 7.0 + 0.5 * blob_radius, 40.0), blob_radius)  # centred just outside the wall
+    res = pipeline.analyze(mask, spacing=sp, config={"flow": {"enabled": False}})
+    assert (res.nodes["kind"] == "junction").sum() == 0 and len(res.segments) == 1
+    assert res.run["counts"]["spurs_removed"] >= 1
+
+
+def test_a_handle_on_the_wall_makes_no_loop():
+    from skimage.measure import euler_number
+
+    mask, sp = _thick_tube()
+    before = euler_number(mask, connectivity=3)
+    # A bridge about 2 voxels thick from the wall out and back, along the
+    # vessel: an arc 6 µm long each way, rising 3 µm over the surface.
+    for a in np.linspace(0, np.pi, 60):
+        _ball(mask, sp, (40.3, 40.6 + 6.5 + 3.5 * np.sin(a), 40.0 + 6.0 * np.cos(a)), 1.2)
+    # Euler number (skimage, 26-connectivity) drops by one: the mask gained a loop.
+    assert euler_number(mask, connectivity=3) == before - 1
+    res = pipeline.analyze(mask, spacing=sp, config={"flow": {"enabled": False}})
+    segs, nodes = res.segments, res.nodes
+    # Cycle rank E - V + C of the graph: 0, the wall loop is gone.
+    G = nx.MultiGraph()
+    G.add_nodes_from(nodes["node_id"])
+    G.add_edges_from(zip(segs["node_from"], segs["node_to"]))
+    assert G.number_of_edges() - G.number_of_nodes() + nx.number_connected_components(G) == 0
+    assert res.run["counts"]["wall_loops_removed"] >= 1 or res.run["counts"]["spurs_removed"] >= 1
+
+
+@pytest.mark.parametrize("rungs", [2, 3, 4])
+def test_real_loops_are_all_kept(rungs):
+    net = synthetic.ladder(rungs=rungs, rail_separation_um=30.0, rail_radius_um=4.0, rung_radius_um=3.0)
+    mask, truth = synthetic.rasterize(net, spacing=(1.0, 1.0, 1.0), roughness=0.1, seed=rungs)
+    res = pipeline.analyze(mask, spacing=(1.0, 1.0, 1.0), config={"flow": {"enabled": False}})
+    G = nx.MultiGraph()
+    G.add_nodes_from(res.nodes["node_id"])
+    G.add_edges_from(zip(res.segments["node_from"], res.segments["node_to"]))
+    # networkx.cycle_basis: the independent loops, as many as the truth's.
+    assert len(nx.cycle_basis(nx.Graph(G))) == truth["summary"]["cyclomatic_number"] == rungs - 1
