@@ -347,7 +347,15 @@ def build_graph(centrelines):
 
 
 def _polyline_length(p):
-    return float(np.sqrt((np.diff(p, axis=0) ** 2).sum(axis=1)).sum())
+    return float(_polyline_length_nb(np.ascontiguousarray(p, dtype=np.float64)))
+
+
+@numba.njit(cache=True)
+def _polyline_length_nb(p):
+    acc = 0.0
+    for i in range(len(p) - 1):
+        acc += np.sqrt(((p[i + 1] - p[i]) ** 2).sum())
+    return acc
 
 
 def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
@@ -416,6 +424,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         del g.seg_path[s], g.seg_radii[s]
         lengths.pop(s, None)
 
+    loops_done = False
     while rounds < max_rounds:
         rounds += 1
         changed = False
@@ -463,7 +472,11 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             n_loops = _remove_wall_loops(g, inc, seg_len, remove_segment, wall_loop_radii, floor)
             loops += n_loops
             changed |= n_loops > 0
-        if small_loop_radii > 0:
+        if not changed and small_loop_radii > 0 and not loops_done:
+            # Last, on the graph the cheaper rules have settled: the search
+            # for short loops is the costly one. What it removes may leave
+            # nodes to dissolve, so one more round follows.
+            loops_done = True
             n_loops = _remove_small_loops(g, inc, seg_len, remove_segment, small_loop_radii)
             loops += n_loops
             changed |= n_loops > 0
@@ -532,43 +545,35 @@ def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
     which lies off the branch point by up to a radius and wanders on rough
     walls. Each incident segment's centreline between ``near_radii`` and
     ``far_radii`` junction radii from the node is fitted with a line (its
-    first principal axis); the junction moves to the point nearest all the
-    lines in the least-squares sense (weighted by each vessel's
-    cross-section), when that point is within two junction radii of the
-    thinned one. Segment paths end at their nodes, so their end points move
-    with it.
+    principal axis); the junction moves to the point nearest all the lines
+    in the least-squares sense (weighted by each vessel's cross-section),
+    when that point is within two junction radii of the thinned one. Segment
+    paths end at their nodes, so their end points move with it.
     """
-    for n in np.flatnonzero(g.node_alive):
-        segs = inc[n]
-        if len(segs) < 3 or len(set(segs)) < len(segs):
-            continue
-        r = g.node_radius_um[n]
-        p0 = g.node_pos_um[n]
-        A = np.zeros((3, 3))
-        b = np.zeros(3)
-        used = 0
-        for s in segs:
-            u, v = g.seg_nodes[s]
-            path = g.seg_path[s] if u == n else g.seg_path[s][::-1]
-            d = np.linalg.norm(path - p0, axis=1)
-            sel = path[(d >= near_radii * r) & (d <= far_radii * r)]
-            if len(sel) < 3:
-                continue
-            c = sel.mean(axis=0)
-            _, _, vt = np.linalg.svd(sel - c, full_matrices=False)
-            t = vt[0]
-            w = _seg_radius(g, s) ** 2
-            P = np.eye(3) - np.outer(t, t)
-            A += w * P
-            b += w * P @ c
-            used += 1
-        if used < 3 or np.linalg.cond(A) > 1e6:
-            continue
-        x = np.linalg.solve(A, b)
-        if not np.all(np.isfinite(x)) or np.linalg.norm(x - p0) > 2.0 * r:
+    nodes = [n for n in np.flatnonzero(g.node_alive) if len(inc[n]) >= 3 and len(set(inc[n])) == len(inc[n])]
+    if not nodes:
+        return
+    # Flat arrays for the compiled fit: per junction its segments' paths,
+    # each oriented to start at the junction.
+    seg_off, paths, weights, node_seg = [0], [], [], [0]
+    for n in nodes:
+        for s in inc[n]:
+            u, _ = g.seg_nodes[s]
+            p = g.seg_path[s] if u == n else g.seg_path[s][::-1]
+            paths.append(p)
+            seg_off.append(seg_off[-1] + len(p))
+            weights.append(_seg_radius(g, s) ** 2)
+        node_seg.append(len(weights))
+    P = np.ascontiguousarray(np.vstack(paths), dtype=np.float64)
+    new = _meeting_points(P, np.asarray(seg_off, np.int64), np.asarray(weights, np.float64),
+                          np.asarray(node_seg, np.int64), g.node_pos_um[nodes].astype(np.float64),
+                          g.node_radius_um[nodes].astype(np.float64), near_radii, far_radii)
+    for k, n in enumerate(nodes):
+        x = new[k]
+        if not np.all(np.isfinite(x)):
             continue
         g.node_pos_um[n] = x
-        for s in set(segs):
+        for s in set(inc[n]):
             u, v = g.seg_nodes[s]
             path = g.seg_path[s].copy()
             if u == n:
@@ -579,9 +584,63 @@ def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
             g.seg_length_um[s] = _polyline_length(path)
 
 
+@numba.njit(cache=True)
+def _meeting_points(P, seg_off, weights, node_seg, pos, rad, near, far):
+    out = np.full((len(pos), 3), np.nan)
+    for k in range(len(pos)):
+        p0 = pos[k]
+        r = rad[k]
+        A = np.zeros((3, 3))
+        b = np.zeros(3)
+        used = 0
+        for j in range(node_seg[k], node_seg[k + 1]):
+            path = P[seg_off[j]:seg_off[j + 1]]
+            c = np.zeros(3)
+            m = 0
+            for i in range(len(path)):
+                d = np.sqrt(((path[i] - p0) ** 2).sum())
+                if near * r <= d <= far * r:
+                    c += path[i]
+                    m += 1
+            if m < 3:
+                continue
+            c /= m
+            C = np.zeros((3, 3))
+            for i in range(len(path)):
+                d = np.sqrt(((path[i] - p0) ** 2).sum())
+                if near * r <= d <= far * r:
+                    q = path[i] - c
+                    C += np.outer(q, q)
+            _, vecs = np.linalg.eigh(C)
+            t = vecs[:, 2]
+            Pm = np.eye(3) - np.outer(t, t)
+            A += weights[j] * Pm
+            b += weights[j] * (Pm @ c)
+            used += 1
+        if used < 3:
+            continue
+        ev = np.linalg.eigvalsh(A)
+        if ev[0] <= 1e-6 * ev[2]:
+            continue
+        x = np.linalg.solve(A, b)
+        if np.sqrt(((x - p0) ** 2).sum()) <= 2.0 * r:
+            out[k] = x
+    return out
+
+
 def _seg_radius(g, s):
-    r = g.seg_radii[s]
-    return float(np.median(r[1:-1] if len(r) > 2 else r))
+    """Median radius along a segment's inner points (cached on the graph; a path's radii never change)."""
+    cache = g.__dict__.setdefault("_radius_cache", {})
+    val = cache.get(s)
+    if val is None:
+        r = g.seg_radii[s]
+        val = cache[s] = float(_median(np.ascontiguousarray(r[1:-1] if len(r) > 2 else r, dtype=np.float64)))
+    return val
+
+
+@numba.njit(cache=True)
+def _median(a):
+    return np.median(a)
 
 
 def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
