@@ -259,8 +259,8 @@ def _box(shape, sp, origin, p, t, h, reach, lo, hi):
 @numba.njit(cache=True)
 def _fit_one(faces, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W):
     """Radius from the wall around one centreline point; returns (r, number of wall points) or (r0, 0)."""
-    h = max(0.75 * r0, smax)
-    reach = 1.6 * r0 + 1.5 * smax
+    h = max(0.75 * r0, 0.6 * smax)
+    reach = 1.6 * r0 + 2.0 * smin
     # Cross-section basis e1, e2 perpendicular to t.
     e1 = np.empty(3)
     if abs(t[0]) < 0.9:  # e1 from the z axis, or from y when t is nearly along z
@@ -348,8 +348,8 @@ def _fit_all(faces, sp, origin, P, T, R0, todo, out, nfit, nchunks):
             nfit[i] = 0
             if not (r0 > 0):
                 continue
-            h = max(0.75 * r0, smax)
-            reach = 1.6 * r0 + 1.5 * smax
+            h = max(0.75 * r0, 0.6 * smax)
+            reach = 1.6 * r0 + 2.0 * smin
             # A face per voxel on average at most, six at the very most.
             need = 6 * _box(faces.shape, sp, origin, P[i], T[i], h, reach, lo, hi)
             if need > len(U):
@@ -372,7 +372,7 @@ def _stride_points(P, off, R0, smax):
         acc = 0.0
         for i in range(a + 1, b - 1):
             acc += np.sqrt(((P[i] - P[i - 1]) ** 2).sum())
-            if acc >= 1.5 * max(0.75 * R0[i], smax):
+            if acc >= 1.5 * max(0.75 * R0[i], 0.6 * smax):
                 keep[i] = True
                 acc = 0.0
     return np.flatnonzero(keep)
