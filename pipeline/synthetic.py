@@ -1872,7 +1872,15 @@ def _paint_kernel(psi, marg, occ_c, occ_r, soft, a, v, ra, dr, lo, dims, d, shif
                         continue  # full already
                     dist = math.sqrt(dist2)
                     q = dist / r
-                    if not soft:
+                    if soft:
+                        width = (abs(ez) * d[0] + abs(ey) * d[1] + abs(ex) * d[2]) / max(dist, 1e-9)
+                        width = max(width, 1e-9)
+                        oc = min(max(0.5 + (r - dist) / width, 0.0), 1.0)
+                        if oc > occ_c[z, y, x]:
+                            occ_c[z, y, x] = oc
+                        if 0.5 + (r * f_hi - dist) / width <= occ_r[z, y, x]:
+                            continue  # no field value can raise the rough occupancy there
+                    else:
                         if q < psi[z, y, x]:
                             psi[z, y, x] = q
                         if marg[z, y, x] <= 0.0 or q - f_hi >= marg[z, y, x]:
@@ -1896,12 +1904,7 @@ def _paint_kernel(psi, marg, occ_c, occ_r, soft, a, v, ra, dr, lo, dims, d, shif
                             i2 = int(math.floor(wx * tex_scale[p] + tex_const[p, 2])) & n_mask
                         g = min(max(tex[i0, i1, i2], -clip), clip)
                     if soft:
-                        width = (abs(ez) * d[0] + abs(ey) * d[1] + abs(ex) * d[2]) / max(dist, 1e-9)
-                        width = max(width, 1e-9)
-                        oc = min(max(0.5 + (r - dist) / width, 0.0), 1.0)
                         orr = min(max(0.5 + (r * (1.0 + rough * g) - dist) / width, 0.0), 1.0)
-                        if oc > occ_c[z, y, x]:
-                            occ_c[z, y, x] = oc
                         if orr > occ_r[z, y, x]:
                             occ_r[z, y, x] = orr
                     else:
