@@ -33,6 +33,7 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
@@ -2102,6 +2103,7 @@ def _paint_imaged(
     tex_scale = np.zeros(len(a))
     tex_const = np.zeros((len(a), 3))
     if roughness > 0 and correlation_um is None:
+        # The original field, drawn as in _paint_tubes: one radius per correlation length.
         mode = 1
         tex = _noise_texture(rng)
         seg_off = rng.uniform(0, _TEX_N, size=(len(net.segments), 3))
@@ -2113,8 +2115,9 @@ def _paint_imaged(
         # A quarter of the texels at a quarter of the smoothing: the same period
         # in correlation lengths (about 11), and a texture small enough (128 kB)
         # for the cache, which lookups scattered along rotated rays would keep
-        # missing. Texels are a third of a correlation length, so voxels (at
-        # least that far apart where the roughness is short) never see them.
+        # missing. Texels are a third of a correlation length, finer than the
+        # voxels sampling a field correlated over a voxel or two, so the
+        # nearest-texel lookup shows no steps.
         tex = _noise_texture(rng, _TEX_N // 4, _TEX_SIGMA / 4)
         # One field for all tubes, turned at random so that no tube runs along a
         # period of the texture; texel edge = correlation / (2 sigma).
@@ -2591,10 +2594,12 @@ def _add_blobs(mask, samp, d, count, rng, occupied, fit) -> list[dict]:
 def _add_handles(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
     """Add ``count`` small loops on thick vessels: handles over or tunnels under the wall.
 
-    A handle is a thin arc rising from inside the wall to 1.5-2.5 voxels of
-    clearance above it; a tunnel is a thin passage entering the wall from
-    outside, running 1.5-2.5 voxels beneath it and leaving again. Either adds
-    one loop (Euler number - 1) that belongs to no vessel.
+    A handle is a thin arc rising from inside the wall to 1.5-2.5 lateral
+    voxels of clearance above it; a tunnel is a thin passage entering the
+    wall from outside, running under a bridge 1-2 lateral voxels thick and
+    leaving again. Either adds one loop (Euler number - 1) that belongs to no
+    vessel. ``clearance_um`` records the gap under an arc or the bridge over
+    a tunnel.
     """
     if count == 0:
         return []
@@ -2621,8 +2626,8 @@ def _add_handles(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
         phi = float(rng.uniform(-0.25 * math.pi, 0.25 * math.pi))
         half_t = max(rho, 0.5 * lat)
         if kind == "tunnel":
-            # The bridge over a tunnel may be one voxel thin; its floor stays in
-            # the outer fifth of the vessel... or the vessel gets a handle instead.
+            # The bridge over a tunnel may be one voxel thin; the passage must stay
+            # within the outer 80 % of the radius, else the vessel gets a handle.
             clearance -= 0.5 * lat
             if clearance + 2.0 * half_t > 0.8 * r:
                 kind = "handle"
@@ -2669,7 +2674,8 @@ def _add_handles(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
         )
         if len(out) == count:
             return out
-    return _short("handles", f"at most {len(out)} handles for this network and spacing", count, out, fit)
+    why = f"at most {len(out)} handles for this network and spacing"
+    return _short("handles", why, count, out, fit)
 
 
 def _carve_open_holes(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
@@ -3185,7 +3191,7 @@ def rasterize(
 #: What :func:`hostile_artefacts` asks for at strength 1 (counts are rounded
 #: after scaling; ``roughness_correlation_vox`` is in lateral voxels and does
 #: not scale).
-HOSTILE_AT_FULL_STRENGTH: Mapping[str, float] = {
+HOSTILE_AT_FULL_STRENGTH: Mapping[str, float] = MappingProxyType({
     "roughness": 0.25,
     "roughness_correlation_vox": 1.5,
     "blobs": 6,
@@ -3195,7 +3201,7 @@ HOSTILE_AT_FULL_STRENGTH: Mapping[str, float] = {
     "gaps": 3,
     "specks": 4,
     "jitter_vox": 1.0,
-}
+})
 
 
 def hostile_artefacts(
