@@ -4,7 +4,11 @@ In: geometric parameters in micrometres (lengths, radii, angles, a Murray
 exponent, random seeds) for one of several builders (straight, curved and
 helical tubes, a torus, a Y branch, a 3-D dichotomous tree, a looping
 capillary bed, a ladder), then a voxel spacing ``(dz, dy, dx)`` and optional
-imperfections (surface roughness, stray specks, enclosed holes).
+imperfections: the kind ones of the demo volumes (smooth surface roughness,
+stray specks, enclosed holes) and the hostile ones of real segmentations
+(roughness down to a voxel or two, blobs stuck to walls, handles and tunnels,
+open pits, gaps in thin vessels, an anisotropic point-spread, plane-to-plane
+motion; :func:`hostile_artefacts` sets them all from one strength).
 
 Out: a :class:`VesselNetwork` (nodes and densely sampled centreline polylines
 with radii, in µm), a boolean mask of shape ``(Z, Y, X)`` from
@@ -17,7 +21,8 @@ beside it.
 Conventions: axis order (z, y, x); voxel ``(i, j, k)`` has its centre at
 ``(i*dz, j*dy, k*dx)`` µm. A voxel is vessel when its centre lies inside the
 union of capsules along the polyline, the capsule radius interpolated
-linearly along each polyline piece.
+linearly along each polyline piece. Artefacts never change the truth's
+network; they are listed beside it, with the topology change of each.
 """
 
 from __future__ import annotations
@@ -28,6 +33,7 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
@@ -55,6 +61,8 @@ __all__ = [
     "murray_daughter_radii",
     "murray_angles_deg",
     "rasterize",
+    "HOSTILE_AT_FULL_STRENGTH",
+    "hostile_artefacts",
     "write_volume",
     "truth_path_for",
     "synthesize",
@@ -1658,13 +1666,22 @@ def _raster_pieces(net: VesselNetwork, tol: float, spacing: np.ndarray, reach_fa
     return pts[ia], pts[ib], rad[ia], rad[ib], owner[ia]
 
 
-def _noise_texture(rng: np.random.Generator) -> np.ndarray:
-    """Periodic unit-variance smooth Gaussian field, shape (_TEX_N,)*3, float32."""
-    white = rng.standard_normal((_TEX_N,) * 3).astype(np.float32)
-    field_ = ndimage.gaussian_filter(white, _TEX_SIGMA, mode="wrap")
+def _noise_texture(rng: np.random.Generator, n: int = _TEX_N, sigma: float = _TEX_SIGMA) -> np.ndarray:
+    """Periodic unit-variance smooth Gaussian field, shape (n,)*3, float32."""
+    white = rng.standard_normal((n,) * 3).astype(np.float32)
+    field_ = ndimage.gaussian_filter(white, sigma, mode="wrap")
     field_ -= field_.mean()
     field_ /= field_.std()
     return field_
+
+
+def _random_rotation(rng: np.random.Generator) -> np.ndarray:
+    """Uniformly distributed rotation matrix (3, 3): QR of a Gaussian matrix, signs fixed."""
+    q, r = np.linalg.qr(rng.standard_normal((3, 3)))
+    q = q * np.sign(np.diag(r))
+    if np.linalg.det(q) < 0:
+        q[:, 0] = -q[:, 0]
+    return q
 
 
 def _paint_tubes(
@@ -1765,6 +1782,428 @@ def _paint_tubes(
         start = stop
 
 
+def _paint_kernel(psi, marg, occ_c, occ_r, soft, a, v, ra, dr, lo, dims, d, shift, rough, f_lo, f_hi, half_w,
+                  mode, tex, rot, off, tex_scale, tex_const, clip):
+    """Union of rough capsules, one voxel at a time (compiled with numba on first use).
+
+    Binary: ``psi`` keeps the smallest ``dist / r`` over pieces (the smooth
+    wall is ``psi <= 1``) and ``marg`` the smallest ``dist / r - (1 + rough
+    g)`` (the rough wall is ``marg <= 0``). Soft: ``occ_c`` and ``occ_r``
+    keep the largest partial-volume occupancy without and with roughness,
+    a linear ramp across the voxel's width along the radial direction. ``g``
+    is the clipped field looked up at the voxel (``mode`` 1, the original
+    texture) or at the voxel's radial projection on the nominal wall
+    (``mode`` 2).
+    """
+    n_mask = tex.shape[0] - 1
+    dx = d[2]
+    for p in range(a.shape[0]):
+        v0, v1, v2 = v[p, 0], v[p, 1], v[p, 2]
+        vv = max(v0 * v0 + v1 * v1 + v2 * v2, 1e-24)
+        inv = 1.0 / vv
+        big = max(ra[p], ra[p] + dr[p]) * f_hi + half_w
+        alpha = dx * dx * (1.0 - v2 * v2 * inv)
+        for iz in range(dims[p, 0]):
+            z = lo[p, 0] + iz
+            wz = z * d[0] - a[p, 0]
+            for iy in range(dims[p, 1]):
+                y = lo[p, 1] + iy
+                wy = y * d[1] - a[p, 1] - shift[z, 0]
+                # Row (z, y): wx = c + x dx. The capsule (radius ``big``, a bound for
+                # the reach anywhere on the piece) is convex, so its voxels in the
+                # row form one run: the hull of the row's runs through the two end
+                # balls and through the cylinder between the end planes.
+                c = lo[p, 2] * dx - a[p, 2] - shift[z, 1]
+                x0 = np.inf
+                x1 = -np.inf
+                h = big * big - wz * wz - wy * wy
+                if h >= 0.0:
+                    h = math.sqrt(h)
+                    x0 = min(x0, (-c - h) / dx)
+                    x1 = max(x1, (-c + h) / dx)
+                h = big * big - (wz - v0) ** 2 - (wy - v1) ** 2
+                if h >= 0.0:
+                    h = math.sqrt(h)
+                    x0 = min(x0, (v2 - c - h) / dx)
+                    x1 = max(x1, (v2 - c + h) / dx)
+                s0 = wz * v0 + wy * v1 + c * v2
+                beta = 2.0 * dx * (c - s0 * v2 * inv)
+                gamma = wz * wz + wy * wy + c * c - s0 * s0 * inv - big * big
+                c0 = -np.inf
+                c1 = np.inf
+                if abs(v2) > 1e-12:
+                    e0 = -s0 / (dx * v2)
+                    e1 = (vv - s0) / (dx * v2)
+                    c0 = min(e0, e1)
+                    c1 = max(e0, e1)
+                elif s0 < 0.0 or s0 > vv:
+                    c1 = -np.inf
+                if alpha > 1e-12:
+                    disc = beta * beta - 4.0 * alpha * gamma
+                    if disc < 0.0:
+                        c1 = -np.inf
+                    else:
+                        root = math.sqrt(disc)
+                        c0 = max(c0, (-beta - root) / (2.0 * alpha))
+                        c1 = min(c1, (-beta + root) / (2.0 * alpha))
+                elif gamma > 0.0:
+                    c1 = -np.inf
+                if c1 >= c0:
+                    x0 = min(x0, c0)
+                    x1 = max(x1, c1)
+                x0 = max(x0, 0.0)
+                x1 = min(x1, dims[p, 2] - 1.0)
+                if x1 < x0:
+                    continue
+                first = max(int(math.floor(x0)) - 1, 0)
+                last = min(int(math.ceil(x1)) + 1, dims[p, 2] - 1)
+                for ix in range(first, last + 1):
+                    x = lo[p, 2] + ix
+                    wx = c + ix * dx
+                    t = min(max((wz * v0 + wy * v1 + wx * v2) * inv, 0.0), 1.0)
+                    ez = wz - t * v0
+                    ey = wy - t * v1
+                    ex = wx - t * v2
+                    dist2 = ez * ez + ey * ey + ex * ex
+                    r = ra[p] + t * dr[p]
+                    reach = r * f_hi + half_w
+                    if dist2 > reach * reach:
+                        continue
+                    if soft and occ_r[z, y, x] >= 1.0 and occ_c[z, y, x] >= 1.0:
+                        continue  # full already
+                    dist = math.sqrt(dist2)
+                    q = dist / r
+                    if soft:
+                        width = (abs(ez) * d[0] + abs(ey) * d[1] + abs(ex) * d[2]) / max(dist, 1e-9)
+                        width = max(width, 1e-9)
+                        oc = min(max(0.5 + (r - dist) / width, 0.0), 1.0)
+                        if oc > occ_c[z, y, x]:
+                            occ_c[z, y, x] = oc
+                        if 0.5 + (r * f_hi - dist) / width <= occ_r[z, y, x]:
+                            continue  # no field value can raise the rough occupancy there
+                    else:
+                        if q < psi[z, y, x]:
+                            psi[z, y, x] = q
+                        if marg[z, y, x] <= 0.0 or q - f_hi >= marg[z, y, x]:
+                            continue  # inside already, or no field value can beat the margin there
+                    g = 0.0
+                    if rough > 0.0 and dist > r * f_lo - half_w:
+                        if mode == 2:
+                            lift = r / max(dist, 1e-9)
+                            pz = a[p, 0] + t * v0 + ez * lift
+                            py = a[p, 1] + t * v1 + ey * lift
+                            px = a[p, 2] + t * v2 + ex * lift
+                            q0 = rot[0, 0] * pz + rot[0, 1] * py + rot[0, 2] * px + off[0]
+                            q1 = rot[1, 0] * pz + rot[1, 1] * py + rot[1, 2] * px + off[1]
+                            q2 = rot[2, 0] * pz + rot[2, 1] * py + rot[2, 2] * px + off[2]
+                            i0 = int(math.floor(q0)) & n_mask
+                            i1 = int(math.floor(q1)) & n_mask
+                            i2 = int(math.floor(q2)) & n_mask
+                        else:
+                            i0 = int(math.floor(wz * tex_scale[p] + tex_const[p, 0])) & n_mask
+                            i1 = int(math.floor(wy * tex_scale[p] + tex_const[p, 1])) & n_mask
+                            i2 = int(math.floor(wx * tex_scale[p] + tex_const[p, 2])) & n_mask
+                        g = min(max(tex[i0, i1, i2], -clip), clip)
+                    if soft:
+                        orr = min(max(0.5 + (r * (1.0 + rough * g) - dist) / width, 0.0), 1.0)
+                        if orr > occ_r[z, y, x]:
+                            occ_r[z, y, x] = orr
+                    else:
+                        m = q - (1.0 + rough * g)
+                        if m < marg[z, y, x]:
+                            marg[z, y, x] = m
+
+
+def _homotopic_kernel(mask, cz, cy, cx, target, passes):
+    """Set ``mask`` at the candidates (in order) to ``target`` where the voxel is simple.
+
+    A voxel is simple (26-connected foreground, 6-connected background) when
+    the foreground in its 26-neighbourhood forms one 26-component and the
+    background in its 18-neighbourhood has one 6-component that touches a
+    face of it (Bertrand G, Malandain G 1994, Pattern Recognit Lett 15:169);
+    setting or clearing a simple voxel changes no component, cavity or loop.
+    The 3x3x3 neighbourhood is a 27-bit word (bit 9 dz + 3 dy + dx, offsets
+    from -1), so both flood fills are a few shifts. Candidates refused are
+    tried again in up to ``passes`` rounds. Returns how many stay refused.
+    """
+    # Bits that may receive a shift by +-1 (x) or +-3 (y) without wrapping round
+    # a row or column of the cube; bits past 26 are never kept.
+    up_x = down_x = up_y = down_y = n18 = 0
+    for k in range(27):
+        if k % 3 != 0:
+            up_x |= 1 << k
+        if k % 3 != 2:
+            down_x |= 1 << k
+        if (k // 3) % 3 != 0:
+            up_y |= 1 << k
+        if (k // 3) % 3 != 2:
+            down_y |= 1 << k
+        if k != 13 and abs(k // 9 - 1) + abs((k // 3) % 3 - 1) + abs(k % 3 - 1) <= 2:
+            n18 |= 1 << k
+    faces = (1 << 4) | (1 << 10) | (1 << 12) | (1 << 14) | (1 << 16) | (1 << 22)
+    nz, ny, nx = mask.shape
+    left = 0
+    for _ in range(passes):
+        changed = 0
+        left = 0
+        for i in range(cz.shape[0]):
+            z, y, x = cz[i], cy[i], cx[i]
+            if mask[z, y, x] == target[i]:
+                continue
+            fg = 0
+            for k in range(27):
+                zz = z + k // 9 - 1
+                yy = y + (k // 3) % 3 - 1
+                xx = x + k % 3 - 1
+                if k != 13 and 0 <= zz < nz and 0 <= yy < ny and 0 <= xx < nx and mask[zz, yy, xx]:
+                    fg |= 1 << k
+            simple = fg != 0
+            if simple:
+                grown = fg & -fg
+                while True:
+                    s = grown | ((grown << 1) & up_x) | ((grown >> 1) & down_x)
+                    s = s | ((s << 3) & up_y) | ((s >> 3) & down_y)
+                    s = (s | (s << 9) | (s >> 9)) & fg  # fg has no bit past 26
+                    if s == grown:
+                        break
+                    grown = s
+                simple = grown == fg
+            if simple:
+                bg = ~fg & n18
+                touch = bg & faces
+                simple = touch != 0
+                if simple:
+                    grown = touch & -touch
+                    while True:
+                        s = grown | ((grown << 1) & up_x) | ((grown >> 1) & down_x)
+                        s |= ((grown << 3) & up_y) | ((grown >> 3) & down_y)
+                        s = (s | (grown << 9) | (grown >> 9)) & bg
+                        if s == grown:
+                            break
+                        grown = s
+                    simple = (touch & ~grown) == 0
+            if simple:
+                mask[z, y, x] = target[i]
+                changed += 1
+            else:
+                left += 1
+        if changed == 0:
+            break
+    return left
+
+
+def _homotopic(start: np.ndarray, goal: np.ndarray, key: np.ndarray) -> int:
+    """Turn ``start`` towards ``goal`` in place through simple voxels only.
+
+    Voxels to clear go first, outermost (largest ``key``) first; then voxels
+    to set, innermost (smallest ``key``) first, so walls grow and recede one
+    layer at a time. Returns the number of voxels left as in ``start``.
+    """
+    diff = start != goal
+    clear = np.flatnonzero(diff & start)
+    add = np.flatnonzero(diff & ~start)
+    flat_key = key.reshape(-1)
+    order = np.r_[
+        clear[np.argsort(-flat_key[clear], kind="stable")], add[np.argsort(flat_key[add], kind="stable")]
+    ]
+    cz, cy, cx = (c.astype(np.int64) for c in np.unravel_index(order, start.shape))
+    target = goal.reshape(-1)[order]
+    return int(_compiled(_homotopic_kernel)(start, cz, cy, cx, target, 3))
+
+
+_COMPILED: dict[str, Callable[..., Any]] = {}
+
+
+def _compiled(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """``fn`` compiled by numba, on first use (importing numba costs every command line start)."""
+    if fn.__name__ not in _COMPILED:
+        import numba
+
+        _COMPILED[fn.__name__] = numba.njit(cache=True, nogil=True)(fn)
+    return _COMPILED[fn.__name__]
+
+
+def _shift_planes(vol: np.ndarray, shift_vox: np.ndarray) -> np.ndarray:
+    """Plane ``i`` of ``vol`` moved by ``shift_vox[i]`` (y, x) voxels, bilinear, edges repeated.
+
+    Output ``[i, y, x]`` = input at ``(y - sy, x - sx)``, as ``ndimage.shift``
+    with ``order=1, mode='nearest'`` per plane, in a few slices per plane.
+    """
+    k = int(math.ceil(float(np.abs(shift_vox).max()))) + 1
+    pad = np.pad(vol, ((0, 0), (k, k), (k, k)), mode="edge")
+    _, ny, nx = vol.shape
+    out = np.empty_like(vol)
+    for z, (sy, sx) in enumerate(shift_vox):
+        iy, ix = int(math.floor(-sy)), int(math.floor(-sx))
+        fy, fx = float(-sy - iy), float(-sx - ix)
+        y0, x0 = k + iy, k + ix
+        p = pad[z]
+        rows = p[y0 : y0 + ny + 1]
+        mixed = (1.0 - fx) * rows[:, x0 : x0 + nx] + fx * rows[:, x0 + 1 : x0 + 1 + nx]
+        out[z] = (1.0 - fy) * mixed[:ny] + fy * mixed[1:]
+    return out
+
+
+def _paint_imaged(
+    shape: tuple[int, int, int],
+    net: VesselNetwork,
+    d: np.ndarray,
+    roughness: float,
+    rng: np.random.Generator,
+    *,
+    correlation_um: float | None,
+    shift_vox: np.ndarray | None,
+    psf_sigma_um: np.ndarray | None,
+    psf_threshold: float,
+) -> tuple[np.ndarray, int]:
+    """Vessels as imaged: rough walls, optional blur and plane motion, thresholded.
+
+    The smooth vessels are imaged too, and the rough mask is reached from
+    the smooth one through simple voxels only (:func:`_homotopic`): rough
+    walls never add a loop, cavity or piece of their own (steep short-range
+    bumps digitised side by side would otherwise arch over the grooves
+    between them); the few voxels that would are left smooth. With
+    ``correlation_um`` the roughness field (1/e correlation length
+    ``correlation_um``) is looked up where the voxel's ray from the axis
+    meets the nominal wall, a function of the wall position alone. Without
+    it the original field (about one radius, looked up at the voxel) is used.
+
+    Returns
+    -------
+    mask : ndarray of bool, shape ``shape``
+    refused : int
+        Voxels of the rough wall left as in the smooth one.
+    """
+    soft = psf_sigma_um is not None
+    f_hi = 1.0 + _FIELD_CLIP * roughness
+    f_lo = 1.0 - _FIELD_CLIP * roughness
+    # The kernel visits only each row's run inside a piece, so long pieces cost
+    # nothing in empty corners and save the end caps that neighbours share.
+    pts, rad, owner, sel = _chord_selection(
+        net, _SAGITTA_FRACTION * float(d.min()), lambda rmin, rmax, u: 16.0 * rmin
+    )
+    pair = owner[sel[:-1]] == owner[sel[1:]]
+    ia, ib = sel[:-1][pair], sel[1:][pair]
+    a, b, ra, rb, sid = pts[ia], pts[ib], rad[ia], rad[ib], owner[ia]
+    half_w = 0.5 * float(np.linalg.norm(d)) if soft else 0.0
+    # Motion is painted into the sampling unless a blur comes first.
+    shift_um = np.zeros((shape[0], 2)) if shift_vox is None or soft else shift_vox * d[1:]
+    pad = np.r_[half_w, half_w + np.abs(shift_um).max(axis=0)]
+    reach = np.maximum(ra, rb)[:, None] * f_hi + pad
+    grid = np.asarray(shape, dtype=np.int64)
+    lo = np.maximum(np.ceil((np.minimum(a, b) - reach) / d - 1e-6).astype(np.int64), 0)
+    hi = np.minimum(np.floor((np.maximum(a, b) + reach) / d + 1e-6).astype(np.int64), grid - 1)
+    dims = hi - lo + 1
+    live = np.all(dims > 0, axis=1)
+    a, b, ra, rb, sid, lo, dims = a[live], b[live], ra[live], rb[live], sid[live], lo[live], dims[live]
+    mode = 0
+    tex = np.zeros((1, 1, 1), dtype=np.float32)
+    rot = np.eye(3)
+    off = np.zeros(3)
+    tex_scale = np.zeros(len(a))
+    tex_const = np.zeros((len(a), 3))
+    if roughness > 0 and correlation_um is None:
+        # The original field, drawn as in _paint_tubes: one radius per correlation length.
+        mode = 1
+        tex = _noise_texture(rng)
+        seg_off = rng.uniform(0, _TEX_N, size=(len(net.segments), 3))
+        seg_scale = np.array([2.0 * _TEX_SIGMA / s["radius_um"] for s in net.segments])
+        tex_scale = seg_scale[sid]
+        tex_const = a * seg_scale[sid, None] + seg_off[sid]
+    elif roughness > 0:
+        mode = 2
+        # A quarter of the texels at a quarter of the smoothing: the same period
+        # in correlation lengths (about 11), and a texture small enough (128 kB)
+        # for the cache, which lookups scattered along rotated rays would keep
+        # missing. Texels are a third of a correlation length, finer than the
+        # voxels sampling a field correlated over a voxel or two, so the
+        # nearest-texel lookup shows no steps.
+        tex = _noise_texture(rng, _TEX_N // 4, _TEX_SIGMA / 4)
+        # One field for all tubes, turned at random so that no tube runs along a
+        # period of the texture; texel edge = correlation / (2 sigma).
+        rot = _random_rotation(rng) * (0.5 * _TEX_SIGMA / correlation_um)
+        off = rng.uniform(0, _TEX_N // 4, size=3)
+    small = (1, 1, 1)
+    psi = np.full(small if soft else shape, np.inf, dtype=np.float32)
+    marg = np.full(small if soft else shape, np.inf, dtype=np.float32)
+    occ_c = np.zeros(shape if soft else small, dtype=np.float32)
+    occ_r = np.zeros(shape if soft and roughness > 0 else small, dtype=np.float32)
+    _compiled(_paint_kernel)(
+        psi, marg, occ_c, occ_r if roughness > 0 else occ_c, soft,
+        a, b - a, ra, rb - ra, lo, dims, d, shift_um,
+        float(roughness), f_lo, f_hi, half_w, mode, tex, rot, off, tex_scale, tex_const, _FIELD_CLIP,
+    )
+    if soft:
+        fields = [occ_c, occ_r] if roughness > 0 else [occ_c]
+        for k, occ in enumerate(fields):
+            if np.any(psf_sigma_um > 0):
+                occ = ndimage.gaussian_filter(occ, psf_sigma_um / d, mode="nearest")
+            if shift_vox is not None:
+                # The motion moves what the microscope sees in each plane: shift after the blur.
+                occ = _shift_planes(occ, shift_vox)
+            fields[k] = occ
+        mask = fields[0] >= psf_threshold
+        if roughness <= 0:
+            return mask, 0
+        goal = fields[1] >= psf_threshold
+        key = -fields[1]  # most surely inside first
+    else:
+        mask = psi <= 1.0
+        if roughness <= 0:
+            return mask, 0
+        goal = marg <= 0.0
+        key = psi
+    refused = _homotopic(mask, goal, key)
+    return mask, refused
+
+
+def _fill_cavities(mask: np.ndarray) -> int:
+    """Fill background components (6-connected) that touch no face; return how many."""
+    lab, n = ndimage.label(~mask)
+    if n == 0:
+        return 0
+    touching = np.zeros(n + 1, dtype=bool)
+    for ax in range(3):
+        for end in (0, -1):
+            touching[np.unique(np.take(lab, end, axis=ax))] = True
+    inner = ~touching
+    inner[0] = False
+    if not inner.any():
+        return 0
+    mask[inner[lab]] = True
+    return int(np.count_nonzero(inner))
+
+
+def _euler_26(mask: np.ndarray) -> int:
+    """Euler number of the foreground (26-connected; background 6-connected).
+
+    The union of closed voxel cubes is a cubical complex: chi = vertices -
+    edges + faces - cubes, each counted once through the voxels around it.
+    """
+    p = np.pad(mask, 1)
+    z, y, x = mask.shape
+
+    def any_of(offsets, size):
+        out = np.zeros(size, dtype=bool)
+        for o in offsets:
+            out |= p[o[0] : o[0] + size[0], o[1] : o[1] + size[1], o[2] : o[2] + size[2]]
+        return int(np.count_nonzero(out))
+
+    pairs = (0, 1)
+    vertices = any_of([(i, j, k) for i in pairs for j in pairs for k in pairs], (z + 1, y + 1, x + 1))
+    edges = (
+        any_of([(1, j, k) for j in pairs for k in pairs], (z, y + 1, x + 1))
+        + any_of([(i, 1, k) for i in pairs for k in pairs], (z + 1, y, x + 1))
+        + any_of([(i, j, 1) for i in pairs for j in pairs], (z + 1, y + 1, x))
+    )
+    faces = (
+        any_of([(i, 1, 1) for i in pairs], (z + 1, y, x))
+        + any_of([(1, j, 1) for j in pairs], (z, y + 1, x))
+        + any_of([(1, 1, k) for k in pairs], (z, y, x + 1))
+    )
+    return vertices - edges + faces - int(np.count_nonzero(mask))
+
+
 def _cube(k: int) -> np.ndarray:
     r = np.arange(-k, k + 1)
     return np.stack(np.meshgrid(r, r, r, indexing="ij"), axis=-1).reshape(-1, 3)
@@ -1789,38 +2228,65 @@ def _blob_offsets(rng: np.random.Generator, radius_vox: float, k: int) -> tuple[
     return offs[sel], centre
 
 
-def _carve_holes(mask, net, d, count, rng) -> list[dict]:
-    """Carve ``count`` fully enclosed background cavities on vessel centrelines."""
+def _to_image(p: np.ndarray, shift_um: np.ndarray | None, d: np.ndarray) -> np.ndarray:
+    """Positions (..., 3) µm moved by the lateral shift of the plane nearest to each."""
+    if shift_um is None:
+        return p
+    plane = np.clip(np.round(p[..., 0] / d[0]).astype(np.int64), 0, len(shift_um) - 1)
+    out = np.array(p, dtype=float)
+    out[..., 1:] += shift_um[plane]
+    return out
+
+
+def _short(name: str, why: str, count: int, placed: list[dict], fit: bool) -> list[dict]:
+    """What was placed when fewer than ``count`` fit: returned with ``fit``, else an error."""
+    if fit:
+        return placed
+    raise _bad(name, why, count)
+
+
+def _carve_holes(mask, net, d, count, rng, radius_range=(0.5, 1.0), shift_um=None, fit=False) -> list[dict]:
+    """Carve ``count`` fully enclosed background cavities on vessel centrelines.
+
+    Each is a ball (radius drawn from ``radius_range``, voxel index units)
+    around a sub-voxel centre, inside a cube of half-edge ``k`` voxels; it is
+    carved only where the cube one voxel larger is all vessel, so a closed
+    shell stays around it.
+    """
     if count == 0:
         return []
-    need_r = 3.0 * float(d.max())
+    r_lo, r_hi = radius_range
+    # Radii up to one voxel keep the original 3^3 footprint, so old seeds give old masks.
+    k = 1 if r_hi <= 1.0 else int(math.ceil(r_hi + 0.3))
+    need_r = (k + 2.0) * float(d.max())
     shape = np.asarray(mask.shape)
     cands = []
     for s in net.segments:
         pts, rad = s["points_um"], s["radii_um"]
-        k = len(pts)
-        sel = np.arange(int(0.25 * k), max(int(0.75 * k), int(0.25 * k) + 1))
+        n = len(pts)
+        sel = np.arange(int(0.25 * n), max(int(0.75 * n), int(0.25 * n) + 1))
         sel = sel[rad[sel] >= need_r]
         if len(sel):
             cands.append(np.c_[pts[sel], np.full(len(sel), s["id"])])
     if not cands:
-        raise _bad("holes", f"0 when no vessel has radius >= 3 voxels ({need_r:g} um)", count)
+        why = f"0 when no vessel has radius >= {k + 2} voxels ({need_r:g} um)"
+        return _short("holes", why, count, [], fit)
     cands = np.concatenate(cands)
-    shell = _cube(2)
+    shell = _cube(k + 1)
     out = []
     order = rng.permutation(len(cands))
     for start in range(0, len(order), 512):
         pick = cands[order[start : start + 512]]
-        base = np.round(pick[:, :3] / d).astype(np.int64)
-        inside = np.all((base >= 3) & (base < shape - 3), axis=1)
+        base = np.round(_to_image(pick[:, :3], shift_um, d) / d).astype(np.int64)
+        inside = np.all((base >= k + 2) & (base < shape - (k + 2)), axis=1)
         full = np.zeros(len(base), dtype=bool)
         full[inside] = np.all(_gather(mask, base[inside], shell, False), axis=1)
         for i in np.nonzero(full)[0]:
             # Re-check: an earlier hole in this batch may sit in the shell.
             if not np.all(_gather(mask, base[i : i + 1], shell, False)):
                 continue
-            radius = float(rng.uniform(0.5, 1.0))
-            offs, centre = _blob_offsets(rng, radius, 1)
+            radius = float(rng.uniform(r_lo, r_hi))
+            offs, centre = _blob_offsets(rng, radius, k)
             vox = base[i] + offs
             mask[vox[:, 0], vox[:, 1], vox[:, 2]] = False
             out.append(
@@ -1834,10 +2300,11 @@ def _carve_holes(mask, net, d, count, rng) -> list[dict]:
             )
             if len(out) == count:
                 return out
-    raise _bad("holes", f"at most {len(out)} enclosed cavities for this network and spacing", count)
+    why = f"at most {len(out)} enclosed cavities for this network and spacing"
+    return _short("holes", why, count, out, fit)
 
 
-def _add_specks(mask, d, count, rng) -> list[dict]:
+def _add_specks(mask, d, count, rng, fit=False) -> list[dict]:
     """Add ``count`` isolated small blobs in the background, apart from everything."""
     if count == 0:
         return []
@@ -1870,7 +2337,531 @@ def _add_specks(mask, d, count, rng) -> list[dict]:
             )
             if len(out) == count:
                 return out
-    raise _bad("specks", f"at most {len(out)} isolated specks in this volume", count)
+    return _short("specks", f"at most {len(out)} isolated specks in this volume", count, out, fit)
+
+
+# ----------------------------------------------------------------------- artefacts
+
+# Handles, tunnels and open holes go on vessels at least this many lateral voxels
+# in radius (thinner walls leave no room for a loop beside the lumen); gaps cut
+# vessels at most this many lateral voxels in radius (capillaries are 2-4 voxels
+# across; 2.5 also takes the thinnest vessels of the demo capillary bed).
+_THICK_VOX = 3.0
+_THIN_VOX = 2.5
+_MAX_JITTER_VOX = 3.0
+# Attempts per requested artefact before giving up with an error.
+_ATTEMPTS = 60
+_FULL26 = np.ones((3, 3, 3), dtype=bool)
+_FACE6 = ndimage.generate_binary_structure(3, 1)
+
+
+@dataclass
+class _Samples:
+    """Centreline samples of the clipped network, in image space (after jitter)."""
+
+    pos: np.ndarray  # (N, 3) µm
+    rad: np.ndarray  # (N,) µm
+    tan: np.ndarray  # (N, 3) unit tangents
+    seg: np.ndarray  # (N,) segment ids of the truth
+    arc: np.ndarray  # (N,) arc position along the segment, µm
+    to_end: np.ndarray  # (N,) arc distance to the nearer segment end, µm
+    to_junction: np.ndarray  # (N,) arc distance to the nearer end where other segments join, µm
+    weight: np.ndarray  # (N,) arc length each sample stands for, µm
+    tree: cKDTree
+
+
+def _centreline_samples(net: VesselNetwork, d: np.ndarray, shift_um: np.ndarray | None) -> _Samples:
+    k = np.array([len(seg["points_um"]) for seg in net.segments], dtype=np.int64)
+    starts = np.cumsum(k) - k
+    last = starts + k - 1
+    pts = np.concatenate([seg["points_um"] for seg in net.segments])
+    owner = np.repeat(np.arange(len(k)), k)
+    step = np.linalg.norm(np.diff(pts, axis=0), axis=1)
+    step[last[:-1]] = 0.0  # no step from one segment's end to the next one's start
+    arc = np.r_[0.0, np.cumsum(step)]
+    arc -= arc[starts][owner]
+    length = arc[last][owner]
+    # Central differences inside a segment, one-sided at its ends.
+    nxt = np.minimum(np.arange(len(pts)) + 1, last[owner])
+    prv = np.maximum(np.arange(len(pts)) - 1, starts[owner])
+    tan = pts[nxt] - pts[prv]
+    tan /= np.maximum(np.linalg.norm(tan, axis=1), 1e-12)[:, None]
+    before = np.r_[0.0, step][: len(pts)]
+    before[starts] = 0.0
+    after = np.r_[step, 0.0]
+    img = _to_image(pts, shift_um, d)
+    deg = net.degrees()
+    joined_from = np.array([deg[seg["node_from"]] > 1 for seg in net.segments])[owner]
+    joined_to = np.array([deg[seg["node_to"]] > 1 for seg in net.segments])[owner]
+    return _Samples(
+        img,
+        np.concatenate([seg["radii_um"] for seg in net.segments]),
+        tan,
+        np.array([seg["id"] for seg in net.segments], dtype=np.int64)[owner],
+        arc,
+        np.minimum(arc, length - arc),
+        np.minimum(np.where(joined_from, arc, np.inf), np.where(joined_to, length - arc, np.inf)),
+        0.5 * (before + after),
+        cKDTree(img),
+    )
+
+
+class _Occupied:
+    """Balls already taken by artefacts, so that new ones keep their distance."""
+
+    def __init__(self, margin_um: float):
+        self.margin = margin_um
+        self.centres: list[np.ndarray] = []
+        self.radii: list[float] = []
+
+    def free(self, centre: np.ndarray, radius: float) -> bool:
+        if not self.centres:
+            return True
+        dist = np.linalg.norm(np.asarray(self.centres) - centre, axis=1)
+        return bool(np.all(dist >= np.asarray(self.radii) + radius + self.margin))
+
+    def add(self, centre: np.ndarray, radius: float) -> None:
+        self.centres.append(np.asarray(centre, dtype=float))
+        self.radii.append(float(radius))
+
+
+def _clear_of_others(
+    samp: _Samples, i: int, pts: np.ndarray, radius: float, reach: float, margin: float
+) -> bool:
+    """True when no other vessel's rough wall comes within ``margin`` of the balls at ``pts``.
+
+    ``reach`` multiplies radii (room for roughness); parts of the same
+    segment far away along the arc count as other vessels, so loops and
+    coils are not bridged.
+    """
+    pts = np.atleast_2d(pts)
+    span = float(np.max(np.linalg.norm(pts - samp.pos[i], axis=1))) + radius
+    hits = samp.tree.query_ball_point(pts, radius + margin + reach * float(samp.rad.max()))
+    j = np.unique(np.concatenate([np.asarray(h, dtype=np.int64) for h in hits]))
+    if len(j) == 0:
+        return True
+    far_arc = np.abs(samp.arc[j] - samp.arc[i]) > 2.0 * (span + margin + reach * samp.rad[i])
+    j = j[(samp.seg[j] != samp.seg[i]) | far_arc]
+    if len(j) == 0:
+        return True
+    dist, _ = cKDTree(pts).query(samp.pos[j])
+    return not bool(np.any(dist < radius + margin + reach * samp.rad[j]))
+
+
+def _pick(samp: _Samples, ok: np.ndarray, rng: np.random.Generator) -> int:
+    """Index of a sample among ``ok``, with probability proportional to arc length."""
+    idx = np.flatnonzero(ok)
+    cdf = np.cumsum(samp.weight[idx])
+    return int(idx[min(int(np.searchsorted(cdf, rng.random() * cdf[-1])), len(idx) - 1)])
+
+
+def _perpendicular(rng: np.random.Generator, u: np.ndarray) -> np.ndarray:
+    v = rng.standard_normal(3)
+    v -= np.dot(v, u) * u
+    n = float(np.linalg.norm(v))
+    return v / n if n > 1e-9 else _any_perpendicular(u)
+
+
+def _box_voxels(lo_um: np.ndarray, hi_um: np.ndarray, d: np.ndarray, shape: np.ndarray) -> np.ndarray:
+    """Indices (M, 3) of voxel centres in the box ``[lo_um, hi_um]``, cut to the grid."""
+    lo = np.maximum(np.ceil(lo_um / d - 1e-9).astype(np.int64), 0)
+    hi = np.minimum(np.floor(hi_um / d + 1e-9).astype(np.int64), shape - 1)
+    if np.any(hi < lo):
+        return np.empty((0, 3), dtype=np.int64)
+    axes = [np.arange(lo[k], hi[k] + 1) for k in range(3)]
+    return np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
+
+
+def _curve_voxels(pts: np.ndarray, radius: float, d: np.ndarray, shape: np.ndarray) -> np.ndarray:
+    """Voxels of a thin tube along the dense polyline ``pts`` (µm), face-connected.
+
+    The voxels holding consecutive points are joined by steps along one axis
+    at a time, so the chain is 6-connected (a carved tunnel is a passage for
+    6-connected background); voxel centres within ``radius`` of a point are
+    added for thickness.
+    """
+    v = np.round(pts / d).astype(np.int64)
+    chain = [v]
+    # Fill in corners where consecutive voxels differ along several axes.
+    for ax in range(2):
+        mid = v[:-1].copy()
+        mid[:, : ax + 1] = v[1:, : ax + 1]
+        chain.append(mid)
+    vox = [np.concatenate(chain)]
+    if radius > 0:
+        box = _box_voxels(pts.min(axis=0) - radius, pts.max(axis=0) + radius, d, shape)
+        if len(box):
+            dist, _ = cKDTree(pts).query(box * d, distance_upper_bound=radius * 1.0001)
+            vox.append(box[dist <= radius])
+    out = np.unique(np.concatenate(vox), axis=0)
+    return out[np.all((out >= 0) & (out < shape), axis=1)]
+
+
+def _enclosed(background: np.ndarray) -> int:
+    """6-connected components of ``background`` touching no face of the array."""
+    lab, n = ndimage.label(background)
+    if n == 0:
+        return 0
+    touching = np.zeros(n + 1, dtype=bool)
+    for ax in range(3):
+        for end in (0, -1):
+            touching[np.take(lab, end, axis=ax)] = True
+    return int(n - np.count_nonzero(touching[1:]))
+
+
+def _try_change(mask: np.ndarray, vox: np.ndarray, value: bool, euler_change: int, attach: bool) -> int:
+    """Set ``mask[vox] = value`` if that changes the Euler number by exactly ``euler_change``.
+
+    The Euler number is a sum over 2x2x2 configurations, so its change is
+    computed exactly on a crop holding the changed voxels with a margin. No
+    cavity may appear or vanish in the crop (the margin of 3 voxels holds any
+    pit or hole nearby), so a change cannot trade a cavity for a loop. With
+    ``attach`` every added voxel must join a component that held vessel
+    voxels before (no new piece). Returns the number of voxels changed (0
+    when refused or nothing would change).
+    """
+    from skimage.measure import euler_number
+
+    if len(vox) == 0:
+        return 0
+    lo = np.maximum(vox.min(axis=0) - 3, 0)
+    hi = np.minimum(vox.max(axis=0) + 4, mask.shape)
+    sl = tuple(slice(int(a), int(b)) for a, b in zip(lo, hi))
+    before = mask[sl].copy()
+    after = before.copy()
+    loc = vox - lo
+    after[loc[:, 0], loc[:, 1], loc[:, 2]] = value
+    changed = int(np.count_nonzero(after != before))
+    if changed == 0:
+        return 0
+    if euler_number(after, connectivity=3) - euler_number(before, connectivity=3) != euler_change:
+        return 0
+    if _enclosed(~after) != _enclosed(~before):
+        return 0
+    if attach:
+        lab, _ = ndimage.label(after, structure=_FULL26)
+        if not np.all(np.isin(lab[after & ~before], lab[before])):
+            return 0
+    mask[sl] = after
+    return changed
+
+
+def _add_blobs(mask, samp, d, count, rng, occupied, fit) -> list[dict]:
+    """Add ``count`` ellipsoidal blobs stuck to vessel walls (no new component, no loop)."""
+    if count == 0:
+        return []
+    shape = np.asarray(mask.shape)
+    top = (shape - 1) * d
+    ok = np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
+    if not np.any(ok):
+        return _short("blobs", "0 when no centreline lies in the grid", count, [], fit)
+    out: list[dict] = []
+    for _ in range(_ATTEMPTS * count):
+        i = _pick(samp, ok, rng)
+        r, n = float(samp.rad[i]), _perpendicular(rng, samp.tan[i])
+        rb = max(float(rng.uniform(0.3, 0.8)) * r, float(d.min()))
+        semi = rb * np.array([1.0, rng.uniform(0.6, 1.0), rng.uniform(0.6, 1.0)])
+        rot = _random_rotation(rng)
+        centre = samp.pos[i] + n * (r + float(rng.uniform(-0.25, 0.5)) * rb)
+        if not occupied.free(centre, rb):
+            continue
+        box = _box_voxels(centre - rb, centre + rb, d, shape)
+        q = (box * d - centre) @ rot
+        vox = box[np.sum((q / semi) ** 2, axis=1) <= 1.0]
+        added = _try_change(mask, vox, True, 0, attach=True)
+        if not added:
+            continue
+        occupied.add(centre, rb)
+        out.append(
+            {
+                "centre_um": centre.tolist(),
+                "centre_vox": (centre / d).tolist(),
+                "semi_axes_um": semi.tolist(),
+                # Rows: unit vectors of the three semi-axes (z, y, x components).
+                "axes": rot.T.tolist(),
+                "segment": int(samp.seg[i]),
+                "vessel_radius_um": r,
+                "n_voxels": added,
+                "euler_change": 0,
+            }
+        )
+        if len(out) == count:
+            return out
+    why = f"at most {len(out)} blobs attached to walls for this network and spacing"
+    return _short("blobs", why, count, out, fit)
+
+
+def _add_handles(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
+    """Add ``count`` small loops on thick vessels: handles over or tunnels under the wall.
+
+    A handle is a thin arc rising from inside the wall to 1.5-2.5 lateral
+    voxels of clearance above it; a tunnel is a thin passage entering the
+    wall from outside, running under a bridge 1-2 lateral voxels thick and
+    leaving again. Either adds one loop (Euler number - 1) that belongs to no
+    vessel. ``clearance_um`` records the gap under an arc or the bridge over
+    a tunnel.
+    """
+    if count == 0:
+        return []
+    shape = np.asarray(mask.shape)
+    top = (shape - 1) * d
+    lat = float(max(d[1], d[2]))
+    ok = (
+        (samp.rad >= _THICK_VOX * lat)
+        & np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
+        & (samp.to_end >= samp.rad + 4.0 * lat)
+    )
+    if not np.any(ok):
+        why = f"0 when no vessel has radius >= {_THICK_VOX:g} voxels ({_THICK_VOX * lat:g} um)"
+        return _short("handles", why, count, [], fit)
+    out: list[dict] = []
+    for _ in range(_ATTEMPTS * count):
+        i = _pick(samp, ok, rng)
+        r, u = float(samp.rad[i]), samp.tan[i]
+        n = _perpendicular(rng, u)
+        kind = "handle" if rng.random() < 0.5 else "tunnel"
+        half_span = float(rng.uniform(2.0, 3.5)) * lat
+        rho = float(rng.uniform(0.5, 1.0)) * lat
+        clearance = float(rng.uniform(1.5, 2.5)) * lat
+        phi = float(rng.uniform(-0.25 * math.pi, 0.25 * math.pi))
+        half_t = max(rho, 0.5 * lat)
+        if kind == "tunnel":
+            # The bridge over a tunnel may be one voxel thin; the passage must stay
+            # within the outer 80 % of the radius, else the vessel gets a handle.
+            clearance -= 0.5 * lat
+            if clearance + 2.0 * half_t > 0.8 * r:
+                kind = "handle"
+                clearance += 0.5 * lat
+        height = clearance + half_t  # centreline of the arc above (below) the nominal wall
+        anchor = 1.5 * lat + rho  # feet below (tunnel mouths above) the nominal wall
+        length = 2.0 * half_span + 2.0 * (height + anchor)
+        tau = np.linspace(-1.0, 1.0, int(math.ceil(3.0 * length / float(d.min()))) + 2)
+        prof = np.sqrt(np.clip(1.0 - tau**2, 0.0, 1.0))
+        sign = 1.0 if kind == "handle" else -1.0
+        radial = r - sign * anchor + sign * (height + anchor) * prof
+        ang = tau * half_span * math.sin(phi) / r
+        w = np.cross(u, n)
+        pts = (
+            samp.pos[i]
+            + (tau * half_span * math.cos(phi))[:, None] * u
+            + radial[:, None] * (np.cos(ang)[:, None] * n + np.sin(ang)[:, None] * w)
+        )
+        middle = pts.mean(axis=0)
+        extent = float(np.max(np.linalg.norm(pts - middle, axis=1))) + rho
+        if not occupied.free(middle, extent):
+            continue
+        if not _clear_of_others(samp, i, pts[:: max(1, len(pts) // 12)], rho, reach, 2 * lat):
+            continue
+        vox = _curve_voxels(pts, rho, d, shape)
+        changed = _try_change(mask, vox, kind == "handle", -1, attach=kind == "handle")
+        if not changed:
+            continue
+        occupied.add(middle, extent)
+        out.append(
+            {
+                "kind": kind,
+                "feet_um": [pts[0].tolist(), pts[-1].tolist()],
+                "apex_um": pts[len(pts) // 2].tolist(),
+                "apex_vox": (pts[len(pts) // 2] / d).tolist(),
+                "span_um": float(np.linalg.norm(pts[-1] - pts[0])),
+                "clearance_um": clearance,
+                "thickness_um": 2.0 * half_t,
+                "segment": int(samp.seg[i]),
+                "vessel_radius_um": r,
+                "n_voxels": changed,
+                "euler_change": -1,
+            }
+        )
+        if len(out) == count:
+            return out
+    why = f"at most {len(out)} handles for this network and spacing"
+    return _short("handles", why, count, out, fit)
+
+
+def _carve_open_holes(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
+    """Carve ``count`` pits into walls, open to the outside.
+
+    Each is a ball of radius 0.5-2 lateral voxels (in µm, so a coarse z step
+    sees it in a plane or two) centred on the nominal wall of a vessel with
+    radius >= 3 lateral voxels; it must touch background that was there
+    before and change no component, loop or cavity.
+    """
+    if count == 0:
+        return []
+    shape = np.asarray(mask.shape)
+    top = (shape - 1) * d
+    lat = float(max(d[1], d[2]))
+    ok = (
+        (samp.rad >= _THICK_VOX * lat)
+        & np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
+        & (samp.to_end >= samp.rad + 2.0 * lat)
+    )
+    if not np.any(ok):
+        why = f"0 when no vessel has radius >= {_THICK_VOX:g} voxels ({_THICK_VOX * lat:g} um)"
+        return _short("open_holes", why, count, [], fit)
+    out: list[dict] = []
+    for _ in range(_ATTEMPTS * count):
+        i = _pick(samp, ok, rng)
+        r, n = float(samp.rad[i]), _perpendicular(rng, samp.tan[i])
+        radius = float(rng.uniform(0.5, 2.0)) * lat
+        centre = samp.pos[i] + r * n  # on the nominal wall
+        if not occupied.free(centre, radius) or not _clear_of_others(samp, i, centre, radius, reach, lat):
+            continue  # a pit must not bite into a neighbour
+        box = _box_voxels(centre - radius, centre + radius, d, shape)
+        vox = box[np.linalg.norm(box * d - centre, axis=1) <= radius]
+        if len(vox) == 0:
+            vox = np.clip(np.round(centre / d).astype(np.int64), 0, shape - 1)[None]
+        if not np.any(mask[vox[:, 0], vox[:, 1], vox[:, 2]]):
+            continue
+        # Open: a removed voxel must touch background that was already there.
+        lo = np.maximum(vox.min(axis=0) - 1, 0)
+        hi = np.minimum(vox.max(axis=0) + 2, shape)
+        sl = tuple(slice(int(a), int(b)) for a, b in zip(lo, hi))
+        carved = np.zeros(tuple(int(x) for x in hi - lo), dtype=bool)
+        loc = vox - lo
+        carved[loc[:, 0], loc[:, 1], loc[:, 2]] = True
+        carved &= mask[sl]
+        if not np.any(ndimage.binary_dilation(carved, _FACE6) & ~mask[sl]):
+            continue
+        removed = _try_change(mask, vox, False, 0, attach=False)
+        if not removed:
+            continue
+        occupied.add(centre, radius)
+        out.append(
+            {
+                "centre_um": centre.tolist(),
+                "centre_vox": (centre / d).tolist(),
+                "radius_um": radius,
+                "radius_vox": radius / lat,
+                "segment": int(samp.seg[i]),
+                "vessel_radius_um": r,
+                "n_voxels": removed,
+                "euler_change": 0,
+            }
+        )
+        if len(out) == count:
+            return out
+    why = f"at most {len(out)} open holes for this network and spacing"
+    return _short("open_holes", why, count, out, fit)
+
+
+def _carve_gaps(mask, samp, d, count, rng, occupied, reach, jitter_um, fit) -> list[dict]:
+    """Cut ``count`` thin vessels by slabs of background 1-3 voxels long.
+
+    The slab is perpendicular to the local tangent ``u`` and ``g * sum_a |u_a|
+    d_a`` long (g = 1, 2 or 3): no two 26-neighbours differ by more than
+    ``sum_a |u_a| d_a`` along ``u``, so no vessel voxel on one side touches one
+    on the other. Within a disc covering the rough wall plus twice the
+    jitter, the slab clears the vessel voxels connected (inside the slab) to
+    the vessel's core, so a neighbour passing through the disc is spared.
+    """
+    if count == 0:
+        return []
+    shape = np.asarray(mask.shape)
+    top = (shape - 1) * d
+    lat = float(max(d[1], d[2]))
+    margin = 0.5 * float(np.linalg.norm(d))  # half a voxel diagonal: the digitised wall's slack
+    ok = (samp.rad <= _THIN_VOX * lat) & np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
+    if not np.any(ok):
+        why = f"0 when no vessel has radius <= {_THIN_VOX:g} voxels ({_THIN_VOX * lat:g} um)"
+        return _short("gaps", why, count, [], fit)
+    out: list[dict] = []
+    for _ in range(_ATTEMPTS * count):
+        i = _pick(samp, ok, rng)
+        u, centre, r = samp.tan[i], samp.pos[i], float(samp.rad[i])
+        g = int(rng.integers(1, 4))
+        length = g * float(np.sum(np.abs(u) * d))
+        disc = r * reach + 2.0 * jitter_um + margin
+        extent = math.hypot(disc, 0.5 * length)
+        # The junction node outside the disc (tubes meeting there and crossing
+        # the slab apart from this one are spared), and off the very tips of
+        # blind or cut ends.
+        if samp.to_junction[i] < disc + margin or samp.to_end[i] < 0.5 * length + margin:
+            continue
+        if not occupied.free(centre, extent):
+            continue
+        box = _box_voxels(centre - extent, centre + extent, d, shape)
+        rel = box * d - centre
+        along = rel @ u
+        across = np.linalg.norm(rel - along[:, None] * u, axis=1)
+        box = box[(np.abs(along) <= 0.5 * length) & (across <= disc)]
+        across = across[(np.abs(along) <= 0.5 * length) & (across <= disc)]
+        if len(box) == 0:
+            continue
+        lo = box.min(axis=0)
+        local = np.zeros(tuple(box.max(axis=0) - lo + 1), dtype=bool)
+        loc = box - lo
+        local[loc[:, 0], loc[:, 1], loc[:, 2]] = mask[box[:, 0], box[:, 1], box[:, 2]]
+        lab, _ = ndimage.label(local, structure=_FULL26)
+        labels = lab[loc[:, 0], loc[:, 1], loc[:, 2]]
+        core = np.unique(labels[(across <= 0.5 * r + 0.5 * jitter_um + 0.5 * lat) & (labels > 0)])
+        if len(core) == 0:
+            continue
+        vox = box[np.isin(labels, core)]
+        removed = _try_change(mask, vox, False, 1, attach=False)
+        if not removed:
+            continue
+        occupied.add(centre, extent)
+        out.append(
+            {
+                "centre_um": centre.tolist(),
+                "centre_vox": (centre / d).tolist(),
+                "direction": u.tolist(),
+                "length_vox": g,
+                "length_um": length,
+                "segment": int(samp.seg[i]),
+                "arc_position_um": float(samp.arc[i]),
+                "vessel_radius_um": r,
+                "n_voxels": removed,
+                "euler_change": 1,
+            }
+        )
+        if len(out) == count:
+            return out
+    why = f"at most {len(out)} gaps in thin vessels for this network and spacing"
+    return _short("gaps", why, count, out, fit)
+
+
+def _jitter_shifts(rng: np.random.Generator, n_planes: int, jitter_vox: float) -> np.ndarray:
+    """Per-plane lateral shifts (n_planes, 2) in voxels, uniform in a disc of radius ``jitter_vox``."""
+    rad = jitter_vox * np.sqrt(rng.random(n_planes))
+    ang = rng.uniform(0.0, 2.0 * math.pi, n_planes)
+    return np.stack([rad * np.sin(ang), rad * np.cos(ang)], axis=1)
+
+
+def _clipped_normal_second_moment(c: float) -> float:
+    """E[min(max(g, -c), c)^2] for a standard normal g."""
+    tail = 0.5 * math.erfc(c / math.sqrt(2.0))
+    pdf = math.exp(-0.5 * c * c) / math.sqrt(2.0 * math.pi)
+    return 1.0 - 2.0 * tail - 2.0 * c * pdf + 2.0 * c * c * tail
+
+
+def _psf_sigma(value: Any) -> np.ndarray | None:
+    if value is None:
+        return None
+    if isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_)):
+        value = (value,) * 3
+    try:
+        arr = np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise _bad("psf_sigma_um", "None, a number or three numbers (sz, sy, sx) >= 0", value) from None
+    if arr.shape != (3,) or not np.all(np.isfinite(arr)) or np.any(arr < 0):
+        raise _bad("psf_sigma_um", "None, a number or three numbers (sz, sy, sx) >= 0", value)
+    return arr
+
+
+def _radius_range(value: Any) -> tuple[float, float]:
+    expected = "two radii (low, high) with 0.5 <= low <= high <= 3"
+    try:
+        pair = list(value)
+    except TypeError:
+        pair = []
+    if isinstance(value, (str, bytes)) or len(pair) != 2:
+        raise _bad("hole_radius_vox", expected, value)
+    lo, hi = (_real("hole_radius_vox", v, low=0.5, high=3.0) for v in pair)
+    if lo > hi:
+        raise _bad("hole_radius_vox", expected, value)
+    return lo, hi
 
 
 def rasterize(
@@ -1880,18 +2871,40 @@ def rasterize(
     shape: Sequence[int] | None = None,
     margin_um: float | None = None,
     roughness: float = 0.0,
+    roughness_correlation_um: float | None = None,
     specks: int = 0,
     holes: int = 0,
+    hole_radius_vox: Sequence[float] = (0.5, 1.0),
+    open_holes: int = 0,
+    blobs: int = 0,
+    handles: int = 0,
+    gaps: int = 0,
+    psf_sigma_um: float | Sequence[float] | None = None,
+    psf_threshold: float = 0.5,
+    jitter_vox: float = 0.0,
+    fit_artefacts: bool = False,
     seed: int | None = None,
 ) -> tuple[np.ndarray, dict[str, Any]]:
     """Turn a network into a boolean voxel mask and its ground truth.
+
+    With the original options only (``spacing``, ``shape``, ``margin_um``,
+    ``roughness``, ``specks``, ``holes``, ``seed``) masks and truths are
+    exactly those of earlier versions. Any artefact option switches to a
+    model of a lab's segmentation, made in the order a real one is: vessels
+    with rough walls, imaging (point-spread blur, plane-to-plane motion),
+    threshold, then the defects of segmenting (enclosed holes, open holes,
+    gaps, handles and tunnels, blobs, specks), each checked on the mask when
+    placed so that it changes the topology exactly as recorded.
 
     Parameters
     ----------
     network : VesselNetwork
         Network in µm.
     spacing : sequence of 3 float
-        Voxel size ``(dz, dy, dx)`` in µm; anisotropic grids are fine.
+        Voxel size ``(dz, dy, dx)`` in µm; anisotropic grids are fine. A
+        coarse ``dz`` (2-5 times ``dx``) gives staircase walls in z, and a
+        vessel thinner than ``dz / 2`` climbing through the planes breaks
+        where its axis passes half-way between two.
     shape : sequence of 3 int, optional
         Grid shape ``(Z, Y, X)``. When given (or when the network carries
         ``box_um``) the coordinates are taken as already placed: voxel
@@ -1901,18 +2914,80 @@ def rasterize(
     margin_um : float, optional
         Free space around the network; default ``max(5, 2 * max(spacing))``.
     roughness : float
-        Relative standard deviation of a smooth random radius perturbation, in
+        Relative standard deviation of a random radius perturbation, in
         [0, 0.3]: a voxel is vessel when its distance to the centreline is
-        ``<= r * (1 + roughness * g)`` with ``g`` a unit-variance Gaussian field
-        of correlation length about one radius (clipped to +-2.5).
+        ``<= r * (1 + roughness * g)`` with ``g`` a zero-mean unit-variance
+        Gaussian field clipped to +-2.5 sd. The mean radius stays the
+        truth's; the mean cross-section is ``pi r^2 E[(1 + s g)^2] = pi r^2
+        (1 + 0.978 s^2)``, 6.1 % more at 0.25 (measured on 300 um tubes:
+        1.061 +- 0.007), recorded as ``roughness_area_factor``.
+    roughness_correlation_um : float, optional
+        1/e correlation length of ``g`` in µm. None keeps the original field
+        (correlation about one nominal radius, looked up at the voxel). A
+        value, down to a voxel or two, gives short-range roughness from one
+        field for all vessels, looked up where the voxel's ray from the axis
+        meets the nominal wall, so the wall radius is a function of the wall
+        position alone.
     specks : int
         Number of stray blobs (radius 0.5-1.5 voxels) away from vessels; each is
         its own 26-connected component.
     holes : int
-        Number of enclosed background cavities (radius 0.5-1 voxel) carved on
-        centrelines where the radius is >= 3 voxels along every axis.
+        Number of enclosed background cavities carved on centrelines where the
+        radius is at least ``k + 2`` voxels along every axis (``k`` = 1 for
+        radii up to one voxel, else ``ceil(high + 0.3)``); each adds one
+        cavity (Euler number + 1).
+    hole_radius_vox : (float, float)
+        Range of the enclosed holes' radii in voxel index units, within
+        [0.5, 3]; default (0.5, 1).
+    open_holes : int
+        Number of pits open to the outside: balls of radius 0.5-2 lateral
+        voxels (µm, ``max(dy, dx)`` units) centred on the nominal wall of
+        vessels with radius >= 3 lateral voxels. Topology is unchanged.
+    blobs : int
+        Number of ellipsoids stuck to walls: largest semi-axis 0.3-0.8 of
+        the local radius (at least the smallest voxel edge), the others
+        0.6-1 of it, turned at random, centred from a quarter of it inside
+        to half of it outside the nominal wall. Each touches its vessel (no
+        new 26-component) and adds no loop or cavity.
+    handles : int
+        Number of small loops on vessels with radius >= 3 lateral voxels,
+        at random either handles (arcs 1-2 voxels thick with feet 4-7
+        voxels apart inside the wall and 1.5-2.5 voxels of clearance over
+        it) or tunnels (passages of that size running 1-2 voxels beneath the
+        wall, open at both ends; handles where the vessel is too thin). Each
+        lowers the Euler number by one and belongs to no vessel.
+    gaps : int
+        Number of cuts through vessels with radius <= 2.5 lateral voxels:
+        the vessel's voxels in a slab across it, ``g`` = 1, 2 or 3 voxel
+        steps long along the tangent (``g * sum_a |u_a| d_a``, so no
+        26-neighbours span it), away from junctions. Each raises the Euler
+        number by one (a piece more, or a loop less).
+    psf_sigma_um : float or sequence of 3 float, optional
+        Standard deviations ``(sz, sy, sx)`` µm (or one for all axes) of a
+        Gaussian point-spread. The partial-volume occupancy of the vessels
+        (a linear ramp across each voxel's width along the wall normal) is
+        blurred with it (vessels cut by the faces continue) and thresholded
+        at ``psf_threshold``.
+    psf_threshold : float
+        Threshold in (0, 1) on the blurred occupancy. 0.5 keeps a flat wall
+        in place; lower values (as automatic thresholds on dim backgrounds
+        give) push walls out by about ``sigma Phi^-1(1 - t)`` along each
+        axis, so an elongated ``sz`` makes vessels taller in z, small and
+        horizontal ones most.
+    jitter_vox : float
+        Largest lateral shift of a z plane, in [0, 3] voxels (``dy``, ``dx``
+        units): plane ``i`` shows the vessels moved by a shift drawn
+        uniformly in a disc of that radius (breathing and heartbeat),
+        applied to the sampling, or with a point-spread to the blurred plane
+        before the threshold.
+    fit_artefacts : bool
+        False: raise when fewer specks, holes, open holes, blobs, handles or
+        gaps fit than asked for. True: place as many as fit, up to each
+        count (the truth lists those placed), to sweep one set of counts
+        over many networks.
     seed : int, optional
-        Seed for roughness, holes and specks (independent streams).
+        Seed for every random choice; each kind of artefact draws from its
+        own stream, so adding one leaves the others' draws unchanged.
 
     Returns
     -------
@@ -1922,12 +2997,32 @@ def rasterize(
         (segments leaving it end in 'border' nodes), plus ``spacing``,
         ``shape``, ``offset_um``, node ``pos_vox`` (voxel index units),
         ``mask_voxels``, ``mask_volume_um3``, ``rasterize`` options and the
-        ``specks`` and ``holes`` actually placed.
+        ``specks`` and ``holes`` actually placed. Nodes, segments and the
+        summary (cyclomatic number included) always describe the true
+        network, never the artefacts. With an artefact option,
+        ``rasterize`` also holds every new option, ``roughness_area_factor``
+        and ``fit_artefacts``, and the truth gains:
+
+        - ``open_holes``, ``blobs``, ``handles``, ``gaps``: lists of dicts
+          with positions in µm and voxel units (mask coordinates), sizes,
+          ``segment`` (truth id), ``vessel_radius_um``, ``n_voxels``
+          changed and ``euler_change``; handles have ``kind`` ('handle' or
+          'tunnel'), ``feet_um`` and ``apex_um``; gaps ``direction``,
+          ``length_vox``, ``length_um`` and ``arc_position_um``;
+        - ``jitter``: ``shift_vox`` and ``shift_um``, (Z, 2) (y, x) per
+          plane, or None;
+        - ``imaged_euler_number``: Euler number (26-connected) of the
+          vessels as imaged, before the defects; ``imaged_cavities_filled``;
+          ``roughness_voxels_refused``;
+        - ``artefact_euler_change``: holes + specks + gaps - handles, so
+          that the mask's Euler number is ``imaged_euler_number +
+          artefact_euler_change`` exactly.
 
     Raises
     ------
     InputError
-        On bad arguments, or when nothing of the network lies in the grid.
+        On bad arguments, when nothing of the network lies in the grid, or
+        (without ``fit_artefacts``) when the artefacts asked for do not fit.
 
     Notes
     -----
@@ -1938,17 +3033,50 @@ def rasterize(
     about 3 % of junctions gain a one-voxel handle, so the mask's loop count
     can exceed the truth's ``cyclomatic_number`` slightly; trees, rings and
     ladders keep their topology at radii of two voxels and more.
+
+    With artefact options, rough walls are reached from the smooth ones
+    through simple voxels only (the few that would join, split, loop or
+    enclose are left smooth and counted in ``roughness_voxels_refused``),
+    so roughness, however short-ranged, changes no topology; cavities left
+    by imaging are filled (``imaged_cavities_filled``), so the only cavities
+    are the recorded holes. Blur and motion may still join or break vessels,
+    as they do in real stacks; ``imaged_euler_number`` accounts for that.
     """
     if not isinstance(network, VesselNetwork):
         raise _bad("network", "a VesselNetwork", type(network).__name__)
     d = _spacing(spacing)
     margin = max(5.0, 2.0 * float(d.max())) if margin_um is None else _real("margin_um", margin_um, low=0.0)
     rough = _real("roughness", roughness, low=0.0, high=_MAX_ROUGHNESS)
+    corr = (
+        None
+        if roughness_correlation_um is None
+        else _positive("roughness_correlation_um", roughness_correlation_um)
+    )
     n_specks = _count("specks", specks)
     n_holes = _count("holes", holes)
+    hole_range = _radius_range(hole_radius_vox)
+    n_open = _count("open_holes", open_holes)
+    n_blobs = _count("blobs", blobs)
+    n_handles = _count("handles", handles)
+    n_gaps = _count("gaps", gaps)
+    psf = _psf_sigma(psf_sigma_um)
+    psf_t = _real("psf_threshold", psf_threshold, low=0.0, low_open=True, high=1.0, high_open=True)
+    jitter = _real("jitter_vox", jitter_vox, low=0.0, high=_MAX_JITTER_VOX)
+    if not isinstance(fit_artefacts, (bool, np.bool_)):
+        raise _bad("fit_artefacts", "True or False", fit_artefacts)
+    fit = bool(fit_artefacts)
     base_rng = _rng(seed)
-    rng_rough, rng_holes, rng_specks = (
-        np.random.default_rng(s) for s in base_rng.bit_generator.seed_seq.spawn(3)
+    # Children 0-2 are the original streams; later ones are new artefacts'.
+    streams = [np.random.default_rng(s) for s in base_rng.bit_generator.seed_seq.spawn(8)]
+    rng_rough, rng_holes, rng_specks, rng_blobs, rng_handles, rng_open, rng_gaps, rng_jitter = streams
+    extended = (
+        corr is not None
+        or hole_range != (0.5, 1.0)
+        or n_open + n_blobs + n_handles + n_gaps > 0
+        or psf is not None
+        or psf_t != 0.5
+        or jitter > 0
+        or fit
     )
 
     if shape is not None:
@@ -1976,16 +3104,50 @@ def rasterize(
         raise _bad("shape", "at most 2**34 voxels", tuple(grid.tolist()))
     top = (grid - 1) * d
     cut = _clip_network(placed, np.zeros(3), top)
+    dims = tuple(int(n) for n in grid)
 
-    mask = np.zeros(tuple(int(n) for n in grid), dtype=bool)
-    _paint_tubes(mask, placed, d, rough, rng_rough)
-    hole_rec = _carve_holes(mask, cut, d, n_holes, rng_holes)
-    speck_rec = _add_specks(mask, d, n_specks, rng_specks)
+    shift_vox = _jitter_shifts(rng_jitter, dims[0], jitter) if jitter > 0 else None
+    shift_um = None if shift_vox is None else shift_vox * d[1:]
+    if not extended:
+        mask = np.zeros(dims, dtype=bool)
+        _paint_tubes(mask, placed, d, rough, rng_rough)
+    else:
+        mask, n_refused = _paint_imaged(
+            dims, placed, d, rough, rng_rough, correlation_um=corr, shift_vox=shift_vox, psf_sigma_um=psf,
+            psf_threshold=psf_t,
+        )
+        # Imaging can still enclose background (a blur closing a narrow gap, planes
+        # shifted over a bend); those cavities are filled, so that the only
+        # cavities are the recorded holes. The Euler number of the vessels as
+        # imaged is kept so that every recorded change adds to it.
+        n_filled = _fill_cavities(mask)
+        imaged_euler = _euler_26(mask)
+    hole_rec = _carve_holes(mask, cut, d, n_holes, rng_holes, hole_range, shift_um, fit)
+    if extended:
+        reach = 1.0 + _FIELD_CLIP * rough
+        samp = _centreline_samples(cut, d, shift_um) if n_open + n_gaps + n_handles + n_blobs else None
+        occupied = _Occupied(float(d.max()))
+        for h in hole_rec:
+            occupied.add(np.asarray(h["centre_um"]), (h["radius_vox"] + 1.0) * float(d.max()))
+        jitter_um = 0.0 if shift_um is None else float(np.max(np.linalg.norm(shift_um, axis=1)))
+        open_rec = _carve_open_holes(mask, samp, d, n_open, rng_open, occupied, reach, fit)
+        gap_rec = _carve_gaps(mask, samp, d, n_gaps, rng_gaps, occupied, reach, jitter_um, fit)
+        handle_rec = _add_handles(mask, samp, d, n_handles, rng_handles, occupied, reach, fit)
+        blob_rec = _add_blobs(mask, samp, d, n_blobs, rng_blobs, occupied, fit)
+    speck_rec = _add_specks(mask, d, n_specks, rng_specks, fit)
 
     truth = cut.to_truth()
     for n in truth["nodes"]:
         n["pos_vox"] = (np.asarray(n["pos_um"]) / d).tolist()
     n_vox = int(np.count_nonzero(mask))
+    options = {
+        "roughness": rough,
+        "roughness_correlation": "one nominal radius" if corr is None else f"{corr:g} um",
+        "margin_um": margin,
+        "specks": n_specks,
+        "holes": n_holes,
+        "seed": seed,
+    }
     extra = dict(
         spacing=d.tolist(),
         shape=[int(n) for n in grid],
@@ -1993,19 +3155,110 @@ def rasterize(
         voxel_volume_um3=float(np.prod(d)),
         mask_voxels=n_vox,
         mask_volume_um3=float(n_vox * np.prod(d)),
-        rasterize={
-            "roughness": rough,
-            "roughness_correlation": "one nominal radius",
-            "margin_um": margin,
-            "specks": n_specks,
-            "holes": n_holes,
-            "seed": seed,
-        },
+        rasterize=options,
         specks=speck_rec,
         holes=hole_rec,
     )
+    if extended:
+        options.update(
+            roughness_correlation_um=corr,
+            roughness_area_factor=1.0 + rough**2 * _clipped_normal_second_moment(_FIELD_CLIP),
+            hole_radius_vox=list(hole_range),
+            open_holes=n_open,
+            blobs=n_blobs,
+            handles=n_handles,
+            gaps=n_gaps,
+            psf_sigma_um=None if psf is None else psf.tolist(),
+            psf_threshold=psf_t,
+            jitter_vox=jitter,
+            fit_artefacts=fit,
+        )
+        extra.update(
+            open_holes=open_rec,
+            blobs=blob_rec,
+            handles=handle_rec,
+            gaps=gap_rec,
+            jitter=None if shift_vox is None else {"shift_vox": shift_vox, "shift_um": shift_um},
+            roughness_voxels_refused=n_refused,
+            imaged_cavities_filled=n_filled,
+            imaged_euler_number=imaged_euler,
+            artefact_euler_change=len(hole_rec) + len(speck_rec) + len(gap_rec) - len(handle_rec),
+        )
     truth.update(_jsonable(extra))
     return mask, truth
+
+
+#: What :func:`hostile_artefacts` asks for at strength 1 (counts are rounded
+#: after scaling; ``roughness_correlation_vox`` is in lateral voxels and does
+#: not scale).
+HOSTILE_AT_FULL_STRENGTH: Mapping[str, float] = MappingProxyType({
+    "roughness": 0.25,
+    "roughness_correlation_vox": 1.5,
+    "blobs": 6,
+    "handles": 2,
+    "holes": 2,
+    "open_holes": 4,
+    "gaps": 3,
+    "specks": 4,
+    "jitter_vox": 1.0,
+})
+
+
+def hostile_artefacts(
+    strength: float = 1.0, *, spacing: Sequence[float] = (1.0, 1.0, 1.0), seed: int | None = None
+) -> dict[str, Any]:
+    """Keyword arguments for :func:`rasterize` with every artefact at one strength.
+
+    Parameters
+    ----------
+    strength : float
+        In [0, 1]. Roughness, counts and jitter are those of
+        :data:`HOSTILE_AT_FULL_STRENGTH` times ``strength`` (counts rounded);
+        the roughness correlation stays 1.5 lateral voxels. 0 gives the
+        clean mask, byte for byte.
+    spacing : sequence of 3 float
+        Voxel size ``(dz, dy, dx)`` µm, passed on and used to turn voxels
+        into µm.
+    seed : int, optional
+        Passed on.
+
+    Returns
+    -------
+    dict
+        ``spacing``, ``seed``, ``roughness``, ``roughness_correlation_um``,
+        ``blobs``, ``handles``, ``holes``, ``open_holes``, ``gaps``,
+        ``specks``, ``jitter_vox`` and ``fit_artefacts=True``: the counts
+        are upper bounds, so one strength suits any network (a tree without
+        vessels thin enough for gaps gets none; the truth lists what was
+        placed).
+
+    Examples
+    --------
+    >>> kw = hostile_artefacts(0.5, spacing=(2.0, 1.0, 1.0), seed=1)
+    >>> kw["roughness"], kw["blobs"], kw["gaps"], kw["jitter_vox"]
+    (0.125, 3, 2, 0.5)
+    >>> mask, truth = rasterize(straight_tube(length_um=40.0, radius_um=4.0), **kw)
+    >>> len(truth["blobs"]), len(truth["gaps"])
+    (3, 0)
+    """
+    s = _real("strength", strength, low=0.0, high=1.0)
+    d = _spacing(spacing)
+    full = HOSTILE_AT_FULL_STRENGTH
+    lat = float(max(d[1], d[2]))
+    names = ("blobs", "handles", "holes", "open_holes", "gaps", "specks")
+    counts = {k: int(round(s * full[k])) for k in names}
+    rough = s * full["roughness"]
+    if s == 0:
+        return {"spacing": d.tolist(), "seed": seed}
+    return {
+        "spacing": d.tolist(),
+        "seed": seed,
+        "roughness": rough,
+        "roughness_correlation_um": full["roughness_correlation_vox"] * lat,
+        **counts,
+        "jitter_vox": s * full["jitter_vox"],
+        "fit_artefacts": True,
+    }
 
 
 # ------------------------------------------------------------------------------ I/O
@@ -2107,7 +3360,25 @@ SYNTH_KINDS: dict[str, SynthKind] = {
     "ladder": SynthKind(ladder, {}, "two rails joined by rungs (loops)"),
 }
 
-_RASTER_KEYS = ("spacing", "shape", "margin_um", "roughness", "specks", "holes", "seed")
+_RASTER_KEYS = (
+    "spacing",
+    "shape",
+    "margin_um",
+    "roughness",
+    "roughness_correlation_um",
+    "specks",
+    "holes",
+    "hole_radius_vox",
+    "open_holes",
+    "blobs",
+    "handles",
+    "gaps",
+    "psf_sigma_um",
+    "psf_threshold",
+    "jitter_vox",
+    "fit_artefacts",
+    "seed",
+)
 
 
 def synthesize(kind: str, **params: Any) -> tuple[np.ndarray, dict[str, Any]]:
@@ -2119,8 +3390,11 @@ def synthesize(kind: str, **params: Any) -> tuple[np.ndarray, dict[str, Any]]:
         A key of :data:`SYNTH_KINDS`.
     **params
         Builder keywords and :func:`rasterize` keywords (``spacing``, ``shape``,
-        ``margin_um``, ``roughness``, ``specks``, ``holes``, ``seed``); they
-        override the kind's defaults. ``seed`` goes to both.
+        ``margin_um``, ``roughness``, ``specks``, ``holes``, ``seed`` and the
+        artefact options ``roughness_correlation_um``, ``hole_radius_vox``,
+        ``open_holes``, ``blobs``, ``handles``, ``gaps``, ``psf_sigma_um``,
+        ``psf_threshold``, ``jitter_vox``, ``fit_artefacts``); they override the kind's
+        defaults. ``seed`` goes to both.
 
     Returns
     -------

@@ -388,3 +388,385 @@ def test_synthesize_every_kind(kind):
 def test_bad_arguments_raise_input_error(call, name):
     with pytest.raises(InputError, match=rf"^{name}: expected"):
         call()
+
+
+# ------------------------------------------------------------------ hostile artefacts
+
+# sha256 of np.packbits(mask) and of json.dumps(truth, sort_keys=True), made by the
+# generator as it was before the artefact options existed: defaults must not move a
+# voxel or a digit.
+BEFORE_ARTEFACTS = {
+    "tree_iso": (
+        "a077ca6f9e20a8b3a008b1b9734f9c7a973020935bcebfea0b757ffffbe2cbeb",
+        "b256d52340640ef0f187bea4ffd3a09193382def7b473a62710e17ad7f2cecac",
+    ),
+    "tree_defects": (
+        "2a38d90cfdc60fd6055b2c25b6d54c290050d4878b46df842f19bd4638f0ddfb",
+        "aae64e5b5ed00055c38a62e4777035f4de243d1af2a06a42050c06c735e9e383",
+    ),
+    "tube_2.5": (
+        "687c7271f72dd79e4de69716a465c0958151d77e232bcde6e6fe3504e4650fc1",
+        "b1d77eb9651ddd55608abfb70c76c6f0efd94c2461c4b14457860af7ca0d2e55",
+    ),
+    "bed_4": (
+        "f6aa24fce5f945e54e8f66af069134da0b6f4ea409d0640eca6d1baae40fdc0e",
+        "b00e49af8c222c11b8b9b45f236ae342c0f674681fcd7e1b907334fa1a12cfd3",
+    ),
+}
+
+
+def _before_case(name, tree):
+    if name == "tree_iso":
+        return syn.rasterize(tree)
+    if name == "tree_defects":
+        return syn.rasterize(tree, spacing=(2.0, 1.0, 1.0), roughness=0.15, specks=3, holes=2, seed=8)
+    if name == "tube_2.5":
+        tube = syn.straight_tube(length_um=40.0, radius_um=2.0, direction=(0.2, 0.5, 1.0))
+        return syn.rasterize(tube, spacing=(2.5, 0.8, 0.8))
+    return syn.synthesize(
+        "bed", shape_um=(48.0, 48.0, 48.0), spacing=(4.0, 1.0, 1.0), roughness=0.05, specks=2, seed=4
+    )
+
+
+def _sha(mask, truth):
+    import hashlib
+
+    return (
+        hashlib.sha256(np.packbits(mask).tobytes()).hexdigest(),
+        hashlib.sha256(json.dumps(truth, sort_keys=True).encode()).hexdigest(),
+    )
+
+
+@pytest.mark.parametrize("name", sorted(BEFORE_ARTEFACTS))
+def test_defaults_are_byte_identical_to_before(name, tree):
+    mask, truth = _before_case(name, tree)
+    assert _sha(mask, truth) == BEFORE_ARTEFACTS[name]
+
+
+def test_hostile_strength_zero_is_the_clean_mask(tree):
+    kw = syn.hostile_artefacts(0.0, spacing=(2.0, 1.0, 1.0), seed=8)
+    assert _sha(*syn.rasterize(tree, **kw)) == _sha(*syn.rasterize(tree, spacing=(2.0, 1.0, 1.0), seed=8))
+
+
+def _placed_like(net, truth, spacing, **kw):
+    """The same network on the same grid as ``truth`` (auto placement depends on roughness)."""
+    return syn.rasterize(net.translated(truth["offset_um"]), spacing=spacing, shape=truth["shape"], **kw)
+
+
+@pytest.mark.parametrize("spacing", [(2.5, 0.8, 0.8), (4.0, 1.0, 1.0)])
+def test_horizontal_capillary_on_coarse_z_is_a_staircase(spacing):
+    # A capillary of radius 1.5 um lying in the (y, x) plane spans one or two
+    # z planes, and an oblique one climbs through them in steps.
+    dz = spacing[0]
+    lying = syn.straight_tube(
+        length_um=80.0, radius_um=1.5, direction=(0, 0.3, 1), centre_um=(2.3 * dz, 30.0, 40.0)
+    )
+    flat, _ = syn.rasterize(lying, spacing=spacing, shape=(6, int(60 / spacing[1]), int(80 / spacing[2])))
+    planes = np.flatnonzero(flat.any(axis=(1, 2)))
+    assert 1 <= len(planes) <= 2 and n_components(flat) == 1
+    # Climbing through the planes it stays whole while a voxel centre lies within
+    # r of the axis in every plane (r > dz / 2), and falls apart where the axis
+    # passes half-way between planes (r < dz / 2).
+    climb = (0.25, 0.0, 1.0)
+    steep, _ = syn.rasterize(
+        syn.straight_tube(length_um=60.0, radius_um=0.55 * dz, direction=climb), spacing=spacing
+    )
+    assert n_components(steep) == 1
+    thin, _ = syn.rasterize(
+        syn.straight_tube(length_um=60.0, radius_um=0.4 * dz, direction=climb), spacing=spacing
+    )
+    assert n_components(thin) > 1
+    # Along x the lowest occupied plane only ever steps up, by at most one.
+    cols = np.flatnonzero(steep.any(axis=(0, 1)))
+    low = [int(np.flatnonzero(steep[:, :, k].any(axis=1))[0]) for k in cols]
+    assert np.all(np.diff(low) >= 0) and np.all(np.diff(low) <= 1) and low[-1] > low[0]
+
+
+@pytest.mark.parametrize("spacing", [(2.5, 0.8, 0.8), (4.0, 1.0, 1.0)])
+def test_oblique_tube_volume_on_staircase_grids(spacing):
+    test_oblique_tube_cut_by_faces_has_volume_pi_r2_l(spacing)
+
+
+def _acf(a: np.ndarray, lag: int) -> float:
+    a = a - a.mean()
+    return float(np.mean(a[:-lag] * a[lag:]) / np.mean(a * a))
+
+
+def test_short_roughness_has_its_correlation_length():
+    # Per-slice cross-section areas along an axis-parallel tube: to first order
+    # in the roughness the area is the circumferential mean of the field, so its
+    # autocorrelation along the axis is the field's, exp(-lag^2 / l^2) for a
+    # 1/e length l (plus white digitisation noise, which lowers it a little).
+    # Over 300 slices the acf has a standard error of ~0.07, so l estimated
+    # from lag 1 lies within [1.0, 2.0] um for l = 1.5 um at ~3 sd.
+    tube = syn.straight_tube(length_um=300.0, radius_um=4.0)
+    short, truth = syn.rasterize(tube, roughness=0.2, roughness_correlation_um=1.5, seed=0)
+    area = short.sum(axis=(0, 1)).astype(float)
+    ell = 1.0 / math.sqrt(-math.log(_acf(area, 1)))
+    assert 1.0 <= ell <= 2.0
+    assert abs(_acf(area, 4)) < 0.2  # gone after ~3 correlation lengths
+    assert truth["rasterize"]["roughness_correlation_um"] == 1.5
+    # The original field is correlated over about one radius (4 um): still
+    # correlated at 2 um, where the short one is nearly gone.
+    long, truth_long = syn.rasterize(tube, roughness=0.2, seed=0)
+    assert _acf(long.sum(axis=(0, 1)).astype(float), 2) > 0.6 > 0.3 > _acf(area, 2)
+    assert truth_long["rasterize"]["roughness_correlation"] == "one nominal radius"
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_rough_tube_mean_area_is_the_recorded_factor(seed):
+    # The radius perturbation r (1 + s g) is zero-mean, so the mean radius is the
+    # truth's and the mean area is pi r^2 E[(1 + s g)^2] = pi r^2 (1 + s^2 E[g^2]),
+    # E[g^2] = 0.978 for g clipped at 2.5 sd: +6.1 % at s = 0.25. A 300 um tube of
+    # radius 4 um holds ~2 pi r L / l^2 ~ 3000 independent wall patches at
+    # l = 1.5 um; the ratio to the same smooth tube then scatters by ~0.7 %
+    # (measured over seeds), so 3 % is > 4 sd.
+    tube = syn.straight_tube(length_um=300.0, radius_um=4.0, direction=(0.2, 0.3, 1.0))
+    rough, truth = syn.rasterize(tube, roughness=0.25, roughness_correlation_um=1.5, seed=seed)
+    smooth, _ = _placed_like(tube, truth, (1.0, 1.0, 1.0))
+    factor = truth["rasterize"]["roughness_area_factor"]
+    assert factor == pytest.approx(1.061, abs=1e-3)
+    assert rough.sum() / smooth.sum() == pytest.approx(factor, abs=0.03)
+    # Short-range roughness leaves the topology of the smooth tube.
+    assert n_components(rough) == 1 and n_cavities(rough) == 0
+    assert euler_number(rough, connectivity=3) == euler_number(smooth, connectivity=3) == 1
+
+
+@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (2.5, 0.8, 0.8)])
+def test_short_roughness_adds_no_loops_to_a_capillary_bed(spacing):
+    # Steep bumps digitised side by side would arch over the grooves between them
+    # and neighbours would touch; the rough wall is reached from the smooth one
+    # through simple voxels only, so loops, cavities and pieces stay as they were.
+    bed = syn.capillary_bed(shape_um=(64.0, 64.0, 64.0), seed=1)
+    rough, truth = syn.rasterize(bed, spacing=spacing, roughness=0.25, roughness_correlation_um=1.5, seed=2)
+    smooth, _ = syn.rasterize(bed, spacing=spacing, fit_artefacts=True)
+    assert np.count_nonzero(rough ^ smooth) > 0.1 * smooth.sum()
+    assert euler_number(rough, connectivity=3) == euler_number(smooth, connectivity=3)
+    assert euler_number(rough, connectivity=3) == truth["imaged_euler_number"]
+    assert n_components(rough) == n_components(smooth) and n_cavities(rough) == 0
+    assert truth["roughness_voxels_refused"] < 0.02 * np.count_nonzero(rough ^ smooth)
+
+
+def test_psf_elongates_a_sphere_in_z_as_predicted():
+    # A ball of radius R blurred along z only (sigma sz) has, at lateral distance
+    # rho and height z, the value Phi((h - z) / sz) - Phi((-h - z) / sz) with
+    # h = sqrt(R^2 - rho^2): thresholding that closed form gives the expected
+    # region. Its second moments match the mask's within 5 % (the partial-volume
+    # ramp stands in for the box average of a voxel, which adds d^2 / 12 to the
+    # blur variance; digitising a ~3000-voxel region moves moments by ~1 %).
+    from scipy.special import ndtr
+
+    radius, sz, level, spacing = 5.0, 2.5, 0.25, (1.0, 0.5, 0.5)
+    ball = syn.straight_tube(length_um=1e-3, radius_um=radius, ends="blind")
+    mask, truth = syn.rasterize(
+        ball, spacing=spacing, margin_um=15.0, psf_sigma_um=(sz, 0.0, 0.0), psf_threshold=level
+    )
+    assert truth["rasterize"]["psf_sigma_um"] == [sz, 0.0, 0.0]
+    centre = np.mean([n["pos_um"] for n in truth["nodes"]], axis=0)
+    pos = np.indices(mask.shape).reshape(3, -1).T * np.asarray(spacing) - centre
+    rho2 = pos[:, 1] ** 2 + pos[:, 2] ** 2
+    h = np.sqrt(np.clip(radius**2 - rho2, 0.0, None))
+    value = np.where(rho2 < radius**2, ndtr((h - pos[:, 0]) / sz) - ndtr((-h - pos[:, 0]) / sz), 0.0)
+    expected = value >= level
+    got = mask.reshape(-1)
+    smooth, _ = _placed_like(ball, truth, spacing)
+    flat = smooth.reshape(-1)
+
+    def moment(sel, ax):
+        return float(np.mean(pos[sel, ax] ** 2))
+
+    assert moment(got, 0) == pytest.approx(moment(expected, 0), rel=0.05)
+    assert moment(got, 2) == pytest.approx(moment(expected, 2), rel=0.05)
+    # Taller in z by about a factor sqrt(2), hardly wider.
+    assert moment(got, 0) / moment(flat, 0) > 1.8
+    assert moment(got, 2) / moment(flat, 2) < 1.1
+
+
+@pytest.mark.parametrize("psf", [None, (1.0, 0.5, 0.5)])
+def test_jitter_shifts_each_plane_as_recorded(psf):
+    # A vertical tube: in every plane its disc centroid moves by the recorded
+    # shift. Digitising a disc of radius 4 voxels moves its centroid by up to
+    # ~0.2 voxel (a boundary voxel weighs 4/50 of a voxel).
+    spacing = (2.0, 1.0, 1.0)
+    tube = syn.straight_tube(length_um=60.0, radius_um=4.0, direction=(1.0, 0.0, 0.0))
+    mask, truth = syn.rasterize(tube, spacing=spacing, jitter_vox=1.0, psf_sigma_um=psf, seed=3)
+    still, _ = _placed_like(tube, truth, spacing, psf_sigma_um=psf, fit_artefacts=True)
+    shift = np.asarray(truth["jitter"]["shift_vox"])
+    assert shift.shape == (mask.shape[0], 2)
+    assert np.all(np.linalg.norm(shift, axis=1) <= 1.0 + 1e-12) and np.std(shift) > 0.2
+    assert np.allclose(truth["jitter"]["shift_um"], shift * np.asarray(spacing[1:]))
+    moved = np.array(
+        [
+            np.subtract(ndimage.center_of_mass(mask[z]), ndimage.center_of_mass(still[z]))
+            for z in range(mask.shape[0])
+        ]
+    )
+    assert np.max(np.abs(moved - shift)) < 0.25 and np.mean(np.abs(moved - shift)) < 0.1
+
+
+def test_blobs_stick_to_walls(tree):
+    base, _ = syn.rasterize(tree, fit_artefacts=True)
+    mask, truth = syn.rasterize(tree, blobs=6, seed=4)
+    assert len(truth["blobs"]) == 6 and truth["rasterize"]["blobs"] == 6
+    assert np.all(mask >= base)
+    assert int(mask.sum() - base.sum()) == sum(b["n_voxels"] for b in truth["blobs"])
+    # Attached (no new 26-component), and no loop or cavity.
+    assert n_components(mask) == 1 and n_cavities(mask) == 0
+    assert euler_number(mask, connectivity=3) == euler_number(base, connectivity=3)
+    for b in truth["blobs"]:
+        largest = max(b["semi_axes_um"])
+        assert 0.3 * b["vessel_radius_um"] - 1e-9 <= largest <= max(0.8 * b["vessel_radius_um"], 1.0)
+        assert np.allclose(np.asarray(b["axes"]) @ np.asarray(b["axes"]).T, np.eye(3))
+    # The truth's network is the true one.
+    assert truth["summary"] == syn.rasterize(tree)[1]["summary"]
+
+
+@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (2.5, 0.8, 0.8)])
+def test_handles_each_add_one_loop(tree, spacing):
+    base, _ = syn.rasterize(tree, spacing=spacing, fit_artefacts=True)
+    mask, truth = syn.rasterize(tree, spacing=spacing, handles=3, seed=5)
+    assert len(truth["handles"]) == 3
+    # Euler number = components - loops + cavities: one loop more per handle.
+    assert euler_number(mask, connectivity=3) == euler_number(base, connectivity=3) - 3
+    assert n_components(mask) == 1 and n_cavities(mask) == 0
+    assert truth["summary"]["cyclomatic_number"] == 0  # the truth is still a tree
+    for h in truth["handles"]:
+        assert h["kind"] in ("handle", "tunnel") and h["euler_change"] == -1
+        assert h["vessel_radius_um"] >= 3.0 * max(spacing[1:])
+
+
+def test_handles_come_as_arcs_and_tunnels():
+    tube = syn.straight_tube(length_um=120.0, radius_um=7.0)
+    base, _ = syn.rasterize(tube, fit_artefacts=True)
+    mask, truth = syn.rasterize(tube, handles=6, seed=2)
+    kinds = [h["kind"] for h in truth["handles"]]
+    assert set(kinds) == {"handle", "tunnel"}
+    # Arcs add voxels, tunnels take them away.
+    added = int(np.count_nonzero(mask & ~base))
+    removed = int(np.count_nonzero(base & ~mask))
+    assert added == sum(h["n_voxels"] for h in truth["handles"] if h["kind"] == "handle")
+    assert removed == sum(h["n_voxels"] for h in truth["handles"] if h["kind"] == "tunnel")
+    assert euler_number(mask, connectivity=3) == 1 - 6
+
+
+def test_enclosed_holes_of_several_sizes(tree):
+    mask, truth = syn.rasterize(tree, holes=3, hole_radius_vox=(1.5, 2.5), seed=6)
+    assert n_cavities(mask) == 3 and n_components(mask) == 1
+    assert all(1.5 <= h["radius_vox"] <= 2.5 and h["n_voxels"] >= 14 for h in truth["holes"])
+    assert truth["rasterize"]["hole_radius_vox"] == [1.5, 2.5]
+
+
+def test_open_holes_are_pits_open_to_the_outside(tree):
+    base, _ = syn.rasterize(tree, fit_artefacts=True)
+    mask, truth = syn.rasterize(tree, open_holes=5, seed=7)
+    assert len(truth["open_holes"]) == 5
+    assert np.all(mask <= base)
+    assert int(base.sum() - mask.sum()) == sum(p["n_voxels"] for p in truth["open_holes"])
+    # No cavity, no loop, no piece: every pit is part of the outside background.
+    assert n_cavities(mask) == 0 and n_components(mask) == 1
+    assert euler_number(mask, connectivity=3) == euler_number(base, connectivity=3)
+    radii = [p["radius_vox"] for p in truth["open_holes"]]
+    assert all(0.5 <= r <= 2.0 for r in radii) and max(radii) - min(radii) > 0.5
+
+
+# Radii of at most 2.5 lateral voxels that still stay whole when the tube climbs
+# through coarse z planes (a voxel centre within r of the axis in every plane).
+@pytest.mark.parametrize(
+    "spacing, radius", [((1.0, 1.0, 1.0), 1.5), ((2.5, 0.8, 0.8), 1.9), ((4.0, 1.0, 1.0), 2.2)]
+)
+def test_gaps_break_thin_vessels(spacing, radius):
+    tube = syn.straight_tube(length_um=120.0, radius_um=radius, direction=(0.1, 0.4, 1.0))
+    assert n_components(syn.rasterize(tube, spacing=spacing)[0]) == 1
+    mask, truth = syn.rasterize(tube, spacing=spacing, gaps=2, seed=8)
+    assert n_components(mask) == 3
+    d = np.asarray(spacing)
+    for g in truth["gaps"]:
+        assert g["length_vox"] in (1, 2, 3) and g["segment"] == truth["segments"][0]["id"]
+        assert g["length_um"] == pytest.approx(g["length_vox"] * np.sum(np.abs(g["direction"]) * d))
+        assert not mask[tuple(np.round(np.asarray(g["centre_um"]) / d).astype(int))]
+    # In a ring a gap removes the loop instead of adding a piece: Euler + 1 either way.
+    ring, truth_ring = syn.rasterize(
+        syn.torus(major_radius_um=20.0, minor_radius_um=radius), spacing=spacing, gaps=2, seed=8
+    )
+    assert n_components(ring) == 2 and euler_number(ring, connectivity=3) == 2
+    assert truth_ring["artefact_euler_change"] == 2 and truth_ring["imaged_euler_number"] == 0
+
+
+def test_gaps_need_thin_vessels(tree):
+    with pytest.raises(InputError, match=r"^gaps: expected 0 when no vessel has radius <= 2.5 voxels"):
+        syn.rasterize(tree, gaps=1, seed=1)
+    _, truth = syn.rasterize(tree, gaps=1, seed=1, fit_artefacts=True)
+    assert truth["gaps"] == []
+
+
+@pytest.mark.parametrize("kind", ["tree", "bed"])
+def test_hostile_volume_accounts_for_every_change(kind):
+    # Euler number of the mask = that of the vessels as imaged + the recorded
+    # changes (holes and specks +1, gaps +1, handles -1; blobs and pits 0); the only
+    # cavities are the recorded holes; the truth's network is the clean one.
+    if kind == "bed":
+        net = syn.capillary_bed(shape_um=(64.0, 64.0, 64.0), seed=3)
+    else:
+        net = syn.binary_tree(depth=4, root_radius_um=6.0, length_radius_ratio=8.0, min_radius_um=1.5, seed=5)
+    kw = syn.hostile_artefacts(1.0, spacing=(1.0, 1.0, 1.0), seed=9)
+    mask, truth = syn.rasterize(net, **kw)
+    again, truth_again = syn.rasterize(net, **kw)
+    assert np.array_equal(mask, again) and truth == truth_again
+    placed = {k: len(truth[k]) for k in ("blobs", "handles", "holes", "open_holes", "gaps", "specks")}
+    full = {"blobs": 6, "handles": 2, "holes": 2, "open_holes": 4, "gaps": 3, "specks": 4}
+    assert placed == full
+    assert euler_number(mask, connectivity=3) == truth["imaged_euler_number"] + truth["artefact_euler_change"]
+    change = placed["holes"] + placed["specks"] + placed["gaps"] - placed["handles"]
+    assert truth["artefact_euler_change"] == change
+    assert n_cavities(mask) == placed["holes"]
+    clean = syn.rasterize(net)[1]
+    for key in ("n_nodes", "n_segments", "cyclomatic_number", "n_bifurcations"):
+        assert truth["summary"][key] == clean["summary"][key]
+    other, _ = syn.rasterize(net, **{**kw, "seed": 10})
+    assert other.shape == mask.shape and not np.array_equal(other, mask)
+    json.dumps(truth)
+
+
+def test_artefacts_have_their_own_random_streams(tree):
+    alone, truth_alone = syn.rasterize(tree, open_holes=3, jitter_vox=0.5, seed=11)
+    _, truth_all = syn.rasterize(tree, open_holes=3, jitter_vox=0.5, blobs=4, handles=2, specks=3, seed=11)
+    # Pits come before handles, blobs and specks; the plane shifts come first.
+    assert truth_all["open_holes"] == truth_alone["open_holes"]
+    assert truth_all["jitter"] == truth_alone["jitter"]
+    _, truth_specks = syn.rasterize(tree, open_holes=3, jitter_vox=0.5, blobs=4, handles=2, seed=11)
+    assert truth_specks["blobs"] == truth_all["blobs"] and truth_specks["handles"] == truth_all["handles"]
+
+
+def test_synthesize_passes_artefact_options():
+    mask, truth = syn.synthesize("tube", blobs=2, open_holes=1, seed=1)
+    assert len(truth["blobs"]) == 2 and len(truth["open_holes"]) == 1
+    assert truth["synth_params"]["blobs"] == 2
+
+
+@pytest.mark.parametrize(
+    "kwargs, name",
+    [
+        ({"roughness_correlation_um": 0.0}, "roughness_correlation_um"),
+        ({"blobs": -1}, "blobs"),
+        ({"handles": 1.5}, "handles"),
+        ({"open_holes": "2"}, "open_holes"),
+        ({"gaps": True}, "gaps"),
+        ({"hole_radius_vox": (2.0, 1.0)}, "hole_radius_vox"),
+        ({"hole_radius_vox": 1.0}, "hole_radius_vox"),
+        ({"psf_sigma_um": (1.0, 2.0)}, "psf_sigma_um"),
+        ({"psf_sigma_um": -1.0}, "psf_sigma_um"),
+        ({"psf_threshold": 1.0}, "psf_threshold"),
+        ({"jitter_vox": 4.0}, "jitter_vox"),
+        ({"fit_artefacts": "yes"}, "fit_artefacts"),
+        ({"handles": 1}, "handles"),
+    ],
+)
+def test_bad_artefact_options_raise_input_error(kwargs, name):
+    thin = syn.straight_tube(length_um=30.0, radius_um=2.0)
+    with pytest.raises(InputError, match=rf"^{name}: expected"):
+        syn.rasterize(thin, **kwargs)
+
+
+def test_bad_strength_raises_input_error():
+    with pytest.raises(InputError, match=r"^strength: expected"):
+        syn.hostile_artefacts(1.5)
