@@ -2,9 +2,10 @@
 
 Binary trees (depth 4, root radius 7 µm, Murray's cube law; built by
 :func:`pipeline.synthetic.binary_tree`) are rasterised with the artefacts of
-real segmentations at a given strength (:func:`artefacts`: wall roughness
-with a correlation length of 1.5 µm, blobs on walls, handles, enclosed and
-open holes, plane-to-plane jitter of up to one voxel, specks) and at z steps
+real segmentations at a given strength (:func:`pipeline.synthetic.hostile_artefacts`:
+at full strength wall roughness of 25 % of the radius correlated over 1.5
+voxels, blobs on walls, handles, enclosed and open holes, gaps in thin
+vessels, plane-to-plane jitter of up to one voxel, specks) and at z steps
 of 1, 2 and 4 times the in-plane pixel, analysed with the default
 configuration and scored with :func:`pipeline.scoring.score` (junction F1
 within the parent radius, median relative radius error, total length error,
@@ -38,23 +39,13 @@ import pipeline  # noqa: E402
 from pipeline import scoring, synthetic  # noqa: E402
 
 
-def artefacts(strength, seed):
-    """Rasterisation options of the artefact model at ``strength`` in [0, 1] (1: as hostile as real masks)."""
-    if strength <= 0:
-        return {"seed": seed}
-    k = float(strength)
-    return {"roughness": 0.25 * k, "roughness_correlation_um": 1.5, "blobs": int(round(6 * k)),
-            "handles": int(round(3 * k)), "holes": int(round(3 * k)), "open_holes": int(round(3 * k)),
-            "jitter_vox": 1.0 * k, "specks": int(round(5 * k)), "seed": seed}
 
 
 def tree_row(strength, z_ratio, seed):
     spacing = (float(z_ratio), 1.0, 1.0)
     net = synthetic.binary_tree(depth=4, root_radius_um=7.0, exponent=3.0, seed=seed, min_radius_um=1.5, wiggle=0.2)
-    opts = artefacts(strength, seed)
-    if z_ratio * 1.0 > 3.0:  # enclosed holes need 3 voxels of radius on every axis
-        opts.pop("holes", None)
-    mask, truth = synthetic.rasterize(net, spacing=spacing, **opts)
+    opts = synthetic.hostile_artefacts(strength, spacing=spacing, seed=seed)
+    mask, truth = synthetic.rasterize(net, **{"spacing": spacing, **opts})
     t0 = time.perf_counter()
     res = pipeline.analyze(mask, spacing=spacing, config={"flow": {"enabled": False}})
     s = scoring.score(res, truth)
