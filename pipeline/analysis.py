@@ -186,16 +186,20 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     )
     tick("centrelines")
     g = graph_step.build_graph(cl)
+    tick("graph")
+    # Radii from the wall before pruning: the pruning rules compare lengths
+    # with radii, and the distance map's inscribed radius reads low on rough
+    # walls (it touches the deepest dent), which keeps bumps as branches.
+    if cfg["radii"]["estimator"] == "wall_fit":
+        _fit_wall_radii(g, cleaned, sp, planar)
+        tick("radii")
     p = cfg["pruning"]
     graph_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
                            junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
                            spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
                            voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
                            min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"])
-    tick("graph")
-    if cfg["radii"]["estimator"] == "wall_fit":
-        _fit_wall_radii(g, cleaned, sp, planar)
-        tick("radii")
+    tick("pruning")
     segs, keys, smoothed = measures.segment_table(g, grid_spacing=cl.grid_spacing, radii_config=cfg["radii"],
                                                   measures_config=cfg["measures"])
     alive = np.flatnonzero(g.node_alive)

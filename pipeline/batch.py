@@ -68,7 +68,7 @@ COMPARISON_COLUMNS = ("measure", "group_a", "group_b", "n_a", "mean_a", "sd_a", 
                       "sd_b", "median_b", "difference", "mann_whitney_u", "p_value", "q_value")
 # Order in which one sample's steps run; a failure is charged to the step after
 # the last one that finished.
-STEPS = ("reading", "cleaning", "centrelines", "graph", "radii", "measures", "summary", "levels", "flow", "bifurcations",
+STEPS = ("reading", "cleaning", "centrelines", "graph", "radii", "pruning", "measures", "summary", "levels", "flow", "bifurcations",
          "writing")
 _ID_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
 

@@ -443,11 +443,14 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
                 continue
             if g.node_on_border[end]:
                 continue
-            limit = max(spur_radius_factor * g.node_radius_um[junc], min_spur_length_um)
+            # The junction's vessel: the largest of the inscribed radius at
+            # the node and the other vessels' radii there.
+            rj = max([g.node_radius_um[junc]] + [_seg_radius(g, t) for t in inc[junc] if t != s])
+            limit = max(spur_radius_factor * rj, min_spur_length_um)
             # What sticks out of the junction's vessel, against the spur's own
             # thickness: a blob on the wall protrudes by about its own width,
             # a branch by many of its radii.
-            protrusion = seg_len(s) - g.node_radius_um[junc]
+            protrusion = seg_len(s) - rj
             stub = spur_protrusion_radii > 0 and protrusion < spur_protrusion_radii * _seg_radius(g, s)
             if seg_len(s) < limit or stub:
                 doomed.append((s, end))
