@@ -6,8 +6,8 @@ In: command-line arguments. Out: result folders, exit codes
 
 Commands: ``analyze`` (one mask), ``batch`` (a whole study on Dask),
 ``report`` (figures and an HTML report of a result or batch folder),
-``synth`` (a synthetic volume with its ground truth), ``demo`` (the bundled
-volumes), ``summarize`` (a result's summary, optionally with the review
+``synth`` (a synthetic volume with its ground truth), ``score`` (a result
+against a ground truth), ``demo`` (the bundled volumes), ``summarize`` (a result's summary, optionally with the review
 applied), ``view`` (napari viewer and bifurcation review; imports napari only
 when run).
 """

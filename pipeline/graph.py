@@ -575,16 +575,7 @@ def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
         x = new[k]
         if not np.all(np.isfinite(x)):
             continue
-        g.node_pos_um[n] = x
-        for s in set(inc[n]):
-            u, v = g.seg_nodes[s]
-            path = g.seg_path[s].copy()
-            if u == n:
-                path[0] = x
-            if v == n:
-                path[-1] = x
-            g.seg_path[s] = path
-            g.seg_length_um[s] = _polyline_length(path)
+        _move_node(g, inc, n, x)
 
 
 @numba.njit(cache=True)
@@ -629,6 +620,20 @@ def _meeting_points(P, seg_off, weights, node_seg, pos, rad, near, far):
         if np.sqrt(((x - p0) ** 2).sum()) <= 2.0 * r:
             out[k] = x
     return out
+
+
+def _move_node(g, inc, n, pos):
+    """Put node ``n`` at ``pos``; the paths of its segments end there too (their lengths follow)."""
+    g.node_pos_um[n] = pos
+    for s in set(inc[n]):
+        u, v = g.seg_nodes[s]
+        path = g.seg_path[s].copy()
+        if u == n:
+            path[0] = pos
+        if v == n:
+            path[-1] = pos
+        g.seg_path[s] = path
+        g.seg_length_um[s] = _polyline_length(path)
 
 
 def _seg_radius(g, s):
@@ -715,7 +720,6 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
         # The merged node sits between the two, weighted by cross-section.
         wu, wv = g.node_radius_um[u] ** 2, g.node_radius_um[v] ** 2
         pos = (wu * g.node_pos_um[u] + wv * g.node_pos_um[v]) / max(wu + wv, 1e-12)
-        g.node_pos_um[u] = pos
         g.node_radius_um[u] = max(g.node_radius_um[u], g.node_radius_um[v])
         g.node_on_border[u] |= g.node_on_border[v]
         for t in list(inc[v]):
@@ -724,15 +728,7 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
             inc[u].append(t)
         inc[v] = []
         g.node_alive[v] = False
-        for t in set(inc[u]):  # paths end at their nodes' positions
-            a, b = g.seg_nodes[t]
-            path = g.seg_path[t].copy()
-            if a == u:
-                path[0] = pos
-            if b == u:
-                path[-1] = pos
-            g.seg_path[t] = path
-            g.seg_length_um[t] = _polyline_length(path)
+        _move_node(g, inc, u, pos)
         n += 1
     return n
 
