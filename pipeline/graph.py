@@ -550,8 +550,10 @@ def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
     ``far_radii`` junction radii from the node is fitted with a line (its
     principal axis); the junction moves to the point nearest all the lines
     in the least-squares sense (weighted by each vessel's cross-section),
-    when that point is within two junction radii of the thinned one. Segment
-    paths end at their nodes, so their end points move with it.
+    when the lines are far from parallel (smallest eigenvalue of the normal
+    matrix at least a tenth of the largest) and the point is within one
+    junction radius of the thinned one. Segment paths end at their nodes, so
+    their end points move with it.
     """
     nodes = [n for n in np.flatnonzero(g.node_alive) if len(inc[n]) >= 3 and len(set(inc[n])) == len(inc[n])]
     if not nodes:
@@ -614,10 +616,10 @@ def _meeting_points(P, seg_off, weights, node_seg, pos, rad, near, far):
         if used < 3:
             continue
         ev = np.linalg.eigvalsh(A)
-        if ev[0] <= 1e-6 * ev[2]:
+        if ev[0] <= 0.1 * ev[2]:  # lines nearly parallel: the meeting point is ill-posed along them
             continue
         x = np.linalg.solve(A, b)
-        if np.sqrt(((x - p0) ** 2).sum()) <= 2.0 * r:
+        if np.sqrt(((x - p0) ** 2).sum()) <= 1.0 * r:
             out[k] = x
     return out
 
