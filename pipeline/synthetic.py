@@ -2591,6 +2591,22 @@ def _add_blobs(mask, samp, d, count, rng, occupied, fit) -> list[dict]:
     return _short("blobs", why, count, out, fit)
 
 
+def _thick_sites(mask, samp, d, *, end_clearance_vox):
+    """Lateral voxel size and the centreline samples of thick vessels inside the grid, clear of ends."""
+    top = (np.asarray(mask.shape) - 1) * d
+    lat = float(max(d[1], d[2]))
+    ok = (
+        (samp.rad >= _THICK_VOX * lat)
+        & np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
+        & (samp.to_end >= samp.rad + end_clearance_vox * lat)
+    )
+    return lat, ok
+
+
+def _thick_why(lat):
+    return f"0 when no vessel has radius >= {_THICK_VOX:g} voxels ({_THICK_VOX * lat:g} um)"
+
+
 def _add_handles(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
     """Add ``count`` small loops on thick vessels: handles over or tunnels under the wall.
 
@@ -2604,16 +2620,9 @@ def _add_handles(mask, samp, d, count, rng, occupied, reach, fit) -> list[dict]:
     if count == 0:
         return []
     shape = np.asarray(mask.shape)
-    top = (shape - 1) * d
-    lat = float(max(d[1], d[2]))
-    ok = (
-        (samp.rad >= _THICK_VOX * lat)
-        & np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
-        & (samp.to_end >= samp.rad + 4.0 * lat)
-    )
+    lat, ok = _thick_sites(mask, samp, d, end_clearance_vox=4.0)
     if not np.any(ok):
-        why = f"0 when no vessel has radius >= {_THICK_VOX:g} voxels ({_THICK_VOX * lat:g} um)"
-        return _short("handles", why, count, [], fit)
+        return _short("handles", _thick_why(lat), count, [], fit)
     out: list[dict] = []
     for _ in range(_ATTEMPTS * count):
         i = _pick(samp, ok, rng)
@@ -2689,16 +2698,9 @@ def _carve_open_holes(mask, samp, d, count, rng, occupied, reach, fit) -> list[d
     if count == 0:
         return []
     shape = np.asarray(mask.shape)
-    top = (shape - 1) * d
-    lat = float(max(d[1], d[2]))
-    ok = (
-        (samp.rad >= _THICK_VOX * lat)
-        & np.all((samp.pos >= 0) & (samp.pos <= top), axis=1)
-        & (samp.to_end >= samp.rad + 2.0 * lat)
-    )
+    lat, ok = _thick_sites(mask, samp, d, end_clearance_vox=2.0)
     if not np.any(ok):
-        why = f"0 when no vessel has radius >= {_THICK_VOX:g} voxels ({_THICK_VOX * lat:g} um)"
-        return _short("open_holes", why, count, [], fit)
+        return _short("open_holes", _thick_why(lat), count, [], fit)
     out: list[dict] = []
     for _ in range(_ATTEMPTS * count):
         i = _pick(samp, ok, rng)
