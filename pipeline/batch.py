@@ -749,7 +749,7 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
 
         avail = available_memory_bytes()
         memory_limit = int(avail / nworkers) if avail else "auto"
-    from .tables import check_writable, clean_stale_partials, storage_error, write_atomic, write_json
+    from .tables import check_writable, storage_error
 
     check_writable(out)
     try:
@@ -760,15 +760,15 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     try:
         return _run_locked(samples, out, cfg, lock=lock, nworkers=nworkers, scheduler=scheduler, force=force,
                            memory_limit=memory_limit, threads=threads, quiet=quiet, stream=stream,
-                           input_label=input_label, worker_timeout=float(worker_timeout),
-                           helpers=(clean_stale_partials, write_atomic, write_json))
+                           input_label=input_label, worker_timeout=float(worker_timeout))
     finally:
         lock.release()
 
 
 def _run_locked(samples, out, cfg, *, lock, nworkers, scheduler, force, memory_limit, threads, quiet, stream,
-                input_label, worker_timeout, helpers):
-    clean_stale_partials, write_atomic, write_json = helpers
+                input_label, worker_timeout):
+    from .tables import clean_stale_partials, write_atomic, write_json
+
     prog = _Progress(len(samples), quiet=quiet, stream=stream)
     notice = lock.takeover_notice()
     if notice:
