@@ -360,7 +360,7 @@ def _polyline_length_nb(p):
 
 def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
                 junction_merge_radii=1.0, wall_loop_radii=2.0, spur_protrusion_radii=3.0, small_loop_radii=8.0,
-                voxel_um=None):
+                border_spur_radii=0.75, voxel_um=None):
     """Remove spurs, wall artefacts and small fragments; dissolve degree-2 nodes (in place).
 
     Parameters
@@ -394,6 +394,11 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         radius on it encircles a hole in a vessel wall or runs through a
         handle: its thinnest segment goes (repeated while such loops
         remain). 0 keeps every loop.
+    border_spur_radii : float
+        A branch from a junction to the volume's face goes when its radius is
+        less than this fraction of the junction's vessel's and it is shorter
+        than the two radii together: the face cutting a rough thick vessel,
+        not a vessel leaving the volume. 0 keeps every branch to the face.
     voxel_um : float, optional
         The coarsest spacing of the grid the centrelines were traced on, µm:
         twice it is the floor of what counts as short.
@@ -441,11 +446,20 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
                 end, junc = v, u
             else:
                 continue
-            if g.node_on_border[end]:
-                continue
             # The junction's vessel: the largest of the inscribed radius at
             # the node and the other vessels' radii there.
             rj = max([g.node_radius_um[junc]] + [_seg_radius(g, t) for t in inc[junc] if t != s])
+            if g.node_on_border[end]:
+                # A vessel cut by the volume's face may be short, so only one
+                # kind of branch to the face goes: one clearly thinner than
+                # the junction's vessel that ends before it is out of that
+                # vessel's wall, which is how a rough thick vessel's cut face
+                # thins (several such branches at coarse z steps). Nothing of
+                # it could be measured as a vessel of its own.
+                rs = _seg_radius(g, s)
+                if border_spur_radii > 0 and rs < border_spur_radii * rj and seg_len(s) < rj + rs:
+                    doomed.append((s, end))
+                continue
             limit = max(spur_radius_factor * rj, min_spur_length_um)
             # What sticks out of the junction's vessel, against the spur's own
             # thickness: a blob on the wall protrudes by about its own width,
@@ -475,10 +489,12 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             n_loops = _remove_wall_loops(g, inc, seg_len, remove_segment, wall_loop_radii, floor)
             loops += n_loops
             changed |= n_loops > 0
+        cheap_changed = changed
         if not changed and small_loop_radii > 0 and not loops_done:
             # Last, on the graph the cheaper rules have settled: the search
             # for short loops is the costly one. What it removes may leave
-            # nodes to dissolve, so one more round follows.
+            # nodes to dissolve (and two segments joined there may close a
+            # new short loop), so the rounds go on until neither changes.
             loops_done = True
             n_loops = _remove_small_loops(g, inc, seg_len, remove_segment, small_loop_radii)
             loops += n_loops
@@ -507,6 +523,9 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
             g.node_alive[n] = False
             dissolved += 1
             changed = True
+            cheap_changed = True
+        if cheap_changed:
+            loops_done = False  # the graph moved on since the last search for short loops
         if not changed:
             break
     # Fragments: connected pieces by total centreline length.
@@ -541,38 +560,44 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
     return g
 
 
-def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
+def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, min_spread=0.02, max_move_radii=3.0):
     """Move each junction to where its vessels' axes meet.
 
-    Thinning places a junction where the medial axes of the branches meet,
-    which lies off the branch point by up to a radius and wanders on rough
-    walls. Each incident segment's centreline between ``near_radii`` and
-    ``far_radii`` junction radii from the node is fitted with a line (its
-    principal axis); the junction moves to the point nearest all the lines
-    in the least-squares sense (weighted by each vessel's cross-section),
-    when the lines are far from parallel (smallest eigenvalue of the normal
-    matrix at least a tenth of the largest) and the point is within one
-    junction radius of the thinned one. Segment paths end at their nodes, so
-    their end points move with it.
+    Thinning places a junction where the medial axes of the branches split,
+    which lies downstream of the branch point: by a fraction of a radius
+    where the daughters leave at wide angles, by two or three daughter radii
+    where they leave side by side and part slowly (measured on trees of
+    Murray's law with curved vessels, the offset runs along the parent's
+    axis, rarely across it). Each incident segment's centreline between
+    ``near_radii`` and ``far_radii`` of its own radii along its arc from the
+    node is fitted with a line (its principal axis); the junction moves to
+    the point nearest all the lines in the least-squares sense (weighted by
+    each vessel's cross-section), when the lines are not nearly parallel
+    (smallest eigenvalue of the normal matrix at least ``min_spread`` of the
+    largest) and the point is within ``max_move_radii`` junction radii of
+    the thinned one. Segment paths end at their nodes, so their end points
+    move with it. The window is short because vessels curve: a line fitted
+    further out points past the branch point.
     """
     nodes = [n for n in np.flatnonzero(g.node_alive) if len(inc[n]) >= 3 and len(set(inc[n])) == len(inc[n])]
     if not nodes:
         return
     # Flat arrays for the compiled fit: per junction its segments' paths,
     # each oriented to start at the junction.
-    seg_off, paths, weights, node_seg = [0], [], [], [0]
+    seg_off, paths, radii, node_seg = [0], [], [], [0]
     for n in nodes:
         for s in inc[n]:
             u, _ = g.seg_nodes[s]
             p = g.seg_path[s] if u == n else g.seg_path[s][::-1]
             paths.append(p)
             seg_off.append(seg_off[-1] + len(p))
-            weights.append(_seg_radius(g, s) ** 2)
-        node_seg.append(len(weights))
+            radii.append(_seg_radius(g, s))
+        node_seg.append(len(radii))
     P = np.ascontiguousarray(np.vstack(paths), dtype=np.float64)
-    new = _meeting_points(P, np.asarray(seg_off, np.int64), np.asarray(weights, np.float64),
+    new = _meeting_points(P, np.asarray(seg_off, np.int64), np.asarray(radii, np.float64),
                           np.asarray(node_seg, np.int64), g.node_pos_um[nodes].astype(np.float64),
-                          g.node_radius_um[nodes].astype(np.float64), near_radii, far_radii)
+                          g.node_radius_um[nodes].astype(np.float64), near_radii, far_radii, min_spread,
+                          max_move_radii)
     for k, n in enumerate(nodes):
         x = new[k]
         if not np.all(np.isfinite(x)):
@@ -581,45 +606,50 @@ def _refine_junctions(g, inc, *, near_radii=1.0, far_radii=4.0):
 
 
 @numba.njit(cache=True)
-def _meeting_points(P, seg_off, weights, node_seg, pos, rad, near, far):
+def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread, max_move):
     out = np.full((len(pos), 3), np.nan)
     for k in range(len(pos)):
         p0 = pos[k]
-        r = rad[k]
         A = np.zeros((3, 3))
         b = np.zeros(3)
         used = 0
         for j in range(node_seg[k], node_seg[k + 1]):
             path = P[seg_off[j]:seg_off[j + 1]]
-            c = np.zeros(3)
-            m = 0
+            lo = near * seg_r[j]
+            hi = far * seg_r[j]
+            sel = np.zeros(len(path), np.bool_)
+            arc = 0.0
             for i in range(len(path)):
-                d = np.sqrt(((path[i] - p0) ** 2).sum())
-                if near * r <= d <= far * r:
-                    c += path[i]
-                    m += 1
+                if i > 0:
+                    arc += np.sqrt(((path[i] - path[i - 1]) ** 2).sum())
+                sel[i] = lo <= arc <= hi
+            m = sel.sum()
             if m < 3:
                 continue
+            c = np.zeros(3)
+            for i in range(len(path)):
+                if sel[i]:
+                    c += path[i]
             c /= m
             C = np.zeros((3, 3))
             for i in range(len(path)):
-                d = np.sqrt(((path[i] - p0) ** 2).sum())
-                if near * r <= d <= far * r:
+                if sel[i]:
                     q = path[i] - c
                     C += np.outer(q, q)
             _, vecs = np.linalg.eigh(C)
             t = vecs[:, 2]
             Pm = np.eye(3) - np.outer(t, t)
-            A += weights[j] * Pm
-            b += weights[j] * (Pm @ c)
+            w = seg_r[j] * seg_r[j]
+            A += w * Pm
+            b += w * (Pm @ c)
             used += 1
         if used < 3:
             continue
         ev = np.linalg.eigvalsh(A)
-        if ev[0] <= 0.1 * ev[2]:  # lines nearly parallel: the meeting point is ill-posed along them
+        if ev[0] <= min_spread * ev[2]:  # lines nearly parallel: the meeting point is ill-posed along them
             continue
         x = np.linalg.solve(A, b)
-        if np.sqrt(((x - p0) ** 2).sum()) <= 1.0 * r:
+        if np.sqrt(((x - p0) ** 2).sum()) <= max_move * rad[k]:
             out[k] = x
     return out
 
@@ -654,34 +684,46 @@ def _median(a):
 
 
 def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
-    """Remove the thinnest segment of each loop shorter than ``factor`` local radii; returns how many."""
+    """Remove the thinnest segment of each loop shorter than ``factor`` times its largest radius; returns how many.
+
+    The loop's largest radius is that of its segments and end nodes; the
+    search for the loop's other side is bounded by the largest radius that
+    can be on it near the candidate (its ends' nodes and segments), then the
+    loop found is checked against its own largest radius.
+    """
     import heapq
 
-    def local(s):
+    def bound(s):
         u, v = g.seg_nodes[s]
-        return factor * max(g.node_radius_um[u], g.node_radius_um[v], _seg_radius(g, s))
+        near = [g.node_radius_um[u], g.node_radius_um[v]] + [_seg_radius(g, t) for t in inc[u] + inc[v]]
+        return factor * max(near)
 
     # Candidates, thinnest first: a loop is broken at its thinnest segment.
-    cands = sorted((s for s in g.seg_nodes if seg_len(s) < local(s)), key=lambda s: (_seg_radius(g, s), s))
+    cands = sorted((s for s in g.seg_nodes if seg_len(s) < bound(s)), key=lambda s: (_seg_radius(g, s), s))
     removed = 0
     for s in cands:
         if s not in g.seg_nodes:
             continue
         u, v = g.seg_nodes[s]
-        budget = local(s) - seg_len(s)
+        limit = bound(s)
+        if seg_len(s) >= limit:
+            continue
         if u == v:
             remove_segment(s)  # a self-loop this short
             removed += 1
             continue
         # Shortest other path from u to v within the budget (Dijkstra, bounded).
         rs = _seg_radius(g, s)
+        budget = limit - seg_len(s)
         dist = {u: 0.0}
+        # Largest segment or node radius on the path so far.
+        big = {u: max(rs, g.node_radius_um[u], g.node_radius_um[v])}
         heap = [(0.0, u)]
         found = False
         while heap:
             d, n = heapq.heappop(heap)
             if n == v:
-                found = True
+                found = seg_len(s) + d < factor * big[v]
                 break
             if d > dist.get(n, np.inf):
                 continue
@@ -695,6 +737,7 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
                 # thinnest segment is the one broken.
                 if nd <= budget and nd < dist.get(m, np.inf) and _seg_radius(g, t) >= rs:
                     dist[m] = nd
+                    big[m] = max(big[n], _seg_radius(g, t), g.node_radius_um[m])
                     heapq.heappush(heap, (nd, m))
         if found:
             remove_segment(s)
