@@ -386,8 +386,9 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         segments between the same junctions the thinner when one of them is
         shorter than this, goes. 0 keeps every loop.
     spur_protrusion_radii : float
-        A terminal spur that sticks out of its junction's vessel (its length
-        less the junction's radius) by less than this many of its own radii
+        A terminal spur that sticks out of its junction's vessel (its
+        farthest point from the junction less the junction's radius) by less
+        than this many of its own radii
         is a blob on the wall, not a branch, and goes. 0 turns this off.
     small_loop_radii : float
         A loop whose whole perimeter is shorter than this times the largest
@@ -455,26 +456,30 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
                 # the junction's vessel that ends before it is out of that
                 # vessel's wall, which is how a rough thick vessel's cut face
                 # thins (several such branches at coarse z steps). Nothing of
-                # it could be measured as a vessel of its own.
+                # it could be measured as a vessel of its own. Its reach, not
+                # its arc: such branches run along the face.
                 rs = _seg_radius(g, s)
-                if border_spur_radii > 0 and rs < border_spur_radii * rj and seg_len(s) < rj + rs:
+                if border_spur_radii > 0 and rs < border_spur_radii * rj and _reach(g, s, junc) < rj + rs:
                     doomed.append((s, end))
                 continue
             limit = max(spur_radius_factor * rj, min_spur_length_um)
             # What sticks out of the junction's vessel, against the spur's own
             # thickness: a blob on the wall protrudes by about its own width,
             # a branch by many of its radii.
-            protrusion = seg_len(s) - rj
+            # How far the spur gets from the junction, not its arc: a
+            # thinned blob's centreline wanders inside the blob.
+            protrusion = _reach(g, s, junc) - rj
             stub = spur_protrusion_radii > 0 and protrusion < spur_protrusion_radii * _seg_radius(g, s)
             if seg_len(s) < limit or stub:
                 doomed.append((s, end))
-        # A junction must keep at least one segment: never remove all its spurs at once.
+        # A junction keeps two segments: where only one would be left, the
+        # spurs are the forked tip of that vessel, and the longest is its end.
         by_junction = defaultdict(list)
         for s, end in doomed:
             u, v = g.seg_nodes[s]
             by_junction[v if end == u else u].append((s, end))
         for junc, items in by_junction.items():
-            if len(items) >= len(inc[junc]):
+            if len(items) >= len(inc[junc]) - 1:
                 items = sorted(items, key=lambda it: seg_len(it[0]))[:-1]
             for s, end in items:
                 remove_segment(s)
@@ -666,6 +671,11 @@ def _move_node(g, inc, n, pos):
             path[-1] = pos
         g.seg_path[s] = path
         g.seg_length_um[s] = _polyline_length(path)
+
+
+def _reach(g, s, n):
+    """Largest distance from node ``n`` of a point on segment ``s``, µm."""
+    return float(np.sqrt(((g.seg_path[s] - g.node_pos_um[n]) ** 2).sum(axis=1).max()))
 
 
 def _seg_radius(g, s):
