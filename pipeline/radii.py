@@ -46,6 +46,7 @@ from __future__ import annotations
 
 import numba
 import numpy as np
+from numba.cpython.unsafe.numbers import trailing_zeros
 
 __all__ = ["wall_radii", "segment_tangents"]
 
@@ -141,25 +142,72 @@ def _kasa(u, v, w, lam):
 
 
 @numba.njit(cache=True)
-def _circle_fit(u, v, w, r0, lam):
+def _median(a, n):
+    """Median of ``a[:n]`` (mean of the two middle values when ``n`` is even), reordering ``a[:n]``.
+
+    The same value as ``np.median`` for values without NaN, by selection
+    (Hoare's partition around the middle element, Wirth's loop) in the
+    caller's buffer: no copy and no sort (at a couple of hundred wall points
+    about a quarter quicker than ``np.median``).
+    """
+    k = (n - 1) // 2
+    lo = 0
+    hi = n - 1
+    while lo < hi:
+        x = a[k]
+        i = lo
+        j = hi
+        while i <= j:
+            while a[i] < x:
+                i += 1
+            while x < a[j]:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if j < k:
+            lo = i
+        if k < i:
+            hi = j
+    m = a[k]
+    if n % 2 == 1:
+        return m
+    # Every value after position k is at least a[k]: the next order
+    # statistic is their minimum.
+    m2 = a[k + 1]
+    for i in range(k + 2, n):
+        if a[i] < m2:
+            m2 = a[i]
+    return (m + m2) / 2
+
+
+@numba.njit(cache=True)
+def _circle_fit(u, v, w, r0, lam, res, rw):
     """Weighted robust circle fit in the plane; returns (r, ok).
 
     An algebraic fit (one linear solve) gives the circle, Tukey's biweight on
     the distances to it removes what is not this vessel's wall (attached
     blobs, handles, another vessel in the slab), a second algebraic fit uses
     what is left, and two Gauss-Newton steps on the geometric distance take
-    off the algebraic fit's small bias.
+    off the algebraic fit's small bias. ``res`` and ``rw`` are scratch
+    buffers of at least ``2 len(u)`` and ``len(u)`` values.
     """
     n = len(u)
+    rw = rw[:n]
     cx, cy, r, ok = _kasa(u, v, w, lam)
     if not ok:
         return r0, False
-    res = np.empty(n)
+    finite = True
     for i in range(n):
         res[i] = abs(np.sqrt((u[i] - cx) ** 2 + (v[i] - cy) ** 2) - r)
-    scale = max(1.4826 * np.median(res), 0.15 * r0)
+        res[n + i] = res[i]
+        finite &= not np.isnan(res[i])
+    # Selection needs ordered values; a circle fitted out to infinity gives
+    # NaN distances, which np.median reports as they are.
+    med = _median(res[n:2 * n], n) if finite else np.median(res[:n])
+    scale = max(1.4826 * med, 0.15 * r0)
     c = 4.685 * scale
-    rw = np.empty(n)
     wsum = 0.0
     kept = 0.0
     for i in range(n):
@@ -243,6 +291,31 @@ def _faces_into(mask, faces):
                 faces[z, y, x] = f
 
 
+def _wall_words(faces):
+    """One bit per voxel, set where ``faces`` is non-zero: 64 voxels of a row in each word.
+
+    Wall voxels are a few percent of a box around a centreline point, so the
+    fit reads the words of a row and jumps from set bit to set bit instead
+    of testing every voxel's byte; ``(Z, Y, ceil(X / 64))`` words, an eighth
+    of a byte per voxel.
+    """
+    nz, ny, nx = faces.shape
+    words = np.zeros((nz, ny, (nx + 63) // 64), dtype=np.uint64)
+    _words_into(faces, words)
+    return words
+
+
+@numba.njit(parallel=True, cache=True)
+def _words_into(faces, words):
+    nz, ny, nx = faces.shape
+    one = np.uint64(1)
+    for z in numba.prange(nz):
+        for y in range(ny):
+            for x in range(nx):
+                if faces[z, y, x] != 0:
+                    words[z, y, x >> 6] |= one << np.uint64(x & 63)
+
+
 @numba.njit(cache=True)
 def _box(shape, sp, origin, p, t, h, reach, lo, hi):
     """Voxel box around the disc of radius ``reach`` and half-thickness ``h``; returns its voxel count."""
@@ -256,8 +329,50 @@ def _box(shape, sp, origin, p, t, h, reach, lo, hi):
     return vol
 
 
+@numba.njit(cache=True, inline="always")
+def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, n):
+    """Append the wall points of voxel ``(z, y, x)`` (face bits ``f``) that lie in the slab and reach; returns the new count."""
+    # Whole voxel outside the slab or beyond reach (with half a voxel to
+    # spare): none of its faces can count.
+    v0 = origin[0] + z * sp[0] - p[0]
+    v1 = origin[1] + y * sp[1] - p[1]
+    v2 = origin[2] + x * sp[2] - p[2]
+    va = v0 * t[0] + v1 * t[1] + v2 * t[2]
+    if abs(va) > h + slack:
+        return n
+    w0 = v0 - va * t[0]
+    w1 = v1 - va * t[1]
+    w2 = v2 - va * t[2]
+    if w0 * w0 + w1 * w1 + w2 * w2 > (reach + slack) ** 2:
+        return n
+    cap = len(U)
+    for bit in range(6):
+        if not (f >> bit) & 1:
+            continue
+        a = bit // 2
+        half = 0.5 if bit & 1 else -0.5
+        # A face midpoint moves off the voxel centre along its own axis only;
+        # the other two coordinates are the centre's, to the last bit.
+        q0 = origin[0] + (z + half) * sp[0] - p[0] if a == 0 else v0
+        q1 = origin[1] + (y + half) * sp[1] - p[1] if a == 1 else v1
+        q2 = origin[2] + (x + half) * sp[2] - p[2] if a == 2 else v2
+        along = q0 * t[0] + q1 * t[1] + q2 * t[2]
+        if abs(along) > h:
+            continue
+        c0 = q0 - along * t[0]
+        c1 = q1 - along * t[1]
+        c2 = q2 - along * t[2]
+        if c0 * c0 + c1 * c1 + c2 * c2 > reach * reach or n >= cap:
+            continue
+        U[n] = c0 * e1[0] + c1 * e1[1] + c2 * e1[2]
+        V[n] = c0 * e2[0] + c1 * e2[1] + c2 * e2[2]
+        W[n] = wax[a]
+        n += 1
+    return n
+
+
 @numba.njit(cache=True)
-def _fit_one(faces, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W):
+def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, R, RW):
     """Radius from the wall around one centreline point; returns (r, number of wall points) or (r0, 0)."""
     h = max(0.75 * r0, 0.6 * smax)
     reach = 1.6 * r0 + 2.0 * smin
@@ -273,61 +388,41 @@ def _fit_one(faces, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W):
     e2[1] = t[2] * e1[0] - t[0] * e1[2]
     e2[2] = t[0] * e1[1] - t[1] * e1[0]
     n = 0
-    cap = len(U)
     slack = 0.5 * smax
+    one = np.uint64(1)
+    w_lo = lo[2] >> 6
+    w_hi = hi[2] >> 6
+    # Bits of the first and last word that lie inside the box.
+    first = ~((one << np.uint64(lo[2] & 63)) - one)
+    last = ((one << np.uint64(hi[2] & 63)) << one) - one if (hi[2] & 63) < 63 else ~np.uint64(0)
     for z in range(lo[0], hi[0] + 1):
         for y in range(lo[1], hi[1] + 1):
-            for x in range(lo[2], hi[2] + 1):
-                f = faces[z, y, x]
-                if f == 0:
-                    continue
-                # Whole voxel outside the slab or beyond reach (with half a
-                # voxel to spare): none of its faces can count.
-                v0 = origin[0] + z * sp[0] - p[0]
-                v1 = origin[1] + y * sp[1] - p[1]
-                v2 = origin[2] + x * sp[2] - p[2]
-                va = v0 * t[0] + v1 * t[1] + v2 * t[2]
-                if abs(va) > h + slack:
-                    continue
-                w0 = v0 - va * t[0]
-                w1 = v1 - va * t[1]
-                w2 = v2 - va * t[2]
-                if w0 * w0 + w1 * w1 + w2 * w2 > (reach + slack) ** 2:
-                    continue
-                for bit in range(6):
-                    if not (f >> bit) & 1:
-                        continue
-                    a = bit // 2
-                    half = 0.5 if bit & 1 else -0.5
-                    q0 = origin[0] + (z + (half if a == 0 else 0.0)) * sp[0] - p[0]
-                    q1 = origin[1] + (y + (half if a == 1 else 0.0)) * sp[1] - p[1]
-                    q2 = origin[2] + (x + (half if a == 2 else 0.0)) * sp[2] - p[2]
-                    along = q0 * t[0] + q1 * t[1] + q2 * t[2]
-                    if abs(along) > h:
-                        continue
-                    c0 = q0 - along * t[0]
-                    c1 = q1 - along * t[1]
-                    c2 = q2 - along * t[2]
-                    if c0 * c0 + c1 * c1 + c2 * c2 > reach * reach or n >= cap:
-                        continue
-                    U[n] = c0 * e1[0] + c1 * e1[1] + c2 * e1[2]
-                    V[n] = c0 * e2[0] + c1 * e2[1] + c2 * e2[2]
-                    W[n] = wax[a]
-                    n += 1
+            for wi in range(w_lo, w_hi + 1):
+                word = words[z, y, wi]
+                if wi == w_lo:
+                    word &= first
+                if wi == w_hi:
+                    word &= last
+                # Set bits in increasing x: the wall points come in the same
+                # order as a voxel-by-voxel scan, so the sums are too.
+                while word != 0:
+                    x = (wi << 6) + np.int64(trailing_zeros(word))
+                    word &= word - one
+                    n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, n)
     if n < 6:
         return r0, 0
     # A weak pull of the centre towards the centreline: 5 % of the total
     # weight per µm^2, enough to settle a direction no wall point
     # constrains, too little to bias a well-posed fit.
     lam = 0.05 * W[:n].sum() / max(r0 * r0, smin * smin)
-    r, ok = _circle_fit(U[:n], V[:n], W[:n], r0, lam)
+    r, ok = _circle_fit(U[:n], V[:n], W[:n], r0, lam, R, RW)
     if ok and r0 / 2.5 <= r <= 2.5 * r0:
         return r, n
     return r0, 0
 
 
 @numba.njit(parallel=True, cache=True)
-def _fit_all(faces, sp, origin, P, T, R0, todo, out, nfit, nchunks):
+def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, nfit, nchunks):
     smin = min(sp[0], min(sp[1], sp[2]))
     smax = max(sp[0], max(sp[1], sp[2]))
     wax = np.empty(3)
@@ -339,6 +434,8 @@ def _fit_all(faces, sp, origin, P, T, R0, todo, out, nfit, nchunks):
         U = np.empty(4096)
         V = np.empty(4096)
         W = np.empty(4096)
+        R = np.empty(2 * 4096)
+        RW = np.empty(4096)
         lo = np.empty(3, np.int64)
         hi = np.empty(3, np.int64)
         for j in range(chunk * M // nchunks, (chunk + 1) * M // nchunks):
@@ -356,7 +453,9 @@ def _fit_all(faces, sp, origin, P, T, R0, todo, out, nfit, nchunks):
                 U = np.empty(need)
                 V = np.empty(need)
                 W = np.empty(need)
-            r, k = _fit_one(faces, sp, origin, P[i], T[i], r0, smin, smax, wax, lo, hi, U, V, W)
+                R = np.empty(2 * need)
+                RW = np.empty(need)
+            r, k = _fit_one(faces, words, sp, origin, P[i], T[i], r0, smin, smax, wax, lo, hi, U, V, W, R, RW)
             out[i] = r
             nfit[i] = k
 
@@ -443,6 +542,7 @@ def wall_radii(mask, *, spacing, offset, points_um, offsets, radii_um, planar=Fa
     # between loses nothing the slab resolves.
     todo = _stride_points(P, off, R0, float(sp.max()))
     nchunks = max(1, min(len(todo), 64 * numba.get_num_threads()))
-    _fit_all(_wall_faces(np.ascontiguousarray(mask, dtype=bool)), sp, origin, P, T, R0, todo, out, nfit, nchunks)
+    faces = _wall_faces(np.ascontiguousarray(mask, dtype=bool))
+    _fit_all(faces, _wall_words(faces), sp, origin, P, T, R0, todo, out, nfit, nchunks)
     _fill_between(P, off, out, nfit)
     return out, nfit > 0
