@@ -2,10 +2,9 @@
 
 import numpy as np
 import pytest
-from scipy.spatial import cKDTree
 
 import pipeline
-from pipeline import synthetic
+from pipeline import scoring, synthetic
 
 
 @pytest.fixture(scope="session")
@@ -24,41 +23,16 @@ def analyse():
 
 
 def junction_f1(truth, result):
-    """F1 of junction detection, a measured junction matching a true one
-    within the largest radius of the vessels meeting there."""
-    true_nodes = [n for n in truth["nodes"] if n["kind"] == "junction"]
-    rad = {}
-    for s in truth["segments"]:
-        for e in (s["node_from"], s["node_to"]):
-            rad[e] = max(rad.get(e, 0.0), s["radius_um"])
-    found = result.nodes.loc[result.nodes["kind"] == "junction", ["z_um", "y_um", "x_um"]].to_numpy()
-    if not true_nodes or not len(found):
-        return 0.0
-    tree = cKDTree(found)
-    used, hits = set(), 0
-    for n in true_nodes:
-        d, idx = tree.query(n["pos_um"], k=min(3, len(found)))
-        for dd, ii in zip(np.atleast_1d(d), np.atleast_1d(idx)):
-            if dd <= rad[n["id"]] and ii not in used:
-                used.add(ii)
-                hits += 1
-                break
-    precision, recall = hits / len(found), hits / len(true_nodes)
-    return 2 * precision * recall / (precision + recall) if hits else 0.0
+    """F1 of junction detection by the project's scorer (:func:`pipeline.scoring.score`:
+    optimal one-to-one matching within the largest radius of the vessels meeting there)."""
+    return scoring.score(result, truth)["junction_f1"] or 0.0
 
 
 def radius_errors(truth, result):
-    """Relative radius error per true segment, matched through the measured
-    centreline point nearest the true segment's midpoint."""
-    pts = np.vstack(result.centrelines)
-    owner = np.repeat(np.arange(len(result.centrelines)), [len(c) for c in result.centrelines])
-    tree = cKDTree(pts)
-    out = []
-    for s in truth["segments"]:
-        p = np.asarray(s["points_um"])
-        _, j = tree.query(p[len(p) // 2])
-        out.append(result.segments["radius_um"].iloc[owner[j]] / s["radius_um"] - 1.0)
-    return np.asarray(out)
+    """Relative radius error (measured / true - 1) of every scored true segment, by the scorer
+    (length-weighted along each segment's interior, away from its junctions)."""
+    per = scoring.score(result, truth)["radius_per_segment"]
+    return np.asarray([e["rel_error"] for e in per if e["status"] == "scored"])
 
 
 def write_ybranch(path, radius, *, spacing=(1.0, 1.0, 1.0)):
