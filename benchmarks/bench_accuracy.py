@@ -13,6 +13,8 @@ cycle rank against the truth's). A second table gives the radius of capillary
 tubes (2, 2.5 and 3.5 µm) in six directions at 1 µm voxels and at
 2.5 x 0.8 x 0.8 µm voxels.
 
+Vessels are curved (``wiggle`` 0.2) and straight (0).
+
 Targets (the issue's): junction F1 >= 0.95, median radius error <= 10 %,
 total length within 5 %, cycle rank 0 on trees, for every seed; capillary
 radii within 10 % and max/min across directions <= 1.15.
@@ -41,15 +43,16 @@ from pipeline import scoring, synthetic  # noqa: E402
 
 
 
-def tree_row(strength, z_ratio, seed):
+def tree_row(strength, z_ratio, seed, wiggle):
     spacing = (float(z_ratio), 1.0, 1.0)
-    net = synthetic.binary_tree(depth=4, root_radius_um=7.0, exponent=3.0, seed=seed, min_radius_um=1.5, wiggle=0.2)
+    net = synthetic.binary_tree(depth=4, root_radius_um=7.0, exponent=3.0, seed=seed, min_radius_um=1.5,
+                                wiggle=wiggle)
     opts = synthetic.hostile_artefacts(strength, spacing=spacing, seed=seed)
     mask, truth = synthetic.rasterize(net, **{"spacing": spacing, **opts})
     t0 = time.perf_counter()
     res = pipeline.analyze(mask, spacing=spacing, config={"flow": {"enabled": False}})
     s = scoring.score(res, truth)
-    return {"strength": strength, "z": z_ratio, "seed": seed, "f1": s["junction_f1"],
+    return {"strength": strength, "z": z_ratio, "seed": seed, "wiggle": wiggle, "f1": s["junction_f1"],
             "precision": s["junction_precision"], "recall": s["junction_recall"],
             "radius": s["radius_rel_error_median"], "bias": s["radius_rel_bias"], "length": s["length_rel_error"],
             "cycles": s["cycle_rank_measured"], "cycles_truth": s["cycle_rank_truth"],
@@ -77,25 +80,32 @@ def main(argv=None):
     ap.add_argument("--strengths", type=float, nargs="+", default=[0.0, 0.5, 1.0])
     ap.add_argument("--z-ratios", type=float, nargs="+", default=[1.0, 2.0, 4.0])
     ap.add_argument("--tube-seeds", type=int, default=3)
+    ap.add_argument("--wiggles", type=float, nargs="+", default=[0.2, 0.0],
+                    help="vessel curvature of the trees (binary_tree's wiggle); 0 draws straight vessels")
     args = ap.parse_args(argv)
 
-    rows = [tree_row(k, z, seed) for k in args.strengths for z in args.z_ratios for seed in range(args.seeds)]
+    rows = [tree_row(k, z, seed, w) for w in args.wiggles for k in args.strengths for z in args.z_ratios
+            for seed in range(args.seeds)]
     print(f"### Trees with artefacts (binary_tree depth 4, root radius 7 µm; {args.seeds} seeds per cell)\n")
-    print("| strength | z / xy | junction F1 min (mean) | precision min | recall min | median radius error max "
-          "| radius bias mean | length error max abs | cycle rank max (truth 0) | targets met |")
-    print("|---|---|---|---|---|---|---|---|---|---|")
-    for k in args.strengths:
-        for z in args.z_ratios:
-            cell = [r for r in rows if r["strength"] == k and r["z"] == z]
-            f1 = np.array([r["f1"] or 0.0 for r in cell])
-            rad = np.array([r["radius"] for r in cell], float)
-            ln = np.array([r["length"] for r in cell], float)
-            cyc = max(r["cycles"] for r in cell)
-            met = f1.min() >= 0.95 and np.nanmax(rad) <= 0.10 and np.nanmax(np.abs(ln)) <= 0.05 and cyc == 0
-            print(f"| {k:g} | {z:g} | {f1.min():.2f} ({f1.mean():.2f}) | {min(r['precision'] or 0 for r in cell):.2f} "
-                  f"| {min(r['recall'] or 0 for r in cell):.2f} | {np.nanmax(rad):.3f} "
-                  f"| {np.nanmean([r['bias'] for r in cell]):+.3f} | {np.nanmax(np.abs(ln)):.3f} | {cyc} "
-                  f"| {'yes' if met else 'no'} |")
+    print("Curved vessels (wiggle 0.2) include, on seeds 1 and 2, a bifurcation whose daughters stay inside the "
+          "parent's cross-section for about 8 µm past the branch point (`tests/test_accuracy.py`), which no "
+          "junction found from the mask can match within the parent radius: 1/15 of F1.\n")
+    print("| wiggle | strength | z / xy | junction F1 min (mean) | precision min | recall min "
+          "| median radius error max | radius bias mean | length error max abs | cycle rank max (truth 0) "
+          "| targets met |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
+    for w, k, z in [(w, k, z) for w in args.wiggles for k in args.strengths for z in args.z_ratios]:
+        cell = [r for r in rows if r["strength"] == k and r["z"] == z and r["wiggle"] == w]
+        f1 = np.array([r["f1"] or 0.0 for r in cell])
+        rad = np.array([r["radius"] for r in cell], float)
+        ln = np.array([r["length"] for r in cell], float)
+        cyc = max(r["cycles"] for r in cell)
+        met = f1.min() >= 0.95 and np.nanmax(rad) <= 0.10 and np.nanmax(np.abs(ln)) <= 0.05 and cyc == 0
+        print(f"| {w:g} | {k:g} | {z:g} | {f1.min():.2f} ({f1.mean():.2f}) "
+              f"| {min(r['precision'] or 0 for r in cell):.2f} | {min(r['recall'] or 0 for r in cell):.2f} "
+              f"| {np.nanmax(rad):.3f} "
+              f"| {np.nanmean([r['bias'] for r in cell]):+.3f} | {np.nanmax(np.abs(ln)):.3f} | {cyc} "
+              f"| {'yes' if met else 'no'} |")
     print()
     print(f"### Capillary tube radii, measured / true ({args.tube_seeds} sub-voxel placements each; "
           "min-max over placements)\n")
