@@ -375,9 +375,10 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
     max_rounds : int
         Upper bound on spur/merge rounds.
     junction_merge_radii : float
-        Two junctions joined by a segment shorter than this times the larger
-        of their radii (or than two voxels) are one junction of a thick
-        vessel seen through a bumpy wall: they merge, and the segment goes.
+        Two junctions joined by a segment shorter than this times the largest
+        of their radii and the segment's own radius (or than two voxels) are
+        one junction of a thick vessel or crossing seen through a bumpy wall:
+        they merge, and the segment goes.
         0 turns merging off.
     wall_loop_radii : float
         A loop whose vessels are not each longer than this times the local
@@ -761,7 +762,13 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
     for s, (u, v) in g.seg_nodes.items():
         if u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
             continue
-        limit = max(factor * max(g.node_radius_um[u], g.node_radius_um[v]), floor)
+        # Against the larger of the junctions' inscribed radii and the
+        # joining segment's own (wall) radius: the distance map reads low at
+        # a crossing on rough or jittered walls, and how low depends on the
+        # grid (in-plane or 3-D distance), while a segment shorter than its
+        # own radius between two junctions lies inside the crossing.
+        r = max(g.node_radius_um[u], g.node_radius_um[v], _seg_radius(g, s))
+        limit = max(factor * r, floor)
         if seg_len(s) < limit:
             cands.append((seg_len(s), s))
     touched = set()
