@@ -198,7 +198,9 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
                            junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
                            spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
                            border_spur_radii=p["border_spur_radii"], voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
-                           min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"])
+                           min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
+                           reconnect=p["reconnect_gaps"], spacing_um=sp,
+                           max_gap_voxels=p["max_gap_voxels"], max_gap_angle_deg=p["max_gap_angle_deg"])
     tick("pruning")
     segs, keys, smoothed = measures.segment_table(g, grid_spacing=cl.grid_spacing, radii_config=cfg["radii"],
                                                   measures_config=cfg["measures"])

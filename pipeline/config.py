@@ -99,6 +99,9 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "border_spur_radii": Param(0.75, float, low=0.0, high=1.0),
         "min_fragment_length_um": Param(10.0, float, low=0.0),
         "max_rounds": Param(20, int, low=1, high=1000),
+        "reconnect_gaps": Param(False, bool),
+        "max_gap_voxels": Param(3.0, float, low=0.0, low_open=True, high=20.0),
+        "max_gap_angle_deg": Param(35.0, float, low=0.0, low_open=True, high=90.0),
     },
     "measures": {
         "smoothing_sigma_um": Param(None, float, low=0.0, allow_none=True),

@@ -303,6 +303,7 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
         "end_from": k_from.astype(str),
         "end_to": k_to.astype(str),
         "n_points": m[:, 13].astype(np.int64),
+        "reconnected": np.array([s in g.seg_reconnected for s in keys], dtype=bool),
     })
     smoothed = [smooth[off[i]:off[i + 1]] for i in range(len(keys))]
     return segs, keys, smoothed
