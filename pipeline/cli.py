@@ -71,6 +71,10 @@ def _parser():
     s.add_argument("--roughness", type=float, default=0.0)
     s.add_argument("--specks", type=int, default=0)
     s.add_argument("--holes", type=int, default=0)
+    s.add_argument("--artefacts", type=float, default=0.0, metavar="STRENGTH",
+                   help="the artefacts of real segmentations at a strength in [0, 1] (short-range wall roughness, "
+                        "blobs, handles, holes, gaps in thin vessels, specks, plane jitter; 1: as hostile as real "
+                        "stacks); --roughness, --specks and --holes, when given, override the preset's")
     s.add_argument("--overwrite", action="store_true")
     s.add_argument("--quiet", action="store_true", help="no progress lines")
 
@@ -207,9 +211,15 @@ def _cmd_synth(args):
         raise InputError(f"output '{out}' exists; pass --overwrite to replace it")
     if args.kind not in synthetic.SYNTH_KINDS:
         raise InputError(f"synth kind: expected one of {', '.join(synthetic.SYNTH_KINDS)}, got '{args.kind}'")
+    opts = {}
+    if args.artefacts:
+        opts = synthetic.hostile_artefacts(args.artefacts, spacing=tuple(args.spacing), seed=args.seed)
+    for name in ("roughness", "specks", "holes"):
+        if getattr(args, name) or name not in opts:
+            opts[name] = getattr(args, name)
+    opts.update(spacing=tuple(args.spacing), seed=args.seed)
     out.parent.mkdir(parents=True, exist_ok=True)
-    mask, truth = synthetic.synthesize(args.kind, spacing=tuple(args.spacing), seed=args.seed,
-                                       roughness=args.roughness, specks=args.specks, holes=args.holes)
+    mask, truth = synthetic.synthesize(args.kind, **opts)
     synthetic.write_volume(out, mask, spacing=tuple(args.spacing), truth=truth)
     _Reporter(args.quiet).info(f"wrote {out} {mask.shape} and its ground truth")
     return 0

@@ -139,6 +139,22 @@ def test_synth_writes_volume_and_truth(tmp_path):
     assert main(["synth", "tube", "-o", str(out)]) == 2  # exists, no --overwrite
 
 
+def test_synth_artefacts_make_a_hostile_phantom(tmp_path):
+    out = tmp_path / "tree.tif"
+    assert main(["synth", "tree", "-o", str(out), "--artefacts", "1", "--seed", "3", "--quiet"]) == 0
+    truth = json.loads((tmp_path / "tree.truth.json").read_text())
+    # The preset at full strength (pipeline.synthetic.HOSTILE_AT_FULL_STRENGTH), recorded in the truth.
+    assert truth["rasterize"]["roughness"] == synthetic.HOSTILE_AT_FULL_STRENGTH["roughness"]
+    assert len(truth["blobs"]) == synthetic.HOSTILE_AT_FULL_STRENGTH["blobs"] and truth["jitter"]
+    # An explicit option overrides the preset's.
+    smooth = tmp_path / "smooth.tif"
+    assert main(["synth", "tree", "-o", str(smooth), "--artefacts", "1", "--roughness", "0.1", "--quiet"]) == 0
+    assert json.loads((tmp_path / "smooth.truth.json").read_text())["rasterize"]["roughness"] == 0.1
+    bad = tmp_path / "bad.tif"
+    assert main(["synth", "tree", "-o", str(bad), "--artefacts", "2", "--quiet"]) == 2
+    assert not bad.exists()
+
+
 def test_flow_options(tube_tif, tmp_path):
     base = tmp_path / "flow"
     assert main(["analyze", str(tube_tif), "-o", str(base), "--quiet", "--blind-ends", "outlet"]) == 0
