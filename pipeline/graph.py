@@ -489,9 +489,9 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
                 limit = max(spur_radius_factor * rj, min_spur_length_um)
                 # What sticks out of the junction's vessel, against the spur's own
                 # thickness: a blob on the wall protrudes by about its own width,
-                # a branch by many of its radii.
-                # How far the spur gets from the junction, not its arc: a
-                # thinned blob's centreline wanders inside the blob.
+                # a branch by many of its radii. Measured by how far the spur
+                # gets from the junction, not by its arc: a thinned blob's
+                # centreline wanders inside the blob.
                 protrusion = _reach(g, s, junc) - rj
                 stub = spur_protrusion_radii > 0 and protrusion < spur_protrusion_radii * _seg_radius(g, s)
                 if seg_len(s) < limit or stub:
