@@ -211,6 +211,8 @@ def _cmd_synth(args):
         raise InputError(f"output '{out}' exists; pass --overwrite to replace it")
     if args.kind not in synthetic.SYNTH_KINDS:
         raise InputError(f"synth kind: expected one of {', '.join(synthetic.SYNTH_KINDS)}, got '{args.kind}'")
+    if not 0.0 <= args.artefacts <= 1.0:
+        raise InputError(f"--artefacts: expected a strength in [0, 1], got {args.artefacts:g}")
     opts = {}
     if args.artefacts:
         opts = synthetic.hostile_artefacts(args.artefacts, spacing=tuple(args.spacing), seed=args.seed)

@@ -139,7 +139,7 @@ def test_synth_writes_volume_and_truth(tmp_path):
     assert main(["synth", "tube", "-o", str(out)]) == 2  # exists, no --overwrite
 
 
-def test_synth_artefacts_make_a_hostile_phantom(tmp_path):
+def test_synth_artefacts_make_a_hostile_phantom(tmp_path, capsys):
     out = tmp_path / "tree.tif"
     assert main(["synth", "tree", "-o", str(out), "--artefacts", "1", "--seed", "3", "--quiet"]) == 0
     truth = json.loads((tmp_path / "tree.truth.json").read_text())
@@ -153,6 +153,7 @@ def test_synth_artefacts_make_a_hostile_phantom(tmp_path):
     bad = tmp_path / "bad.tif"
     assert main(["synth", "tree", "-o", str(bad), "--artefacts", "2", "--quiet"]) == 2
     assert not bad.exists()
+    assert "--artefacts: expected a strength in [0, 1], got 2" in capsys.readouterr().err
 
 
 def test_flow_options(tube_tif, tmp_path):
