@@ -444,12 +444,7 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         return lengths[s]
 
     def remove_segment(s):
-        u, v = g.seg_nodes.pop(s)
-        inc[u].remove(s)
-        inc[v].remove(s)
-        del g.seg_path[s], g.seg_radii[s]
-        lengths.pop(s, None)
-        bridged.discard(s)
+        _drop_segment(g, inc, s)
 
     def settle():
         """Prune rounds until the graph stops changing (or ``max_rounds`` of them)."""
@@ -896,6 +891,7 @@ def _bridge(a, b, ra, rb, h):
 
 
 def _drop_segment(g, inc, s):
+    """Remove segment ``s`` from the graph and the incidence lists (its nodes stay)."""
     u, v = g.seg_nodes.pop(s)
     inc[u].remove(s)
     inc[v].remove(s)

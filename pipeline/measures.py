@@ -40,6 +40,7 @@ import numpy as np
 import pandas as pd
 
 from ._distance import tissue_distance_quantiles, volume_distance
+from .graph import _seg_radius
 
 __all__ = ["segment_table", "node_table", "summarize", "tissue_distance", "path_length"]
 
@@ -298,8 +299,7 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
     stat = {"median": 0, "mean": 1, "trimmed_mean": 2}[radii_config["statistic"]]
     if keys:
         # Each node's thickest vessel: the median radius of its thickest segment.
-        seg_r = np.array([np.median(g.seg_radii[s][1:-1] if len(g.seg_radii[s]) > 2 else g.seg_radii[s])
-                          for s in keys])
+        seg_r = np.array([_seg_radius(g, s) for s in keys])
         node_r = np.zeros(int(uv.max()) + 1)
         np.maximum.at(node_r, uv[:, 0], seg_r)
         np.maximum.at(node_r, uv[:, 1], seg_r)
