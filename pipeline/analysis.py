@@ -242,7 +242,12 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         summary["segments_without_level"] = int(segs["level"].isna().sum())
         tick("levels")
         if cfg["flow"]["enabled"] and roots:
-            fr = flow_step.solve_flow(segs, nodes, inlets=roots, outlets=outlet_ids or None, config=cfg)
+            known = roots
+            if cfg["flow"]["boundary"] == "estimate" and str(cfg["levels"]["root"]).strip().lower() == "auto":
+                # the automatic root is a guess for counting levels, not a
+                # measured inlet: only inlets the user named are known
+                known = inlet_ids
+            fr = flow_step.solve_flow(segs, nodes, inlets=known, outlets=outlet_ids or None, config=cfg)
             new = [c for c in fr.segments.columns if c == "segment_id" or c not in segs.columns]
             segs = segs.merge(fr.segments[new], on="segment_id", how="left", validate="one_to_one")
             nodes = nodes.merge(fr.nodes, on="node_id", how="left", validate="one_to_one")

@@ -97,6 +97,7 @@ from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
 from ._checks import segment_end_rows
+from .boundary import estimate_pressures
 from .errors import InputError, SolverError
 
 __all__ = [
@@ -317,6 +318,10 @@ def _flow_config(config: Mapping[str, Any] | None) -> dict[str, Any]:
 
     section = {} if config is None else config.get("flow", config)
     return validate_config({"flow": dict(section)})["flow"]
+
+
+def _finite_or_none(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
 
 
 def _positive(df: pd.DataFrame, col: str) -> np.ndarray:
@@ -555,8 +560,9 @@ def solve_flow(
     segments: pd.DataFrame,
     nodes: pd.DataFrame,
     *,
-    inlets: Iterable[int],
+    inlets: Iterable[int] = (),
     outlets: Iterable[int] | None = None,
+    boundary_flows: Mapping[int, float] | None = None,
     config: Mapping[str, Any] | None = None,
 ) -> FlowResult:
     """Steady Hagen–Poiseuille flow in a vessel network.
@@ -625,16 +631,17 @@ def solve_flow(
     ends = np.bincount(u, minlength=n_nodes) + np.bincount(v, minlength=n_nodes)
 
     # Boundary nodes.
+    estimate = cfg["boundary"] == "estimate"
     inlet_rows = _node_rows(ids, inlets, "inlets")
-    if inlet_rows.size == 0:
+    if inlet_rows.size == 0 and not estimate:
         raise InputError("inlets: at least one inlet node is needed")
     is_inlet = np.zeros(n_nodes, dtype=bool)
     is_inlet[inlet_rows] = True
+    open_kind = kind == "border"
+    if cfg["blind_ends"] == "outlet" or (cfg["blind_ends"] == "open" and not estimate):
+        open_kind |= kind == "blind"
     if outlets is None:
-        out_mask = kind == "border"
-        if cfg["blind_ends"] == "outlet":
-            out_mask |= kind == "blind"
-        out_mask &= ~is_inlet
+        out_mask = open_kind & ~is_inlet if not estimate else np.zeros(n_nodes, dtype=bool)
     else:
         out_rows = _node_rows(ids, outlets, "outlets")
         out_mask = np.zeros(n_nodes, dtype=bool)
@@ -642,11 +649,21 @@ def solve_flow(
         both = out_mask & is_inlet
         if both.any():
             raise InputError(f"outlets: node id {int(ids[np.flatnonzero(both)[0]])} is also an inlet")
+    known_q = np.full(n_nodes, np.nan)
+    if boundary_flows:
+        q_rows = _node_rows(ids, list(boundary_flows), "boundary_flows")
+        q_vals = np.array([float(boundary_flows[k]) for k in boundary_flows], dtype=float)
+        if not np.isfinite(q_vals).all():
+            raise InputError("boundary_flows: expected finite flows in nL/min")
+        clash = is_inlet[q_rows] | out_mask[q_rows]
+        if clash.any():
+            raise InputError(f"boundary_flows: node id {int(ids[q_rows[clash][0]])} also has a pressure condition")
+        known_q[_node_rows(ids, list(boundary_flows), "boundary_flows")] = np.nan
+        known_q[ids.get_indexer(np.asarray(list(boundary_flows), dtype=np.int64))] = q_vals / NL_MIN_PER_M3_S
     fixed = is_inlet | out_mask
-    role = np.full(n_nodes, "internal", dtype=object)
-    role[((kind == "blind") | (kind == "border") | (ends <= 1)) & ~fixed] = "sealed"
-    role[out_mask] = "outlet"
-    role[is_inlet] = "inlet"
+    # open ends: cut by the volume, pressure and flow unknown (estimated)
+    open_node = open_kind & ~fixed & np.isnan(known_q) if estimate else np.zeros(n_nodes, dtype=bool)
+    anchor = fixed | open_node | np.isfinite(known_q)
 
     # Resistances.
     mu_mpa_s, vnotes = segment_viscosity_mpa_s(
@@ -672,90 +689,158 @@ def solve_flow(
         n_comp, comp = csgraph.connected_components(adj, directed=False)
     else:
         n_comp, comp = 0, np.zeros(0, dtype=np.int64)
-    comp_in = np.bincount(comp[is_inlet], minlength=n_comp) > 0
-    comp_out = np.bincount(comp[out_mask], minlength=n_comp) > 0
-    comp_fixed = comp_in | comp_out
-    solved_node = comp_fixed[comp] if n_nodes else np.zeros(0, dtype=bool)
-    flowing_node = (comp_in & comp_out)[comp] if n_nodes else np.zeros(0, dtype=bool)
     comp_has_seg = np.bincount(comp[u], minlength=n_comp) > 0
-    n_unsolved = int((comp_has_seg & ~comp_fixed).sum())
-    if n_unsolved:
-        n_us = int((~solved_node[u]).sum())
-        warn.append(
-            f"flow: {n_unsolved} connected piece(s) ({n_us} segment(s)) have no inlet or outlet; not solved"
-        )
-    no_out = comp_has_seg & comp_in & ~comp_out
-    if no_out.any():
-        warn.append(f"flow: {int(no_out.sum())} piece(s) with an inlet have no outlet; they carry no flow")
-
-    # Segments that can carry flow: in a piece with an inlet and an outlet,
-    # not a self-loop, not in a dead-end part.
-    candidate = ~loop & flowing_node[u]
-    dead = _dead_ends(u, v, candidate, fixed)
-    perfused = candidate & ~dead
-    core_deg = np.bincount(u[perfused], minlength=n_nodes) + np.bincount(v[perfused], minlength=n_nodes)
-    core_node = flowing_node & (fixed | (core_deg > 0))
-
-    # Reduced system over the core, for the potential phi (1 at inlets, 0 at
-    # outlets); dead-end parts and pieces without flow need no solve.
-    unknown = core_node & ~fixed
-    unknown_index = np.full(n_nodes, -1, dtype=np.int64)
-    unknown_index[unknown] = np.arange(int(unknown.sum()))
-    phi_fixed = is_inlet.astype(float)
-    A, b = _assemble(u, v, conductance, unknown_index, phi_fixed, perfused)
-    n_unknown = A.shape[0]
-    method = cfg["solver"]
-    if method == "auto":
-        method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
-    x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
-    if n_unknown:
-        bn = float(np.linalg.norm(b))
-        lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
+    if estimate and cfg["blind_ends"] == "open" and n_nodes:
+        # blind ends of a piece that reaches the border (or a given inlet or
+        # outlet) are open: in a mask they are mostly vessels the
+        # segmentation lost; pieces floating free stay unperfused
+        reach = np.bincount(comp[open_node | fixed], minlength=n_comp) > 0
+        extra = (kind == "blind") & ~fixed & np.isnan(known_q) & reach[comp]
+        open_node = open_node | extra
+        anchor = anchor | extra
+    if estimate:
+        # a piece is solved when it has an open end or a known pressure; it
+        # can carry flow when it has two boundary nodes
+        n_anchor = np.bincount(comp[anchor], minlength=n_comp)
+        comp_fixed = (np.bincount(comp[open_node | fixed], minlength=n_comp) > 0)
+        comp_flow = comp_fixed & (n_anchor >= 2)
+        solved_node = comp_fixed[comp] if n_nodes else np.zeros(0, dtype=bool)
+        flowing_node = comp_flow[comp] if n_nodes else np.zeros(0, dtype=bool)
+        n_unsolved = int((comp_has_seg & ~comp_fixed).sum())
+        if n_unsolved:
+            n_us = int((~solved_node[u]).sum())
+            warn.append(
+                f"flow: {n_unsolved} connected piece(s) ({n_us} segment(s)) touch neither the volume border "
+                "nor a given inlet or outlet; not perfused"
+            )
     else:
-        lin_res = 0.0
-    if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
-        warn.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
+        comp_in = np.bincount(comp[is_inlet], minlength=n_comp) > 0
+        comp_out = np.bincount(comp[out_mask], minlength=n_comp) > 0
+        comp_fixed = comp_in | comp_out
+        solved_node = comp_fixed[comp] if n_nodes else np.zeros(0, dtype=bool)
+        flowing_node = (comp_in & comp_out)[comp] if n_nodes else np.zeros(0, dtype=bool)
+        n_unsolved = int((comp_has_seg & ~comp_fixed).sum())
+        if n_unsolved:
+            n_us = int((~solved_node[u]).sum())
+            warn.append(
+                f"flow: {n_unsolved} connected piece(s) ({n_us} segment(s)) have no inlet or outlet; not solved"
+            )
+        no_out = comp_has_seg & comp_in & ~comp_out
+        if no_out.any():
+            warn.append(f"flow: {int(no_out.sum())} piece(s) with an inlet have no outlet; they carry no flow")
 
-    phi = np.full(n_nodes, np.nan)
-    if n_comp:
-        # Pieces without an inlet-outlet pair have a constant potential.
-        phi[solved_node] = comp_in[comp[solved_node]].astype(float)
-    phi[is_inlet] = 1.0
-    phi[out_mask] = 0.0
-    phi[unknown] = x
+    # Segments that can carry flow: in a piece with two boundary nodes, not a
+    # self-loop, not in a dead-end part.
+    candidate = ~loop & flowing_node[u]
+    dead = _dead_ends(u, v, candidate, anchor)
+    core = candidate & ~dead
+    core_deg = np.bincount(u[core], minlength=n_nodes) + np.bincount(v[core], minlength=n_nodes)
+    core_node = flowing_node & (anchor | (core_deg > 0))
+
+    if estimate:
+        known_p = np.full(n_nodes, np.nan)
+        known_p[is_inlet] = cfg["inlet_pressure_pa"]
+        known_p[out_mask] = cfg["outlet_pressure_pa"]
+        est = estimate_pressures(
+            u[core], v[core], conductance[core],
+            radius_m=radius_um[core] * UM, length_m=length_m[core], n_nodes=n_nodes,
+            open_node=open_node, known_pressure_pa=known_p, known_inflow_m3_s=known_q,
+            target_pressure_pa=cfg["target_pressure_pa"], target_wss_pa=cfg["target_wss_pa"],
+            pressure_weight=cfg["pressure_weight"], max_iter=cfg["estimate_max_iter"],
+        )
+        warn += est.notes
+        pressure = est.pressure_pa
+        # pieces that cannot carry flow sit at the target pressure
+        pressure[solved_node & ~core_node] = np.nan
+        method, iterations, lin_res = "direct", est.iterations, 0.0
+        n_unknown = int(core_node.sum())
+        p_out = float("nan")
+    else:
+        # Reduced system over the core, for the potential phi (1 at inlets, 0
+        # at outlets); dead-end parts and pieces without flow need no solve.
+        unknown = core_node & ~fixed
+        unknown_index = np.full(n_nodes, -1, dtype=np.int64)
+        unknown_index[unknown] = np.arange(int(unknown.sum()))
+        phi_fixed = is_inlet.astype(float)
+        A, b = _assemble(u, v, conductance, unknown_index, phi_fixed, core)
+        n_unknown = A.shape[0]
+        method = cfg["solver"]
+        if method == "auto":
+            method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
+        x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
+        if n_unknown:
+            bn = float(np.linalg.norm(b))
+            lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
+        else:
+            lin_res = 0.0
+        if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
+            warn.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
+        phi = np.full(n_nodes, np.nan)
+        if n_comp:
+            # Pieces without an inlet-outlet pair have a constant potential.
+            phi[solved_node] = comp_in[comp[solved_node]].astype(float)
+        phi[is_inlet] = 1.0
+        phi[out_mask] = 0.0
+        phi[unknown] = x
+        p_out = cfg["outlet_pressure_pa"]
+        q_unit_in = None
+        if cfg["inlet_flow_nl_min"] is None:
+            dp = cfg["inlet_pressure_pa"] - p_out
+        else:
+            q_unit_in = np.where(core, conductance * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])), 0.0)
+            unit_inflow = float((_wsum(u, q_unit_in, n_nodes) - _wsum(v, q_unit_in, n_nodes))[is_inlet].sum())
+            if not unit_inflow > 0:
+                raise InputError(
+                    "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
+                )
+            dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
+        pressure = p_out + dp * phi
     hang = flowing_node & ~core_node
     if hang.any():
         # Each dead-end part hangs from exactly one core node and shares its
-        # potential (no flow, no pressure drop).
+        # pressure (no flow, no pressure drop).
         link = sparse.coo_matrix(
             (np.ones(int(dead.sum())), (u[dead], v[dead])), shape=(n_nodes, n_nodes)
         )
         _, part = csgraph.connected_components(link, directed=False)
-        part_phi = np.full(int(part.max()) + 1, np.nan)
-        part_phi[part[core_node]] = phi[core_node]
-        phi[hang] = part_phi[part[hang]]
-    dphi = np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])
-    q_unit = np.where(perfused, conductance * dphi, 0.0)
+        part_p = np.full(int(part.max()) + 1, np.nan)
+        part_p[part[core_node]] = pressure[core_node]
+        pressure[hang] = part_p[part[hang]]
+    if estimate:
+        # a piece with a single boundary node, or open ends only through
+        # dead-end parts, carries no flow: it sits at the target pressure
+        pressure[solved_node & np.isnan(pressure)] = cfg["target_pressure_pa"]
+    if estimate:
+        dp_seg = np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])
+    else:
+        # from the potential: keeps small pressure drops exact
+        dp_seg = dp * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v]))
+    q = np.where(core, conductance * dp_seg, 0.0)  # m³/s
 
     def net_out(q):  # flow leaving each node into its segments
         return _wsum(u, q, n_nodes) - _wsum(v, q, n_nodes)
 
-    unit_inflow = float(net_out(q_unit)[is_inlet].sum())
-    p_out = cfg["outlet_pressure_pa"]
-    if cfg["inlet_flow_nl_min"] is None:
-        boundary = "pressure"
-        dp = cfg["inlet_pressure_pa"] - p_out
-    else:
-        boundary = "flow"
-        if not unit_inflow > 0:
-            raise InputError(
-                "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
-            )
-        dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
-    pressure = p_out + dp * phi
-    q = dp * q_unit  # m³/s
     node_net = net_out(q)
+    # A segment counts as perfused when its mean speed reaches the floor:
+    # below it the model's flow is rounding or a stalled vessel, and its
+    # transit time would be meaningless.
+    floor_m_s = cfg["perfused_min_velocity_mm_s"] * 1e-3
+    perfused = core & (np.abs(q) / (math.pi * (radius_um * UM) ** 2) >= floor_m_s)
+    if estimate:
+        # open ends are inlets or outlets by the estimated flow
+        tiny = 1e-9 * (float(np.abs(q).max()) if q.size else 0.0)
+        is_inlet = is_inlet | (open_node & (node_net > tiny))
+        out_mask = out_mask | (open_node & (node_net < -tiny))
+        fixed = is_inlet | out_mask
+        p_in = float(pressure[is_inlet].mean()) if is_inlet.any() else float("nan")
+        p_out = float(pressure[out_mask].mean()) if out_mask.any() else float("nan")
+        dp = p_in - p_out
+    role = np.full(n_nodes, "internal", dtype=object)
+    role[((kind == "blind") | (kind == "border") | (ends <= 1)) & ~fixed] = "sealed"
+    role[out_mask] = "outlet"
+    role[is_inlet] = "inlet"
     inflow = float(node_net[is_inlet].sum())
+    boundary = "estimate" if estimate else ("pressure" if cfg["inlet_flow_nl_min"] is None else "flow")
 
     # Derived quantities (robust radius for the local ones).
     r_m = radius_um * UM
@@ -763,7 +848,7 @@ def solve_flow(
     speed = aq / (math.pi * r_m**2)  # m/s
     shear = 4.0 * aq / (math.pi * r_m**3)  # 1/s
     with np.errstate(divide="ignore", invalid="ignore"):
-        transit = np.where(aq > 0, length_m / np.where(aq > 0, speed, 1.0), np.nan)
+        transit = np.where(perfused, length_m / np.where(perfused, speed, 1.0), np.nan)
     out = pd.DataFrame({"segment_id": seg_id})
     for col in PASS_THROUGH:
         if col in segments.columns:
@@ -792,7 +877,7 @@ def solve_flow(
     interior = solved_node & ~fixed
     if inflow > 0:
         residual = float(np.abs(node_net[interior]).max() / inflow) if interior.any() else 0.0
-        net_r = dp / inflow * PA_S_UM3_PER_PA_S_M3
+        net_r = dp / inflow * PA_S_UM3_PER_PA_S_M3 if math.isfinite(dp) else None
     else:
         residual, net_r = None, None
     if residual is not None and residual > 1e-6:
@@ -811,8 +896,8 @@ def solve_flow(
         "n_unsolved_components": n_unsolved,
         "n_unknowns": int(n_unknown),
         "boundary": boundary,
-        "inlet_pressure_pa": float(p_out + dp),
-        "outlet_pressure_pa": float(p_out),
+        "inlet_pressure_pa": _finite_or_none(p_out + dp),
+        "outlet_pressure_pa": _finite_or_none(p_out),
         "viscosity_model": cfg["viscosity_model"],
         "solver": method if n_unknown else "none",
         "solver_iterations": iterations,

@@ -44,7 +44,9 @@ def tables(edges, kinds=None):
 
 
 def cfg(**flow):
-    base = {"inlet_pressure_pa": P_IN, "outlet_pressure_pa": P_OUT, "solver": "direct"}
+    # the fixed-pressure mode with constant viscosity, where closed forms hold
+    base = {"inlet_pressure_pa": P_IN, "outlet_pressure_pa": P_OUT, "solver": "direct", "boundary": "pressure",
+            "viscosity_model": "constant", "blind_ends": "sealed"}
     base.update(flow)
     return {"flow": base}
 
@@ -508,7 +510,7 @@ def test_bad_inputs_raise_input_error(change, kwargs, error, fragment):
 
 
 @pytest.mark.parametrize("flow", [{"nosuch": 1}, {"viscosity_model": "casson"}, {"haematocrit": 1.5},
-                                  {"blind_ends": "open"}, {"min_valid_diameter_um": 1.0}])
+                                  {"blind_ends": "leaky"}, {"boundary": "guess"}, {"min_valid_diameter_um": 1.0}])
 def test_bad_config_raises_config_error(flow):
     segs, nodes = tables([(0, 1, 50.0, 4.0)], {0: "border", 1: "border"})
     with pytest.raises(ConfigError):
