@@ -278,19 +278,49 @@ def estimate_pressures(
     rhs_con[pos[qk]] = -known_inflow_m3_s[rows[qk]] / p0 * scale[qk]
     rhs_con[k_rows.size:] = (known_pressure_pa[rows[d_rows]] - p0) / p0
 
+    size = m + n_con
+    # Symmetric scaling: unit diagonal in the pressure block and unit row
+    # norms (in the scaled variables) in the constraint block, so that the
+    # Schur complement C H^-1 C^T is of order one.
+    dx = 1.0 / np.sqrt(diag_h)
+    cv = cv * dx[cc]
+    rnorm = np.sqrt(np.bincount(cr, weights=cv * cv, minlength=n_con))
+    cv = cv / rnorm[cr]
+    rhs_con = rhs_con / rnorm
+    h_vals = h_vals * dx[h_rows] * dx[h_cols]
     kkt = sparse.coo_matrix(
         (np.r_[h_vals, cv, cv], (np.r_[h_rows, m + cr, cc], np.r_[h_cols, cc, m + cr])),
-        shape=(m + n_con, m + n_con),
+        shape=(size, size),
     ).tocsc()
+    # A small negative diagonal in the constraint block makes the matrix
+    # quasi-definite, which has an LDL^T factorisation for every symmetric
+    # ordering (Vanderbei 1995, SIAM J Optim 5:100): the factorisation can
+    # then pivot on the diagonal in a fill-reducing order, instead of the
+    # row pivoting an indefinite saddle-point matrix needs, which fills in
+    # catastrophically. Iterative refinement against the exact matrix
+    # removes the perturbation.
+    eps = 1e-8
+    reg = kkt - sparse.diags(np.r_[np.zeros(m), np.full(n_con, eps)]).tocsc()
     try:
         with _warnings.catch_warnings():
             _warnings.simplefilter("error")
-            lu = spla.splu(kkt, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.1)
+            lu = spla.splu(reg.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                           options={"SymmetricMode": True})
     except (RuntimeError, Warning) as exc:
         raise SolverError(
             f"flow: the boundary estimate's system is singular ({exc}); every piece needs an open end "
             "or a known pressure"
         ) from None
+
+    def kkt_solve(rhs):
+        sol = lu.solve(rhs)
+        norm = float(np.abs(rhs).max()) or 1.0
+        for _ in range(5):
+            res = rhs - kkt @ sol
+            if float(np.abs(res).max()) <= 1e-12 * norm:
+                break
+            sol = sol + lu.solve(res)
+        return sol
 
     piece_known = np.zeros(n_piece, dtype=bool)
     piece_known[piece[kp_node | kq_node]] = True
@@ -317,10 +347,10 @@ def estimate_pressures(
         it = 0
         for it in range(1, max_iter + 1):
             t0 = signs * mag
-            g = np.bincount(a, weights=w_seg * c * t0, minlength=m) - np.bincount(b, weights=w_seg * c * t0,
-                                                                                  minlength=m)
-            sol = lu.solve(np.r_[g, rhs_con])
-            x = sol[:m]
+            g = (np.bincount(a, weights=w_seg * c * t0, minlength=m)
+                 - np.bincount(b, weights=w_seg * c * t0, minlength=m)) * dx
+            sol = kkt_solve(np.r_[g, rhs_con])
+            x = sol[:m] * dx
             if not np.all(np.isfinite(x)):
                 raise SolverError("flow: the boundary estimate produced non-finite pressures")
             q = conductance * (x[a] - x[b])

@@ -142,14 +142,18 @@ def _common(a):
     a.add_argument("--overwrite", action="store_true", help="replace a non-empty output folder")
     a.add_argument("--quiet", action="store_true", help="no progress lines")
     f = a.add_argument_group("flow model")
-    f.add_argument("--root", help="root for levels and the main inlet: auto (widest border end), node:ID, "
-                                  "or Z,Y,X in µm (nearest node)")
+    f.add_argument("--root", help="root for levels: auto (widest border end), node:ID, or Z,Y,X in µm "
+                                  "(nearest node); a root given here is also a known inlet of the flow model")
     f.add_argument("--inlet", action="append", default=[], metavar="SPEC",
-                   help="another inlet (node:ID or Z,Y,X µm); repeatable")
+                   help="a known inlet (node:ID or Z,Y,X µm), at flow.inlet_pressure_pa; repeatable")
     f.add_argument("--outlet", action="append", default=[], metavar="SPEC",
-                   help="a named outlet (node:ID or Z,Y,X µm); repeatable; default: ends cut by the border")
-    f.add_argument("--blind-ends", choices=("sealed", "outlet"),
-                   help="blind ends inside the tissue carry no flow (sealed, default) or are outlets")
+                   help="a known outlet (node:ID or Z,Y,X µm), at flow.outlet_pressure_pa; repeatable")
+    f.add_argument("--boundary", choices=("estimate", "pressure"),
+                   help="ends cut by the volume: estimated from target pressure and shear stress (estimate, "
+                        "default) or outlets at a fixed pressure (pressure)")
+    f.add_argument("--blind-ends", choices=("open", "sealed", "outlet"),
+                   help="blind ends inside the tissue: treated like cut ends (open, default), no flow (sealed) "
+                        "or outlets")
     f.add_argument("--no-flow", action="store_true", help="skip the flow model")
 
 
@@ -161,6 +165,8 @@ def _load_cfg(args):
         cfg["input"]["threshold"] = args.threshold
     if getattr(args, "root", None) is not None:
         cfg["levels"]["root"] = args.root
+    if getattr(args, "boundary", None) is not None:
+        cfg["flow"]["boundary"] = args.boundary
     if getattr(args, "blind_ends", None) is not None:
         cfg["flow"]["blind_ends"] = args.blind_ends
     if getattr(args, "no_flow", False):

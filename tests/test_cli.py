@@ -165,10 +165,16 @@ def test_flow_options(tube_tif, tmp_path):
     assert set(nodes["role"]) == {"inlet", "outlet", "internal"}
     summary = json.loads((base / "summary.json").read_text())
     assert summary["total_inflow_nl_min"] > 0 and summary["bifurcations"] == 1
-    # Sealed blind ends (the default): the Y's only border end is the inlet, so nothing flows.
+    # Sealed blind ends: the Y's only border end is then its only opening, so nothing flows.
     sealed = tmp_path / "sealed"
-    assert main(["analyze", str(tube_tif), "-o", str(sealed), "--quiet"]) == 0
+    assert main(["analyze", str(tube_tif), "-o", str(sealed), "--quiet", "--blind-ends", "sealed"]) == 0
     assert not pd.read_csv(sealed / "segments.csv")["perfused"].any()
+    # Open blind ends (the default) in a piece that reaches the border: the
+    # estimate perfuses the whole Y; fixed pressures need named outlets.
+    estimated = tmp_path / "estimated"
+    assert main(["analyze", str(tube_tif), "-o", str(estimated), "--quiet"]) == 0
+    assert pd.read_csv(estimated / "segments.csv")["perfused"].all()
+    assert json.loads((estimated / "run.json").read_text())["flow"]["boundary"] == "estimate"
     off = tmp_path / "noflow"
     assert main(["analyze", str(tube_tif), "-o", str(off), "--quiet", "--no-flow"]) == 0
     assert "flow_nl_min" not in pd.read_csv(off / "segments.csv").columns
