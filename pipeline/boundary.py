@@ -148,7 +148,10 @@ def _initial_signs(u, v, n, radius, open_node, piece, n_piece, length):
     src = src[np.isfinite(score[src])]
     adj = sparse.coo_matrix((np.r_[length, length], (np.r_[u, v], np.r_[v, u])), shape=(n, n)).tocsr()
     dist = csgraph.dijkstra(adj, directed=False, indices=src, min_only=True)
-    s = np.sign(dist[v] - dist[u])
+    du, dv = dist[u], dist[v]
+    reach = np.isfinite(du) & np.isfinite(dv)
+    s = np.ones(len(u))
+    s[reach] = np.sign(dv[reach] - du[reach])
     s[s == 0] = 1.0
     return s
 
