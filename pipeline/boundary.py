@@ -20,42 +20,58 @@ closest to what is known about microvessels in general:
                 known inflow; p = p_known where a pressure is known,
 
 where ``tau_j = r_j (p_a - p_b) / (2 L_j)`` is the Poiseuille wall shear
-stress of segment j (signed along the segment), ``w_k`` half the length of
-the segments at node k and ``w_j`` the length of segment j (so both sums
-are integrals over the network, independent of how finely it is cut into
-segments), ``L`` the weighted graph Laplacian with the segment conductances.
-``p_0`` is the target pressure and ``tau_0,j`` the target shear stress,
-signed by the current flow direction of the segment; the paper iterates the
-signs until the flow directions settle, and so does this module. The
-quadratic problem is solved through its Lagrange (KKT) system, a sparse
-symmetric indefinite matrix that does not change between iterations: it is
-factorised once (SuperLU) and every iteration is a pair of triangular
-solves.
+stress of segment j (force balance on the blood in a straight tube, signed
+along the segment), ``w_k`` half the length of the segments at node k and
+``w_j`` the length of segment j (so both sums are integrals over the
+network, independent of how finely it is cut into segments), ``L`` the
+weighted graph Laplacian with the segment conductances. ``p_0`` is the
+target pressure and ``tau_0,j`` the target shear stress, signed by the
+current flow direction of the segment; the paper iterates the signs until
+the flow directions settle, and so does this module. The quadratic problem
+is solved through its Lagrange (KKT) system, a sparse symmetric indefinite
+matrix that does not change between iterations: it is factorised once
+(SuperLU) and every iteration is a pair of triangular solves.
 
-Target shear stress. By default its magnitude depends on the segment's mean
-pressure through the shear-stress set point of Pries, Secomb & Gaehtgens
-(1998, Am J Physiol 275:H349; formula from memory, not checked against the
-paper)::
+Targets. The target shear stress of a segment is its apparent viscosity
+(which the in-vivo viscosity law makes several times higher in capillaries
+than in arterioles) times a target wall shear rate,
+``tau_0,j = mu_j gamma_0(p_j)``; the deviations are weighed as shear rates,
+``(tau_j - tau_0,j) / (mu_j gamma_ref)``. A shear-stress target of one
+magnitude for every size cannot give physiological speeds in both: with the
+in-vivo law, a 3 µm capillary at 4 Pa moves blood at well under 0.1 mm/s,
+and an arteriole at 15 Pa far above its measured 1-5 Pa (Reneman & Hoeks
+2008, Med Biol Eng Comput 46:499). ``gamma_ref`` (``target_shear_rate_s``,
+1000 1/s at ``p_0``) is within the wall shear rates measured in
+microvessels, about 1000-3000 1/s in arterioles and 200-800 1/s in venules
+(from memory of intravital studies, e.g. Tangelder et al. 1986, Circ Res
+59:505). The target rises with pressure as the shear-stress set point of
+Pries, Secomb & Gaehtgens (1998, Am J Physiol 275:H349; formula from memory,
+not checked against the paper)::
 
     tau_e(P) = 100 - 86 exp(-5000 (log10(log10 P))^5.4)   dyn/cm², P in mmHg
 
-about 1.4 Pa at 15 mmHg (venules), 3.9 Pa at 30 mmHg (capillaries), 9.5
-Pa at 60 mmHg (arterioles), fitted to the pressures and shear stresses
-measured in the rat mesentery (Pries et al. 1995, Circ Res 77:1017, from
-memory). The magnitudes are updated from the current pressures together with
-the signs. A constant ``target_wss_pa`` replaces the relation.
+so that ``gamma_0(p) = gamma_ref tau_e(p) / tau_e(p_0)``: about 0.37
+``gamma_ref`` at 15 mmHg (venules), 1 at 30 mmHg, 2.4 at 60 mmHg
+(arterioles), in line with the measured ranges above. By default the solve
+uses the constant ``gamma_ref`` and the relation only chooses orientations
+(below): in a network cut from the middle of a capillary bed the estimated
+pressures spread for want of data, and a target that follows them put the
+thinnest capillaries (whose in-vivo viscosity is highest) at wall shear
+stresses of 50-75 Pa on the project's thin-capillary phantoms (measured;
+30-48 Pa with the constant target). With ``target_shear_rate_by_pressure``
+the magnitudes follow the current pressures, updated with the signs (damped).
 
 Orientation. Without any known condition the problem is symmetric under
-reversing all flows of a piece when the targets do not depend on pressure;
-the pressure-dependent target breaks the symmetry in favour of narrower
-vessels at higher pressure (arterioles are narrower than the venules that
-drain the same territory, e.g. in rodent cortex; from memory). Pieces
-without a known condition are therefore solved from two starts (flow
-spreading from the piece's widest open end, and the reverse), and each
-piece keeps the converged solution with the smaller objective.
+reversing all flows of a piece (constant targets, pressures mirrored about
+``p_0``). Pieces without a known condition are therefore solved from two
+starts (flow spreading from the piece's widest open end, and the reverse),
+and each piece keeps the converged solution whose objective is smaller when
+the targets follow the set point of Pries et al. (1998): it prefers high
+shear at high pressure, hence narrower vessels at higher pressure, as
+arterioles are narrower than the venules that drain the same territory
+(e.g. in rodent cortex; from memory).
 
-Weights. ``pressure_weight`` is ``k_p / k_tau``; ``tau_ref`` is the target
-at ``p_0``. Fry et al. found the estimated flows insensitive to the ratio
+Weights. ``pressure_weight`` is ``k_p / k_tau``. Fry et al. found the estimated flows insensitive to the ratio
 over a wide range (from memory); the default is the value measured best on
 the project's synthetic cortex crops (see ``tests/test_boundary.py``).
 """
@@ -168,9 +184,12 @@ def estimate_pressures(
     known_pressure_pa: np.ndarray,
     known_inflow_m3_s: np.ndarray,
     target_pressure_pa: float,
-    target_wss_pa: float | None,
+    viscosity_pa_s: np.ndarray,
+    target_shear_rate_s: float,
+    pressure_dependent_target: bool = False,
     pressure_weight: float,
     max_iter: int,
+    initial_signs: np.ndarray | None = None,
 ) -> Estimate:
     """Pressures of a cut network by the method of Fry et al. (2012).
 
@@ -194,13 +213,22 @@ def estimate_pressures(
         pressure conserves flow.
     target_pressure_pa : float, keyword-only
         ``p_0``.
-    target_wss_pa : float or None, keyword-only
-        Constant target shear stress magnitude, or None for the pressure
-        relation :func:`set_point_wss_pa`.
+    viscosity_pa_s : (S,) float ndarray, keyword-only
+        Apparent viscosity of each segment, Pa·s.
+    target_shear_rate_s : float, keyword-only
+        ``gamma_ref``, the target wall shear rate at ``p_0``, 1/s.
+    pressure_dependent_target : bool, keyword-only
+        Scale the target with pressure as :func:`set_point_wss_pa` (module
+        notes); False keeps it constant.
     pressure_weight : float, keyword-only
         ``k_p / k_tau`` (> 0).
     max_iter : int, keyword-only
         Largest number of sign iterations per start.
+    initial_signs : (S,) float ndarray or None, keyword-only
+        Flow directions to start from (+1 along ``u -> v``), for a repeated
+        solve with changed conductances (the haematocrit iteration): then
+        only this start is run and each piece keeps its orientation. None:
+        two starts per piece without known conditions (module notes).
 
     Returns
     -------
@@ -235,9 +263,10 @@ def estimate_pressures(
     seg_piece = piece[a]
 
     p0 = float(target_pressure_pa)
-    tau_ref = float(target_wss_pa) if target_wss_pa is not None else float(set_point_wss_pa(p0))
-    # dimensionless x = (p - p0) / p0
-    c = radius_m / (2.0 * length_m) * p0 / tau_ref  # tau/tau_ref per unit dx
+    g_ref = float(target_shear_rate_s)
+    tau_p0 = float(set_point_wss_pa(p0))
+    # dimensionless x = (p - p0) / p0; shear rate over gamma_ref per unit dx
+    c = radius_m / (2.0 * length_m * viscosity_pa_s) * p0 / g_ref
     lbar = float(length_m.mean())
     w_seg = length_m / lbar
     w_node = 0.5 * (np.bincount(a, weights=w_seg, minlength=m) + np.bincount(b, weights=w_seg, minlength=m))
@@ -338,10 +367,10 @@ def estimate_pressures(
                       + np.bincount(piece, weights=node_term, minlength=n_piece))
 
     def targets(x):
-        if target_wss_pa is not None:
+        if not pressure_dependent_target:
             return np.ones(s_count)
         pm = p0 * (1.0 + 0.5 * (x[a] + x[b]))
-        return set_point_wss_pa(pm) / tau_ref
+        return set_point_wss_pa(pm) / tau_p0
 
     def run(signs):
         x = np.zeros(m)
@@ -368,9 +397,19 @@ def estimate_pressures(
             mag = 0.5 * (mag + new_mag)
             if flips == 0 and mag_change < 1e-3:
                 break
-        t0 = signs * mag
-        return x, objective_parts(x, t0), it, flips
+        # Pieces are compared on the pressure-dependent objective whether or
+        # not the solve used it: it is what tells their orientation apart.
+        t_choice = signs * (set_point_wss_pa(p0 * (1.0 + 0.5 * (x[a] + x[b]))) / tau_p0)
+        return x, objective_parts(x, t_choice), it, flips
 
+    if initial_signs is not None:
+        x, obj, its, flips = run(np.asarray(initial_signs, dtype=float))
+        pressure[rows] = p0 * (1.0 + x)
+        notes = [] if flips == 0 else [
+            f"flow: the boundary estimate's flow directions did not settle in {max_iter} iterations "
+            f"({flips} segment(s) still changing)"
+        ]
+        return Estimate(pressure, int(its), flips == 0, int(flips), float(np.sum(obj)), 0, notes)
     s_init = _initial_signs(a, b, m, radius_ref, open_node[rows], piece, n_piece, length_m)
     x1, obj1, it1, fl1 = run(s_init)
     free = ~piece_known

@@ -99,6 +99,12 @@ from scipy.sparse import linalg as spla
 from ._checks import segment_end_rows
 from .boundary import estimate_pressures
 from .errors import InputError, SolverError
+from .rheology import (  # the viscosity laws live with the other blood properties
+    iterate_rheology,
+    relative_viscosity_vitro,
+    relative_viscosity_vivo,
+    segment_viscosity_mpa_s,
+)
 
 __all__ = [
     "FlowResult",
@@ -172,141 +178,6 @@ class FlowResult:
     nodes: pd.DataFrame
     summary: dict[str, Any]
     warnings: list[str] = field(default_factory=list)
-
-
-# ---------------------------------------------------------------------------
-# viscosity laws
-# ---------------------------------------------------------------------------
-
-def _c_exponent(d: np.ndarray) -> np.ndarray:
-    # Shape of the haematocrit dependence, Pries et al. 1992 (from memory):
-    # C = (0.8 + e^(-0.075 D)) (-1 + 1 / (1 + 10^-11 D^12)) + 1 / (1 + 10^-11 D^12)
-    s = 1.0 / (1.0 + 1e-11 * d**12)
-    return (0.8 + np.exp(-0.075 * d)) * (-1.0 + s) + s
-
-
-def _haematocrit_factor(h: np.ndarray | float, c: np.ndarray) -> np.ndarray:
-    """((1 - H)^C - 1) / ((1 - 0.45)^C - 1), with its limit at C = 0.
-
-    C changes sign near D = 8 µm, where the quotient is 0/0; its limit is
-    ln(1 - H) / ln(0.55). ``expm1`` keeps the quotient accurate near there.
-    """
-    a = np.log1p(-np.asarray(h, dtype=float))
-    b = math.log(0.55)
-    c = np.asarray(c, dtype=float)
-    tiny = np.abs(c) < 1e-12
-    cs = np.where(tiny, 1.0, c)
-    return np.where(tiny, a / b, np.expm1(cs * a) / np.expm1(cs * b))
-
-
-def relative_viscosity_vitro(diameter_um, haematocrit) -> np.ndarray:
-    """In-vitro relative apparent viscosity of blood in glass tubes.
-
-    Pries AR, Neuhaus D, Gaehtgens P (1992) Am J Physiol 263:H1770 (formula
-    as recalled, not checked against the paper)::
-
-        eta_rel = 1 + (eta_045 - 1) * ((1 - H)^C - 1) / ((1 - 0.45)^C - 1)
-        eta_045 = 220 e^(-1.3 D) + 3.2 - 2.44 e^(-0.06 D^0.645)
-        C = (0.8 + e^(-0.075 D)) (-1 + 1 / (1 + 1e-11 D^12))
-            + 1 / (1 + 1e-11 D^12)
-
-    Parameters
-    ----------
-    diameter_um : float or (M,) array_like
-        Tube diameter D, µm (the fit's data base spans 3.3 to 1978 µm).
-    haematocrit : float or (M,) array_like
-        Discharge haematocrit H_D, 0 <= H_D < 1.
-
-    Returns
-    -------
-    (M,) float ndarray
-        Apparent viscosity over suspending-medium (plasma) viscosity.
-    """
-    d = np.asarray(diameter_um, dtype=float)
-    eta45 = 220.0 * np.exp(-1.3 * d) + 3.2 - 2.44 * np.exp(-0.06 * d**0.645)
-    return 1.0 + (eta45 - 1.0) * _haematocrit_factor(haematocrit, _c_exponent(d))
-
-
-def relative_viscosity_vivo(diameter_um, haematocrit) -> np.ndarray:
-    """In-vivo relative apparent viscosity (flow resistance) of microvessels.
-
-    Pries AR, Secomb TW, Gessner T, Sperandio MB, Gross JF, Gaehtgens P
-    (1994) Circ Res 75:904 (formula as recalled, not checked against the
-    paper)::
-
-        eta_vivo = [1 + (eta*_045 - 1) * ((1 - H)^C - 1) / ((1 - 0.45)^C - 1)
-                    * (D / (D - 1.1))^2] * (D / (D - 1.1))^2
-        eta*_045 = 6 e^(-0.085 D) + 3.2 - 2.44 e^(-0.06 D^0.645)
-
-    with the same C as :func:`relative_viscosity_vitro`. The
-    ``(D / (D - 1.1))^2`` factors stand for a wall layer of about 1.1 µm
-    that diverges as D approaches 1.1 µm.
-
-    Parameters
-    ----------
-    diameter_um : float or (M,) array_like
-        Vessel diameter D, µm, > 1.1.
-    haematocrit : float or (M,) array_like
-        Discharge haematocrit H_D, 0 <= H_D < 1.
-
-    Returns
-    -------
-    (M,) float ndarray
-        Apparent viscosity over plasma viscosity.
-    """
-    d = np.asarray(diameter_um, dtype=float)
-    eta45 = 6.0 * np.exp(-0.085 * d) + 3.2 - 2.44 * np.exp(-0.06 * d**0.645)
-    wall = (d / (d - 1.1)) ** 2
-    return (1.0 + (eta45 - 1.0) * _haematocrit_factor(haematocrit, _c_exponent(d)) * wall) * wall
-
-
-def segment_viscosity_mpa_s(
-    diameter_um: np.ndarray,
-    *,
-    model: str,
-    viscosity_mpa_s: float,
-    haematocrit: float,
-    plasma_viscosity_mpa_s: float,
-    min_valid_diameter_um: float,
-) -> tuple[np.ndarray, list[str]]:
-    """Apparent blood viscosity of every segment.
-
-    Parameters
-    ----------
-    diameter_um : (S,) float ndarray
-        Diameters the law is evaluated at, µm.
-    model : {'constant', 'pries1992', 'pries1994'}, keyword-only
-    viscosity_mpa_s : float, keyword-only
-        Viscosity of the constant model, mPa·s.
-    haematocrit : float, keyword-only
-        Discharge haematocrit for the Pries laws.
-    plasma_viscosity_mpa_s : float, keyword-only
-        Suspending-medium viscosity the Pries laws scale, mPa·s.
-    min_valid_diameter_um : float, keyword-only
-        Narrower diameters are evaluated at this value.
-
-    Returns
-    -------
-    viscosity : (S,) float ndarray
-        mPa·s.
-    warnings : list of str
-        One line if any diameter was clamped.
-    """
-    d = np.asarray(diameter_um, dtype=float)
-    if model == "constant":
-        return np.full(d.shape, float(viscosity_mpa_s)), []
-    if model not in ("pries1992", "pries1994"):
-        raise InputError(f"flow.viscosity_model: expected constant, pries1992 or pries1994, got {model!r}")
-    notes: list[str] = []
-    low = d < min_valid_diameter_um
-    if low.any():
-        notes.append(
-            f"viscosity: {int(low.sum())} segment(s) narrower than {min_valid_diameter_um:g} µm, "
-            f"outside the valid range of the {model} law; evaluated at {min_valid_diameter_um:g} µm"
-        )
-        d = np.maximum(d, min_valid_diameter_um)
-    law = relative_viscosity_vitro if model == "pries1992" else relative_viscosity_vivo
-    return plasma_viscosity_mpa_s * law(d, haematocrit), notes
 
 
 # ---------------------------------------------------------------------------
@@ -665,22 +536,8 @@ def solve_flow(
     open_node = open_kind & ~fixed & np.isnan(known_q) if estimate else np.zeros(n_nodes, dtype=bool)
     anchor = fixed | open_node | np.isfinite(known_q)
 
-    # Resistances.
-    mu_mpa_s, vnotes = segment_viscosity_mpa_s(
-        2.0 * rh,
-        model=cfg["viscosity_model"],
-        viscosity_mpa_s=cfg["viscosity_mpa_s"],
-        haematocrit=cfg["haematocrit"],
-        plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
-        min_valid_diameter_um=cfg["min_valid_diameter_um"],
-    )
-    warn += vnotes
-    mu = mu_mpa_s * MPA_S
-    r_h_m = rh * UM
-    length_m = length_um * UM
-    conductance = math.pi * r_h_m**4 / (8.0 * mu * length_m)  # m³/(Pa·s)
-    resistance = 1.0 / conductance  # Pa·s/m³
     loop = u == v
+    length_m = length_um * UM
 
     # Components and which of them can be solved.
     if n_nodes:
@@ -737,64 +594,122 @@ def solve_flow(
     core_deg = np.bincount(u[core], minlength=n_nodes) + np.bincount(v[core], minlength=n_nodes)
     core_node = flowing_node & (anchor | (core_deg > 0))
 
-    if estimate:
-        known_p = np.full(n_nodes, np.nan)
-        known_p[is_inlet] = cfg["inlet_pressure_pa"]
-        known_p[out_mask] = cfg["outlet_pressure_pa"]
-        est = estimate_pressures(
-            u[core], v[core], conductance[core],
-            radius_m=radius_um[core] * UM, length_m=length_m[core], n_nodes=n_nodes,
-            open_node=open_node, known_pressure_pa=known_p, known_inflow_m3_s=known_q,
-            target_pressure_pa=cfg["target_pressure_pa"], target_wss_pa=cfg["target_wss_pa"],
-            pressure_weight=cfg["pressure_weight"], max_iter=cfg["estimate_max_iter"],
+    known_p = np.full(n_nodes, np.nan)
+    known_p[is_inlet] = cfg["inlet_pressure_pa"]
+    known_p[out_mask] = cfg["outlet_pressure_pa"]
+    r_h_m = rh * UM
+    state: dict[str, Any] = {}
+
+    def solve_once(mu_mpa_s: np.ndarray) -> np.ndarray:
+        """Pressures and flows for given segment viscosities; flows, m³/s."""
+        conductance = math.pi * r_h_m**4 / (8.0 * mu_mpa_s * MPA_S * length_m)  # m³/(Pa·s)
+        info: dict[str, Any] = {"conductance": conductance, "phi": None, "dp": float("nan")}
+        if estimate:
+            est = estimate_pressures(
+                u[core], v[core], conductance[core],
+                radius_m=radius_um[core] * UM, length_m=length_m[core], n_nodes=n_nodes,
+                open_node=open_node, known_pressure_pa=known_p, known_inflow_m3_s=known_q,
+                target_pressure_pa=cfg["target_pressure_pa"], viscosity_pa_s=mu_mpa_s[core] * MPA_S,
+                target_shear_rate_s=cfg["target_shear_rate_s"],
+                pressure_dependent_target=cfg["target_shear_rate_by_pressure"],
+                pressure_weight=cfg["pressure_weight"], max_iter=cfg["estimate_max_iter"],
+                initial_signs=state.get("signs"),
+            )
+            info.update(notes=est.notes, method="direct", iterations=est.iterations, lin_res=0.0,
+                        n_unknown=int(core_node.sum()), estimate=est)
+            pressure = est.pressure_pa
+            pressure[solved_node & ~core_node] = np.nan
+        else:
+            # Reduced system over the core, for the potential phi (1 at
+            # inlets, 0 at outlets); dead-end parts and pieces without flow
+            # need no solve.
+            unknown = core_node & ~fixed
+            unknown_index = np.full(n_nodes, -1, dtype=np.int64)
+            unknown_index[unknown] = np.arange(int(unknown.sum()))
+            A, b = _assemble(u, v, conductance, unknown_index, is_inlet.astype(float), core)
+            n_unknown = A.shape[0]
+            method = cfg["solver"]
+            if method == "auto":
+                method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
+            x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
+            if n_unknown:
+                bn = float(np.linalg.norm(b))
+                lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
+            else:
+                lin_res = 0.0
+            notes = []
+            if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
+                notes.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
+            phi = np.full(n_nodes, np.nan)
+            if n_comp:
+                # Pieces without an inlet-outlet pair have a constant potential.
+                phi[solved_node] = comp_in[comp[solved_node]].astype(float)
+            phi[is_inlet] = 1.0
+            phi[out_mask] = 0.0
+            phi[unknown] = x
+            p_out = cfg["outlet_pressure_pa"]
+            if cfg["inlet_flow_nl_min"] is None:
+                dp = cfg["inlet_pressure_pa"] - p_out
+            else:
+                q_unit = np.where(core, conductance * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])), 0.0)
+                unit_inflow = float((_wsum(u, q_unit, n_nodes) - _wsum(v, q_unit, n_nodes))[is_inlet].sum())
+                if not unit_inflow > 0:
+                    raise InputError(
+                        "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
+                    )
+                dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
+            pressure = p_out + dp * phi
+            info.update(notes=notes, method=method, iterations=iterations, lin_res=lin_res, n_unknown=n_unknown,
+                        phi=phi, dp=dp)
+        if estimate:
+            dp_seg = np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])
+        else:
+            # from the potential: keeps small pressure drops exact
+            dp_seg = info["dp"] * (np.nan_to_num(info["phi"][u]) - np.nan_to_num(info["phi"][v]))
+        q = np.where(core, conductance * dp_seg, 0.0)
+        if estimate:
+            # later solves of the rheology iteration start from these
+            # directions and keep each piece's orientation
+            state["signs"] = np.where(q[core] != 0, np.sign(q[core]), 1.0)
+        info["pressure"] = pressure
+        state["info"] = info
+        return q
+
+    # Viscosity, then the solve (iterated with the haematocrit when asked).
+    mu_mpa_s, vnotes = segment_viscosity_mpa_s(
+        2.0 * rh,
+        model=cfg["viscosity_model"],
+        viscosity_mpa_s=cfg["viscosity_mpa_s"],
+        haematocrit=cfg["haematocrit"],
+        plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
+        min_valid_diameter_um=cfg["min_valid_diameter_um"],
+    )
+    warn += vnotes
+    haematocrit = np.where(core, cfg["haematocrit"], np.nan)
+    rheo = None
+    if cfg["haematocrit_model"] == "phase_separation" and cfg["viscosity_model"] == "pries1994" and core.any():
+        rheo = iterate_rheology(
+            solve_once, u, v, 2.0 * rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=n_nodes,
+            plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
+            min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
+            rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"],
         )
-        warn += est.notes
-        pressure = est.pressure_pa
-        # pieces that cannot carry flow sit at the target pressure
-        pressure[solved_node & ~core_node] = np.nan
-        method, iterations, lin_res = "direct", est.iterations, 0.0
-        n_unknown = int(core_node.sum())
-        p_out = float("nan")
+        if not rheo.converged:
+            warn.append(f"flow: haematocrit and viscosity did not converge ({rheo.message})")
+        mu_mpa_s = rheo.viscosity_mpa_s
+        haematocrit = np.where(core, rheo.haematocrit, np.nan)
+        q = rheo.flow
     else:
-        # Reduced system over the core, for the potential phi (1 at inlets, 0
-        # at outlets); dead-end parts and pieces without flow need no solve.
-        unknown = core_node & ~fixed
-        unknown_index = np.full(n_nodes, -1, dtype=np.int64)
-        unknown_index[unknown] = np.arange(int(unknown.sum()))
-        phi_fixed = is_inlet.astype(float)
-        A, b = _assemble(u, v, conductance, unknown_index, phi_fixed, core)
-        n_unknown = A.shape[0]
-        method = cfg["solver"]
-        if method == "auto":
-            method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
-        x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
-        if n_unknown:
-            bn = float(np.linalg.norm(b))
-            lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
-        else:
-            lin_res = 0.0
-        if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
-            warn.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
-        phi = np.full(n_nodes, np.nan)
-        if n_comp:
-            # Pieces without an inlet-outlet pair have a constant potential.
-            phi[solved_node] = comp_in[comp[solved_node]].astype(float)
-        phi[is_inlet] = 1.0
-        phi[out_mask] = 0.0
-        phi[unknown] = x
-        p_out = cfg["outlet_pressure_pa"]
-        q_unit_in = None
-        if cfg["inlet_flow_nl_min"] is None:
-            dp = cfg["inlet_pressure_pa"] - p_out
-        else:
-            q_unit_in = np.where(core, conductance * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])), 0.0)
-            unit_inflow = float((_wsum(u, q_unit_in, n_nodes) - _wsum(v, q_unit_in, n_nodes))[is_inlet].sum())
-            if not unit_inflow > 0:
-                raise InputError(
-                    "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
-                )
-            dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
-        pressure = p_out + dp * phi
+        q = solve_once(mu_mpa_s)
+    info = state["info"]
+    warn += info["notes"]
+    conductance = info["conductance"]
+    pressure = info["pressure"]
+    phi, dp = info["phi"], info["dp"]
+    method, iterations, lin_res, n_unknown = info["method"], info["iterations"], info["lin_res"], info["n_unknown"]
+    p_out = float("nan") if estimate else cfg["outlet_pressure_pa"]
+    mu = mu_mpa_s * MPA_S
+    resistance = 1.0 / conductance  # Pa·s/m³
     hang = flowing_node & ~core_node
     if hang.any():
         # Each dead-end part hangs from exactly one core node and shares its
@@ -810,12 +725,6 @@ def solve_flow(
         # a piece with a single boundary node, or open ends only through
         # dead-end parts, carries no flow: it sits at the target pressure
         pressure[solved_node & np.isnan(pressure)] = cfg["target_pressure_pa"]
-    if estimate:
-        dp_seg = np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])
-    else:
-        # from the potential: keeps small pressure drops exact
-        dp_seg = dp * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v]))
-    q = np.where(core, conductance * dp_seg, 0.0)  # m³/s
 
     def net_out(q):  # flow leaving each node into its segments
         return _wsum(u, q, n_nodes) - _wsum(v, q, n_nodes)
@@ -864,6 +773,7 @@ def solve_flow(
     out["transit_time_s"] = transit
     out["resistance_pa_s_um3"] = resistance * PA_S_UM3_PER_PA_S_M3
     out["viscosity_mpa_s"] = mu_mpa_s
+    out["haematocrit"] = haematocrit
     out["perfused"] = perfused
 
     node_out = pd.DataFrame({
