@@ -259,7 +259,10 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
             tick("flow")
         elif cfg["flow"]["enabled"]:
             warnings.append("flow not solved: no root or inlet node could be chosen")
-        bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed, config=cfg)
+        # The wall fit's slab and quantisation follow the coarsest spacing of
+        # the mask (planar: in-plane) the radii were fitted on.
+        bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed, config=cfg,
+                                                               voxel_um=float(max(sp[1:] if planar else sp)))
         summary.update(bif_summary)
         if len(bif_table) and len(level_table):
             per_level = bif_step.levels_murray(bif_table)

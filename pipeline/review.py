@@ -494,7 +494,7 @@ def apply_review(result, review: pd.DataFrame | None = None) -> tuple[dict[str, 
     bifs["review_decision"] = pd.Series([decision.get(n, "") for n in ids.tolist()], index=bifs.index, dtype=object)
     bifs["review_note"] = pd.Series([note.get(n, "") for n in ids.tolist()], index=bifs.index, dtype=object)
     # Empty text cells come back from CSV as NaN; the summary parses them as text.
-    for c in ("flag_reasons", "daughter_segments", "confidence_notes"):
+    for c in ("flag_reasons", "daughter_segments", "confidence_notes", "uncertain_reasons", "flow_pattern"):
         if c in bifs.columns:
             bifs[c] = bifs[c].astype(object).where(bifs[c].notna(), "").astype(str)
     if summary.get("bifurcations_enabled") is False:

@@ -32,8 +32,10 @@ Layers:
 ``current bifurcation``
     A white ring round the junction under review.
 
-The review panel lists the flagged junctions in a sortable table; Previous
-and Next follow the table's order; choosing a row centres and zooms the
+The review panel lists the flagged junctions in a sortable table, at first
+by decreasing ``severity`` (deviation from Murray's law in standard
+uncertainties, see :mod:`pipeline.bifurcations`); Previous and Next follow
+the table's order; choosing a row centres and zooms the
 camera on the junction and shows its parent and daughter radii and measures;
 the decision buttons and the note field save ``review.csv`` at once.
 
@@ -182,10 +184,14 @@ def _centreline_vectors(result: tables.Result):
 
 
 def _flagged(result: tables.Result) -> pd.DataFrame:
+    """The review queue: flagged junctions, most severe first (ties and results without ``severity`` by node)."""
     b = result.bifurcations
     if b.shape[1] == 0 or "flagged" not in b.columns:
         return pd.DataFrame(columns=["node_id", "z_um", "y_um", "x_um", "radius_parent_um"])
-    return b[b["flagged"].astype(bool)].reset_index(drop=True)
+    fl = b[b["flagged"].astype(bool)]
+    if "severity" in fl.columns:
+        fl = fl.sort_values("severity", ascending=False, kind="stable", na_position="last")
+    return fl.reset_index(drop=True)
 
 
 def _flag_colours(node_ids, decisions: dict) -> np.ndarray:
@@ -309,7 +315,7 @@ class ReviewPanel(QtWidgets.QWidget):
         Add the result's layers (False when the reader already did).
     """
 
-    COLUMNS = ("node", "level", "reasons", "ratio", "exponent", "decision", "note")
+    COLUMNS = ("node", "level", "reasons", "ratio", "exponent", "severity", "decision", "note")
 
     def __init__(self, napari_viewer, *, outdir=None, mask_path=None, colour_by="radius", add_layers=True):
         super().__init__()
@@ -361,6 +367,9 @@ class ReviewPanel(QtWidgets.QWidget):
         self.table.setSelectionMode(QtWidgets.QAbstractItemView.SelectionMode.SingleSelection)
         self.table.verticalHeader().setVisible(False)
         self.table.horizontalHeader().setStretchLastSection(True)
+        # The queue opens most severe first; a click on a header re-sorts it.
+        self.table.horizontalHeader().setSortIndicator(self.COLUMNS.index("severity"),
+                                                       QtCore.Qt.SortOrder.DescendingOrder)
         self.table.setSortingEnabled(True)
         self.table.currentCellChanged.connect(self._row_changed)
         lay.addWidget(self.table, 2)
@@ -497,6 +506,7 @@ class ReviewPanel(QtWidgets.QWidget):
                 _SortItem(reasons, reasons),
                 _SortItem(_fmt(b.murray_ratio), _num(b.murray_ratio)),
                 _SortItem(_fmt(b.murray_exponent), _num(b.murray_exponent)),
+                _SortItem(_fmt(getattr(b, "severity", math.nan)), _num(getattr(b, "severity", math.nan))),
                 _SortItem(decision, decision),
                 _SortItem(note, note),
             ]

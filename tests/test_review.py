@@ -120,15 +120,17 @@ def test_apply_review_drops_artefacts_from_the_summary(folder, tmp_path):
     expo = [float(x["murray_exponent"]) for x in kept if x["murray_exponent"] not in ("", "nan")]
     expo = [v for v in expo if math.isfinite(v)]
     ratio = [float(x["murray_ratio"]) for x in kept if x["murray_ratio"] not in ("", "nan")]
-    within = [x for x in kept if not (set(x["flag_reasons"].split(";")) & MURRAY_CODES)]
+    judged = [x for x in kept if x["uncertain"] != "True"]
+    within = [x for x in judged if not (set(x["flag_reasons"].split(";")) & MURRAY_CODES)]
     # Expected values from the definitions in README.md ("median Murray exponent", "fraction within
-    # tolerance" = share without a Murray-law code), computed with the statistics module.
+    # tolerance" = share of the judged junctions without a Murray-law code), computed with the
+    # statistics module.
     assert summary["bifurcations"] == len(rows) - 2
     assert summary["bifurcations_flagged"] == len(flagged) - 2
     assert summary["bifurcations_excluded_by_review"] == 2
     assert summary["murray_exponent_median"] == pytest.approx(statistics.median(expo), rel=1e-12)  # float round-off
     assert summary["murray_ratio_median"] == pytest.approx(statistics.median(ratio), rel=1e-12)
-    assert summary["fraction_within_tolerance"] == pytest.approx(len(within) / len(kept), rel=1e-12)
+    assert summary["fraction_within_tolerance"] == pytest.approx(len(within) / len(judged), rel=1e-12)
     assert summary["review_counts"] == {"confirmed": 1, "artefact": 2, "unsure": 1,
                                         "flagged_unreviewed": len(flagged) - 3}
     # Keys outside the bifurcation part are untouched.

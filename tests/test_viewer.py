@@ -127,6 +127,9 @@ def test_stepping_centres_camera_on_bifurcation(display, folder):
     try:
         base = _camera(v).zoom
         order = [int(r["node"]) for r in panel.table_rows()]
+        # The queue opens most severe first (pipeline/bifurcations.py: severity).
+        severity = [float(flagged[n]["severity"]) for n in order]
+        assert severity == sorted(severity, reverse=True)
         panel.next()
         first = flagged[order[0]]
         # Expected centre: the junction's µm position from bifurcations.csv.
