@@ -41,12 +41,16 @@ magnitude for every size cannot give physiological speeds in both: with the
 in-vivo law, a 3 µm capillary at 4 Pa moves blood at well under 0.1 mm/s,
 and an arteriole at 15 Pa far above its measured 1-5 Pa (Reneman & Hoeks
 2008, Med Biol Eng Comput 46:499). ``gamma_ref`` (``target_shear_rate_s``,
-1000 1/s at ``p_0``) is within the wall shear rates measured in
-microvessels, about 1000-3000 1/s in arterioles and 200-800 1/s in venules
+500 1/s at ``p_0``) is at the low end of the wall shear rates measured in
+microvessels, about 200-800 1/s in venules and 1000-3000 1/s in arterioles
 (from memory of intravital studies, e.g. Tangelder et al. 1986, Circ Res
-59:505). The target rises with pressure as the shear-stress set point of
-Pries, Secomb & Gaehtgens (1998, Am J Physiol 275:H349; formula from memory,
-not checked against the paper)::
+59:505): with the in-vivo law the thinnest capillaries (3-4 µm, 20-30
+mPa·s) reach 10-15 Pa at 500 1/s and more than 30 Pa above about 1000 1/s
+(measured on the project's thin-capillary phantoms: median capillary speed
+0.16 mm/s and 99th-percentile wall shear stress 24-25 Pa at 500 1/s, 0.31
+mm/s and 48 Pa at 1000 1/s). The target can rise with pressure as the
+shear-stress set point of Pries, Secomb & Gaehtgens (1998, Am J Physiol
+275:H349; formula from memory, not checked against the paper)::
 
     tau_e(P) = 100 - 86 exp(-5000 (log10(log10 P))^5.4)   dyn/cm², P in mmHg
 

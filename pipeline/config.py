@@ -124,7 +124,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "inlet_flow_nl_min": Param(None, float, low=0.0, low_open=True, allow_none=True),
         "boundary": Param("estimate", str, choices=("estimate", "pressure")),
         "target_pressure_pa": Param(3999.66, float, low=0.0, low_open=True),
-        "target_shear_rate_s": Param(1000.0, float, low=0.0, low_open=True),
+        "target_shear_rate_s": Param(500.0, float, low=0.0, low_open=True),
         "target_shear_rate_by_pressure": Param(False, bool),
         "pressure_weight": Param(0.1, float, low=0.0, low_open=True),
         "estimate_max_iter": Param(100, int, low=1, high=10000),
