@@ -254,6 +254,11 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
             for key in ("total_inflow_nl_min", "network_resistance_pa_s_um3", "perfused_length_fraction",
                         "max_conservation_residual", "n_inlets", "n_outlets"):
                 summary[key] = fr.summary.get(key)
+            # speed and shear by diameter class, and what is checked against
+            # physiological ranges
+            for key in fr.summary:
+                if key.startswith(("velocity_", "wss_", "n_perfused_", "perfused_length_um_")):
+                    summary[key] = fr.summary[key]
             flow_info = {"solved": True, **fr.summary}
             warnings.extend(fr.warnings)
             tick("flow")

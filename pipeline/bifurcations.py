@@ -203,6 +203,7 @@ import pandas as pd
 
 from ._checks import segment_end_rows
 from .errors import ConfigError, InputError
+from .measures import radius_uncertainty  # noqa: F401  (public here too)
 
 __all__ = [
     "COLUMNS",
@@ -417,52 +418,6 @@ def murray_optimal_angles(r0, r1, r2):
     if t1.ndim == 0:
         return float(t1), float(t2)
     return t1, t2
-
-
-def radius_uncertainty(radius_um, sd_um, n_points, *, step_um=None, voxel_um=None, floor_voxels=0.0):
-    """Standard uncertainty of segment radii (module notes, "Radius uncertainty").
-
-    Parameters
-    ----------
-    radius_um, sd_um, n_points : array_like, shape (S,)
-        Segment radius, spread (sd) of the wall-fit radii over its middle
-        part and their number (``radius_um``, ``radius_sd_um``,
-        ``radius_n_points``). A NaN sd counts as 0, a missing or
-        non-positive count as one point.
-    step_um : array_like, shape (S,), optional, keyword-only
-        Arc length between neighbouring centreline points, µm; NaN or absent
-        falls back to ``voxel_um``.
-    voxel_um : float, optional, keyword-only
-        Coarsest voxel spacing of the mask, µm: sets the wall-fit slab of thin
-        vessels, the fallback step and the floor.
-    floor_voxels : float, keyword-only
-        Floor of the uncertainty, in voxels (no floor without ``voxel_um``).
-
-    Returns
-    -------
-    ndarray, shape (S,)
-        ``sqrt(sd^2 / n_eff + (floor_voxels * voxel_um)^2)``, µm, with
-        ``n_eff = clip(n * step / (1.5 h), 1, n)``, ``h = max(0.75 r,
-        0.6 voxel_um)`` (the wall fit's slab half-width; ``0.75 r`` without
-        ``voxel_um``), and ``n_eff = n`` where no step is known.
-
-    Examples
-    --------
-    >>> float(radius_uncertainty([3.0], [0.2], [16])[0])  # sd / sqrt(n): standard error of a mean
-    0.05
-    """
-    r = np.asarray(radius_um, dtype=float)
-    sd = np.nan_to_num(np.asarray(sd_um, dtype=float), nan=0.0)
-    n = np.asarray(n_points, dtype=float)
-    n = np.where(np.isfinite(n) & (n >= 1), n, 1.0)
-    v = math.nan if voxel_um is None else float(voxel_um)
-    step = np.full(r.shape, np.nan) if step_um is None else np.asarray(step_um, dtype=float)
-    step = np.where(np.isfinite(step) & (step > 0), step, v)
-    half = np.maximum(0.75 * r, 0.6 * v) if math.isfinite(v) else 0.75 * r
-    with np.errstate(invalid="ignore", divide="ignore"):
-        n_eff = np.where(np.isfinite(step), np.clip(n * step / (1.5 * half), 1.0, n), n)
-    floor = float(floor_voxels) * v if math.isfinite(v) else 0.0
-    return np.sqrt(sd**2 / n_eff + floor**2)
 
 
 def _ratio_u(r0, u0, rd, ud, d_first, ratio):

@@ -84,6 +84,7 @@ from __future__ import annotations
 
 import math
 import warnings as _warnings
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -140,6 +141,13 @@ class Estimate:
     reversed_pieces : int
         Pieces whose reversed start gave the smaller objective.
     notes : list of str
+    resolve : callable or None
+        ``resolve(conductance, radius_m, viscosity_pa_s, target_scale)``:
+        the pressures (N,) of the same problem with perturbed segment
+        coefficients and targets scaled per segment, the flow directions of
+        the estimate kept, solved by refinement preconditioned with the
+        estimate's factorisation (a fresh factorisation when that does not
+        converge). Used for the uncertainty ensemble.
     """
 
     pressure_pa: np.ndarray
@@ -149,6 +157,7 @@ class Estimate:
     objective: float
     reversed_pieces: int
     notes: list[str] = field(default_factory=list)
+    resolve: Callable[..., np.ndarray] | None = None
 
 
 def _initial_signs(u, v, n, radius, open_node, piece, n_piece, length):
@@ -276,58 +285,64 @@ def estimate_pressures(
     w_node = 0.5 * (np.bincount(a, weights=w_seg, minlength=m) + np.bincount(b, weights=w_seg, minlength=m))
     kp = float(pressure_weight)
 
-    # H = kp diag(w_node) + B^T diag(w_seg c^2) B
-    hc = w_seg * c * c
-    diag_h = kp * w_node + np.bincount(a, weights=hc, minlength=m) + np.bincount(b, weights=hc, minlength=m)
-    h_rows = np.r_[np.arange(m), a, b]
-    h_cols = np.r_[np.arange(m), b, a]
-    h_vals = np.r_[diag_h, -hc, -hc]
-
-    # constraints: Kirchhoff rows (interior and known-inflow nodes), scaled by
-    # their diagonal so that entries are O(1); identity rows for known pressures
     kp_node = known_p[rows]
     kq_node = known_q[rows]
     kirch = ~open_node[rows] & ~kp_node
-    gdiag = np.bincount(a, weights=conductance, minlength=m) + np.bincount(b, weights=conductance, minlength=m)
     k_rows = np.flatnonzero(kirch)
     pos = np.full(m, -1, dtype=np.int64)
     pos[k_rows] = np.arange(k_rows.size)
     d_rows = np.flatnonzero(kp_node)
     n_con = k_rows.size + d_rows.size
-    scale = np.zeros(m)
-    scale[k_rows] = 1.0 / gdiag[k_rows]
-    # L x at row i: sum over segments (x_i - x_other) g
-    cr, cc, cv = [], [], []
-    for end, other in ((a, b), (b, a)):
-        sel = pos[end] >= 0
-        e, o, g = end[sel], other[sel], conductance[sel]
-        cr += [pos[e], pos[e]]
-        cc += [e, o]
-        cv += [g * scale[e], -g * scale[e]]
-    cr.append(k_rows.size + np.arange(d_rows.size))
-    cc.append(d_rows)
-    cv.append(np.ones(d_rows.size))
-    cr, cc, cv = np.concatenate(cr), np.concatenate(cc), np.concatenate(cv)
-    rhs_con = np.zeros(n_con)
-    # known inflow q into node k: sum_j g (p_k - p_other) = -q  (net outflow = -inflow)
     qk = np.flatnonzero(kq_node & kirch)
-    rhs_con[pos[qk]] = -known_inflow_m3_s[rows[qk]] / p0 * scale[qk]
-    rhs_con[k_rows.size:] = (known_pressure_pa[rows[d_rows]] - p0) / p0
-
     size = m + n_con
+    h_rows = np.r_[np.arange(m), a, b]
+    h_cols = np.r_[np.arange(m), b, a]
+
+    def h_diag(cc_):
+        hc_ = w_seg * cc_ * cc_
+        return kp * w_node + np.bincount(a, weights=hc_, minlength=m) + np.bincount(b, weights=hc_, minlength=m)
+
     # Symmetric scaling: unit diagonal in the pressure block and unit row
     # norms (in the scaled variables) in the constraint block, so that the
-    # Schur complement C H^-1 C^T is of order one.
-    dx = 1.0 / np.sqrt(diag_h)
-    cv = cv * dx[cc]
-    rnorm = np.sqrt(np.bincount(cr, weights=cv * cv, minlength=n_con))
-    cv = cv / rnorm[cr]
-    rhs_con = rhs_con / rnorm
-    h_vals = h_vals * dx[h_rows] * dx[h_cols]
-    kkt = sparse.coo_matrix(
-        (np.r_[h_vals, cv, cv], (np.r_[h_rows, m + cr, cc], np.r_[h_cols, cc, m + cr])),
-        shape=(size, size),
-    ).tocsc()
+    # Schur complement C H^-1 C^T is of order one. Repeated solves with
+    # perturbed coefficients (the ensemble) keep this scaling.
+    dx = 1.0 / np.sqrt(h_diag(c))
+
+    def assemble(cond, cc_):
+        """Scaled KKT matrix and constraint right-hand side."""
+        # H = kp diag(w_node) + B^T diag(w_seg c^2) B
+        hc = w_seg * cc_ * cc_
+        h_vals = np.r_[h_diag(cc_), -hc, -hc] * dx[h_rows] * dx[h_cols]
+        # Kirchhoff rows (interior and known-inflow nodes), scaled by their
+        # diagonal; identity rows for known pressures
+        gdiag = np.bincount(a, weights=cond, minlength=m) + np.bincount(b, weights=cond, minlength=m)
+        scale = np.zeros(m)
+        scale[k_rows] = 1.0 / gdiag[k_rows]
+        cr, cc, cv = [], [], []
+        for end, other in ((a, b), (b, a)):
+            sel = pos[end] >= 0
+            e, o, g = end[sel], other[sel], cond[sel]
+            cr += [pos[e], pos[e]]
+            cc += [e, o]
+            cv += [g * scale[e], -g * scale[e]]
+        cr.append(k_rows.size + np.arange(d_rows.size))
+        cc.append(d_rows)
+        cv.append(np.ones(d_rows.size))
+        cr, cc, cv = np.concatenate(cr), np.concatenate(cc), np.concatenate(cv)
+        rhs = np.zeros(n_con)
+        # known inflow q into node k: sum_j g (p_k - p_other) = -q
+        rhs[pos[qk]] = -known_inflow_m3_s[rows[qk]] / p0 * scale[qk]
+        rhs[k_rows.size:] = (known_pressure_pa[rows[d_rows]] - p0) / p0
+        cv = cv * dx[cc]
+        rnorm = np.sqrt(np.bincount(cr, weights=cv * cv, minlength=n_con))
+        cv = cv / rnorm[cr]
+        mat = sparse.coo_matrix(
+            (np.r_[h_vals, cv, cv], (np.r_[h_rows, m + cr, cc], np.r_[h_cols, cc, m + cr])),
+            shape=(size, size),
+        ).tocsc()
+        return mat, rhs / rnorm
+
+    kkt, rhs_con = assemble(conductance, c)
     # A small negative diagonal in the constraint block makes the matrix
     # quasi-definite, which has an LDL^T factorisation for every symmetric
     # ordering (Vanderbei 1995, SIAM J Optim 5:100): the factorisation can
@@ -404,36 +419,62 @@ def estimate_pressures(
         # Pieces are compared on the pressure-dependent objective whether or
         # not the solve used it: it is what tells their orientation apart.
         t_choice = signs * (set_point_wss_pa(p0 * (1.0 + 0.5 * (x[a] + x[b]))) / tau_p0)
-        return x, objective_parts(x, t_choice), it, flips
+        return x, objective_parts(x, t_choice), it, flips, signs * mag
 
-    if initial_signs is not None:
-        x, obj, its, flips = run(np.asarray(initial_signs, dtype=float))
+    def finish(x, its, flips, obj, reversed_pieces, t0):
         pressure[rows] = p0 * (1.0 + x)
         notes = [] if flips == 0 else [
             f"flow: the boundary estimate's flow directions did not settle in {max_iter} iterations "
             f"({flips} segment(s) still changing)"
         ]
-        return Estimate(pressure, int(its), flips == 0, int(flips), float(np.sum(obj)), 0, notes)
+        sol0 = np.r_[x / dx, np.zeros(n_con)]
+
+        def resolve(cond_k, radius_k, viscosity_k, target_scale_k):
+            """Pressures with perturbed coefficients, directions kept (module notes)."""
+            c_k = radius_k / (2.0 * length_m * viscosity_k) * p0 / g_ref
+            mat, rhs_c = assemble(cond_k, c_k)
+            t = t0 * target_scale_k
+            g = (np.bincount(a, weights=w_seg * c_k * t, minlength=m)
+                 - np.bincount(b, weights=w_seg * c_k * t, minlength=m)) * dx
+            rhs = np.r_[g, rhs_c]
+            sol = sol0.copy()
+            norm = float(np.abs(rhs).max()) or 1.0
+            # refinement preconditioned by the base factorisation: converges
+            # while the perturbation is small against the matrix itself
+            for _ in range(30):
+                res = rhs - mat @ sol
+                if float(np.abs(res).max()) <= 1e-10 * norm:
+                    break
+                sol = sol + lu.solve(res)
+            else:
+                reg_k = (mat - sparse.diags(np.r_[np.zeros(m), np.full(n_con, eps)])).tocsc()
+                sol = spla.splu(reg_k, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                                options={"SymmetricMode": True}).solve(rhs)
+                for _ in range(5):
+                    sol = sol + spla.spsolve(reg_k, rhs - mat @ sol)
+            out = np.full(n, np.nan)
+            out[rows] = p0 * (1.0 + sol[:m] * dx)
+            return out
+
+        return Estimate(pressure, int(its), flips == 0, int(flips), float(np.sum(obj)), reversed_pieces, notes,
+                        resolve=resolve)
+
+    if initial_signs is not None:
+        x, obj, its, flips, t0 = run(np.asarray(initial_signs, dtype=float))
+        return finish(x, its, flips, obj, 0, t0)
     s_init = _initial_signs(a, b, m, radius_ref, open_node[rows], piece, n_piece, length_m)
-    x1, obj1, it1, fl1 = run(s_init)
+    x1, obj1, it1, fl1, t1 = run(s_init)
     free = ~piece_known
     reversed_pieces = 0
-    x, obj, its, flips = x1, obj1, it1, fl1
+    x, obj, its, flips, t0 = x1, obj1, it1, fl1, t1
     if free.any():
-        x2, obj2, it2, fl2 = run(np.where(free[seg_piece], -s_init, s_init))
+        x2, obj2, it2, fl2, t2 = run(np.where(free[seg_piece], -s_init, s_init))
         take = free & (obj2 < obj1)
         if take.any():
             x = np.where(take[piece], x2, x1)
             obj = np.where(take, obj2, obj1)
+            t0 = np.where(take[seg_piece], t2, t1)
             reversed_pieces = int(take.sum())
         its = max(it1, it2)
         flips = max(fl1, fl2)
-    pressure[rows] = p0 * (1.0 + x)
-    notes = []
-    converged = flips == 0
-    if not converged:
-        notes.append(
-            f"flow: the boundary estimate's flow directions did not settle in {max_iter} iterations "
-            f"({flips} segment(s) still changing)"
-        )
-    return Estimate(pressure, int(its), converged, int(flips), float(np.sum(obj)), reversed_pieces, notes)
+    return finish(x, its, flips, obj, reversed_pieces, t0)

@@ -130,6 +130,8 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "estimate_max_iter": Param(100, int, low=1, high=10000),
         "perfused_min_velocity_mm_s": Param(0.01, float, low=0.0),
         "haematocrit_model": Param("phase_separation", str, choices=("phase_separation", "uniform")),
+        "capillary_max_diameter_um": Param(8.0, float, low=0.0, low_open=True),
+        "small_vessel_max_diameter_um": Param(30.0, float, low=0.0, low_open=True),
         "rheology_damping": Param(0.5, float, low=0.0, low_open=True, high=1.0),
         "rheology_rtol": Param(1e-6, float, low=0.0, low_open=True, high=0.1),
         "rheology_max_iter": Param(200, int, low=1, high=10000),
