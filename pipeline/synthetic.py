@@ -1546,17 +1546,18 @@ def cortex_network(
     the total inflow either way) goes with the branches it feeds or drains;
     the pruning and solving repeat until none is left. Such a branch joins
     parts of the mesh at different pressures, which a generated tree can do
-    and a perfused one does not keep. The problem is linear in the two
-    boundary pressures, so the directions hold for any pair with the
-    arteriolar one higher (for the viscosity law used).
+    and a perfused one does not keep. Flows scale with the pressure
+    difference (viscosities depend on diameters and haematocrits, and
+    haematocrits on flow ratios only), so the directions hold for any pair of
+    pressures with the arteriolar one higher, for the rheology used.
 
     Defaults (from memory, mouse cortex): penetrating arteriole diameter
     about 14 µm, capillary diameter 4-6 µm, capillary segments 40-80 µm
     between branch points, a vessel volume fraction of 2-3 %; the default
-    box is a typical two-photon stack. With them the truth solve gives a
-    cortical blood flow of 0.9-1.4 ml/min per g (57-91 nl/min into the
-    default box, seeds 0-4; about 1 ml/min per g in mice, from memory) and
-    median capillary mean speeds of 0.18-0.27 mm/s.
+    box is a typical two-photon stack. With them the truth solve (project
+    flow defaults) gives a cortical blood flow of 0.9-1.4 ml/min per g
+    (56-90 nl/min into the default box, seeds 0-4; about 1 ml/min per g in
+    mice, from memory) and median capillary mean speeds of 0.26-0.39 mm/s.
 
     Parameters
     ----------
@@ -2142,9 +2143,11 @@ def network_flow_truth(
         Boundary pressures, Pa; the arteriolar one must be the higher.
     config : mapping, optional
         Full config or its ``flow`` section for :func:`pipeline.flow.solve_flow`
-        (viscosity law, haematocrit, solver). ``viscosity_model`` defaults to
-        'pries1994' here (the in-vivo law, for a physiological truth); the
-        pressure and ``blind_ends`` keys are set by this function.
+        (viscosity law, haematocrit and its model, solver); missing keys take
+        the project's defaults (the in-vivo viscosity law, with phase
+        separation). ``boundary`` ('pressure'), the two pressures,
+        ``blind_ends`` ('sealed') and ``inlet_flow_nl_min`` (None) are set
+        here.
 
     Returns
     -------
@@ -2183,9 +2186,9 @@ def network_flow_truth(
     if not ends["arteriole"] or not ends["venule"]:
         raise _bad("net", "border ends of both arterioles and venules", {k: len(v) for k, v in ends.items()})
     section = dict({} if config is None else config.get("flow", config))
-    section.setdefault("viscosity_model", "pries1994")
     section.update(
-        inlet_pressure_pa=p_art, outlet_pressure_pa=p_ven, blind_ends="sealed", inlet_flow_nl_min=None
+        boundary="pressure", inlet_pressure_pa=p_art, outlet_pressure_pa=p_ven, blind_ends="sealed",
+        inlet_flow_nl_min=None,
     )
     return solve_flow(
         segments, nodes, inlets=sorted(ends["arteriole"]), outlets=sorted(ends["venule"]), config=section
@@ -2256,12 +2259,15 @@ def _cortex_kind(**params: Any) -> VesselNetwork:
 
     Takes the builder's keywords and ``arteriole_pressure_pa``,
     ``venule_pressure_pa`` and ``viscosity_model`` for
-    :func:`network_flow_truth`; each segment gains ``flow_truth_nl_min``
-    (positive from ``node_from`` to ``node_to``), which the rasteriser's
-    clipping copies onto the pieces inside the volume (pieces keep their
-    source's orientation), and ``params['flow_truth']`` records the boundary
-    conditions and the total inflow.
+    :func:`network_flow_truth` (other flow options at the project's
+    defaults); each segment gains ``flow_truth_nl_min`` (positive from
+    ``node_from`` to ``node_to``), which the rasteriser's clipping copies
+    onto the pieces inside the volume (pieces keep their source's
+    orientation), and ``params['flow_truth']`` records the flow options
+    used (``config``) and the total inflow.
     """
+    from .config import validate_config
+
     flow_keys = ("arteriole_pressure_pa", "venule_pressure_pa", "viscosity_model")
     flow = {k: params.pop(k) for k in flow_keys if k in params}
     net = cortex_network(**params)
@@ -2274,16 +2280,21 @@ def _cortex_kind(**params: Any) -> VesselNetwork:
     q = dict(zip(res.segments["segment_id"].tolist(), res.segments["flow_nl_min"].tolist()))
     for s in net.segments:
         s["flow_truth_nl_min"] = q[s["id"]]
+    used = validate_config({"flow": {"viscosity_model": model}})["flow"]
+    used.update(boundary="pressure", inlet_pressure_pa=float(p_art), outlet_pressure_pa=float(p_ven),
+                blind_ends="sealed", inlet_flow_nl_min=None)
     net.params["flow_truth"] = {
         "arteriole_pressure_pa": float(p_art),
         "venule_pressure_pa": float(p_ven),
         "viscosity_model": model,
+        "config": used,
         "total_inflow_nl_min": res.summary["total_inflow_nl_min"],
         "note": "flows of the whole network before clipping; pieces keep their source's orientation",
     }
     return net
 
 
+# synthesize() routes keywords by the builder's signature: the builder's own plus the flow ones.
 _cortex_kind.__signature__ = inspect.Signature(  # type: ignore[attr-defined]
     list(inspect.signature(cortex_network).parameters.values())
     + [

@@ -960,8 +960,9 @@ def test_cortex_truth_flow_is_physiological(cortex, seed):
 
 
 def test_cortex_flow_directions_do_not_depend_on_the_pressures(cortex):
-    # The problem is linear in the two boundary pressures (Hagen-Poiseuille with a
-    # pressure-independent viscosity): flows scale with their difference.
+    # Flows scale with the pressure difference (Hagen-Poiseuille; the in-vivo viscosity
+    # depends on diameter and haematocrit, and phase separation on flow fractions only,
+    # Pries et al. 1994, Circ Res 75:904; Pries et al. 1990, Circ Res 67:826).
     net, res = cortex[0]
     other = syn.network_flow_truth(net, arteriole_pressure_pa=7999.0, venule_pressure_pa=1999.0)
     scale = (7999.0 - 1999.0) / (55.0 * syn.MMHG_PA - 18.0 * syn.MMHG_PA)
