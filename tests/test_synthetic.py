@@ -347,9 +347,16 @@ def test_write_volume_round_trip(tmp_path, tree_raster):
     assert back["summary"] == truth["summary"] and back["shape"] == list(mask.shape)
 
 
+# Small boxes keep the box-filling kinds quick.
+SMALL_KIND_PARAMS = {
+    "bed": {"shape_um": (48.0, 48.0, 48.0)},
+    "cortex": {"shape_um": (160.0, 160.0, 160.0), "n_arterioles": 1, "n_venules": 1},
+}
+
+
 @pytest.mark.parametrize("kind", sorted(syn.SYNTH_KINDS))
 def test_synthesize_every_kind(kind):
-    params = {"shape_um": (48.0, 48.0, 48.0)} if kind == "bed" else {}
+    params = SMALL_KIND_PARAMS.get(kind, {})
     mask, truth = syn.synthesize(kind, **params)
     assert mask.dtype == bool and mask.ndim == 3 and mask.any()
     assert truth["synth_kind"] == kind and truth["kind"] == truth["synth_kind"]
@@ -380,6 +387,14 @@ def test_synthesize_every_kind(kind):
         (lambda: syn.rasterize(syn.torus(major_radius_um=10, minor_radius_um=2), roughness=0.5), "roughness"),
         (lambda: syn.rasterize(syn.torus(major_radius_um=10, minor_radius_um=2), shape=(10, 10)), "shape"),
         (lambda: syn.rasterize(syn.torus(major_radius_um=10, minor_radius_um=2), holes=1), "holes"),
+        (lambda: syn.cortex_network(n_arterioles=0), "n_arterioles"),
+        (lambda: syn.cortex_network(capillary_radius_um=(3.0, 2.0)), "capillary_radius_um"),
+        (lambda: syn.cortex_network(venule_radius_factor=0.8), "venule_radius_factor"),
+        (lambda: syn.cortex_network(shape_um=(99, 99, 99), capillary_spacing_um=5.0), "capillary_spacing_um"),
+        (lambda: syn.crop_network(syn.torus(major_radius_um=10, minor_radius_um=2), [[0, 0, 0], [5, 0, 5]]),
+         "box_um"),
+        (lambda: syn.network_flow_truth(syn.torus(major_radius_um=10, minor_radius_um=2)),
+         "segment 0 vessel_class"),
         (lambda: syn.synthesize("cube"), "kind"),
         (lambda: syn.synthesize("tube", colour="red"), "colour"),
         (lambda: syn.write_volume("x.tif", np.zeros((4, 4), bool), spacing=(1, 1, 1)), "mask"),
@@ -716,12 +731,15 @@ def test_gaps_need_thin_vessels(tree):
     assert truth["gaps"] == []
 
 
-@pytest.mark.parametrize("kind", ["tree", "bed"])
+@pytest.mark.parametrize("kind", ["tree", "bed", "cortex"])
 def test_hostile_volume_accounts_for_every_change(kind):
     # Euler number of the mask = that of the vessels as imaged + the recorded
     # changes (holes and specks +1, gaps +1, handles -1; blobs and pits 0); the only
     # cavities are the recorded holes; the truth's network is the clean one.
-    if kind == "bed":
+    if kind == "cortex":
+        # Trunks of radius 7-10.5 um take holes and handles, capillaries of 2-3 um the gaps.
+        net = syn.cortex_network(shape_um=(200.0, 200.0, 200.0), n_arterioles=2, n_venules=2, seed=3)
+    elif kind == "bed":
         # Radii up to 4.5 um: enclosed holes need vessels of >= 3 voxels radius,
         # gaps thin ones; this bed has room for the full count of both.
         net = syn.capillary_bed(shape_um=(64.0, 64.0, 64.0), radius_range_um=(2.0, 4.5), seed=3)
@@ -789,3 +807,273 @@ def test_bad_artefact_options_raise_input_error(kwargs, name):
 def test_bad_strength_raises_input_error():
     with pytest.raises(InputError, match=r"^strength: expected"):
         syn.hostile_artefacts(1.5)
+
+
+# ------------------------------------------------------------------ cortex-like network
+
+CORTEX_SEEDS = (0, 1, 2)
+
+
+@pytest.fixture(scope="module")
+def cortex():
+    """Default cortex networks (400 um box) and their truth solves, by seed."""
+    nets = {seed: syn.cortex_network(seed=seed) for seed in CORTEX_SEEDS}
+    return {seed: (net, syn.network_flow_truth(net)) for seed, net in nets.items()}
+
+
+def _end_radius(seg: dict, node: int) -> float:
+    return float(seg["radii_um"][0] if seg["node_from"] == node else seg["radii_um"][-1])
+
+
+def _by_node(net):
+    out: dict[int, list[dict]] = {}
+    for s in net.segments:
+        out.setdefault(s["node_from"], []).append(s)
+        out.setdefault(s["node_to"], []).append(s)
+    return out
+
+
+@pytest.mark.parametrize("seed", CORTEX_SEEDS)
+@pytest.mark.parametrize("cls", ["arteriole", "venule"])
+def test_cortex_forks_obey_the_cube_law(cortex, seed, cls):
+    net, _ = cortex[seed]
+    forks = {
+        node: sorted((_end_radius(s, node) for s in segs), reverse=True)
+        for node, segs in _by_node(net).items()
+        if len(segs) == 3 and all(s["vessel_class"] == cls for s in segs)
+    }
+    assert len(forks) >= 5  # every tree forks several times; none would make the check empty
+    for r0, r1, r2 in forks.values():
+        # Murray CD 1926, PNAS 12:207: r0^3 = r1^3 + r2^3 (exact by construction; float rounding only).
+        assert r1**3 + r2**3 == pytest.approx(r0**3, rel=1e-9)
+    # Realistic asymmetry: both near-symmetric and clearly asymmetric forks occur
+    # (rodent cortical trees, from memory: daughter radius ratios of about 0.5-1).
+    ratios = [r2 / r1 for _, r1, r2 in forks.values()]
+    assert min(ratios) < 0.75 and max(ratios) > 0.85
+
+
+@pytest.mark.parametrize("seed", CORTEX_SEEDS)
+def test_cortex_sizes_are_mouse_cortex_like(cortex, seed):
+    net, _ = cortex[seed]
+    by_class = {c: [s for s in net.segments if s["vessel_class"] == c] for c in syn.VESSEL_CLASSES}
+    assert all(by_class.values())
+    roots = {n["id"] for n in net.nodes if n["kind"] == "border"}
+    root_r = {c: [_end_radius(s, s["node_from"]) for s in by_class[c] if s["node_from"] in roots]
+              for c in ("arteriole", "venule")}
+    assert len(root_r["arteriole"]) == 4 and len(root_r["venule"]) == 5
+    # Penetrating venules are about 1.2-2 times as wide as penetrating arterioles (rodent
+    # cortex, from memory).
+    assert 1.2 <= min(root_r["venule"]) / max(root_r["arteriole"]) and max(root_r["venule"]) / min(
+        root_r["arteriole"]) <= 2.0
+    # Roots on the pial face z = 0, trees running into the depth.
+    assert all(n["pos_um"][0] == 0.0 for n in net.nodes if n["kind"] == "border")
+    # Mouse cortical capillaries (from memory): radius 2-3 um, 40-80 um between branch points.
+    cap_r = np.array([s["radius_um"] for s in by_class["capillary"]])
+    cap_len = np.array([s["length_um"] for s in by_class["capillary"]])
+    assert cap_r.min() >= 2.0 and cap_r.max() <= 3.0
+    assert 40.0 <= np.median(cap_len) <= 80.0
+    # Most capillary junctions join three vessels, as in cortical beds (from memory);
+    # tree ends joined to the mesh add one more.
+    deg = net.degrees()
+    inner = [d for n, d in deg.items() if all(s["vessel_class"] == "capillary" for s in _by_node(net)[n])]
+    assert np.mean(np.asarray(inner) == 3) > 0.6
+    # Vessel volume fraction of mouse cortex about 2-3 % (from memory); sum of pi r^2 L over the box.
+    frac = sum(math.pi * s["radius_um"] ** 2 * s["length_um"] for s in net.segments) / np.prod(net.box_um)
+    assert 0.01 <= frac <= 0.04
+
+
+def test_cortex_is_a_function_of_its_seed():
+    small = dict(shape_um=(160.0, 160.0, 160.0), n_arterioles=1, n_venules=1)
+    a, b = syn.cortex_network(seed=4, **small), syn.cortex_network(seed=4, **small)
+    assert json.dumps(a.to_truth(), sort_keys=True) == json.dumps(b.to_truth(), sort_keys=True)
+    c = syn.cortex_network(seed=5, **small)
+    assert json.dumps(c.to_truth(), sort_keys=True) != json.dumps(a.to_truth(), sort_keys=True)
+
+
+@pytest.mark.parametrize("seed", CORTEX_SEEDS)
+def test_cortex_truth_flow_conserves_mass(cortex, seed):
+    net, res = cortex[seed]
+    seg, nodes = res.segments, res.nodes.set_index("node_id")
+    st = syn.network_tables(net)[0].set_index("segment_id").loc[seg["segment_id"]]
+    ids = {n: i for i, n in enumerate(nodes.index)}
+    u = np.array([ids[n] for n in st["node_from"]])
+    v = np.array([ids[n] for n in st["node_to"]])
+    q = seg["flow_nl_min"].to_numpy()
+    # Kirchhoff's current law (Kirchhoff 1845, Ann Phys Chem 64:497): net flow is zero at every
+    # node without a pressure condition; numpy bincount, independent of the solver.
+    net_in = np.bincount(v, weights=q, minlength=len(ids)) - np.bincount(u, weights=q, minlength=len(ids))
+    total = res.summary["total_inflow_nl_min"]
+    role = nodes["role"].to_numpy()
+    assert total > 0
+    # The direct solve is exact to rounding: 1e-9 of the total is many orders above it.
+    assert np.abs(net_in[role == "internal"]).max() <= 1e-9 * total
+    assert -net_in[role == "inlet"].sum() == pytest.approx(total, rel=1e-9)
+    assert net_in[role == "outlet"].sum() == pytest.approx(total, rel=1e-9)
+    # Hagen-Poiseuille per segment: Q = pi r_h^4 dP / (8 mu L), from the node pressures.
+    p = nodes["pressure_pa"]
+    dp = p.loc[st["node_from"]].to_numpy() - p.loc[st["node_to"]].to_numpy()
+    mu = seg["viscosity_mpa_s"].to_numpy() * 1e-3
+    r_h, length = st["radius_hydraulic_um"].to_numpy() * 1e-6, st["length_um"].to_numpy() * 1e-6
+    q_hp = math.pi * r_h**4 * dp / (8 * mu * length)
+    assert q == pytest.approx(q_hp * 1e12 * 60, rel=1e-9, abs=1e-12 * total)
+
+
+@pytest.mark.parametrize("seed", CORTEX_SEEDS)
+def test_cortex_flow_runs_arterioles_capillaries_venules(cortex, seed):
+    import networkx as nx
+
+    net, res = cortex[seed]
+    q = dict(zip(res.segments["segment_id"], res.segments["flow_nl_min"]))
+    pressure = dict(zip(res.nodes["node_id"], res.nodes["pressure_pa"]))
+    roots = [n["id"] for n in net.nodes if n["kind"] == "border"]
+    for cls, sign in (("arteriole", 1.0), ("venule", -1.0)):
+        g = nx.Graph([(s["node_from"], s["node_to"]) for s in net.segments if s["vessel_class"] == cls])
+        hops = nx.multi_source_dijkstra_path_length(g, [r for r in roots if r in g])
+        for s in (s for s in net.segments if s["vessel_class"] == cls):
+            # Hop distance from the roots (networkx) orients each vessel independently of the
+            # generator: arterioles carry flow away from their root, venules towards it.
+            away = hops[s["node_to"]] - hops[s["node_from"]]
+            assert away != 0 and sign * q[s["id"]] * away > 0
+    p_art, p_ven = 55.0 * syn.MMHG_PA, 18.0 * syn.MMHG_PA
+    for s in (s for s in net.segments if s["vessel_class"] == "capillary"):
+        pa, pb = pressure[s["node_from"]], pressure[s["node_to"]]
+        # Poiseuille: flow from the higher to the lower pressure; discrete maximum principle:
+        # pressures inside the network lie between the two boundary pressures.
+        assert np.sign(q[s["id"]]) == np.sign(pa - pb)
+        assert p_ven < min(pa, pb) and max(pa, pb) < p_art
+
+
+@pytest.mark.parametrize("seed", CORTEX_SEEDS)
+def test_cortex_truth_flow_is_physiological(cortex, seed):
+    net, res = cortex[seed]
+    cls = dict(zip(*(lambda t: (t["segment_id"], t["vessel_class"]))(syn.network_tables(net)[0])))
+    v = res.segments["velocity_mm_s"].to_numpy()
+    cap = np.array([cls[i] == "capillary" for i in res.segments["segment_id"]])
+    assert res.summary["viscosity_model"] == "pries1994"
+    # Red cell speeds in mouse cortical capillaries are about 0.5-2 mm/s (from memory); the
+    # mean blood speed is lower than the cells' (Fahraeus effect), hence 0.1-5 mm/s.
+    assert 0.1 <= np.median(v[cap]) <= 5.0 and 0.1 <= np.mean(v[cap]) <= 5.0
+    # Cortical blood flow about 1 ml/min per g in mice (from memory; tissue ~1 g/ml):
+    # 0.5-2.5 ml/min/g allows for anaesthesia and the model.
+    ml_min_per_cm3 = res.summary["total_inflow_nl_min"] * 1e-6 / (np.prod(net.box_um) * 1e-12)
+    assert 0.5 <= ml_min_per_cm3 <= 2.5
+
+
+def test_cortex_flow_directions_do_not_depend_on_the_pressures(cortex):
+    # Flows scale with the pressure difference (Hagen-Poiseuille; the in-vivo viscosity
+    # depends on diameter and haematocrit, and phase separation on flow fractions only,
+    # Pries et al. 1994, Circ Res 75:904; Pries et al. 1990, Circ Res 67:826).
+    net, res = cortex[0]
+    other = syn.network_flow_truth(net, arteriole_pressure_pa=7999.0, venule_pressure_pa=1999.0)
+    scale = (7999.0 - 1999.0) / (55.0 * syn.MMHG_PA - 18.0 * syn.MMHG_PA)
+    assert other.segments["flow_nl_min"].to_numpy() == pytest.approx(
+        scale * res.segments["flow_nl_min"].to_numpy(), rel=1e-9, abs=1e-12)
+    with pytest.raises(InputError, match=r"^arteriole_pressure_pa: expected"):
+        syn.network_flow_truth(net, arteriole_pressure_pa=1000.0, venule_pressure_pa=2000.0)
+
+
+def _length_inside(points: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> float:
+    """Length of a polyline inside a box: each straight step clipped by the slab method
+    (Liang & Barsky 1984, ACM Trans Graph 3:1), written here independently of the generator."""
+    a, b = points[:-1], points[1:]
+    d = b - a
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t1, t2 = (lo - a) / d, (hi - a) / d
+    t_in = np.where(d == 0, np.where((a >= lo) & (a <= hi), -np.inf, np.inf), np.minimum(t1, t2))
+    t_out = np.where(d == 0, np.where((a >= lo) & (a <= hi), np.inf, -np.inf), np.maximum(t1, t2))
+    enter = np.maximum(t_in.max(axis=1), 0.0)
+    leave = np.minimum(t_out.min(axis=1), 1.0)
+    return float(np.sum(np.maximum(leave - enter, 0.0) * np.linalg.norm(d, axis=1)))
+
+
+def _point_at(points: np.ndarray, arc_um: float) -> np.ndarray:
+    arc = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(points, axis=0), axis=1))]
+    return np.array([np.interp(arc_um, arc, points[:, k]) for k in range(3)])
+
+
+@pytest.mark.parametrize("seed", CORTEX_SEEDS)
+@pytest.mark.parametrize("lo", [(100.0, 100.0, 100.0), (0.0, 57.0, 143.0)])
+def test_crop_maps_every_piece_to_its_source(cortex, seed, lo):
+    net, _ = cortex[seed]
+    lo = np.asarray(lo)
+    hi = lo + 200.0
+    sub = syn.crop_network(net, (lo, hi))
+    assert sub.box_um == (200.0, 200.0, 200.0) and sub.params["crop_lo_um"] == lo.tolist()
+    src = {s["id"]: s for s in net.segments}
+    pieces: dict[int, float] = {}
+    for s in sub.segments:
+        orig = src[s["source_segment"]]
+        assert s["vessel_class"] == orig["vessel_class"]
+        assert s["source_end_um"] - s["source_start_um"] == pytest.approx(s["length_um"], abs=1e-9)
+        # Same orientation: the piece starts and ends where its arc positions say on the source.
+        for end, arc in ((0, s["source_start_um"]), (-1, s["source_end_um"])):
+            assert s["points_um"][end] + lo == pytest.approx(_point_at(orig["points_um"], arc), abs=1e-6)
+        assert np.all(s["points_um"] >= -1e-6) and np.all(s["points_um"] <= 200.0 + 1e-6)
+        pieces[s["source_segment"]] = pieces.get(s["source_segment"], 0.0) + s["length_um"]
+    # Lengths add up: the pieces of each source cover exactly its length inside the box.
+    inside = {i: _length_inside(s["points_um"], lo, hi) for i, s in src.items()}
+    for i, length in inside.items():
+        assert pieces.get(i, 0.0) == pytest.approx(length, abs=1e-6)
+    # Cut ends are border nodes on the box's faces; no blind end appears.
+    deg = sub.degrees()
+    for n in sub.nodes:
+        if deg[n["id"]] == 1:
+            p = np.asarray(n["pos_um"])
+            assert n["kind"] == "border" and min(p.min(), (200.0 - p).min()) <= 1e-6
+    assert sum(n["kind"] == "border" for n in sub.nodes) >= 10
+
+
+def test_crop_of_a_crop_maps_to_the_first_network(cortex):
+    net, _ = cortex[0]
+    first = syn.crop_network(net, ((50.0, 50.0, 50.0), (350.0, 350.0, 350.0)))
+    second = syn.crop_network(first, ((50.0, 50.0, 50.0), (250.0, 250.0, 250.0)))
+    direct = syn.crop_network(net, ((100.0, 100.0, 100.0), (300.0, 300.0, 300.0)))
+    assert second.params["crop_lo_um"] == [100.0] * 3 and second.params["crop_hi_um"] == [300.0] * 3
+
+    def key(n):
+        return sorted((s["source_segment"], round(s["source_start_um"], 6), round(s["source_end_um"], 6))
+                      for s in n.segments)
+
+    assert key(second) == key(direct)
+
+
+def test_synthesize_cortex_carries_classes_and_truth_flows():
+    # A grid smaller than the box crops the volume, as for the other kinds; seed goes to the
+    # builder and to the artefacts.
+    kw = syn.hostile_artefacts(0.5, spacing=(2.0, 1.0, 1.0), seed=1)
+    mask, truth = syn.synthesize(
+        "cortex", shape_um=(200.0, 200.0, 200.0), n_arterioles=2, n_venules=2, shape=(60, 150, 150), **kw
+    )
+    assert mask.shape == (60, 150, 150) and mask.any()
+    json.dumps(truth)
+    segs = truth["segments"]
+    assert {s["vessel_class"] for s in segs} == set(syn.VESSEL_CLASSES)
+    assert truth["params"]["flow_truth"]["viscosity_model"] == "pries1994"
+    # Pieces of vessels cut by the volume's faces keep the flow of the whole network, so
+    # Kirchhoff's current law (Kirchhoff 1845, Ann Phys Chem 64:497) holds at every node
+    # inside the volume, the cut (border) ends excepted.
+    net_in: dict[int, float] = {}
+    for s in segs:
+        net_in[s["node_to"]] = net_in.get(s["node_to"], 0.0) + s["flow_truth_nl_min"]
+        net_in[s["node_from"]] = net_in.get(s["node_from"], 0.0) - s["flow_truth_nl_min"]
+    total = truth["params"]["flow_truth"]["total_inflow_nl_min"]
+    inner = [abs(net_in[n["id"]]) for n in truth["nodes"] if n["kind"] != "border"]
+    assert len(inner) >= 5 and max(inner) <= 1e-9 * total
+    assert any(s.get("clipped") for s in segs)
+
+
+def test_network_tables_hydraulic_radius_of_a_taper():
+    # A straight tube tapering linearly from r1 to r2 over L: integral of dl / r^4 is
+    # L (r1^-3 - r2^-3) / (3 (r2 - r1)) (elementary calculus), so r_h^4 = 3 (r2 - r1) / (r1^-3 - r2^-3).
+    r1, r2, length = 2.0, 5.0, 80.0
+    pts = np.linspace([0.0, 0.0, 0.0], [0.0, 0.0, length], 161)
+    nodes = [syn._node(0, pts[0], "border"), syn._node(1, pts[-1], "border")]
+    seg = syn._make_segment(0, nodes[0], nodes[1], pts, np.linspace(r1, r2, 161), vessel_class="capillary")
+    seg2 = syn._make_segment(1, nodes[1], nodes[0], pts[::-1], 3.0, vessel_class="arteriole")
+    segments, node_table = syn.network_tables(syn.VesselNetwork(nodes, [seg, seg2]))
+    expected = (3 * (r2 - r1) / (r1**-3 - r2**-3)) ** 0.25
+    # Midpoint rule on 0.5 um steps: relative error ~ (h / r)^2 / 24 < 1e-3.
+    assert segments["radius_hydraulic_um"].iloc[0] == pytest.approx(expected, rel=1e-3)
+    assert segments["radius_hydraulic_um"].iloc[1] == pytest.approx(3.0, rel=1e-12)
+    assert segments["vessel_class"].tolist() == ["capillary", "arteriole"]
+    assert node_table["degree"].tolist() == [2, 2] and node_table["z_um"].tolist() == [0.0, 0.0]
