@@ -330,8 +330,9 @@ def estimate_pressures(
         cv.append(np.ones(d_rows.size))
         cr, cc, cv = np.concatenate(cr), np.concatenate(cc), np.concatenate(cv)
         rhs = np.zeros(n_con)
-        # known inflow q into node k: sum_j g (p_k - p_other) = -q
-        rhs[pos[qk]] = -known_inflow_m3_s[rows[qk]] / p0 * scale[qk]
+        # known inflow q at node k leaves it into its segments:
+        # sum_j g (p_k - p_other) = q
+        rhs[pos[qk]] = known_inflow_m3_s[rows[qk]] / p0 * scale[qk]
         rhs[k_rows.size:] = (known_pressure_pa[rows[d_rows]] - p0) / p0
         cv = cv * dx[cc]
         rnorm = np.sqrt(np.bincount(cr, weights=cv * cv, minlength=n_con))
