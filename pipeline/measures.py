@@ -35,6 +35,8 @@ middle part, is what resistance follows (r^-4).
 
 from __future__ import annotations
 
+import math
+
 import numba
 import numpy as np
 import pandas as pd

@@ -546,3 +546,30 @@ def test_auto_solver_keeps_direct_for_trees():
     segs, nodes = random_tree(6, 12)
     res = solve_flow(segs, nodes, inlets=[0], config=cfg(solver="auto", cg_threshold_nodes=10))
     assert res.summary["solver"] == "direct"
+
+
+@pytest.mark.parametrize("sd_rel", [0.05, 0.1])
+def test_ensemble_interval_of_a_tube_matches_the_lognormal_law(sd_rel):
+    # One tube between fixed pressures: Q = pi r^4 dP / (8 mu L), so a radius
+    # factor exp(N(0, s)) gives a flow factor exp(N(0, 4 s)) (lognormal), whose
+    # 5th and 95th percentiles are at exp(-/+ 1.645 * 4 s) (scipy.stats.norm).
+    # The radius sd is given with one point, so the measured uncertainty is
+    # the sd itself; the floor is switched off. 2000 members: the sample
+    # percentiles' relative error is a few per cent; 5 % tolerance.
+    from scipy import stats
+
+    segs, nodes = tables([(0, 1, 100.0, 4.0)], {0: "border", 1: "border"})
+    segs["radius_sd_um"] = 4.0 * sd_rel
+    segs["radius_n_points"] = 1
+    res = solve_flow(segs, nodes, inlets=[0], config=cfg(ensemble_size=2000, radius_uncertainty_floor=0.0))
+    row = res.segments.iloc[0]
+    z = stats.norm.ppf(0.95)
+    assert row["flow_p05_nl_min"] / row["flow_nl_min"] == pytest.approx(math.exp(-z * 4 * sd_rel), rel=0.05)
+    assert row["flow_p95_nl_min"] / row["flow_nl_min"] == pytest.approx(math.exp(z * 4 * sd_rel), rel=0.05)
+    assert row["direction_confidence"] == 1.0
+
+
+def test_ensemble_off_gives_no_interval():
+    segs, nodes = tables([(0, 1, 100.0, 4.0)], {0: "border", 1: "border"})
+    res = solve_flow(segs, nodes, inlets=[0], config=cfg(ensemble_size=0))
+    assert res.segments[["flow_p05_nl_min", "flow_p95_nl_min", "direction_confidence"]].isna().all().all()
