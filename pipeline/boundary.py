@@ -145,9 +145,9 @@ class Estimate:
         ``resolve(conductance, radius_m, viscosity_pa_s, target_scale)``:
         the pressures (N,) of the same problem with perturbed segment
         coefficients and targets scaled per segment, the flow directions of
-        the estimate kept, solved by refinement preconditioned with the
-        estimate's factorisation (a fresh factorisation when that does not
-        converge). Used for the uncertainty ensemble.
+        the estimate kept, solved by GMRES preconditioned with the
+        estimate's factorisation (GMRES preconditioned by it; a fresh
+        factorisation when that does not converge). Used for the uncertainty ensemble.
     """
 
     pressure_pa: np.ndarray
@@ -503,21 +503,17 @@ def estimate_pressures(
             g = (np.bincount(a, weights=w_seg * c_k * t, minlength=m)
                  - np.bincount(b, weights=w_seg * c_k * t, minlength=m)) * dx
             rhs = np.r_[g, rhs_c]
-            sol = sol0.copy()
-            norm = float(np.abs(rhs).max()) or 1.0
-            # refinement preconditioned by the base factorisation: converges
-            # while the perturbation is small against the matrix itself
-            for _ in range(30):
-                res = rhs - mat @ sol
-                if float(np.abs(res).max()) <= 1e-10 * norm:
-                    break
-                sol = sol + lu.solve(res)
-            else:
+            # GMRES preconditioned by the base factorisation: a few
+            # iterations while the perturbation is moderate against the matrix
+            prec = spla.LinearOperator((size, size), matvec=lu.solve, dtype=float)
+            sol, info = spla.gmres(mat, rhs, x0=sol0, M=prec, rtol=1e-10, atol=0.0, restart=50, maxiter=4)
+            if info != 0:
                 reg_k = (mat - sparse.diags(np.r_[np.zeros(m), np.full(n_con, eps)])).tocsc()
-                sol = spla.splu(reg_k, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                                options={"SymmetricMode": True}).solve(rhs)
+                lu_k = spla.splu(reg_k, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                                 options={"SymmetricMode": True})
+                sol = lu_k.solve(rhs)
                 for _ in range(5):
-                    sol = sol + spla.spsolve(reg_k, rhs - mat @ sol)
+                    sol = sol + lu_k.solve(rhs - mat @ sol)
             out = np.full(n, np.nan)
             out[rows] = p0 * (1.0 + sol[:m] * dx)
             return out
