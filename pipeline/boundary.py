@@ -146,8 +146,8 @@ class Estimate:
         the pressures (N,) of the same problem with perturbed segment
         coefficients and targets scaled per segment, the flow directions of
         the estimate kept, solved by GMRES preconditioned with the
-        estimate's factorisation (GMRES preconditioned by it; a fresh
-        factorisation when that does not converge). Used for the uncertainty ensemble.
+        estimate's factorisation (a fresh factorisation when that does not
+        converge). Used for the uncertainty ensemble.
     """
 
     pressure_pa: np.ndarray
