@@ -13,9 +13,15 @@ Bond radii are uniform in 2-8 µm and lengths in 20-80 µm.
 
 Routes, each in its own subprocess (wall time and peak memory are its own):
 
-- ``vesselflow``: :func:`pipeline.flow.solve_flow` with the default config
-  (``solver: auto``; CG with Jacobi preconditioning above
-  ``cg_threshold_nodes`` unknowns), including table output.
+- ``vesselflow``: :func:`pipeline.flow.solve_flow` with fixed pressures
+  (``boundary: pressure``), constant viscosity, one haematocrit and no
+  ensemble, that is the linear solve alone (``solver: auto``; CG with Jacobi
+  preconditioning above ``cg_threshold_nodes`` unknowns), including table
+  output.
+- ``estimate``: the same with every cut end estimated (``boundary:
+  estimate``, Fry et al. 2012; nothing known), the default boundary
+  conditions. Target: at most 3x the ``vesselflow`` route at one million
+  segments.
 - ``reference``: the textbook route on the same arrays, the full node
   Laplacian with Dirichlet rows replaced by identity rows and nodes without
   any pressure condition pinned, solved with ``scipy.sparse.linalg.spsolve``
@@ -54,7 +60,7 @@ import pandas as pd
 data = np.load(sys.argv[2])
 route = sys.argv[1]
 t0 = time.perf_counter()
-if route == "vesselflow":
+if route in ("vesselflow", "estimate"):
     from pipeline.flow import solve_flow
     segs = pd.DataFrame({
         "segment_id": np.arange(len(data["u"])), "node_from": data["u"], "node_to": data["v"],
@@ -63,7 +69,12 @@ if route == "vesselflow":
     })
     nodes = pd.DataFrame({"node_id": np.arange(len(data["kind"])), "kind": data["kind"].astype(str)})
     t0 = time.perf_counter()
-    res = solve_flow(segs, nodes, inlets=data["inlets"], config={})
+    # the linear solve alone: constant viscosity, one haematocrit, no ensemble
+    plain = {"viscosity_model": "constant", "haematocrit_model": "uniform", "ensemble_size": 0}
+    if route == "vesselflow":
+        res = solve_flow(segs, nodes, inlets=data["inlets"], config={"flow": {**plain, "boundary": "pressure"}})
+    else:  # every cut end estimated (Fry et al. 2012), nothing known
+        res = solve_flow(segs, nodes, config={"flow": {**plain, "boundary": "estimate"}})
     seconds = time.perf_counter() - t0
     p = res.nodes["pressure_pa"].to_numpy()
     out = {"summary": {k: res.summary[k] for k in ("solver", "solver_iterations", "n_unknowns",
@@ -208,7 +219,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--ref-memory-gb", type=float, default=8.0,
                     help="address-space limit of the reference route, GiB")
-    ap.add_argument("--no-reference", action="store_true", help="time the vesselflow route only")
+    ap.add_argument("--no-reference", action="store_true", help="time the vesselflow routes only")
+    ap.add_argument("--no-estimate", action="store_true", help="skip the boundary-estimate route")
     args = ap.parse_args(argv)
 
     t0 = time.perf_counter()
@@ -218,6 +230,7 @@ def main(argv: list[str] | None = None) -> int:
         path = Path(tmp) / "graph.npz"
         np.savez(path, **g)
         ours = run_route("vesselflow", path, args.timeout, args.ref_memory_gb)
+        est = None if args.no_estimate else run_route("estimate", path, args.timeout, args.ref_memory_gb)
         ref = None if args.no_reference else run_route("reference", path, args.timeout, args.ref_memory_gb)
 
     s_count, n_count = len(g["u"]), len(g["kind"])
@@ -237,6 +250,14 @@ def main(argv: list[str] | None = None) -> int:
         print(f"| vesselflow `solve_flow` | {sm['solver']} | {sm['n_unknowns']:,} | "
               f"{sm['solver_iterations'] if sm['solver_iterations'] is not None else '-'} | "
               f"{ours['seconds']:.2f} | {mib(ours)} | {res_txt} |")
+    if est is not None:
+        if est.get("timeout"):
+            print(f"| vesselflow, boundary estimate | - | - | - | > {args.timeout:.0f} (stopped) | - | - |")
+        else:
+            sm = est["summary"]
+            res_txt = "-" if sm["max_conservation_residual"] is None else f"{sm['max_conservation_residual']:.1e}"
+            print(f"| vesselflow, boundary estimate (sign iterations) | KKT, SuperLU | {sm['n_unknowns']:,} | "
+                  f"{sm['solver_iterations']} | {est['seconds']:.2f} | {mib(est)} | {res_txt} |")
     if ref is not None:
         if ref.get("timeout"):
             print(f"| reference: full Laplacian + `spsolve` | SuperLU | {n_count:,} | - | "
@@ -256,6 +277,13 @@ def main(argv: list[str] | None = None) -> int:
         diff = float(np.abs(a[both] - b[both]).max() / span) if both.any() else float("nan")
         print(f"Largest pressure difference between the routes: {diff:.1e} of the inlet-outlet drop.")
         print(f"Speed-up over the reference: {ref['seconds'] / ours['seconds']:.1f}x.")
+    if est is not None and not ours.get("timeout"):
+        if est.get("timeout"):
+            print(f"Boundary estimate: stopped after {args.timeout:.0f} s; target (<= 3x the plain solve): NOT met.")
+        else:
+            ratio = est["seconds"] / ours["seconds"]
+            print(f"Boundary estimate / plain solve: {ratio:.1f}x (target <= 3x at 1M segments: "
+                  f"{'met' if ratio <= 3 else 'NOT met'}).")
     if not ours.get("timeout"):
         verdict = "met" if ours["seconds"] <= 10.0 else "NOT met"
         if s_count >= 900_000:
