@@ -910,15 +910,15 @@ DIAMETER_CLASSES = ("capillary", "small", "large")
 #: what and source.
 PLAUSIBLE = (
     ("velocity_median_mm_s_capillary", 0.1, 5.0,
-     "median capillary speed",
+     "median capillary speed (mm/s)",
      "red cells in mouse cortical capillaries move at about 0.5-2 mm/s (two-photon line scans, e.g. "
      "Kleinfeld et al. 1998, PNAS 95:15741; from memory); mean blood speed is lower than red-cell speed"),
     ("wss_p99_pa", 0.0, 30.0,
-     "99th percentile wall shear stress",
+     "99th percentile wall shear stress (Pa)",
      "arteriolar wall shear stress of about 1-5 Pa (Reneman & Hoeks 2008, Med Biol Eng Comput 46:499); "
      "capillaries with the in-vivo viscosity law several times more"),
     ("velocity_max_mm_s", 0.0, 100.0,
-     "fastest segment",
+     "speed of the fastest segment (mm/s)",
      "mean speeds in microvessels stay below some tens of mm/s (arterioles of 20-60 µm: about 5-50 "
      "mm/s; from memory of intravital studies)"),
 )
@@ -991,5 +991,5 @@ def plausibility_warnings(summary: Mapping[str, Any]) -> list[str]:
     for key, lo, hi, what, source in PLAUSIBLE:
         val = summary.get(key)
         if val is not None and not lo <= val <= hi:
-            notes.append(f"flow: {what} {val:.3g} is outside {lo:g}-{hi:g} ({source})")
+            notes.append(f"flow: {what} is {val:.3g}, outside the plausible {lo:g}-{hi:g}; {source}")
     return notes

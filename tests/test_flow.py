@@ -573,3 +573,35 @@ def test_ensemble_off_gives_no_interval():
     segs, nodes = tables([(0, 1, 100.0, 4.0)], {0: "border", 1: "border"})
     res = solve_flow(segs, nodes, inlets=[0], config=cfg(ensemble_size=0))
     assert res.segments[["flow_p05_nl_min", "flow_p95_nl_min", "direction_confidence"]].isna().all().all()
+
+
+def test_plausibility_warns_outside_published_ranges_only():
+    # Ranges of pipeline.flow.PLAUSIBLE (sources named there): a median
+    # capillary speed of 0.02 mm/s (below the 0.1 mm/s floor; red cells in
+    # mouse cortex move at about 0.5-2 mm/s, from memory) and 45 % perfused
+    # length warn; values inside every range do not.
+    from pipeline.flow import plausibility_warnings
+
+    ok = {"perfused_length_fraction": 0.9, "velocity_median_mm_s_capillary": 0.6, "wss_p99_pa": 12.0,
+          "velocity_max_mm_s": 8.0}
+    assert plausibility_warnings(ok) == []
+    bad = dict(ok, velocity_median_mm_s_capillary=0.02, perfused_length_fraction=0.45)
+    notes = plausibility_warnings(bad)
+    assert len(notes) == 2
+    assert any("median capillary speed (mm/s) is 0.02" in n for n in notes)
+    assert any("45 %" in n for n in notes)
+
+
+def test_class_statistics_split_at_the_documented_bounds():
+    # capillary < 8 µm <= small <= 30 µm < large; medians against numpy
+    from pipeline.flow import class_statistics
+
+    d = np.array([5.0, 7.9, 8.0, 30.0, 30.1, 60.0])
+    v = np.array([0.5, 0.7, 2.0, 3.0, 10.0, 20.0])
+    w = np.array([3.0, 4.0, 2.0, 2.5, 1.5, 1.0])
+    perf = np.array([True, True, True, True, True, False])
+    st = class_statistics(d, v, w, perf, np.ones(6))
+    assert st["n_perfused_capillary"] == 2 and st["n_perfused_small"] == 2 and st["n_perfused_large"] == 1
+    assert st["velocity_median_mm_s_capillary"] == pytest.approx(np.median([0.5, 0.7]))
+    assert st["velocity_max_mm_s"] == 10.0  # the unperfused segment does not count
+    assert st["wss_p99_pa"] == pytest.approx(np.percentile(w[perf], 99))
