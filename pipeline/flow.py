@@ -679,6 +679,24 @@ def solve_flow(
         state["info"] = info
         return q
 
+    def solve_held(mu_mpa_s: np.ndarray, held: np.ndarray) -> np.ndarray:
+        """Flows with every boundary node held at a pressure from an estimate."""
+        conductance = math.pi * r_h_m**4 / (8.0 * mu_mpa_s * MPA_S * length_m)
+        dirichlet = core_node & (open_node | fixed | np.isfinite(known_q))
+        unknown = core_node & ~dirichlet
+        unknown_index = np.full(n_nodes, -1, dtype=np.int64)
+        unknown_index[unknown] = np.arange(int(unknown.sum()))
+        A, b = _assemble(u, v, conductance, unknown_index, np.nan_to_num(held), core)
+        method = cfg["solver"]
+        if method == "auto":
+            method = "direct" if A.shape[0] <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
+        x, _ = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
+        pressure = held.copy()
+        pressure[unknown] = x
+        q = np.where(core, conductance * (np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])), 0.0)
+        state["info"] = dict(state["info"], conductance=conductance, pressure=pressure)
+        return q
+
     # Viscosity, then the solve (iterated with the haematocrit when asked).
     mu_mpa_s, vnotes = segment_viscosity_mpa_s(
         2.0 * rh,
@@ -692,12 +710,28 @@ def solve_flow(
     haematocrit = np.where(core, cfg["haematocrit"], np.nan)
     rheo = None
     if cfg["haematocrit_model"] == "phase_separation" and cfg["viscosity_model"] == "pries1994" and core.any():
-        rheo = iterate_rheology(
-            solve_once, u, v, 2.0 * rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=n_nodes,
-            plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
-            min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
-            rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"],
-        )
+        def rheology(solve, h0=None):
+            return iterate_rheology(
+                solve, u, v, 2.0 * rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=n_nodes,
+                initial_haematocrit=h0, plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
+                min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
+                rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"],
+            )
+
+        if estimate:
+            # The estimate's KKT matrix depends on the viscosities; refactorising
+            # it at every step of the haematocrit iteration would cost tens of
+            # factorisations. Instead: estimate, hold the estimated end
+            # pressures while haematocrit and viscosity converge (plain solves),
+            # estimate again with the converged viscosities, converge again.
+            h0 = None
+            for _ in range(2):
+                solve_once(mu_mpa_s)
+                held = state["info"]["pressure"].copy()
+                rheo = rheology(lambda mu_k: solve_held(mu_k, held), h0)
+                mu_mpa_s, h0 = rheo.viscosity_mpa_s, np.nan_to_num(rheo.haematocrit, nan=cfg["haematocrit"])
+        else:
+            rheo = rheology(solve_once)
         if not rheo.converged:
             warn.append(f"flow: haematocrit and viscosity did not converge ({rheo.message})")
         mu_mpa_s = rheo.viscosity_mpa_s
