@@ -943,8 +943,14 @@ def iterate_rheology(
             # residuals cancel best in least squares.
             d_f = np.column_stack([hist_f[i + 1] - hist_f[i] for i in range(len(hist_f) - 1)])
             d_h = np.column_stack([hist_h[i + 1] - hist_h[i] for i in range(len(hist_h) - 1)])
-            gamma = np.linalg.lstsq(d_f, f, rcond=None)[0]
-            step = damping * f - (d_h + damping * d_f) @ gamma
+            # Normal equations summed with einsum, which runs single-threaded:
+            # a threaded BLAS least-squares sums in an order that depends on
+            # the thread count, and the iteration carries those roundings
+            # into results that then differ between machines and workers.
+            gram = np.einsum("ij,ik->jk", d_f, d_f)
+            gram += 1e-12 * max(float(np.trace(gram)), 1e-300) * np.eye(gram.shape[0])
+            gamma = np.linalg.lstsq(gram, np.einsum("ij,i->j", d_f, f), rcond=None)[0]
+            step = damping * f - np.einsum("ij,j->i", d_h + damping * d_f, gamma)
             h = np.clip(np.where(has, h + step, h), 0.0, max_haematocrit)
         else:
             h = h + damping * f
