@@ -164,9 +164,9 @@ class Estimate:
         ``resolve(conductance, radius_m, viscosity_pa_s, target_scale)``:
         the pressures (N,) of the same problem with perturbed segment
         coefficients and targets scaled per segment, the flow directions of
-        the estimate kept, solved by GMRES preconditioned with the
-        estimate's factorisation (a fresh factorisation when that does not
-        converge). Used for the uncertainty ensemble.
+        the estimate kept, as a first-order update from the estimate's
+        factorisation (module notes of :func:`estimate_pressures`' code).
+        Used for the uncertainty ensemble.
     """
 
     pressure_pa: np.ndarray
@@ -522,17 +522,21 @@ def estimate_pressures(
             g = (np.bincount(a, weights=w_seg * c_k * t, minlength=m)
                  - np.bincount(b, weights=w_seg * c_k * t, minlength=m)) * dx
             rhs = np.r_[g, rhs_c]
-            # GMRES preconditioned by the base factorisation: a few
-            # iterations while the perturbation is moderate against the matrix
-            prec = spla.LinearOperator((size, size), matvec=lu.solve, dtype=float)
-            sol, info = spla.gmres(mat, rhs, x0=sol0, M=prec, rtol=1e-10, atol=0.0, restart=50, maxiter=4)
-            if info != 0:
-                reg_k = (mat - sparse.diags(np.r_[np.zeros(m), np.full(n_con, eps)])).tocsc()
-                lu_k = spla.splu(reg_k, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                                 options={"SymmetricMode": True})
-                sol = lu_k.solve(rhs)
-                for _ in range(5):
-                    sol = sol + lu_k.solve(rhs - mat @ sol)
+            # First-order update from the estimate's factorisation (one
+            # Richardson step on the perturbed matrix, a second while it
+            # still lowers the residual): an ensemble member is a linearised
+            # perturbation of the estimate, as in first-order uncertainty
+            # propagation, at the cost of a pair of triangular solves.
+            sol = sol0.copy()
+            res = rhs - mat @ sol
+            rn = float(np.abs(res).max())
+            for _ in range(2):
+                trial = sol + lu.solve(res)
+                res_t = rhs - mat @ trial
+                rt = float(np.abs(res_t).max())
+                if rt >= rn:
+                    break
+                sol, res, rn = trial, res_t, rt
             out = np.full(n, np.nan)
             out[rows] = p0 * (1.0 + sol[:m] * dx)
             return out
