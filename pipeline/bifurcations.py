@@ -171,6 +171,12 @@ semicolon-separated) are not judged: they carry no flag reason, are not
                       so a junction at the edge could not be told from the
                       cube law, and the ratio is not flagged either
 ``mixed_flow``        ``flow_pattern`` is ``mixed``
+``capillary``         the parent is narrower than
+                      ``murray_min_parent_diameter_um``: Murray's law is a
+                      design rule of branching trees, and junctions of a
+                      capillary mesh, whose vessels are of near-uniform
+                      width, do not follow it (three equal vessels give a
+                      ratio of 2)
 
 Flag reason codes (``flag_reasons``, semicolon-separated, in this order;
 each rule set in the ``bifurcations`` config section, null thresholds switch
@@ -233,7 +239,7 @@ REASON_CODES = (
 #: Codes that count against ``fraction_within_tolerance`` (Murray-law violations).
 MURRAY_CODES = REASON_CODES[:5]
 #: Reasons a junction is ``uncertain`` (not judged), in the order they appear in ``uncertain_reasons``.
-UNCERTAIN_CODES = ("low_confidence", "ratio_unresolved", "mixed_flow")
+UNCERTAIN_CODES = ("low_confidence", "ratio_unresolved", "mixed_flow", "capillary")
 #: Values of ``flow_pattern``.
 FLOW_PATTERNS = ("diverging", "converging", "mixed", "unsolved")
 
@@ -1105,7 +1111,13 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
     if cfg["ratio_min"] is not None:
         edge = np.where(ratio < 1.0, 1.0 - cfg["ratio_min"], edge)
     unresolved = (z * ratio_u >= edge) & ~(hits[:, 0] | hits[:, 1])
-    why = np.column_stack([low_conf & bool(cfg["low_confidence_uncertain"]), unresolved, pattern == "mixed"])
+    # Murray's law is a design rule of branching trees; capillary meshes of
+    # near-uniform vessels do not follow it (three equal vessels give a ratio
+    # of 2), so junctions whose parent is capillary-sized are not judged.
+    cap_min = cfg["murray_min_parent_diameter_um"]
+    capillary = (2.0 * r0 < cap_min) if cap_min is not None else np.zeros(n, dtype=bool)
+    why = np.column_stack([low_conf & bool(cfg["low_confidence_uncertain"]), unresolved, pattern == "mixed",
+                           capillary])
     uncertain = why.any(axis=1)
     hits &= ~uncertain[:, None]
 

@@ -150,6 +150,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
     # --- Murray's-law checks at junctions (pipeline/bifurcations.py) ---
     "bifurcations": {
         "enabled": Param(True, bool),
+        "murray_min_parent_diameter_um": Param(7.0, float, low=0.0, allow_none=True),
         "ratio_min": Param(0.6667, float, low=0.0, low_open=True, allow_none=True),
         "ratio_max": Param(1.5, float, low=0.0, low_open=True, allow_none=True),
         "exponent_min": Param(2.0, float, low=0.0, allow_none=True),

@@ -593,7 +593,7 @@ def test_low_confidence_few_points():
     assert row["uncertain"] and row["uncertain_reasons"] == "low_confidence"
     assert codes(row) == set() and not row["flagged"]
     assert summary["bifurcations_low_confidence"] == 1 and summary["bifurcations_uncertain"] == 1
-    assert summary["uncertain_counts"] == {"low_confidence": 1, "ratio_unresolved": 0, "mixed_flow": 0}
+    assert summary["uncertain_counts"] == {"low_confidence": 1, "ratio_unresolved": 0, "mixed_flow": 0, "capillary": 0}
     # No junction is judged: no fraction within tolerance.
     assert summary["fraction_within_tolerance"] is None
     row = only_row(analyze_bifurcations(segs, nodes, lines, config={"low_confidence_uncertain": False})[0])
@@ -1303,3 +1303,26 @@ def test_measured_tree_flow_split_near_cube_law(tree):
     rel = np.abs(table["flow_split_daughter1"] / table["flow_split_cube_law"] - 1.0)
     assert np.median(rel) < 0.05
     assert summary["flow_split_error_median"] < 0.05 * 0.5  # shares are about 0.5
+
+
+@pytest.mark.parametrize("radius, judged", [(2.5, False), (10.0, True)])
+def test_capillary_junctions_are_not_judged_against_murray(radius, judged):
+    # Three equal vessels: murray_ratio = 2 r^3 / r^3 = 2 (arithmetic), well
+    # above the band. Murray's law (Murray 1926, PNAS 12:207) is a rule of
+    # branching trees; a capillary junction (parent 5 µm wide, below the
+    # default 7 µm) is not judged, while the same junction of 20 µm vessels is
+    # flagged.
+    arms = [
+        {"direction": PARENT_DIR, "radius": radius, "towards": True, "sd": 0.01 * radius},
+        {"direction": in_plane(THETA, +1), "radius": radius, "sd": 0.01 * radius},
+        {"direction": in_plane(THETA, -1), "radius": radius, "sd": 0.01 * radius},
+    ]
+    segs, nodes, lines = star(arms)
+    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    row = only_row(table)
+    assert row["murray_ratio"] == pytest.approx(2.0, rel=1e-9)
+    if judged:
+        assert row["flagged"] and "ratio_high" in row["flag_reasons"]
+    else:
+        assert row["uncertain"] and "capillary" in row["uncertain_reasons"] and not row["flagged"]
+        assert summary["uncertain_counts"]["capillary"] == 1
