@@ -837,6 +837,11 @@ def _unit(key):
     return ""
 
 
+def _what(what):
+    """A PLAUSIBLE entry's name without a unit in brackets at its end (the report writes units itself)."""
+    return re.sub(r"\s*\([^()]*\)\s*$", "", what)
+
+
 def _plausible_target(key):
     """(quantity, class) of a PLAUSIBLE key: quantity 'velocity' or 'wss' (None otherwise), class or 'all'."""
     from .flow import DIAMETER_CLASSES
@@ -876,7 +881,7 @@ def plausibility_checks(summary):
             verdict = "above" if v > hi else "below"
         else:
             verdict = "within"
-        rows.append(dict(key=key, what=what, value=v if math.isfinite(v) else None, low=lo, high=hi,
+        rows.append(dict(key=key, what=_what(what), value=v if math.isfinite(v) else None, low=lo, high=hi,
                          unit=_unit(key), verdict=verdict, source=source))
     return rows
 
@@ -996,7 +1001,7 @@ def _class_panel(ax, data, quantity, column, ylabel, summary):
             ax.text(p, 0.5, "no perfused\nsegments", ha="center", va="center", fontsize=8, color="#555555",
                     transform=ax.get_xaxis_transform())
     # Each range keeps its colour (its place in PLAUSIBLE) across both panels.
-    ranges = [(i, k, lo, hi, what) for i, (k, lo, hi, what, _) in enumerate(PLAUSIBLE)
+    ranges = [(i, k, lo, hi, _what(what)) for i, (k, lo, hi, what, _) in enumerate(PLAUSIBLE)
               if _plausible_target(k)[0] == quantity]
     # Axis limits from the segments and the finite, positive ends of the
     # ranges drawn: a range's lower end of 0 must not pull a log axis down.
@@ -1074,7 +1079,7 @@ def _caption_plausibility(data):
     from .flow import PLAUSIBLE
 
     cfg = _flow_cfg(data)
-    srcs = "; ".join(f"{what}, {lo:g}–{hi:g} {_unit(k)}: {src}" for k, lo, hi, what, src in PLAUSIBLE)
+    srcs = "; ".join(f"{_what(what)}, {lo:g}–{hi:g} {_unit(k)}: {src}" for k, lo, hi, what, src in PLAUSIBLE)
     return ("Perfused segments by diameter 2r: capillary below "
             f"{cfg['capillary_max_diameter_um']:g} µm, small up to {cfg['small_vessel_max_diameter_um']:g} µm, "
             "large above (flow.capillary_max_diameter_um, flow.small_vessel_max_diameter_um), and all together. "
@@ -1161,7 +1166,7 @@ def _caption_intervals(data):
     k, floor, spread = int(cfg["ensemble_size"]), float(cfg["radius_uncertainty_floor"]), float(cfg["target_spread"])
     estimated = cfg.get("boundary") == "estimate"
     text = (f"Each perfused segment: its flow estimate (dot on the dashed identity line) and the 5th–95th "
-            f"percentile of its flow over an ensemble of {k} solves (vertical line, in the estimate's direction; "
+            f"percentile of its flow over an ensemble of {k} members (vertical line, in the estimate's direction; "
             "a line that reaches the bottom axis includes zero flow or the opposite direction). Each member "
             "scales every segment's radius by a lognormal factor of its measured radius uncertainty (the spread "
             "of its wall-fit radii over their number of independent fits, combined with a floor of "
@@ -1169,7 +1174,8 @@ def _caption_intervals(data):
     if estimated:
         text += (f" and the target shear rate of the boundary estimate by a lognormal factor of log-sd {spread:g} "
                  "for the whole network times one of half that per segment (the spread of plausible boundary "
-                 "conditions)")
+                 "conditions); each member is a first-order update of the estimate with its target flow directions "
+                 "kept, so another choice of directions by the estimate is not in the interval")
     text += ("; viscosities stay at their converged values. Errors of the segmentation itself (missed or false "
              "vessels) and of the flow model are not in the interval.")
     return text
@@ -1551,12 +1557,12 @@ def _uncertainty_html(data, fig):
     k = int(_flow_cfg(data)["ensemble_size"])
     conf = (f"{100 * u['confident_fraction']:.1f} % ({u['n_confident']} of {u['n_ensemble']})"
             if u["n_ensemble"] else "–")
-    parts = ["<p>The flow step solves the network again with perturbed radii and boundary targets; each segment "
-             "gets the 5th and 95th percentile of its flow over these solves and the share of solves whose "
-             "flow runs the way of the estimate (direction confidence). Wide intervals and low confidence mark "
+    parts = ["<p>The flow step recomputes the flows for an ensemble of perturbed radii and boundary targets; "
+             "each segment gets the 5th and 95th percentile of its flow over the members and the share of "
+             "members whose flow runs the way of the estimate (direction confidence). Wide intervals and low confidence mark "
              "the flows the image does not pin down.</p>",
              _kv_table([
-                 ("ensemble solves (flow.ensemble_size)", _fmt(k)),
+                 ("ensemble members (flow.ensemble_size)", _fmt(k)),
                  ("perfused segments", _fmt(u["n_perfused"])),
                  (f"direction confidence ≥ {DIRECTION_CONFIDENCE_MIN:g} (share of perfused segments)", conf),
                  ("median relative interval width (p95 − p05) / |flow|", _fmt(u["relative_width_median"])),
@@ -1569,11 +1575,13 @@ def _uncertainty_html(data, fig):
     return "".join(parts)
 
 
-# Plain words for the reasons a junction is not judged (pipeline.bifurcations.UNCERTAIN_CODES).
+# Plain words for the reasons a junction is not judged (pipeline.bifurcations.UNCERTAIN_CODES);
+# a code without words here is shown by its name alone.
 _UNCERTAIN_WORDS = {
     "low_confidence": "a radius measured over too few points or on a segment too short",
     "ratio_unresolved": "the Murray ratio's uncertainty reaches from the cube law to the flag limit",
     "mixed_flow": "flow neither diverges nor converges (a crossing, or arms without flow)",
+    "capillary": "a capillary-sized parent: capillary meshes do not follow Murray's law",
 }
 
 
@@ -1592,17 +1600,20 @@ def _bifurcation_html(b, review, summary=None):
     flagged = _bool_col(b, "flagged")
     uncertain = _bool_col(b, "uncertain")
     fl = b[flagged]
-    parts = [f"<p>{len(fl)} of {len(b)} bifurcations flagged, listed from the most severe (severity: the "
-             "largest deviation from the cube law or the optimal angle, in standard uncertainties, among the "
-             "quantities outside their limits; ∞ where the uncertainty is 0); the node id is the number on the "
-             "maps.</p>"]
+    how = (", listed below from the most severe (severity: the largest deviation from the cube law or the "
+           "optimal angle, in standard uncertainties, among the quantities outside their limits; ∞ where the "
+           "uncertainty is 0); the node id is the number on the maps." if len(fl) else ".")
+    parts = [f"<p>{len(fl)} of {len(b)} bifurcations flagged{how}</p>"]
     if uncertain.any():
         codes = b.loc[uncertain, "uncertain_reasons"] if "uncertain_reasons" in b.columns else pd.Series([], dtype=str)
+        from .bifurcations import UNCERTAIN_CODES
+
         codes = codes.fillna("").astype(str)
-        counts = {c: int(codes.str.contains(rf"(?:^|;){c}(?:;|$)").sum()) for c in _UNCERTAIN_WORDS}
+        counts = {c: int(codes.str.contains(rf"(?:^|;){c}(?:;|$)").sum()) for c in UNCERTAIN_CODES}
         parts.append(f"<p>{int(uncertain.sum())} uncertain junction(s) are not judged and not listed (the "
                      "CSV has them, column uncertain); a junction may have several reasons:</p>"
-                     + _table(pd.DataFrame({"reason": list(counts), "meaning": list(_UNCERTAIN_WORDS.values()),
+                     + _table(pd.DataFrame({"reason": list(counts),
+                                            "meaning": [_UNCERTAIN_WORDS.get(c, "") for c in counts],
                                             "junctions": list(counts.values())}), classes="uncertain"))
     else:
         parts.append("<p>No junction is uncertain: every one was judged.</p>")

@@ -912,15 +912,19 @@ def test_flagged_junctions_most_severe_first(result):
     b = pd.read_csv(result / "bifurcations.csv")
     sec, table = _flagged_table(result)
     want = _severity_order(b)
-    assert len(want) > 0 and table is not None
-    assert table["node_id"].astype(int).tolist() == want.tolist()
-    assert set(table["flow_pattern"]) <= {"diverging", "converging"}  # flagged ones are judged ones
+    assert f"{len(want)} of {len(b)} bifurcations flagged" in sec
+    if len(want):  # the tree has several; the bed's capillary-sized junctions are not judged
+        assert table["node_id"].astype(int).tolist() == want.tolist()
+        assert set(table["flow_pattern"]) <= {"diverging", "converging"}  # flagged ones are judged ones
+    else:
+        assert table is None
+    listed = set(table["node_id"].astype(int)) if table is not None else set()
     unc = b["uncertain"].astype(bool)
-    assert not set(b.loc[unc, "node_id"]) & set(table["node_id"].astype(int))  # not listed
+    assert not set(b.loc[unc, "node_id"]) & listed  # uncertain ones are not listed
     if unc.any():
         counts = _tables(sec, "uncertain")[0].set_index("reason")["junctions"].astype(int)
         reasons = b.loc[unc, "uncertain_reasons"].fillna("").str.split(";")
-        for code in ("low_confidence", "ratio_unresolved", "mixed_flow"):
+        for code in set(counts.index) | {c for r in reasons for c in r if c}:
             assert counts[code] == sum(code in r for r in reasons), code
         assert f"{int(unc.sum())} uncertain junction(s)" in sec
     # Murray medians per flow pattern: numpy's median of the finite ratios of that pattern.
@@ -953,5 +957,5 @@ def test_severity_order_with_infinite_and_uncertain_rows(sample, tmp_path):
     sev = [float(v) for v in table["severity"].iloc[1:]]
     assert sev == sorted(sev, reverse=True)
     counts = _tables(sec, "uncertain")[0].set_index("reason")["junctions"].astype(int).to_dict()
-    assert counts == {"low_confidence": 1, "ratio_unresolved": 1, "mixed_flow": 1}
+    assert {k: v for k, v in counts.items() if v} == {"low_confidence": 1, "ratio_unresolved": 1, "mixed_flow": 1}
     assert "2 uncertain junction(s)" in sec
