@@ -32,6 +32,22 @@ against radius with a slope-3 guide (Q ∝ r³ under Murray's law; Murray CD
 1926, PNAS 12:207). Figures of a study: box-and-point plots per group for
 the main measures, annotated with the comparison table's q-values.
 
+Flow sections of a sample (when flow was solved): **flow plausibility**,
+the mean speed and wall shear stress of the perfused segments by diameter
+class (``flow.capillary_max_diameter_um``,
+``flow.small_vessel_max_diameter_um``) against the published ranges of
+:data:`pipeline.flow.PLAUSIBLE` (shaded, sources in the caption), the
+perfused length fraction, the class statistics of ``summary.json`` and the
+warnings of :func:`pipeline.flow.plausibility_warnings` in plain sentences
+(:func:`plausibility_messages`); **uncertainty**, the share of perfused
+segments whose direction confidence is at least
+:data:`DIRECTION_CONFIDENCE_MIN`, the relative width ``(p95 - p05) /
+|flow|`` of the ensemble's flow intervals (:func:`flow_uncertainty`) and a
+plot of every segment's flow against its interval. The bifurcation section
+lists the flagged junctions from the most severe (``severity``) with their
+``flow_pattern``, counts the uncertain ones by reason without listing them,
+and shows the Murray medians per flow pattern where the summary has them.
+
 Colours: continuous values use viridis or cividis, whose lightness rises
 monotonically so they read in grey and by colour-blind readers; categories
 (branching levels, groups) use the Okabe–Ito palette (Okabe M, Ito K (2002)
@@ -57,7 +73,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from matplotlib.collections import LineCollection
-from matplotlib.colors import BoundaryNorm, ListedColormap, LogNorm, Normalize
+from matplotlib.colors import BoundaryNorm, ListedColormap, LogNorm, Normalize, to_rgba
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
@@ -67,7 +83,9 @@ from .errors import InputError, VesselflowError
 
 __all__ = ["build_report", "load_sample", "SampleData", "sample_figures", "study_figures", "figure_map_level",
            "figure_map_wss", "figure_distributions", "figure_radius_by_level", "figure_murray", "figure_exponents",
-           "figure_wss_diameter", "figure_flow_radius", "figure_study_measure", "OKABE_ITO", "SAMPLE_FIGURES",
+           "figure_wss_diameter", "figure_flow_radius", "figure_flow_plausibility", "figure_flow_intervals",
+           "figure_study_measure", "diameter_class", "flow_uncertainty", "plausibility_checks",
+           "plausibility_messages", "DIRECTION_CONFIDENCE_MIN", "OKABE_ITO", "SAMPLE_FIGURES", "FLOW_FIGURES",
            "STUDY_MEASURES"]
 
 #: Okabe–Ito colour-blind-safe palette (Okabe & Ito 2002), reordered so the
@@ -76,7 +94,11 @@ OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "
 
 #: Figure names of a sample report, in page order.
 SAMPLE_FIGURES = ("map_level", "map_wss", "distributions", "radius_by_level", "murray", "exponents",
-                  "wss_diameter", "flow_radius")
+                  "wss_diameter", "flow_radius", "flow_plausibility", "flow_intervals")
+#: Sample figures that need solved flow.
+FLOW_FIGURES = ("map_wss", "wss_diameter", "flow_radius", "flow_plausibility", "flow_intervals")
+# Figures shown in a section of their own instead of the figure grid: name -> section id.
+_SECTION_FIGURES = {"flow_plausibility": "plausibility", "flow_intervals": "uncertainty"}
 
 #: Summary measures shown per group in a study report (those present are used).
 STUDY_MEASURES = ("total_length_mm", "length_density_mm_per_mm3", "vessel_volume_fraction",
@@ -376,8 +398,6 @@ def _level_colours(levels):
     present = np.unique(lev[np.isfinite(lev)]).astype(int)
     colours = np.tile(np.array([[0.6, 0.6, 0.6, 1.0]]), (len(lev), 1))
     if len(present) <= len(OKABE_ITO):
-        from matplotlib.colors import to_rgba
-
         lut = {lv: to_rgba(OKABE_ITO[i]) for i, lv in enumerate(present)}
         for i, v in enumerate(lev):
             if np.isfinite(v):
@@ -754,6 +774,413 @@ def figure_flow_radius(data, notes):
     return fig
 
 
+# --------------------------------------------------------------------------- flow plausibility and uncertainty
+
+
+#: Direction confidence (share of ensemble members with the estimate's flow
+#: sign) from which the report counts a segment's flow direction as settled.
+DIRECTION_CONFIDENCE_MIN = 0.9
+
+# Display names of the diameter classes of pipeline.flow.DIAMETER_CLASSES,
+# plus the column of all perfused segments.
+_ALL = "all"
+# Shaded bands of the published ranges: light colours that the box outlines
+# and the points keep their contrast on; one per range, in PLAUSIBLE order.
+_BAND_COLOURS = (OKABE_ITO[2], OKABE_ITO[5], OKABE_ITO[7], OKABE_ITO[4])
+_BAND_ALPHA = 0.2
+
+
+def _flow_cfg(data):
+    """The run's flow config, with the schema defaults for keys older results lack."""
+    from .config import default_config
+
+    cfg = default_config()["flow"]
+    cfg.update((data.run.get("config") or {}).get("flow") or {})
+    return cfg
+
+
+def diameter_class(diameter_um, *, capillary_max_um=8.0, small_max_um=30.0):
+    """Diameter class index of each segment, as the flow summary classes them.
+
+    Parameters
+    ----------
+    diameter_um : (S,) array_like
+        Segment diameters, µm.
+    capillary_max_um, small_max_um : float, keyword-only
+        Class bounds (``flow.capillary_max_diameter_um``,
+        ``flow.small_vessel_max_diameter_um``): capillary below the first,
+        small up to and including the second, large above.
+
+    Returns
+    -------
+    (S,) int ndarray
+        0 capillary, 1 small, 2 large, in the order of
+        :data:`pipeline.flow.DIAMETER_CLASSES`; -1 where the diameter is not
+        finite.
+    """
+    d = np.asarray(diameter_um, dtype=float)
+    cls = np.where(d < capillary_max_um, 0, np.where(d <= small_max_um, 1, 2))
+    return np.where(np.isfinite(d), cls, -1)
+
+
+def _unit(key):
+    """Unit of a summary key from its unit suffix, a diameter class name after it allowed."""
+    from .flow import DIAMETER_CLASSES
+
+    base = key
+    for name in DIAMETER_CLASSES:
+        if key.endswith("_" + name):
+            base = key[: -len(name) - 1]
+    for suf, unit in _SUFFIXES:
+        if base.endswith(suf):
+            return unit
+    return ""
+
+
+def _what(what):
+    """A PLAUSIBLE entry's name without a unit in brackets at its end (the report writes units itself)."""
+    return re.sub(r"\s*\([^()]*\)\s*$", "", what)
+
+
+def _plausible_target(key):
+    """(quantity, class) of a PLAUSIBLE key: quantity 'velocity' or 'wss' (None otherwise), class or 'all'."""
+    from .flow import DIAMETER_CLASSES
+
+    quantity = "velocity" if key.startswith("velocity") else "wss" if key.startswith("wss") else None
+    cls = next((n for n in DIAMETER_CLASSES if key.endswith("_" + n)), _ALL)
+    return quantity, cls
+
+
+def plausibility_checks(summary):
+    """Each published range of :data:`pipeline.flow.PLAUSIBLE` against the sample's summary.
+
+    Whether a value is outside its range is decided by
+    :func:`pipeline.flow.plausibility_warnings` itself, so the report and the
+    run's warnings never disagree.
+
+    Parameters
+    ----------
+    summary : mapping
+        The sample's ``summary.json``.
+
+    Returns
+    -------
+    list of dict
+        One per range, in :data:`~pipeline.flow.PLAUSIBLE` order: ``key``,
+        ``what``, ``value`` (float or None), ``low``, ``high``, ``unit``,
+        ``verdict`` ('within', 'above', 'below' or 'no value'), ``source``.
+    """
+    from .flow import PLAUSIBLE, plausibility_warnings
+
+    rows = []
+    for key, lo, hi, what, source in PLAUSIBLE:
+        v = _num(summary.get(key))
+        if not math.isfinite(v):
+            verdict = "no value"
+        elif plausibility_warnings({key: v}):
+            verdict = "above" if v > hi else "below"
+        else:
+            verdict = "within"
+        rows.append(dict(key=key, what=_what(what), value=v if math.isfinite(v) else None, low=lo, high=hi,
+                         unit=_unit(key), verdict=verdict, source=source))
+    return rows
+
+
+def plausibility_messages(summary):
+    """The flow plausibility warnings of a sample in plain sentences.
+
+    Parameters
+    ----------
+    summary : mapping
+        The sample's ``summary.json``.
+
+    Returns
+    -------
+    list of str
+        One sentence per warning of :func:`pipeline.flow.plausibility_warnings`:
+        less than half of the vessel length perfused, then each checked
+        statistic outside its published range. Empty when there is none.
+    """
+    from .flow import plausibility_warnings
+
+    out = []
+    frac = _num(summary.get("perfused_length_fraction"))
+    if math.isfinite(frac) and plausibility_warnings({"perfused_length_fraction": frac}):
+        out.append(f"Only {100 * frac:.0f} % of the vessel length carries flow in the model (the rest is "
+                   "unsolved, sealed or in dead ends), so the speed and shear statistics describe less than half "
+                   "of the network.")
+    for c in plausibility_checks(summary):
+        if c["verdict"] in ("above", "below"):
+            u = f" {c['unit']}" if c["unit"] else ""
+            out.append(f"{c['what'][0].upper()}{c['what'][1:]}: {c['value']:.3g}{u} in the model, {c['verdict']} "
+                       f"the published range {c['low']:g}–{c['high']:g}{u}. Source: {c['source']}. Check the "
+                       "boundary conditions and the radii before relying on the flows.")
+    return out
+
+
+def flow_uncertainty(segments, *, confidence_min=DIRECTION_CONFIDENCE_MIN):
+    """Summary of the per-segment flow intervals of the flow ensemble.
+
+    Parameters
+    ----------
+    segments : DataFrame, shape (S, ...)
+        ``segments.csv``: ``perfused``, ``flow_nl_min``, ``flow_p05_nl_min``,
+        ``flow_p95_nl_min``, ``direction_confidence`` (absent columns read as
+        NaN: no ensemble).
+    confidence_min : float, keyword-only
+        Direction confidence from which a direction counts as settled.
+
+    Returns
+    -------
+    dict
+        ``n_perfused``; ``n_ensemble`` (perfused segments with a finite
+        direction confidence); ``n_confident`` and ``confident_fraction``
+        (of those, direction confidence >= ``confidence_min``; the fraction
+        NaN without any); ``n_width`` (perfused segments with a finite
+        interval and a non-zero flow); ``relative_width_median`` and
+        ``relative_width_p90``, the median and 90th percentile of
+        ``(p95 - p05) / |flow|`` (dimensionless, NaN without any);
+        ``n_interval_includes_zero`` (perfused segments whose 5-95 %
+        interval reaches zero or the opposite direction).
+    """
+    perf = _bool_col(segments, "perfused")
+    q, lo, hi = (_col(segments, c) for c in ("flow_nl_min", "flow_p05_nl_min", "flow_p95_nl_min"))
+    conf = _col(segments, "direction_confidence")
+    has_conf = perf & np.isfinite(conf)
+    n_conf = int((conf[has_conf] >= confidence_min).sum())
+    w_ok = perf & np.isfinite(q) & np.isfinite(lo) & np.isfinite(hi) & (q != 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = (hi - lo)[w_ok] / np.abs(q[w_ok])
+    return {
+        "n_perfused": int(perf.sum()),
+        "n_ensemble": int(has_conf.sum()),
+        "n_confident": n_conf,
+        "confident_fraction": n_conf / has_conf.sum() if has_conf.any() else float("nan"),
+        "n_width": int(w_ok.sum()),
+        "relative_width_median": float(np.median(rel)) if len(rel) else float("nan"),
+        "relative_width_p90": float(np.percentile(rel, 90)) if len(rel) else float("nan"),
+        "n_interval_includes_zero": int((w_ok & (lo <= 0) & (hi >= 0)).sum()),
+    }
+
+
+def _class_columns(data):
+    """Perfused segments per plot column: the diameter classes, then all; with the class bounds."""
+    from .flow import DIAMETER_CLASSES
+
+    cfg = _flow_cfg(data)
+    cap, small = float(cfg["capillary_max_diameter_um"]), float(cfg["small_vessel_max_diameter_um"])
+    perf = _bool_col(data.segments, "perfused")
+    cls = diameter_class(2 * _col(data.segments, "radius_um"), capillary_max_um=cap, small_max_um=small)
+    names = list(DIAMETER_CLASSES) + [_ALL]
+    sel = [perf & (cls == k) for k in range(len(DIAMETER_CLASSES))] + [perf]
+    bounds = {DIAMETER_CLASSES[0]: f"< {cap:g} µm", DIAMETER_CLASSES[1]: f"{cap:g}–{small:g} µm",
+              DIAMETER_CLASSES[2]: f"> {small:g} µm", _ALL: "perfused"}
+    return names, sel, bounds
+
+
+def _class_panel(ax, data, quantity, column, ylabel, summary):
+    """Box and points per diameter class for one quantity, published ranges shaded; returns legend handles."""
+    from matplotlib.patches import Patch
+
+    from .flow import PLAUSIBLE, plausibility_warnings
+
+    names, sel, bounds = _class_columns(data)
+    v = _col(data.segments, column)
+    vals = [v[s & np.isfinite(v) & (v > 0)] for s in sel]
+    pos = np.arange(len(names))
+    colours = [OKABE_ITO[0], OKABE_ITO[1], OKABE_ITO[3], "#555555"]
+    rng = np.random.default_rng(0)  # fixed jitter: the same figure every run
+    for p, d, c, n in zip(pos, vals, colours, names):
+        if len(d):
+            ax.boxplot([d], positions=[p], widths=0.55, showfliers=False, medianprops=dict(color="k", lw=1.5),
+                       boxprops=dict(color="#555555"), whiskerprops=dict(color="#555555"),
+                       capprops=dict(color="#555555"))
+            ax.scatter(p + rng.uniform(-0.14, 0.14, len(d)), d, s=10, color=c, alpha=0.6, lw=0, zorder=3,
+                       gid=f"{quantity}-{n}")
+        else:
+            ax.text(p, 0.5, "no perfused\nsegments", ha="center", va="center", fontsize=8, color="#555555",
+                    transform=ax.get_xaxis_transform())
+    # Each range keeps its colour (its place in PLAUSIBLE) across both panels.
+    ranges = [(i, k, lo, hi, _what(what)) for i, (k, lo, hi, what, _) in enumerate(PLAUSIBLE)
+              if _plausible_target(k)[0] == quantity]
+    # Axis limits from the segments and the finite, positive ends of the
+    # ranges drawn: a range's lower end of 0 must not pull a log axis down.
+    ends = [e for _, _, lo, hi, _ in ranges for e in (lo, hi) if math.isfinite(e) and e > 0]
+    # The checked values too, so that a value far outside its range is drawn where it is.
+    ends += [v for v in (_num(summary.get(k)) for _, k, _, _, _ in ranges) if math.isfinite(v) and v > 0]
+    ends = np.array(ends, float)
+    allv = np.concatenate(vals + [ends])
+    handles = []
+    if not len(np.concatenate(vals)):
+        _no_data(ax, "no perfused segments")
+        allv = ends if len(ends) else np.array([1.0])
+    log = allv.max() > 10 * allv.min()
+    ymin, ymax = (allv.min() / 1.6, allv.max() * 1.6) if log else (0.0, allv.max() * 1.12)
+    for i, key, lo, hi, what in ranges:
+        cls = _plausible_target(key)[1]
+        # A range over all segments spans the panel; a class's spans its column.
+        x0, x1 = (-0.5, pos[-1] + 0.5) if cls == _ALL else (names.index(cls) - 0.45, names.index(cls) + 0.45)
+        colour = _BAND_COLOURS[i % len(_BAND_COLOURS)]
+        unit = _unit(key)
+        ax.fill_between([x0, x1], max(lo, ymin), min(hi, ymax), color=colour, alpha=_BAND_ALPHA, lw=0, zorder=0,
+                        gid=f"band-{key}")
+        handles.append(Patch(color=colour, alpha=_BAND_ALPHA + 0.15,
+                             label=f"published range, {what}: {lo:g}–{hi:g} {unit}"))
+        val = _num(summary.get(key))
+        if math.isfinite(val) and val > 0:
+            inside = not plausibility_warnings({key: val})  # the flow step's own rule
+            xm = names.index(cls)
+            ax.plot([xm], [val], ls="none", marker="D", ms=7, mec="k",
+                    mfc="white" if inside else OKABE_ITO[3], zorder=5, gid=f"value-{key}")
+            handles.append(Line2D([], [], ls="none", marker="D", ms=7, mec="k",
+                                  mfc="white" if inside else OKABE_ITO[3],
+                                  label=f"model {what}: {val:.3g} {unit}" + ("" if inside else " (outside)")))
+    ax.set_xlim(-0.5, pos[-1] + 0.5)
+    ax.set_ylim(ymin, ymax)
+    if log:
+        _log_axes(ax, y=[ymin, ymax])
+    ax.set_xticks(pos)
+    ax.set_xticklabels([f"{n}\n{bounds[n]}\nn = {len(d)}" for n, d in zip(names, vals)], fontsize=8)
+    ax.set_xlabel("diameter class (µm)")
+    ax.set_ylabel(ylabel + (", log scale)" if log else ")"))
+    return handles
+
+
+def figure_flow_plausibility(data, notes):
+    """Mean speed and wall shear stress per diameter class against published ranges.
+
+    Parameters
+    ----------
+    data : SampleData
+    notes : list of str
+        Unused; the common figure signature.
+
+    Returns
+    -------
+    Figure
+        Two panels, mean speed (mm/s) and wall shear stress (Pa) of the
+        perfused segments by diameter class and overall (boxes and points),
+        the ranges of :data:`pipeline.flow.PLAUSIBLE` shaded (gid
+        ``band-KEY``) and the summary value each range checks marked (gid
+        ``value-KEY``).
+    """
+    fig = _new_figure(11.0, 5.4)
+    a1, a2 = fig.subplots(1, 2)
+    h = _class_panel(a1, data, "velocity", "velocity_mm_s", "mean speed (mm/s", data.summary)
+    h += _class_panel(a2, data, "wss", "wss_pa", "wall shear stress (Pa", data.summary)
+    a1.set_title("Mean speed |Q| / (πr²) (model estimate)", fontsize=10)
+    a2.set_title("Wall shear stress 4μ|Q| / (πr³) (model estimate)", fontsize=10)
+    if h:
+        fig.legend(handles=h, fontsize=7, loc="outside lower center", ncols=2)
+    return fig
+
+
+def _caption_plausibility(data):
+    from .flow import PLAUSIBLE
+
+    cfg = _flow_cfg(data)
+    srcs = "; ".join(f"{_what(what)}, {lo:g}–{hi:g} {_unit(k)}: {src}" for k, lo, hi, what, src in PLAUSIBLE)
+    return ("Perfused segments by diameter 2r: capillary below "
+            f"{cfg['capillary_max_diameter_um']:g} µm, small up to {cfg['small_vessel_max_diameter_um']:g} µm, "
+            "large above (flow.capillary_max_diameter_um, flow.small_vessel_max_diameter_um), and all together. "
+            "Boxes: median and quartiles, whiskers to 1.5 interquartile ranges; points: segments. Shaded: the "
+            "published physiological range of each statistic the flow step checks, over the class it concerns; "
+            "diamonds: the model's value of that statistic (filled: outside the range). Ranges and sources: "
+            f"{srcs}.")
+
+
+def figure_flow_intervals(data, notes):
+    """Each perfused segment's flow estimate against its ensemble interval.
+
+    Parameters
+    ----------
+    data : SampleData
+    notes : list of str
+        Receives a remark when no segment has an interval.
+
+    Returns
+    -------
+    Figure
+        |flow| (x, log) against the 5th-95th percentile of the ensemble's
+        flows in the estimate's direction (vertical lines, gid
+        ``intervals``; intervals reaching zero or the opposite direction run
+        to the bottom of the axis and end in a triangle, gid ``to-zero``),
+        the estimate on the identity line (gid ``identity``).
+    """
+    fig = _new_figure(9.0, 5.0)
+    ax = fig.add_subplot()
+    s = data.segments
+    q, lo, hi = (_col(s, c) for c in ("flow_nl_min", "flow_p05_nl_min", "flow_p95_nl_min"))
+    conf = _col(s, "direction_confidence")
+    ok = _bool_col(s, "perfused") & np.isfinite(q) & np.isfinite(lo) & np.isfinite(hi) & (q != 0)
+    if not ok.any():
+        _no_data(ax, "no flow intervals (no ensemble)")
+        notes.append("No segment has a flow interval (flow.ensemble_size 0, or nothing perfused).")
+        ax.set_xlabel("|flow| estimate (nL/min)")
+        ax.set_ylabel("flow, 5th–95th percentile (nL/min)")
+        return fig
+    sign = np.sign(q[ok])
+    a = np.abs(q[ok])
+    # In the estimate's direction, so a positive interval is one that keeps it.
+    b0, b1 = np.minimum(sign * lo[ok], sign * hi[ok]), np.maximum(sign * lo[ok], sign * hi[ok])
+    zero = b0 <= 0
+    pos = np.concatenate([a, b0[~zero], b1[b1 > 0]])
+    ymin, ymax = pos.min() / 2.0, pos.max() * 2.0
+    xmin, xmax = a.min() / 1.6, a.max() * 1.6
+    settled = np.nan_to_num(conf[ok], nan=0.0) >= DIRECTION_CONFIDENCE_MIN
+    colours = np.where(settled[:, None], np.array([to_rgba(OKABE_ITO[0], 0.7)]),
+                       np.array([to_rgba(OKABE_ITO[3], 0.9)]))
+    segs = np.stack([np.c_[a, np.where(zero, ymin, b0)], np.c_[a, np.clip(b1, ymin, None)]], axis=1)
+    ax.add_collection(LineCollection(segs, colors=colours, linewidths=1.4, zorder=3, gid="intervals"))
+    ax.plot([min(xmin, ymin), max(xmax, ymax)], [min(xmin, ymin), max(xmax, ymax)], color="#777777", lw=0.8,
+            ls="--", zorder=1, gid="identity", label="estimate (y = x)")
+    ax.scatter(a, a, s=10, color="k", zorder=4, lw=0, label=f"segment estimate ({ok.sum()})")
+    if zero.any():
+        ax.scatter(a[zero], np.full(zero.sum(), ymin), marker="v", s=30, color=OKABE_ITO[3], zorder=5,
+                   clip_on=False, gid="to-zero",
+                   label=f"interval reaches zero or reverses ({zero.sum()})")
+    ax.plot([], [], color=OKABE_ITO[0], lw=1.4,
+            label=f"5–95 % interval, direction confidence ≥ {DIRECTION_CONFIDENCE_MIN:g} ({settled.sum()})")
+    if (~settled).any():
+        ax.plot([], [], color=OKABE_ITO[3], lw=1.4,
+                label=f"5–95 % interval, direction confidence < {DIRECTION_CONFIDENCE_MIN:g} ({(~settled).sum()})")
+    # The widest relative intervals are named, so they can be found in segments.csv.
+    ids = _col(s, "segment_id")[ok]
+    rel = (b1 - b0) / a
+    for i in np.argsort(-rel, kind="stable")[: min(5, len(rel))]:
+        if np.isfinite(ids[i]):
+            ax.annotate(f"{int(ids[i])}", (a[i], max(b1[i], ymin)), xytext=(3, 3), textcoords="offset points",
+                        fontsize=7, color="#333333")
+    ax.set_xlim(xmin, xmax)
+    ax.set_ylim(ymin, ymax)
+    _log_axes(ax, x=[xmin, xmax], y=[ymin, ymax])
+    ax.legend(fontsize=7, loc="upper left")
+    ax.set_xlabel("|flow| estimate (nL/min, log scale)")
+    ax.set_ylabel("flow 5–95 % interval, in the estimate's direction (nL/min, log scale)")
+    ax.set_title("Flow estimates and their intervals; numbers: segment ids of the widest")
+    return fig
+
+
+def _caption_intervals(data):
+    cfg = _flow_cfg(data)
+    k, floor, spread = int(cfg["ensemble_size"]), float(cfg["radius_uncertainty_floor"]), float(cfg["target_spread"])
+    estimated = cfg.get("boundary") == "estimate"
+    text = (f"Each perfused segment: its flow estimate (dot on the dashed identity line) and the 5th–95th "
+            f"percentile of its flow over an ensemble of {k} members (vertical line, in the estimate's direction; "
+            "a line that reaches the bottom axis includes zero flow or the opposite direction). Each member "
+            "scales every segment's radius by a lognormal factor of its measured radius uncertainty (the spread "
+            "of its wall-fit radii over their number of independent fits, combined with a floor of "
+            f"{100 * floor:g} % for the wall fit's systematic error)")
+    if estimated:
+        text += (f" and the target shear rate of the boundary estimate by a lognormal factor of log-sd {spread:g} "
+                 "for the whole network times one of half that per segment (the spread of plausible boundary "
+                 "conditions); each member is a first-order update of the estimate with its target flow directions "
+                 "kept, so another choice of directions by the estimate is not in the interval")
+    text += ("; viscosities stay at their converged values. Errors of the segmentation itself (missed or false "
+             "vessels) and of the flow model are not in the interval.")
+    return text
+
+
 _SAMPLE_BUILDERS = {
     "map_level": (figure_map_level, "Map by branching level",
                   "Projection of the mask along z (grey) with centrelines coloured by branching level "
@@ -780,6 +1207,10 @@ _SAMPLE_BUILDERS = {
     "flow_radius": (figure_flow_radius, "Flow against radius",
                     "Model flow per perfused segment on log-log axes. The dashed guide has slope 3: Murray's "
                     "law predicts Q ∝ r³."),
+    # Captions that name the run's settings are built from the data.
+    "flow_plausibility": (figure_flow_plausibility, "Speed and wall shear stress against published ranges",
+                          _caption_plausibility),
+    "flow_intervals": (figure_flow_intervals, "Flow intervals", _caption_intervals),
 }
 
 
@@ -799,14 +1230,14 @@ def sample_figures(data, notes):
     out = {}
     names = list(SAMPLE_FIGURES)
     if not data.has_flow:
-        names = [n for n in names if n not in ("map_wss", "wss_diameter", "flow_radius")]
+        names = [n for n in names if n not in FLOW_FIGURES]
         notes.append("The flow model was not run (or solved nothing), so the flow figures are left out.")
     if data.bifurcations.empty:
         names = [n for n in names if n not in ("murray", "exponents")]
         notes.append("The network has no bifurcations, so the Murray figures are left out.")
     for n in names:
         fn, title, caption = _SAMPLE_BUILDERS[n]
-        out[n] = (fn(data, notes), title, caption)
+        out[n] = (fn(data, notes), title, caption(data) if callable(caption) else caption)
     return out
 
 
@@ -1010,8 +1441,9 @@ def _sample_report(out, *, mask):
              f"{_esc(run.get('vesselflow_version', '?'))}.</p>",
              f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)}</div>",
              "<nav><a href=\"#inputs\">Inputs</a><a href=\"#warnings\">Warnings</a><a href=\"#summary\">Summary</a>"
-             "<a href=\"#figures\">Figures</a><a href=\"#levels\">Levels</a><a href=\"#bifurcations\">Bifurcations"
-             "</a><a href=\"#config\">Configuration</a></nav>"]
+             "<a href=\"#figures\">Figures</a><a href=\"#plausibility\">Plausibility</a><a href=\"#uncertainty\">"
+             "Uncertainty</a><a href=\"#levels\">Levels</a><a href=\"#bifurcations\">Bifurcations</a>"
+             "<a href=\"#config\">Configuration</a></nav>"]
     spacing = run.get("spacing_um")
     parts.append("<h2 id=\"inputs\">Inputs</h2>" + _kv_table([
         ("mask file", inp.get("path", "?")),
@@ -1034,12 +1466,17 @@ def _sample_report(out, *, mask):
                  + ("<h3>Run notes</h3>" + _warnings_html(run["notes"]) if run.get("notes") else ""))
     parts.append("<h2 id=\"summary\">Summary</h2>" + _kv_table(_summary_rows(summary)))
     parts.append("<h2 id=\"figures\">Figures</h2>")
-    parts.append("<div class=\"grid\">" + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered)
-                 + "</div>")
+    parts.append("<div class=\"grid\">" + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
+                                               if r.name not in _SECTION_FIGURES) + "</div>")
+    own = {r.name: r for r in rendered if r.name in _SECTION_FIGURES}
+    parts.append("<h2 id=\"plausibility\">Flow plausibility</h2>"
+                 + _plausibility_html(data, own.get("flow_plausibility")))
+    parts.append("<h2 id=\"uncertainty\">Uncertainty of the flows</h2>"
+                 + _uncertainty_html(data, own.get("flow_intervals")))
     parts.append("<h2 id=\"levels\">Branching levels</h2>"
                  + (_table(data.levels) if not data.levels.empty else "<p>No levels.</p>"))
-    parts.append("<h2 id=\"bifurcations\">Flagged bifurcations</h2>"
-                 + _bifurcation_html(data.bifurcations, review))
+    parts.append("<h2 id=\"bifurcations\">Bifurcations</h2>"
+                 + _bifurcation_html(data.bifurcations, review, summary))
     flow = run.get("flow") or {}
     if flow:
         parts.append("<h2 id=\"flow\">Flow model</h2>" + _kv_table([(k, _fmt(v)) for k, v in flow.items()]))
@@ -1054,21 +1491,160 @@ def _sample_report(out, *, mask):
     return _page(f"vesselflow report: {data.name}", "\n".join(parts)), rendered
 
 
-def _bifurcation_html(b, review):
+def _plausibility_html(data, fig):
+    """The flow plausibility section: warnings, the checked statistics, the class table and the figure."""
+    from .flow import DIAMETER_CLASSES
+
+    s = data.summary
+    if not data.has_flow:
+        return "<p>The flow model was not run (or solved nothing), so there is nothing to check.</p>"
+    parts = ["<p>The flows are model estimates. Here the model's mean speeds and wall shear stresses are set "
+             "against published physiological ranges: a value outside them is a reason to check the boundary "
+             "conditions and the radii, not a finding about the tissue.</p>"]
+    msgs = plausibility_messages(s)
+    if msgs:
+        parts.append("<div class=\"caution\"><b>Outside the published ranges.</b>" + _warnings_html(msgs)
+                     + "</div>")
+    else:
+        parts.append("<p>No warning: every checked statistic is within its published range and at least half "
+                     "of the vessel length is perfused.</p>")
+    frac, total = _num(s.get("perfused_length_fraction")), _num(s.get("total_length_mm"))
+    parts.append(_kv_table([
+        ("perfused length fraction", f"{100 * frac:.1f} %" if math.isfinite(frac) else "–"),
+        ("vessel length (mm)", _fmt(total)),
+    ]))
+    checks = plausibility_checks(s)
+    parts.append("<h3>Checked statistics</h3>" + _table(pd.DataFrame({
+        "statistic": [c["what"] for c in checks],
+        "model value": [f"{_fmt(c['value'])} {c['unit']}".strip() for c in checks],
+        "published range": [f"{c['low']:g}–{c['high']:g} {c['unit']}".strip() for c in checks],
+        "verdict": [c["verdict"] for c in checks],
+        "source": [c["source"] for c in checks],
+    }), classes="checks", row_class=["flag" if c["verdict"] in ("above", "below") else "" for c in checks]))
+    cfg = _flow_cfg(data)
+    cap, small = float(cfg["capillary_max_diameter_um"]), float(cfg["small_vessel_max_diameter_um"])
+    bounds = (f"< {cap:g}", f"{cap:g}–{small:g}", f"> {small:g}")
+    rows = []
+    for name, b in zip(DIAMETER_CLASSES, bounds):
+        rows.append({"class": name, "diameter (µm)": b,
+                     "perfused segments": s.get(f"n_perfused_{name}"),
+                     # Whole µm: the digits past them are below the centreline's resolution.
+                     "perfused length (µm)": _round_or_none(s.get(f"perfused_length_um_{name}")),
+                     "median speed (mm/s)": s.get(f"velocity_median_mm_s_{name}"),
+                     "95th percentile speed (mm/s)": s.get(f"velocity_p95_mm_s_{name}"),
+                     "median wall shear stress (Pa)": s.get(f"wss_median_pa_{name}"),
+                     "99th percentile wall shear stress (Pa)": s.get(f"wss_p99_pa_{name}")})
+    parts.append("<h3>By diameter class</h3><p class=\"note\">Perfused segments only (summary.json).</p>"
+                 + _table(pd.DataFrame(rows), classes="classes"))
+    if fig is not None:
+        parts.append(_figure_html(fig, anchor=f"fig-{fig.name}"))
+    return "".join(parts)
+
+
+def _round_or_none(v):
+    f = _num(v)
+    return int(round(f)) if math.isfinite(f) else None
+
+
+def _uncertainty_html(data, fig):
+    """The uncertainty section: the ensemble's interval statistics and the interval figure."""
+    if not data.has_flow:
+        return "<p>The flow model was not run (or solved nothing), so there are no flow intervals.</p>"
+    u = flow_uncertainty(data.segments)
+    if u["n_ensemble"] == 0 and u["n_width"] == 0:
+        return ("<p>No flow intervals: the ensemble was not run (flow.ensemble_size 0) or nothing is "
+                "perfused.</p>")
+    k = int(_flow_cfg(data)["ensemble_size"])
+    conf = (f"{100 * u['confident_fraction']:.1f} % ({u['n_confident']} of {u['n_ensemble']})"
+            if u["n_ensemble"] else "–")
+    parts = ["<p>The flow step recomputes the flows for an ensemble of perturbed radii and boundary targets; "
+             "each segment gets the 5th and 95th percentile of its flow over the members and the share of "
+             "members whose flow runs the way of the estimate (direction confidence). Wide intervals and low confidence mark "
+             "the flows the image does not pin down.</p>",
+             _kv_table([
+                 ("ensemble members (flow.ensemble_size)", _fmt(k)),
+                 ("perfused segments", _fmt(u["n_perfused"])),
+                 (f"direction confidence ≥ {DIRECTION_CONFIDENCE_MIN:g} (share of perfused segments)", conf),
+                 ("median relative interval width (p95 − p05) / |flow|", _fmt(u["relative_width_median"])),
+                 ("90th percentile of the relative interval width", _fmt(u["relative_width_p90"])),
+                 ("intervals including zero flow or the opposite direction",
+                  f"{u['n_interval_includes_zero']} of {u['n_width']}"),
+             ])]
+    if fig is not None:
+        parts.append(_figure_html(fig, anchor=f"fig-{fig.name}"))
+    return "".join(parts)
+
+
+# Plain words for the reasons a junction is not judged (pipeline.bifurcations.UNCERTAIN_CODES);
+# a code without words here is shown by its name alone.
+_UNCERTAIN_WORDS = {
+    "low_confidence": "a radius measured over too few points or on a segment too short",
+    "ratio_unresolved": "the Murray ratio's uncertainty reaches from the cube law to the flag limit",
+    "mixed_flow": "flow neither diverges nor converges (a crossing, or arms without flow)",
+    "capillary": "a capillary-sized parent: capillary meshes do not follow Murray's law",
+}
+
+
+def _severity_text(v):
+    f = _num(v)
+    if math.isinf(f) and f > 0:
+        return "∞"
+    return _fmt(f)
+
+
+def _bifurcation_html(b, review, summary=None):
+    """Flagged junctions most severe first, uncertain ones counted apart, Murray medians per flow pattern."""
     if b.empty or "flagged" not in b.columns:
         return "<p>No bifurcations.</p>"
-    fl = b[_bool_col(b, "flagged")]
-    head = f"<p>{len(fl)} of {len(b)} bifurcations flagged; the node id is the number on the maps.</p>"
+    summary = summary or {}
+    flagged = _bool_col(b, "flagged")
+    uncertain = _bool_col(b, "uncertain")
+    fl = b[flagged]
+    how = (", listed below from the most severe (severity: the largest deviation from the cube law or the "
+           "optimal angle, in standard uncertainties, among the quantities outside their limits; ∞ where the "
+           "uncertainty is 0); the node id is the number on the maps." if len(fl) else ".")
+    parts = [f"<p>{len(fl)} of {len(b)} bifurcations flagged{how}</p>"]
+    if uncertain.any():
+        codes = b.loc[uncertain, "uncertain_reasons"] if "uncertain_reasons" in b.columns else pd.Series([], dtype=str)
+        from .bifurcations import UNCERTAIN_CODES
+
+        codes = codes.fillna("").astype(str)
+        counts = {c: int(codes.str.contains(rf"(?:^|;){c}(?:;|$)").sum()) for c in UNCERTAIN_CODES}
+        parts.append(f"<p>{int(uncertain.sum())} uncertain junction(s) are not judged and not listed (the "
+                     "CSV has them, column uncertain); a junction may have several reasons:</p>"
+                     + _table(pd.DataFrame({"reason": list(counts),
+                                            "meaning": [_UNCERTAIN_WORDS.get(c, "") for c in counts],
+                                            "junctions": list(counts.values())}), classes="uncertain"))
+    else:
+        parts.append("<p>No junction is uncertain: every one was judged.</p>")
+    patterns = [p for p in ("diverging", "converging") if f"murray_ratio_median_{p}" in summary]
+    if patterns:
+        rows = [{"flow pattern": p, "junctions": summary.get(f"bifurcations_{p}"),
+                 "median Murray ratio (r1³+r2³)/r0³": summary.get(f"murray_ratio_median_{p}"),
+                 "median junction exponent": summary.get(f"murray_exponent_median_{p}")} for p in patterns]
+        rows.append({"flow pattern": "all", "junctions": summary.get("bifurcations", len(b)),
+                     "median Murray ratio (r1³+r2³)/r0³": summary.get("murray_ratio_median"),
+                     "median junction exponent": summary.get("murray_exponent_median")})
+        parts.append("<h3>Murray's law by flow pattern</h3><p class=\"note\">Under the cube law the ratio is 1 "
+                     "and the exponent 3 (Murray 1926), for feeding parents (diverging) and draining trunks "
+                     "(converging) alike. Medians over every junction of the pattern, uncertain ones included "
+                     "(summary.json).</p>" + _table(pd.DataFrame(rows), classes="murray"))
     if fl.empty:
-        return head
-    cols = [c for c in ("node_id", "level", "degree", "radius_parent_um", "radius_daughter1_um",
-                        "radius_daughter2_um", "murray_ratio", "murray_exponent", "angle_deviation_deg",
-                        "low_confidence", "flag_reasons") if c in fl.columns]
+        return "".join(parts)
+    fl = fl.sort_values("severity", ascending=False, kind="mergesort", na_position="last") \
+        if "severity" in fl.columns else fl
+    cols = [c for c in ("node_id", "severity", "flow_pattern", "level", "degree", "radius_parent_um",
+                        "radius_daughter1_um", "radius_daughter2_um", "murray_ratio", "murray_exponent",
+                        "angle_deviation_deg", "low_confidence", "flag_reasons") if c in fl.columns]
     fl = fl[cols].copy()
+    if "severity" in fl.columns:
+        fl["severity"] = [_severity_text(v) for v in fl["severity"]]
     if "flag_reasons" in fl.columns:
         fl["flag_reasons"] = fl["flag_reasons"].fillna("").astype(str).str.replace(";", ", ")
     fl, note = _review_table(fl, review)
-    return head + (f"<p class=\"note\">{_esc(note)}</p>" if note else "") + _table(fl, classes="bif")
+    parts.append("<h3>Flagged junctions</h3>" + (f"<p class=\"note\">{_esc(note)}</p>" if note else "")
+                 + _table(fl, classes="bif"))
+    return "".join(parts)
 
 
 def _read_table(path, required, what):

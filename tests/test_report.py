@@ -253,8 +253,11 @@ def test_no_flow_sample_leaves_flow_figures_out(sample, tmp_path):
     out = tmp_path / "noflow"
     assert main(["analyze", str(tif), "-o", str(out), "--no-flow", "--report", "--quiet"]) == 0
     names = {p.stem for p in (out / "figures").glob("*.png")}
-    assert names == set(report.SAMPLE_FIGURES) - {"map_wss", "wss_diameter", "flow_radius"}
-    assert "flow model was not run" in (out / "report.html").read_text(encoding="utf-8")
+    assert names == set(report.SAMPLE_FIGURES) - {"map_wss", "wss_diameter", "flow_radius", "flow_plausibility",
+                                                   "flow_intervals"}
+    text = (out / "report.html").read_text(encoding="utf-8")
+    assert "flow model was not run" in text
+    assert "nothing to check" in _section(text, "plausibility") and "no flow intervals" in _section(text, "uncertainty")
 
 
 # --------------------------------------------------------------------------- CLI and atomic writes
@@ -589,3 +592,370 @@ def test_a_bad_review_is_a_note_in_the_study_report(study, tmp_path, capsys):
     section = section[:section.index("</section>")]
     assert "The review of this sample is not valid" in section and "123456789012345678901234567890" in section
     assert text.count("The review of this sample is not valid") == 2  # the section and the report's notes
+
+
+# --------------------------------------------------------------------------- flow plausibility, uncertainty, junctions
+
+
+@pytest.fixture(scope="module")
+def bed(tmp_path_factory):
+    """A small looping capillary bed: converging and mixed junctions, uncertain ones, intervals reaching zero."""
+    d = tmp_path_factory.mktemp("bed")
+    net = synthetic.capillary_bed(shape_um=(40.0, 70.0, 70.0), seed=1)
+    mask, truth = synthetic.rasterize(net, spacing=(1.0, 1.0, 1.0), seed=1)
+    synthetic.write_volume(d / "bed.tif", mask, spacing=(1.0, 1.0, 1.0), truth=truth)
+    out = d / "bed"
+    assert main(["analyze", str(d / "bed.tif"), "-o", str(out), "--report", "--quiet"]) == 0
+    return out
+
+
+@pytest.fixture(params=["sample", "bed"])
+def result(request):
+    """Each analysed result folder: the tree (all diverging) and the bed (loops, every flow pattern)."""
+    got = request.getfixturevalue(request.param)
+    return got[1] if request.param == "sample" else got
+
+
+class _Tables(HTMLParser):
+    """Every table of a piece of HTML as its class and rows of cell texts (header row first)."""
+
+    def __init__(self):
+        super().__init__()
+        self.tables, self._row, self._cell = [], None, None
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "table":
+            self.tables.append((dict(attrs).get("class"), []))
+        elif tag == "tr":
+            self._row = []
+        elif tag in ("td", "th"):
+            self._cell = []
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th"):
+            self._row.append("".join(self._cell).strip())
+            self._cell = None
+        elif tag == "tr":
+            self.tables[-1][1].append(self._row)
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell.append(data)
+
+
+def _section(text, sid):
+    """The HTML of the section whose heading has id ``sid``, up to the next section."""
+    start = text.index(f'<h2 id="{sid}"')
+    end = text.find("<h2", start + 1)
+    return text[start:end if end > 0 else None]
+
+
+def _tables(html_text, cls):
+    p = _Tables()
+    p.feed(html_text)
+    return [pd.DataFrame(rows[1:], columns=rows[0]) for c, rows in p.tables if c == cls]
+
+
+def _kv(html_text):
+    p = _Tables()
+    p.feed(html_text)
+    return {r[0]: r[1] for c, rows in p.tables if c == "kv" for r in rows}
+
+
+def _shown(cell):
+    """A number as the report shows it; None for the dash of a missing value."""
+    return None if cell == "–" else float(cell.split()[0])
+
+
+# Numbers are shown to three significant digits: rounding moves a value by at
+# most half a unit of the third digit, 0.5 % of it.
+_SHOWN_RTOL = 5e-3
+
+
+def _rewrite(folder, name, df_or_obj):
+    """Replace one file of a copied result and record its new checksum, as a changed result would be."""
+    from pipeline.tables import file_digest
+
+    path = folder / name
+    if isinstance(df_or_obj, pd.DataFrame):
+        df_or_obj.to_csv(path, index=False)
+    else:
+        path.write_text(json.dumps(df_or_obj), encoding="utf-8")
+    run = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+    run["files"][name] = file_digest(path)
+    (folder / "run.json").write_text(json.dumps(run), encoding="utf-8")
+
+
+def _classes(seg, run):
+    # The class bounds the run used (flow.capillary_max_diameter_um 8 and
+    # flow.small_vessel_max_diameter_um 30 by default): capillary below,
+    # small up to and including, large above.
+    flow = run["config"]["flow"]
+    d = 2 * seg["radius_um"].to_numpy(float)
+    perf = seg["perfused"].astype(bool).to_numpy()
+    cap, small = flow["capillary_max_diameter_um"], flow["small_vessel_max_diameter_um"]
+    return {"capillary": perf & (d < cap), "small": perf & (d >= cap) & (d <= small), "large": perf & (d > small),
+            "all": perf}
+
+
+def test_plausibility_section_numbers_match_the_tables(result):
+    text = (result / "report.html").read_text(encoding="utf-8")
+    sec = _section(text, "plausibility")
+    seg = pd.read_csv(result / "segments.csv")
+    run = json.loads((result / "run.json").read_text())
+    perf = seg["perfused"].astype(bool).to_numpy()
+    length = seg["length_um"].to_numpy(float)
+    # One decimal of a percentage is shown: within 0.05 points.
+    frac = _shown(_kv(sec)["perfused length fraction"])
+    assert frac == pytest.approx(100 * length[perf].sum() / length.sum(), abs=0.05 + 1e-9)
+    table = _tables(sec, "classes")[0].set_index("class")
+    v, w = seg["velocity_mm_s"].to_numpy(float), seg["wss_pa"].to_numpy(float)
+    for name, sel in _classes(seg, run).items():
+        if name == "all":
+            continue
+        row = table.loc[name]
+        assert int(row["perfused segments"]) == sel.sum(), name
+        # Whole µm are shown: within half a µm.
+        assert _shown(row["perfused length (µm)"]) == pytest.approx(length[sel].sum(), abs=0.5 + 1e-9)
+        want = {"median speed (mm/s)": (v, 50), "95th percentile speed (mm/s)": (v, 95),
+                "median wall shear stress (Pa)": (w, 50), "99th percentile wall shear stress (Pa)": (w, 99)}
+        for col, (x, q) in want.items():
+            got = _shown(row[col])
+            if not sel.any():
+                assert got is None, (name, col)
+            else:
+                # numpy's percentile (linear interpolation), as the summary defines them.
+                assert got == pytest.approx(np.percentile(x[sel], q), rel=_SHOWN_RTOL), (name, col)
+    checks = _tables(sec, "checks")[0]
+    assert len(checks) >= 3 and {"within", "above", "below"} >= set(checks["verdict"])
+
+
+def _band(ax, key):
+    """The (x, y) extent of a shaded published range."""
+    band = [c for c in ax.collections if c.get_gid() == f"band-{key}"][0]
+    xy = np.vstack([p.vertices for p in band.get_paths()])
+    return (xy[:, 0].min(), xy[:, 0].max()), (xy[:, 1].min(), xy[:, 1].max())
+
+
+def test_plausibility_figure_shows_classes_and_published_ranges(result):
+    data = report.load_sample(result, read_mip=False)
+    fig = report.figure_flow_plausibility(data, [])
+    av, aw = fig.axes[:2]
+    seg = pd.read_csv(result / "segments.csv")
+    run = json.loads((result / "run.json").read_text())
+    classes = _classes(seg, run)
+    for ax, quantity, col in ((av, "velocity", "velocity_mm_s"), (aw, "wss", "wss_pa")):
+        x = seg[col].to_numpy(float)
+        shown = []
+        for i, (name, sel) in enumerate(classes.items()):
+            want = np.sort(x[sel & (x > 0)])
+            pts = [c for c in ax.collections if c.get_gid() == f"{quantity}-{name}"]
+            if not len(want):
+                assert not pts
+                continue
+            assert np.allclose(np.sort(np.asarray(pts[0].get_offsets())[:, 1]), want, rtol=1e-12)
+            # The box's middle line is the class median (numpy's median).
+            med = [ln for ln in ax.get_lines() if len(ln.get_xdata()) == 2
+                   and np.allclose(ln.get_xdata(), [i - 0.275, i + 0.275])]
+            assert any(np.allclose(ln.get_ydata(), np.median(want)) for ln in med), (quantity, name)
+            shown.append(want)
+        allv = np.concatenate(shown)
+        lo, hi = ax.get_ylim()
+        # Limits from the data and the ranges' ends: not pulled towards 0 by a
+        # range starting at 0 on a log axis. Three decades: the perfused
+        # segments' speeds and the published ranges' ends lie within them.
+        assert ax.get_yscale() == "log" and allv.min() / 1e3 < lo < allv.min() and hi > allv.max()
+    # Red cells in rodent cortical capillaries move at about 0.5-2 mm/s
+    # (Kleinfeld D et al. 1998, PNAS 95:15741; from memory): the shaded range
+    # of the median capillary speed holds that, over the capillary column only.
+    (x0, x1), (y0, y1) = _band(av, "velocity_median_mm_s_capillary")
+    assert y0 <= 0.5 and y1 >= 2.0 and -0.5 <= x0 < x1 <= 0.5
+    # Arteriolar wall shear stress of about 1-5 Pa (Reneman RS, Hoeks APG 2008,
+    # Med Biol Eng Comput 46:499): inside the range for the 99th percentile,
+    # as far as the axis shows it, over every column.
+    (x0, x1), (y0, y1) = _band(aw, "wss_p99_pa")
+    assert y0 <= max(1.0, aw.get_ylim()[0]) and y1 >= 5.0 and x0 <= -0.5 and x1 >= 2.5
+    assert y0 == pytest.approx(aw.get_ylim()[0])  # a range from 0 is drawn from the axis bottom
+
+
+def test_plausibility_caption_names_the_sources(sample):
+    text = (sample[1] / "report.html").read_text(encoding="utf-8")
+    fig = _section(text, "plausibility")
+    fig = fig[fig.index("<figcaption>"):]
+    for source in ("Kleinfeld", "Reneman", "intravital"):
+        assert source in fig, source
+
+
+@pytest.mark.parametrize("key, value, expected", [
+    # 50 mm/s is 25 times the red-cell speed in cortical capillaries
+    # (0.5-2 mm/s, Kleinfeld et al. 1998, PNAS 95:15741; from memory) ...
+    ("velocity_median_mm_s_capillary", 50.0, "Median capillary speed: 50 mm/s in the model, above"),
+    # ... and 1 µm/s is flow all but stopped; 1 mm/s lies inside that range.
+    ("velocity_median_mm_s_capillary", 0.001, "Median capillary speed: 0.001 mm/s in the model, below"),
+    ("velocity_median_mm_s_capillary", 1.0, None),
+    # Less than half of the length perfused: the statistics describe the minority of the network.
+    ("perfused_length_fraction", 0.3, "Only 30 % of the vessel length carries flow"),
+], ids=["capillary-fast", "capillary-stalled", "capillary-typical", "perfused-30pc"])
+def test_plausibility_warning_appears_only_out_of_range(sample, tmp_path, key, value, expected):
+    _, out, _ = sample
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    summary = json.loads((copy / "summary.json").read_text())
+    summary[key] = value
+    _rewrite(copy, "summary.json", summary)
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    sec = _section((copy / "report.html").read_text(encoding="utf-8"), "plausibility")
+    if expected is None:
+        assert "No warning" in sec and "Outside the published ranges" not in sec
+        assert "capillary speed" in sec  # the check is still listed, as within
+    else:
+        assert "Outside the published ranges" in sec and expected in sec
+        assert sec.count("<li>") == 1  # only the changed statistic
+
+
+def _uncertainty_numpy(seg):
+    # Straight from the columns' definitions (flow.py, segments.csv).
+    perf = seg["perfused"].astype(bool).to_numpy()
+    q, lo, hi = (seg[c].to_numpy(float) for c in ("flow_nl_min", "flow_p05_nl_min", "flow_p95_nl_min"))
+    conf = seg["direction_confidence"].to_numpy(float)
+    c = conf[perf & np.isfinite(conf)]
+    ok = perf & np.isfinite(q) & np.isfinite(lo) & np.isfinite(hi) & (q != 0)
+    rel = (hi[ok] - lo[ok]) / np.abs(q[ok])
+    return dict(n_conf=int((c >= 0.9).sum()), n_ens=len(c), share=(c >= 0.9).mean(), median=np.median(rel),
+                p90=np.percentile(rel, 90), zero=int(((lo[ok] <= 0) & (hi[ok] >= 0)).sum()), n_width=int(ok.sum()))
+
+
+def _check_uncertainty_html(folder):
+    seg = pd.read_csv(folder / "segments.csv")
+    want = _uncertainty_numpy(seg)
+    kv = _kv(_section((folder / "report.html").read_text(encoding="utf-8"), "uncertainty"))
+    share = kv["direction confidence ≥ 0.9 (share of perfused segments)"]
+    # One decimal of a percentage is shown: within 0.05 points.
+    assert _shown(share) == pytest.approx(100 * want["share"], abs=0.05 + 1e-9)
+    assert f"({want['n_conf']} of {want['n_ens']})" in share
+    assert _shown(kv["median relative interval width (p95 − p05) / |flow|"]) == pytest.approx(want["median"],
+                                                                                               rel=_SHOWN_RTOL)
+    assert _shown(kv["90th percentile of the relative interval width"]) == pytest.approx(want["p90"],
+                                                                                          rel=_SHOWN_RTOL)
+    assert kv["intervals including zero flow or the opposite direction"] == f"{want['zero']} of {want['n_width']}"
+    # The function behind the table, at full precision.
+    got = report.flow_uncertainty(seg)
+    assert got["n_confident"] == want["n_conf"] and got["n_ensemble"] == want["n_ens"]
+    assert np.isclose(got["relative_width_median"], want["median"], rtol=1e-12)
+    assert got["n_interval_includes_zero"] == want["zero"]
+    return want
+
+
+def test_uncertainty_section_numbers_match_the_tables(result):
+    _check_uncertainty_html(result)
+    assert "lognormal" in _section((result / "report.html").read_text(encoding="utf-8"), "uncertainty")
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_uncertainty_numbers_on_changed_intervals(bed, tmp_path, seed):
+    # Confidences and intervals drawn at random (shares of 16 members, as the
+    # default ensemble gives), so the numbers are not all 1 and the medians
+    # are not the fixture's by chance.
+    copy = tmp_path / "copy"
+    shutil.copytree(bed, copy)
+    seg = pd.read_csv(copy / "segments.csv")
+    rng = np.random.default_rng(seed)
+    perf = seg["perfused"].astype(bool).to_numpy()
+    q = seg["flow_nl_min"].to_numpy(float)
+    seg["direction_confidence"] = np.where(perf, rng.integers(8, 17, len(seg)) / 16, np.nan)
+    seg["flow_p05_nl_min"] = np.where(perf, q - np.abs(q) * rng.uniform(0.0, 1.5, len(seg)), np.nan)
+    seg["flow_p95_nl_min"] = np.where(perf, q + np.abs(q) * rng.uniform(0.0, 1.5, len(seg)), np.nan)
+    _rewrite(copy, "segments.csv", seg)
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    want = _check_uncertainty_html(copy)
+    assert 0 < want["share"] < 1 and want["zero"] > 0  # the draw exercises both sides of each count
+
+
+def test_interval_figure_draws_each_segment_interval(result):
+    data = report.load_sample(result, read_mip=False)
+    ax = report.figure_flow_intervals(data, []).axes[0]
+    seg = pd.read_csv(result / "segments.csv")
+    perf = seg["perfused"].astype(bool).to_numpy()
+    q, lo, hi = (seg[c].to_numpy(float) for c in ("flow_nl_min", "flow_p05_nl_min", "flow_p95_nl_min"))
+    ok = perf & np.isfinite(lo) & np.isfinite(hi) & (q != 0)
+    # In the estimate's direction: the upper end is the larger of s p05 and s p95.
+    s = np.sign(q[ok])
+    top = np.maximum(s * lo[ok], s * hi[ok])
+    bottom = np.minimum(s * lo[ok], s * hi[ok])
+    lines = [c for c in ax.collections if c.get_gid() == "intervals"][0].get_segments()
+    got = np.array([[ln[0, 0], ln[1, 1]] for ln in lines])
+    want = np.c_[np.abs(q[ok]), top]
+    assert np.allclose(got[np.lexsort(got.T)], want[np.lexsort(want.T)], rtol=1e-12)
+    zero = [c for c in ax.collections if c.get_gid() == "to-zero"]
+    assert (len(zero[0].get_offsets()) if zero else 0) == int((bottom <= 0).sum())
+    ymin = ax.get_ylim()[0]
+    # Limits from the data: a decade at most below the smallest positive end shown.
+    smallest = np.concatenate([np.abs(q[ok]), bottom[bottom > 0]]).min()
+    assert smallest / 10 < ymin < smallest
+    ident = [ln for ln in ax.get_lines() if ln.get_gid() == "identity"][0]
+    assert np.allclose(ident.get_xdata(), ident.get_ydata())  # the estimate on y = x
+
+
+def _flagged_table(folder):
+    sec = _section((folder / "report.html").read_text(encoding="utf-8"), "bifurcations")
+    tabs = _tables(sec, "bif")
+    return sec, (tabs[0] if tabs else None)
+
+
+def _severity_order(b):
+    fl = b[b["flagged"].astype(bool)]
+    sev = fl["severity"].to_numpy(float)
+    return fl["node_id"].to_numpy()[np.argsort(-sev, kind="stable")]
+
+
+def test_flagged_junctions_most_severe_first(result):
+    b = pd.read_csv(result / "bifurcations.csv")
+    sec, table = _flagged_table(result)
+    want = _severity_order(b)
+    assert f"{len(want)} of {len(b)} bifurcations flagged" in sec
+    if len(want):  # the tree has several; the bed's capillary-sized junctions are not judged
+        assert table["node_id"].astype(int).tolist() == want.tolist()
+        assert set(table["flow_pattern"]) <= {"diverging", "converging"}  # flagged ones are judged ones
+    else:
+        assert table is None
+    listed = set(table["node_id"].astype(int)) if table is not None else set()
+    unc = b["uncertain"].astype(bool)
+    assert not set(b.loc[unc, "node_id"]) & listed  # uncertain ones are not listed
+    if unc.any():
+        counts = _tables(sec, "uncertain")[0].set_index("reason")["junctions"].astype(int)
+        reasons = b.loc[unc, "uncertain_reasons"].fillna("").str.split(";")
+        for code in set(counts.index) | {c for r in reasons for c in r if c}:
+            assert counts[code] == sum(code in r for r in reasons), code
+        assert f"{int(unc.sum())} uncertain junction(s)" in sec
+    # Murray medians per flow pattern: numpy's median of the finite ratios of that pattern.
+    murray = _tables(sec, "murray")[0].set_index("flow pattern")
+    for pattern in ("diverging", "converging"):
+        r = b.loc[b["flow_pattern"] == pattern, "murray_ratio"].to_numpy(float)
+        r = r[np.isfinite(r)]
+        got = _shown(murray.loc[pattern, "median Murray ratio (r1³+r2³)/r0³"])
+        assert got == (None if not len(r) else pytest.approx(np.median(r), rel=_SHOWN_RTOL)), pattern
+
+
+def test_severity_order_with_infinite_and_uncertain_rows(sample, tmp_path):
+    # An infinite severity (an uncertainty of 0) goes first and reads as ∞;
+    # junctions marked uncertain are counted by reason and never listed.
+    _, out, _ = sample
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    b = pd.read_csv(copy / "bifurcations.csv", dtype={"uncertain_reasons": object})
+    flagged = b.index[b["flagged"].astype(bool)]
+    calm = b.index[~b["flagged"].astype(bool)]
+    assert len(flagged) >= 2 and len(calm) >= 2
+    b.loc[flagged[-1], "severity"] = np.inf
+    b.loc[calm[:2], "uncertain"] = True
+    b.loc[calm[:2], "uncertain_reasons"] = ["mixed_flow", "low_confidence;ratio_unresolved"]
+    _rewrite(copy, "bifurcations.csv", b)
+    assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+    sec, table = _flagged_table(copy)
+    assert table["node_id"].astype(int).tolist() == _severity_order(b).tolist()
+    assert int(table["node_id"].iloc[0]) == int(b.loc[flagged[-1], "node_id"]) and table["severity"].iloc[0] == "∞"
+    sev = [float(v) for v in table["severity"].iloc[1:]]
+    assert sev == sorted(sev, reverse=True)
+    counts = _tables(sec, "uncertain")[0].set_index("reason")["junctions"].astype(int).to_dict()
+    assert {k: v for k, v in counts.items() if v} == {"low_confidence": 1, "ratio_unresolved": 1, "mixed_flow": 1}
+    assert "2 uncertain junction(s)" in sec
