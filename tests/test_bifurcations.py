@@ -1326,3 +1326,27 @@ def test_capillary_junctions_are_not_judged_against_murray(radius, judged):
     else:
         assert row["uncertain"] and "capillary" in row["uncertain_reasons"] and not row["flagged"]
         assert summary["uncertain_counts"]["capillary"] == 1
+
+
+@pytest.mark.parametrize("k", [0.0, 0.01, 0.02])
+def test_direction_bend_of_a_curved_window(k):
+    # A segment along y = k x^2 / 2 (curvature k near the node). The fitting
+    # window runs from skip to fit scale lengths (here 5 to 15 µm). The bend
+    # estimates how far the fitted line is from the tangent at the window's
+    # near end; the independent reference is that angle itself, atan of the
+    # slope difference between the numpy least-squares line through the
+    # window and the tangent k x at x = 5 µm. The parabola model behind the
+    # bend's 3.9 factor is approximate: within 35 %, and 0 for a straight one.
+    from pipeline.bifurcations import _directions
+
+    x = np.linspace(0.0, 60.0, 601)
+    pts = np.column_stack([np.zeros_like(x), k * x**2 / 2, x])
+    d, _, bend = _directions(pts, np.array([0, len(x)]), np.array([0]), np.array([True]),
+                             np.array([5.0]), 1.0, 3.0)
+    xs = np.linspace(5.0, 15.0, 50)
+    slope = np.polyfit(xs, k * xs**2 / 2, 1)[0]
+    reference = np.degrees(abs(np.arctan(slope) - np.arctan(k * 5.0)))
+    if k == 0:
+        assert bend[0] == pytest.approx(0.0, abs=1e-6)
+    else:
+        assert bend[0] == pytest.approx(reference, rel=0.35)
