@@ -696,7 +696,7 @@ def solve_flow(
         # last pressures takes few iterations, where a direct solve would
         # refactorise every time.
         last = state.get("held_x")
-        if last is not None and last.size == A.shape[0] and method == "direct" and A.shape[0] > 5000:
+        if method == "direct" and A.shape[0] > 5000 and cfg["solver"] == "auto":
             method = "cg"
         x, _ = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"],
                              x0=last if last is not None and last.size == A.shape[0] else None)
