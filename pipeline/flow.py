@@ -725,7 +725,7 @@ def solve_flow(
                 solve, u, v, 2.0 * rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=n_nodes,
                 plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
                 min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
-                rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"],
+                rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=10,
             )
 
         if estimate:

@@ -421,3 +421,24 @@ def test_iterate_errors_name_the_option(kwargs, fragment):
 def test_phase_separation_rejects_bad_fraction():
     with pytest.raises(InputError, match="flow_fraction"):
         phase_separation(1.5, 10.0, 8.0, 8.0, 0.45)
+
+
+def test_an_oscillating_iteration_stops_early_when_asked():
+    # A solve that alternates between two flow fields never settles: the
+    # flow change stays at the same size. With stall_window 3 the iteration
+    # stops after 6 solves (no progress over the last 3), not after 40.
+    u, v, d, length, n_nodes, fixed, p_fixed = net = lattice(0)
+    solve = make_solve(*net)
+    calls = []
+
+    def alternating(mu):
+        q = solve(mu)
+        calls.append(1)
+        return q * (1.0 if len(calls) % 2 else 0.8)
+
+    res = iterate_rheology(alternating, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, max_iterations=40,
+                           stall_window=3)
+    assert not res.converged and res.iterations == 6
+    assert "no progress" in res.message
+    plain = iterate_rheology(alternating, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, max_iterations=8)
+    assert plain.iterations == 8 and "no progress" not in plain.message
