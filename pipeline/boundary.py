@@ -480,6 +480,8 @@ def estimate_pressures(
         pm = p0 * (1.0 + 0.5 * (x[a] + x[b]))
         return set_point_wss_pa(pm) / tau_p0
 
+    settle = int(1e-4 * s_count)
+
     def run(signs):
         x = np.zeros(m)
         mag = targets(x)
@@ -503,7 +505,11 @@ def estimate_pressures(
             signs = new
             # damped update of the pressure-dependent magnitudes
             mag = 0.5 * (mag + new_mag)
-            if flips == 0 and mag_change < 1e-3:
+            # Settled: at most one segment in 10,000 still changes direction
+            # (such segments carry next to no flow and flip on rounding; on
+            # a 40,000-segment bed the last 1-4 kept the iteration going for
+            # another 20 solves).
+            if flips <= settle and mag_change < 1e-3:
                 break
         # the kept solution, refined against the exact matrix
         t0 = signs * mag
@@ -517,7 +523,7 @@ def estimate_pressures(
 
     def finish(x, its, flips, obj, reversed_pieces, t0):
         pressure[rows] = p0 * (1.0 + x)
-        notes = [] if flips == 0 else [
+        notes = [] if flips <= settle else [
             f"flow: the boundary estimate's flow directions did not settle in {max_iter} iterations "
             f"({flips} segment(s) still changing)"
         ]
@@ -550,7 +556,7 @@ def estimate_pressures(
             out[rows] = p0 * (1.0 + sol[:m] * dx)
             return out
 
-        return Estimate(pressure, int(its), flips == 0, int(flips), float(np.sum(obj)), reversed_pieces, notes,
+        return Estimate(pressure, int(its), flips <= settle, int(flips), float(np.sum(obj)), reversed_pieces, notes,
                         resolve=resolve)
 
     if initial_signs is not None:
@@ -572,7 +578,16 @@ def estimate_pressures(
         if (has & free).any():
             starts += [s_far, -s_far]
         for k, st in enumerate(starts):
-            x2, obj2, it2, fl2, t2 = run(np.where(free[seg_piece], st, s_init))
+            if k == 0 and not pressure_dependent_target:
+                # With constant targets a piece with nothing known is
+                # symmetric under reversal: the reversed start converges to
+                # the mirror image, pressures reflected about p0 and every
+                # flow and target reversed. No need to solve it again.
+                x2, t2, it2, fl2 = -x, -t0, 0, flips
+                choice = np.sign(t2) * set_point_wss_pa(p0 * (1.0 + 0.5 * (x2[a] + x2[b]))) / tau_p0
+                obj2 = objective_parts(x2, choice)
+            else:
+                x2, obj2, it2, fl2, t2 = run(np.where(free[seg_piece], st, s_init))
             take = free & (obj2 < obj)
             if take.any():
                 x = np.where(take[piece], x2, x)
