@@ -179,15 +179,21 @@ class Estimate:
     resolve: Callable[..., np.ndarray] | None = None
 
 
+def _widest(u, v, n, radius):
+    """Largest radius of the segments at each node."""
+    widest = np.zeros(n)
+    np.maximum.at(widest, u, radius)
+    np.maximum.at(widest, v, radius)
+    return widest
+
+
 def _initial_signs(u, v, n, radius, open_node, piece, n_piece, length):
     """Flow direction guess: away from each piece's widest open end.
 
     Segment directions point from the end nearer (in path length) to the
     source to the farther end; ties point from ``u`` to ``v``.
     """
-    widest = np.zeros(n)
-    np.maximum.at(widest, u, radius)
-    np.maximum.at(widest, v, radius)
+    widest = _widest(u, v, n, radius)
     score = np.where(open_node, widest, -np.inf)
     # the widest open node of every piece (ties: the lowest row)
     order = np.lexsort((np.arange(n), -score, piece))
@@ -216,9 +222,7 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
     are those of the potential flow (Kirchhoff with the conductances). Pieces without two
     trunk classes get no guess (sign 0).
     """
-    widest = np.zeros(n)
-    np.maximum.at(widest, u, radius)
-    np.maximum.at(widest, v, radius)
+    widest = _widest(u, v, n, radius)
     seg_piece = piece[u]
     order = np.argsort(seg_piece, kind="stable")
     bounds = np.r_[0, np.cumsum(np.bincount(seg_piece, minlength=n_piece))]
@@ -286,7 +290,6 @@ def estimate_pressures(
     pressure_dependent_target: bool = False,
     pressure_weight: float,
     max_iter: int,
-    initial_signs: np.ndarray | None = None,
 ) -> Estimate:
     """Pressures of a cut network by the method of Fry et al. (2012).
 
@@ -321,11 +324,6 @@ def estimate_pressures(
         ``k_p / k_tau`` (> 0).
     max_iter : int, keyword-only
         Largest number of sign iterations per start.
-    initial_signs : (S,) float ndarray or None, keyword-only
-        Flow directions to start from (+1 along ``u -> v``), for a repeated
-        solve with changed conductances (the haematocrit iteration): then
-        only this start is run and each piece keeps its orientation. None:
-        two starts per piece without known conditions (module notes).
 
     Returns
     -------
@@ -559,9 +557,6 @@ def estimate_pressures(
         return Estimate(pressure, int(its), flips <= settle, int(flips), float(np.sum(obj)), reversed_pieces, notes,
                         resolve=resolve)
 
-    if initial_signs is not None:
-        x, obj, its, flips, t0 = run(np.asarray(initial_signs, dtype=float))
-        return finish(x, its, flips, obj, 0, t0)
     # Starts: the trunk guess where a piece has two trunk classes, else flow
     # spreading from its widest open end; pieces with nothing known also try
     # the reverses and the other guess, and keep the smallest objective.

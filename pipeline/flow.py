@@ -39,18 +39,22 @@ a singular factorisation or a non-finite result raises
 :class:`~pipeline.errors.SolverError`; the true residual is recomputed
 after the solve and reported.
 
-Boundary conditions. Inlets (given) are at ``inlet_pressure_pa``; outlets
-are, unless given explicitly, every end node of kind ``'border'`` that is
-not an inlet, plus the ``'blind'`` ends when ``blind_ends`` is
-``'outlet'``; outlets are at ``outlet_pressure_pa``. Other end nodes are
-sealed (zero net flow, Neumann). With ``inlet_flow_nl_min`` set, all inlets
-share one unknown pressure chosen so that the total inflow equals that
-value (the problem is linear, so the unit-potential solution is scaled).
-The pressure-independent viscosity laws keep the problem linear. Note that
-in an image every vessel cut by the volume border ends in a border node,
-arteries as well as veins: making all of them outlets at one pressure is a
-modelling choice; pass ``outlets`` (and more ``inlets``) when the vessel
-types are known.
+Boundary conditions (``boundary``). ``estimate`` (the default): the ends
+cut by the volume (``'border'`` nodes, and ``'blind'`` ends of pieces that
+reach the border with ``blind_ends: open``) have unknown pressure and flow;
+:mod:`pipeline.boundary` estimates them (Fry et al. 2012) from a target
+pressure and a target wall shear stress, with Kirchhoff's law and the known
+conditions (given inlets at ``inlet_pressure_pa``, outlets at
+``outlet_pressure_pa``, ``boundary_flows``) as constraints. ``pressure``:
+inlets (given) are at ``inlet_pressure_pa``; outlets are, unless given
+explicitly, every open end that is not an inlet, at
+``outlet_pressure_pa``; with ``inlet_flow_nl_min`` set, all inlets share one
+unknown pressure chosen so that the total inflow equals that value (the
+problem is linear, so the unit-potential solution is scaled). Other end
+nodes are sealed (zero net flow, Neumann). With haematocrit phase separation
+the estimated end pressures are held while haematocrit and viscosity are
+iterated (:mod:`pipeline.rheology`). Segments slower than
+``perfused_min_velocity_mm_s`` are not perfused.
 
 Unsolved and unperfused parts. A connected component without any inlet or
 outlet is not solved: its nodes get ``pressure_pa`` NaN, its segments flow
@@ -619,7 +623,6 @@ def solve_flow(
                 target_shear_rate_s=cfg["target_shear_rate_s"],
                 pressure_dependent_target=cfg["target_shear_rate_by_pressure"],
                 pressure_weight=cfg["pressure_weight"], max_iter=cfg["estimate_max_iter"],
-                initial_signs=state.get("signs"),
             )
             info.update(notes=est.notes, method="direct", iterations=est.iterations, lin_res=0.0,
                         n_unknown=int(core_node.sum()), estimate=est)
@@ -673,10 +676,6 @@ def solve_flow(
             # from the potential: keeps small pressure drops exact
             dp_seg = info["dp"] * (np.nan_to_num(info["phi"][u]) - np.nan_to_num(info["phi"][v]))
         q = np.where(core, conductance * dp_seg, 0.0)
-        if estimate:
-            # later solves of the rheology iteration start from these
-            # directions and keep each piece's orientation
-            state["signs"] = np.where(q[core] != 0, np.sign(q[core]), 1.0)
         info["pressure"] = pressure
         state["info"] = info
         return q
