@@ -34,10 +34,15 @@ the distance metric ``tortuosity = length_um / chord_um`` and the
 sum-of-angles metric ``soam_rad_per_um`` (:func:`pipeline.measures._soam_resampled`)
 on the centreline resampled every ``step_um`` (config
 ``measures.tortuosity_step_um``, one value for a whole study, whatever the
-voxel size). Both are NaN, never 0, for a vessel shorter than three steps
-(the fewest for one complete sum-of-angles term: three chords, four points),
-so that the two metrics describe the same vessels; the distance metric is
-also NaN for a closed vessel (chord 0).
+voxel size). Where a vessel is too short for a metric it is NaN, never 0:
+the sum of angles below three steps (the fewest for one complete term: three
+chords, four points), the distance metric below one step (a shape finer
+than the study's step is not resolved) and for a closed vessel (chord 0).
+Measured on synthetic capillary beds (160 µm cubes, 1 µm voxels, three
+seeds; 1.6 segments per vessel): 63-65 % of the vessels and 93-94 % of the
+segments are shorter than three 8 µm steps and have no sum of angles, 4 % of
+the vessels no distance metric; its median is 1.012 over vessels against
+1.008 over segments.
 """
 
 from __future__ import annotations
@@ -356,11 +361,10 @@ def build_vessels(segments, nodes, centrelines, *, step_um, window_um=DEFAULT_WI
     voff = np.r_[0, np.cumsum(counts)].astype(np.int64)
     geo = _vessel_geometry(P, off, seq.astype(np.int64), ~fwd[seq], voff, float(step_um))
     length, chord, soam = geo[:, 0], geo[:, 1], geo[:, 2]
-    # One rule for both metrics: a vessel shorter than three steps is too short.
-    too_short = length < (SOAM_MIN_POINTS - 1) * float(step_um)
+    # Too short for the metric (module notes): one step for the distance metric, three for the angles.
     with np.errstate(divide="ignore", invalid="ignore"):
-        tort = np.where((chord > 0) & ~too_short, length / chord, np.nan)
-    soam = np.where(too_short, np.nan, soam)
+        tort = np.where((chord > 0) & (length >= float(step_um)), length / chord, np.nan)
+    soam = np.where(length < (SOAM_MIN_POINTS - 1) * float(step_um), np.nan, soam)
     seg_len = segments["length_um"].to_numpy(float)
     w_len = np.bincount(vid, weights=seg_len, minlength=V)
     w_r = np.bincount(vid, weights=seg_len * radius, minlength=V)

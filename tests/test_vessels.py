@@ -188,10 +188,12 @@ def test_soam_of_a_planar_arc_is_its_curvature(radius, h):
     assert want * m / (m - 2) == pytest.approx(1 / radius, rel=(h / radius) ** 2 / 12)
 
 
-@pytest.mark.parametrize("length_steps, defined", [(0.5, False), (2.9, False), (3.1, True), (6.0, True)])
-def test_short_vessels_have_no_tortuosity(length_steps, defined):
+@pytest.mark.parametrize("length_steps, dm_defined, defined", [(0.5, False, False), (2.9, True, False),
+                                                               (3.1, True, True), (6.0, True, True)])
+def test_short_vessels_have_no_tortuosity(length_steps, dm_defined, defined):
     # Bullitt's sum of angles needs three chords (four points) for one term;
-    # shorter, both metrics are undefined (NaN), never 0.
+    # shorter, it is undefined (NaN), never 0; the distance metric is undefined
+    # below one step (the rule of pipeline/vessels.py).
     L = length_steps * STEP
     t = np.linspace(0, 1, 200)
     # a gentle arc (radius 30 µm) so a defined value is positive
@@ -200,10 +202,16 @@ def test_short_vessels_have_no_tortuosity(length_steps, defined):
     segs, nodes, lines = _tables([p[0], p[-1]], [(0, 1, p)], root=0)
     _, ves = build_vessels(segs, nodes, lines, step_um=STEP, roots=[0])
     v = ves.iloc[0]
-    if defined:
-        assert v["tortuosity"] > 1.0 and v["soam_rad_per_um"] > 0.0
+    if dm_defined:
+        # length / chord of an arc of angle x: x / (2 sin(x / 2)) (elementary geometry)
+        x = L / 30.0
+        assert v["tortuosity"] == pytest.approx(x / (2 * math.sin(x / 2)), rel=1e-4)  # dense polyline
     else:
-        assert math.isnan(v["tortuosity"]) and math.isnan(v["soam_rad_per_um"])
+        assert math.isnan(v["tortuosity"])
+    if defined:
+        assert v["soam_rad_per_um"] > 0.0
+    else:
+        assert math.isnan(v["soam_rad_per_um"])
         assert math.isnan(_soam_resampled(p, _arc(p), STEP))
     s = vessel_summary(ves)
     assert s["n_vessels"] == 1 and s["n_vessels_soam_defined"] == int(defined)
