@@ -8,6 +8,7 @@ bookkeeping (effective config, time per step, counts, warnings).
 Steps run strictly in order, each consuming only the previous step's output:
 cleaning -> centrelines (thinning + radii) -> graph (build + prune) ->
 measures -> summary -> levels (root, branching levels, Strahler orders) ->
+vessels (segments chained through junctions, their tortuosity) ->
 flow (Poiseuille/Kirchhoff network solve) -> bifurcations (Murray's law,
 angles, flags).
 """
@@ -25,6 +26,7 @@ import pandas as pd
 from . import bifurcations as bif_step
 from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
 from . import radii as radii_step
+from . import vessels as vessels_step
 from . import reading
 from .config import load_config
 from .errors import InputError
@@ -62,6 +64,9 @@ class Analysis:
     spacing : tuple of 3 float
     levels : DataFrame
         Per-level morphometry and Murray statistics (``levels.csv``).
+    vessels : DataFrame
+        One row per vessel, segments chained through junctions, with its
+        tortuosity (``vessels.csv``, :mod:`pipeline.vessels`).
     bifurcations : DataFrame
         One row per junction (``bifurcations.csv``).
     run : dict
@@ -79,6 +84,7 @@ class Analysis:
     levels: pd.DataFrame = field(default_factory=pd.DataFrame)
     bifurcations: pd.DataFrame = field(default_factory=pd.DataFrame)
     run: dict = field(default_factory=dict)
+    vessels: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=vessels_step.VESSEL_COLUMNS))
 
 
 def _as_mask(mask):
@@ -229,6 +235,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     tick("summary")
     notes = []
     level_table = pd.DataFrame()
+    vessel_table = pd.DataFrame(columns=vessels_step.VESSEL_COLUMNS)
     bif_table = pd.DataFrame(columns=bif_step.COLUMNS)
     roots = []
     flow_info = {"solved": False}
@@ -241,6 +248,12 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         summary["roots"] = [int(r) for r in roots]
         summary["segments_without_level"] = int(segs["level"].isna().sum())
         tick("levels")
+        mc = cfg["measures"]
+        assign, vessel_table = vessels_step.build_vessels(segs, nodes, smoothed, step_um=mc["tortuosity_step_um"],
+                                                          window_um=mc["vessel_window_um"], roots=roots)
+        segs = segs.merge(assign[["segment_id", "vessel_id"]], on="segment_id", how="left", validate="one_to_one")
+        summary.update(vessels_step.vessel_summary(vessel_table))
+        tick("vessels")
         if cfg["flow"]["enabled"] and roots:
             known = roots
             if cfg["flow"]["boundary"] == "estimate" and str(cfg["levels"]["root"]).strip().lower() == "auto":
@@ -281,7 +294,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
            "notes": notes, "flow": flow_info}
     return Analysis(segments=segs, nodes=nodes, graph=G, summary=summary, centrelines=smoothed,
                     centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=level_table,
-                    bifurcations=bif_table, run=run)
+                    bifurcations=bif_table, run=run, vessels=vessel_table)
 
 
 def _fit_wall_radii(g, cleaned, spacing, planar):

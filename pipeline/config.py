@@ -105,7 +105,8 @@ SCHEMA: dict[str, dict[str, Param]] = {
     },
     "measures": {
         "smoothing_sigma_um": Param(None, float, low=0.0, allow_none=True),
-        "soam_step_um": Param(None, float, low=0.0, low_open=True, allow_none=True),
+        "tortuosity_step_um": Param(8.0, float, low=0.0, low_open=True),
+        "vessel_window_um": Param(10.0, float, low=0.0, low_open=True),
     },
     # --- levels and flow (pipeline/levels.py, pipeline/flow.py) ---
     "levels": {

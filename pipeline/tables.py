@@ -8,6 +8,7 @@ folder that looks complete):
 - ``segments.csv``, ``nodes.csv``: the tables (``segment_id``/``node_id`` join them);
 - ``levels.csv``: per branching level morphometry and Murray statistics;
 - ``bifurcations.csv``: per junction Murray ratio, exponent, angles, flags;
+- ``vessels.csv``: per vessel (segments chained through junctions) length and tortuosity;
 - ``summary.json``: sample measures;
 - ``graph.graphml``: the multigraph with node and segment attributes;
 - ``centrelines.npz``: every segment's smoothed centreline, compact:
@@ -42,7 +43,7 @@ import shutil
 import socket
 import tempfile
 import threading
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import networkx as nx
@@ -56,7 +57,7 @@ __all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_o
            "make_partial_dir", "storage_error", "file_digest", "check_writable"]
 
 RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
-                "centrelines.npz", "run.json")
+                "centrelines.npz", "run.json", "vessels.csv")
 #: Every name vesselflow itself may write into a result folder (the result,
 #: the report, the review and what is derived from it). ``--overwrite``
 #: replaces a folder only when it holds nothing else.
@@ -427,7 +428,8 @@ def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None
 def _fill_result(tmp, result, extra_tables):
     result.segments.to_csv(tmp / "segments.csv", index=False)
     result.nodes.to_csv(tmp / "nodes.csv", index=False)
-    tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations, **(extra_tables or {})}
+    tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations,
+              "vessels.csv": getattr(result, "vessels", pd.DataFrame()), **(extra_tables or {})}
     for name, table in tables.items():
         table.to_csv(tmp / name, index=False)
     write_json(tmp / "summary.json", result.summary)
@@ -512,6 +514,7 @@ class Result:
     centrelines: list
     bifurcations: pd.DataFrame
     levels: pd.DataFrame
+    vessels: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     @property
     def spacing(self):
@@ -553,6 +556,7 @@ def load_result(outdir, *, verify=True):
         nodes = pd.read_csv(out / "nodes.csv")
         bifs = _read_csv(out / "bifurcations.csv")
         levels = _read_csv(out / "levels.csv")
+        vessels = _read_csv(out / "vessels.csv")
         summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
         run = json.loads((out / "run.json").read_text(encoding="utf-8"))
         with np.load(out / "centrelines.npz") as z:
@@ -562,7 +566,7 @@ def load_result(outdir, *, verify=True):
         raise InputError(f"result folder '{out}': a file cannot be read ({type(exc).__name__}: "
                          f"{' '.join(str(exc).split())[:200]}); analyse the mask again") from None
     return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines,
-                  bifurcations=bifs, levels=levels)
+                  bifurcations=bifs, levels=levels, vessels=vessels)
 
 
 def read_result_mask(result, mask_path=None):

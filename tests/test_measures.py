@@ -58,14 +58,26 @@ def test_soam_of_an_exact_helix(a, p):
     t = np.linspace(0, 6 * math.pi, 6000)
     pts = np.column_stack([c * t, a * np.cos(t), a * np.sin(t)])
     arc = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))]
-    # 2 %: chord sampling every 1 µm on a curve of radius >= 5 µm.
-    assert _soam_resampled(pts, arc, 1.0) == pytest.approx(1 / math.sqrt(a * a + c * c), rel=0.02)
+    # 2 %: chord sampling every 1 µm on a curve of radius >= 5 µm. Every
+    # torsional angle counts here (plane floor 0): at a 1 µm step the in-plane
+    # angles are below the floor that keeps voxel wobble out of the torsion.
+    assert _soam_resampled(pts, arc, 1.0, 0.0) == pytest.approx(1 / math.sqrt(a * a + c * c), rel=0.02)
 
 
 def test_soam_of_a_straight_line_is_zero():
     pts = np.column_stack([np.linspace(0, 50, 101), np.zeros(101), np.linspace(0, 20, 101)])
     arc = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))]
     assert _soam_resampled(pts, arc, 2.0) == pytest.approx(0.0, abs=1e-6)
+
+
+@pytest.mark.parametrize("length_um, step_um", [(5.0, 2.0), (23.9, 8.0)])
+def test_soam_of_a_curve_shorter_than_three_steps_is_undefined(length_um, step_um):
+    # Bullitt et al. 2003: one term needs three successive chords (four points);
+    # a shorter curve has no value (NaN), not a turning of 0.
+    t = np.linspace(0, length_um / 20.0, 200)
+    pts = np.column_stack([np.zeros_like(t), 20 * np.cos(t), 20 * np.sin(t)])
+    arc = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))]
+    assert math.isnan(_soam_resampled(pts, arc, step_um))
 
 
 def test_planar_tissue_distance_matches_scipy():
