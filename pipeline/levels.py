@@ -349,6 +349,10 @@ def assign_levels(
         sdiam, converged, rounds = kassab_orders(parent, diam, start=strahler, max_iter=max_iter)
         if converged:
             _note(notes, f"levels: diameter-defined orders converged in {rounds} round(s)")
+        elif rounds < max_iter:
+            _note(notes, f"levels: diameter-defined orders did not converge: after {rounds} rounds they cycle "
+                         "(segments at a bound flipping in turn); the cycle's state with the fewest promotions "
+                         "is kept")
         else:
             _note(notes, f"levels: diameter-defined orders still changing after {rounds} rounds (the limit, "
                          "levels.diameter_order_max_iter); the last round's orders are kept")

@@ -32,7 +32,10 @@ takes them from the Strahler orders (every bound at minus infinity gives
 back the Strahler order). Above the highest order of the previous round
 there is no bound (no segment climbs to an order that had no member, so the
 number of orders never exceeds the Strahler count). Rounds repeat until no
-segment changes order (converged) or ``max_iter`` rounds (recorded). The
+segment changes order (converged), the rounds come back to an earlier state
+(a cycle: its state with the fewest promotions is kept) or ``max_iter``
+rounds pass; which one is recorded. Every round's orders obey the rule's
+order constraints, so a parent never ranks below its daughters even then. The
 statistics are those of segments, since elements only exist once the
 orders are known.
 
@@ -69,6 +72,7 @@ after this step); segments no root reaches have no order and no element.
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass, field
 
 import numba
@@ -213,7 +217,10 @@ def kassab_orders(
         True when the last round changed no segment's order.
     rounds : int
         Rounds run, the last one (which changed nothing when converged)
-        included.
+        included. Not converged with ``rounds < max_iter``: the rounds
+        came back to an earlier state (a cycle, seen on large networks
+        with a handful of segments at a bound flipping in turn); the
+        cycle's state with the lowest sum of orders is returned then.
 
     Notes
     -----
@@ -244,13 +251,32 @@ def kassab_orders(
     if len(seq) == 0:
         return cur, True, 0
     new = cur.copy()
+    seen = {_digest(cur): 0}
     for rounds in range(1, max_iter + 1):
-        b = _bounds(cur, diam, int(cur.max()))
-        _order_round(seq, parent, diam, b, new)
+        _order_round(seq, parent, diam, _bounds(cur, diam, int(cur.max())), new)
         if np.array_equal(new, cur):
             return cur, True, rounds
         cur, new = new, cur
+        key = _digest(cur)
+        if key in seen:
+            # A cycle: the rounds would repeat the same states for ever. Go
+            # round it once more and keep its state with the lowest sum of
+            # orders (the fewest promotions; ties: the smallest digest).
+            period = rounds - seen[key]
+            best, best_key = cur.copy(), (int(cur.sum()), key)
+            for _ in range(period - 1):
+                _order_round(seq, parent, diam, _bounds(cur, diam, int(cur.max())), new)
+                cur, new = new, cur
+                cand = (int(cur.sum()), _digest(cur))
+                if cand < best_key:
+                    best, best_key = cur.copy(), cand
+            return best, False, rounds
+        seen[key] = rounds
     return cur, False, max_iter
+
+
+def _digest(a):
+    return hashlib.blake2b(np.ascontiguousarray(a).tobytes(), digest_size=16).digest()
 
 
 # ---------------------------------------------------------------------------
