@@ -11,10 +11,12 @@ ratios for the summary.
 
 The method is that of Kassab GS, Rider CA, Tang NJ, Fung YC (1993), Am J
 Physiol 265:H350, spelled out again by Jiang ZL, Kassab GS, Fung YC (1994),
-J Appl Physiol 76:882. The papers' full text could not be checked here; the
-rules below are written from memory and from the summary of the method in
-the papers' abstracts (order numbers assigned on diameter ranges, a
-connectivity matrix, segments in series as elements).
+J Appl Physiol 76:882. The papers' full text could not be checked when this
+was written; the rules below are from memory and from the summary of the
+method in the papers' abstracts (order numbers assigned on diameter ranges,
+a connectivity matrix, segments in series as elements). The levels step
+calls :func:`kassab_orders` for its ``strahler_diameter`` column;
+:func:`compute_orders` takes the ordered segments from there.
 
 Ordering, from the periphery up. Terminal segments (no daughter) are order
 1. Where the daughters of a segment have highest order ``n``:
