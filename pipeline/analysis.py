@@ -7,10 +7,11 @@ bookkeeping (effective config, time per step, counts, warnings).
 
 Steps run strictly in order, each consuming only the previous step's output:
 cleaning -> centrelines (thinning + radii) -> graph (build + prune) ->
-measures -> summary -> levels (root, branching levels, Strahler orders) ->
-vessels (segments chained through junctions, their tortuosity) ->
-flow (Poiseuille/Kirchhoff network solve) -> bifurcations (Murray's law,
-angles, flags).
+measures -> summary -> levels (root, branching levels, Strahler and
+diameter-defined Strahler orders) -> vessels (segments chained through
+junctions, their tortuosity) -> orders (elements, orders table,
+connectivity matrix) -> flow (Poiseuille/Kirchhoff network solve) ->
+bifurcations (Murray's law, angles, flags).
 """
 
 from __future__ import annotations
@@ -25,6 +26,7 @@ import pandas as pd
 
 from . import bifurcations as bif_step
 from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
+from . import orders as orders_step
 from . import radii as radii_step
 from . import vessels as vessels_step
 from . import reading
@@ -69,6 +71,11 @@ class Analysis:
         tortuosity (``vessels.csv``, :mod:`pipeline.vessels`).
     bifurcations : DataFrame
         One row per junction (``bifurcations.csv``).
+    orders : DataFrame
+        Per diameter-defined Strahler order: elements, segments, element
+        diameter and length (``orders.csv``, :mod:`pipeline.orders`).
+    order_connectivity : DataFrame
+        Connectivity matrix C(m, n) in long form (``order_connectivity.csv``).
     run : dict
         ``config``, ``timings_s``, ``counts``, ``warnings``, ``planar``,
         ``roots``, ``flow`` (solver details).
@@ -85,6 +92,8 @@ class Analysis:
     bifurcations: pd.DataFrame = field(default_factory=pd.DataFrame)
     run: dict = field(default_factory=dict)
     vessels: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=vessels_step.VESSEL_COLUMNS))
+    orders: pd.DataFrame = field(default_factory=pd.DataFrame)
+    order_connectivity: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
 def _as_mask(mask):
@@ -239,6 +248,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     bif_table = pd.DataFrame(columns=bif_step.COLUMNS)
     roots = []
     flow_info = {"solved": False}
+    ordered = orders_step.empty_orders()
     if len(segs):
         inlet_ids = _resolve_nodes(inlets, nodes, segs, "inlet")
         outlet_ids = _resolve_nodes(outlets, nodes, segs, "outlet")
@@ -254,6 +264,9 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         segs = segs.merge(assign[["segment_id", "vessel_id"]], on="segment_id", how="left", validate="one_to_one")
         summary.update(vessels_step.vessel_summary(vessel_table))
         tick("vessels")
+        ordered = orders_step.compute_orders(segs)
+        segs = segs.merge(ordered.segments, on="segment_id", how="left", validate="one_to_one")
+        tick("orders")
         if cfg["flow"]["enabled"] and roots:
             known = roots
             if cfg["flow"]["boundary"] == "estimate" and str(cfg["levels"]["root"]).strip().lower() == "auto":
@@ -286,6 +299,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
             per_level = bif_step.levels_murray(bif_table)
             level_table = level_table.merge(per_level, on="level", how="left")
         tick("bifurcations")
+    summary.update(ordered.summary)
     G = to_networkx(segs, nodes)
     counts = {**cleaned.stats, **g.counts, "resampled_isotropic": bool(cl.resampled),
               "thinning_grid_spacing_um": list(cl.grid_spacing)}
@@ -294,7 +308,8 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
            "notes": notes, "flow": flow_info}
     return Analysis(segments=segs, nodes=nodes, graph=G, summary=summary, centrelines=smoothed,
                     centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=level_table,
-                    bifurcations=bif_table, run=run, vessels=vessel_table)
+                    bifurcations=bif_table, run=run, vessels=vessel_table, orders=ordered.table,
+                    order_connectivity=ordered.connectivity)
 
 
 def _fit_wall_radii(g, cleaned, spacing, planar):

@@ -44,14 +44,14 @@ segments are order 1; a parent whose daughters have largest order ``i`` is
 degree-two node keeps its order.
 
 Diameter-defined order (Kassab GS, Rider CA, Tang NJ, Fung YC 1993, Am J
-Physiol 265:H350). Starting from the Strahler orders, the mean ``D_n`` and
-sample standard deviation ``SD_n`` of the diameter (``2 * radius_um``) of
-every order ``n`` give the boundary between orders ``n`` and ``n + 1``,
-``(D_n + SD_n + D_{n+1} - SD_{n+1}) / 2``; every segment moves to the order
-whose range holds its diameter, and this repeats until no segment moves (or
-``max_iter`` rounds, recorded in ``notes``). This implements the range rule
-as stated above; it does not apply the paper's further connectivity
-adjustments.
+Physiol 265:H350): on the same orientation, starting from the Strahler
+orders, a segment where two or more daughters of the highest order ``n``
+meet is ``n + 1`` only if its diameter (``2 * radius_um``) exceeds the bound
+``(D_n + SD_n + D_{n+1} - SD_{n+1}) / 2`` between the orders' diameter
+ranges, else ``n``; the means and SDs are recomputed and the ordering
+repeated until no segment changes (or ``max_iter`` rounds, recorded in
+``notes``). See :mod:`pipeline.orders`, which also groups the segments into
+elements and tabulates the orders.
 """
 
 from __future__ import annotations
@@ -66,12 +66,12 @@ from scipy import sparse
 from scipy.sparse import csgraph
 
 from .errors import ConfigError, InputError
+from .orders import kassab_orders
 
 __all__ = [
     "choose_roots",
     "assign_levels",
     "compute_levels",
-    "diameter_defined_orders",
     "level_table",
 ]
 
@@ -299,7 +299,8 @@ def assign_levels(
     roots : iterable of int
         Root node ids (see :func:`choose_roots`).
     max_iter : int, keyword-only
-        Round limit of the diameter-defined re-assignment.
+        Round limit of the diameter-defined ordering
+        (:func:`pipeline.orders.kassab_orders`).
     notes : list of str, optional, keyword-only
         Receives a line on unreached segments and on non-convergence.
 
@@ -344,11 +345,17 @@ def assign_levels(
 
     sdiam = np.full(n_seg, -1, dtype=np.int64)
     if reached.any() and "radius_um" in segments.columns:
-        diam = 2.0 * segments["radius_um"].to_numpy(dtype=float)[reached]
-        orders, converged, rounds = diameter_defined_orders(diam, strahler[reached], max_iter=max_iter)
-        sdiam[reached] = orders
-        if not converged:
-            _note(notes, f"levels: diameter-defined orders still changing after {rounds} rounds")
+        diam = 2.0 * segments["radius_um"].to_numpy(dtype=float)
+        sdiam, converged, rounds = kassab_orders(parent, diam, start=strahler, max_iter=max_iter)
+        if converged:
+            _note(notes, f"levels: diameter-defined orders converged in {rounds} round(s)")
+        elif rounds < max_iter:
+            _note(notes, f"levels: diameter-defined orders did not converge: after {rounds} rounds they cycle "
+                         "(segments at a bound flipping in turn); the cycle's state with the fewest promotions "
+                         "is kept")
+        else:
+            _note(notes, f"levels: diameter-defined orders still changing after {rounds} rounds (the limit, "
+                         "levels.diameter_order_max_iter); the last round's orders are kept")
 
     def nullable(a: np.ndarray) -> pd.arrays.IntegerArray:
         return pd.arrays.IntegerArray(np.where(a >= 0, a, 0), a < 0)
@@ -437,61 +444,6 @@ def _strahler(parent: np.ndarray, dist: np.ndarray) -> np.ndarray:
     return order
 
 
-def diameter_defined_orders(
-    diameter: np.ndarray,
-    orders: np.ndarray,
-    *,
-    max_iter: int = 50,
-) -> tuple[np.ndarray, bool, int]:
-    """Kassab et al. (1993) diameter-defined re-assignment of orders.
-
-    Parameters
-    ----------
-    diameter : (M,) float ndarray
-        Segment diameters, µm.
-    orders : (M,) int ndarray
-        Starting orders (Strahler), >= 1.
-    max_iter : int, keyword-only
-        Largest number of re-assignment rounds.
-
-    Returns
-    -------
-    orders : (M,) int ndarray
-        Final orders; only labels present at the start can occur.
-    converged : bool
-        True when a round moved no segment.
-    rounds : int
-        Rounds run.
-
-    Notes
-    -----
-    With mean ``D_n`` and sample SD ``SD_n`` of the orders present (SD 0 for
-    an order of one segment), a segment of diameter ``d`` goes to the order
-    ``n`` with ``b_{n-1} < d <= b_n``, where ``b_n = (D_n + SD_n + D_{n+1} -
-    SD_{n+1}) / 2`` bounds orders ``n`` and ``n + 1`` (lowest order from 0,
-    highest to infinity). Orders that empty out are dropped from later rounds.
-    """
-    d = np.asarray(diameter, dtype=float)
-    cur = np.asarray(orders, dtype=np.int64).copy()
-    if len(cur) == 0:
-        return cur, True, 0
-    for rounds in range(1, max_iter + 1):
-        labels, inv = np.unique(cur, return_inverse=True)
-        if len(labels) < 2:
-            return cur, True, rounds
-        cnt = np.bincount(inv)
-        mean = np.bincount(inv, weights=d) / cnt
-        ss = np.bincount(inv, weights=(d - mean[inv]) ** 2)
-        sd = np.where(cnt > 1, np.sqrt(ss / np.maximum(cnt - 1, 1)), 0.0)
-        bounds = 0.5 * (mean[:-1] + sd[:-1] + mean[1:] - sd[1:])
-        slot = (d[:, None] > bounds[None, :]).sum(axis=1)
-        new = labels[slot]
-        if np.array_equal(new, cur):
-            return cur, True, rounds
-        cur = new
-    return cur, False, max_iter
-
-
 def compute_levels(
     segments: pd.DataFrame,
     nodes: pd.DataFrame,
@@ -554,9 +506,14 @@ def level_table(segments_with_levels: pd.DataFrame, *, by: str = "level") -> pd.
         row, a missing previous value and the ``<NA>`` row):
         ``branching_ratio`` = N_l / N_{l-1}, ``radius_ratio`` =
         mean r_l / mean r_{l-1}, ``length_ratio`` = mean length_l / mean
-        length_{l-1}. By level these are the daughter-over-parent ratios;
-        by Strahler order the classical Horton ratios are their
-        reciprocals.
+        length_{l-1}. By level these are the daughter-over-parent ratios.
+        By Strahler order (orders count up from the periphery) the radius
+        and length ratios are Horton's diameter and length ratios
+        themselves (order n over order n - 1), while Horton's number
+        (bifurcation) ratio N_{n-1} / N_n is the reciprocal of
+        ``branching_ratio``. Horton ratios fitted over all orders of
+        elements are in ``orders.csv`` and the summary
+        (:mod:`pipeline.orders`).
 
     Raises
     ------

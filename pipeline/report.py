@@ -431,6 +431,7 @@ class SampleData:
     centrelines: list
     mip: np.ndarray | None = None
     notes: list = field(default_factory=list)
+    orders: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     @property
     def spacing(self):
@@ -463,7 +464,8 @@ def load_sample(outdir, *, mask=None, read_mip=True):
 
     res = load_result(out)
     data = SampleData(name=out.name, segments=res.segments, nodes=res.nodes, bifurcations=res.bifurcations,
-                       levels=res.levels, summary=res.summary, run=res.run, centrelines=res.centrelines)
+                       levels=res.levels, summary=res.summary, run=res.run, centrelines=res.centrelines,
+                       orders=res.orders)
     if read_mip:
         data.mip = _read_mip(data, res, mask)
     return data
@@ -1442,7 +1444,8 @@ def _sample_report(out, *, mask):
              f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)}</div>",
              "<nav><a href=\"#inputs\">Inputs</a><a href=\"#warnings\">Warnings</a><a href=\"#summary\">Summary</a>"
              "<a href=\"#figures\">Figures</a><a href=\"#plausibility\">Plausibility</a><a href=\"#uncertainty\">"
-             "Uncertainty</a><a href=\"#levels\">Levels</a><a href=\"#bifurcations\">Bifurcations</a>"
+             "Uncertainty</a><a href=\"#levels\">Levels</a><a href=\"#orders\">Orders</a>"
+             "<a href=\"#bifurcations\">Bifurcations</a>"
              "<a href=\"#config\">Configuration</a></nav>"]
     spacing = run.get("spacing_um")
     parts.append("<h2 id=\"inputs\">Inputs</h2>" + _kv_table([
@@ -1475,6 +1478,7 @@ def _sample_report(out, *, mask):
                  + _uncertainty_html(data, own.get("flow_intervals")))
     parts.append("<h2 id=\"levels\">Branching levels</h2>"
                  + (_table(data.levels) if not data.levels.empty else "<p>No levels.</p>"))
+    parts.append("<h2 id=\"orders\">Diameter-defined Strahler orders</h2>" + _orders_html(data))
     parts.append("<h2 id=\"bifurcations\">Bifurcations</h2>"
                  + _bifurcation_html(data.bifurcations, review, summary))
     flow = run.get("flow") or {}
@@ -1489,6 +1493,20 @@ def _sample_report(out, *, mask):
                              + [(f"time: {k} (s)", _fmt(v)) for k, v in timings.items()]))
     parts.append("<h2 id=\"sources\">Sources</h2>" + _sources_html())
     return _page(f"vesselflow report: {data.name}", "\n".join(parts)), rendered
+
+
+def _orders_html(data):
+    """The orders section: orders.csv and the Horton ratios fitted over it (Kassab et al. 1993)."""
+    if data.orders.empty:
+        return "<p>No orders.</p>"
+    s = data.summary
+    ratios = _kv_table([("number of orders", _fmt(s.get("n_orders"))),
+                        ("Horton ratio of number (elements)", _fmt(s.get("horton_ratio_number"))),
+                        ("Horton ratio of diameter", _fmt(s.get("horton_ratio_diameter"))),
+                        ("Horton ratio of length", _fmt(s.get("horton_ratio_length")))])
+    return ("<p>Orders after Kassab et al. (1993, Am J Physiol 265:H350); an element is the segments of one "
+            "order in series; diameters and lengths are of elements (orders.csv; the connectivity matrix is "
+            "in order_connectivity.csv).</p>" + _table(data.orders) + ratios)
 
 
 def _plausibility_html(data, fig):

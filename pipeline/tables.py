@@ -9,6 +9,9 @@ folder that looks complete):
 - ``levels.csv``: per branching level morphometry and Murray statistics;
 - ``bifurcations.csv``: per junction Murray ratio, exponent, angles, flags;
 - ``vessels.csv``: per vessel (segments chained through junctions) length and tortuosity;
+- ``orders.csv``: per diameter-defined Strahler order, elements, segments,
+  element diameter and length (mean, SD); ``order_connectivity.csv``: the
+  connectivity matrix C(m, n) in long form (see :mod:`pipeline.orders`);
 - ``summary.json``: sample measures;
 - ``graph.graphml``: the multigraph with node and segment attributes;
 - ``centrelines.npz``: every segment's smoothed centreline, compact:
@@ -57,7 +60,7 @@ __all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_o
            "make_partial_dir", "storage_error", "file_digest", "check_writable"]
 
 RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
-                "centrelines.npz", "run.json", "vessels.csv")
+                "centrelines.npz", "run.json", "vessels.csv", "orders.csv", "order_connectivity.csv")
 #: Every name vesselflow itself may write into a result folder (the result,
 #: the report, the review and what is derived from it). ``--overwrite``
 #: replaces a folder only when it holds nothing else.
@@ -429,7 +432,9 @@ def _fill_result(tmp, result, extra_tables):
     result.segments.to_csv(tmp / "segments.csv", index=False)
     result.nodes.to_csv(tmp / "nodes.csv", index=False)
     tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations,
-              "vessels.csv": getattr(result, "vessels", pd.DataFrame()), **(extra_tables or {})}
+              "vessels.csv": getattr(result, "vessels", pd.DataFrame()),
+              "orders.csv": result.orders, "order_connectivity.csv": result.order_connectivity,
+              **(extra_tables or {})}
     for name, table in tables.items():
         table.to_csv(tmp / name, index=False)
     write_json(tmp / "summary.json", result.summary)
@@ -515,6 +520,8 @@ class Result:
     bifurcations: pd.DataFrame
     levels: pd.DataFrame
     vessels: pd.DataFrame = field(default_factory=pd.DataFrame)
+    orders: pd.DataFrame = field(default_factory=pd.DataFrame)
+    order_connectivity: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     @property
     def spacing(self):
@@ -557,6 +564,8 @@ def load_result(outdir, *, verify=True):
         bifs = _read_csv(out / "bifurcations.csv")
         levels = _read_csv(out / "levels.csv")
         vessels = _read_csv(out / "vessels.csv")
+        orders = _read_csv(out / "orders.csv")
+        order_conn = _read_csv(out / "order_connectivity.csv")
         summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
         run = json.loads((out / "run.json").read_text(encoding="utf-8"))
         with np.load(out / "centrelines.npz") as z:
@@ -566,7 +575,7 @@ def load_result(outdir, *, verify=True):
         raise InputError(f"result folder '{out}': a file cannot be read ({type(exc).__name__}: "
                          f"{' '.join(str(exc).split())[:200]}); analyse the mask again") from None
     return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines,
-                  bifurcations=bifs, levels=levels, vessels=vessels)
+                  bifurcations=bifs, levels=levels, vessels=vessels, orders=orders, order_connectivity=order_conn)
 
 
 def read_result_mask(result, mask_path=None):

@@ -16,7 +16,6 @@ from pipeline.levels import (
     assign_levels,
     choose_roots,
     compute_levels,
-    diameter_defined_orders,
     level_table,
 )
 
@@ -186,23 +185,7 @@ def test_parent_ids_follow_the_tree():
     assert out.loc[[3, 4], "parent_segment_id"].tolist() == [1, 1]
 
 
-# --- diameter-defined orders -----------------------------------------------
-
-def test_diameter_defined_order_moves_outlier():
-    # Kassab et al. 1993 (Am J Physiol 265:H350): orders are re-assigned by
-    # diameter ranges bounded halfway between mean + SD of one order and
-    # mean - SD of the next. A wide "order 1" segment moves to order 2.
-    d = np.array([1.0, 1.1, 0.9, 1.05, 3.0, 3.2, 2.8, 3.1, 2.9])
-    start = np.array([1, 1, 1, 1, 1, 2, 2, 2, 2])
-    out, converged, rounds = diameter_defined_orders(d, start)
-    assert converged
-    assert out.tolist() == [1, 1, 1, 1, 2, 2, 2, 2, 2]
-    # Final state is a fixed point of the rule (checked from the formula).
-    m1, s1 = d[out == 1].mean(), d[out == 1].std(ddof=1)
-    m2, s2 = d[out == 2].mean(), d[out == 2].std(ddof=1)
-    bound = (m1 + s1 + m2 - s2) / 2
-    assert np.array_equal(np.where(d > bound, 2, 1), out)
-
+# --- diameter-defined orders (more in tests/test_orders.py) ----------------
 
 def test_diameter_order_column_on_tree_agrees_with_strahler_when_separated():
     # Cube-law tree: diameters of successive orders differ by 2^(1/3) and do
