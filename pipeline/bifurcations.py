@@ -202,6 +202,15 @@ a bound off):
 The first five are the Murray-law codes: ``fraction_within_tolerance`` in the
 summary is the share of the judged (not uncertain) junctions that carry none
 of them.
+
+Summary statistics of the law. ``murray_exponent_median`` counts undefined
+junction exponents as +inf (a daughter as wide as the parent is the limit of
+exponents growing without bound); dropping them would lower the median, a
+selection on the outcome. Their number is ``murray_exponents_undefined``.
+One exponent per sample, fitted to all usable bifurcations with a bootstrap
+interval, and the Murray ratio's quartiles come from
+:func:`pipeline.murray.network_summary` (see ``pipeline/murray.py`` for which
+junctions it uses and why).
 """
 
 from __future__ import annotations

@@ -88,7 +88,18 @@ Sensitivity. For a symmetric junction x = ln 2 / ln(r0 / r1): a relative
 bias of 2 % between parent and daughter radii moves x by about 0.25 at x = 3.
 The fit is only as good as the radii are unbiased across vessel sizes; a bias
 common to all sizes (a threshold widening every vessel by one factor) does
-not matter.
+not matter. Measured on binary trees (root 8 µm, asymmetry 0.7, 2 x 1 x 1 µm
+voxels, three seeds, segment radius against the truth): clean masks +0.4 %
+at radii below 3.5 µm and at 5 µm and above; wall roughness 0.25 (relative,
+1.5 µm correlation) +5.5 % and +2.8 %; plane jitter of a voxel +1.5 % and
++0.7 %; blobs +0.5 % and +0.6 %. On straight rough tubes, fitted on the true
+axis, the wall fit read 3-5 % wide at radii 2.5, 4 and 7 µm alike, with a
+spread between roughness realisations as large as the trees' difference
+between thin and thick, so roughness is not shown to bias the exponent; the
+jitter's part, halving from thin to thick, is what a circle fit does with
+point errors across the wall (a tangential error e lengthens the distance to
+the centre by about e^2 / (2 r)) and moves a symmetric cube-law exponent up
+by about 0.1.
 """
 
 from __future__ import annotations
@@ -221,7 +232,7 @@ def network_exponent(r0, r1, r2, u0=None, u1=None, u2=None, *, n_boot: int = 200
     >>> q = [0.5, 0.7, 0.9, 1.0, 0.6]  # r2 / r1
     >>> r1 = [a / (1 + b ** 3) ** (1 / 3) for a, b in zip(r0, q)]
     >>> r2 = [a * b for a, b in zip(r1, q)]
-    >>> round(network_exponent(r0, r1, r2, n_boot=0)["exponent"], 6)
+    >>> round(network_exponent(r0, r1, r2, n_boot=0)["exponent"], 3)  # grid 0.01, refined by a parabola
     3.0
     """
     arrays = []
