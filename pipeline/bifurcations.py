@@ -202,6 +202,15 @@ a bound off):
 The first five are the Murray-law codes: ``fraction_within_tolerance`` in the
 summary is the share of the judged (not uncertain) junctions that carry none
 of them.
+
+Summary statistics of the law. ``murray_exponent_median`` counts undefined
+junction exponents as +inf (a daughter as wide as the parent is the limit of
+exponents growing without bound); dropping them would lower the median, a
+selection on the outcome. Their number is ``murray_exponents_undefined``.
+One exponent per sample, fitted to all usable bifurcations with a bootstrap
+interval, and the Murray ratio's quartiles come from
+:func:`pipeline.murray.network_summary` (see ``pipeline/murray.py`` for which
+junctions it uses and why).
 """
 
 from __future__ import annotations
@@ -801,11 +810,17 @@ def analyze_bifurcations(
         ``bifurcations_mixed``, ``bifurcations_unsolved`` (rows per
         ``flow_pattern``), ``flag_counts`` (every code of
         :data:`REASON_CODES`), ``uncertain_counts`` (every code of
-        :data:`UNCERTAIN_CODES`), ``murray_exponent_median``,
-        ``murray_ratio_median`` (over finite values of all rows),
-        ``murray_exponent_median_diverging``,
+        :data:`UNCERTAIN_CODES`), ``murray_exponent_median`` (over all
+        rows, undefined exponents counted as +inf; None when the median
+        itself is infinite), ``murray_ratio_median`` (over finite values of
+        all rows), ``murray_exponent_median_diverging``,
         ``murray_ratio_median_diverging`` and the same ``_converging``
-        (over the rows of that pattern), ``fraction_within_tolerance``
+        (over the rows of that pattern), the network fit's keys
+        (:func:`pipeline.murray.network_summary`:
+        ``murray_exponent_network`` with ``_ci_low``, ``_ci_high``,
+        ``_junctions``, ``_note``, ``_multifurcations``,
+        ``murray_exponents_undefined``, ``murray_ratio_q25``,
+        ``murray_ratio_q75``), ``fraction_within_tolerance``
         (share of the junctions not uncertain without a Murray-law code),
         ``flow_split_error_median`` (median ``|flow_split_daughter1 -
         flow_split_cube_law|`` over diverging and converging junctions;
@@ -873,7 +888,7 @@ def analyze_bifurcations(
     skipped = int(((ends >= 3) & ~is_junction).sum())
     node_row = np.flatnonzero(is_junction)
     if len(node_row) == 0:
-        return _empty_table(), _summary(_empty_table(), has_flow=has_flow, skipped=skipped)
+        return _empty_table(), _summary(_empty_table(), has_flow=has_flow, skipped=skipped, cfg=cfg)
     keep = is_junction[arm_node]
     arms = _Arms(
         group=np.searchsorted(node_row, arm_node[keep]),
@@ -887,7 +902,7 @@ def analyze_bifurcations(
     table = _junction_table(node_row, arms, loops, ends=ends, ids=ids, seg_id=seg_id, radius=radius,
                             u_radius=u_radius, cols=cols, nodes=nodes, points=points, offsets=offsets, cfg=cfg)
     table = table.sort_values("node_id", kind="stable").reset_index(drop=True)
-    return table, _summary(table, has_flow=has_flow, skipped=skipped)
+    return table, _summary(table, has_flow=has_flow, skipped=skipped, cfg=cfg)
 
 
 class _Arms:
@@ -1212,7 +1227,22 @@ def _code_hits(table: pd.DataFrame, column: str = "flag_reasons", codes: Sequenc
     return per_text.reshape(len(texts), len(codes))[inverse]
 
 
-def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int) -> dict[str, Any]:
+def _median_exponent(values: np.ndarray) -> float | None:
+    """Median exponent with undefined ones (NaN) counted as +inf, None when the median is infinite or no row."""
+    # An undefined exponent means a daughter at least as wide as the parent:
+    # the limit of exponents growing without bound as a daughter's radius
+    # approaches the parent's. Counting them as +inf keeps them in the median
+    # (dropping them would move the median down, i.e. select on the outcome).
+    if values.size == 0:
+        return None
+    m = float(np.median(np.where(np.isnan(values), np.inf, values)))
+    return m if math.isfinite(m) else None
+
+
+def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int,
+             cfg: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    from .murray import network_summary
+
     n = len(table)
     hits = _code_hits(table)
     counts = {c: int(hits[:, k].sum()) for k, c in enumerate(REASON_CODES)}
@@ -1240,11 +1270,12 @@ def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int) -> dict[str, 
     out.update({
         "flag_counts": counts,
         "uncertain_counts": {c: int(why[:, k].sum()) for k, c in enumerate(UNCERTAIN_CODES)},
-        "murray_exponent_median": _median(expo),
+        "murray_exponent_median": _median_exponent(expo),
         "murray_ratio_median": _median(ratio),
     })
+    out.update(network_summary(table, config=cfg))
     for k in ("diverging", "converging"):
-        out[f"murray_exponent_median_{k}"] = _median(expo[pattern == k])
+        out[f"murray_exponent_median_{k}"] = _median_exponent(expo[pattern == k])
         out[f"murray_ratio_median_{k}"] = _median(ratio[pattern == k])
     out.update({
         "fraction_within_tolerance": within / judged if judged else None,
@@ -1254,7 +1285,8 @@ def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int) -> dict[str, 
     return out
 
 
-def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int = 0) -> dict[str, Any]:
+def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int = 0,
+                           config: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """The bifurcation part of ``summary.json``, from a bifurcations table.
 
     Parameters
@@ -1270,6 +1302,9 @@ def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int 
     skipped : int, keyword-only
         ``junctions_skipped``, carried over: it cannot be recomputed from
         the table.
+    config : mapping or None, keyword-only
+        Full config or its ``bifurcations`` section (the network fit's
+        bootstrap resamples and seed); None: defaults.
 
     Returns
     -------
@@ -1278,7 +1313,7 @@ def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int 
     """
     if table.shape[1] == 0:
         table = _empty_table()
-    return _summary(table, has_flow=has_flow, skipped=skipped)
+    return _summary(table, has_flow=has_flow, skipped=skipped, cfg=_section(config))
 
 
 def levels_murray(table: pd.DataFrame) -> pd.DataFrame:

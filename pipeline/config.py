@@ -167,6 +167,8 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "min_length_radii": Param(2.0, float, low=0.0),
         "tangent_fit_radii": Param(3.0, float, low=0.0, low_open=True, high=50.0),
         "tangent_skip_radii": Param(1.0, float, low=0.0, high=50.0),
+        "network_bootstrap_resamples": Param(2000, int, low=0),
+        "network_bootstrap_seed": Param(0, int, low=0),
     },
 }
 

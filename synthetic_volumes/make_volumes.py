@@ -70,8 +70,35 @@ VOLUMES = {
 }
 
 
+# Further animals of the study, four per group, so the group comparison can
+# reach significance (an exact two-sided Mann-Whitney test of 5 against 5
+# animals gives p >= 2/252 = 0.008, of 1 against 1 never below 1). They go to
+# study/, which `vesselflow demo` (synthetic_volumes/*.tif) does not read.
+# Controls: cube-law trees like tw-ctrl-01. Treated: exponent 2.3 like
+# tw-trt-01, tortuous and rough, but with one bifurcation in ten broken rather
+# than one in three, and longer segments: in tw-trt-01 the broken junctions
+# (wide daughters, long enough to measure) are half of the junctions whose
+# radii can be measured at all, so no fit can tell its law from the breakage.
+STUDY = {}
+for _k, _seed in enumerate((41, 42, 43, 44, 45, 46), start=2):
+    STUDY[f"tw-ctrl-{_k:02d}"] = dict(
+        builder=synthetic.binary_tree,
+        build=dict(depth=4, root_radius_um=7.5, exponent=3.0, length_radius_ratio=9.0, min_radius_um=2.2,
+                   jitter_deg=6.0, seed=_seed),
+        raster=dict(spacing=TREE_SPACING, roughness=0.05, specks=12, seed=100 + _seed),
+    )
+for _k, _seed in enumerate((51, 52, 53, 54, 55, 56), start=2):
+    STUDY[f"tw-trt-{_k:02d}"] = dict(
+        builder=synthetic.binary_tree,
+        build=dict(depth=4, root_radius_um=7.5, exponent=2.3, length_radius_ratio=9.0, min_radius_um=2.0,
+                   jitter_deg=8.0, wiggle=0.12, broken_fraction=0.1, seed=_seed),
+        raster=dict(spacing=TREE_SPACING, roughness=0.15, specks=25, holes=3, seed=100 + _seed),
+    )
+
+
 def main() -> None:
-    for stem, spec in VOLUMES.items():
+    (HERE / "study").mkdir(exist_ok=True)
+    for stem, spec in [*VOLUMES.items(), *STUDY.items()]:
         net = spec["builder"](**spec["build"])
         mask, truth = synthetic.rasterize(net, **spec["raster"])
         # Measured on the mask itself, so tests can tell digitisation effects
@@ -87,8 +114,9 @@ def main() -> None:
             "animal": "control" if "ctrl" in stem or "bed" in stem else "treated",
             "generated_by": "synthetic_volumes/make_volumes.py",
         }
+        folder = HERE / "study" if stem in STUDY else HERE
         path = synthetic.write_volume(
-            HERE / f"{stem}.tif", mask, spacing=spec["raster"]["spacing"], truth=truth
+            folder / f"{stem}.tif", mask, spacing=spec["raster"]["spacing"], truth=truth
         )
         s = truth["summary"]
         print(
