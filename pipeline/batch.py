@@ -63,7 +63,7 @@ from .errors import ConfigError, EngineError, InputError, StorageError, Vesselfl
 __all__ = ["Sample", "read_sample_sheet", "find_samples", "collect_samples", "run_batch", "BatchResult",
            "cohort_tables", "group_comparison", "group_bookkeeping", "add_densities", "hodges_lehmann",
            "hodges_lehmann_one_sample", "cliffs_delta", "science_measures", "bookkeeping_measures", "StudyMeasure",
-           "SCIENCE_MEASURES", "SHEET_COLUMNS", "STUDY_FILES"]
+           "SCIENCE_MEASURES", "FALLBACK_MEASURES", "SHEET_COLUMNS", "STUDY_FILES"]
 
 SHEET_COLUMNS = ("sample_id", "path", "group")
 OPTIONAL_COLUMNS = ("spacing_z", "spacing_y", "spacing_x", "root")
@@ -1105,7 +1105,8 @@ def _class_measures():
 #: mask is segmented), never as raw counts, because samples differ in the
 #: volume imaged; planar samples have the per-mm² analogues. Measures a
 #: result does not hold (older versions, flow not solved) are left out of the
-#: comparison. Every other numeric summary column is bookkeeping
+#: comparison, or compared through their older stand-in
+#: (:data:`FALLBACK_MEASURES`). Every other numeric summary column is bookkeeping
 #: (:func:`group_bookkeeping`), described but never tested.
 SCIENCE_MEASURES = (
     StudyMeasure("length_density_mm_per_mm3", "mm/mm³", "vessel length density",
@@ -1131,6 +1132,12 @@ SCIENCE_MEASURES = (
                  "one exponent x fitted to all usable diverging bifurcations, r0^x = r1^x + r2^x"),
     StudyMeasure("murray_ratio_median", "1", "median Murray ratio",
                  "median over junctions of (r1³ + r2³) / r0³"),
+    StudyMeasure("horton_ratio_number", "1", "Horton number ratio",
+                 "ratio of element numbers between consecutive diameter-defined orders (Kassab et al. 1993)"),
+    StudyMeasure("horton_ratio_diameter", "1", "Horton diameter ratio",
+                 "ratio of mean element diameters between consecutive orders"),
+    StudyMeasure("horton_ratio_length", "1", "Horton length ratio",
+                 "ratio of mean element lengths between consecutive orders"),
     StudyMeasure("radius_median_um", "µm", "median segment radius", "median of the segment radii"),
     StudyMeasure("radius_mean_um", "µm", "mean segment radius", "mean of the segment radii"),
     StudyMeasure("vessel_tortuosity_median", "1", "median vessel tortuosity",
@@ -1145,7 +1152,17 @@ SCIENCE_MEASURES = (
     StudyMeasure("tissue_distance_p95_um", "µm", "95th percentile tissue-to-vessel distance",
                  "95th percentile of the distance from a tissue voxel to the nearest vessel voxel"),
 )
-_SCIENCE = {m.name: m for m in SCIENCE_MEASURES}
+#: Stand-ins for results made before a measure existed, compared in its place
+#: only when no sample has the newer one: measure name -> older measure.
+FALLBACK_MEASURES = {
+    "vessel_tortuosity_median": StudyMeasure(
+        "tortuosity_mean", "1", "mean segment tortuosity",
+        "mean distance metric (length / chord) of single segments; results without vessel tortuosity"),
+    "vessel_soam_median_rad_per_um": StudyMeasure(
+        "soam_mean_rad_per_um", "rad/µm", "mean segment sum of angles",
+        "mean sum-of-angles metric of single segments; results without vessel tortuosity"),
+}
+_SCIENCE = {m.name: m for m in SCIENCE_MEASURES + tuple(FALLBACK_MEASURES.values())}
 # Columns of the cohort summary that describe a row, not a sample's measure.
 _ID_COLUMNS = ("sample_id", "group", "reviewed", "review_problem")
 # Densities the study tables derive from a count and the imaged volume or area.
@@ -1395,14 +1412,27 @@ def _describe(v):
 
 
 def science_measures(summary):
-    """Names of the science measures the cohort summary holds a value of, in table order."""
-    return [m.name for m in SCIENCE_MEASURES if m.name in summary.columns
-            and np.isfinite(pd.to_numeric(summary[m.name], errors="coerce").to_numpy(float)).any()]
+    """Names of the science measures the cohort summary holds a value of, in table order.
+
+    A measure of :data:`FALLBACK_MEASURES` that no sample has (results of an
+    older version) is replaced by its older stand-in where that has values.
+    """
+    def has(name):
+        return name in summary.columns and np.isfinite(pd.to_numeric(summary[name], errors="coerce")
+                                                       .to_numpy(float)).any()
+
+    out = []
+    for m in SCIENCE_MEASURES:
+        if has(m.name):
+            out.append(m.name)
+        elif m.name in FALLBACK_MEASURES and has(FALLBACK_MEASURES[m.name].name):
+            out.append(FALLBACK_MEASURES[m.name].name)
+    return out
 
 
 def bookkeeping_measures(summary):
     """Every other numeric summary column (counts, residuals, sizes, settings): described, never tested."""
-    science = set(_SCIENCE)
+    science = {m.name for m in SCIENCE_MEASURES} | set(science_measures(summary))
     return [c for c in summary.columns if c not in science and c not in _ID_COLUMNS
             and pd.api.types.is_numeric_dtype(summary[c]) and not pd.api.types.is_bool_dtype(summary[c])]
 

@@ -88,7 +88,7 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
 from . import __version__
-from .batch import SCIENCE_MEASURES, add_densities, hodges_lehmann_one_sample
+from .batch import FALLBACK_MEASURES, SCIENCE_MEASURES, add_densities, hodges_lehmann_one_sample, science_measures
 from .errors import InputError, VesselflowError
 
 __all__ = ["build_report", "load_sample", "SampleData", "sample_figures", "study_figures", "figure_map_level",
@@ -154,7 +154,7 @@ _LABELS = {
     "total_inflow_nl_min": "total inflow (nL/min)",
     "perfused_length_fraction": "perfused length (fraction)",
 }
-_SCIENCE = {m.name: m for m in SCIENCE_MEASURES}
+_SCIENCE = {m.name: m for m in SCIENCE_MEASURES + tuple(FALLBACK_MEASURES.values())}
 _SUFFIXES = (("_mm_per_mm3", "mm/mm³"), ("_per_mm3", "per mm³"), ("_pa_s_um3", "Pa·s/µm³"),
              ("_rad_per_um", "rad/µm"), ("_nl_min", "nL/min"), ("_mm3", "mm³"), ("_um2", "µm²"),
              ("_um3", "µm³"), ("_mm", "mm"), ("_um", "µm"), ("_pa", "Pa"), ("_mm_s", "mm/s"), ("_s", "s"),
@@ -1328,9 +1328,7 @@ def study_figures(cohort, comparison):
             and np.isfinite(_col(cohort, NETWORK_EXPONENT_KEYS[0])).any()):
         out["study_network_exponent"] = (figure_network_exponent(cohort, groups), "Network Murray exponent",
                                          _NETWORK_EXPONENT_CAPTION)
-    for m in STUDY_MEASURES:
-        if m not in cohort.columns or not np.isfinite(pd.to_numeric(cohort[m], errors="coerce")).any():
-            continue
+    for m in science_measures(cohort):
         fig = figure_study_measure(cohort, comparison, m, groups)
         out[f"study_{m}"] = (fig, _label(m), "Boxes: median and quartiles per group; points: samples. Title: "
                                              "Hodges–Lehmann shift of the second group against the first with "

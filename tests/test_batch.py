@@ -462,6 +462,19 @@ def test_bookkeeping_is_described_apart_and_never_tested():
     assert "vessel_tortuosity_median" not in set(comp["measure"])
 
 
+def test_older_results_compare_segment_tortuosity_in_place_of_vessel_tortuosity():
+    rng = np.random.default_rng(4)
+    old = pd.DataFrame({"group": ["a"] * 3 + ["b"] * 3, "tortuosity_mean": rng.uniform(1.0, 1.2, 6),
+                        "radius_median_um": rng.normal(4, 0.5, 6)})
+    comp = batch.group_comparison(old).set_index("measure")
+    assert comp.loc["tortuosity_mean", "label"] == "mean segment tortuosity"
+    assert "tortuosity_mean" not in set(batch.group_bookkeeping(old)["measure"])
+    # with the vessel measure present the segment mean is bookkeeping
+    new = old.assign(vessel_tortuosity_median=rng.uniform(1.0, 1.2, 6))
+    assert list(batch.group_comparison(new)["measure"]) == ["radius_median_um", "vessel_tortuosity_median"]
+    assert "tortuosity_mean" in set(batch.group_bookkeeping(new)["measure"])
+
+
 # --------------------------------------------------------------------------- #
 # Sample sheets and folders
 # --------------------------------------------------------------------------- #
