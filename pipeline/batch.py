@@ -10,9 +10,16 @@ Out: one result folder per sample under ``OUTDIR/<sample_id>/`` (exactly as
   summary measure (reviewed where a ``review.csv`` exists);
 - ``cohort_segments.parquet``, ``cohort_bifurcations.parquet``: every
   sample's rows with ``sample_id`` and ``group`` columns;
-- ``group_comparison.csv``: per measure and pair of groups n, mean, sd,
-  median, the difference of means, a Mann-Whitney U test and its
-  Benjamini-Hochberg q-value across measures;
+- ``group_comparison.csv``: per science measure (:data:`SCIENCE_MEASURES`:
+  densities per mm³ of imaged tissue, never raw counts; the network Murray
+  exponent, radius, tortuosity, flow and shear by diameter class, tissue
+  distances) and pair of groups: n, mean, sd, median, the Hodges-Lehmann
+  shift with its distribution-free interval, Cliff's delta, a Mann-Whitney
+  U test and its Benjamini-Hochberg q-value across the pair's measures;
+  tests with fewer than three samples in a group are skipped with the
+  reason (:func:`group_comparison`);
+- ``group_bookkeeping.csv``: every other numeric summary column (counts,
+  residuals, sizes) per group, n, mean, sd, median, no tests;
 - ``batch.json``: version, input, config, state and per-sample status. The
   state ends as ``complete``, ``complete with failures``, ``interrupted``
   (Ctrl-C), ``cluster lost`` (the scheduler went away, or no worker was left
@@ -54,7 +61,9 @@ from .config import load_config
 from .errors import ConfigError, EngineError, InputError, StorageError, VesselflowError
 
 __all__ = ["Sample", "read_sample_sheet", "find_samples", "collect_samples", "run_batch", "BatchResult",
-           "cohort_tables", "group_comparison", "SHEET_COLUMNS", "STUDY_FILES"]
+           "cohort_tables", "group_comparison", "group_bookkeeping", "add_densities", "hodges_lehmann",
+           "hodges_lehmann_one_sample", "cliffs_delta", "science_measures", "bookkeeping_measures", "StudyMeasure",
+           "SCIENCE_MEASURES", "FALLBACK_MEASURES", "SHEET_COLUMNS", "STUDY_FILES"]
 
 SHEET_COLUMNS = ("sample_id", "path", "group")
 OPTIONAL_COLUMNS = ("spacing_z", "spacing_y", "spacing_x", "root")
@@ -62,10 +71,8 @@ LOCK_FILE = ".vesselflow-batch.lock"
 #: Final states of ``batch.json`` (``running`` while a batch runs).
 FINAL_STATES = ("complete", "complete with failures", "interrupted", "cluster lost", "failed")
 STUDY_FILES = ("failures.csv", "cohort_summary.csv", "cohort_segments.parquet", "cohort_bifurcations.parquet",
-               "group_comparison.csv")
+               "group_comparison.csv", "group_bookkeeping.csv")
 FAILURE_COLUMNS = ("sample_id", "path", "step", "error")
-COMPARISON_COLUMNS = ("measure", "group_a", "group_b", "n_a", "mean_a", "sd_a", "median_a", "n_b", "mean_b",
-                      "sd_b", "median_b", "difference", "mann_whitney_u", "p_value", "q_value")
 # Order in which one sample's steps run; a failure is charged to the step after
 # the last one that finished.
 STEPS = ("reading", "cleaning", "centrelines", "graph", "radii", "pruning", "measures", "summary", "levels", "flow", "bifurcations",
@@ -94,6 +101,7 @@ class BatchResult:
     failures: pd.DataFrame
     cohort_summary: pd.DataFrame
     group_comparison: pd.DataFrame
+    group_bookkeeping: pd.DataFrame | None = None
 
     @property
     def n_failed(self):
@@ -835,6 +843,7 @@ def _run_locked(samples, out, cfg, *, lock, nworkers, scheduler, force, memory_l
         write_atomic(out / "cohort_bifurcations.parquet",
                      lambda p: tables["bifurcations"].to_parquet(p, index=False))
         write_atomic(out / "group_comparison.csv", lambda p: tables["comparison"].to_csv(p, index=False))
+        write_atomic(out / "group_bookkeeping.csv", lambda p: tables["bookkeeping"].to_csv(p, index=False))
     except BaseException as exc:
         # Half a set of study tables is worse than none: remove this run's,
         # which also frees the space batch.json needs to record the failure.
@@ -847,7 +856,7 @@ def _run_locked(samples, out, cfg, *, lock, nworkers, scheduler, force, memory_l
     prog.info(f"{meta['counts']['done']} analysed, {meta['counts']['skipped']} skipped, "
               f"{meta['counts']['failed']} failed; tables in {out}")
     return BatchResult(outdir=out, status=status, failures=failures, cohort_summary=tables["summary"],
-                       group_comparison=tables["comparison"])
+                       group_comparison=tables["comparison"], group_bookkeeping=tables["bookkeeping"])
 
 
 def _run_samples(samples, out, cfg, records, prog, *, run_id, nworkers, scheduler, force, memory_limit, threads,
@@ -998,8 +1007,11 @@ def cohort_tables(outdir, samples):
     Returns
     -------
     dict
-        ``summary``, ``segments``, ``bifurcations`` and ``comparison``
-        DataFrames, and ``warnings`` (sample id -> message). A sample with a
+        ``summary`` (with the densities of :func:`add_densities`),
+        ``segments``, ``bifurcations``, ``comparison``
+        (:func:`group_comparison`) and ``bookkeeping``
+        (:func:`group_bookkeeping`) DataFrames, and ``warnings`` (sample
+        id -> message). A sample with a
         ``review.csv`` contributes its reviewed summary (bifurcations marked
         ``artefact`` left out) and its decisions as
         ``review_decision``/``review_note`` columns. A review that cannot be
@@ -1038,11 +1050,13 @@ def cohort_tables(outdir, samples):
     summary = pd.DataFrame(rows)
     if summary.empty:
         summary = pd.DataFrame(columns=["sample_id", "group", "reviewed", "review_problem"])
+    summary = add_densities(summary)
     segments = pd.concat(segs, ignore_index=True) if segs else pd.DataFrame(columns=["sample_id", "group"])
     bifurcations = (pd.concat([b for b in bifs if len(b.columns)], ignore_index=True)
                     if any(len(b.columns) for b in bifs) else pd.DataFrame(columns=["sample_id", "group"]))
     return {"summary": summary, "segments": _parquet_safe(segments), "bifurcations": _parquet_safe(bifurcations),
-            "comparison": group_comparison(summary), "warnings": warnings}
+            "comparison": group_comparison(summary), "bookkeeping": group_bookkeeping(summary),
+            "warnings": warnings}
 
 
 def _parquet_safe(df):
@@ -1054,82 +1068,514 @@ def _parquet_safe(df):
     return df
 
 
-def group_comparison(summary, *, group="group", measures=None):
-    """Per-measure group statistics and pairwise tests.
+# --------------------------------------------------------------------------- #
+# Group comparison: science measures, effect sizes, bookkeeping
+# --------------------------------------------------------------------------- #
+
+
+@dataclass(frozen=True)
+class StudyMeasure:
+    """A sample-level science measure compared between groups."""
+
+    name: str  # summary key (cohort_summary.csv column)
+    unit: str
+    label: str  # plain name for titles and tables
+    description: str
+
+
+def _class_measures():
+    # Flow by diameter class: the class bounds are flow.capillary_max_diameter_um
+    # and flow.small_vessel_max_diameter_um (8 and 30 µm by default).
+    from .flow import DIAMETER_CLASSES
+
+    where = {"capillary": "capillaries (diameter below flow.capillary_max_diameter_um)",
+             "small": "small vessels (up to flow.small_vessel_max_diameter_um)",
+             "large": "large vessels (above flow.small_vessel_max_diameter_um)"}
+    out = []
+    for c in DIAMETER_CLASSES:
+        out.append(StudyMeasure(f"velocity_median_mm_s_{c}", "mm/s", f"median blood speed, {c}",
+                                f"median mean speed of the perfused {where.get(c, c)}, model estimate"))
+        out.append(StudyMeasure(f"wss_median_pa_{c}", "Pa", f"median wall shear stress, {c}",
+                                f"median wall shear stress of the perfused {where.get(c, c)}, model estimate"))
+    return tuple(out)
+
+
+#: The sample-level science measures of a study, in table order. Sizes enter
+#: as densities per mm³ of imaged tissue (the whole imaged volume: no tissue
+#: mask is segmented), never as raw counts, because samples differ in the
+#: volume imaged; planar samples have the per-mm² analogues. Measures a
+#: result does not hold (older versions, flow not solved) are left out of the
+#: comparison, or compared through their older stand-in
+#: (:data:`FALLBACK_MEASURES`). Every other numeric summary column is bookkeeping
+#: (:func:`group_bookkeeping`), described but never tested.
+SCIENCE_MEASURES = (
+    StudyMeasure("length_density_mm_per_mm3", "mm/mm³", "vessel length density",
+                 "total centreline length per imaged volume"),
+    StudyMeasure("vessel_volume_fraction", "1", "vessel volume fraction",
+                 "vessel voxels per imaged voxel"),
+    StudyMeasure("junction_density_per_mm3", "1/mm³", "junction density",
+                 "junctions (nodes of degree three or more) per imaged volume"),
+    StudyMeasure("segment_density_per_mm3", "1/mm³", "segment density",
+                 "segments per imaged volume (computed in the study tables from segments / imaged_volume_mm3)"),
+    StudyMeasure("blind_end_density_per_mm3", "1/mm³", "blind-end density",
+                 "blind ends inside the volume per imaged volume (computed in the study tables from "
+                 "blind_ends / imaged_volume_mm3); ends cut by the border are left out"),
+    StudyMeasure("length_density_mm_per_mm2", "mm/mm²", "vessel length density (planar)",
+                 "total centreline length per imaged area"),
+    StudyMeasure("vessel_area_fraction", "1", "vessel area fraction (planar)", "vessel pixels per imaged pixel"),
+    StudyMeasure("junction_density_per_mm2", "1/mm²", "junction density (planar)", "junctions per imaged area"),
+    StudyMeasure("segment_density_per_mm2", "1/mm²", "segment density (planar)",
+                 "segments per imaged area (computed in the study tables from segments / imaged_area_mm2)"),
+    StudyMeasure("blind_end_density_per_mm2", "1/mm²", "blind-end density (planar)",
+                 "blind ends per imaged area (computed in the study tables from blind_ends / imaged_area_mm2)"),
+    StudyMeasure("murray_exponent_network", "1", "network Murray exponent",
+                 "one exponent x fitted to all usable diverging bifurcations, r0^x = r1^x + r2^x"),
+    StudyMeasure("murray_ratio_median", "1", "median Murray ratio",
+                 "median over junctions of (r1³ + r2³) / r0³"),
+    StudyMeasure("horton_ratio_number", "1", "Horton number ratio",
+                 "ratio of element numbers between consecutive diameter-defined orders (Kassab et al. 1993)"),
+    StudyMeasure("horton_ratio_diameter", "1", "Horton diameter ratio",
+                 "ratio of mean element diameters between consecutive orders"),
+    StudyMeasure("horton_ratio_length", "1", "Horton length ratio",
+                 "ratio of mean element lengths between consecutive orders"),
+    StudyMeasure("radius_median_um", "µm", "median segment radius", "median of the segment radii"),
+    StudyMeasure("radius_mean_um", "µm", "mean segment radius", "mean of the segment radii"),
+    StudyMeasure("vessel_tortuosity_median", "1", "median vessel tortuosity",
+                 "median distance metric (length / chord) along vessels continued through junctions"),
+    StudyMeasure("vessel_soam_median_rad_per_um", "rad/µm", "median vessel sum of angles",
+                 "median sum-of-angles metric along vessels (Bullitt et al. 2003)"),
+) + _class_measures() + (
+    StudyMeasure("perfused_length_fraction", "1", "perfused length fraction",
+                 "share of the vessel length carrying flow in the model"),
+    StudyMeasure("tissue_distance_median_um", "µm", "median tissue-to-vessel distance",
+                 "median distance from a tissue voxel to the nearest vessel voxel"),
+    StudyMeasure("tissue_distance_p95_um", "µm", "95th percentile tissue-to-vessel distance",
+                 "95th percentile of the distance from a tissue voxel to the nearest vessel voxel"),
+)
+#: Stand-ins for results made before a measure existed, compared in its place
+#: only when no sample has the newer one: measure name -> older measure.
+FALLBACK_MEASURES = {
+    "vessel_tortuosity_median": StudyMeasure(
+        "tortuosity_mean", "1", "mean segment tortuosity",
+        "mean distance metric (length / chord) of single segments; results without vessel tortuosity"),
+    "vessel_soam_median_rad_per_um": StudyMeasure(
+        "soam_mean_rad_per_um", "rad/µm", "mean segment sum of angles",
+        "mean sum-of-angles metric of single segments; results without vessel tortuosity"),
+}
+_SCIENCE = {m.name: m for m in SCIENCE_MEASURES + tuple(FALLBACK_MEASURES.values())}
+# Columns of the cohort summary that describe a row, not a sample's measure.
+_ID_COLUMNS = ("sample_id", "group", "reviewed", "review_problem")
+# Densities the study tables derive from a count and the imaged volume or area.
+_DERIVED_DENSITIES = (("segment_density", "segments"), ("blind_end_density", "blind_ends"))
+#: Fewest samples with a value per group for a test.
+MIN_TEST_SAMPLES = 3
+
+
+def add_densities(summary):
+    """The cohort summary with the densities the study tables derive.
 
     Parameters
     ----------
     summary : DataFrame
-        One row per sample with a ``group`` column and numeric measures.
-    group : str
+        One row per sample with the summary counts ``segments`` and
+        ``blind_ends`` and ``imaged_volume_mm3`` (or, planar,
+        ``imaged_area_mm2``).
+
+    Returns
+    -------
+    DataFrame
+        A copy with ``segment_density_per_mm3`` and
+        ``blind_end_density_per_mm3`` (count / imaged volume, 1/mm³; planar
+        rows the ``_per_mm2`` columns instead), added where the summary does
+        not hold them already. A row without the count or the volume gets NaN.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> df = pd.DataFrame({"segments": [10, 20], "blind_ends": [1, 2], "imaged_volume_mm3": [0.5, 1.0]})
+    >>> add_densities(df)["segment_density_per_mm3"].tolist()
+    [20.0, 20.0]
+    """
+    out = summary.copy()
+    for region, per in (("imaged_volume_mm3", "per_mm3"), ("imaged_area_mm2", "per_mm2")):
+        if region not in out.columns:
+            continue
+        size = pd.to_numeric(out[region], errors="coerce").to_numpy(float)
+        size = np.where(size > 0, size, np.nan)
+        if not np.isfinite(size).any():
+            continue
+        for stem, count in _DERIVED_DENSITIES:
+            name = f"{stem}_{per}"
+            if name in out.columns or count not in out.columns:
+                continue
+            out[name] = pd.to_numeric(out[count], errors="coerce").to_numpy(float) / size
+    return out
+
+
+def _mw_null_cdf(m, n):
+    """Exact null distribution of the Mann-Whitney U of samples of m and n, as P(U <= u), u = 0..mn.
+
+    Recurrence over sample sizes (Mann & Whitney 1947, Ann Math Stat 18:50):
+    p_{m,n}(u) = m/(m+n) p_{m-1,n}(u-n) + n/(m+n) p_{m,n-1}(u), a convex
+    combination at every step, so it carries no cancellation.
+    """
+    prev = [np.ones(1)] * (n + 1)  # row a = 0: U = 0 whatever b
+    for a in range(1, m + 1):
+        row = [np.ones(1)]  # b = 0: U = 0
+        for b in range(1, n + 1):
+            p = np.zeros(a * b + 1)
+            p[b:b + prev[b].size] += a / (a + b) * prev[b]  # the largest value is from the first sample
+            p[:row[b - 1].size] += b / (a + b) * row[b - 1]
+            row.append(p)
+        prev = row
+    return np.minimum(np.cumsum(prev[n]), 1.0)
+
+
+def _signed_rank_null_cdf(n):
+    """Exact null distribution of the Wilcoxon signed-rank W+ of n values, as P(W+ <= w), w = 0..n(n+1)/2.
+
+    W+ is a sum of independent terms 0 or i with probability 1/2 each
+    (Wilcoxon 1945, Biometrics Bull 1:80): its distribution is the
+    convolution of those n two-point laws.
+    """
+    p = np.ones(1)
+    for i in range(1, n + 1):
+        q = np.zeros(p.size + i)
+        q[:p.size] += 0.5 * p
+        q[i:] += 0.5 * p
+        p = q
+    return np.minimum(np.cumsum(p), 1.0)
+
+
+# Exact null distributions up to this many pairs (cost grows as its square);
+# beyond, the normal approximation of U is used for the interval's rank.
+_EXACT_MAX_PAIRS = 10_000
+
+
+def _order_rank(cdf, alpha):
+    """1-based rank k of the interval [D_(k), D_(N-k+1)] and its coverage; (0, nan) when none reaches 1 - alpha."""
+    ok = np.flatnonzero(cdf <= alpha / 2 * (1 + 1e-12))
+    if ok.size == 0:
+        return 0, math.nan
+    u = int(ok[-1])
+    return u + 1, float(1.0 - 2.0 * cdf[u])
+
+
+def hodges_lehmann(a, b, *, confidence=0.95):
+    """Hodges-Lehmann shift of b against a with its distribution-free interval.
+
+    Parameters
+    ----------
+    a, b : array_like, shape (n_a,), (n_b,)
+        The two groups' values (NaN left out), in the measure's unit.
+    confidence : float, keyword-only
+        Nominal confidence of the interval.
+
+    Returns
+    -------
+    shift, low, high, coverage : float
+        ``shift`` is the median of the n_a n_b pairwise differences
+        ``b_j - a_i`` (Hodges & Lehmann 1963, Ann Math Stat 34:598), in the
+        measure's unit. ``[low, high] = [D_(k), D_(N+1-k)]``, order
+        statistics of the N pairwise differences, with ``k - 1`` the
+        largest ``u`` for which P(U <= u) <= (1 - confidence) / 2 under the
+        exact null distribution of the Mann-Whitney U (Bauer 1972, J Am
+        Stat Assoc 67:687; Lehmann 1975, Nonparametrics, ch. 2): the shifts
+        d for which the exact two-sided test of ``b - d`` against ``a`` does
+        not reject. ``coverage`` is the interval's exact confidence
+        (discrete, at least ``confidence``); low, high and coverage are NaN
+        when no interval reaches it (for 95 %: 3 against 3 or 4, or fewer).
+        Beyond 10,000 pairs the rank k comes from the normal approximation
+        of U and ``coverage`` is ``confidence``. With ties the interval is
+        conservative.
+
+    Examples
+    --------
+    >>> s, lo, hi, cov = hodges_lehmann([1.0, 2.0, 3.0, 4.0], [5.0, 6.5, 7.0, 9.0])
+    >>> float(s), float(lo), float(hi), round(cov, 4)
+    (4.25, 1.0, 8.0, 0.9714)
+    """
+    from scipy import stats
+
+    a = np.asarray(a, float)
+    b = np.asarray(b, float)
+    a, b = a[np.isfinite(a)], b[np.isfinite(b)]
+    if a.size == 0 or b.size == 0:
+        return math.nan, math.nan, math.nan, math.nan
+    d = np.sort((b[None, :] - a[:, None]).ravel())
+    shift = float(np.median(d))
+    alpha = 1.0 - confidence
+    if d.size <= _EXACT_MAX_PAIRS:
+        k, coverage = _order_rank(_mw_null_cdf(a.size, b.size), alpha)
+    else:
+        m, n = a.size, b.size
+        z = stats.norm.isf(alpha / 2)
+        k = int(math.floor(m * n / 2 - z * math.sqrt(m * n * (m + n + 1) / 12)))
+        coverage = confidence if k >= 1 else math.nan
+    if k < 1:
+        return shift, math.nan, math.nan, math.nan
+    return shift, float(d[k - 1]), float(d[d.size - k]), coverage
+
+
+def hodges_lehmann_one_sample(x, *, confidence=0.95):
+    """One-sample Hodges-Lehmann estimate (pseudo-median) with its signed-rank interval.
+
+    Parameters
+    ----------
+    x : array_like, shape (n,)
+        Values of one group (NaN left out).
+    confidence : float, keyword-only
+        Nominal confidence of the interval.
+
+    Returns
+    -------
+    estimate, low, high, coverage : float
+        ``estimate``: the median of the n(n+1)/2 Walsh averages
+        ``(x_i + x_j) / 2, i <= j`` (Hodges & Lehmann 1963); the interval
+        ``[W_(k), W_(M+1-k)]`` of the sorted Walsh averages with ``k - 1``
+        the largest ``w`` for which P(W+ <= w) <= (1 - confidence) / 2
+        under the exact null distribution of the Wilcoxon signed-rank
+        statistic (Hollander & Wolfe 1999, Nonparametric Statistical
+        Methods, sec. 3.3; from memory), which assumes a distribution
+        symmetric about its centre. With fewer than six values no interval
+        reaches 95 %: then the widest one, ``[min x, max x]``, is returned
+        with its exact ``coverage`` (for example 1 - 2/2^5 = 0.9375 at
+        n = 5), so a reader sees how much less it is. NaN for n < 2.
+
+    Examples
+    --------
+    >>> est, lo, hi, cov = hodges_lehmann_one_sample([2.4, 2.6, 2.9, 3.1, 3.0, 2.7])
+    >>> round(float(est), 3), float(lo), float(hi), round(cov, 4)
+    (2.8, 2.4, 3.1, 0.9688)
+    """
+    x = np.asarray(x, float)
+    x = x[np.isfinite(x)]
+    if x.size == 0:
+        return math.nan, math.nan, math.nan, math.nan
+    i, j = np.triu_indices(x.size)
+    w = np.sort((x[i] + x[j]) / 2.0)
+    est = float(np.median(w))
+    if x.size < 2:
+        return est, math.nan, math.nan, math.nan
+    cdf = _signed_rank_null_cdf(x.size)
+    k, coverage = _order_rank(cdf, 1.0 - confidence)
+    if k < 1:
+        k, coverage = 1, float(1.0 - 2.0 * cdf[0])
+    return est, float(w[k - 1]), float(w[w.size - k]), coverage
+
+
+def cliffs_delta(a, b):
+    """Cliff's delta of b against a: P(b > a) - P(b < a) over all pairs.
+
+    Parameters
+    ----------
+    a, b : array_like, shape (n_a,), (n_b,)
+        The two groups' values (NaN left out).
+
+    Returns
+    -------
+    float
+        In [-1, 1] (Cliff 1993, Psychol Bull 114:494); positive when group b
+        tends to be larger. Equals ``2 U_b / (n_a n_b) - 1`` with ``U_b``
+        the Mann-Whitney statistic of b (ties counting one half). NaN when a
+        group is empty.
+
+    Examples
+    --------
+    >>> cliffs_delta([1, 2, 3], [2, 4, 5])  # 7 pairs b > a, 1 tie, 1 b < a
+    0.6666666666666666
+    """
+    a = np.asarray(a, float)
+    b = np.asarray(b, float)
+    a, b = a[np.isfinite(a)], b[np.isfinite(b)]
+    if a.size == 0 or b.size == 0:
+        return math.nan
+    sign = np.sign(b[None, :] - a[:, None])
+    return float(sign.mean())
+
+
+COMPARISON_COLUMNS = ("measure", "label", "unit", "group_a", "group_b", "n_a", "n_b", "mean_a", "sd_a", "median_a",
+                      "mean_b", "sd_b", "median_b", "difference", "hodges_lehmann_shift", "hodges_lehmann_ci_low",
+                      "hodges_lehmann_ci_high", "hodges_lehmann_coverage", "cliffs_delta", "mann_whitney_u",
+                      "test_method", "p_value", "q_value", "test_note")
+BOOKKEEPING_COLUMNS = ("measure", "group", "n", "mean", "sd", "median")
+
+
+def _finite(values):
+    return values[np.isfinite(values)]
+
+
+def _describe(v):
+    if v.size == 0:
+        return np.nan, np.nan, np.nan
+    return float(np.mean(v)), float(np.std(v, ddof=1)) if v.size > 1 else np.nan, float(np.median(v))
+
+
+def science_measures(summary):
+    """Names of the science measures the cohort summary holds a value of, in table order.
+
+    A measure of :data:`FALLBACK_MEASURES` that no sample has (results of an
+    older version) is replaced by its older stand-in where that has values.
+    """
+    def has(name):
+        return name in summary.columns and np.isfinite(pd.to_numeric(summary[name], errors="coerce")
+                                                       .to_numpy(float)).any()
+
+    out = []
+    for m in SCIENCE_MEASURES:
+        if has(m.name):
+            out.append(m.name)
+        elif m.name in FALLBACK_MEASURES and has(FALLBACK_MEASURES[m.name].name):
+            out.append(FALLBACK_MEASURES[m.name].name)
+    return out
+
+
+def bookkeeping_measures(summary):
+    """Every other numeric summary column (counts, residuals, sizes, settings): described, never tested."""
+    science = {m.name for m in SCIENCE_MEASURES} | set(science_measures(summary))
+    return [c for c in summary.columns if c not in science and c not in _ID_COLUMNS
+            and pd.api.types.is_numeric_dtype(summary[c]) and not pd.api.types.is_bool_dtype(summary[c])]
+
+
+def group_comparison(summary, *, group="group", measures=None, confidence=0.95,
+                     min_samples=MIN_TEST_SAMPLES):
+    """Science measures compared between every pair of groups.
+
+    Parameters
+    ----------
+    summary : DataFrame
+        One row per sample (``cohort_summary.csv``) with a ``group`` column;
+        the derived densities are added (:func:`add_densities`).
+    group : str, keyword-only
         Name of the group column.
-    measures : list of str, optional
-        Default: every numeric column but booleans and ``sample_id``.
+    measures : list of str, optional, keyword-only
+        Default: the :data:`SCIENCE_MEASURES` that some sample has a value
+        of. Bookkeeping columns are never compared (:func:`group_bookkeeping`).
+    confidence : float, keyword-only
+        Nominal confidence of the Hodges-Lehmann interval.
+    min_samples : int, keyword-only
+        Fewest samples with a value in each group for a test.
 
     Returns
     -------
     DataFrame
         One row per measure and pair of groups (groups in order of first
         appearance; with one group, one row per measure with empty ``b``
-        columns): ``measure, group_a, group_b, n_a, mean_a, sd_a, median_a,
-        n_b, mean_b, sd_b, median_b, difference`` (``mean_b - mean_a``),
-        ``mann_whitney_u`` (the statistic of group a), ``p_value`` (two-sided
-        Mann-Whitney U, :func:`scipy.stats.mannwhitneyu`) and ``q_value``
-        (Benjamini-Hochberg over the measures of the same pair of groups,
-        :func:`scipy.stats.false_discovery_control`). sd uses n - 1. Missing
-        values are left out per measure; a test needs a value in each group.
+        columns), columns :data:`COMPARISON_COLUMNS`: the measure's
+        ``label`` and ``unit``; ``n_a``, ``n_b`` (samples with a value),
+        mean, sd (n - 1) and median per group; ``difference`` (mean b -
+        mean a); the Hodges-Lehmann shift of b against a with its
+        distribution-free interval and exact coverage
+        (:func:`hodges_lehmann`); ``cliffs_delta`` of b against a
+        (:func:`cliffs_delta`); ``mann_whitney_u`` (the statistic of group
+        a), ``test_method`` and ``p_value`` of the two-sided Mann-Whitney U
+        test (:func:`scipy.stats.mannwhitneyu`, ``method='auto'``: exact
+        when a group has at most 8 values and there are no ties, the normal
+        approximation with tie correction otherwise); ``q_value``
+        (Benjamini-Hochberg over the tested measures of the same pair,
+        :func:`scipy.stats.false_discovery_control`). A pair in which a
+        group has fewer than ``min_samples`` values, or whose values are
+        all equal, is not tested: p, q and the effect sizes are NaN and
+        ``test_note`` says why.
 
     Examples
     --------
     >>> import pandas as pd
-    >>> df = pd.DataFrame({"group": ["a", "a", "a", "b", "b", "b"], "x_um": [1, 2, 3, 4, 5, 6]})
+    >>> df = pd.DataFrame({"group": ["a"] * 3 + ["b"] * 3, "radius_median_um": [1, 2, 3, 4, 5, 6]})
     >>> row = group_comparison(df).iloc[0]
-    >>> float(row["difference"]), float(row["mann_whitney_u"]), round(float(row["p_value"]), 3)
-    (3.0, 0.0, 0.1)
+    >>> float(row["hodges_lehmann_shift"]), float(row["cliffs_delta"]), round(float(row["p_value"]), 3)
+    (3.0, 1.0, 0.1)
     """
     from scipy import stats
 
     if summary.empty or group not in summary:
         return pd.DataFrame(columns=list(COMPARISON_COLUMNS))
+    summary = add_densities(summary)
     if measures is None:
-        measures = [c for c in summary.columns if c not in (group, "sample_id")
-                    and pd.api.types.is_numeric_dtype(summary[c]) and not pd.api.types.is_bool_dtype(summary[c])]
+        measures = science_measures(summary)
     groups = list(dict.fromkeys(summary[group].astype(str)))
     pairs = [(a, b) for i, a in enumerate(groups) for b in groups[i + 1:]] or [(groups[0], None)]
-    labels = summary[group].astype(str)
-
-    def describe(values):
-        v = values[np.isfinite(values)]
-        if v.size == 0:
-            return 0, np.nan, np.nan, np.nan, v
-        sd = float(np.std(v, ddof=1)) if v.size > 1 else np.nan
-        return int(v.size), float(np.mean(v)), sd, float(np.median(v)), v
+    labels = summary[group].astype(str).to_numpy()
 
     rows = []
     for a, b in pairs:
         block = []
         for m in measures:
-            col = pd.to_numeric(summary[m], errors="coerce").to_numpy(float)
-            na, ma, sa, mda, va = describe(col[(labels == a).to_numpy()])
-            row = {"measure": m, "group_a": a, "group_b": b, "n_a": na, "mean_a": ma, "sd_a": sa, "median_a": mda}
+            info = _SCIENCE.get(m)
+            col = (pd.to_numeric(summary[m], errors="coerce").to_numpy(float) if m in summary.columns
+                   else np.full(len(summary), np.nan))
+            va = _finite(col[labels == a])
+            ma, sa, mda = _describe(va)
+            row = dict.fromkeys(COMPARISON_COLUMNS, np.nan)
+            row.update(measure=m, label=info.label if info else m.replace("_", " "), unit=info.unit if info else "",
+                       group_a=a, group_b=b, n_a=va.size, mean_a=ma, sd_a=sa, median_a=mda, n_b=0,
+                       test_method="", test_note="")
             if b is None:
-                row.update(n_b=0, mean_b=np.nan, sd_b=np.nan, median_b=np.nan, difference=np.nan,
-                           mann_whitney_u=np.nan, p_value=np.nan)
+                row["test_note"] = "one group: nothing to compare"
+                block.append(row)
+                continue
+            vb = _finite(col[labels == b])
+            mb, sb, mdb = _describe(vb)
+            row.update(n_b=vb.size, mean_b=mb, sd_b=sb, median_b=mdb,
+                       difference=mb - ma if va.size and vb.size else np.nan)
+            few = [g for g, v in ((a, va), (b, vb)) if v.size < min_samples]
+            if few:
+                row["test_note"] = "; ".join(f"fewer than {min_samples} samples in group '{g}'" for g in few)
+            elif np.ptp(np.r_[va, vb]) == 0:
+                row["test_note"] = "all values equal: no test"
             else:
-                nb, mb, sb, mdb, vb = describe(col[(labels == b).to_numpy()])
-                row.update(n_b=nb, mean_b=mb, sd_b=sb, median_b=mdb, difference=mb - ma if na and nb else np.nan)
-                if na and nb:
-                    res = stats.mannwhitneyu(va, vb, alternative="two-sided")
-                    row.update(mann_whitney_u=float(res.statistic), p_value=float(res.pvalue))
-                else:
-                    row.update(mann_whitney_u=np.nan, p_value=np.nan)
+                ties = np.unique(np.r_[va, vb]).size < va.size + vb.size
+                res = stats.mannwhitneyu(va, vb, alternative="two-sided", method="auto")
+                shift, lo, hi, cov = hodges_lehmann(va, vb, confidence=confidence)
+                row.update(mann_whitney_u=float(res.statistic), p_value=float(res.pvalue),
+                           test_method="exact" if min(va.size, vb.size) <= 8 and not ties else "asymptotic",
+                           hodges_lehmann_shift=shift, hodges_lehmann_ci_low=lo, hodges_lehmann_ci_high=hi,
+                           hodges_lehmann_coverage=cov, cliffs_delta=cliffs_delta(va, vb))
+                if not np.isfinite(cov):
+                    row["test_note"] = (f"too few samples for a {confidence:.0%} interval of the shift "
+                                        f"({va.size} and {vb.size})")
             block.append(row)
         p = np.array([r["p_value"] for r in block], float)
-        q = np.full(p.shape, np.nan)
         ok = np.isfinite(p)
+        q = np.full(p.shape, np.nan)
         if ok.any():
             q[ok] = stats.false_discovery_control(p[ok], method="bh")
         for r, qq in zip(block, q):
             r["q_value"] = qq
         rows.extend(block)
-    return pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
+    out = pd.DataFrame(rows, columns=list(COMPARISON_COLUMNS))
+    out["n_a"] = out["n_a"].astype(int)
+    out["n_b"] = out["n_b"].astype(int)
+    return out
+
+
+def group_bookkeeping(summary, *, group="group"):
+    """Bookkeeping columns of the cohort summary described per group, without tests.
+
+    Parameters
+    ----------
+    summary : DataFrame
+        One row per sample with a ``group`` column.
+    group : str, keyword-only
+        Name of the group column.
+
+    Returns
+    -------
+    DataFrame
+        One row per bookkeeping column (:func:`bookkeeping_measures`: raw
+        counts, run residuals, imaged sizes, flag counts) and group:
+        ``measure, group, n, mean, sd, median`` (n: samples with a value;
+        sd with n - 1).
+    """
+    if summary.empty or group not in summary:
+        return pd.DataFrame(columns=list(BOOKKEEPING_COLUMNS))
+    labels = summary[group].astype(str).to_numpy()
+    groups = list(dict.fromkeys(labels))
+    rows = []
+    for m in bookkeeping_measures(summary):
+        col = pd.to_numeric(summary[m], errors="coerce").to_numpy(float)
+        for g in groups:
+            v = _finite(col[labels == g])
+            mean, sd, med = _describe(v)
+            rows.append({"measure": m, "group": g, "n": v.size, "mean": mean, "sd": sd, "median": med})
+    return pd.DataFrame(rows, columns=list(BOOKKEEPING_COLUMNS))

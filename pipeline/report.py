@@ -30,7 +30,16 @@ Murray plot of r0³ against r1³ + r2³ with the identity line, the junction
 exponents with 2 and 3 marked, wall shear stress against diameter, and flow
 against radius with a slope-3 guide (Q ∝ r³ under Murray's law; Murray CD
 1926, PNAS 12:207). Figures of a study: box-and-point plots per group for
-the main measures, annotated with the comparison table's q-values.
+the science measures of :data:`pipeline.batch.SCIENCE_MEASURES` (titled by
+their plain names and units), annotated with the comparison table's
+Hodges-Lehmann shift and q-values, and the network Murray exponent with its
+95 % interval per sample (``murray_exponent_network``, ``_ci_low``,
+``_ci_high`` of each summary) and per group: the group's one-sample
+Hodges-Lehmann estimate with its Wilcoxon signed-rank interval
+(:func:`pipeline.batch.hodges_lehmann_one_sample`; exact coverage stated,
+below 95 % for fewer than six samples). The bookkeeping columns
+(``group_bookkeeping.csv``) are listed apart, untested. Results without the
+network exponent (older versions) get a sentence saying so.
 
 Flow sections of a sample (when flow was solved): **flow plausibility**,
 the mean speed and wall shear stress of the perfused segments by diameter
@@ -79,12 +88,14 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
 from . import __version__
+from .batch import FALLBACK_MEASURES, SCIENCE_MEASURES, add_densities, hodges_lehmann_one_sample, science_measures
 from .errors import InputError, VesselflowError
 
 __all__ = ["build_report", "load_sample", "SampleData", "sample_figures", "study_figures", "figure_map_level",
            "figure_map_wss", "figure_distributions", "figure_radius_by_level", "figure_murray", "figure_exponents",
            "figure_wss_diameter", "figure_flow_radius", "figure_flow_plausibility", "figure_flow_intervals",
-           "figure_study_measure", "diameter_class", "flow_uncertainty", "plausibility_checks",
+           "figure_study_measure", "figure_network_exponent", "network_exponent_table", "diameter_class",
+           "flow_uncertainty", "plausibility_checks",
            "plausibility_messages", "DIRECTION_CONFIDENCE_MIN", "OKABE_ITO", "SAMPLE_FIGURES", "FLOW_FIGURES",
            "STUDY_MEASURES"]
 
@@ -100,10 +111,12 @@ FLOW_FIGURES = ("map_wss", "wss_diameter", "flow_radius", "flow_plausibility", "
 # Figures shown in a section of their own instead of the figure grid: name -> section id.
 _SECTION_FIGURES = {"flow_plausibility": "plausibility", "flow_intervals": "uncertainty"}
 
-#: Summary measures shown per group in a study report (those present are used).
-STUDY_MEASURES = ("total_length_mm", "length_density_mm_per_mm3", "vessel_volume_fraction",
-                  "junction_density_per_mm3", "radius_median_um", "tortuosity_mean", "murray_exponent_median",
-                  "fraction_within_tolerance", "bifurcations_flagged", "total_inflow_nl_min")
+#: Summary measures shown per group in a study report (those present are
+#: used): the science measures the group comparison tests.
+STUDY_MEASURES = tuple(m.name for m in SCIENCE_MEASURES)
+#: Summary keys of the network Murray exponent and its 95 % interval.
+NETWORK_EXPONENT_KEYS = ("murray_exponent_network", "murray_exponent_network_ci_low",
+                         "murray_exponent_network_ci_high")
 
 REPORT_NAME = "report.html"
 FIGURE_DIR = "figures"
@@ -141,6 +154,7 @@ _LABELS = {
     "total_inflow_nl_min": "total inflow (nL/min)",
     "perfused_length_fraction": "perfused length (fraction)",
 }
+_SCIENCE = {m.name: m for m in SCIENCE_MEASURES + tuple(FALLBACK_MEASURES.values())}
 _SUFFIXES = (("_mm_per_mm3", "mm/mm³"), ("_per_mm3", "per mm³"), ("_pa_s_um3", "Pa·s/µm³"),
              ("_rad_per_um", "rad/µm"), ("_nl_min", "nL/min"), ("_mm3", "mm³"), ("_um2", "µm²"),
              ("_um3", "µm³"), ("_mm", "mm"), ("_um", "µm"), ("_pa", "Pa"), ("_mm_s", "mm/s"), ("_s", "s"),
@@ -281,6 +295,9 @@ def _publish(out, page, figures):
 
 
 def _label(measure):
+    if measure in _SCIENCE:
+        m = _SCIENCE[measure]
+        return f"{m.label} ({'dimensionless' if m.unit == '1' else m.unit})"
     if measure in _LABELS:
         return _LABELS[measure]
     text = measure
@@ -1272,8 +1289,17 @@ def figure_study_measure(cohort, comparison, measure, groups):
     if comparison is not None and not comparison.empty:
         rows = comparison[comparison["measure"] == measure]
         for _, r in rows.iterrows():
-            lines.append(f"{r['group_a']} vs {r['group_b']}: q = {_fmt_q(_num(r.get('q_value')))}")
-    ax.set_title(measure + ("\n" + "; ".join(lines) if lines else ""), fontsize=9)
+            shift = _num(r.get("hodges_lehmann_shift"))
+            lo, hi = _num(r.get("hodges_lehmann_ci_low")), _num(r.get("hodges_lehmann_ci_high"))
+            text = f"{r['group_b']} − {r['group_a']}"
+            note = r.get("test_note")
+            if not math.isfinite(_num(r.get("p_value"))) and isinstance(note, str) and note:
+                lines.append(f"{text}: no test ({note})")
+                continue
+            if math.isfinite(shift):
+                text += f" {_fmt(shift)}" + (f" [{_fmt(lo)}, {_fmt(hi)}]" if math.isfinite(lo) else "")
+            lines.append(f"{text}, q = {_fmt_q(_num(r.get('q_value')))}")
+    ax.set_title(_label(measure).split(" (")[0] + ("\n" + "\n".join(lines) if lines else ""), fontsize=9)
     ax.set_xlabel("group")
     ax.set_ylabel(_label(measure))
     ax.legend(fontsize=7, loc="best")
@@ -1295,16 +1321,144 @@ def study_figures(cohort, comparison):
     -------
     dict of str -> (Figure, title, caption)
     """
+    cohort = add_densities(cohort)
     groups = sorted(cohort["group"].astype(str).unique())
     out = {}
-    for m in STUDY_MEASURES:
-        if m not in cohort.columns or not np.isfinite(pd.to_numeric(cohort[m], errors="coerce")).any():
-            continue
+    if (all(k in cohort.columns for k in NETWORK_EXPONENT_KEYS)
+            and np.isfinite(_col(cohort, NETWORK_EXPONENT_KEYS[0])).any()):
+        out["study_network_exponent"] = (figure_network_exponent(cohort, groups), "Network Murray exponent",
+                                         _NETWORK_EXPONENT_CAPTION)
+    for m in science_measures(cohort):
         fig = figure_study_measure(cohort, comparison, m, groups)
-        out[f"study_{m}"] = (fig, _label(m), "Boxes: median and quartiles per group; points: samples. q: "
+        out[f"study_{m}"] = (fig, _label(m), "Boxes: median and quartiles per group; points: samples. Title: "
+                                             "Hodges–Lehmann shift of the second group against the first with "
+                                             "its distribution-free 95 % interval, and q, the "
                                              "Benjamini–Hochberg-adjusted p-value of the Mann–Whitney U test "
-                                             "(group_comparison.csv).")
+                                             "(group_comparison.csv; no test with fewer than 3 samples in a "
+                                             "group).")
     return out
+
+
+_NETWORK_EXPONENT_CAPTION = (
+    "One exponent x of r0^x = r1^x + r2^x fitted per sample to its diverging bifurcations; bars: the sample's "
+    "95 % bootstrap interval over junctions (2 preserves cross-sectional area, 3 is Murray's cube law). "
+    "Diamonds: the group's one-sample Hodges–Lehmann estimate (median of the Walsh averages of its samples' "
+    "exponents) with the Wilcoxon signed-rank interval, labelled with its exact coverage (below 95 % with "
+    "fewer than six samples: with n samples the widest interval covers 1 − 2^(1−n)).")
+
+
+def network_exponent_table(cohort, *, group="group"):
+    """The network Murray exponent per sample and per group, or None without the summary keys.
+
+    Parameters
+    ----------
+    cohort : DataFrame
+        ``cohort_summary.csv``: one row per sample with ``sample_id``, the
+        group column and :data:`NETWORK_EXPONENT_KEYS` (dimensionless).
+    group : str, keyword-only
+        Name of the group column.
+
+    Returns
+    -------
+    (DataFrame, DataFrame) or None
+        Per sample: ``sample_id, group, exponent, ci_low, ci_high`` and
+        ``junctions`` (``murray_exponent_network_junctions`` where present).
+        Per group: ``group, n`` (samples with an exponent),
+        ``hodges_lehmann_estimate, ci_low, ci_high, coverage``
+        (:func:`pipeline.batch.hodges_lehmann_one_sample`) and ``median``.
+        None when the cohort has no such keys (results of older versions).
+    """
+    if not all(k in cohort.columns for k in NETWORK_EXPONENT_KEYS):
+        return None
+    per = pd.DataFrame({"sample_id": cohort["sample_id"].astype(str), "group": cohort[group].astype(str),
+                        "exponent": _col(cohort, NETWORK_EXPONENT_KEYS[0]),
+                        "ci_low": _col(cohort, NETWORK_EXPONENT_KEYS[1]),
+                        "ci_high": _col(cohort, NETWORK_EXPONENT_KEYS[2]),
+                        "junctions": _col(cohort, "murray_exponent_network_junctions")})
+    rows = []
+    for g in sorted(per["group"].unique()):
+        x = per.loc[per["group"] == g, "exponent"].to_numpy(float)
+        x = x[np.isfinite(x)]
+        est, lo, hi, cov = hodges_lehmann_one_sample(x)
+        rows.append({"group": g, "n": int(x.size), "hodges_lehmann_estimate": est, "ci_low": lo, "ci_high": hi,
+                     "coverage": cov, "median": float(np.median(x)) if x.size else np.nan})
+    return per, pd.DataFrame(rows)
+
+
+def figure_network_exponent(cohort, groups):
+    """Network Murray exponent with its interval per sample, and per group (:func:`network_exponent_table`)."""
+    fig = _new_figure(6.4, 4.4)
+    ax = fig.add_subplot()
+    table = network_exponent_table(cohort)
+    if table is None:
+        _no_data(ax, "no network exponent in these results")
+        return fig
+    per, grp = table
+    x0 = 0.0
+    ticks, names = [], []
+    for i, g in enumerate(groups):
+        c = OKABE_ITO[i % len(OKABE_ITO)]
+        rows = per[per["group"] == g].reset_index(drop=True)
+        xs = x0 + np.arange(len(rows))
+        y, lo, hi = rows["exponent"].to_numpy(float), rows["ci_low"].to_numpy(float), rows["ci_high"].to_numpy(float)
+        ok = np.isfinite(y)
+        err = np.vstack([np.where(np.isfinite(lo), y - lo, 0.0), np.where(np.isfinite(hi), hi - y, 0.0)])
+        if ok.any():
+            ax.errorbar(xs[ok], y[ok], yerr=err[:, ok], fmt="o", color=c, ecolor=c, capsize=3, ms=5,
+                        label=f"{g} (n = {int(ok.sum())})")
+        ticks.extend(xs.tolist())
+        names.extend(rows["sample_id"].tolist())
+        gr = grp[grp["group"] == g]
+        if len(gr) and np.isfinite(gr["hodges_lehmann_estimate"].iloc[0]):
+            gx = x0 + len(rows) + 0.2
+            est, glo, ghi, cov = (float(gr[k].iloc[0]) for k in ("hodges_lehmann_estimate", "ci_low", "ci_high",
+                                                                  "coverage"))
+            if math.isfinite(glo):
+                ax.errorbar([gx], [est], yerr=[[est - glo], [ghi - est]], fmt="D", color="k", ecolor="k",
+                            capsize=5, ms=7, mfc=c)
+                # the exact coverage beside the bar: below 95 % with fewer than six samples
+                ax.annotate(f"{cov:.1%}", (gx, ghi), xytext=(4, 2), textcoords="offset points", fontsize=7)
+            else:
+                ax.plot([gx], [est], "D", color="k", mfc=c, ms=7)
+            ticks.append(gx)
+            names.append(f"{g}: group")
+        x0 += len(rows) + 1.5
+    for ref in (2.0, 3.0):
+        ax.axhline(ref, color="#888888", lw=0.8, ls="--", zorder=0)
+    ax.set_xticks(ticks)
+    ax.set_xticklabels(names, rotation=60, ha="right", fontsize=7)
+    ax.set_ylabel("network Murray exponent (dimensionless)")
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize=7, loc="best")
+    return fig
+
+
+def _network_exponent_html(cohort):
+    table = network_exponent_table(cohort)
+    if table is None:
+        return ("<p>These results hold no network Murray exponent (summary key murray_exponent_network): they "
+                "were made by a version of vesselflow before it was added. Analyse the samples again to see "
+                "it.</p>")
+    per, grp = table
+    per = per.rename(columns={"exponent": "network exponent", "ci_low": "95 % low", "ci_high": "95 % high",
+                              "junctions": "junctions used"})
+    grp = grp.rename(columns={"n": "samples", "hodges_lehmann_estimate": "Hodges–Lehmann estimate",
+                              "ci_low": "interval low", "ci_high": "interval high",
+                              "coverage": "exact coverage"})
+    return ("<p>Per sample: the exponent fitted to the sample's diverging bifurcations with its 95 % interval. "
+            "Per group: the one-sample Hodges–Lehmann estimate of the samples' exponents with its Wilcoxon "
+            "signed-rank interval and that interval's exact coverage (distribution-free for a distribution "
+            "symmetric about its centre; below 95 % with fewer than six samples, where no such interval "
+            "reaches 95 %).</p>" + _table(per) + _table(grp))
+
+
+# Columns of group_comparison.csv shown in the report, in order (those present).
+_COMPARISON_SHOWN = (("label", "measure"), ("unit", "unit"), ("group_a", "group a"), ("group_b", "group b"),
+                     ("n_a", "n a"), ("n_b", "n b"), ("median_a", "median a"), ("median_b", "median b"),
+                     ("hodges_lehmann_shift", "shift b − a"), ("hodges_lehmann_ci_low", "shift low"),
+                     ("hodges_lehmann_ci_high", "shift high"), ("hodges_lehmann_coverage", "coverage"),
+                     ("cliffs_delta", "Cliff's δ"), ("difference", "mean b − mean a"), ("p_value", "p"),
+                     ("q_value", "q"), ("test_note", "note"))
 
 
 # --------------------------------------------------------------------------- HTML
@@ -1392,6 +1546,11 @@ def _sources_html():
             "branching of arteries. J Gen Physiol 9:835–841 (optimal angles).</li>"
             "<li>Benjamini Y, Hochberg Y (1995) Controlling the false discovery rate. J R Stat Soc B "
             "57:289–300 (q-values in the study report).</li>"
+            "<li>Hodges JL, Lehmann EL (1963) Estimates of location based on rank tests. Ann Math Stat "
+            "34:598–611; Bauer DF (1972) Constructing confidence sets using rank statistics. J Am Stat Assoc "
+            "67:687–690 (shift and its interval).</li>"
+            "<li>Cliff N (1993) Dominance statistics: ordinal analyses to answer ordinal questions. Psychol "
+            "Bull 114:494–509 (Cliff's δ).</li>"
             "<li>Okabe M, Ito K (2002) Color Universal Design (CUD): how to make figures and presentations "
             "that are friendly to colorblind people (category colours); viridis and cividis for continuous "
             "values.</li></ul>")
@@ -1687,6 +1846,7 @@ def _study_report(out):
     comparison = _read_table(out / "group_comparison.csv",
                              ("measure", "group_a", "group_b", "p_value", "q_value"), "group comparison")
     failures = _read_table(out / "failures.csv", ("sample_id", "path", "step", "error"), "failures table")
+    bookkeeping = _read_table(out / "group_bookkeeping.csv", ("measure", "group"), "bookkeeping table")
     try:
         batch = json.loads((out / "batch.json").read_text(encoding="utf-8"))
     except FileNotFoundError:
@@ -1738,7 +1898,8 @@ def _study_report(out):
              f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)} Group differences are "
              "exploratory unless the study was designed and powered for them.</div>",
              "<nav><a href=\"#samples\">Samples</a><a href=\"#warnings\">Warnings</a><a href=\"#measures\">Measures"
-             "</a><a href=\"#comparison\">Comparison</a><a href=\"#failures\">Failures</a>"
+             "</a><a href=\"#network-exponent\">Network exponent</a><a href=\"#comparison\">Comparison</a>"
+             "<a href=\"#failures\">Failures</a>"
              "<a href=\"#config\">Configuration</a></nav>"]
     srows = []
     for sid, grp, sd in samples:
@@ -1756,14 +1917,31 @@ def _study_report(out):
     parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analyses</h3>" + _warnings_html(allw)
                  + "<h3>From the report</h3>" + _warnings_html(notes))
     parts.append("<h2 id=\"measures\">Measures by group</h2><div class=\"grid\">"
-                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered) + "</div>")
+                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
+                           if r.name != "study_network_exponent") + "</div>")
+    parts.append("<h2 id=\"network-exponent\">Network Murray exponent</h2>"
+                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
+                           if r.name == "study_network_exponent") + _network_exponent_html(cohort))
     parts.append("<h2 id=\"comparison\">Group comparison</h2>")
     if comparison is not None and not comparison.empty:
         low = [("low-q" if _num(q) < _LOW_Q else "") for q in comparison["q_value"]]
-        parts.append(f"<p>Highlighted: q &lt; {_LOW_Q:g} (Benjamini–Hochberg across measures). difference = "
-                     "mean of group b − mean of group a.</p>" + _table(comparison, row_class=low))
+        shown = comparison[[c for c, _ in _COMPARISON_SHOWN if c in comparison.columns]].rename(
+            columns=dict(_COMPARISON_SHOWN))
+        parts.append(f"<p>Highlighted: q &lt; {_LOW_Q:g} (Benjamini–Hochberg across the measures of a pair of "
+                     "groups). Shift: Hodges–Lehmann estimate, the median of all differences b − a between "
+                     "samples, with its distribution-free interval from the Mann–Whitney distribution and that "
+                     "interval's exact coverage (Bauer 1972); Cliff's δ = P(b &gt; a) − P(b &lt; a) (Cliff 1993). "
+                     "p: two-sided Mann–Whitney U test, exact for small groups without ties; no test when a "
+                     "group has fewer than 3 samples with a value (the note says which). Samples per group: "
+                     + _esc(", ".join(f"{g} {n}" for g, n in cohort["group"].astype(str).value_counts(sort=False)
+                                      .items()))
+                     + "; n a, n b: the samples with a value of the measure"
+                     + ".</p>" + _table(shown, row_class=low))
     else:
         parts.append("<p>No comparison table.</p>")
+    if bookkeeping is not None and not bookkeeping.empty:
+        parts.append("<details><summary>Bookkeeping columns per group (group_bookkeeping.csv: counts, "
+                     "residuals, sizes; described, not tested)</summary>" + _table(bookkeeping) + "</details>")
     parts.append("<h2 id=\"failures\">Failed samples</h2>"
                  + (_table(failures) if failures is not None and not failures.empty else "<p>None.</p>"))
     parts.append("<h2 id=\"cohort\">Cohort summary</h2>" + _table(cohort))

@@ -90,16 +90,29 @@ def test_cohort_tables(study, first_run):
         assert (segs["sample_id"] == sid).sum() == n
         assert (bifs["sample_id"] == sid).sum() == len(pd.read_csv(out / sid / "bifurcations.csv"))
     # Y-branches of larger calibre: the treated group's radii are larger;
-    # check the table against scipy.stats computed directly on the per-sample values.
-    comp = pd.read_csv(out / "group_comparison.csv").set_index("measure")
-    r = comp.loc["radius_median_um"]
+    # check the table against numpy computed directly on the per-sample values.
+    comp = pd.read_csv(out / "group_comparison.csv", keep_default_na=False, na_values=[""])
+    r = comp.set_index("measure").loc["radius_median_um"]
     a = cs.loc[cs["group"] == "control", "radius_median_um"].to_numpy()
     b = cs.loc[cs["group"] == "treated", "radius_median_um"].to_numpy()
     assert (r["group_a"], r["group_b"], r["n_a"], r["n_b"]) == ("control", "treated", 3, 2)
+    assert (r["label"], r["unit"]) == ("median segment radius", "µm")
     assert r["mean_a"] == pytest.approx(a.mean()) and r["sd_b"] == pytest.approx(b.std(ddof=1))
     assert r["difference"] == pytest.approx(b.mean() - a.mean()) and r["difference"] > 0
-    mw = stats.mannwhitneyu(a, b, alternative="two-sided")
-    assert r["mann_whitney_u"] == pytest.approx(mw.statistic) and r["p_value"] == pytest.approx(mw.pvalue)
+    # Two treated samples: no test, and the table says why.
+    assert np.isnan(r["p_value"]) and np.isnan(r["q_value"]) and np.isnan(r["hodges_lehmann_shift"])
+    assert r["test_note"] == "fewer than 3 samples in group 'treated'"
+    # Only science measures are compared; the bookkeeping is described apart.
+    science = {m.name for m in batch.SCIENCE_MEASURES}
+    assert set(comp["measure"]) <= science and "length_density_mm_per_mm3" in set(comp["measure"])
+    book = pd.read_csv(out / "group_bookkeeping.csv")
+    assert list(book.columns) == ["measure", "group", "n", "mean", "sd", "median"]
+    for key in ("segments", "junctions", "imaged_volume_mm3", "max_conservation_residual", "junctions_skipped"):
+        assert key not in set(comp["measure"]) and key in set(book["measure"]), key
+    assert not set(book["measure"]) & science
+    # The study tables derive segment density from the count and the imaged volume.
+    assert cs["segment_density_per_mm3"].to_numpy() == pytest.approx(
+        cs["segments"].to_numpy(float) / cs["imaged_volume_mm3"].to_numpy(float), rel=1e-12)
 
 
 def test_second_run_skips_and_force_redoes(study, first_run):
@@ -149,7 +162,7 @@ def test_existing_scheduler_gives_the_same_tables(study, first_run, tmp_path):
         out = tmp_path / "remote"
         assert main(["batch", str(good), "-o", str(out), "--scheduler", cluster.scheduler_address,
                      "--quiet"]) == 0
-    for name in ("cohort_summary.csv", "group_comparison.csv"):
+    for name in ("cohort_summary.csv", "group_comparison.csv", "group_bookkeeping.csv"):
         pd.testing.assert_frame_equal(pd.read_csv(out / name), pd.read_csv(ref / name))
     pd.testing.assert_frame_equal(pd.read_parquet(out / "cohort_segments.parquet"),
                                   pd.read_parquet(ref / "cohort_segments.parquet"))
@@ -189,18 +202,20 @@ def constructed():
     df = pd.DataFrame({
         "sample_id": [f"s{i}" for i in range(n_a + n_b)],
         "group": ["ctrl"] * n_a + ["trt"] * n_b,
-        "length_mm": np.r_[rng.normal(10, 1, n_a), rng.normal(13, 1, n_b)],
-        "radius_um": np.r_[rng.normal(4, 0.3, n_a), rng.normal(4.1, 0.3, n_b)],
-        "junctions": np.r_[rng.integers(10, 20, n_a), rng.integers(15, 30, n_b)],
+        "length_density_mm_per_mm3": np.r_[rng.normal(10, 1, n_a), rng.normal(13, 1, n_b)],
+        "radius_median_um": np.r_[rng.normal(4, 0.3, n_a), rng.normal(4.1, 0.3, n_b)],
+        "junction_density_per_mm3": np.r_[rng.integers(10, 20, n_a), rng.integers(15, 30, n_b)],
+        "junctions": np.r_[rng.integers(10, 20, n_a), rng.integers(15, 30, n_b)],  # bookkeeping
         "reviewed": [False] * (n_a + n_b),
     })
-    df.loc[2, "radius_um"] = np.nan  # a missing value is left out of its measure
+    df.loc[2, "radius_median_um"] = np.nan  # a missing value is left out of its measure
     return df
 
 
 def test_group_comparison_matches_scipy(constructed):
     comp = batch.group_comparison(constructed).set_index("measure")
-    assert list(comp.index) == ["length_mm", "radius_um", "junctions"]  # booleans and ids are not measures
+    # science measures in table order; counts, booleans and ids are not compared
+    assert list(comp.index) == ["length_density_mm_per_mm3", "junction_density_per_mm3", "radius_median_um"]
     for m in comp.index:
         a = constructed.loc[constructed.group == "ctrl", m].dropna().to_numpy(float)
         b = constructed.loc[constructed.group == "trt", m].dropna().to_numpy(float)
@@ -221,18 +236,243 @@ def test_bh_reference_example():
     # p = 0.01, 0.02, 0.03, 0.5: q = 0.04, 0.04, 0.04, 0.5.
     df = pd.DataFrame({"group": ["a"] * 3 + ["b"] * 3, "x": [1, 2, 3, 4, 5, 6]})
     assert _bh([0.01, 0.02, 0.03, 0.5]) == pytest.approx([0.04, 0.04, 0.04, 0.5])
-    comp = batch.group_comparison(df)
+    comp = batch.group_comparison(df, measures=["x"])
     # Exact two-sided Mann-Whitney for complete separation of 3 vs 3:
     # 2 / C(6, 3) = 0.1 (Mann & Whitney 1947, Ann Math Stat 18:50).
     assert comp.loc[0, "p_value"] == pytest.approx(0.1)
 
 
 def test_three_groups_give_every_pair_and_one_group_no_test():
-    df = pd.DataFrame({"group": list("aabbcc"), "x": [1.0, 2, 3, 4, 5, 6]})
+    df = pd.DataFrame({"group": list("aaabbbccc"), "radius_median_um": [1.0, 2, 3, 4, 5, 6, 7, 8, 9]})
     comp = batch.group_comparison(df)
     assert list(zip(comp["group_a"], comp["group_b"])) == [("a", "b"), ("a", "c"), ("b", "c")]
+    assert np.isfinite(comp["p_value"]).all()
     one = batch.group_comparison(df.assign(group="all"))
-    assert len(one) == 1 and one.loc[0, "n_a"] == 6 and np.isnan(one.loc[0, "p_value"])
+    assert len(one) == 1 and one.loc[0, "n_a"] == 9 and np.isnan(one.loc[0, "p_value"])
+    assert one.loc[0, "test_note"] == "one group: nothing to compare"
+
+
+# --------------------------------------------------------------------------- #
+# Effect sizes, skipped tests, science against bookkeeping
+# --------------------------------------------------------------------------- #
+
+
+def _no_ties(rng, n):
+    # continuous draws: ties have probability zero, so scipy's exact method applies
+    return rng.normal(0.0, 1.0, n)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+@pytest.mark.parametrize("n_a, n_b", [(3, 5), (4, 4), (5, 5), (6, 9), (8, 3)])
+def test_hodges_lehmann_shift_and_interval_invert_the_exact_test(seed, n_a, n_b):
+    rng = np.random.default_rng(seed)
+    a, b = _no_ties(rng, n_a), _no_ties(rng, n_b) + 0.7
+    shift, lo, hi, cov = batch.hodges_lehmann(a, b)
+    # Hodges & Lehmann 1963 (Ann Math Stat 34:598): the median of all pairwise
+    # differences b_j - a_i, here by brute force.
+    assert shift == np.median([y - x for x in a for y in b])
+    # Bauer 1972 (J Am Stat Assoc 67:687): the interval is the set of shifts d
+    # for which the exact two-sided Mann-Whitney test of b - d against a does
+    # not reject at 5 %. Checked with scipy just inside and just outside each
+    # end; the pairwise differences are continuous draws at least ~1e-4
+    # apart, so 1e-9 steps cross no other one.
+    def p(d):
+        return stats.mannwhitneyu(b - d, a, alternative="two-sided", method="exact").pvalue
+
+    eps = 1e-9
+    assert p(lo + eps) > 0.05 and p(hi - eps) > 0.05
+    assert p(lo - eps) <= 0.05 and p(hi + eps) <= 0.05
+    # The exact coverage is one minus the p-value just outside the interval.
+    assert cov == pytest.approx(1.0 - p(lo - eps), rel=1e-12)
+    assert cov >= 0.95
+    # and on a grid: inside exactly where not rejected (grid points on a
+    # pairwise difference itself are left out: there the test sees a tie)
+    d_all = (b[None, :] - a[:, None]).ravel()
+    grid = np.linspace(d_all.min() - 1, d_all.max() + 1, 121)
+    grid = grid[np.min(np.abs(grid[:, None] - d_all[None, :]), axis=1) > 1e-9]
+    inside = (grid >= lo) & (grid <= hi)
+    assert np.array_equal(inside, np.array([p(d) > 0.05 for d in grid]))
+
+
+@pytest.mark.parametrize("n_a, n_b", [(3, 3), (3, 4), (2, 9)])
+def test_no_hodges_lehmann_interval_where_no_shift_is_rejected(n_a, n_b):
+    # With 3 against 3 the smallest exact two-sided p-value is 2 / C(6, 3) = 0.1
+    # (Mann & Whitney 1947, Ann Math Stat 18:50); 3 against 4: 2/35 = 0.057;
+    # 2 against 9: 2/55 = 0.036 but the interval rule needs P(U <= u) <= 0.025
+    # on one side: 1/55 = 0.018, so an interval exists there.
+    rng = np.random.default_rng(5)
+    a, b = _no_ties(rng, n_a), _no_ties(rng, n_b)
+    shift, lo, hi, cov = batch.hodges_lehmann(a, b)
+    far = 100.0  # complete separation: the smallest p-value the sizes allow
+    pmin = stats.mannwhitneyu(b - far, a, alternative="two-sided", method="exact").pvalue
+    if pmin > 0.05:
+        assert np.isnan(lo) and np.isnan(hi) and np.isnan(cov) and np.isfinite(shift)
+    else:
+        assert lo <= shift <= hi and cov == pytest.approx(1 - pmin)
+
+
+def test_hodges_lehmann_large_groups_use_the_normal_rank():
+    # 120 x 100 pairs: beyond the exact table; the rank comes from the normal
+    # approximation of U, so the interval must agree with the asymptotic
+    # test inversion (scipy, method='asymptotic') to within a few order
+    # statistics (continuity correction and rounding of the rank).
+    rng = np.random.default_rng(11)
+    a, b = rng.normal(0, 1, 120), rng.normal(0.5, 1, 100)
+    shift, lo, hi, cov = batch.hodges_lehmann(a, b)
+    d = np.sort((b[None, :] - a[:, None]).ravel())
+    pv = np.array([stats.mannwhitneyu(b - x, a, method="asymptotic").pvalue for x in d[::20]])
+    kept = d[::20][pv > 0.05]
+    k_lo, k_hi = np.searchsorted(d, [lo, hi])
+    assert abs(k_lo - np.searchsorted(d, kept.min())) <= 40 and abs(k_hi - np.searchsorted(d, kept.max())) <= 40
+    assert cov == 0.95 and lo < shift < hi
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("n", [6, 8, 12])
+def test_one_sample_hodges_lehmann_inverts_the_signed_rank_test(seed, n):
+    rng = np.random.default_rng(seed)
+    x = rng.normal(2.8, 0.2, n)
+    est, lo, hi, cov = batch.hodges_lehmann_one_sample(x)
+    # Hodges & Lehmann 1963: the median of the Walsh averages, by brute force
+    assert est == pytest.approx(np.median([(x[i] + x[j]) / 2 for i in range(n) for j in range(i, n)]), abs=1e-15)
+
+    def p(m):  # Wilcoxon 1945 signed-rank test, exact (scipy)
+        return stats.wilcoxon(x - m, method="exact").pvalue
+
+    eps = 1e-9
+    assert p(lo + eps) > 0.05 and p(hi - eps) > 0.05 and p(lo - eps) <= 0.05 and p(hi + eps) <= 0.05
+    assert cov == pytest.approx(1 - p(lo - eps), rel=1e-12)
+
+
+def test_one_sample_hodges_lehmann_of_five_states_its_coverage():
+    # No signed-rank interval reaches 95 % with 5 values: the widest, [min, max],
+    # covers 1 - 2 / 2^5 = 0.9375 (P(W+ = 0) = 2^-n; Wilcoxon 1945).
+    x = np.array([2.9, 2.5, 3.1, 2.7, 3.0])
+    est, lo, hi, cov = batch.hodges_lehmann_one_sample(x)
+    assert (lo, hi) == (2.5, 3.1) and cov == pytest.approx(0.9375, abs=1e-15)
+
+
+def test_cliffs_delta_worked_example_and_relation_to_u():
+    # By hand (Cliff 1993, Psychol Bull 114:494: delta = P(b > a) - P(b < a)):
+    # a = 1, 2, 3; b = 2, 4, 5. Of the 9 pairs b - a: 2-1 > 0, 2-2 = 0, 2-3 < 0,
+    # and 4 and 5 exceed all three a: 7 greater, 1 tie, 1 smaller.
+    # delta = (7 - 1) / 9 = 2/3.
+    assert batch.cliffs_delta([1, 2, 3], [2, 4, 5]) == pytest.approx(2 / 3, abs=1e-15)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
+def test_cliffs_delta_is_a_rescaled_mann_whitney_u(seed):
+    # delta = 2 U_b / (n_a n_b) - 1 with U_b scipy's statistic of b (ties count
+    # one half); integer draws so that ties occur.
+    rng = np.random.default_rng(seed)
+    a, b = rng.integers(0, 6, 7).astype(float), rng.integers(1, 7, 5).astype(float)
+    u_b = stats.mannwhitneyu(b, a).statistic
+    assert batch.cliffs_delta(a, b) == pytest.approx(2 * u_b / (a.size * b.size) - 1, abs=1e-12)
+
+
+@pytest.mark.parametrize("n_b", [1, 2])
+def test_a_group_of_one_or_two_gets_no_test_and_the_reason(n_b):
+    df = pd.DataFrame({"group": ["ctrl"] * 4 + ["small"] * n_b,
+                       "radius_median_um": np.arange(4 + n_b, dtype=float),
+                       "murray_exponent_network": np.linspace(2.5, 3.0, 4 + n_b)})
+    comp = batch.group_comparison(df)
+    assert (comp["n_a"] == 4).all() and (comp["n_b"] == n_b).all()  # n per group is stated
+    assert comp["p_value"].isna().all() and comp["q_value"].isna().all() and comp["cliffs_delta"].isna().all()
+    assert (comp["test_note"] == "fewer than 3 samples in group 'small'").all()
+
+
+def test_q_values_over_the_tested_measures_of_a_pair_only():
+    rng = np.random.default_rng(3)
+    df = pd.DataFrame({"group": ["a"] * 5 + ["b"] * 5,
+                       "radius_median_um": rng.normal(4, 1, 10), "radius_mean_um": rng.normal(4, 1, 10),
+                       "vessel_volume_fraction": rng.uniform(0.01, 0.1, 10),
+                       "murray_exponent_network": np.r_[2.6, 2.7, np.nan, np.nan, np.nan, 2.9, 3.0, 2.8, 3.1, 2.9]})
+    comp = batch.group_comparison(df).set_index("measure")
+    tested = comp["p_value"].notna()
+    assert not tested["murray_exponent_network"] and tested.sum() == 3
+    # Benjamini & Hochberg 1995 over the three tested p-values alone
+    assert comp.loc[tested, "q_value"].to_numpy() == pytest.approx(_bh(comp.loc[tested, "p_value"]), rel=1e-12)
+
+
+def test_exact_test_for_small_samples_without_ties():
+    # 5 against 5 fully separated: exact two-sided p = 2 / C(10, 5) = 2/252
+    # = 0.0079 (Mann & Whitney 1947), the smallest the sizes allow; the normal
+    # approximation would give 0.012 (continuity-corrected, from scipy).
+    df = pd.DataFrame({"group": ["lo"] * 5 + ["hi"] * 5,
+                       "murray_exponent_network": [2.41, 2.55, 2.47, 2.62, 2.50, 3.05, 2.93, 2.98, 3.11, 2.88]})
+    row = batch.group_comparison(df).iloc[0]
+    assert row["p_value"] == pytest.approx(2 / 252, rel=1e-12) and row["test_method"] == "exact"
+    assert row["hodges_lehmann_shift"] > 0 and row["cliffs_delta"] == 1.0 and row["hodges_lehmann_ci_low"] > 0
+    # with a tie scipy's 'auto' takes the normal approximation with tie correction
+    tied = df.assign(murray_exponent_network=df["murray_exponent_network"].replace(2.62, 2.55))
+    row = batch.group_comparison(tied).iloc[0]
+    assert row["test_method"] == "asymptotic"
+    assert row["p_value"] == pytest.approx(stats.mannwhitneyu(tied.iloc[:5, 1], tied.iloc[5:, 1],
+                                                              method="asymptotic").pvalue, rel=1e-12)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_clear_shift_five_against_five_is_significant(seed):
+    # Two groups of five network exponents around 2.5 and 3.0 with sd 0.1:
+    # separated completely, so p = 2/252 < 0.05 (exact Mann-Whitney, see above).
+    rng = np.random.default_rng(seed)
+    x = np.r_[rng.normal(2.5, 0.1, 5), rng.normal(3.0, 0.1, 5)]
+    df = pd.DataFrame({"sample_id": [f"s{i}" for i in range(10)], "group": ["x25"] * 5 + ["x30"] * 5,
+                       "murray_exponent_network": x})
+    row = batch.group_comparison(df).set_index("measure").loc["murray_exponent_network"]
+    assert row["p_value"] < 0.05 and row["q_value"] < 0.05
+    assert row["hodges_lehmann_ci_low"] <= 0.5 <= row["hodges_lehmann_ci_high"] and row["hodges_lehmann_shift"] > 0
+
+
+def _summary_rows():
+    # Two samples of the same tissue, the second imaged in a volume twice as
+    # large: twice the counts, the same densities.
+    base = {"segments": 120, "junctions": 50, "blind_ends": 8, "border_ends": 30, "nodes": 200,
+            "imaged_volume_mm3": 0.004, "junction_density_per_mm3": 50 / 0.004, "n_inlets": 3,
+            "max_conservation_residual": 1e-12, "junctions_skipped": 1, "radius_median_um": 4.0}
+    double = {k: (2 * v if k in ("segments", "junctions", "blind_ends", "nodes", "imaged_volume_mm3") else v)
+              for k, v in base.items()}
+    return pd.DataFrame([{"sample_id": "small", "group": "g", **base}, {"sample_id": "large", "group": "g", **double}])
+
+
+def test_densities_are_per_mm3():
+    out = batch.add_densities(_summary_rows())
+    # by hand: 120 segments / 0.004 mm³ = 30,000 per mm³; 8 blind ends -> 2,000
+    assert out["segment_density_per_mm3"].to_numpy() == pytest.approx([30_000, 30_000], rel=1e-12)
+    assert out["blind_end_density_per_mm3"].to_numpy() == pytest.approx([2_000, 2_000], rel=1e-12)
+    planar = pd.DataFrame({"segments": [10], "blind_ends": [0], "imaged_area_mm2": [0.25]})
+    assert batch.add_densities(planar)["segment_density_per_mm2"].iloc[0] == pytest.approx(40.0, rel=1e-12)
+
+
+def test_bookkeeping_is_described_apart_and_never_tested():
+    df = pd.concat([_summary_rows(), _summary_rows().assign(group="h")], ignore_index=True)
+    df["sample_id"] = [f"s{i}" for i in range(4)]
+    comp = batch.group_comparison(df)
+    book = batch.group_bookkeeping(df)
+    bookkeeping = ("segments", "junctions", "blind_ends", "border_ends", "nodes", "imaged_volume_mm3", "n_inlets",
+                   "max_conservation_residual", "junctions_skipped")
+    assert not set(bookkeeping) & set(comp["measure"])
+    assert set(comp["measure"]) == {"segment_density_per_mm3", "blind_end_density_per_mm3",
+                                    "junction_density_per_mm3", "radius_median_um"}
+    assert set(book["measure"]) == set(bookkeeping) and set(book["group"]) == {"g", "h"}
+    seg = book[(book["measure"] == "segments") & (book["group"] == "g")].iloc[0]
+    assert (seg["n"], seg["mean"], seg["median"]) == (2, 180.0, 180.0)
+    assert seg["sd"] == pytest.approx(np.std([120, 240], ddof=1), rel=1e-12)
+    # A result without the newer keys (older version) compares what it has.
+    assert "vessel_tortuosity_median" not in set(comp["measure"])
+
+
+def test_older_results_compare_segment_tortuosity_in_place_of_vessel_tortuosity():
+    rng = np.random.default_rng(4)
+    old = pd.DataFrame({"group": ["a"] * 3 + ["b"] * 3, "tortuosity_mean": rng.uniform(1.0, 1.2, 6),
+                        "radius_median_um": rng.normal(4, 0.5, 6)})
+    comp = batch.group_comparison(old).set_index("measure")
+    assert comp.loc["tortuosity_mean", "label"] == "mean segment tortuosity"
+    assert "tortuosity_mean" not in set(batch.group_bookkeeping(old)["measure"])
+    # with the vessel measure present the segment mean is bookkeeping
+    new = old.assign(vessel_tortuosity_median=rng.uniform(1.0, 1.2, 6))
+    assert list(batch.group_comparison(new)["measure"]) == ["radius_median_um", "vessel_tortuosity_median"]
+    assert "tortuosity_mean" in set(batch.group_bookkeeping(new)["measure"])
 
 
 # --------------------------------------------------------------------------- #

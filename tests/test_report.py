@@ -422,7 +422,7 @@ def test_report_of_a_real_batch(study_inputs):
     assert main(["report", str(out), "--quiet"]) == 0
     cohort = pd.read_csv(out / "cohort_summary.csv")
     assert sorted(cohort["sample_id"]) == sorted(r["sample_id"] for r in rows)
-    for m in (m for m in report.STUDY_MEASURES if m in cohort.columns):
+    for m in (m for m in report.STUDY_MEASURES if m in cohort.columns and cohort[m].notna().any()):
         assert _not_blank(out / "figures" / f"study_{m}.png"), m
     text = (out / "report.html").read_text(encoding="utf-8")
     assert "ctrl-bad" in text and all(f'id="{report._anchor(r["sample_id"])}"' in text for r in rows)
@@ -431,7 +431,7 @@ def test_report_of_a_real_batch(study_inputs):
 def test_study_report_files(study):
     out, rows = study
     cohort = pd.read_csv(out / "cohort_summary.csv")
-    measures = [m for m in report.STUDY_MEASURES if m in cohort.columns]
+    measures = [m for m in report.STUDY_MEASURES if m in cohort.columns and cohort[m].notna().any()]
     assert len(measures) >= 8
     figs = out / "figures"
     for m in measures:
@@ -959,3 +959,78 @@ def test_severity_order_with_infinite_and_uncertain_rows(sample, tmp_path):
     counts = _tables(sec, "uncertain")[0].set_index("reason")["junctions"].astype(int).to_dict()
     assert {k: v for k, v in counts.items() if v} == {"low_confidence": 1, "ratio_unresolved": 1, "mixed_flow": 1}
     assert "2 uncertain junction(s)" in sec
+
+
+# --------------------------------------------------------------------------- network exponent and comparison
+
+
+_NETWORK_KEYS = ("murray_exponent_network", "murray_exponent_network_ci_low", "murray_exponent_network_ci_high")
+
+
+def _with_network_exponent(cohort, seed):
+    """The cohort with network exponents around 3.0 (ctrl) and 2.3 (trt) and intervals of +-0.1 to 0.2."""
+    rng = np.random.default_rng(seed)
+    x = np.where(cohort["group"] == "ctrl", 3.0, 2.3) + rng.normal(0, 0.05, len(cohort))
+    return cohort.assign(murray_exponent_network=x, murray_exponent_network_ci_low=x - rng.uniform(0.1, 0.2, len(x)),
+                         murray_exponent_network_ci_high=x + rng.uniform(0.1, 0.2, len(x)),
+                         murray_exponent_network_junctions=rng.integers(5, 20, len(x)))
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_network_exponent_figure_shows_each_interval_and_the_group_estimate(seed):
+    n = 6
+    cohort = _with_network_exponent(pd.DataFrame({"sample_id": [f"s{i}" for i in range(2 * n)],
+                                                  "group": ["ctrl"] * n + ["trt"] * n}), seed)
+    groups = ["ctrl", "trt"]
+    ax = report.figure_network_exponent(cohort, groups).axes[0]
+    per, grp = report.network_exponent_table(cohort)
+    for g in groups:
+        rows = cohort[cohort["group"] == g]
+        # the sample markers sit at the summary values
+        bars = [c for c in ax.containers if c.get_label() == f"{g} (n = {n})"][0]
+        assert np.allclose(bars.lines[0].get_ydata(), rows["murray_exponent_network"])
+        x = rows["murray_exponent_network"].to_numpy()
+        r = grp.set_index("group").loc[g]
+        # Hodges & Lehmann 1963: the median of the Walsh averages, by brute force
+        walsh = [(x[i] + x[j]) / 2 for i in range(n) for j in range(i, n)]
+        assert r["hodges_lehmann_estimate"] == pytest.approx(np.median(walsh), abs=1e-12)
+        # n = 6: the widest signed-rank interval [min, max] covers 1 - 2/2^6
+        # (Wilcoxon 1945: P(W+ = 0) = 2^-n), the first n above 95 %
+        assert (r["ci_low"], r["ci_high"]) == (x.min(), x.max()) and r["coverage"] == pytest.approx(1 - 2 / 64)
+    # every sample's interval is drawn: error bar segments from ci_low to ci_high
+    segs = np.concatenate([np.asarray(c.get_segments()) for c in ax.collections if hasattr(c, "get_segments")])
+    ends = {(round(float(s[0, 1]), 9), round(float(s[1, 1]), 9)) for s in segs}
+    for _, row in cohort.iterrows():
+        assert (round(row["murray_exponent_network_ci_low"], 9), round(row["murray_exponent_network_ci_high"], 9)) in ends
+
+
+def test_study_titles_are_plain_names_with_units(study):
+    out, _ = study
+    cohort = pd.read_csv(out / "cohort_summary.csv")
+    comp = pd.read_csv(out / "group_comparison.csv")
+    ax = report.figure_study_measure(cohort, comp, "length_density_mm_per_mm3", ["ctrl", "trt"]).axes[0]
+    assert ax.get_title().startswith("vessel length density") and "length_density" not in ax.get_title()
+    assert ax.get_ylabel() == "vessel length density (mm/mm³)"
+
+
+def test_study_report_shows_the_network_exponent_or_says_it_is_absent(study, tmp_path):
+    out, rows = study
+    cohort = pd.read_csv(out / "cohort_summary.csv")
+    for case in ("absent", "present"):
+        copy = tmp_path / case
+        shutil.copytree(out, copy)
+        c = cohort.drop(columns=[k for k in cohort.columns if k.startswith("murray_exponent_network")])
+        if case == "present":
+            c = _with_network_exponent(c, 3)
+        c.to_csv(copy / "cohort_summary.csv", index=False)
+        assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
+        text = (copy / "report.html").read_text(encoding="utf-8")
+        section = text[text.index('id="network-exponent"'):text.index('id="comparison"')]
+        if case == "absent":
+            assert "hold no network Murray exponent" in section
+            assert not (copy / "figures" / "study_network_exponent.png").exists()
+        else:
+            assert _not_blank(copy / "figures" / "study_network_exponent.png")
+            for v in c["murray_exponent_network"]:
+                assert report._fmt(v) in section
+            assert "exact coverage" in section
