@@ -1129,7 +1129,7 @@ SCIENCE_MEASURES = (
     StudyMeasure("blind_end_density_per_mm2", "1/mm²", "blind-end density (planar)",
                  "blind ends per imaged area (computed in the study tables from blind_ends / imaged_area_mm2)"),
     StudyMeasure("murray_exponent_network", "1", "network Murray exponent",
-                 "one exponent x fitted to all usable diverging bifurcations, r0^x = r1^x + r2^x"),
+                 "one exponent x fitted to all usable bifurcations of a sample, r0^x = r1^x + r2^x (pipeline.murray)"),
     StudyMeasure("murray_ratio_median", "1", "median Murray ratio",
                  "median over junctions of (r1³ + r2³) / r0³"),
     StudyMeasure("horton_ratio_number", "1", "Horton number ratio",

@@ -66,7 +66,7 @@ from scipy import sparse
 from scipy.sparse import csgraph
 
 from .errors import ConfigError, InputError
-from .orders import kassab_orders
+from .orders import kassab_orders, strahler_orders
 
 __all__ = [
     "choose_roots",
@@ -419,29 +419,7 @@ def _shortest_levels(u, v, n_nodes, root_rows):
 
 def _strahler(parent: np.ndarray, dist: np.ndarray) -> np.ndarray:
     """Horton–Strahler order on the parent forest (-1 where unreached)."""
-    n = len(parent)
-    order = np.full(n, -1, dtype=np.int64)
-    reached = np.flatnonzero(np.isfinite(dist))
-    # Daughters cost strictly more than their parent: decreasing cost is a
-    # valid leaves-first order.
-    seq = reached[np.argsort(-dist[reached], kind="stable")].tolist()
-    par = parent.tolist()
-    top = [0] * n
-    count = [0] * n
-    out = [0] * n
-    for s in seq:
-        m = top[s]
-        o = 1 if m == 0 else (m + 1 if count[s] >= 2 else m)
-        out[s] = o
-        p = par[s]
-        if p >= 0:
-            if o > top[p]:
-                top[p] = o
-                count[p] = 1
-            elif o == top[p]:
-                count[p] += 1
-    order[reached] = np.asarray(out, dtype=np.int64)[reached]
-    return order
+    return strahler_orders(parent, np.isfinite(dist))
 
 
 def compute_levels(

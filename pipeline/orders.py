@@ -170,6 +170,29 @@ def _order_round(seq, parent, diam, bound, out):
                 count[p] += 1
 
 
+def strahler_orders(parent, valid) -> np.ndarray:
+    """Horton–Strahler orders on a parent forest (Horton 1945; Strahler 1957).
+
+    Parameters
+    ----------
+    parent : (n,) int array
+        Row of each segment's parent, -1 for a root.
+    valid : (n,) bool array
+        Segments to order (those a root reaches).
+
+    Returns
+    -------
+    (n,) int64 array
+        Order per segment (terminal segments 1), -1 where not valid.
+    """
+    parent = np.asarray(parent, dtype=np.int64)
+    out = np.full(parent.shape[0], -1, dtype=np.int64)
+    seq = _root_first(parent, np.asarray(valid, dtype=bool))
+    # every bound at -inf: the diameter rule always promotes, the plain rule
+    _order_round(seq, parent, np.zeros(parent.shape[0]), np.full(2 * parent.shape[0] + 2, -np.inf), out)
+    return out
+
+
 def _bounds(order, diam, n_max):
     """b_n for n = 1..n_max (index n), +inf above the highest populated order.
 
