@@ -33,6 +33,11 @@ used to select):
   few points, takes its radius from the inflated junction zone, a bias its
   uncertainty does not show.
 
+In the fit the widest of a junction's three arms is its parent (under
+r0^x = r1^x + r2^x the parent is wider than either daughter for every x > 0),
+whatever arm the flow made the parent in ``bifurcations.csv``: the estimated
+flow of a cut tree can enter through a branch.
+
 The ``ratio_unresolved`` reason of the flags is not used: it depends on the
 measured ratio, i.e. on the outcome. Junctions whose own exponent is undefined
 (a daughter at least as wide as the parent) stay in the fit: their residual
@@ -63,9 +68,12 @@ loss would still pull with a constant force per broken junction. The scale s
 is 1.4826 times the median |z| at a least-absolute-deviation start (a
 convex, scale-free fit), so it absorbs errors the propagated uncertainties
 leave out (biological scatter, segmentation) as one common factor. The
-biweight is not convex: the estimate is the global minimum over a grid of x
-(``_GRID_STEP`` apart over [``_X_MIN``, ``_X_MAX``]), refined by a parabola
-through the grid minimum and its neighbours. An estimate at either end of
+biweight is not convex: far from the bulk of the junctions it flattens out,
+and its global minimum can lie there, so the estimate is the local minimum
+reached downhill from the least-absolute start on a grid of x (``_GRID_STEP``
+apart over [``_X_MIN``, ``_X_MAX``]), refined by a parabola through the grid
+minimum and its neighbours (each bootstrap resample descends from its own
+start). An estimate at either end of
 the range is reported with the note ``at_bound``, not clipped silently.
 
 Interval. Nonparametric bootstrap over junctions: B resamples
@@ -195,6 +203,37 @@ def _argmin_refined(obj: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndar
     return out, at_bound
 
 
+def _descend(obj: np.ndarray, k0: np.ndarray) -> np.ndarray:
+    """Grid index of the local minimum of each row of ``obj`` (R, G) reached downhill from ``k0`` (R,)."""
+    k = np.asarray(k0, dtype=np.int64).copy()
+    rows = np.arange(obj.shape[0])
+    last = obj.shape[1] - 1
+    for _ in range(obj.shape[1]):
+        here = obj[rows, k]
+        left = np.where(k > 0, obj[rows, np.maximum(k - 1, 0)], np.inf)
+        right = np.where(k < last, obj[rows, np.minimum(k + 1, last)], np.inf)
+        step = np.where((left < here) & (left <= right), -1, np.where(right < here, 1, 0))
+        if not step.any():
+            break
+        k += step
+    return k
+
+
+def _local_min_refined(obj: np.ndarray, x: np.ndarray, k0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Like :func:`_argmin_refined`, but the local minimum downhill from grid index ``k0`` of each row."""
+    k = _descend(obj, k0)
+    at_bound = (k == 0) | (k == len(x) - 1)
+    kc = np.clip(k, 1, len(x) - 2)
+    rows = np.arange(obj.shape[0])
+    fm, f0, fp = obj[rows, kc - 1], obj[rows, kc], obj[rows, kc + 1]
+    den = fm - 2.0 * f0 + fp
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shift = np.where(den > 0, 0.5 * (fm - fp) / den, 0.0)
+    shift = np.clip(shift, -1.0, 1.0)
+    out = np.where(at_bound, x[k], x[kc] + shift * (x[1] - x[0]))
+    return out, at_bound
+
+
 def network_exponent(r0, r1, r2, u0=None, u1=None, u2=None, *, n_boot: int = 2000, seed: int = 0,
                      level: float = 0.95) -> dict[str, Any]:
     """One Murray exponent for a set of bifurcations, with a bootstrap interval.
@@ -268,7 +307,8 @@ def network_exponent(r0, r1, r2, u0=None, u1=None, u2=None, *, n_boot: int = 200
     sd = np.sqrt(v)
     # Start: least absolute standardised deviations (convex in each junction's
     # residual, scale-free), its minimum on the grid.
-    x0, _ = _argmin_refined(np.abs(d / sd).sum(axis=0)[None, :], x)
+    lad = np.abs(d / sd)
+    x0, _ = _argmin_refined(lad.sum(axis=0)[None, :], x)
     k0 = int(np.argmin(np.abs(x - x0[0])))
     s = _MAD_TO_SD * float(np.median(np.abs(d[:, k0] / sd[:, k0])))
     if s > 1e-9:
@@ -281,7 +321,14 @@ def network_exponent(r0, r1, r2, u0=None, u1=None, u2=None, *, n_boot: int = 200
         # least squares, smooth at its minimum, is refined exactly by the parabola.
         s = 0.0
         loss = (d / sd) ** 2
-    est, at_bound = _argmin_refined(loss.sum(axis=0)[None, :], x)
+    # The biweight is not convex: far from the bulk of the junctions every
+    # junction is an outlier and the loss flattens out, and on an
+    # unlucky sample its global minimum can sit there (measured: 8.0, the
+    # range's end, for a tree built at 2.6). The estimate is the local
+    # minimum reached downhill from the convex start, as usual for
+    # redescending M-estimators (Maronna, Martin & Yohai 2006, Robust
+    # Statistics, sec. 2.8, from memory).
+    est, at_bound = _local_min_refined(loss.sum(axis=0)[None, :], x, np.array([k0]))
     out["exponent"] = float(est[0])
     out["scale"] = s
     if at_bound[0]:
@@ -294,7 +341,9 @@ def network_exponent(r0, r1, r2, u0=None, u1=None, u2=None, *, n_boot: int = 200
         for start in range(0, n_boot, chunk):
             b = min(chunk, n_boot - start)
             counts = rng.multinomial(n, p, size=b).astype(float)
-            boots.append(_argmin_refined(counts @ loss, x)[0])
+            # each resample descends from its own convex start
+            starts = np.argmin(counts @ lad, axis=1)
+            boots.append(_local_min_refined(counts @ loss, x, starts)[0])
         boot = np.concatenate(boots)
         # Expanded percentile interval (Hesterberg 2015, Am Stat 69:371): the
         # plain percentile interval is too narrow for small n (it misses the
@@ -397,7 +446,18 @@ def network_summary(table: pd.DataFrame, *, config: Mapping[str, Any] | None = N
     if int(use.sum()) == 0:
         fit = {"exponent": None, "ci_low": None, "ci_high": None, "n": 0, "note": "too_few_junctions"}
     else:
-        fit = network_exponent(*r, *u, n_boot=n_boot, seed=seed)
+        # The widest arm is the parent of the fit: under r0^x = r1^x + r2^x
+        # the parent is wider than either daughter for every x > 0, whichever
+        # way the blood flows. The flow-defined parent of bifurcations.csv
+        # can be a narrow arm where the estimated flow of a cut tree enters
+        # through a branch (measured: 8 of 21 junctions of a rough tree
+        # built at 2.6, whose fit then ran to the range's end).
+        rr, uu = np.stack(r, axis=1), np.stack([np.nan_to_num(a, nan=0.0) if a is not None else np.zeros(len(r[0]))
+                                                for a in u], axis=1)
+        order = np.argsort(-rr, axis=1, kind="stable")
+        rr = np.take_along_axis(rr, order, axis=1)
+        uu = np.take_along_axis(uu, order, axis=1)
+        fit = network_exponent(*rr.T, *uu.T, n_boot=n_boot, seed=seed)
     return {
         "murray_exponent_network": fit["exponent"],
         "murray_exponent_network_ci_low": fit["ci_low"],
