@@ -187,9 +187,8 @@ def _residuals(r0: np.ndarray, r1: np.ndarray, r2: np.ndarray, u0: np.ndarray, u
     return d, np.maximum(v, _VAR_FLOOR)
 
 
-def _argmin_refined(obj: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Minimum of each row of ``obj`` (R, G) over grid ``x``, refined by a parabola; and whether it is at an end."""
-    k = np.argmin(obj, axis=1)
+def _refine(obj: np.ndarray, x: np.ndarray, k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Grid minima ``k`` of the rows of ``obj`` (R, G) refined by a parabola; and whether each is at an end."""
     at_bound = (k == 0) | (k == len(x) - 1)
     kc = np.clip(k, 1, len(x) - 2)
     rows = np.arange(obj.shape[0])
@@ -198,9 +197,13 @@ def _argmin_refined(obj: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndar
     with np.errstate(invalid="ignore", divide="ignore"):
         shift = np.where(den > 0, 0.5 * (fm - fp) / den, 0.0)
     shift = np.clip(shift, -1.0, 1.0)  # a parabola through three points peaks between them
-    step = x[1] - x[0]
-    out = np.where(at_bound, x[k], x[kc] + shift * step)
+    out = np.where(at_bound, x[k], x[kc] + shift * (x[1] - x[0]))
     return out, at_bound
+
+
+def _argmin_refined(obj: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Minimum of each row of ``obj`` (R, G) over grid ``x``, refined by a parabola; and whether it is at an end."""
+    return _refine(obj, x, np.argmin(obj, axis=1))
 
 
 def _descend(obj: np.ndarray, k0: np.ndarray) -> np.ndarray:
@@ -221,17 +224,7 @@ def _descend(obj: np.ndarray, k0: np.ndarray) -> np.ndarray:
 
 def _local_min_refined(obj: np.ndarray, x: np.ndarray, k0: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Like :func:`_argmin_refined`, but the local minimum downhill from grid index ``k0`` of each row."""
-    k = _descend(obj, k0)
-    at_bound = (k == 0) | (k == len(x) - 1)
-    kc = np.clip(k, 1, len(x) - 2)
-    rows = np.arange(obj.shape[0])
-    fm, f0, fp = obj[rows, kc - 1], obj[rows, kc], obj[rows, kc + 1]
-    den = fm - 2.0 * f0 + fp
-    with np.errstate(invalid="ignore", divide="ignore"):
-        shift = np.where(den > 0, 0.5 * (fm - fp) / den, 0.0)
-    shift = np.clip(shift, -1.0, 1.0)
-    out = np.where(at_bound, x[k], x[kc] + shift * (x[1] - x[0]))
-    return out, at_bound
+    return _refine(obj, x, _descend(obj, k0))
 
 
 def network_exponent(r0, r1, r2, u0=None, u1=None, u2=None, *, n_boot: int = 2000, seed: int = 0,
