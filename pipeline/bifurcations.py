@@ -1332,7 +1332,9 @@ def levels_murray(table: pd.DataFrame) -> pd.DataFrame:
     DataFrame
         One row per level in increasing order, then one ``<NA>`` row for
         junctions without a level (only if there are any). Columns: ``level``
-        (Int64), ``n_bifurcations``, ``murray_exponent_median``,
+        (Int64), ``n_bifurcations``, ``murray_exponent_median`` (undefined
+        exponents counted as +inf, as in the summary; NaN when the median is
+        undefined), ``murray_exponents_undefined`` (their number),
         ``murray_ratio_median`` (over finite values; NaN if none),
         ``bifurcations_flagged_fraction``.
     """
@@ -1351,14 +1353,16 @@ def levels_murray(table: pd.DataFrame) -> pd.DataFrame:
         out.append({
             "level": val,
             "n_bifurcations": int(sel.sum()),
-            "murray_exponent_median": _nan_if_none(_median(expo[sel])),
+            "murray_exponent_median": _nan_if_none(_median_exponent(expo[sel])),
+            "murray_exponents_undefined": int(np.isnan(expo[sel]).sum()),
             "murray_ratio_median": _nan_if_none(_median(ratio[sel])),
             "bifurcations_flagged_fraction": float(flagged[sel].mean()),
         })
-    df = pd.DataFrame(out, columns=["level", "n_bifurcations", "murray_exponent_median", "murray_ratio_median",
-                                    "bifurcations_flagged_fraction"])
+    df = pd.DataFrame(out, columns=["level", "n_bifurcations", "murray_exponent_median", "murray_exponents_undefined",
+                                    "murray_ratio_median", "bifurcations_flagged_fraction"])
     df["level"] = pd.array(df["level"].to_numpy(dtype=object), dtype="Int64") if len(df) else pd.array([], dtype="Int64")
     df["n_bifurcations"] = df["n_bifurcations"].astype(np.int64)
+    df["murray_exponents_undefined"] = df["murray_exponents_undefined"].astype(np.int64)
     for c in ("murray_exponent_median", "murray_ratio_median", "bifurcations_flagged_fraction"):
         df[c] = df[c].astype(float)
     return df

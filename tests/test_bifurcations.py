@@ -955,11 +955,16 @@ def test_levels_murray_groups_by_parent_level():
         "flagged": [False, True, False, False],
     })
     out = levels_murray(table)
-    assert list(out.columns) == ["level", "n_bifurcations", "murray_exponent_median", "murray_ratio_median",
-                                 "bifurcations_flagged_fraction"]
+    assert list(out.columns) == ["level", "n_bifurcations", "murray_exponent_median", "murray_exponents_undefined",
+                                 "murray_ratio_median", "bifurcations_flagged_fraction"]
     assert out["level"].tolist()[:2] == [0, 1] and pd.isna(out["level"].iloc[2])
     assert out["n_bifurcations"].tolist() == [1, 2, 1]
-    assert out["murray_exponent_median"].tolist() == [3.0, 2.0, 4.0]  # NaN left out
+    # An undefined exponent counts as +inf, never dropped: the median of
+    # (2.0, +inf) is +inf (numpy's median of two values is their mean), so
+    # level 1 has no finite median, and its undefined junction is counted.
+    assert out["murray_exponent_median"].iloc[[0, 2]].tolist() == [3.0, 4.0]
+    assert np.isnan(out["murray_exponent_median"].iloc[1])
+    assert out["murray_exponents_undefined"].tolist() == [0, 1, 0]
     assert out["murray_ratio_median"].tolist() == pytest.approx([1.0, 1.0, 1.1])
     assert out["bifurcations_flagged_fraction"].tolist() == [0.0, 0.5, 0.0]
 
