@@ -34,6 +34,21 @@ makes the radius independent of the z step. The centre may move off the
 thinned centreline (which sits on voxel centres) with a weak pull towards it,
 which settles the direction no wall point constrains.
 
+Rough walls. Wall points sample a wall by arc length, and a rough wall has
+more arc where it bulges than where it dips, so a circle fitted to them
+reads the radius-weighted mean ``E[rho^2] / E[rho] = r + var / r`` (6 % wide
+at a relative roughness of 0.25). The radial spread of the kept points, less
+the points' own quantisation (a uniform error over one voxel step along the
+axis each was found on), is the wall's variance, and ``var / r`` is taken
+off: the radius is the wall's mean over angle, and a smooth wall's is left
+as it is. The search reach is set from the distance-map radius, which on a
+rough wall is the inscribed one; a fit more than 25 % above it is fitted
+again with the reach of its own radius, so that the bulges of thick rough
+vessels are not cut off. Measured on straight tubes with relative roughness
+0.25 varying over 1.5 µm at 3 x 1 x 1 µm voxels (five directions each): 2-3 %
+wide from 2 to 12 µm, where the plain fit read +4-5 % at 2-5 µm and -1 % at
+12 µm (``tests/test_radii.py``).
+
 Measured on straight tubes of radius 2, 2.5 and 3.5 µm in six directions
 (axes, face and body diagonals, two oblique) at 1 µm voxels and at
 2.5 x 0.8 x 0.8 µm voxels: see ``tests/test_radii.py`` for the numbers the
@@ -183,15 +198,18 @@ def _median(a, n):
 
 
 @numba.njit(cache=True)
-def _circle_fit(u, v, w, r0, lam, res, rw):
+def _circle_fit(u, v, w, qu, qv, r0, lam, res, rw):
     """Weighted robust circle fit in the plane; returns (r, ok).
 
     An algebraic fit (one linear solve) gives the circle, Tukey's biweight on
     the distances to it removes what is not this vessel's wall (attached
     blobs, handles, another vessel in the slab), a second algebraic fit uses
     what is left, and two Gauss-Newton steps on the geometric distance take
-    off the algebraic fit's small bias. ``res`` and ``rw`` are scratch
-    buffers of at least ``2 len(u)`` and ``len(u)`` values.
+    off the algebraic fit's small bias. Last, the radius is moved from the
+    arc-length mean of the wall to its mean over angle (below). ``qu, qv``
+    are the in-plane components of the voxel step along the axis each wall
+    point was found on; ``res`` and ``rw`` are scratch buffers of at least
+    ``2 len(u)`` and ``len(u)`` values.
     """
     n = len(u)
     rw = rw[:n]
@@ -251,6 +269,41 @@ def _circle_fit(u, v, w, r0, lam, res, rw):
         cy += s1
         r += s2
     ok = np.isfinite(r) and r > 0
+    if not ok:
+        return r, ok
+    # Wall points sample the wall by arc length, and a rough wall has more
+    # arc where it bulges out than where it dips in: the fit above is the
+    # mean radius weighted by the local radius, E[rho^2] / E[rho] = r_mean +
+    # var / r_mean over angle, 6 % above the mean at a relative roughness of
+    # 0.25 (measured on rough tubes of 2-5 µm: +4-6 %). The radial spread of
+    # the kept points holds the wall's own variance plus the points'
+    # quantisation, uniform over one voxel step along the point's axis
+    # (variance step^2 / 12 along it, of which the radial part counts);
+    # what exceeds the quantisation is the wall's, and taking var / r off
+    # gives the mean over angle. A smooth wall's spread is its quantisation
+    # alone, and its radius is left as it is.
+    sw = 0.0
+    spread = 0.0
+    quant = 0.0
+    for i in range(n):
+        wi = rw[i]
+        if wi == 0.0:
+            continue
+        dx = u[i] - cx
+        dy = v[i] - cy
+        rho = np.sqrt(dx * dx + dy * dy)
+        if rho < 1e-9:
+            continue
+        radial = (qu[i] * dx + qv[i] * dy) / rho
+        sw += wi
+        spread += wi * (rho - r) ** 2
+        quant += wi * radial * radial / 12.0
+    if sw > 0.0:
+        excess = (spread - quant) / sw
+        if excess > 0.0:
+            # at most the clip of the roughness the correction is for
+            # (relative sd 0.3: var / r = 0.09 r)
+            r -= min(excess / r, 0.1 * r)
     return r, ok
 
 
@@ -330,7 +383,7 @@ def _box(shape, sp, origin, p, t, h, reach, lo, hi):
 
 
 @numba.njit(cache=True, inline="always")
-def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, n):
+def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, QU, QV, n):
     """Append the wall points of voxel ``(z, y, x)`` (face bits ``f``) that lie in the slab and reach; returns the new count."""
     # Whole voxel outside the slab or beyond reach (with half a voxel to
     # spare): none of its faces can count.
@@ -367,12 +420,14 @@ def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V
         U[n] = c0 * e1[0] + c1 * e1[1] + c2 * e1[2]
         V[n] = c0 * e2[0] + c1 * e2[1] + c2 * e2[2]
         W[n] = wax[a]
+        QU[n] = e1[a] * sp[a]
+        QV[n] = e2[a] * sp[a]
         n += 1
     return n
 
 
 @numba.njit(cache=True)
-def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, R, RW):
+def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, QU, QV, R, RW):
     """Radius from the wall around one centreline point; returns (r, number of wall points) or (r0, 0)."""
     h = max(0.75 * r0, 0.6 * smax)
     reach = 1.6 * r0 + 2.0 * smin
@@ -408,14 +463,14 @@ def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, 
                 while word != 0:
                     x = (wi << 6) + np.int64(trailing_zeros(word))
                     word &= word - one
-                    n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, n)
+                    n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, QU, QV, n)
     if n < 6:
         return r0, 0
     # A weak pull of the centre towards the centreline: 5 % of the total
     # weight per µm^2, enough to settle a direction no wall point
     # constrains, too little to bias a well-posed fit.
     lam = 0.05 * W[:n].sum() / max(r0 * r0, smin * smin)
-    r, ok = _circle_fit(U[:n], V[:n], W[:n], r0, lam, R, RW)
+    r, ok = _circle_fit(U[:n], V[:n], W[:n], QU[:n], QV[:n], r0, lam, R, RW)
     if ok and r0 / 2.5 <= r <= 2.5 * r0:
         return r, n
     return r0, 0
@@ -434,6 +489,8 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, nfit, nchunks):
         U = np.empty(4096)
         V = np.empty(4096)
         W = np.empty(4096)
+        QU = np.empty(4096)
+        QV = np.empty(4096)
         R = np.empty(2 * 4096)
         RW = np.empty(4096)
         lo = np.empty(3, np.int64)
@@ -445,17 +502,35 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, nfit, nchunks):
             nfit[i] = 0
             if not (r0 > 0):
                 continue
-            h = max(0.75 * r0, 0.6 * smax)
-            reach = 1.6 * r0 + 2.0 * smin
-            # A face per voxel on average at most, six at the very most.
-            need = 6 * _box(faces.shape, sp, origin, P[i], T[i], h, reach, lo, hi)
-            if need > len(U):
-                U = np.empty(need)
-                V = np.empty(need)
-                W = np.empty(need)
-                R = np.empty(2 * need)
-                RW = np.empty(need)
-            r, k = _fit_one(faces, words, sp, origin, P[i], T[i], r0, smin, smax, wax, lo, hi, U, V, W, R, RW)
+            # The distance-map radius sets the reach, and on a rough wall it
+            # is the inscribed radius, the deepest dent's: bulges beyond
+            # 1.6 of it were cut off, which read thick rough vessels 1-5 %
+            # narrow (measured on tubes of 8-12 µm at a relative roughness of
+            # 0.25). A fit well above the first radius is fitted again with
+            # the reach and slab of its own radius.
+            guess = r0
+            for attempt in range(2):
+                h = max(0.75 * guess, 0.6 * smax)
+                reach = 1.6 * guess + 2.0 * smin
+                # A face per voxel on average at most, six at the very most.
+                need = 6 * _box(faces.shape, sp, origin, P[i], T[i], h, reach, lo, hi)
+                if need > len(U):
+                    U = np.empty(need)
+                    V = np.empty(need)
+                    W = np.empty(need)
+                    QU = np.empty(need)
+                    QV = np.empty(need)
+                    R = np.empty(2 * need)
+                    RW = np.empty(need)
+                r1, k1 = _fit_one(faces, words, sp, origin, P[i], T[i], guess, smin, smax, wax, lo, hi,
+                                  U, V, W, QU, QV, R, RW)
+                if attempt == 0:
+                    r, k = r1, k1
+                elif k1 > 0:
+                    r, k = r1, k1
+                if k1 == 0 or r1 <= 1.25 * guess:
+                    break
+                guess = r1
             out[i] = r
             nfit[i] = k
 
