@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import networkx as nx
 import numpy as np
 import pandas as pd
+from scipy.spatial import cKDTree
 
 from . import bifurcations as bif_step
 from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
@@ -205,8 +206,9 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     # Radii from the wall before pruning: the pruning rules compare lengths
     # with radii, and the distance map's inscribed radius reads low on rough
     # walls (it touches the deepest dent), which keeps bumps as branches.
+    wall = None
     if cfg["radii"]["estimator"] == "wall_fit":
-        _fit_wall_radii(g, cleaned, sp, planar)
+        wall = _fit_wall_radii(g, cleaned, sp, planar)
         tick("radii")
     p = cfg["pruning"]
     graph_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
@@ -217,6 +219,8 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
                            min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
                            reconnect=p["reconnect_gaps"], spacing_um=sp,
                            max_gap_voxels=p["max_gap_voxels"], max_gap_angle_deg=p["max_gap_angle_deg"])
+    if wall is not None:
+        _to_mean_radii(g, *wall)
     tick("pruning")
     segs, keys, smoothed = measures.segment_table(g, grid_spacing=cl.grid_spacing, radii_config=cfg["radii"],
                                                   measures_config=cfg["measures"])
@@ -313,18 +317,46 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
 
 
 def _fit_wall_radii(g, cleaned, spacing, planar):
-    """Replace each segment's distance-map radii by wall-fit radii (pipeline/radii.py)."""
+    """Replace each segment's distance-map radii by the plain wall fit (pipeline/radii.py).
+
+    Returns the fitted points (M, 3) and, at each, the mean radius over
+    angle over the plain one, for :func:`_to_mean_radii` after pruning; None
+    when the graph has no segment.
+    """
     keys = list(g.seg_path)
     if not keys:
-        return
+        return None
     lens = np.array([len(g.seg_path[s]) for s in keys], dtype=np.int64)
     off = np.r_[0, np.cumsum(lens)]
     P = np.vstack([g.seg_path[s] for s in keys])
     R0 = np.concatenate([g.seg_radii[s] for s in keys])
-    R, _ = radii_step.wall_radii(cleaned.mask, spacing=spacing, offset=cleaned.offset, points_um=P, offsets=off,
-                                 radii_um=R0, planar=planar)
+    fit = radii_step.wall_radii(cleaned.mask, spacing=spacing, offset=cleaned.offset, points_um=P, offsets=off,
+                                radii_um=R0, planar=planar)
     for i, s in enumerate(keys):
-        g.seg_radii[s] = R[off[i]:off[i + 1]]
+        g.seg_radii[s] = fit.plain[off[i]:off[i + 1]]
+    return P, fit.radii / fit.plain
+
+
+def _to_mean_radii(g, points, factor):
+    """Move the pruned graph's radii from the plain wall fit to the mean over angle.
+
+    Pruning compares lengths with the plain fit, which counts a rough wall's
+    bulges (a spur must clear them); the measured radius is the wall's mean
+    over angle. Pruning joins, splits and trims the fitted paths and moves
+    junction points, so each point takes the factor of the nearest fitted
+    point (the same point, except at moved junctions and bridged gaps).
+    """
+    keys = list(g.seg_path)
+    if not keys or len(points) == 0:
+        return
+    lens = np.array([len(g.seg_path[s]) for s in keys], dtype=np.int64)
+    off = np.r_[0, np.cumsum(lens)]
+    _, nearest = cKDTree(points).query(np.vstack([g.seg_path[s] for s in keys]))
+    f = factor[nearest]
+    for i, s in enumerate(keys):
+        g.seg_radii[s] = g.seg_radii[s] * f[off[i]:off[i + 1]]
+    # the graph caches each segment's median radius (graph._seg_radius)
+    g.__dict__.pop("_radius_cache", None)
 
 
 def _resolve_nodes(specs, nodes, segments, what):

@@ -98,9 +98,9 @@ def test_wall_faces_match_a_direct_count():
 
 def test_planar_masks_keep_their_in_plane_radii():
     r0 = np.array([1.5, 2.0, 2.5])
-    out, fitted = radii.wall_radii(np.ones((1, 5, 5), bool), spacing=(1, 1, 1), offset=(0, 0, 0),
-                                   points_um=np.zeros((3, 3)), offsets=np.array([0, 3]), radii_um=r0, planar=True)
-    assert np.array_equal(out, r0) and not fitted.any()
+    fit = radii.wall_radii(np.ones((1, 5, 5), bool), spacing=(1, 1, 1), offset=(0, 0, 0),
+                           points_um=np.zeros((3, 3)), offsets=np.array([0, 3]), radii_um=r0, planar=True)
+    assert np.array_equal(fit.radii, r0) and np.array_equal(fit.plain, r0) and not fit.fitted.any()
 
 
 ROUGH_DIRECTIONS = ((0.3, 0.5, 0.8), (0.0, 0.2, 1.0), (0.6, 0.6, 0.5), (1.0, 0.0, 0.0), (0.1, 0.9, 0.2))
