@@ -334,7 +334,9 @@ def _fit_wall_radii(g, cleaned, spacing, planar):
                                 radii_um=R0, planar=planar)
     for i, s in enumerate(keys):
         g.seg_radii[s] = fit.plain[off[i]:off[i + 1]]
-    return P, fit.radii / fit.plain
+    # where no radius was found (0) there is nothing to move
+    factor = np.divide(fit.radii, fit.plain, out=np.ones_like(fit.radii), where=fit.plain > 0)
+    return P, factor
 
 
 def _to_mean_radii(g, points, factor):
