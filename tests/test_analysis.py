@@ -177,3 +177,25 @@ def test_flow_on_a_measured_tree_conserves_mass(analyse):
     # A bifurcation table row per junction, each with a parent chosen by flow.
     assert len(res.bifurcations) == (nodes["kind"] == "junction").sum()
     assert (res.bifurcations["parent_by"] == "flow").all()
+
+
+def test_mean_radii_follow_the_fitted_points_through_pruning():
+    # Pruning joins, splits and trims the fitted paths and moves junction
+    # points; after it every path point takes the factor (mean over angle /
+    # plain fit) of the fitted point at its position, and a point pruning
+    # made takes its path neighbour's. Worked by hand on a joined segment.
+    from pipeline.analysis import _to_mean_radii
+    from pipeline.graph import VesselGraph
+
+    a = np.array([[0.0, 0, 0], [0, 0, 1], [0, 0, 2]])
+    b = np.array([[0.0, 0, 2], [0, 0, 3], [0, 0, 4]])
+    points = np.vstack([a, b])
+    factor = np.array([0.90, 0.91, 0.92, 0.93, 0.94, 0.95])
+    joined = np.vstack([a, b[1:]])
+    joined[-1] = [0.0, 0.2, 4.1]  # a moved junction point: no fitted point there
+    g = VesselGraph(node_pos_um=np.zeros((2, 3)), node_radius_um=np.ones(2), node_on_border=np.zeros(2, bool),
+                    node_alive=np.ones(2, bool), seg_nodes={7: (0, 1)}, seg_path={7: joined},
+                    seg_radii={7: np.full(5, 2.0)})
+    _to_mean_radii(g, points, factor)
+    # the shared point (0, 0, 2) takes the first fitted point there (segment a's end)
+    assert np.allclose(g.seg_radii[7], 2.0 * np.array([0.90, 0.91, 0.92, 0.94, 0.94]))
