@@ -212,6 +212,14 @@ def _median(a, n):
     return (m + m2) / 2
 
 
+@numba.njit(cache=True, inline="always")
+def _polar(ui, vi, cx, cy):
+    """Offset of a wall point from the centre and its distance."""
+    dx = ui - cx
+    dy = vi - cy
+    return dx, dy, np.sqrt(dx * dx + dy * dy)
+
+
 @numba.njit(cache=True)
 def _circle_fit(u, v, w, qu, qv, r0, lam, res, rw):
     """Weighted robust circle fit in the plane; returns (r, r_mean, ok).
@@ -260,9 +268,7 @@ def _circle_fit(u, v, w, qu, qv, r0, lam, res, rw):
             wi = rw[i]
             if wi == 0.0:
                 continue
-            dx = u[i] - cx
-            dy = v[i] - cy
-            rho = np.sqrt(dx * dx + dy * dy)
+            dx, dy, rho = _polar(u[i], v[i], cx, cy)
             if rho < 1e-9:
                 continue
             e = rho - r
@@ -301,18 +307,12 @@ def _circle_fit(u, v, w, qu, qv, r0, lam, res, rw):
     spread = 0.0
     quant = 0.0
     for i in range(n):
-        wi = rw[i]
-        if wi == 0.0:
-            continue
-        dx = u[i] - cx
-        dy = v[i] - cy
-        rho = np.sqrt(dx * dx + dy * dy)
-        if rho < 1e-9:
-            continue
-        radial = (qu[i] * dx + qv[i] * dy) / rho
-        sw += wi
-        spread += wi * (rho - r) ** 2
-        quant += wi * radial * radial / 12.0
+        dx, dy, rho = _polar(u[i], v[i], cx, cy)
+        if rw[i] > 0.0 and rho >= 1e-9:
+            radial = (qu[i] * dx + qv[i] * dy) / rho
+            sw += rw[i]
+            spread += rw[i] * (rho - r) ** 2
+            quant += rw[i] * radial * radial / 12.0
     r_mean = r
     if sw > 0.0:
         excess = (spread - quant) / sw
