@@ -315,6 +315,15 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
                     order_connectivity=ordered.connectivity)
 
 
+def _paths(g):
+    """Segment ids, path offsets (S + 1,) and every path's points concatenated (M, 3); ([], None, None) if none."""
+    keys = list(g.seg_path)
+    if not keys:
+        return keys, None, None
+    off = np.r_[0, np.cumsum([len(g.seg_path[s]) for s in keys])].astype(np.int64)
+    return keys, off, np.vstack([g.seg_path[s] for s in keys])
+
+
 def _fit_wall_radii(g, cleaned, spacing, planar):
     """Replace each segment's distance-map radii by the plain wall fit (pipeline/radii.py).
 
@@ -322,12 +331,9 @@ def _fit_wall_radii(g, cleaned, spacing, planar):
     angle over the plain one, for :func:`_to_mean_radii` after pruning; None
     when the graph has no segment.
     """
-    keys = list(g.seg_path)
+    keys, off, P = _paths(g)
     if not keys:
         return None
-    lens = np.array([len(g.seg_path[s]) for s in keys], dtype=np.int64)
-    off = np.r_[0, np.cumsum(lens)]
-    P = np.vstack([g.seg_path[s] for s in keys])
     R0 = np.concatenate([g.seg_radii[s] for s in keys])
     fit = radii_step.wall_radii(cleaned.mask, spacing=spacing, offset=cleaned.offset, points_um=P, offsets=off,
                                 radii_um=R0, planar=planar)
@@ -350,18 +356,15 @@ def _to_mean_radii(g, points, factor):
     junction, a bridged gap) take the factor of the nearest fitted point
     along their path, or none.
     """
-    keys = list(g.seg_path)
+    keys, off, query = _paths(g)
     if not keys or len(points) == 0:
         return
-    lens = np.array([len(g.seg_path[s]) for s in keys], dtype=np.int64)
-    off = np.r_[0, np.cumsum(lens)]
-    query = np.vstack([g.seg_path[s] for s in keys])
     fitted = pd.MultiIndex.from_arrays(points.T)
     first = ~fitted.duplicated()
     pos = fitted[first].get_indexer(pd.MultiIndex.from_arrays(query.T))
     f = pd.Series(np.where(pos >= 0, factor[first][np.maximum(pos, 0)], np.nan))
     if (pos < 0).any():
-        by_segment = f.groupby(np.repeat(np.arange(len(keys)), lens))
+        by_segment = f.groupby(np.repeat(np.arange(len(keys)), np.diff(off)))
         f = by_segment.ffill().fillna(by_segment.bfill()).fillna(1.0)
     f = f.to_numpy()
     for i, s in enumerate(keys):

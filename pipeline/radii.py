@@ -292,17 +292,10 @@ def _circle_fit(u, v, w, qu, qv, r0, lam, res, rw):
     ok = np.isfinite(r) and r > 0
     if not ok:
         return r, r, ok
-    # Wall points sample the wall by arc length, and a rough wall has more
-    # arc where it bulges out than where it dips in: the fit above is the
-    # mean radius weighted by the local radius, E[rho^2] / E[rho] = r_mean +
-    # var / r_mean over angle, 6 % above the mean at a relative roughness of
-    # 0.25 (measured on rough tubes of 2-5 µm: +4-6 %). The radial spread of
-    # the kept points holds the wall's own variance plus the points'
-    # quantisation, uniform over one voxel step along the point's axis
-    # (variance step^2 / 12 along it, of which the radial part counts);
-    # what exceeds the quantisation is the wall's, and taking var / r off
-    # gives the mean over angle. A smooth wall's spread is its quantisation
-    # alone, and its radius is left as it is.
+    # The arc-length bias of a rough wall (module notes, "Rough walls"): the
+    # kept points' radial spread less their quantisation (variance step^2 /
+    # 12 along the point's axis, of which the radial part counts) is the
+    # wall's variance, and var / r comes off.
     sw = 0.0
     spread = 0.0
     quant = 0.0
