@@ -27,6 +27,7 @@ centreline in all are dropped.
 
 from __future__ import annotations
 
+import math
 from collections import defaultdict
 from dataclasses import dataclass, field
 
@@ -962,17 +963,14 @@ def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, min_spread=0.02,
                           np.asarray(node_seg, np.int64), g.node_pos_um[nodes].astype(np.float64),
                           g.node_radius_um[nodes].astype(np.float64), near_radii, far_radii, min_spread,
                           max_move_radii)
-    for k, n in enumerate(nodes):
-        x = new[k]
-        if not np.all(np.isfinite(x)):
-            continue
-        _move_node(g, inc, n, x)
+    ok = np.flatnonzero(np.isfinite(new).all(axis=1))
+    _move_nodes(g, inc, [nodes[k] for k in ok], new[ok])
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, parallel=True)
 def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread, max_move):
     out = np.full((len(pos), 3), np.nan)
-    for k in range(len(pos)):
+    for k in numba.prange(len(pos)):
         p0 = pos[k]
         A = np.zeros((3, 3))
         b = np.zeros(3)
@@ -1015,6 +1013,39 @@ def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread
         x = np.linalg.solve(A, b)
         if np.sqrt(((x - p0) ** 2).sum()) <= max_move * rad[k]:
             out[k] = x
+    return out
+
+
+def _move_nodes(g, inc, nodes, positions):
+    """:func:`_move_node` for many nodes at once (lengths in one compiled pass)."""
+    moved = {}
+    for n, pos in zip(nodes, positions):
+        g.node_pos_um[n] = pos
+        for s in set(inc[n]):
+            path = moved.get(s)
+            if path is None:
+                path = moved[s] = g.seg_path[s].copy()
+            u, v = g.seg_nodes[s]
+            if u == n:
+                path[0] = pos
+            if v == n:
+                path[-1] = pos
+    if not moved:
+        return
+    keys = list(moved)
+    paths = [moved[s] for s in keys]
+    off = np.r_[0, np.cumsum([len(p) for p in paths])].astype(np.int64)
+    lengths = _polyline_lengths_nb(np.ascontiguousarray(np.vstack(paths), dtype=np.float64), off)
+    for s, path, length in zip(keys, paths, lengths.tolist()):
+        g.seg_path[s] = path
+        g.seg_length_um[s] = length
+
+
+@numba.njit(cache=True)
+def _polyline_lengths_nb(P, off):
+    out = np.empty(len(off) - 1)
+    for k in range(len(off) - 1):
+        out[k] = _polyline_length_nb(P[off[k]:off[k + 1]])
     return out
 
 
@@ -1062,18 +1093,33 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
     """
     import heapq
 
+    # Plain lists for the hot loops: a segment's radius never changes
+    # (_seg_radius), and the candidates' test runs over every segment.
+    seg_r = {t: _seg_radius(g, t) for t in g.seg_nodes}
+    node_r = g.node_radius_um.tolist()
+    seg_nodes = g.seg_nodes
+
     def bound(s):
-        u, v = g.seg_nodes[s]
-        near = [g.node_radius_um[u], g.node_radius_um[v]] + [_seg_radius(g, t) for t in inc[u] + inc[v]]
-        return factor * max(near)
+        u, v = seg_nodes[s]
+        return factor * max(node_r[u], node_r[v], *[seg_r[t] for t in inc[u]], *[seg_r[t] for t in inc[v]])
 
     # Candidates, thinnest first: a loop is broken at its thinnest segment.
-    cands = sorted((s for s in g.seg_nodes if seg_len(s) < bound(s)), key=lambda s: (_seg_radius(g, s), s))
+    # The largest radius at each node, over the node and its segments, gives
+    # every segment's bound at once.
+    widest = list(node_r)
+    for t, (u, v) in seg_nodes.items():
+        r = seg_r[t]
+        if r > widest[u]:
+            widest[u] = r
+        if r > widest[v]:
+            widest[v] = r
+    cands = sorted((t for t, (u, v) in seg_nodes.items() if seg_len(t) < factor * max(widest[u], widest[v])),
+                   key=lambda t: (seg_r[t], t))
     removed = 0
     for s in cands:
-        if s not in g.seg_nodes:
+        if s not in seg_nodes:
             continue
-        u, v = g.seg_nodes[s]
+        u, v = seg_nodes[s]
         limit = bound(s)
         if seg_len(s) >= limit:
             continue
@@ -1082,11 +1128,11 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
             removed += 1
             continue
         # Shortest other path from u to v within the budget (Dijkstra, bounded).
-        rs = _seg_radius(g, s)
+        rs = seg_r[s]
         budget = limit - seg_len(s)
         dist = {u: 0.0}
         # Largest segment or node radius on the path so far.
-        big = {u: max(rs, g.node_radius_um[u], g.node_radius_um[v])}
+        big = {u: max(rs, node_r[u], node_r[v])}
         heap = [(0.0, u)]
         found = False
         while heap:
@@ -1094,19 +1140,20 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
             if n == v:
                 found = seg_len(s) + d < factor * big[v]
                 break
-            if d > dist.get(n, np.inf):
+            if d > dist.get(n, math.inf):
                 continue
             for t in inc[n]:
                 if t == s:
                     continue
-                a, b = g.seg_nodes[t]
+                a, b = seg_nodes[t]
                 m = b if a == n else a
                 nd = d + seg_len(t)
                 # Only loops whose other segments are at least as thick: the
                 # thinnest segment is the one broken.
-                if nd <= budget and nd < dist.get(m, np.inf) and _seg_radius(g, t) >= rs:
+                rt = seg_r[t]
+                if nd <= budget and rt >= rs and nd < dist.get(m, math.inf):
                     dist[m] = nd
-                    big[m] = max(big[n], _seg_radius(g, t), g.node_radius_um[m])
+                    big[m] = max(big[n], rt, node_r[m])
                     heapq.heappush(heap, (nd, m))
         if found:
             remove_segment(s)
