@@ -967,10 +967,10 @@ def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, min_spread=0.02,
     _move_nodes(g, inc, [nodes[k] for k in ok], new[ok])
 
 
-@numba.njit(cache=True, parallel=True)
+@numba.njit(cache=True)
 def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread, max_move):
     out = np.full((len(pos), 3), np.nan)
-    for k in numba.prange(len(pos)):
+    for k in range(len(pos)):
         p0 = pos[k]
         A = np.zeros((3, 3))
         b = np.zeros(3)
@@ -1164,6 +1164,7 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
 def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
     """Merge junction pairs joined by a segment short against their radii; returns how many."""
     cands = []
+    node_r = g.node_radius_um.tolist()  # plain floats: this loop visits every segment
     for s, (u, v) in g.seg_nodes.items():
         if u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
             continue
@@ -1172,7 +1173,7 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
         # a crossing on rough or jittered walls, and how low depends on the
         # grid (in-plane or 3-D distance), while a segment shorter than its
         # own radius between two junctions lies inside the crossing.
-        r = max(g.node_radius_um[u], g.node_radius_um[v], _seg_radius(g, s))
+        r = max(node_r[u], node_r[v], _seg_radius(g, s))
         limit = max(factor * r, floor)
         if seg_len(s) < limit:
             cands.append((seg_len(s), s))
@@ -1204,17 +1205,17 @@ def _remove_wall_loops(g, inc, seg_len, remove_segment, factor, floor):
     """Remove self-loops and parallel segments short against the local radius; returns how many."""
     doomed = set()
     pairs = defaultdict(list)
+    node_r = g.node_radius_um.tolist()  # plain floats: this loop visits every segment
     for s, (u, v) in g.seg_nodes.items():
-        local = max(factor * max(g.node_radius_um[u], g.node_radius_um[v]), floor)
         if u == v:
-            if seg_len(s) < local:
+            if seg_len(s) < max(factor * node_r[u], floor):
                 doomed.add(s)
         else:
-            pairs[(min(u, v), max(u, v))].append(s)
+            pairs[(u, v) if u < v else (v, u)].append(s)
     for (u, v), segs in pairs.items():
         if len(segs) < 2:
             continue
-        local = max(factor * max(g.node_radius_um[u], g.node_radius_um[v]), floor)
+        local = max(factor * max(node_r[u], node_r[v]), floor)
         if min(seg_len(s) for s in segs) >= local:
             continue  # every vessel of the loop is long: a real loop
         # Keep the thickest of the parallel paths: the vessel; the others run
