@@ -75,7 +75,10 @@ potential flow with the narrower trunks at 1, the wider ones at 0 and every
 other open end half way: narrower trunks feed and wider ones drain, as
 arterioles are narrower than the venules that drain the same territory (in
 rodent cortex, from memory), and cut branches of a feeding tree drain while
-those of a draining tree feed. Otherwise the start is flow spreading from the
+those of a draining tree feed. A piece without two trunk classes of its own,
+typically a tree the volume cut off from the mesh, takes the classes of the
+pieces that have them, and keeps the orientation they give (a cut-off tree's
+own objective cannot tell). Otherwise the start is flow spreading from the
 piece's widest open end. Without any known condition the problem is
 symmetric under reversing all flows of a piece, so pieces with nothing known
 are also solved from the reversed start and the other guess, and each keeps
@@ -88,10 +91,10 @@ mark of whether it feeds or drains, and a single capillary crossing the
 volume none of its direction. Measured in the spirit of Fry et al. on
 cortex-like networks of the project's generator (``tests/test_boundary.py``:
 arteriolar and venular trees feeding a capillary mesh, solved with full
-boundary conditions, then cropped): on 300 µm crops from the surface 73-80 %
-of flow directions come out right (every arteriole, 56-87 % of venules,
+boundary conditions, then cropped): on 300 µm crops from the surface 73-85 %
+of flow directions come out right (every arteriole, 75-87 % of venules,
 64-81 % of capillaries) with nothing known, against 50 % by chance; the
-median relative flow error is 59-66 %, mostly a scale (the truth's
+median relative flow error is 58-67 %, mostly a scale (the truth's
 pressures give wall shear stresses above these targets). Known inlets,
 outlets or flows (``--inlet``, ``--outlet``, ``boundary_flows``) are the way
 to do better.
@@ -272,9 +275,20 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
     log radius (at least a factor 1.2) into a narrower class, set to
     potential 1, and a wider class, set to 0: arterioles are narrower than
     the venules that drain the same territory (rodent cortex, from memory).
-    Other open ends of those pieces are set half way (0.5); the directions
-    are those of the potential flow (Kirchhoff with the conductances). Pieces without two
-    trunk classes get no guess (sign 0).
+    A piece without two trunk classes of its own (a tree cut off from the
+    mesh by the volume, whose vessels are all of a kind) takes the volume's:
+    its open ends at least as wide as the narrow class's narrowest trunk are
+    classed by the cut between the classes (the median over the pieces
+    that have both). Other open ends of those pieces are set half way (0.5);
+    the directions are those of the potential flow (Kirchhoff with the
+    conductances). Pieces without any guess get sign 0.
+
+    Returns
+    -------
+    signs : (S,) float ndarray
+        +1 / -1 along / against ``u -> v``, 0 where a piece has no guess.
+    borrowed : (n_piece,) bool ndarray
+        Pieces classed by the volume's trunk classes rather than their own.
     """
     widest = _widest(u, v, n, radius)
     seg_piece = piece[u]
@@ -285,6 +299,7 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
                     for k in range(n_piece)])
     trunk = open_node & (widest >= 2.0 * med[piece])
     phi_fixed = np.full(n, np.nan)
+    cuts, narrowest = [], []
     for k in np.unique(piece[trunk]):
         t = np.flatnonzero(trunk & (piece == k))
         if t.size < 2:
@@ -296,10 +311,23 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
             continue
         cut = 0.5 * (lr[j] + lr[j + 1])
         phi_fixed[t] = np.where(np.log(widest[t]) < cut, 1.0, 0.0)
+        cuts.append(cut)
+        narrowest.append(lr[0])
+    borrowed = np.zeros(n_piece, dtype=bool)
+    if cuts:
+        own = np.zeros(n_piece, dtype=bool)
+        own[piece[np.isfinite(phi_fixed)]] = True
+        cut, floor = float(np.median(cuts)), float(np.min(narrowest))
+        lw = np.log(np.where(widest > 0, widest, np.nan))
+        with np.errstate(invalid="ignore"):
+            wide_enough = open_node & ~own[piece] & (lw >= floor)
+        t = np.flatnonzero(wide_enough)
+        phi_fixed[t] = np.where(lw[t] < cut, 1.0, 0.0)
+        borrowed[piece[t]] = True
     fixed = np.isfinite(phi_fixed)
     s = np.zeros(len(u))
     if not fixed.any():
-        return s
+        return s, borrowed
     good = np.zeros(n_piece, dtype=bool)
     good[piece[fixed]] = True
     # the other open ends of those pieces sit half way: cut branches of a
@@ -324,7 +352,7 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
     d = phi[u] - phi[v]
     seg_ok = node_ok[u]
     s[seg_ok] = np.where(d[seg_ok] >= 0, 1.0, -1.0)
-    return s
+    return s, borrowed
 
 
 def estimate_pressures(
@@ -631,7 +659,7 @@ def estimate_pressures(
     # spreading from its widest open end; pieces with nothing known also try
     # the reverses and the other guess, and keep the smallest objective.
     s_far = _initial_signs(a, b, m, radius_ref, open_node[rows], piece, n_piece, length_m)
-    s_trunk = _trunk_signs(a, b, m, radius_ref, conductance, open_node[rows], piece, n_piece)
+    s_trunk, borrowed = _trunk_signs(a, b, m, radius_ref, conductance, open_node[rows], piece, n_piece)
     has = np.zeros(n_piece, dtype=bool)
     has[seg_piece[s_trunk != 0]] = True
     s_init = np.where(has[seg_piece], s_trunk, s_far)
@@ -653,7 +681,10 @@ def estimate_pressures(
                 obj2 = objective_parts(x2, choice)
             else:
                 x2, obj2, it2, fl2, t2 = run(np.where(free[seg_piece], st, s_init))
-            take = free & (obj2 < obj)
+            # A piece classed by the volume's trunk widths keeps that
+            # orientation: its own objective cannot tell a cut-off tree's
+            # direction (module notes), the widths of the other pieces can.
+            take = free & ~borrowed & (obj2 < obj)
             if take.any():
                 x = np.where(take[piece], x2, x)
                 obj = np.where(take, obj2, obj)
