@@ -254,7 +254,7 @@ def main(argv: list[str] | None = None) -> int:
 
     route_row("vesselflow `solve_flow`", ours)
     if est is not None:
-        route_row("vesselflow, boundary estimate (sign iterations)", est, "KKT, SuperLU")
+        route_row("vesselflow, boundary estimate (sign iterations)", est, "KKT, SuperLU in METIS order")
     if ref is not None:
         if ref.get("timeout"):
             print(f"| reference: full Laplacian + `spsolve` | SuperLU | {n_count:,} | - | "

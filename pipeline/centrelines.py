@@ -151,6 +151,21 @@ def _pad_width(mask, border_faces, spacing):
     return width + width % 2
 
 
+def _inner_voxels(skel, pads):
+    """Indices (K, ndim) of the set voxels of ``skel`` inside its padding, relative to the unpadded array.
+
+    The same rows, in the same (C) order, as ``np.argwhere`` of the inner
+    view; one scan of the contiguous volume is about twice as fast as the
+    strided view's (measured at 560^3).
+    """
+    flat = np.flatnonzero(skel.reshape(-1))
+    coords = np.column_stack(np.unravel_index(flat, skel.shape))
+    lo = np.array([p[0] for p in pads])
+    hi = np.array(skel.shape) - np.array([p[1] for p in pads])
+    keep = np.all((coords >= lo) & (coords < hi), axis=1)
+    return coords[keep] - lo
+
+
 def _ridge(distance, voxels, mask):
     """Largest distance among each voxel and its 26 (8 in 2-D) vessel neighbours.
 
@@ -285,8 +300,7 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
     # issue #3757, open at the time of writing), e.g. a tube whose axis lies
     # between voxel centres, so it cannot be trusted here. 2-D: scikit-image.
     skel = skeletonize(padded) if planar else thin(padded)
-    inner = tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))
-    voxels = np.argwhere(skel[inner])
+    voxels = _inner_voxels(skel, pads)
     del skel, padded
     tissue_q = None
     if coarse is not None:

@@ -127,3 +127,14 @@ def test_ridge_reads_vessel_voxels_only():
     cl = extract_centrelines(m, spacing=(1, 1, 1), offset=(0, 0, 0), original_shape=(11, 11, 40))
     assert len(cl.radii_um) >= 38
     np.testing.assert_array_equal(cl.radii_um, 1.0)
+
+
+@pytest.mark.parametrize("shape, pads", [((9, 11, 7), ((2, 0), (1, 3), (0, 2))), ((12, 10), ((3, 1), (0, 0)))])
+def test_inner_voxels_are_numpy_argwhere_of_the_inner_view(shape, pads):
+    from pipeline.centrelines import _inner_voxels
+
+    skel = np.random.default_rng(1).random(shape) < 0.3
+    inner = tuple(slice(lo, n - hi) for n, (lo, hi) in zip(shape, pads))
+    expected = np.argwhere(skel[inner])  # numpy's own, the reference
+    got = _inner_voxels(skel, pads)
+    assert got.dtype == expected.dtype and np.array_equal(got, expected)
