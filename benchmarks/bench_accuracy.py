@@ -21,7 +21,7 @@ radii within 10 % and max/min across directions <= 1.15.
 
 Usage::
 
-    python benchmarks/bench_accuracy.py [--seeds 5] [--strengths 0 0.5 1] [--z-ratios 1 2 4]
+    python benchmarks/bench_accuracy.py [--seeds 5] [--strengths 0 0.5 1] [--z-ratios 1 2 3 4]
 
 Prints markdown (``benchmarks/run.py`` collects it into RESULTS.md).
 """
@@ -78,7 +78,7 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seeds", type=int, default=5)
     ap.add_argument("--strengths", type=float, nargs="+", default=[0.0, 0.5, 1.0])
-    ap.add_argument("--z-ratios", type=float, nargs="+", default=[1.0, 2.0, 4.0])
+    ap.add_argument("--z-ratios", type=float, nargs="+", default=[1.0, 2.0, 3.0, 4.0])
     ap.add_argument("--tube-seeds", type=int, default=3)
     ap.add_argument("--wiggles", type=float, nargs="+", default=[0.2, 0.0],
                     help="vessel curvature of the trees (binary_tree's wiggle); 0 draws straight vessels")
