@@ -1017,7 +1017,7 @@ def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread
 
 
 def _move_nodes(g, inc, nodes, positions):
-    """:func:`_move_node` for many nodes at once (lengths in one compiled pass)."""
+    """Put each node at its position; the paths of its segments end there too (lengths in one compiled pass)."""
     moved = {}
     for n, pos in zip(nodes, positions):
         g.node_pos_um[n] = pos
@@ -1047,20 +1047,6 @@ def _polyline_lengths_nb(P, off):
     for k in range(len(off) - 1):
         out[k] = _polyline_length_nb(P[off[k]:off[k + 1]])
     return out
-
-
-def _move_node(g, inc, n, pos):
-    """Put node ``n`` at ``pos``; the paths of its segments end there too (their lengths follow)."""
-    g.node_pos_um[n] = pos
-    for s in set(inc[n]):
-        u, v = g.seg_nodes[s]
-        path = g.seg_path[s].copy()
-        if u == n:
-            path[0] = pos
-        if v == n:
-            path[-1] = pos
-        g.seg_path[s] = path
-        g.seg_length_um[s] = _polyline_length(path)
 
 
 def _reach(g, s, n):
@@ -1196,7 +1182,7 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
             inc[u].append(t)
         inc[v] = []
         g.node_alive[v] = False
-        _move_node(g, inc, u, pos)
+        _move_nodes(g, inc, [u], [pos])
         n += 1
     return n
 
