@@ -213,7 +213,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     graph_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
                            junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
                            spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
-                           border_spur_radii=p["border_spur_radii"],
+                           web_loop_radii=p["web_loop_radii"], border_spur_radii=p["border_spur_radii"],
                            voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
                            min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
                            reconnect=p["reconnect_gaps"], spacing_um=sp,

@@ -96,6 +96,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "wall_loop_radii": Param(2.0, float, low=0.0, high=20.0),
         "spur_protrusion_radii": Param(3.0, float, low=0.0, high=20.0),
         "small_loop_radii": Param(8.0, float, low=0.0, high=100.0),
+        "web_loop_radii": Param(20.0, float, low=0.0, high=100.0),
         "border_spur_radii": Param(0.75, float, low=0.0, high=1.0),
         "min_fragment_length_um": Param(10.0, float, low=0.0),
         "max_rounds": Param(20, int, low=1, high=1000),

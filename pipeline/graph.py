@@ -366,7 +366,7 @@ def _polyline_length_nb(p):
 
 def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
                 junction_merge_radii=1.0, wall_loop_radii=2.0, spur_protrusion_radii=3.0, small_loop_radii=8.0,
-                border_spur_radii=0.75, voxel_um=None, reconnect=False, spacing_um=None,
+                web_loop_radii=20.0, border_spur_radii=0.75, voxel_um=None, reconnect=False, spacing_um=None,
                 max_gap_voxels=3.0, max_gap_angle_deg=35.0):
     """Remove spurs, wall artefacts and small fragments; dissolve degree-2 nodes (in place).
 
@@ -403,6 +403,14 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         radius on it encircles a hole in a vessel wall or runs through a
         handle: its thinnest segment goes (repeated while such loops
         remain). 0 keeps every loop.
+    web_loop_radii : float
+        The same for a loop closed by a web: a segment between two
+        junctions, thinner than the vessels at both ends, whose length less
+        those vessels' radii is under one and a half of its own radii (two
+        vessels touching, typically daughters that part slowly past their
+        branch point). A tube that long would be wider than it is long
+        outside the walls it joins. Used when larger than
+        ``small_loop_radii``; 0 turns it off.
     border_spur_radii : float
         A branch from a junction to the volume's face goes when its radius is
         less than this fraction of the junction's vessel's and it is shorter
@@ -521,7 +529,8 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
                 # nodes to dissolve (and two segments joined there may close a
                 # new short loop), so the rounds go on until neither changes.
                 loops_done = True
-                n_loops = _remove_small_loops(g, inc, seg_len, remove_segment, small_loop_radii)
+                n_loops = _remove_small_loops(g, inc, seg_len, remove_segment, small_loop_radii,
+                                              web_factor=web_loop_radii)
                 loops += n_loops
                 changed |= n_loops > 0
             # Dissolve nodes with exactly two segment ends that are not a self-loop.
@@ -1069,13 +1078,22 @@ def _median(a):
     return np.median(a)
 
 
-def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
+def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0, web_free_radii=1.5):
     """Remove the thinnest segment of each loop shorter than ``factor`` times its largest radius; returns how many.
 
     The loop's largest radius is that of its segments and end nodes; the
     search for the loop's other side is bounded by the largest radius that
     can be on it near the candidate (its ends' nodes and segments), then the
     loop found is checked against its own largest radius.
+
+    A web, a segment between two junctions that is thinner than the vessels
+    at both of its ends and whose free length (its length less those
+    vessels' radii) is under ``web_free_radii`` of its own radii, is judged
+    against ``web_factor`` instead, when that is larger: it is where two
+    vessels touch (two daughters that part slowly past a branch point,
+    merged by the wall's roughness or by coarse z), not a vessel of its
+    own, since a tube leaving one wall and entering the other would be
+    longer than it is wide.
     """
     import heapq
 
@@ -1099,7 +1117,18 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
             widest[u] = r
         if r > widest[v]:
             widest[v] = r
-    cands = sorted((t for t, (u, v) in seg_nodes.items() if seg_len(t) < factor * max(widest[u], widest[v])),
+    def wide_other(n, s):
+        return max((seg_r[t] for t in inc[n] if t != s), default=0.0)
+
+    def is_web(t):
+        u, v = seg_nodes[t]
+        if web_factor <= factor or u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
+            return False
+        ru, rv, rt = wide_other(u, t), wide_other(v, t), seg_r[t]
+        return rt < min(ru, rv) and seg_len(t) < ru + rv + web_free_radii * rt
+
+    cands = sorted((t for t, (u, v) in seg_nodes.items()
+                    if seg_len(t) < factor * max(widest[u], widest[v]) or is_web(t)),
                    key=lambda t: (seg_r[t], t))
     removed = 0
     for s in cands:
@@ -1107,6 +1136,10 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
             continue
         u, v = seg_nodes[s]
         limit = bound(s)
+        f = factor
+        if is_web(s):
+            f = web_factor
+            limit *= web_factor / factor
         if seg_len(s) >= limit:
             continue
         if u == v:
@@ -1124,7 +1157,7 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor):
         while heap:
             d, n = heapq.heappop(heap)
             if n == v:
-                found = seg_len(s) + d < factor * big[v]
+                found = seg_len(s) + d < f * big[v]
                 break
             if d > dist.get(n, math.inf):
                 continue
