@@ -1081,8 +1081,8 @@ def _median(a):
 def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0, web_free_radii=1.5):
     """Remove the thinnest segment of each loop shorter than ``factor`` times its largest radius; returns how many.
 
-    The loop's largest radius is that of its segments and end nodes; the
-    search for the loop's other side is bounded by the largest radius that
+    The loop's largest radius is that of its segments, its nodes and every
+    vessel at its nodes; the search for the loop's other side is bounded by the largest radius that
     can be on it near the candidate (its ends' nodes and segments), then the
     loop found is checked against its own largest radius.
 
@@ -1117,6 +1117,9 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0,
             widest[u] = r
         if r > widest[v]:
             widest[v] = r
+    def wide(n):
+        return max((seg_r[t] for t in inc[n]), default=0.0)
+
     def wide_other(n, s):
         return max((seg_r[t] for t in inc[n] if t != s), default=0.0)
 
@@ -1151,7 +1154,11 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0,
         budget = limit - seg_len(s)
         dist = {u: 0.0}
         # Largest segment or node radius on the path so far.
-        big = {u: max(rs, node_r[u], node_r[v])}
+        # The loop's size is judged against the widest vessel at any of its
+        # nodes, those running on beyond it included: a hole splitting a thick
+        # vessel into two strands is measured against that vessel, not against
+        # the strands (which the hole makes thinner).
+        big = {u: max(rs, node_r[u], node_r[v], wide(u), wide(v))}
         heap = [(0.0, u)]
         found = False
         while heap:
@@ -1172,7 +1179,7 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0,
                 rt = seg_r[t]
                 if nd <= budget and rt >= rs and nd < dist.get(m, math.inf):
                     dist[m] = nd
-                    big[m] = max(big[n], rt, node_r[m])
+                    big[m] = max(big[n], rt, node_r[m], wide(m))
                     heapq.heappush(heap, (nd, m))
         if found:
             remove_segment(s)
