@@ -71,11 +71,19 @@ Starts and orientation. The sign iteration converges to the optimum nearest
 its start, so the start matters. Where a piece has trunks (open ends on
 vessels at least twice as wide as the piece's median vessel) of two clearly
 different widths (a gap of at least 1.2 in radius), the start is the
-potential flow with the narrower trunks at 1, the wider ones at 0 and every
-other open end half way: narrower trunks feed and wider ones drain, as
-arterioles are narrower than the venules that drain the same territory (in
-rodent cortex, from memory), and cut branches of a feeding tree drain while
-those of a draining tree feed. A piece without two trunk classes of its own,
+potential flow with the narrower trunks at 1 and the wider ones at 0:
+narrower trunks feed and wider ones drain, as arterioles are narrower than
+the venules that drain the same territory (in rodent cortex, from memory).
+A tree (a connected part of the wide vessels) is classed by its widest open
+end, and its other wide open ends, its cut branches, sit a quarter of the
+way in (0.75 on a feeding tree, 0.25 on a draining one): cut branches of a
+feeding tree drain and those of a draining tree feed, while the tree as a
+whole stays high or low. Classing each cut end by its own width made a
+draining tree's narrower cut branches feed at the arterial potential, and
+the capillaries around them ran backwards. Every other open end (cut
+capillaries and thin vessels) is joined to a reservoir half way through an
+extension of a fifth of its own segment's conductance, rather than held half
+way, which made each cut capillary a source or sink as strong as a trunk. A piece without two trunk classes of its own,
 typically a tree the volume cut off from the mesh, takes the classes of the
 pieces that have them, and keeps the orientation they give (a cut-off tree's
 own objective cannot tell). Otherwise the start is flow spreading from the
@@ -91,10 +99,10 @@ mark of whether it feeds or drains, and a single capillary crossing the
 volume none of its direction. Measured in the spirit of Fry et al. on
 cortex-like networks of the project's generator (``tests/test_boundary.py``:
 arteriolar and venular trees feeding a capillary mesh, solved with full
-boundary conditions, then cropped): on 300 µm crops from the surface 73-85 %
-of flow directions come out right (every arteriole, 75-87 % of venules,
-64-81 % of capillaries) with nothing known, against 50 % by chance; the
-median relative flow error is 58-67 %, mostly a scale (the truth's
+boundary conditions, then cropped): on 300 µm crops from the surface 79-89 %
+of flow directions come out right (every arteriole, 81-97 % of venules,
+73-83 % of capillaries) with nothing known, against 50 % by chance; the
+median relative flow error is 59-64 %, mostly a scale (the truth's
 pressures give wall shear stresses above these targets). Known inlets,
 outlets or flows (``--inlet``, ``--outlet``, ``boundary_flows``) are the way
 to do better.
