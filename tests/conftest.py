@@ -9,11 +9,16 @@ from pipeline import scoring, synthetic
 
 @pytest.fixture(scope="session")
 def analyse():
-    """Rasterise a network and analyse it; cached per argument set."""
+    """Rasterise a network and analyse it; cached per argument set.
+
+    The builder itself is part of the key: two modules may use one name for
+    different networks (a shared "tree" key once handed one module the
+    other's tree, so the outcome hung on the order the modules ran in).
+    """
     cache = {}
 
     def run(key, build, *, spacing=(1.0, 1.0, 1.0), config=None, **raster):
-        k = (key, tuple(spacing), repr(sorted(raster.items())), repr(config))
+        k = (key, build, tuple(spacing), repr(sorted(raster.items())), repr(config))
         if k not in cache:
             mask, truth = synthetic.rasterize(build(), spacing=spacing, **raster)
             cache[k] = (mask, truth, pipeline.analyze(mask, spacing=spacing, config=config))
