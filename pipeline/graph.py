@@ -934,7 +934,8 @@ def _split_segment(g, inc, s, i):
     return node
 
 
-def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, min_spread=0.02, max_move_radii=3.0):
+def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, far_straight_radii=4.0, straight_rms_radii=0.25,
+                      min_spread=0.02, max_move_radii=3.0):
     """Move each junction to where its vessels' axes meet.
 
     Thinning places a junction where the medial axes of the branches split,
@@ -951,7 +952,16 @@ def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, min_spread=0.02,
     largest) and the point is within ``max_move_radii`` junction radii of
     the thinned one. Segment paths end at their nodes, so their end points
     move with it. The window is short because vessels curve: a line fitted
-    further out points past the branch point.
+    further out points past the branch point. Where the vessel runs straight
+    out to ``far_straight_radii`` (its points there within
+    ``straight_rms_radii`` of its radius of their line, root mean square),
+    that longer window is used: near a junction thinned past the branch
+    point the centreline bends towards the node, and a line over the near
+    part alone follows the bend. Measured on straight-vessel trees at
+    strength 1 (bench_accuracy): junctions at z steps of 3 and 4 times xy
+    went from F1 0.93 (one seed each, placed 3.7 and 5.9 µm from branch
+    points of parent radius 3.5 µm) to 1.00 and 0.97, and on five further
+    seeds at z 2-4 from four imperfect cases to two.
     """
     nodes = [n for n in np.flatnonzero(g.node_alive) if len(inc[n]) >= 3 and len(set(inc[n])) == len(inc[n])]
     if not nodes:
@@ -970,14 +980,41 @@ def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, min_spread=0.02,
     P = np.ascontiguousarray(np.vstack(paths), dtype=np.float64)
     new = _meeting_points(P, np.asarray(seg_off, np.int64), np.asarray(radii, np.float64),
                           np.asarray(node_seg, np.int64), g.node_pos_um[nodes].astype(np.float64),
-                          g.node_radius_um[nodes].astype(np.float64), near_radii, far_radii, min_spread,
-                          max_move_radii)
+                          g.node_radius_um[nodes].astype(np.float64), near_radii, far_radii, far_straight_radii,
+                          straight_rms_radii, min_spread, max_move_radii)
     ok = np.flatnonzero(np.isfinite(new).all(axis=1))
     _move_nodes(g, inc, [nodes[k] for k in ok], new[ok])
 
 
 @numba.njit(cache=True)
-def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread, max_move):
+def _axis_line(path, lo, hi):
+    """Centroid, unit direction and mean squared distance from the line of the path points at arc ``lo..hi``."""
+    sel = np.zeros(len(path), np.bool_)
+    arc = 0.0
+    for i in range(len(path)):
+        if i > 0:
+            arc += np.sqrt(((path[i] - path[i - 1]) ** 2).sum())
+        sel[i] = lo <= arc <= hi
+    m = sel.sum()
+    c = np.zeros(3)
+    if m < 3:
+        return c, c, -1.0
+    for i in range(len(path)):
+        if sel[i]:
+            c += path[i]
+    c /= m
+    C = np.zeros((3, 3))
+    for i in range(len(path)):
+        if sel[i]:
+            q = path[i] - c
+            C += np.outer(q, q)
+    vals, vecs = np.linalg.eigh(C)
+    return c, vecs[:, 2].copy(), (vals[0] + vals[1]) / m
+
+
+@numba.njit(cache=True)
+def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, far_straight, straight_rms, min_spread,
+                    max_move):
     out = np.full((len(pos), 3), np.nan)
     for k in range(len(pos)):
         p0 = pos[k]
@@ -986,31 +1023,18 @@ def _meeting_points(P, seg_off, seg_r, node_seg, pos, rad, near, far, min_spread
         used = 0
         for j in range(node_seg[k], node_seg[k + 1]):
             path = P[seg_off[j]:seg_off[j + 1]]
-            lo = near * seg_r[j]
-            hi = far * seg_r[j]
-            sel = np.zeros(len(path), np.bool_)
-            arc = 0.0
-            for i in range(len(path)):
-                if i > 0:
-                    arc += np.sqrt(((path[i] - path[i - 1]) ** 2).sum())
-                sel[i] = lo <= arc <= hi
-            m = sel.sum()
-            if m < 3:
+            r = seg_r[j]
+            # The longer window where the vessel runs straight over it (points
+            # within straight_rms radii of the line, root mean square): the
+            # skeleton bends towards a junction thinned past the branch point,
+            # which a line over the near part alone follows.
+            c, t, ms = _axis_line(path, near * r, far_straight * r)
+            if far_straight <= far or ms < 0.0 or ms > (straight_rms * r) ** 2:
+                c, t, ms = _axis_line(path, near * r, far * r)
+            if ms < 0.0:
                 continue
-            c = np.zeros(3)
-            for i in range(len(path)):
-                if sel[i]:
-                    c += path[i]
-            c /= m
-            C = np.zeros((3, 3))
-            for i in range(len(path)):
-                if sel[i]:
-                    q = path[i] - c
-                    C += np.outer(q, q)
-            _, vecs = np.linalg.eigh(C)
-            t = vecs[:, 2]
             Pm = np.eye(3) - np.outer(t, t)
-            w = seg_r[j] * seg_r[j]
+            w = r * r
             A += w * Pm
             b += w * (Pm @ c)
             used += 1
