@@ -72,6 +72,12 @@ from numba.cpython.unsafe.numbers import trailing_zeros
 
 __all__ = ["WallRadii", "wall_radii", "segment_tangents"]
 
+# Search reach of the wall fits, in distance-map radii (plus two voxels): the
+# plain fit's (which pruning reads) and the wider one of the measured radius
+# (module notes, "Rough walls").
+_REACH_RADII = 1.6
+_MEAN_REACH_RADII = 2.0
+
 
 class WallRadii(NamedTuple):
     """Radii of :func:`wall_radii`, one value per centreline point."""
@@ -439,7 +445,8 @@ def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V
 def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, QU, QV, R, RW):
     """Radius from the wall around one centreline point; returns (r, r_mean, number of wall points) or (r0, r0, 0)."""
     h = max(0.75 * r0, 0.6 * smax)
-    reach = 1.6 * r0 + 2.0 * smin
+    reach = _REACH_RADII * r0 + 2.0 * smin
+    reach_m = _MEAN_REACH_RADII * r0 + 2.0 * smin
     # Cross-section basis e1, e2 perpendicular to t.
     e1 = np.empty(3)
     if abs(t[0]) < 0.9:  # e1 from the z axis, or from y when t is nearly along z
@@ -472,17 +479,44 @@ def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, 
                 while word != 0:
                     x = (wi << 6) + np.int64(trailing_zeros(word))
                     word &= word - one
-                    n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, QU, QV, n)
-    if n < 6:
+                    n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach_m, slack, e1, e2, wax, U, V, W,
+                                    QU, QV, n)
+    # The points within the plain fit's reach first, each part in scan order.
+    ni = 0
+    for i in range(n):
+        if U[i] * U[i] + V[i] * V[i] <= reach * reach:
+            ni += 1
+    if ni < n:
+        k_in, k_out = 0, 0
+        tu, tv, tw, tqu, tqv = (np.empty(n - ni), np.empty(n - ni), np.empty(n - ni), np.empty(n - ni),
+                                np.empty(n - ni))
+        for i in range(n):
+            if U[i] * U[i] + V[i] * V[i] <= reach * reach:
+                U[k_in], V[k_in], W[k_in], QU[k_in], QV[k_in] = U[i], V[i], W[i], QU[i], QV[i]
+                k_in += 1
+            else:
+                tu[k_out], tv[k_out], tw[k_out], tqu[k_out], tqv[k_out] = U[i], V[i], W[i], QU[i], QV[i]
+                k_out += 1
+        for i in range(n - ni):
+            U[ni + i], V[ni + i], W[ni + i], QU[ni + i], QV[ni + i] = tu[i], tv[i], tw[i], tqu[i], tqv[i]
+    if ni < 6:
         return r0, r0, 0
     # A weak pull of the centre towards the centreline: 5 % of the total
     # weight per µm^2, enough to settle a direction no wall point
     # constrains, too little to bias a well-posed fit.
-    lam = 0.05 * W[:n].sum() / max(r0 * r0, smin * smin)
-    r, r_mean, ok = _circle_fit(U[:n], V[:n], W[:n], QU[:n], QV[:n], r0, lam, R, RW)
-    if ok and r0 / 2.5 <= r <= 2.5 * r0:
-        return r, r_mean, n
-    return r0, r0, 0
+    lam = 0.05 * W[:ni].sum() / max(r0 * r0, smin * smin)
+    r, r_mean, ok = _circle_fit(U[:ni], V[:ni], W[:ni], QU[:ni], QV[:ni], r0, lam, R, RW)
+    if not (ok and r0 / 2.5 <= r <= 2.5 * r0):
+        return r0, r0, 0
+    if ni < n:
+        # The wider reach for the measured radius: the distance-map radius is
+        # the inscribed one, which on a rough wall touches the deepest dent,
+        # so the plain reach cuts off a thick rough vessel's outer bulges.
+        lam = 0.05 * W[:n].sum() / max(r0 * r0, smin * smin)
+        r_w, r_mean_w, ok = _circle_fit(U[:n], V[:n], W[:n], QU[:n], QV[:n], r0, lam, R, RW)
+        if ok and r0 / 2.5 <= r_w <= 2.5 * r0:
+            r_mean = r_mean_w
+    return r, r_mean, n
 
 
 @numba.njit(parallel=True, cache=True)
@@ -513,7 +547,7 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, out_mean, nfit, nchu
             if not (r0 > 0):
                 continue
             h = max(0.75 * r0, 0.6 * smax)
-            reach = 1.6 * r0 + 2.0 * smin
+            reach = _MEAN_REACH_RADII * r0 + 2.0 * smin
             # A face per voxel on average at most, six at the very most.
             need = 6 * _box(faces.shape, sp, origin, P[i], T[i], h, reach, lo, hi)
             if need > len(U):
