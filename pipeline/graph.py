@@ -27,6 +27,7 @@ centreline in all are dropped.
 
 from __future__ import annotations
 
+import heapq
 import math
 from collections import defaultdict
 from dataclasses import dataclass, field
@@ -1119,96 +1120,156 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0,
     own, since a tube leaving one wall and entering the other would be
     longer than it is wide.
     """
-    import heapq
+    # The candidates and their order are fixed on the graph as it comes in;
+    # the search itself runs compiled (_small_loops_nb) on flat arrays, with
+    # each node's segments in the order of ``inc`` and removals marked in
+    # place, so it makes the same choices as a search over the lists would.
+    ids = list(g.seg_nodes)
+    if not ids:
+        return 0
+    row = {t: k for k, t in enumerate(ids)}
+    uv = np.array([g.seg_nodes[t] for t in ids], dtype=np.int64).reshape(-1, 2)
+    seg_r = np.array([_seg_radius(g, t) for t in ids])
+    slen = np.array([seg_len(t) for t in ids])
+    node_r = np.asarray(g.node_radius_um, dtype=np.float64)
+    n_nodes = len(node_r)
+    counts = np.array([len(inc[n]) for n in range(n_nodes)], dtype=np.int64)
+    inc_ptr = np.zeros(n_nodes + 1, dtype=np.int64)
+    np.cumsum(counts, out=inc_ptr[1:])
+    inc_seg = np.fromiter((row[t] for n in range(n_nodes) for t in inc[n]), dtype=np.int64, count=int(inc_ptr[-1]))
+    args = (float(factor), float(web_factor), float(web_free_radii))
+    keep = _small_loop_candidates_nb(uv, seg_r, slen, node_r, inc_ptr, inc_seg, *args)
+    # Candidates, thinnest first (ties by segment id): a loop is broken at
+    # its thinnest segment.
+    cand = np.flatnonzero(keep)
+    cand = cand[np.lexsort((np.asarray(ids, dtype=np.int64)[cand], seg_r[cand]))]
+    removed = _small_loops_nb(uv, seg_r, slen, node_r, inc_ptr, inc_seg, cand, *args)
+    for k in removed:
+        remove_segment(ids[k])
+    return len(removed)
 
-    # Plain lists for the hot loops: a segment's radius never changes
-    # (_seg_radius), and the candidates' test runs over every segment.
-    seg_r = {t: _seg_radius(g, t) for t in g.seg_nodes}
-    node_r = g.node_radius_um.tolist()
-    seg_nodes = g.seg_nodes
 
-    def bound(s):
-        u, v = seg_nodes[s]
-        return factor * max(node_r[u], node_r[v], *[seg_r[t] for t in inc[u]], *[seg_r[t] for t in inc[v]])
+@numba.njit(cache=True)
+def _wide_at(n, skip, inc_ptr, inc_seg, alive, seg_r):
+    """Largest radius of the live segments at node ``n`` other than segment ``skip`` (-1: none skipped)."""
+    out = 0.0
+    for i in range(inc_ptr[n], inc_ptr[n + 1]):
+        t = inc_seg[i]
+        if alive[t] and t != skip and seg_r[t] > out:
+            out = seg_r[t]
+    return out
 
-    # Candidates, thinnest first: a loop is broken at its thinnest segment.
+
+@numba.njit(cache=True)
+def _degree(n, inc_ptr, inc_seg, alive):
+    d = 0
+    for i in range(inc_ptr[n], inc_ptr[n + 1]):
+        if alive[inc_seg[i]]:
+            d += 1
+    return d
+
+
+@numba.njit(cache=True)
+def _is_web(t, uv, seg_r, slen, inc_ptr, inc_seg, alive, factor, web_factor, web_free):
+    u, v = uv[t, 0], uv[t, 1]
+    if web_factor <= factor or u == v:
+        return False
+    if _degree(u, inc_ptr, inc_seg, alive) < 3 or _degree(v, inc_ptr, inc_seg, alive) < 3:
+        return False
+    ru = _wide_at(u, t, inc_ptr, inc_seg, alive, seg_r)
+    rv = _wide_at(v, t, inc_ptr, inc_seg, alive, seg_r)
+    rt = seg_r[t]
+    return rt < min(ru, rv) and slen[t] < ru + rv + web_free * rt
+
+
+@numba.njit(cache=True)
+def _small_loop_candidates_nb(uv, seg_r, slen, node_r, inc_ptr, inc_seg, factor, web_factor, web_free):
+    """Segments short enough to close a small loop, or webs (see :func:`_remove_small_loops`)."""
+    S = len(seg_r)
+    alive = np.ones(S, dtype=np.bool_)
     # The largest radius at each node, over the node and its segments, gives
     # every segment's bound at once.
-    widest = list(node_r)
-    for t, (u, v) in seg_nodes.items():
-        r = seg_r[t]
-        if r > widest[u]:
-            widest[u] = r
-        if r > widest[v]:
-            widest[v] = r
-    def wide(n):
-        return max((seg_r[t] for t in inc[n]), default=0.0)
+    widest = node_r.copy()
+    for t in range(S):
+        for e in range(2):
+            if seg_r[t] > widest[uv[t, e]]:
+                widest[uv[t, e]] = seg_r[t]
+    keep = np.zeros(S, dtype=np.bool_)
+    for t in range(S):
+        keep[t] = (slen[t] < factor * max(widest[uv[t, 0]], widest[uv[t, 1]])
+                   or _is_web(t, uv, seg_r, slen, inc_ptr, inc_seg, alive, factor, web_factor, web_free))
+    return keep
 
-    def wide_other(n, s):
-        return max((seg_r[t] for t in inc[n] if t != s), default=0.0)
 
-    def is_web(t):
-        u, v = seg_nodes[t]
-        if web_factor <= factor or u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
-            return False
-        ru, rv, rt = wide_other(u, t), wide_other(v, t), seg_r[t]
-        return rt < min(ru, rv) and seg_len(t) < ru + rv + web_free_radii * rt
-
-    cands = sorted((t for t, (u, v) in seg_nodes.items()
-                    if seg_len(t) < factor * max(widest[u], widest[v]) or is_web(t)),
-                   key=lambda t: (seg_r[t], t))
-    removed = 0
-    for s in cands:
-        if s not in seg_nodes:
+@numba.njit(cache=True)
+def _small_loops_nb(uv, seg_r, slen, node_r, inc_ptr, inc_seg, cand, factor, web_factor, web_free):
+    """The search of :func:`_remove_small_loops` over ``cand`` in order; returns the rows removed, in order."""
+    S = len(seg_r)
+    N = len(node_r)
+    alive = np.ones(S, dtype=np.bool_)
+    dist = np.full(N, np.inf)
+    big = np.zeros(N)
+    touched = np.empty(N, dtype=np.int64)
+    removed = []
+    for s in cand:
+        if not alive[s]:
             continue
-        u, v = seg_nodes[s]
-        limit = bound(s)
+        u, v = uv[s, 0], uv[s, 1]
+        limit = factor * max(node_r[u], node_r[v], _wide_at(u, -1, inc_ptr, inc_seg, alive, seg_r),
+                             _wide_at(v, -1, inc_ptr, inc_seg, alive, seg_r))
         f = factor
-        if is_web(s):
+        if _is_web(s, uv, seg_r, slen, inc_ptr, inc_seg, alive, factor, web_factor, web_free):
             f = web_factor
             limit *= web_factor / factor
-        if seg_len(s) >= limit:
+        if slen[s] >= limit:
             continue
         if u == v:
-            remove_segment(s)  # a self-loop this short
-            removed += 1
+            alive[s] = False  # a self-loop this short
+            removed.append(s)
             continue
         # Shortest other path from u to v within the budget (Dijkstra, bounded).
         rs = seg_r[s]
-        budget = limit - seg_len(s)
-        dist = {u: 0.0}
-        # Largest segment or node radius on the path so far.
+        budget = limit - slen[s]
+        n_touched = 0
+        dist[u] = 0.0
+        touched[n_touched] = u
+        n_touched += 1
         # The loop's size is judged against the widest vessel at any of its
         # nodes, those running on beyond it included: a hole splitting a thick
         # vessel into two strands is measured against that vessel, not against
         # the strands (which the hole makes thinner).
-        big = {u: max(rs, node_r[u], node_r[v], wide(u), wide(v))}
+        big[u] = max(rs, node_r[u], node_r[v], _wide_at(u, -1, inc_ptr, inc_seg, alive, seg_r),
+                     _wide_at(v, -1, inc_ptr, inc_seg, alive, seg_r))
         heap = [(0.0, u)]
         found = False
-        while heap:
+        while len(heap) > 0:
             d, n = heapq.heappop(heap)
             if n == v:
-                found = seg_len(s) + d < f * big[v]
+                found = slen[s] + d < f * big[v]
                 break
-            if d > dist.get(n, math.inf):
+            if d > dist[n]:
                 continue
-            for t in inc[n]:
-                if t == s:
+            for i in range(inc_ptr[n], inc_ptr[n + 1]):
+                t = inc_seg[i]
+                if t == s or not alive[t]:
                     continue
-                a, b = seg_nodes[t]
-                m = b if a == n else a
-                nd = d + seg_len(t)
+                m = uv[t, 1] if uv[t, 0] == n else uv[t, 0]
+                nd = d + slen[t]
                 # Only loops whose other segments are at least as thick: the
                 # thinnest segment is the one broken.
-                rt = seg_r[t]
-                if nd <= budget and rt >= rs and nd < dist.get(m, math.inf):
+                if nd <= budget and seg_r[t] >= rs and nd < dist[m]:
+                    if dist[m] == np.inf:
+                        touched[n_touched] = m
+                        n_touched += 1
                     dist[m] = nd
-                    big[m] = max(big[n], rt, node_r[m], wide(m))
+                    big[m] = max(big[n], seg_r[t], node_r[m], _wide_at(m, -1, inc_ptr, inc_seg, alive, seg_r))
                     heapq.heappush(heap, (nd, m))
+        for i in range(n_touched):
+            dist[touched[i]] = np.inf
         if found:
-            remove_segment(s)
-            removed += 1
-    return removed
+            alive[s] = False
+            removed.append(s)
+    return np.array(removed, dtype=np.int64)
 
 
 def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
