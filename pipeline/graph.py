@@ -28,7 +28,6 @@ centreline in all are dropped.
 from __future__ import annotations
 
 import heapq
-import math
 from collections import defaultdict
 from dataclasses import dataclass, field
 
