@@ -83,8 +83,9 @@ draining tree's narrower cut branches feed at the arterial potential, and
 the capillaries around them ran backwards. Every other open end (cut
 capillaries and thin vessels) is joined to a reservoir half way through an
 extension of a fifth of its own segment's conductance, rather than held half
-way, which made each cut capillary a source or sink as strong as a trunk. A piece without two trunk classes of its own,
-typically a tree the volume cut off from the mesh, takes the classes of the
+way, which made each cut capillary a source or sink as strong as a trunk. A
+piece without two trunk classes of its own, typically a tree the volume cut
+off from the mesh, takes the classes of the
 pieces that have them, and keeps the orientation they give (a cut-off tree's
 own objective cannot tell). Otherwise the start is flow spreading from the
 piece's widest open end. Without any known condition the problem is
@@ -295,9 +296,13 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
     mesh by the volume, whose vessels are all of a kind) takes the volume's:
     its open ends at least as wide as the narrow class's narrowest trunk are
     classed by the cut between the classes (the median over the pieces
-    that have both). Other open ends of those pieces are set half way (0.5);
-    the directions are those of the potential flow (Kirchhoff with the
-    conductances). Pieces without any guess get sign 0.
+    that have both). Within a tree (a connected part of the wide vessels)
+    the widest classed end is the trunk and the other classed ends, its cut
+    branches, sit a quarter of the way in from its potential. The other open
+    ends of those pieces are joined to a reservoir at 0.5 through an
+    extension of ``_EXTENSION_CONDUCTANCE`` times their segment's
+    conductance; the directions are those of the potential flow (Kirchhoff
+    with the conductances). Pieces without any guess get sign 0.
 
     Returns
     -------

@@ -1106,9 +1106,10 @@ def _remove_small_loops(g, inc, seg_len, remove_segment, factor, web_factor=0.0,
     """Remove the thinnest segment of each loop shorter than ``factor`` times its largest radius; returns how many.
 
     The loop's largest radius is that of its segments, its nodes and every
-    vessel at its nodes; the search for the loop's other side is bounded by the largest radius that
-    can be on it near the candidate (its ends' nodes and segments), then the
-    loop found is checked against its own largest radius.
+    vessel at its nodes; the search for the loop's other side is bounded by
+    the largest radius that can be on it near the candidate (its ends' nodes
+    and segments), then the loop found is checked against its own largest
+    radius.
 
     A web, a segment between two junctions that is thinner than the vessels
     at both of its ends and whose free length (its length less those

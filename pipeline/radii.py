@@ -446,8 +446,12 @@ def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V
 
 
 @numba.njit(cache=True)
-def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, QU, QV, R, RW):
-    """Radius from the wall around one centreline point; returns (r, r_mean, number of wall points) or (r0, r0, 0)."""
+def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, QU, QV, R, RW, OUT):
+    """Radius from the wall around one centreline point; returns (r, r_mean, number of wall points) or (r0, r0, 0).
+
+    ``OUT`` (5, at least ``len(U)``) holds the points beyond the plain fit's
+    reach while they are moved behind the others.
+    """
     h = max(0.75 * r0, 0.6 * smax)
     reach = _REACH_RADII * r0 + 2.0 * smin
     reach_m = _MEAN_REACH_RADII * r0 + 2.0 * smin
@@ -492,17 +496,17 @@ def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, 
             ni += 1
     if ni < n:
         k_in, k_out = 0, 0
-        tu, tv, tw, tqu, tqv = (np.empty(n - ni), np.empty(n - ni), np.empty(n - ni), np.empty(n - ni),
-                                np.empty(n - ni))
         for i in range(n):
             if U[i] * U[i] + V[i] * V[i] <= reach * reach:
                 U[k_in], V[k_in], W[k_in], QU[k_in], QV[k_in] = U[i], V[i], W[i], QU[i], QV[i]
                 k_in += 1
             else:
-                tu[k_out], tv[k_out], tw[k_out], tqu[k_out], tqv[k_out] = U[i], V[i], W[i], QU[i], QV[i]
+                OUT[0, k_out], OUT[1, k_out], OUT[2, k_out] = U[i], V[i], W[i]
+                OUT[3, k_out], OUT[4, k_out] = QU[i], QV[i]
                 k_out += 1
         for i in range(n - ni):
-            U[ni + i], V[ni + i], W[ni + i], QU[ni + i], QV[ni + i] = tu[i], tv[i], tw[i], tqu[i], tqv[i]
+            U[ni + i], V[ni + i], W[ni + i] = OUT[0, i], OUT[1, i], OUT[2, i]
+            QU[ni + i], QV[ni + i] = OUT[3, i], OUT[4, i]
     if ni < 6:
         return r0, r0, 0
     # A weak pull of the centre towards the centreline: 5 % of the total
@@ -540,6 +544,7 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, out_mean, nfit, nchu
         QV = np.empty(4096)
         R = np.empty(2 * 4096)
         RW = np.empty(4096)
+        OUT = np.empty((5, 4096))
         lo = np.empty(3, np.int64)
         hi = np.empty(3, np.int64)
         for j in range(chunk * M // nchunks, (chunk + 1) * M // nchunks):
@@ -562,8 +567,9 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, out_mean, nfit, nchu
                 QV = np.empty(need)
                 R = np.empty(2 * need)
                 RW = np.empty(need)
+                OUT = np.empty((5, need))
             r, r_mean, k = _fit_one(faces, words, sp, origin, P[i], T[i], r0, smin, smax, wax, lo, hi,
-                                    U, V, W, QU, QV, R, RW)
+                                    U, V, W, QU, QV, R, RW, OUT)
             out[i] = r
             out_mean[i] = r_mean
             nfit[i] = k
