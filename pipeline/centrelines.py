@@ -109,16 +109,13 @@ def resample_isotropic(mask, *, spacing, target):
     return fine > 0
 
 
-def _edge_pad(mask, border_faces, width):
-    # Vessels cut by the volume border continue straight out of it, so the
-    # thinning does not erode their cut ends back by a radius.
-    pads = []
-    for axis in range(mask.ndim):
-        lo, hi = border_faces[axis]
-        pads.append((width if lo else 0, width if hi else 0))
-    if not any(a or b for a, b in pads):
-        return mask, [(0, 0)] * mask.ndim
-    return np.pad(mask, pads, mode="edge"), pads
+def _edge_pads(border_faces, width):
+    """Planes of edge padding (before, after) per axis: ``width`` on every face on the volume border.
+
+    Vessels cut by the volume border continue straight out of it, so the
+    thinning does not erode their cut ends back by a radius.
+    """
+    return [(width if lo else 0, width if hi else 0) for lo, hi in border_faces]
 
 
 def _pad_width(mask, border_faces, spacing):
@@ -294,14 +291,19 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
     # Thinning first, distances after: the two never hold their working
     # memory at the same time, which keeps the peak of a large stack down.
     width = _pad_width(work, border_faces, sp)
-    padded, pads = _edge_pad(work, border_faces, width)
-    # 3-D: the project's subfield thinning (pipeline/thinning.py). scikit-image's
-    # 3-D skeletonize deletes objects of even width entirely (scikit-image
-    # issue #3757, open at the time of writing), e.g. a tube whose axis lies
-    # between voxel centres, so it cannot be trusted here. 2-D: scikit-image.
-    skel = skeletonize(padded) if planar else thin(padded)
+    pads = _edge_pads(border_faces, width)
+    # 3-D: the project's subfield thinning (pipeline/thinning.py), which
+    # replicates the edge planes itself (no padded copy of the volume).
+    # scikit-image's 3-D skeletonize deletes objects of even width entirely
+    # (scikit-image issue #3757, open at the time of writing), e.g. a tube
+    # whose axis lies between voxel centres, so it cannot be trusted here.
+    # 2-D: scikit-image.
+    if planar:
+        skel = skeletonize(np.pad(work, pads, mode="edge") if any(a or b for a, b in pads) else work)
+    else:
+        skel = thin(work, edge_pad=pads)
     voxels = _inner_voxels(skel, pads)
-    del skel, padded
+    del skel
     tissue_q = None
     if coarse is not None:
         plane_dist = _in_plane_distance(mask[0] if planar else mask, spacing[axes], coarse)

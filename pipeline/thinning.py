@@ -70,6 +70,7 @@ the number of border voxels.
 
 from __future__ import annotations
 
+import math
 import os
 
 # Idle OpenMP threads (numba's usual threading layer) spin by default. On a
@@ -745,7 +746,7 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
 # ------------------------------------------------------------------- API
 
 
-def thin(mask, *, threads=None):
+def thin(mask, *, threads=None, edge_pad=None):
     """Curve skeleton of a 3-D binary mask by topology-preserving thinning.
 
     Parameters
@@ -755,19 +756,32 @@ def thin(mask, *, threads=None):
     threads : int, optional
         Number of numba threads; default the current numba setting. The
         result does not depend on it.
+    edge_pad : sequence of 3 (before, after) int pairs, optional
+        Thin the mask as if extended by that many copies of its edge planes
+        on each side (``np.pad(mask, edge_pad, mode="edge")``), without
+        making the padded copy: the edge is replicated while the working
+        buffer is filled.
 
     Returns
     -------
-    skeleton : (Z, Y, X) bool ndarray
-        Subset of ``mask``: every 26-connected component keeps its number of
+    skeleton : (Z', Y', X') bool ndarray
+        The padded shape (``mask.shape`` without ``edge_pad``). Subset of the
+        (padded) mask: every 26-connected component keeps its number of
         components, cavities and tunnels (hence its Euler number); no voxel
         is left that is simple and has more than one 26-neighbour; end points
-        are kept. C-contiguous, in the working buffer of (Z+2)(Y+2)(X+2)
-        bytes.
+        are kept. C-contiguous, in the working buffer of
+        (Z'+2)(Y'+2)(X'+2) bytes.
     """
     mask = np.asarray(mask)
     if mask.ndim != 3:
         raise ValueError(f"thin expects a 3-D (Z, Y, X) array, got {mask.ndim}-D")
+    pads = np.zeros((3, 2), np.int64)
+    if edge_pad is not None:
+        pads = np.asarray(edge_pad, dtype=np.int64)
+        if pads.shape != (3, 2) or (pads < 0).any():
+            raise ValueError(f"edge_pad must be three (before, after) pairs of non-negative ints, got {edge_pad!r}")
+        if pads.any() and 0 in mask.shape:
+            raise ValueError(f"edge_pad needs a non-empty mask to replicate, got shape {mask.shape}")
     if threads is not None:
         threads = int(threads)
         if not 1 <= threads <= numba.config.NUMBA_NUM_THREADS:
@@ -778,25 +792,37 @@ def thin(mask, *, threads=None):
     if threads is not None:
         numba.set_num_threads(threads)
     try:
-        return _thin(mask, numba.get_num_threads())
+        return _thin(mask, numba.get_num_threads(), pads)
     finally:
         numba.set_num_threads(previous)
 
 
 @numba.njit(cache=True, parallel=True)
-def _load(src, dst):
-    """Copy a bool volume (as uint8) into the padded working volume."""
+def _load(src, dst, pads):
+    """Copy a bool volume (as uint8) into the working volume, with a frame of one background voxel.
+
+    Between the frame and the copy, ``pads[a]`` (before, after) planes along
+    axis ``a`` repeat the volume's edge planes.
+    """
     nz, ny, nx = src.shape
-    for z in prange(nz + 2):
-        for y in range(ny + 2):
-            if z == 0 or z == nz + 1 or y == 0 or y == ny + 1:
-                for x in range(nx + 2):
+    dz, dy, dx = dst.shape
+    x0 = 1 + pads[2, 0]
+    for z in prange(dz):
+        zs = min(max(z - 1 - pads[0, 0], 0), nz - 1)
+        for y in range(dy):
+            if z == 0 or z == dz - 1 or y == 0 or y == dy - 1:
+                for x in range(dx):
                     dst[z, y, x] = 0
-            else:
-                dst[z, y, 0] = 0
-                dst[z, y, nx + 1] = 0
-                for x in range(nx):
-                    dst[z, y, x + 1] = src[z - 1, y - 1, x]
+                continue
+            ys = min(max(y - 1 - pads[1, 0], 0), ny - 1)
+            dst[z, y, 0] = 0
+            dst[z, y, dx - 1] = 0
+            for x in range(1, x0):
+                dst[z, y, x] = src[zs, ys, 0]
+            for x in range(nx):
+                dst[z, y, x0 + x] = src[zs, ys, x]
+            for x in range(x0 + nx, dx - 1):
+                dst[z, y, x] = src[zs, ys, nx - 1]
 
 
 @numba.njit(cache=True)
@@ -813,14 +839,14 @@ def _compact(flat, nz, ny, nx):
                 k += 1
 
 
-def _thin(mask, threads):
-    nz, ny, nx = (s + 2 for s in mask.shape)
+def _thin(mask, threads, pads):
+    shape = tuple(int(s + pads[a].sum()) for a, s in enumerate(mask.shape))
+    nz, ny, nx = (s + 2 for s in shape)
+    work = np.empty((nz, ny, nx), np.uint8)
     if mask.dtype == bool and mask.flags.c_contiguous:
-        work = np.empty((nz, ny, nx), np.uint8)
-        _load(mask.view(np.uint8), work)
+        _load(mask.view(np.uint8), work, pads)
     else:
-        work = np.zeros((nz, ny, nx), np.uint8)
-        np.not_equal(mask, 0, out=work[1:-1, 1:-1, 1:-1].view(bool))
+        _load(np.ascontiguousarray(mask != 0).view(np.uint8), work, pads)
     flat = work.reshape(-1)
     idx = np.int32 if 8 * flat.size < 2**31 else np.int64  # relisted entries pack 8 * index + direction
     d = np.arange(-1, 2)
@@ -829,4 +855,4 @@ def _thin(mask, threads):
     _run(flat, nz, ny, nx, offs, doff, np.empty(0, idx), threads, _PAR_MIN, _LIST_MIN, _ROOM_DIV)
     # The skeleton is returned in the working buffer, which saves a volume.
     _compact(flat, nz, ny, nx)
-    return flat[: mask.size].view(bool).reshape(mask.shape)
+    return flat[: math.prod(shape)].view(bool).reshape(shape)

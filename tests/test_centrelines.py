@@ -100,7 +100,7 @@ def test_pad_width_from_the_faces_is_enough(direction):
     # The pad measured on the cut faces alone must let the thinning finish
     # eroding the extruded ends inside it: a much wider pad (same parity, so
     # the same subfields) gives the same skeleton inside the volume.
-    from pipeline.centrelines import _edge_pad, _pad_width
+    from pipeline.centrelines import _edge_pads, _pad_width
     from pipeline.thinning import thin
 
     mask, _ = _tube(5.0, direction, length=60.0)
@@ -109,8 +109,8 @@ def test_pad_width_from_the_faces_is_enough(direction):
     assert width % 2 == 0 and width >= 5 + 2  # radius 5 voxels plus the margin
     inner = {}
     for w in (width, width + 20):
-        padded, pads = _edge_pad(mask, faces, w)
-        skel = thin(padded)
+        pads = _edge_pads(faces, w)
+        skel = thin(mask, edge_pad=pads)
         inner[w] = skel[tuple(slice(lo, skel.shape[i] - hi) for i, (lo, hi) in enumerate(pads))]
     assert inner[width].any()
     assert np.array_equal(inner[width], inner[width + 20])

@@ -322,6 +322,19 @@ def test_dtypes_and_layouts_give_the_same_result():
     assert np.array_equal(thin(big[2:38, 2:38, ::2]), ref)
 
 
+@pytest.mark.parametrize("pads", [((0, 0), (0, 0), (0, 0)), ((3, 0), (0, 5), (2, 2)), ((4, 4), (1, 2), (6, 0))])
+@pytest.mark.parametrize("layout", ["bool", "uint8", "fortran"])
+def test_edge_pad_is_numpy_edge_padding(pads, layout):
+    # edge_pad replicates the edge planes while filling the working buffer;
+    # the reference is numpy's own edge padding of the same mask, thinned.
+    x = capsule((17, 23, 25), (0, 3, 3), (16, 20, 24), 3.2) | capsule((17, 23, 25), (2, 12, 0), (15, 12, 24), 2.6)
+    y = {"bool": x, "uint8": x.astype(np.uint8) * 3, "fortran": np.asfortranarray(x)}[layout]
+    expected = thin(np.pad(x, pads, mode="edge"))
+    got = thin(y, edge_pad=pads)
+    assert got.shape == expected.shape
+    assert np.array_equal(got, expected)
+
+
 def naive_thin(x):
     """The same thinning written plainly, with whole-volume scans instead of
     work lists. Sub-iteration d: the candidates are the object voxels whose
@@ -415,3 +428,7 @@ def test_rejects_bad_input():
         thin(np.ones((4, 4), bool))
     with pytest.raises(ValueError, match="threads"):
         thin(np.ones((4, 4, 4), bool), threads=0)
+    with pytest.raises(ValueError, match="edge_pad"):
+        thin(np.ones((4, 4, 4), bool), edge_pad=((1, 1), (1, 1)))
+    with pytest.raises(ValueError, match="edge_pad"):
+        thin(np.ones((4, 4, 4), bool), edge_pad=((1, -1), (0, 0), (0, 0)))
