@@ -256,3 +256,22 @@ def test_a_vessel_joining_parted_daughters_is_kept(spacing):
     res = pipeline.analyze(mask, spacing=sp, config={"flow": {"enabled": False}})
     assert _cycle_rank(res) == 1
     assert (res.nodes["kind"] == "junction").sum() == 3
+
+
+
+@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (2.0, 1.0, 1.0)])
+def test_side_branches_of_a_thick_vessel_stay_apart(spacing):
+    # Two 2 µm side branches leave a 6 µm vessel 9 µm apart: the vessel
+    # between them leaves the two junctions' inscribed balls (13 µm of
+    # centreline against 12.5 µm of radii), so they are two branch points,
+    # not one crossing. (6 µm apart they merge into one junction of degree
+    # 4: the documented price of merging crossings, pipeline/graph.py.)
+    sp = np.asarray(spacing, float)
+    mask = np.zeros([int(s / q) for s, q in zip((50.0, 60.0, 100.0), sp)], bool)
+    _tube(mask, sp, [[25.1, 30.2, 8.0], [25.1, 30.2, 92.0]], 6.0)
+    _tube(mask, sp, [[25.1, 30.2, 45.5], [25.1, 56.0, 39.0]], 2.0)
+    _tube(mask, sp, [[25.1, 30.2, 54.5], [46.0, 12.0, 59.0]], 2.0)
+    res = pipeline.analyze(mask, spacing=sp, config={"flow": {"enabled": False}})
+    junctions = res.nodes[res.nodes["kind"] == "junction"]
+    assert len(junctions) == 2
+    assert sorted(junctions["degree"].tolist()) == [3, 3]
