@@ -217,6 +217,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
                            voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
                            min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
                            reconnect=p["reconnect_gaps"], spacing_um=sp,
+                           volume_um=(np.asarray(original_shape) - 1) * np.asarray(sp),
                            max_gap_voxels=p["max_gap_voxels"], max_gap_angle_deg=p["max_gap_angle_deg"])
     if wall is not None:
         _to_mean_radii(g, *wall)

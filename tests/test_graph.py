@@ -275,3 +275,25 @@ def test_side_branches_of_a_thick_vessel_stay_apart(spacing):
     junctions = res.nodes[res.nodes["kind"] == "junction"]
     assert len(junctions) == 2
     assert sorted(junctions["degree"].tolist()) == [3, 3]
+
+
+@pytest.mark.parametrize("branch_radius_um", [2.5, 3.0])
+def test_a_thin_vessel_from_a_thick_one_to_the_face_is_kept(branch_radius_um):
+    # A 7 µm vessel runs 11.5 µm from the volume's y = 0 face (its wall 4.5
+    # µm from it); a thin vessel leaves it and is cut by that face. The
+    # branch reaches no farther from its junction than the two radii
+    # together, which is how the face cutting a rough thick vessel thins,
+    # but its junction lies outside the thick vessel's radius of every face:
+    # the thick vessel is not cut there, so the branch is a vessel and its
+    # junction stays (measured before the face test: both branches went).
+    sp = np.array([1.0, 1.0, 1.0])
+    mask = np.zeros((50, 60, 90), bool)
+    _tube(mask, sp, [[25.2, 11.5, 5.0], [25.2, 11.5, 85.0]], 7.0)
+    _tube(mask, sp, [[25.2, 11.5, 45.3], [25.2, -3.0, 47.0]], branch_radius_um)
+    res = pipeline.analyze(mask, spacing=sp, config={"flow": {"enabled": False}})
+    junctions = res.nodes[res.nodes["kind"] == "junction"]
+    assert len(junctions) == 1 and int(junctions["degree"].iloc[0]) == 3
+    assert len(res.segments) == 3
+    # the branch ends on the face (y = 0)
+    ends = res.nodes[res.nodes["degree"] == 1]
+    assert (ends["y_um"] <= 1.0).sum() == 1
