@@ -148,10 +148,10 @@ def test_beds_of_thick_and_thin_vessels_cut_on_every_face(spacing, seed):
     # Vessels of 2-8 µm in a 120 µm box, 15 % vessel, artefacts at half
     # strength: many junctions lie within 10-15 µm of a face, and thin
     # vessels leave thick ones to be cut by it. Before branches to the face
-    # were pruned only from junctions within their vessel's radius of a face
+    # were pruned only where the thick vessel is cut by a face there
     # (pipeline/graph.py), such branches went with their junctions: F1
     # 0.928-0.968 and length -3.2 to -6.7 % at z 2 (0.959-0.979 and -1.3
-    # to -3.7 % at 1 µm); after, 0.970-0.990 and -0.9 to -2.7 %.
+    # to -3.7 % at 1 µm); after, 0.96-0.99 and -0.8 to -4.2 %.
     net = synthetic.capillary_bed(shape_um=(120.0, 120.0, 120.0), seed=seed, radius_range_um=(2.0, 8.0),
                                   vessel_fraction=0.15)
     mask, truth = synthetic.rasterize(net, **{"spacing": spacing, **synthetic.hostile_artefacts(0.5, spacing=spacing,
