@@ -366,8 +366,8 @@ def _polyline_length_nb(p):
 
 def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
                 junction_merge_radii=1.0, wall_loop_radii=2.0, spur_protrusion_radii=3.0, small_loop_radii=8.0,
-                web_loop_radii=20.0, border_spur_radii=0.75, voxel_um=None, reconnect=False, spacing_um=None, volume_um=None,
-                max_gap_voxels=3.0, max_gap_angle_deg=35.0):
+                web_loop_radii=20.0, border_spur_radii=0.75, voxel_um=None, reconnect=False, spacing_um=None,
+                volume_um=None, max_gap_voxels=3.0, max_gap_angle_deg=35.0):
     """Remove spurs, wall artefacts and small fragments; dissolve degree-2 nodes (in place).
 
     Parameters

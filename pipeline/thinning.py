@@ -765,7 +765,7 @@ def thin(mask, *, threads=None, edge_pad=None):
     Returns
     -------
     skeleton : (Z', Y', X') bool ndarray
-        The padded shape (``mask.shape`` without ``edge_pad``). Subset of the
+        ``mask.shape`` plus the padding of ``edge_pad``, if any. Subset of the
         (padded) mask: every 26-connected component keeps its number of
         components, cavities and tunnels (hence its Euler number); no voxel
         is left that is simple and has more than one 26-neighbour; end points

@@ -16,7 +16,6 @@ Murray's cube law, curved vessels); the benchmark runs the full grid of five
 seeds at z 1, 2 and 4 and three strengths, this module a part of it.
 """
 
-import numpy as np
 import pytest
 
 import pipeline
