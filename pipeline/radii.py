@@ -489,24 +489,22 @@ def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, 
                     word &= word - one
                     n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach_m, slack, e1, e2, wax, U, V, W,
                                     QU, QV, n)
-    # The points within the plain fit's reach first, each part in scan order.
+    # The points within the plain fit's reach first, each part in scan order:
+    # inner points move down in place (never past their own slot), outer ones
+    # wait in OUT and go behind them.
     ni = 0
+    n_out = 0
     for i in range(n):
         if U[i] * U[i] + V[i] * V[i] <= reach * reach:
+            U[ni], V[ni], W[ni], QU[ni], QV[ni] = U[i], V[i], W[i], QU[i], QV[i]
             ni += 1
-    if ni < n:
-        k_in, k_out = 0, 0
-        for i in range(n):
-            if U[i] * U[i] + V[i] * V[i] <= reach * reach:
-                U[k_in], V[k_in], W[k_in], QU[k_in], QV[k_in] = U[i], V[i], W[i], QU[i], QV[i]
-                k_in += 1
-            else:
-                OUT[0, k_out], OUT[1, k_out], OUT[2, k_out] = U[i], V[i], W[i]
-                OUT[3, k_out], OUT[4, k_out] = QU[i], QV[i]
-                k_out += 1
-        for i in range(n - ni):
-            U[ni + i], V[ni + i], W[ni + i] = OUT[0, i], OUT[1, i], OUT[2, i]
-            QU[ni + i], QV[ni + i] = OUT[3, i], OUT[4, i]
+        else:
+            OUT[0, n_out], OUT[1, n_out], OUT[2, n_out] = U[i], V[i], W[i]
+            OUT[3, n_out], OUT[4, n_out] = QU[i], QV[i]
+            n_out += 1
+    for i in range(n_out):
+        U[ni + i], V[ni + i], W[ni + i] = OUT[0, i], OUT[1, i], OUT[2, i]
+        QU[ni + i], QV[ni + i] = OUT[3, i], OUT[4, i]
     if ni < 6:
         return r0, r0, 0
     # A weak pull of the centre towards the centreline: 5 % of the total
