@@ -85,9 +85,8 @@ capillaries and thin vessels) is joined to a reservoir half way through an
 extension of a fifth of its own segment's conductance, rather than held half
 way, which made each cut capillary a source or sink as strong as a trunk. A
 piece without two trunk classes of its own, typically a tree the volume cut
-off from the mesh, takes the classes of the
-pieces that have them, and keeps the orientation they give (a cut-off tree's
-own objective cannot tell). Otherwise the start is flow spreading from the
+off from the mesh, takes the classes of the pieces that have them, and keeps
+the orientation they give (a cut-off tree's own objective cannot tell). Otherwise the start is flow spreading from the
 piece's widest open end. Without any known condition the problem is
 symmetric under reversing all flows of a piece, so pieces with nothing known
 are also solved from the reversed start and the other guess, and each keeps

@@ -462,13 +462,16 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
     def remove_segment(s):
         _drop_segment(g, inc, s)
 
+    # the far faces of the volume; a planar volume has no z faces
+    face_hi = None if volume_um is None else np.asarray(volume_um, dtype=float)
+    face_axes = None if face_hi is None else face_hi > 0
+
     def face_distance(n):
         """Distance of node ``n`` from the nearest face of the volume, µm (0 without ``volume_um``)."""
-        if volume_um is None:
+        if face_hi is None or not face_axes.any():
             return 0.0
-        hi = np.asarray(volume_um, dtype=float)
-        p = g.node_pos_um[n][hi > 0]  # a planar volume has no z faces
-        return float(min(p.min(), (hi[hi > 0] - p).min())) if p.size else 0.0
+        p = g.node_pos_um[n][face_axes]
+        return float(min(p.min(), (face_hi[face_axes] - p).min()))
 
     def cut_at_face(junc, rj):
         """Whether junction ``junc``'s vessel (radius ``rj``) is cut by a face near it.
