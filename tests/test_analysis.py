@@ -199,3 +199,58 @@ def test_mean_radii_follow_the_fitted_points_through_pruning():
     _to_mean_radii(g, points, factor)
     # the shared point (0, 0, 2) takes the first fitted point there (segment a's end)
     assert np.allclose(g.seg_radii[7], 2.0 * np.array([0.90, 0.91, 0.92, 0.94, 0.94]))
+
+
+# --- flow with default settings on volumes like the labs' ---------------------
+
+def _demo_volume(name):
+    from pathlib import Path
+
+    from pipeline import reading
+
+    img = reading.read_mask(Path(__file__).resolve().parents[1] / "synthetic_volumes" / f"{name}.tif")
+    return img.mask, img.spacing
+
+
+def _cortex_crop(seed):
+    # A 300 µm cube cut out of a 400 µm cortex-like network (arteriolar and
+    # venular cube-law trees feeding a capillary mesh) from the surface, cut
+    # on every other face, at a z step of 3 µm with every artefact of the
+    # segmentation model at full strength: what a two-photon stack of cortex
+    # looks like to the pipeline (many border ends, coarse z, rough walls).
+    spacing = (3.0, 1.0, 1.0)
+    lo = (0.0, 50.0, 50.0)
+    net = synthetic.crop_network(synthetic.cortex_network(seed=seed), box_um=(lo, tuple(x + 300.0 for x in lo)))
+    opts = synthetic.hostile_artefacts(1.0, spacing=spacing, seed=seed)  # includes the spacing
+    mask, _ = synthetic.rasterize(net, shape=(100, 300, 300), **opts)
+    return mask, spacing
+
+
+@pytest.mark.parametrize("volume", [
+    pytest.param(lambda: _demo_volume("tw-ctrl-01"), id="demo-tree"),
+    pytest.param(lambda: _demo_volume("tw-trt-01"), id="demo-treated-tree"),
+    pytest.param(lambda: _demo_volume("tw-bed-01"), id="demo-bed"),
+    pytest.param(lambda: _cortex_crop(0), id="cortex-crop-0"),
+    pytest.param(lambda: _cortex_crop(1), id="cortex-crop-1"),
+])
+def test_default_flow_is_physiological(volume):
+    # Issue acceptance, with defaults (nothing known about the boundaries):
+    # perfused length >= 70 %; median speed in capillary-sized segments
+    # 0.1-5 mm/s (red cells in rodent cortical capillaries move at about
+    # 0.5-2 mm/s, Kleinfeld et al. 1998, PNAS 95:15741, from memory); 99th
+    # percentile wall shear stress <= 30 Pa (microvascular shear stresses are
+    # of the order of 1-5 Pa in arterioles, Reneman & Hoeks 2008, Med Biol Eng
+    # Comput 46:499; 30 Pa is the acceptance's ceiling for the tail); no
+    # segment faster than 100 mm/s; at most 30 % of bifurcations in the
+    # review queue. Measured on these volumes: 98-100 % perfused, 0.26-0.40
+    # mm/s, 6.6-14.3 Pa, at most 2.3 mm/s, 0-20 % in the queue.
+    mask, spacing = volume()
+    res = pipeline.analyze(mask, spacing=spacing)
+    s, segs = res.summary, res.segments
+    perfused = segs["perfused"].to_numpy(bool)
+    assert s["perfused_length_fraction"] >= 0.7
+    assert 0.1 <= s["velocity_median_mm_s_capillary"] <= 5.0
+    assert s["wss_p99_pa"] <= 30.0
+    assert segs.loc[perfused, "velocity_mm_s"].abs().max() <= 100.0
+    assert s["bifurcations"] > 0
+    assert s["bifurcations_flagged"] <= 0.3 * s["bifurcations"]
