@@ -125,6 +125,13 @@ __all__ = [
 
 UM = 1e-6  # m per µm
 MPA_S = 1e-3  # Pa·s per mPa·s
+# Solves without progress after which the haematocrit iteration stops (not
+# converged): on large capillary beds it oscillates for good (pipeline/
+# rheology.py). 10 stopped a 531-segment bed of 2-8 µm vessels at z 3 four
+# solves before it converged (an Anderson restart after a jump had reset
+# its progress); with 15 it converges, and a 40,000-segment bed that never
+# settles spends 30 solves instead of 20 (measured).
+_STALL_WINDOW = 15
 NL_MIN_PER_M3_S = 1e12 * 60.0  # (nL/min) per (m³/s)
 PA_S_UM3_PER_PA_S_M3 = 1e-18  # (Pa·s/µm³) per (Pa·s/m³)
 
@@ -724,7 +731,7 @@ def solve_flow(
                 solve, u, v, 2.0 * rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=n_nodes,
                 plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
                 min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
-                rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=10,
+                rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=_STALL_WINDOW,
             )
 
         if estimate:

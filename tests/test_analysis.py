@@ -254,3 +254,33 @@ def test_default_flow_is_physiological(volume):
     assert segs.loc[perfused, "velocity_mm_s"].abs().max() <= 100.0
     assert s["bifurcations"] > 0
     assert s["bifurcations_flagged"] <= 0.3 * s["bifurcations"]
+
+
+def _bed(radius_range_um, fraction, size_um, seed):
+    spacing = (3.0, 1.0, 1.0)
+    net = synthetic.capillary_bed(shape_um=(size_um,) * 3, seed=seed, radius_range_um=radius_range_um,
+                                  vessel_fraction=fraction)
+    mask, _ = synthetic.rasterize(net, **synthetic.hostile_artefacts(1.0, spacing=spacing, seed=seed))
+    return mask, spacing
+
+
+@pytest.mark.parametrize("volume", [
+    pytest.param(lambda: _bed((2.0, 8.0), 0.15, 200.0, 0), id="bed-2-8um-0"),
+    pytest.param(lambda: _bed((2.0, 8.0), 0.15, 200.0, 1), id="bed-2-8um-1"),
+    pytest.param(lambda: _bed((1.5, 2.5), 0.06, 150.0, 0), id="bed-capillaries-0"),
+    pytest.param(lambda: _cortex_crop(0), id="cortex-crop-0"),
+])
+def test_default_haematocrit_iteration_converges(volume):
+    # Issue acceptance: viscosity, haematocrit and flow iterated to
+    # convergence, red-cell flux conserved (relative residual <= 1e-6). Beds
+    # cut on every face at z 3 with every artefact, as two-photon stacks of
+    # cortex and tumour are. The first bed stopped four solves short of
+    # convergence when the iteration gave up after 10 solves without
+    # progress (measured: 24 solves to converge with 15).
+    mask, spacing = volume()
+    res = pipeline.analyze(mask, spacing=spacing)
+    flow = res.run["flow"]
+    assert flow["rheology_converged"], flow["rheology_flow_change"]
+    assert flow["rheology_flow_change"] <= res.run["config"]["flow"]["rheology_rtol"]
+    assert flow["red_cell_conservation_residual"] <= 1e-6
+    assert not [w for w in res.run["warnings"] if "did not converge" in w]
