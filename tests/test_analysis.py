@@ -51,6 +51,29 @@ def test_y_branch_one_junction_three_segments(analyse):
     assert np.linalg.norm(j[["z_um", "y_um", "x_um"]].to_numpy(float) - true_j) <= 6.0
 
 
+def test_graph_is_the_tables_networkx_view_built_once(analyse):
+    # The networkx graph of a result is built from its tables on first
+    # access and kept: one node per row of nodes, one edge per segment keyed
+    # by segment_id with that row's values; its cycle rank (networkx's
+    # cycle basis of the simple graph, plus parallel edges and self-loops)
+    # is the loop count of the summary.
+    import networkx as nx
+
+    mask, truth, res = analyse("ladder", lambda: synthetic.ladder(rungs=3))
+    G = res.graph
+    assert G is res.graph
+    assert isinstance(G, nx.MultiGraph)
+    assert G.number_of_nodes() == len(res.nodes) and G.number_of_edges() == len(res.segments)
+    row = res.segments.iloc[0]
+    data = G.edges[int(row["node_from"]), int(row["node_to"]), int(row["segment_id"])]
+    assert data["length_um"] == row["length_um"] and data["radius_um"] == row["radius_um"]
+    simple = nx.Graph(G)
+    simple.remove_edges_from(nx.selfloop_edges(simple))
+    extra = G.number_of_edges() - simple.number_of_edges()
+    # A ladder of three rungs has two loops, the squares between rungs.
+    assert len(nx.cycle_basis(simple)) + extra == res.summary["loops"] == 2
+
+
 def test_helix_length(analyse):
     a, p, n, r = 12.0, 20.0, 3, 3.0
     mask, truth, res = analyse(
@@ -256,8 +279,8 @@ def test_default_flow_is_physiological(volume):
     assert s["bifurcations_flagged"] <= 0.3 * s["bifurcations"]
 
 
-def _bed(radius_range_um, fraction, size_um, seed):
-    spacing = (3.0, 1.0, 1.0)
+def _bed(radius_range_um, fraction, size_um, seed, dz=3.0):
+    spacing = (dz, 1.0, 1.0)
     net = synthetic.capillary_bed(shape_um=(size_um,) * 3, seed=seed, radius_range_um=radius_range_um,
                                   vessel_fraction=fraction)
     mask, _ = synthetic.rasterize(net, **synthetic.hostile_artefacts(1.0, spacing=spacing, seed=seed))
@@ -267,6 +290,8 @@ def _bed(radius_range_um, fraction, size_um, seed):
 @pytest.mark.parametrize("volume", [
     pytest.param(lambda: _bed((2.0, 8.0), 0.15, 200.0, 0), id="bed-2-8um-0"),
     pytest.param(lambda: _bed((2.0, 8.0), 0.15, 200.0, 1), id="bed-2-8um-1"),
+    pytest.param(lambda: _bed((2.0, 8.0), 0.15, 200.0, 1, dz=1.0), id="bed-2-8um-1-z1"),
+    pytest.param(lambda: _bed((2.0, 8.0), 0.15, 200.0, 4, dz=1.0), id="bed-2-8um-4-z1"),
     pytest.param(lambda: _bed((1.5, 2.5), 0.06, 150.0, 0), id="bed-capillaries-0"),
     pytest.param(lambda: _cortex_crop(0), id="cortex-crop-0"),
 ])
@@ -276,7 +301,10 @@ def test_default_haematocrit_iteration_converges(volume):
     # cut on every face at z 3 with every artefact, as two-photon stacks of
     # cortex and tumour are. The first bed stopped four solves short of
     # convergence when the iteration gave up after 10 solves without
-    # progress (measured: 24 solves to converge with 15).
+    # progress (measured: 24 solves to converge with 15). The two at z 1
+    # cycled for good while a node with three outflows took no phase
+    # separation (pipeline/rheology.py, module notes): a segment with next
+    # to no flow reversing there switched its siblings' haematocrits.
     mask, spacing = volume()
     res = pipeline.analyze(mask, spacing=spacing)
     flow = res.run["flow"]

@@ -215,11 +215,39 @@ def test_converging_mixing_is_flux_weighted_mean():
     np.testing.assert_allclose(h, [0.3, 0.5, 0.45], atol=1e-15)
 
 
-def test_more_than_two_outflows_split_in_proportion():
-    # Documented rule: three or more outflows share the inflow's haematocrit.
-    h = propagate_haematocrit([0, 1, 1, 1], [1, 2, 3, 4], [3.0, 0.5, 1.0, 1.5], [10.0, 5.0, 6.0, 7.0],
-                              inflow_haematocrit=0.4)
-    np.testing.assert_allclose(h, 0.4, atol=1e-15)
+def test_more_than_two_outflows_largest_separates_from_the_rest():
+    # Documented rule (module notes): the outflow of largest flow (1.5 of 3)
+    # separates from the other two taken together by the published law, FQB
+    # = 1.5 / 3 and the rest's flow-weighted diameter (0.5 * 5 + 1.0 * 6) /
+    # 1.5 = 5.667 µm as the sibling's; the other two share the rest of the
+    # cells in proportion to flow (one haematocrit). Red cells balance.
+    q = np.array([3.0, 0.5, 1.0, 1.5])
+    d = np.array([10.0, 5.0, 6.0, 7.0])
+    h = propagate_haematocrit([0, 1, 1, 1], [1, 2, 3, 4], q, d, inflow_haematocrit=0.4)
+    fqe = fqe_published(0.5, 10.0, 7.0, (0.5 * 5.0 + 1.0 * 6.0) / 1.5, 0.4)
+    assert h[3] == pytest.approx(0.4 * 3.0 * fqe / 1.5, rel=1e-12)
+    assert h[1] == pytest.approx(h[2], rel=1e-15)
+    assert h[1] == pytest.approx(0.4 * 3.0 * (1 - fqe) / 1.5, rel=1e-12)
+    assert h[1:] @ q[1:] == pytest.approx(0.4 * 3.0, rel=1e-14)
+
+
+@pytest.mark.parametrize("eps", [1e-3, 1e-6])
+def test_an_outflow_with_next_to_no_flow_leaves_the_split_as_it_was(eps):
+    # A third outflow carrying eps of the flow: the two others split as
+    # they would without it (the published law for the pair), to within
+    # the flow it takes; it was a jump from phase separation to none when
+    # such a segment reversed, which kept the iteration from settling.
+    q2 = np.array([1.0, 0.3, 0.7])
+    d2 = np.array([8.0, 5.0, 6.0])
+    pair = propagate_haematocrit([0, 1, 1], [1, 2, 3], q2, d2, inflow_haematocrit=0.45)
+    q3 = np.array([1.0, 0.3 * (1 - eps), 0.7 * (1 - eps), eps])
+    d3 = np.array([8.0, 5.0, 6.0, 4.0])
+    three = propagate_haematocrit([0, 1, 1, 1], [1, 2, 3, 4], q3, d3, inflow_haematocrit=0.45)
+    assert pair[1] < 0.45 < pair[2]  # the pair separates (plasma skimming)
+    # The law is smooth in FQB and the diameters away from its threshold:
+    # a change of order eps in each moves the haematocrits by order eps
+    # (a factor 10 of slack for its slope).
+    np.testing.assert_allclose(three[1:3], pair[1:3], atol=10 * eps)
 
 
 def test_cap_keeps_red_cells():
