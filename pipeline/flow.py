@@ -125,6 +125,8 @@ __all__ = [
 
 UM = 1e-6  # m per µm
 MPA_S = 1e-3  # Pa·s per mPa·s
+NL_MIN_PER_M3_S = 1e12 * 60.0  # (nL/min) per (m³/s)
+PA_S_UM3_PER_PA_S_M3 = 1e-18  # (Pa·s/µm³) per (Pa·s/m³)
 # Solves without progress after which the haematocrit iteration stops (not
 # converged): on large capillary beds it oscillates for good (pipeline/
 # rheology.py). 10 stopped a 531-segment bed of 2-8 µm vessels at z 3 four
@@ -132,8 +134,6 @@ MPA_S = 1e-3  # Pa·s per mPa·s
 # its progress); with 15 it converges, and a 40,000-segment bed that never
 # settles spends 30 solves instead of 20 (measured).
 _STALL_WINDOW = 15
-NL_MIN_PER_M3_S = 1e12 * 60.0  # (nL/min) per (m³/s)
-PA_S_UM3_PER_PA_S_M3 = 1e-18  # (Pa·s/µm³) per (Pa·s/m³)
 
 SEGMENT_COLUMNS = [
     "flow_nl_min",
@@ -758,7 +758,7 @@ def solve_flow(
     warn += info["notes"]
     conductance = info["conductance"]
     pressure = info["pressure"]
-    phi, dp = info["phi"], info["dp"]
+    dp = info["dp"]
     method, iterations, lin_res, n_unknown = info["method"], info["iterations"], info["lin_res"], info["n_unknown"]
     p_out = float("nan") if estimate else cfg["outlet_pressure_pa"]
     mu = mu_mpa_s * MPA_S
