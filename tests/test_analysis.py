@@ -266,7 +266,7 @@ def test_default_flow_is_physiological(volume):
     # Comput 46:499; 30 Pa is the acceptance's ceiling for the tail); no
     # segment faster than 100 mm/s; at most 30 % of bifurcations in the
     # review queue. Measured on these volumes: 98-100 % perfused, 0.26-0.40
-    # mm/s, 6.6-14.3 Pa, at most 2.3 mm/s, 0-20 % in the queue.
+    # mm/s, 6.6-14.3 Pa, at most 1.9 mm/s, 0-20 % in the queue.
     mask, spacing = volume()
     res = pipeline.analyze(mask, spacing=spacing)
     s, segs = res.summary, res.segments
