@@ -128,11 +128,10 @@ MPA_S = 1e-3  # Pa·s per mPa·s
 NL_MIN_PER_M3_S = 1e12 * 60.0  # (nL/min) per (m³/s)
 PA_S_UM3_PER_PA_S_M3 = 1e-18  # (Pa·s/µm³) per (Pa·s/m³)
 # Solves without progress after which the haematocrit iteration stops (not
-# converged): on large capillary beds it oscillates for good (pipeline/
-# rheology.py). 10 stopped a 531-segment bed of 2-8 µm vessels at z 3 four
-# solves before it converged (an Anderson restart after a jump had reset
-# its progress); with 15 it converges, and a 40,000-segment bed that never
-# settles spends 30 solves instead of 20 (measured).
+# converged), for networks where it cycles. 10 stopped a 531-segment bed of
+# 2-8 µm vessels at z 3 four solves before it converged (an Anderson
+# restart after a jump had reset its progress); with 15 it converges
+# (measured).
 _STALL_WINDOW = 15
 
 SEGMENT_COLUMNS = [

@@ -250,6 +250,21 @@ def test_an_outflow_with_next_to_no_flow_leaves_the_split_as_it_was(eps):
     np.testing.assert_allclose(three[1:3], pair[1:3], atol=10 * eps)
 
 
+def test_two_inflows_make_one_parent_of_their_mixed_stream():
+    # Two inflows (1.0 at 6 µm, 3.0 at 10 µm, haematocrits 0.3 and 0.5) meet
+    # and two outflows leave (1.6 at 7 µm, 2.4 at 8 µm). Documented rule
+    # (module notes): the parent is the mixed stream, haematocrit (0.3 * 1 +
+    # 0.5 * 3) / 4 = 0.45 by red-cell balance and diameter the flow-weighted
+    # (6 * 1 + 10 * 3) / 4 = 9 µm; the split is the published law's.
+    h_node = np.array([0.3, 0.5, 0.0, 0.0, 0.0])
+    q = np.array([1.0, 3.0, 1.6, 2.4])
+    d = np.array([6.0, 10.0, 7.0, 8.0])
+    h = propagate_haematocrit([0, 1, 2, 2], [2, 2, 3, 4], q, d, inflow_haematocrit=h_node)
+    fqe = fqe_published(0.4, 9.0, 7.0, 8.0, 0.45)
+    assert h[2] == pytest.approx(0.45 * 4.0 * fqe / 1.6, rel=1e-12)
+    assert h[3] == pytest.approx(0.45 * 4.0 * (1 - fqe) / 2.4, rel=1e-12)
+
+
 def test_cap_keeps_red_cells():
     # H_F 0.9, FQB 0.7, D_F 5 µm, daughters 3 and 6 µm: the formula gives
     # FQE ≈ 0.76, H_a = 0.9 * 0.76 / 0.7 ≈ 0.98 above the 0.95 cap; the cap holds
