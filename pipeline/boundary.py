@@ -86,13 +86,13 @@ extension of a fifth of its own segment's conductance, rather than held half
 way, which made each cut capillary a source or sink as strong as a trunk. A
 piece without two trunk classes of its own, typically a tree the volume cut
 off from the mesh, takes the classes of the pieces that have them, and keeps
-the orientation they give (a cut-off tree's own objective cannot tell). Otherwise the start is flow spreading from the
-piece's widest open end. Without any known condition the problem is
-symmetric under reversing all flows of a piece, so pieces with nothing known
-are also solved from the reversed start and the other guess, and each keeps
-the converged solution whose objective is smallest when the targets follow
-the set point of Pries et al. (1998), which prefers high shear at high
-pressure.
+the orientation they give (a cut-off tree's own objective cannot tell).
+Otherwise the start is flow spreading from the piece's widest open end.
+Without any known condition the problem is symmetric under reversing all
+flows of a piece, so pieces with nothing known are also solved from the
+reversed start and the other guess, and each keeps the converged solution
+whose objective is smallest when the targets follow the set point of Pries et
+al. (1998), which prefers high shear at high pressure.
 
 What a crop alone can tell. A pure tree cut out of a network carries no
 mark of whether it feeds or drains, and a single capillary crossing the

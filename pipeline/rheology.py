@@ -438,6 +438,26 @@ def phase_separation(
 # ---------------------------------------------------------------------------
 
 @numba.njit(cache=True)
+def _capped_split(cells, fqe, q_a, q_b, h_max):
+    """Red-cell flux into daughter a (share ``fqe``) and into b (the rest), each capped at ``h_max``.
+
+    A daughter's excess over the cap goes to its sibling, which stays below
+    the cap because the parent is; both are capped only where the node's
+    blood flow does not balance (then cells are lost, and the residual
+    shows it).
+    """
+    ca = fqe * cells
+    cb = cells - ca
+    if ca > h_max * q_a:
+        ca = h_max * q_a
+        cb = cells - ca
+    elif cb > h_max * q_b:
+        cb = h_max * q_b
+        ca = cells - cb
+    return ca, cb
+
+
+@numba.njit(cache=True)
 def _propagate(n_nodes, src, dst, aq, diameter, out_ptr, out_seg, in_ptr, in_seg,
                boundary, h_in, version, h_max, h):
     """Fill ``h`` (segments in flow order; NaN stays where no order reaches).
@@ -491,18 +511,7 @@ def _propagate(n_nodes, src, dst, aq, diameter, out_ptr, out_seg, in_ptr, in_seg
             sb = out_seg[k0 + 1]
             h_parent = min(cells / q_in, h_max)
             fqe = _fqe(aq[sa] / q_out, d_parent, diameter[sa], diameter[sb], h_parent, version)
-            ca = fqe * cells
-            cb = cells - ca
-            # Cap a daughter at h_max; its excess goes to the sibling, which
-            # stays below the cap because the parent is.
-            if ca > h_max * aq[sa]:
-                ca = h_max * aq[sa]
-                cb = cells - ca
-            elif cb > h_max * aq[sb]:
-                cb = h_max * aq[sb]
-                ca = cells - cb
-            # Both capped only where the node's blood flow does not balance
-            # (then cells are lost, and the residual shows it).
+            ca, cb = _capped_split(cells, fqe, aq[sa], aq[sb], h_max)
             h[sa] = min(ca / aq[sa], h_max)
             h[sb] = min(cb / aq[sb], h_max)
         elif n_out > 2 and q_big > 0.0:
@@ -522,14 +531,7 @@ def _propagate(n_nodes, src, dst, aq, diameter, out_ptr, out_seg, in_ptr, in_seg
             d_rest = d_rest / q_rest if q_rest > 0.0 else diameter[sa]
             h_parent = min(cells / q_in, h_max)
             fqe = _fqe(aq[sa] / q_out, d_parent, diameter[sa], d_rest, h_parent, version)
-            ca = fqe * cells
-            cb = cells - ca
-            if ca > h_max * aq[sa]:
-                ca = h_max * aq[sa]
-                cb = cells - ca
-            elif q_rest > 0.0 and cb > h_max * q_rest:
-                cb = h_max * q_rest
-                ca = cells - cb
+            ca, cb = _capped_split(cells, fqe, aq[sa], q_rest, h_max)
             h[sa] = min(ca / aq[sa], h_max)
             hr = min(cb / q_rest, h_max) if q_rest > 0.0 else 0.0
             for j in range(k0, k1):
