@@ -117,6 +117,7 @@ from __future__ import annotations
 import math
 import warnings as _warnings
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -124,6 +125,7 @@ from scipy import sparse
 from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
+from ._parallel import threads
 from .errors import SolverError
 
 __all__ = ["Estimate", "estimate_pressures", "set_point_wss_pa", "PA_PER_MMHG"]
@@ -708,13 +710,26 @@ def estimate_pressures(
     has = np.zeros(n_piece, dtype=bool)
     has[seg_piece[s_trunk != 0]] = True
     s_init = np.where(has[seg_piece], s_trunk, s_far)
-    x, obj, its, flips, t0 = run(s_init)
     free = ~piece_known
-    reversed_pieces = 0
+    starts = []
     if free.any():
         starts = [-s_init]
         if (has & free).any():
             starts += [s_far, -s_far]
+    # The starts are independent solves of one factorisation, whose
+    # triangular solves release the GIL: they run side by side, and are
+    # compared below in a fixed order.
+    signs = [s_init] + [np.where(free[seg_piece], st, s_init)
+                        for k, st in enumerate(starts) if k > 0 or pressure_dependent_target]
+    workers = min(len(signs), threads())
+    if workers > 1:
+        with ThreadPoolExecutor(workers) as pool:
+            solved = list(pool.map(run, signs))
+    else:
+        solved = [run(sg) for sg in signs]
+    x, obj, its, flips, t0 = solved.pop(0)
+    reversed_pieces = 0
+    if starts:
         for k, st in enumerate(starts):
             if k == 0 and not pressure_dependent_target:
                 # With constant targets a piece with nothing known is
@@ -725,7 +740,7 @@ def estimate_pressures(
                 choice = np.sign(t2) * set_point_wss_pa(p0 * (1.0 + 0.5 * (x2[a] + x2[b]))) / tau_p0
                 obj2 = objective_parts(x2, choice)
             else:
-                x2, obj2, it2, fl2, t2 = run(np.where(free[seg_piece], st, s_init))
+                x2, obj2, it2, fl2, t2 = solved.pop(0)
             # A piece classed by the volume's trunk widths keeps that
             # orientation: its own objective cannot tell a cut-off tree's
             # direction (module notes), the widths of the other pieces can.

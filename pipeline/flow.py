@@ -91,6 +91,7 @@ from __future__ import annotations
 import math
 import warnings as _warnings
 from collections.abc import Iterable, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -101,6 +102,7 @@ from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
 from ._checks import segment_end_rows
+from ._parallel import threads
 from .boundary import estimate_pressures
 from .errors import InputError, SolverError
 from .rheology import (  # the viscosity laws live with the other blood properties
@@ -928,16 +930,37 @@ def _ensemble(cfg, segments, q, perfused, core, radius_um, rh, length_m, mu_mpa_
     mu = mu_mpa_s * MPA_S
     members = np.empty((k, n_seg))
     est = info.get("estimate")
-    for i in range(k):
+    # Every member's random numbers are drawn first, in member order, so the
+    # members are the same however they are run.
+    draws = []
+    for _ in range(k):
         f = np.exp(rng.normal(0.0, rel))
-        r_k, rh_k = radius_um * f, rh * f
-        cond_k = math.pi * (rh_k * UM) ** 4 / (8.0 * mu * length_m)
+        scale = None
         if estimate:
             scale = np.exp(rng.normal(0.0, cfg["target_spread"])) * np.exp(
                 rng.normal(0.0, 0.5 * cfg["target_spread"], int(core.sum())))
-            p_k = est.resolve(cond_k[core], r_k[core] * UM, mu[core], scale)
-            members[i] = np.where(core, cond_k * (np.nan_to_num(p_k[u]) - np.nan_to_num(p_k[v])), 0.0)
+        draws.append((f, scale))
+
+    def member(i):
+        f, scale = draws[i]
+        r_k, rh_k = radius_um * f, rh * f
+        cond_k = math.pi * (rh_k * UM) ** 4 / (8.0 * mu * length_m)
+        p_k = est.resolve(cond_k[core], r_k[core] * UM, mu[core], scale)
+        members[i] = np.where(core, cond_k * (np.nan_to_num(p_k[u]) - np.nan_to_num(p_k[v])), 0.0)
+
+    if estimate:
+        # Members with the estimate share its factorisation read-only and
+        # spend most of their time in its triangular solves, which release
+        # the GIL: they run side by side on the cores there are.
+        workers = min(k, threads())
+        if workers > 1:
+            with ThreadPoolExecutor(workers) as pool:
+                list(pool.map(member, range(k)))
         else:
+            for i in range(k):
+                member(i)
+    else:
+        for i, (f, _) in enumerate(draws):
             members[i] = solve_once(mu_mpa_s / f**4)  # the same conductances as radii r f
     members *= NL_MIN_PER_M3_S
     p05 = np.where(perfused, np.percentile(members, 5, axis=0), np.nan)

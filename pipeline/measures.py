@@ -58,6 +58,8 @@ import math
 import numba
 import numpy as np
 import pandas as pd
+from scipy import sparse
+from scipy.sparse import csgraph
 
 from ._distance import tissue_distance_quantiles, volume_distance
 from .graph import _seg_radius
@@ -441,12 +443,14 @@ def summarize(segments, nodes, *, cleaned, spacing, planar, original_shape, tiss
     n_nodes = len(nodes)
     n_segs = len(segments)
     if n_segs:
-        import networkx as nx
-
-        gg = nx.MultiGraph()
-        gg.add_nodes_from(nodes["node_id"])
-        gg.add_edges_from(zip(segments["node_from"], segments["node_to"]))
-        n_comp = nx.number_connected_components(gg)
+        # Pieces of the node graph (isolated nodes count as pieces), from
+        # node_from/node_to positions in the node table.
+        ids = nodes["node_id"].to_numpy()
+        order = np.argsort(ids, kind="stable")
+        a = order[np.searchsorted(ids, segments["node_from"].to_numpy(), sorter=order)]
+        b = order[np.searchsorted(ids, segments["node_to"].to_numpy(), sorter=order)]
+        adj = sparse.coo_matrix((np.ones(n_segs, np.int8), (a, b)), shape=(n_nodes, n_nodes))
+        n_comp = int(csgraph.connected_components(adj, directed=False)[0])
     else:
         n_comp = 0
     r = segments["radius_um"].to_numpy()
