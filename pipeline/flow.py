@@ -733,6 +733,9 @@ def solve_flow(
                 plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
                 min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
                 rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=_STALL_WINDOW,
+                # the flow of the perfusion floor in each segment (parks
+                # stagnant segments that keep reversing; pipeline/rheology.py)
+                stagnant_flow=cfg["perfused_min_velocity_mm_s"] * 1e-3 * math.pi * (radius_um * UM) ** 2,
             )
 
         if estimate:

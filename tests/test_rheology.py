@@ -485,3 +485,69 @@ def test_an_oscillating_iteration_stops_early_when_asked():
     assert "no progress" in res.message
     plain = iterate_rheology(alternating, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, max_iterations=8)
     assert plain.iterations == 8 and "no progress" not in plain.message
+
+
+def _bridge(eps):
+    """A Wheatstone-like bridge whose cross segment carries +-eps, reversing at every solve.
+
+    Inlet A (node 0) feeds B (1) and C (2) with 0.5 each; the bridge B-C
+    (segment 2) carries eps from B at odd solves and from C at even ones; B
+    drains to node 3, C to nodes 4 and 5. Flows balance at every node. From
+    B the bridge is the small side of a two-way split (plasma skimming gives
+    it no cells); from C it is one of three outflows and shares the others'
+    haematocrit, so its own haematocrit swings at every solve, as a stagnant
+    vessel's did on a bed cut on every face (pipeline/rheology.py, module
+    notes).
+    """
+    u = np.array([0, 0, 1, 1, 2, 2])
+    v = np.array([1, 2, 2, 3, 4, 5])
+    d = np.array([6.0, 6.0, 10.0, 6.0, 6.0, 6.0])
+    calls = []
+
+    def solve(mu):
+        calls.append(1)
+        s = 1.0 if len(calls) % 2 else -1.0
+        return np.array([0.5, 0.5, eps * s, 0.5 - eps * s, 0.3 + eps * s, 0.2])
+
+    return u, v, d, solve
+
+
+def test_a_stagnant_segment_that_keeps_reversing_is_parked():
+    eps = 1e-7
+    u, v, d, solve = _bridge(eps)
+    stuck = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=6, rtol=1e-4, max_iterations=40,
+                             stall_window=3)
+    assert not stuck.converged and "no progress" in stuck.message
+    u, v, d, solve = _bridge(eps)
+    res = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=6, rtol=1e-4, max_iterations=40,
+                           stall_window=3, stagnant_flow=10 * eps)
+    assert res.converged
+    # The bridge carries no red cells; every other segment has a haematocrit
+    # and the red cells balance at every node (the check's own node balance).
+    assert np.isnan(res.haematocrit[2]) and np.isfinite(np.delete(res.haematocrit, 2)).all()
+    q = np.where(np.isnan(res.haematocrit), 0.0, res.flow)
+    cells = np.where(np.isnan(res.haematocrit), 0.0, res.haematocrit) * q
+    net = np.bincount(u, weights=cells, minlength=6) - np.bincount(v, weights=cells, minlength=6)
+    assert np.abs(net[1:3]).max() <= 1e-6 * cells.max()
+    assert res.red_cell_residual[-1] <= 1e-6
+
+
+@pytest.mark.parametrize("seed", SEEDS)
+def test_parking_leaves_a_converging_iteration_as_it_was(seed):
+    # Parking is the fallback of an iteration that stalls: with a floor above
+    # every flow, a lattice that converges on its own gives the same numbers
+    # bit for bit (flows then stay proportional to the pressure difference).
+    u, v, d, length, n_nodes, fixed, p_fixed = net = lattice(seed)
+    solve = make_solve(*net)
+    plain = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, stall_window=15)
+    floor = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, stall_window=15,
+                             stagnant_flow=1e30)
+    assert plain.converged and floor.converged
+    np.testing.assert_array_equal(floor.flow, plain.flow)
+    np.testing.assert_array_equal(floor.haematocrit, plain.haematocrit)
+
+
+def test_negative_stagnant_flow_is_refused():
+    with pytest.raises(InputError, match="stagnant_flow"):
+        iterate_rheology(lambda mu: np.ones(2), [0, 1], [1, 2], [5.0, 5.0], inflow_haematocrit=H_SYS,
+                         stagnant_flow=-1.0)
