@@ -591,7 +591,7 @@ def _stride_points(P, off, R0, smax):
 
     The first lies half a stride from the segment's start, so its slab
     reaches back over the end; a segment shorter than that gets its middle
-    point. The ends themselves are left out: a segment's end is a junction
+    point, one of one or two points its first. The ends themselves are left out: a segment's end is a junction
     (where the slab holds the other branches too, and each of the three or
     more segments meeting there fitted the same wall again) or a tip or cut
     end, where the slab runs out of wall.
