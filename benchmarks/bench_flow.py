@@ -22,9 +22,10 @@ Routes, each in its own subprocess (wall time and peak memory are its own):
   estimate``, Fry et al. 2012; nothing known), the default boundary
   conditions. Target: at most 3x the ``vesselflow`` route at one million
   segments.
-- ``reference``: the textbook route on the same arrays, the full node
-  Laplacian with Dirichlet rows replaced by identity rows and nodes without
-  any pressure condition pinned, solved with ``scipy.sparse.linalg.spsolve``
+- ``reference``: the textbook route on the same arrays and boundary
+  conditions (inlets at the inlet pressure, every other cut or blind end at
+  the outlet pressure), the full node Laplacian with Dirichlet rows replaced
+  by identity rows and nodes without any pressure condition pinned, solved with ``scipy.sparse.linalg.spsolve``
   (SuperLU, default ordering). It is stopped after ``--timeout`` seconds
   and runs under an address-space limit of ``--ref-memory-gb`` (its fill-in
   grows fast; failing is better than swapping a shared machine).
@@ -94,10 +95,15 @@ else:
     kind = data["kind"].astype(str)
     fixed = np.zeros(n, bool)
     fixed[data["inlets"]] = True
-    fixed |= kind == "border"
+    # every other open end, cut or blind, is an outlet, as in solve_flow's
+    # fixed-pressure mode with its default blind_ends: open (the pressures
+    # compared below differed by the whole drop at blind ends while the
+    # reference sealed them)
+    ends = (kind == "border") | (kind == "blind")
+    fixed |= ends
     p_in, p_out = 7999.32, 2666.44
     rhs = np.zeros(n)
-    rhs[kind == "border"] = p_out
+    rhs[ends] = p_out
     rhs[data["inlets"]] = p_in
     # Pin nodes of pieces without a pressure condition (else singular).
     from scipy.sparse.csgraph import connected_components
