@@ -762,6 +762,9 @@ def solve_flow(
             rheo = rheology(solve_once)
         if not rheo.converged:
             warn.append(f"flow: haematocrit and viscosity did not converge ({rheo.message})")
+        if rheo.n_parked:
+            warn.append(f"flow: {rheo.n_parked} stagnant segment(s) kept reversing in the haematocrit iteration "
+                        "and are taken to carry no red cells (haematocrit empty)")
         mu_mpa_s = rheo.viscosity_mpa_s
         haematocrit = np.where(core, rheo.haematocrit, np.nan)
         q = rheo.flow
@@ -890,6 +893,7 @@ def solve_flow(
         "rheology_flow_change": _last(rheo.flow_change) if rheo is not None else None,
         "rheology_haematocrit_change": _last(rheo.haematocrit_change) if rheo is not None else None,
         "red_cell_conservation_residual": _last(rheo.red_cell_residual) if rheo is not None else None,
+        "rheology_parked_segments": rheo.n_parked if rheo is not None else None,
     }
     stats = class_statistics(
         2.0 * radius_um, out["velocity_mm_s"].to_numpy(), out["wss_pa"].to_numpy(), perfused, length_um,

@@ -833,6 +833,9 @@ class RheologyResult:
         Flowing segments without a haematocrit in the last propagation
         (downstream of a directed flow cycle); 0 for flows from one pressure
         field.
+    n_parked : int
+        Stagnant segments that kept reversing and were taken to carry no red
+        cells in the last propagation (module notes; haematocrit NaN).
     """
 
     flow: np.ndarray
@@ -845,6 +848,7 @@ class RheologyResult:
     haematocrit_change: list[float] = field(default_factory=list)
     red_cell_residual: list[float] = field(default_factory=list)
     n_unresolved: int = 0
+    n_parked: int = 0
 
 
 def vivo_viscosity_mpa_s(diameter_um, haematocrit, *, plasma_viscosity_mpa_s: float,
@@ -1114,5 +1118,5 @@ def iterate_rheology(
     return RheologyResult(
         flow=q, haematocrit=h_new, viscosity_mpa_s=mu, iterations=it, converged=converged,
         message=message, flow_change=history_q, haematocrit_change=history_h,
-        red_cell_residual=history_c, n_unresolved=n_unresolved,
+        red_cell_residual=history_c, n_unresolved=n_unresolved, n_parked=int(parked.sum()),
     )

@@ -521,7 +521,7 @@ def test_a_stagnant_segment_that_keeps_reversing_is_parked():
     u, v, d, solve = _bridge(eps)
     res = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=6, rtol=1e-4, max_iterations=40,
                            stall_window=3, stagnant_flow=10 * eps)
-    assert res.converged
+    assert res.converged and res.n_parked == 1 and stuck.n_parked == 0
     # The bridge carries no red cells; every other segment has a haematocrit
     # and the red cells balance at every node (the check's own node balance).
     assert np.isnan(res.haematocrit[2]) and np.isfinite(np.delete(res.haematocrit, 2)).all()
@@ -542,7 +542,7 @@ def test_parking_leaves_a_converging_iteration_as_it_was(seed):
     plain = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, stall_window=15)
     floor = iterate_rheology(solve, u, v, d, inflow_haematocrit=H_SYS, n_nodes=n_nodes, stall_window=15,
                              stagnant_flow=1e30)
-    assert plain.converged and floor.converged
+    assert plain.converged and floor.converged and floor.n_parked == 0
     np.testing.assert_array_equal(floor.flow, plain.flow)
     np.testing.assert_array_equal(floor.haematocrit, plain.haematocrit)
 
