@@ -1,4 +1,4 @@
-"""Thread budget of the compiled steps (distance transforms, thinning).
+"""Thread budget of the compiled steps (distance transforms, thinning) and of solves run side by side.
 
 One analysis uses every core it may run on by default. A batch running
 several samples side by side gives each sample its share instead, so that
@@ -13,7 +13,7 @@ from contextlib import contextmanager
 
 import numba
 
-__all__ = ["threads", "limit_threads", "available_cores"]
+__all__ = ["threads", "limit_threads", "available_cores", "thread_map"]
 
 _budget: int | None = None
 
@@ -48,3 +48,20 @@ def limit_threads(n):
     finally:
         _budget = previous_budget
         numba.set_num_threads(previous_numba)
+
+
+def thread_map(fn, items) -> list:
+    """``[fn(x) for x in items]``, run on up to :func:`threads` threads, results in order.
+
+    For work that spends its time outside the GIL (SuperLU's triangular
+    solves in the flow step): each call must not touch shared mutable state,
+    so the results do not depend on the number of threads.
+    """
+    items = list(items)
+    workers = min(len(items), threads())
+    if workers <= 1:
+        return [fn(x) for x in items]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(workers) as pool:
+        return list(pool.map(fn, items))

@@ -127,7 +127,6 @@ from __future__ import annotations
 import math
 import warnings as _warnings
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -135,7 +134,7 @@ from scipy import sparse
 from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
-from ._parallel import threads
+from ._parallel import thread_map
 from .errors import SolverError
 
 __all__ = ["Estimate", "estimate_pressures", "set_point_wss_pa", "PA_PER_MMHG"]
@@ -731,12 +730,7 @@ def estimate_pressures(
     # compared below in a fixed order.
     signs = [s_init] + [np.where(free[seg_piece], st, s_init)
                         for k, st in enumerate(starts) if k > 0 or pressure_dependent_target]
-    workers = min(len(signs), threads())
-    if workers > 1:
-        with ThreadPoolExecutor(workers) as pool:
-            solved = list(pool.map(run, signs))
-    else:
-        solved = [run(sg) for sg in signs]
+    solved = thread_map(run, signs)
     x, obj, its, flips, t0 = solved.pop(0)
     reversed_pieces = 0
     if starts:

@@ -91,7 +91,6 @@ from __future__ import annotations
 import math
 import warnings as _warnings
 from collections.abc import Iterable, Mapping
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -102,7 +101,7 @@ from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
 from ._checks import segment_end_rows
-from ._parallel import threads
+from ._parallel import thread_map
 from .boundary import estimate_pressures
 from .errors import InputError, SolverError
 from .rheology import (  # the viscosity laws live with the other blood properties
@@ -968,13 +967,7 @@ def _ensemble(cfg, segments, q, perfused, core, radius_um, rh, length_m, mu_mpa_
         # Members with the estimate share its factorisation read-only and
         # spend most of their time in its triangular solves, which release
         # the GIL: they run side by side on the cores there are.
-        workers = min(k, threads())
-        if workers > 1:
-            with ThreadPoolExecutor(workers) as pool:
-                list(pool.map(member, range(k)))
-        else:
-            for i in range(k):
-                member(i)
+        thread_map(member, range(k))
     else:
         for i, (f, _) in enumerate(draws):
             members[i] = solve_once(mu_mpa_s / f**4)  # the same conductances as radii r f

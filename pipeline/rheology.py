@@ -933,16 +933,16 @@ def iterate_rheology(
         >= 0; 0 gives the plain damped iteration.
     version, max_haematocrit, zero_flow_rtol : keyword-only
         As for :func:`propagate_haematocrit`.
-    stagnant_flow : float or (S,) array_like or None, keyword-only
-        Flow (the unit of ``solve``'s flows) below which a segment that has
-        reversed twice is parked, carrying no red cells, once the iteration
-        stops making progress (module notes); None: never.
     stall_window : int, keyword-only
         Stop early, not converged, once ``2 * stall_window`` solves are done
         and no iteration of the last ``stall_window`` came below half of the
         smallest change before them (an oscillating iteration); the change
         of an iteration is the larger of its relative flow and haematocrit
         changes, the two the tolerance applies to. 0 never stops early.
+    stagnant_flow : float or (S,) array_like or None, keyword-only
+        Flow (the unit of ``solve``'s flows) below which a segment that has
+        reversed twice is parked, carrying no red cells, once the iteration
+        stops making progress (module notes); None: never.
 
     Returns
     -------
