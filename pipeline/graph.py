@@ -1048,25 +1048,31 @@ def _refine_junctions(g, inc, *, near_radii=0.5, far_radii=3.0, far_straight_rad
 @numba.njit(cache=True)
 def _axis_line(path, lo, hi):
     """Centroid, unit direction and mean squared distance from the line of the path points at arc ``lo..hi``."""
-    sel = np.zeros(len(path), np.bool_)
+    # The points in the window are a run from the start: stop at the first
+    # beyond ``hi`` (paths run hundreds of points, windows a few radii).
     arc = 0.0
+    first = -1
+    last = -1
     for i in range(len(path)):
         if i > 0:
             arc += np.sqrt(((path[i] - path[i - 1]) ** 2).sum())
-        sel[i] = lo <= arc <= hi
-    m = sel.sum()
+        if arc > hi:
+            break
+        if arc >= lo:
+            if first < 0:
+                first = i
+            last = i
     c = np.zeros(3)
-    if m < 3:
+    if first < 0 or last - first + 1 < 3:
         return c, c, -1.0
-    for i in range(len(path)):
-        if sel[i]:
-            c += path[i]
+    m = last - first + 1
+    for i in range(first, last + 1):
+        c += path[i]
     c /= m
     C = np.zeros((3, 3))
-    for i in range(len(path)):
-        if sel[i]:
-            q = path[i] - c
-            C += np.outer(q, q)
+    for i in range(first, last + 1):
+        q = path[i] - c
+        C += np.outer(q, q)
     vals, vecs = np.linalg.eigh(C)
     return c, vecs[:, 2].copy(), (vals[0] + vals[1]) / m
 
@@ -1334,19 +1340,26 @@ def _small_loops_nb(uv, seg_r, slen, node_r, inc_ptr, inc_seg, cand, factor, web
 def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
     """Merge junction pairs joined by a segment short against their radii; returns how many."""
     cands = []
-    node_r = g.node_radius_um.tolist()  # plain floats: this loop visits every segment
-    for s, (u, v) in g.seg_nodes.items():
-        if u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
-            continue
+    node_r = g.node_radius_um.tolist()  # plain floats: this loop visits many segments
+    if not g.seg_nodes:
+        return 0
+    # Segments between two junctions, found on arrays (this runs every
+    # pruning round over every segment).
+    deg = np.array([len(inc.get(n, ())) for n in range(len(node_r))], dtype=np.int64)
+    ids = np.fromiter(g.seg_nodes.keys(), dtype=np.int64, count=len(g.seg_nodes))
+    uv = np.array(list(g.seg_nodes.values()), dtype=np.int64).reshape(-1, 2)
+    keep = (uv[:, 0] != uv[:, 1]) & (deg[uv[:, 0]] >= 3) & (deg[uv[:, 1]] >= 3)
+    for s, u, v in np.column_stack([ids, uv])[keep].tolist():
         # Against the larger of the junctions' inscribed radii and the
         # joining segment's own (wall) radius: the distance map reads low at
         # a crossing on rough or jittered walls, and how low depends on the
         # grid (in-plane or 3-D distance), while a segment shorter than its
         # own radius between two junctions lies inside the crossing.
-        r = max(node_r[u], node_r[v], _seg_radius(g, s))
-        limit = max(factor * r, floor)
-        if seg_len(s) < limit:
-            cands.append((seg_len(s), s))
+        # The same test as against max(factor * r, floor) with r the largest
+        # of the three radii, the segment's own (a lookup) only when needed.
+        length = seg_len(s)
+        if length < max(factor * max(node_r[u], node_r[v]), floor) or length < factor * _seg_radius(g, s):
+            cands.append((length, s))
     return _merge_pairs(g, inc, remove_segment, cands)
 
 
@@ -1397,10 +1410,12 @@ def _merge_crossings(g, inc, seg_len, remove_segment, factor):
     node_r = g.node_radius_um.tolist()
     cands = []
     for s, (u, v) in g.seg_nodes.items():
-        if u == v or len(inc[u]) < 3 or len(inc[v]) < 3 or len(set(inc[u]) & set(inc[v])) > 1:
+        if u == v or len(inc[u]) < 3 or len(inc[v]) < 3:
             continue
         r_s = _seg_radius(g, s)
         if seg_len(s) >= factor * (max(node_r[u], r_s) + max(node_r[v], r_s)):
+            continue
+        if len(set(inc[u]) & set(inc[v])) > 1:
             continue
         # thinner than a branch at either end: a web or vessel of its own
         if r_s < max(min(_seg_radius(g, t) for t in inc[u] if t != s),
@@ -1413,17 +1428,29 @@ def _merge_crossings(g, inc, seg_len, remove_segment, factor):
 def _remove_wall_loops(g, inc, seg_len, remove_segment, factor, floor):
     """Remove self-loops and parallel segments short against the local radius; returns how many."""
     doomed = set()
+    node_r = g.node_radius_um.tolist()
+    if not g.seg_nodes:
+        return 0
+    # Self-loops and node pairs joined more than once, found on arrays (this
+    # runs every pruning round over every segment).
+    ids = np.fromiter(g.seg_nodes.keys(), dtype=np.int64, count=len(g.seg_nodes))
+    uv = np.array(list(g.seg_nodes.values()), dtype=np.int64).reshape(-1, 2)
+    lo, hi = uv.min(axis=1), uv.max(axis=1)
+    for k in np.flatnonzero(lo == hi).tolist():
+        s, u = int(ids[k]), int(lo[k])
+        if seg_len(s) < max(factor * node_r[u], floor):
+            doomed.add(s)
     pairs = defaultdict(list)
-    node_r = g.node_radius_um.tolist()  # plain floats: this loop visits every segment
-    for s, (u, v) in g.seg_nodes.items():
-        if u == v:
-            if seg_len(s) < max(factor * node_r[u], floor):
-                doomed.add(s)
-        else:
-            pairs[(u, v) if u < v else (v, u)].append(s)
+    two = np.flatnonzero(lo != hi)
+    key = lo[two] * (int(hi.max()) + 1) + hi[two]
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    dup = np.zeros(len(ks), dtype=bool)
+    dup[1:] = ks[1:] == ks[:-1]
+    dup[:-1] |= dup[1:]
+    for k in two[order[dup]].tolist():
+        pairs[(int(lo[k]), int(hi[k]))].append(int(ids[k]))
     for (u, v), segs in pairs.items():
-        if len(segs) < 2:
-            continue
         local = max(factor * max(node_r[u], node_r[v]), floor)
         if min(seg_len(s) for s in segs) >= local:
             continue  # every vessel of the loop is long: a real loop
