@@ -2,11 +2,32 @@
 
 The public API is :func:`analyze` (array in, tables out) and the step
 modules it runs, one per step, each usable on its own.
+
+Importing the package is cheap: ``analyze`` and ``Analysis`` load the
+analysis (numpy, scipy, pandas, numba...) on first use, and the step modules
+load when imported (``from pipeline import synthetic``). Nothing here
+changes the process environment.
 """
 
-from .analysis import Analysis, analyze
 from .errors import ConfigError, InputError, SolverError, VesselflowError
 
 __version__ = "0.1.0"
 
 __all__ = ["analyze", "Analysis", "VesselflowError", "InputError", "ConfigError", "SolverError", "__version__"]
+
+_LAZY = {"analyze", "Analysis"}
+
+
+def __getattr__(name):
+    # PEP 562: the analysis and its libraries load on first use
+    if name in _LAZY:
+        from . import analysis
+
+        value = getattr(analysis, name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'pipeline' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | _LAZY)

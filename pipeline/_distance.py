@@ -35,7 +35,7 @@ import numba
 from numba import prange
 import numpy as np
 
-from ._parallel import threads as _threads
+from ._parallel import start_threads, threads as _threads
 
 __all__ = ["two_label_distance", "volume_distance", "tissue_distance_quantiles", "tissue_quantiles"]
 
@@ -98,6 +98,7 @@ def two_label_distance(mask, *, spacing, threads=None):
     if out.size == 0:
         return out.reshape(shape)
     dz2, dy2, dx2 = (s * s for s in spacing)
+    start_threads()
     previous = numba.get_num_threads()
     n = _threads() if threads is None else max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS))
     numba.set_num_threads(n)

@@ -86,6 +86,8 @@ import numba
 import numpy as np
 from numba.cpython.unsafe.numbers import trailing_zeros
 
+from ._parallel import start_threads
+
 __all__ = ["WallRadii", "wall_radii", "segment_tangents"]
 
 # Search reach of the wall fits, in distance-map radii (plus two voxels): the
@@ -699,6 +701,7 @@ def wall_radii(mask, *, spacing, offset, points_um, offsets, radii_um, planar=Fa
     # between loses nothing the slab resolves; segment ends are not fitted
     # (module notes).
     todo = _stride_points(P, off, R0, float(sp.max()))
+    start_threads()
     nchunks = max(1, min(len(todo), 64 * numba.get_num_threads()))
     faces = _wall_faces(np.ascontiguousarray(mask, dtype=bool))
     out_mean = R0.copy()

@@ -71,22 +71,12 @@ the number of border voxels.
 from __future__ import annotations
 
 import math
-import os
 
-# Idle OpenMP threads (numba's usual threading layer) spin by default. On a
-# machine where other processes use the cores, a spinning thread takes the
-# time slice that another of ours needs at the next barrier, and each of the
-# few hundred parallel steps of a thinning then costs a time slice: measured
-# on a busy 2-core machine, a 128^3 volume took 0.63 s on two threads against
-# 0.06 s on one, and 0.05 s with sleeping idle threads, which cost nothing
-# measurable on an idle machine. So idle threads sleep unless the environment
-# says otherwise. This acts only if set before the OpenMP runtime loads, i.e.
-# before the first parallel numba call of the process.
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+import numba
+import numpy as np
+from numba import prange
 
-import numba  # noqa: E402
-import numpy as np  # noqa: E402
-from numba import prange  # noqa: E402
+from ._parallel import start_threads
 
 __all__ = ["thin"]
 
@@ -788,6 +778,7 @@ def thin(mask, *, threads=None, edge_pad=None):
             raise ValueError(f"threads must be in [1, {numba.config.NUMBA_NUM_THREADS}], got {threads}")
     if mask.size == 0:
         return np.zeros(mask.shape, bool)
+    start_threads()
     previous = numba.get_num_threads()
     if threads is not None:
         numba.set_num_threads(threads)
