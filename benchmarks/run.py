@@ -20,6 +20,7 @@ HERE = Path(__file__).resolve().parent
 # (script, full-size arguments, quick arguments)
 BENCHES = [
     ("bench_analyze.py", ["--size", "512"], ["--size", "192"]),
+    ("bench_command.py", ["--size", "512"], ["--size", "192"]),
     ("bench_thinning.py", [], ["--quick"]),
     ("bench_flow.py", ["--segments", "1000000", "--timeout", "120"], ["--segments", "20000"]),
     ("bench_batch.py", ["--size", "320"], ["--size", "96", "--samples", "4"]),

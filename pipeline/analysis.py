@@ -448,7 +448,8 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     inlets, outlets : sequence, optional
         Passed to :func:`analyze`.
     progress : callable, optional
-        ``progress(step, seconds)`` after each step, ``"reading"`` first.
+        ``progress(step, seconds)`` after each step, ``"reading"`` first and
+        ``"writing"`` (the result folder) last.
     warn : callable, optional
         ``warn(message)`` for every warning as it arises.
     run_info : dict, optional
@@ -517,4 +518,8 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
         "python": platform.python_version(),
         **(run_info or {}),
     }
-    return tables.write_result(result, outdir, run_info=info, overwrite=overwrite, inputs=[path]), result
+    t0 = time.perf_counter()
+    out = tables.write_result(result, outdir, run_info=info, overwrite=overwrite, inputs=[path])
+    if progress is not None:
+        progress("writing", time.perf_counter() - t0)
+    return out, result
