@@ -225,7 +225,21 @@ def validate_config(overrides: Mapping[str, Any] | None) -> dict[str, dict[str, 
                 )
             cfg[sec][key] = SCHEMA[sec][key].check(f"{sec}.{key}", value)
     _check_root_form(cfg["levels"]["root"])
+    _check_pairs(cfg)
     return cfg
+
+
+# Keys that bound one range: the first may not exceed the second (either may
+# be None, "no bound").
+_ORDERED_PAIRS = (("bifurcations", "ratio_min", "ratio_max"), ("bifurcations", "exponent_min", "exponent_max"))
+
+
+def _check_pairs(cfg: dict[str, dict[str, Any]]) -> None:
+    """Rules that tie two keys, checked with the rest so a bad file fails before any work."""
+    for sec, lo, hi in _ORDERED_PAIRS:
+        a, b = cfg[sec][lo], cfg[sec][hi]
+        if a is not None and b is not None and a > b:
+            raise ConfigError(f"config keys '{sec}.{lo}' and '{sec}.{hi}': expected {lo} <= {hi}, got {a!r} > {b!r}")
 
 
 def _check_root_form(root: Any) -> None:

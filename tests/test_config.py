@@ -53,6 +53,18 @@ def test_bad_values_name_the_key(overrides, fragment):
         validate_config(overrides)
 
 
+@pytest.mark.parametrize("lo, hi", [("ratio_min", "ratio_max"), ("exponent_min", "exponent_max")])
+def test_keys_bounding_one_range_are_checked_on_loading(lo, hi, tmp_path):
+    # A file whose lower bound exceeds its upper one fails when it is read,
+    # not after the thinning and the flow of a whole volume.
+    p = tmp_path / "swapped.yaml"
+    p.write_text(f"bifurcations:\n  {lo}: 5.0\n  {hi}: 1.5\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match=f"'bifurcations.{lo}' and 'bifurcations.{hi}': expected {lo} <= {hi}"):
+        load_config(p)
+    # either bound may be off
+    assert load_config({"bifurcations": {lo: 5.0, hi: None}})["bifurcations"][lo] == 5.0
+
+
 def test_bad_yaml_file(tmp_path):
     p = tmp_path / "bad.yaml"
     p.write_text("pruning: [unclosed\n", encoding="utf-8")
