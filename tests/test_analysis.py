@@ -1,7 +1,7 @@
 """End-to-end: synthetic ground truth through ``pipeline.analyze``.
 
 Every expected value comes from the analytic geometry the volume was built
-from (pipeline/synthetic.py) or from an outside reference library.
+from (pipeline/synthetic/) or from an outside reference library.
 """
 
 import math

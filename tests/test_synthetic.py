@@ -12,6 +12,7 @@ from scipy import ndimage
 from skimage.measure import euler_number
 
 from pipeline import synthetic as syn
+from pipeline.synthetic._common import _make_segment, _node
 from pipeline.errors import InputError
 
 FULL = np.ones((3, 3, 3), dtype=bool)  # 26-connectivity for vessels
@@ -1084,9 +1085,9 @@ def test_network_tables_hydraulic_radius_of_a_taper():
     # L (r1^-3 - r2^-3) / (3 (r2 - r1)) (elementary calculus), so r_h^4 = 3 (r2 - r1) / (r1^-3 - r2^-3).
     r1, r2, length = 2.0, 5.0, 80.0
     pts = np.linspace([0.0, 0.0, 0.0], [0.0, 0.0, length], 161)
-    nodes = [syn._node(0, pts[0], "border"), syn._node(1, pts[-1], "border")]
-    seg = syn._make_segment(0, nodes[0], nodes[1], pts, np.linspace(r1, r2, 161), vessel_class="capillary")
-    seg2 = syn._make_segment(1, nodes[1], nodes[0], pts[::-1], 3.0, vessel_class="arteriole")
+    nodes = [_node(0, pts[0], "border"), _node(1, pts[-1], "border")]
+    seg = _make_segment(0, nodes[0], nodes[1], pts, np.linspace(r1, r2, 161), vessel_class="capillary")
+    seg2 = _make_segment(1, nodes[1], nodes[0], pts[::-1], 3.0, vessel_class="arteriole")
     segments, node_table = syn.network_tables(syn.VesselNetwork(nodes, [seg, seg2]))
     expected = (3 * (r2 - r1) / (r1**-3 - r2**-3)) ** 0.25
     # Midpoint rule on 0.5 um steps: relative error ~ (h / r)^2 / 24 < 1e-3.
