@@ -9,9 +9,8 @@ load when imported (``from pipeline import synthetic``). Nothing here
 changes the process environment.
 """
 
+from ._version import __version__
 from .errors import ConfigError, InputError, SolverError, VesselflowError
-
-__version__ = "0.1.0"
 
 __all__ = ["analyze", "Analysis", "VesselflowError", "InputError", "ConfigError", "SolverError", "__version__"]
 

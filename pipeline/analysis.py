@@ -479,7 +479,8 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     import platform
     from pathlib import Path as _Path
 
-    from . import __version__, reading, tables
+    from . import reading, tables
+    from ._version import __version__
 
     cfg = load_config(config)
     tables.check_outdir(outdir, overwrite=overwrite, inputs=[path])

@@ -956,7 +956,7 @@ def _is_cancelled(exc):
 
 
 def _version():
-    from . import __version__
+    from ._version import __version__
 
     return __version__
 

@@ -19,7 +19,7 @@ import sys
 import time
 from pathlib import Path
 
-from . import __version__
+from ._version import __version__
 from .errors import ConfigError, InputError, VesselflowError
 
 __all__ = ["main"]

@@ -87,7 +87,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
-from . import __version__
+from ._version import __version__
 from .batch import FALLBACK_MEASURES, SCIENCE_MEASURES, add_densities, hodges_lehmann_one_sample, science_measures
 from .errors import InputError, VesselflowError
 
