@@ -395,6 +395,7 @@ def hostile_artefacts(
     >>> kw = hostile_artefacts(0.5, spacing=(2.0, 1.0, 1.0), seed=1)
     >>> kw["roughness"], kw["blobs"], kw["gaps"], kw["jitter_vox"]
     (0.125, 3, 2, 0.5)
+    >>> from pipeline.synthetic import straight_tube
     >>> mask, truth = rasterize(straight_tube(length_um=40.0, radius_um=4.0), **kw)
     >>> len(truth["blobs"]), len(truth["gaps"])
     (3, 0)
