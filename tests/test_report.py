@@ -20,6 +20,10 @@ from scipy import stats
 
 import pipeline
 from pipeline import report, synthetic
+from pipeline.report import build as report_build
+from pipeline.report._common import _anchor, _fmt
+from pipeline.report.page import _CSP
+from pipeline.report.sample import _SAMPLE_BUILDERS
 from pipeline.cli import main
 
 SPACING = (2.0, 1.0, 1.0)
@@ -319,7 +323,7 @@ def test_failed_build_keeps_the_old_report(sample, tmp_path, monkeypatch):
     def boom(*a, **k):
         raise RuntimeError("drawing failed")
 
-    monkeypatch.setitem(report._SAMPLE_BUILDERS, "exponents", (boom, "t", "c"))
+    monkeypatch.setitem(_SAMPLE_BUILDERS, "exponents", (boom, "t", "c"))
     with pytest.raises(RuntimeError):
         report.build_report(copy, overwrite=True)
     monkeypatch.undo()
@@ -331,7 +335,7 @@ def test_failed_build_keeps_the_old_report(sample, tmp_path, monkeypatch):
             raise OSError("disk full")
         return real_replace(src, dst)
 
-    monkeypatch.setattr(report.os, "replace", fail_replace)
+    monkeypatch.setattr(report_build.os, "replace", fail_replace)
     with pytest.raises(OSError):
         report.build_report(copy, overwrite=True)
     after = {p: p.read_bytes() for p in [copy / "report.html", *sorted((copy / "figures").iterdir())]}
@@ -425,7 +429,7 @@ def test_report_of_a_real_batch(study_inputs):
     for m in (m for m in report.STUDY_MEASURES if m in cohort.columns and cohort[m].notna().any()):
         assert _not_blank(out / "figures" / f"study_{m}.png"), m
     text = (out / "report.html").read_text(encoding="utf-8")
-    assert "ctrl-bad" in text and all(f'id="{report._anchor(r["sample_id"])}"' in text for r in rows)
+    assert "ctrl-bad" in text and all(f'id="{_anchor(r["sample_id"])}"' in text for r in rows)
 
 
 def test_study_report_files(study):
@@ -442,7 +446,7 @@ def test_study_report_files(study):
         assert ref.startswith("data:") or (ref.startswith("#") and ref[1:] in p.ids), (tag, ref[:80])
     text = (out / "report.html").read_text(encoding="utf-8")
     for r in rows:  # a section per sample, linked from the sample list
-        assert f'href="#{report._anchor(r["sample_id"])}"' in text
+        assert f'href="#{_anchor(r["sample_id"])}"' in text
     assert "ctrl-bad" in text and "not a TIFF file" in text  # the failure is listed
     assert "Research use only" in text
 
@@ -509,7 +513,7 @@ def test_console_check_catches_a_broken_page(tmp_path):
     exe = _chromium()
     bad = tmp_path / "bad.html"
     bad.write_text(f'<!DOCTYPE html><html><head><meta http-equiv="Content-Security-Policy" '
-                   f'content="{report._CSP}"></head><body><img src="missing.png"></body></html>')
+                   f'content="{_CSP}"></head><body><img src="missing.png"></body></html>')
     rc, _, console, _ = _render(exe, bad, tmp_path)
     assert rc == 0 and console
 
@@ -588,7 +592,7 @@ def test_a_bad_review_is_a_note_in_the_study_report(study, tmp_path, capsys):
     assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
     assert not capsys.readouterr().err
     text = (copy / "report.html").read_text(encoding="utf-8")
-    section = text[text.index(f'<section id="{report._anchor(sid)}"'):]
+    section = text[text.index(f'<section id="{_anchor(sid)}"'):]
     section = section[:section.index("</section>")]
     assert "The review of this sample is not valid" in section and "123456789012345678901234567890" in section
     assert text.count("The review of this sample is not valid") == 2  # the section and the report's notes
@@ -1032,5 +1036,5 @@ def test_study_report_shows_the_network_exponent_or_says_it_is_absent(study, tmp
         else:
             assert _not_blank(copy / "figures" / "study_network_exponent.png")
             for v in c["murray_exponent_network"]:
-                assert report._fmt(v) in section
+                assert _fmt(v) in section
             assert "exact coverage" in section

@@ -14,8 +14,6 @@ import numpy as np
 from ..errors import InputError
 
 #: Largest distance between consecutive polyline points of every builder (µm).
-
-
 MAX_STEP_UM = 0.5
 
 NODE_KINDS = ("junction", "blind", "border", "loop")

@@ -23,8 +23,6 @@ from ._common import (
 )
 
 # Coordinates this close to a box face count as on it (µm).
-
-
 _BOX_TOL = 1e-7
 
 

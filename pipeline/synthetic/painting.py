@@ -20,8 +20,6 @@ from .network import VesselNetwork, _chord_selection
 
 # The roughness field is clipped to +-2.5 sd, so with roughness <= 0.3 the local
 # radius never drops below a quarter of the nominal one and thin tubes stay whole.
-
-
 _FIELD_CLIP = 2.5
 _MAX_ROUGHNESS = 0.3
 # Edge length (a power of two, for cheap wrapping) and smoothing of the periodic
