@@ -11,6 +11,7 @@ import pytest
 import tifffile
 
 from pipeline import centrelines, reading, synthetic
+from pipeline.reading import memory as reading_memory
 from pipeline.analysis import analyze, analyze_file
 from pipeline.cli import main
 from pipeline.errors import InputError
@@ -639,9 +640,9 @@ def test_available_memory_uses_meminfo_and_cgroup_limit(tmp_path, monkeypatch, m
         (root / "memory" / "memory.limit_in_bytes").write_text(v1_limit)
         lines.insert(0, "5:memory:/")
     self_cgroup.write_text("\n".join(lines) + "\n")
-    monkeypatch.setattr(reading, "_PROC_MEMINFO", meminfo)
-    monkeypatch.setattr(reading, "_CGROUP_ROOT", root)
-    monkeypatch.setattr(reading, "_PROC_SELF_CGROUP", self_cgroup)
+    monkeypatch.setattr(reading_memory, "_PROC_MEMINFO", meminfo)
+    monkeypatch.setattr(reading_memory, "_CGROUP_ROOT", root)
+    monkeypatch.setattr(reading_memory, "_PROC_SELF_CGROUP", self_cgroup)
     assert available_memory_bytes() == expected_gib * 2**30
 
 
