@@ -109,7 +109,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "tortuosity_step_um": Param(8.0, float, low=0.0, low_open=True),
         "vessel_window_um": Param(10.0, float, low=0.0, low_open=True),
     },
-    # --- levels and flow (pipeline/levels.py, pipeline/flow.py) ---
+    # --- levels and flow (pipeline/levels.py, pipeline/flow/) ---
     "levels": {
         # 'auto', 'node:ID', a node id, or a position 'z,y,x' / [z, y, x] in µm.
         "root": Param("auto", (str, int, list)),

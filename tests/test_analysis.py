@@ -303,7 +303,7 @@ def test_default_haematocrit_iteration_converges(volume):
     # convergence when the iteration gave up after 10 solves without
     # progress (measured: 24 solves to converge with 15). The two at z 1
     # cycled for good while a node with three outflows took no phase
-    # separation (pipeline/rheology.py, module notes): a segment with next
+    # separation (pipeline/flow/rheology.py, module notes): a segment with next
     # to no flow reversing there switched its siblings' haematocrits. The
     # second bed stalled at 31 solves once segment ends were no longer wall
     # fitted: a 14 µm vessel at about 1e-3 mm/s kept reversing, and its own

@@ -524,7 +524,7 @@ def test_cg_kernel_agrees_with_scipy_cg():
     import scipy.sparse as sp
     from scipy.sparse.linalg import cg
 
-    from pipeline.flow import _cg
+    from pipeline.flow.linear import _cg
 
     rng = np.random.default_rng(11)
     g = nx.gnm_random_graph(400, 1200, seed=11)

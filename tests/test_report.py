@@ -818,7 +818,7 @@ def test_plausibility_warning_appears_only_out_of_range(sample, tmp_path, key, v
 
 
 def _uncertainty_numpy(seg):
-    # Straight from the columns' definitions (flow.py, segments.csv).
+    # Straight from the columns' definitions (pipeline/flow/solve.py, segments.csv).
     perf = seg["perfused"].astype(bool).to_numpy()
     q, lo, hi = (seg[c].to_numpy(float) for c in ("flow_nl_min", "flow_p05_nl_min", "flow_p95_nl_min"))
     conf = seg["direction_confidence"].to_numpy(float)

@@ -19,7 +19,7 @@ from scipy.special import expit, logit
 
 from pipeline.errors import ConfigError, InputError
 from pipeline.flow import relative_viscosity_vivo
-from pipeline.rheology import (
+from pipeline.flow.rheology import (
     iterate_rheology,
     phase_separation,
     propagate_haematocrit,
@@ -32,7 +32,7 @@ SEEDS = [0, 1, 2]
 def fqe_published(fqb, d_f, d_a, d_b, h_f, version="2005"):
     """The phase-separation law as printed (Pries et al. 1990, Circ Res 67:826;
     revised parameters Pries & Secomb 2005, Am J Physiol Heart Circ Physiol
-    289:H2657; coefficients from memory, see pipeline/rheology.py)."""
+    289:H2657; coefficients from memory, see pipeline/flow/rheology.py)."""
     if version == "2005":
         r2 = (d_a / d_b) ** 2
         a = -13.29 * ((r2 - 1) / (r2 + 1)) * (1 - h_f) / d_f
@@ -496,7 +496,7 @@ def _bridge(eps):
     B the bridge is the small side of a two-way split (plasma skimming gives
     it no cells); from C it is one of three outflows and shares the others'
     haematocrit, so its own haematocrit swings at every solve, as a stagnant
-    vessel's did on a bed cut on every face (pipeline/rheology.py, module
+    vessel's did on a bed cut on every face (pipeline/flow/rheology.py, module
     notes).
     """
     u = np.array([0, 0, 1, 1, 2, 2])

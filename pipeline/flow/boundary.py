@@ -134,8 +134,9 @@ from scipy import sparse
 from scipy.sparse import csgraph
 from scipy.sparse import linalg as spla
 
-from ._parallel import thread_map
-from .errors import SolverError
+from .._parallel import thread_map
+from ..errors import SolverError
+
 
 __all__ = ["Estimate", "estimate_pressures", "set_point_wss_pa", "PA_PER_MMHG"]
 

@@ -54,6 +54,8 @@ absolute haematocrits.
 
 As D_F grows, A -> 0, B -> 1 and X0 -> 0: large vessels split cells in
 proportion to flow. Where X0 >= 1/2 (a parent narrower than about 1.9 µm at
+
+
 H_F = 0 with the 2005 set, outside the law's data) the two bounds overlap;
 the law's limit X0 -> 1/2 is used: all cells go to the daughter with the
 larger flow (half each at an exact tie).
@@ -191,7 +193,7 @@ from dataclasses import dataclass, field
 import numba
 import numpy as np
 
-from .errors import ConfigError, InputError, SolverError
+from ..errors import ConfigError, InputError, SolverError
 
 __all__ = [
     "PHASE_SEPARATION_VERSIONS",

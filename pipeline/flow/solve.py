@@ -1,95 +1,13 @@
-"""Step 9, steady network flow, wall shear stress and transit times.
+"""Steady network flow: boundary conditions, conductances, the solve and the derived measures.
 
-In: the ``segments`` table (``segment_id``, ``node_from``, ``node_to``,
-``length_um``, ``radius_um``, optionally ``radius_hydraulic_um``) and the
-``nodes`` table (``node_id``, ``kind``) of a vessel multigraph, the inlet
-node ids, optionally the outlet node ids, and the config section ``flow``.
-Out: :class:`FlowResult`, per-segment flow quantities keyed by
-``segment_id``, per-node pressure and role, a summary dict and warning
-strings.
-
-Model. Every segment is a rigid straight tube in steady laminar
-(Hagen–Poiseuille) flow, resistance ``R = 8 mu L / (pi r^4)`` with the
-hydraulic radius (``radius_hydraulic_um``, the r with ``L / r^4 =
-integral dl / r^4``; ``radius_um`` where it is absent or NaN). Kirchhoff's
-current law at every node without a pressure condition gives ``L_UU p_U =
--L_UD p_D`` with the weighted graph Laplacian ``L`` (conductances
-``1 / R``; parallel segments add), symmetric positive definite once the
-Dirichlet nodes are eliminated, because only the parts of connected
-components that hold both an inlet and an outlet are assembled. The system is assembled
-vectorised (``scipy.sparse.coo_matrix``) in SI units and solved for the
-dimensionless potential ``phi`` (1 at inlets, 0 at outlets); pressures are
-``p_out + dP * phi`` and flows ``dP * G * (phi_from - phi_to)``, which
-keeps small pressure drops exact. Conversions to table units happen once,
-at the end.
-
-Solvers. ``direct``: sparse LU (SuperLU, minimum-degree ordering on
-``A^T + A``, symmetric mode, no pivoting, which is stable for this SPD
-matrix). ``cg``: conjugate gradients (Hestenes & Stiefel 1952, J Res Natl
-Bur Stand 49:409) with Jacobi preconditioning, applied as the symmetric
-scaling ``D^-1/2 A D^-1/2``; the loop is written here with numpy kernels
-that use no BLAS thread pool, so that its run time stays steady on a busy
-machine (threaded BLAS level-1 calls slowed it several-fold under load);
-it stops at relative residual ``cg_rtol`` of the scaled system or fails
-after ``cg_max_iter`` iterations. ``auto``: direct up to
-``cg_threshold_nodes`` unknowns or when the network is nearly a tree (at
-most one independent loop per 1000 unknowns; sparse LU of a tree has no
-fill), else CG. A CG run that does not converge,
-a singular factorisation or a non-finite result raises
-:class:`~pipeline.errors.SolverError`; the true residual is recomputed
-after the solve and reported.
-
-Boundary conditions (``boundary``). ``estimate`` (the default): the ends
-cut by the volume (``'border'`` nodes, and ``'blind'`` ends of pieces that
-reach the border with ``blind_ends: open``) have unknown pressure and flow;
-:mod:`pipeline.boundary` estimates them (Fry et al. 2012) from a target
-pressure and a target wall shear stress, with Kirchhoff's law and the known
-conditions (given inlets at ``inlet_pressure_pa``, outlets at
-``outlet_pressure_pa``, ``boundary_flows``) as constraints. ``pressure``:
-inlets (given) are at ``inlet_pressure_pa``; outlets are, unless given
-explicitly, every open end that is not an inlet, at
-``outlet_pressure_pa``; with ``inlet_flow_nl_min`` set, all inlets share one
-unknown pressure chosen so that the total inflow equals that value (the
-problem is linear, so the unit-potential solution is scaled). Other end
-nodes are sealed (zero net flow, Neumann). With haematocrit phase separation
-the estimated end pressures are held while haematocrit and viscosity are
-iterated (:mod:`pipeline.rheology`). Segments slower than
-``perfused_min_velocity_mm_s`` are not perfused.
-
-Unsolved and unperfused parts. A connected component without any inlet or
-outlet is not solved: its nodes get ``pressure_pa`` NaN, its segments flow
-0 and ``perfused`` False, and a warning counts them. A component with
-inlets only or outlets only is at that one pressure, without flow.
-``perfused`` is True for a segment whose component holds both an inlet and
-an outlet, that is not a self-loop (a self-loop has zero net pressure drop
-and carries no flow) and that is not in a dead-end part: the parts removed
-by repeatedly stripping segments at sealed end nodes (a blind sprout and the
-subtree behind it) carry no flow in steady state. They are left out of the
-linear system, get flow exactly 0 and the pressure of the node they hang
-from. A dangling closed loop attached at a single node is not detected as
-dead-end; its flow is zero to rounding.
-
-Derived quantities per segment (``r`` = ``radius_um``, the robust vessel
-radius, for the local quantities; ``mu`` the segment's viscosity): mean
-speed ``|Q| / (pi r^2)``, peak speed twice the mean (parabolic profile),
-wall shear rate ``4 |Q| / (pi r^3)``, wall shear stress ``4 mu |Q| / (pi
-r^3)``, Reynolds number ``rho v 2r / mu``, transit time ``L / v`` (NaN
-where the flow is 0).
-
-Viscosity. ``constant``: ``viscosity_mpa_s``. ``pries1992``: in-vitro
-relative apparent viscosity of Pries, Neuhaus & Gaehtgens (1992, Am J
-Physiol 263:H1770), times the plasma viscosity. ``pries1994``: in-vivo law
-of Pries et al. (1994, Circ Res 75:904). Both take the tube diameter
-``2 * r_hydraulic`` in µm and the discharge haematocrit; diameters below
-``min_valid_diameter_um`` are evaluated at that diameter and counted in a
-warning. The formulas are in :func:`relative_viscosity_vitro` and
-:func:`relative_viscosity_vivo`.
+In: the segments and nodes tables, known inlets and outlets, the flow config. Out: a
+:class:`FlowResult`: per-segment flow, pressures, speed, wall shear stress, haematocrit and flow
+intervals, per-node pressures and roles, the summary and warnings (see :mod:`pipeline.flow`).
 """
 
 from __future__ import annotations
 
 import math
-import warnings as _warnings
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -98,31 +16,15 @@ import numpy as np
 import pandas as pd
 from scipy import sparse
 from scipy.sparse import csgraph
-from scipy.sparse import linalg as spla
 
-from ._checks import segment_end_rows
-from ._parallel import thread_map
+from .._checks import segment_end_rows
+from .._parallel import thread_map
+from ..errors import InputError
 from .boundary import estimate_pressures
-from .errors import InputError, SolverError
-from .rheology import (  # the viscosity laws live with the other blood properties
-    iterate_rheology,
-    relative_viscosity_vitro,
-    relative_viscosity_vivo,
-    segment_viscosity_mpa_s,
-)
+from .linear import _assemble, _nearly_tree, _solve_linear, _wsum
+from .plausibility import class_statistics, plausibility_warnings
+from .rheology import iterate_rheology, segment_viscosity_mpa_s
 
-__all__ = [
-    "FlowResult",
-    "DIAMETER_CLASSES",
-    "PLAUSIBLE",
-    "class_statistics",
-    "plausibility_warnings",
-    "solve_flow",
-    "relative_viscosity_vitro",
-    "relative_viscosity_vivo",
-    "segment_viscosity_mpa_s",
-    "NL_MIN_PER_M3_S",
-]
 
 UM = 1e-6  # m per µm
 MPA_S = 1e-3  # Pa·s per mPa·s
@@ -200,7 +102,7 @@ class FlowResult:
 # ---------------------------------------------------------------------------
 
 def _flow_config(config: Mapping[str, Any] | None) -> dict[str, Any]:
-    from .config import validate_config
+    from ..config import validate_config
 
     section = {} if config is None else config.get("flow", config)
     return validate_config({"flow": dict(section)})["flow"]
@@ -228,11 +130,6 @@ def _node_rows(ids: pd.Index, values: Iterable[int], what: str) -> np.ndarray:
     if (rows < 0).any():
         raise InputError(f"{what}: node id {int(vals[rows < 0][0])} does not exist in the nodes table")
     return np.unique(rows)
-
-
-def _wsum(index: np.ndarray, weights: np.ndarray, n: int) -> np.ndarray:
-    """Float ``bincount`` (numpy returns integers for empty input)."""
-    return np.bincount(index, weights=weights, minlength=n).astype(float, copy=False)
 
 
 def _ranges(starts: np.ndarray, stops: np.ndarray) -> np.ndarray:
@@ -284,160 +181,6 @@ def _dead_ends(u: np.ndarray, v: np.ndarray, active: np.ndarray, anchored: np.nd
         cand = np.unique(np.concatenate([u[s], v[s]]))
         frontier = cand[(deg[cand] == 1) & ~anchored[cand]]
     return dead
-
-
-# ---------------------------------------------------------------------------
-# linear algebra
-# ---------------------------------------------------------------------------
-
-def _assemble(u, v, g, unknown_index, phi_fixed, use):
-    """Reduced Laplacian system ``A x = b`` over the unknown nodes.
-
-    Parameters
-    ----------
-    u, v : (S,) int ndarray
-        End-node rows.
-    g : (S,) float ndarray
-        Conductances, m³/(Pa·s).
-    unknown_index : (N,) int ndarray
-        Position of each node among the unknowns, -1 for fixed or unsolved
-        nodes.
-    phi_fixed : (N,) float ndarray
-        Potential of the fixed nodes (ignored elsewhere).
-    use : (S,) bool ndarray
-        Segments to assemble (no self-loops, solved components only).
-
-    Returns
-    -------
-    A : (n, n) scipy.sparse.csr_matrix
-    b : (n,) float ndarray
-    """
-    n = int(unknown_index.max()) + 1 if len(unknown_index) else 0
-    uu, vv, gg = u[use], v[use], g[use]
-    a, c = unknown_index[uu], unknown_index[vv]
-    ia, ic = a >= 0, c >= 0
-    diag = _wsum(a[ia], gg[ia], n) + _wsum(c[ic], gg[ic], n)
-    both = ia & ic
-    rows = np.concatenate([np.arange(n), a[both], c[both]])
-    cols = np.concatenate([np.arange(n), c[both], a[both]])
-    vals = np.concatenate([diag, -gg[both], -gg[both]])
-    A = sparse.coo_matrix((vals, (rows, cols)), shape=(n, n)).tocsr()
-    only_a = ia & ~ic
-    only_c = ic & ~ia
-    b = _wsum(a[only_a], gg[only_a] * phi_fixed[vv[only_a]], n)
-    b += _wsum(c[only_c], gg[only_c] * phi_fixed[uu[only_c]], n)
-    return A, b
-
-
-def _dot(a: np.ndarray, b: np.ndarray) -> float:
-    # einsum runs its own single-threaded loop: no BLAS thread pool, so the
-    # run time does not collapse when the machine is busy, and sums are
-    # reproducible.
-    return float(np.einsum("i,i->", a, b))
-
-
-def _cg(A, b: np.ndarray, x: np.ndarray, *, rtol: float, max_iter: int) -> tuple[np.ndarray, int, bool]:
-    """Plain conjugate gradients (Hestenes & Stiefel 1952) for SPD ``A``.
-
-    Parameters
-    ----------
-    A : (n, n) sparse matrix
-        Symmetric positive definite.
-    b : (n,) float ndarray
-    x : (n,) float ndarray
-        Initial guess; updated in place.
-    rtol : float, keyword-only
-        Stop when ``||b - A x|| <= rtol ||b||`` (recursive residual).
-    max_iter : int, keyword-only
-
-    Returns
-    -------
-    x : (n,) float ndarray
-    iterations : int
-    converged : bool
-    """
-    r = b - A @ x
-    tol = rtol * math.sqrt(_dot(b, b))
-    rr = _dot(r, r)
-    if math.sqrt(rr) <= tol:
-        return x, 0, True
-    p = r.copy()
-    tmp = np.empty_like(r)
-    for it in range(1, max_iter + 1):
-        q = A @ p
-        pq = _dot(p, q)
-        if not pq > 0:  # lost positive definiteness (or NaN)
-            return x, it, False
-        alpha = rr / pq
-        np.multiply(p, alpha, out=tmp)
-        x += tmp
-        np.multiply(q, alpha, out=tmp)
-        r -= tmp
-        rr_new = _dot(r, r)
-        if math.sqrt(rr_new) <= tol:
-            return x, it, True
-        p *= rr_new / rr
-        p += r
-        rr = rr_new
-    return x, max_iter, False
-
-
-def _nearly_tree(A) -> bool:
-    """True when the matrix graph has at most one independent loop per 1000 nodes.
-
-    Sparse LU of a tree has no fill; with a few loops the fill stays small
-    (a 1.2 M-segment random tree solved in 3 s direct against 6 s CG; with
-    1 % extra random links 4.5 s against 8 s, but with 3 % 104 s against 8 s),
-    so ``auto`` keeps the direct solver only well below that cliff.
-    """
-    n = A.shape[0]
-    if n == 0:
-        return True
-    n_comp, _ = csgraph.connected_components(A, directed=False)
-    loops = (A.nnz - n) // 2 - n + n_comp
-    return loops <= 0.001 * n
-
-
-def _solve_linear(A, b, *, method: str, rtol: float, max_iter: int,
-                  x0: np.ndarray | None = None) -> tuple[np.ndarray, int | None]:
-    """Solve the SPD system; raise SolverError on failure (``x0``: CG's start)."""
-    n = A.shape[0]
-    if n == 0:
-        return np.zeros(0), None
-    iterations: int | None = None
-    if method == "direct":
-        try:
-            with _warnings.catch_warnings():
-                _warnings.simplefilter("error")
-                lu = spla.splu(
-                    A.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                    options={"SymmetricMode": True},
-                )
-                x = lu.solve(b)
-        except (RuntimeError, Warning) as exc:
-            raise SolverError(f"flow: direct solve failed ({exc}); the network matrix is singular") from None
-    else:
-        diag = A.diagonal()
-        if not (np.all(np.isfinite(diag)) and np.all(diag > 0)):
-            raise SolverError("flow: CG needs a positive diagonal; the network matrix is not positive definite")
-        # Jacobi preconditioning as a symmetric diagonal scaling, D^-1/2 A D^-1/2
-        # (the same iterates as Jacobi-preconditioned CG); the stopping test is
-        # on the scaled residual.
-        scale = 1.0 / np.sqrt(diag)
-        dsc = sparse.diags(scale)
-        As = (dsc @ A @ dsc).tocsr()
-        bs = scale * b
-        start = np.sqrt(diag) * 0.5 if x0 is None else np.sqrt(diag) * x0
-        y, iterations, converged = _cg(As, bs, start, rtol=rtol, max_iter=max_iter)
-        if not converged:
-            raise SolverError(
-                f"flow: conjugate gradients did not converge to rtol {rtol:g} within {max_iter} "
-                f"iterations; raise flow.cg_max_iter or use flow.solver: direct"
-            )
-        x = scale * y
-    if not np.all(np.isfinite(x)):
-        raise SolverError("flow: the solve produced non-finite pressures")
-    return x, iterations
 
 
 # ---------------------------------------------------------------------------
@@ -738,7 +481,7 @@ def solve_flow(
                 min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
                 rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=_STALL_WINDOW,
                 # the flow of the perfusion floor in each segment (parks
-                # stagnant segments that keep reversing; pipeline/rheology.py)
+                # stagnant segments that keep reversing; pipeline/flow/rheology.py)
                 stagnant_flow=cfg["perfused_min_velocity_mm_s"] * 1e-3 * math.pi * (radius_um * UM) ** 2,
             )
 
@@ -932,7 +675,7 @@ def _ensemble(cfg, segments, q, perfused, core, radius_um, rh, length_m, mu_mpa_
     nan = np.full(n_seg, np.nan)
     if k == 0 or not perfused.any():
         return nan, nan.copy(), nan.copy()
-    from .measures import radius_uncertainty
+    from ..measures import radius_uncertainty
 
     sd = segments["radius_sd_um"].to_numpy(dtype=float) if "radius_sd_um" in segments.columns else np.zeros(n_seg)
     npts = (segments["radius_n_points"].to_numpy(dtype=float) if "radius_n_points" in segments.columns
@@ -980,96 +723,3 @@ def _ensemble(cfg, segments, q, perfused, core, radius_um, rh, length_m, mu_mpa_
 
 def _last(values) -> float | None:
     return float(values[-1]) if len(values) and math.isfinite(values[-1]) else None
-
-
-#: Diameter classes of the summary, in order.
-DIAMETER_CLASSES = ("capillary", "small", "large")
-
-#: Published physiological ranges the summary is checked against (model
-#: estimates outside them get a warning). Each entry: summary key, low, high,
-#: what and source.
-PLAUSIBLE = (
-    ("velocity_median_mm_s_capillary", 0.1, 5.0,
-     "median capillary speed (mm/s)",
-     "red cells in mouse cortical capillaries move at about 0.5-2 mm/s (two-photon line scans, e.g. "
-     "Kleinfeld et al. 1998, PNAS 95:15741; from memory); mean blood speed is lower than red-cell speed"),
-    ("wss_p99_pa", 0.0, 30.0,
-     "99th percentile wall shear stress (Pa)",
-     "arteriolar wall shear stress of about 1-5 Pa (Reneman & Hoeks 2008, Med Biol Eng Comput 46:499); "
-     "capillaries with the in-vivo viscosity law several times more"),
-    ("velocity_max_mm_s", 0.0, 100.0,
-     "speed of the fastest segment (mm/s)",
-     "mean speeds in microvessels stay below some tens of mm/s (arterioles of 20-60 µm: about 5-50 "
-     "mm/s; from memory of intravital studies)"),
-)
-
-
-def class_statistics(diameter_um, velocity_mm_s, wss_pa, perfused, length_um, *,
-                     capillary_max_um: float = 8.0, small_max_um: float = 30.0) -> dict[str, Any]:
-    """Speed and wall shear stress statistics of perfused segments by diameter class.
-
-    Parameters
-    ----------
-    diameter_um, velocity_mm_s, wss_pa, length_um : (S,) float ndarray
-    perfused : (S,) bool ndarray
-    capillary_max_um, small_max_um : float, keyword-only
-        Class bounds: capillary below ``capillary_max_um``, small up to
-        ``small_max_um``, large above.
-
-    Returns
-    -------
-    dict
-        ``n_perfused_{class}``, ``perfused_length_um_{class}``,
-        ``velocity_median_mm_s_{class}``, ``velocity_p95_mm_s_{class}``,
-        ``wss_median_pa_{class}``, ``wss_p99_pa_{class}`` (None where the
-        class has no perfused segment), and over all perfused segments
-        ``velocity_median_mm_s``, ``velocity_max_mm_s``, ``wss_median_pa``,
-        ``wss_p99_pa``.
-    """
-    d = np.asarray(diameter_um, dtype=float)
-    cls = np.where(d < capillary_max_um, 0, np.where(d <= small_max_um, 1, 2))
-    out: dict[str, Any] = {}
-
-    def pct(x, q):
-        return float(np.percentile(x, q)) if x.size else None
-
-    for k, name in enumerate(DIAMETER_CLASSES):
-        sel = perfused & (cls == k)
-        out[f"n_perfused_{name}"] = int(sel.sum())
-        out[f"perfused_length_um_{name}"] = float(length_um[sel].sum())
-        out[f"velocity_median_mm_s_{name}"] = pct(velocity_mm_s[sel], 50)
-        out[f"velocity_p95_mm_s_{name}"] = pct(velocity_mm_s[sel], 95)
-        out[f"wss_median_pa_{name}"] = pct(wss_pa[sel], 50)
-        out[f"wss_p99_pa_{name}"] = pct(wss_pa[sel], 99)
-    out["velocity_median_mm_s"] = pct(velocity_mm_s[perfused], 50)
-    out["velocity_max_mm_s"] = float(velocity_mm_s[perfused].max()) if perfused.any() else None
-    out["wss_median_pa"] = pct(wss_pa[perfused], 50)
-    out["wss_p99_pa"] = pct(wss_pa[perfused], 99)
-    return out
-
-
-def plausibility_warnings(summary: Mapping[str, Any]) -> list[str]:
-    """Warnings for flow summaries outside published physiological ranges.
-
-    Parameters
-    ----------
-    summary : mapping
-        Needs the keys of :data:`PLAUSIBLE` and ``perfused_length_fraction``
-        (None values are skipped).
-
-    Returns
-    -------
-    list of str
-    """
-    notes = []
-    frac = summary.get("perfused_length_fraction")
-    if frac is not None and frac < 0.5:
-        notes.append(
-            f"flow: only {100 * frac:.0f} % of the vessel length is perfused; the flow statistics describe "
-            "less than half of the network"
-        )
-    for key, lo, hi, what, source in PLAUSIBLE:
-        val = summary.get(key)
-        if val is not None and not lo <= val <= hi:
-            notes.append(f"flow: {what} is {val:.3g}, outside the plausible {lo:g}-{hi:g}; {source}")
-    return notes
