@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test quick bench clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -18,6 +18,9 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
+
+quick: $(STAMP)
+	$(BIN)/python -m pytest -q -m "not slow and not integration"
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py

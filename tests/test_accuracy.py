@@ -21,6 +21,8 @@ import pytest
 import pipeline
 from pipeline import scoring, synthetic
 
+pytestmark = pytest.mark.slow  # the accuracy grid of hostile phantoms
+
 CONFIG = {"flow": {"enabled": False}}
 
 # Cases below the target, with the cause (strict: a case that starts passing

@@ -625,6 +625,7 @@ def test_a_result_of_the_same_run_counts_as_done(tmp_path):
     assert json.loads((out / "run.json").read_text())["batch"]["run"] == "run-a"
 
 
+@pytest.mark.integration  # worker processes killed mid-sample
 def test_a_killed_worker_fails_its_sample_alone(beds, tmp_path):
     # A worker killed mid-sample (as the OS or Dask's nanny does when memory
     # runs out) fails that sample only; the restarted worker does the rest.

@@ -23,6 +23,8 @@ from pipeline import batch, synthetic
 from pipeline.cli import main
 from pipeline.tables import load_result
 
+pytestmark = pytest.mark.integration  # Dask clusters started, killed and interrupted
+
 SPACING = (1.0, 1.0, 1.0)
 
 

@@ -507,6 +507,7 @@ def _render(exe, page, tmp, *, dump=False):
     return proc.returncode, proc.stdout, console, shot
 
 
+@pytest.mark.integration  # headless Chromium
 def test_console_check_catches_a_broken_page(tmp_path):
     # The check below must be able to fail: a page that loads a missing file
     # under the report's own Content-Security-Policy logs a console line.
@@ -518,6 +519,7 @@ def test_console_check_catches_a_broken_page(tmp_path):
     assert rc == 0 and console
 
 
+@pytest.mark.integration  # headless Chromium
 @pytest.mark.parametrize("which", ["sample", "study"])
 def test_report_renders_in_headless_chromium(which, request, tmp_path):
     exe = _chromium()

@@ -18,7 +18,9 @@ from pipeline.cli import main
 # napari 0.9 still builds pydantic models with v1-style options (json_encoders, extra Field
 # keywords, allow_mutation), and npe2 does too: pydantic's deprecation warnings come from
 # their code, not ours, so only those are let through here.
-pytestmark = pytest.mark.filterwarnings("ignore::pydantic.warnings.PydanticDeprecatedSince20")
+# integration: a real napari viewer under Xvfb
+pytestmark = [pytest.mark.integration,
+              pytest.mark.filterwarnings("ignore::pydantic.warnings.PydanticDeprecatedSince20")]
 
 IN_CI = os.environ.get("CI") == "true"
 SPACING = (2.0, 1.0, 1.0)  # anisotropic on purpose, so a wrong scale shows

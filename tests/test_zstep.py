@@ -28,6 +28,8 @@ import pytest
 import pipeline
 from pipeline import synthetic
 
+pytestmark = pytest.mark.slow  # every volume analysed twice
+
 CONFIG = {"flow": {"enabled": False}}
 # Tolerances of the acceptance line.
 LENGTH_TOL, JUNCTION_TOL, RADIUS_TOL = 0.05, 0.10, 0.05
