@@ -187,51 +187,58 @@ def _dead_ends(u: np.ndarray, v: np.ndarray, active: np.ndarray, anchored: np.nd
 # main entry
 # ---------------------------------------------------------------------------
 
-def solve_flow(
-    segments: pd.DataFrame,
-    nodes: pd.DataFrame,
-    *,
-    inlets: Iterable[int] = (),
-    outlets: Iterable[int] | None = None,
-    boundary_flows: Mapping[int, float] | None = None,
-    config: Mapping[str, Any] | None = None,
-) -> FlowResult:
-    """Steady Hagen–Poiseuille flow in a vessel network.
+@dataclass
+class _Network:
+    """The network as the solve sees it: node rows, boundary conditions, pieces and the core that can carry flow.
 
-    Parameters
-    ----------
-    segments : DataFrame, shape (S, ...)
-        ``segment_id``, ``node_from``, ``node_to``, ``length_um`` (> 0),
-        ``radius_um`` (> 0), optionally ``radius_hydraulic_um`` (used for the
-        resistance; NaN or missing falls back to ``radius_um``) and
-        ``level``/``strahler``/``strahler_diameter`` (copied to the result).
-    nodes : DataFrame, shape (N, ...)
-        ``node_id`` and ``kind`` ('junction', 'blind', 'border', 'loop').
-    inlets : iterable of int, keyword-only
-        Inlet node ids (at least one).
-    outlets : iterable of int or None, keyword-only
-        Outlet node ids; None takes the border ends (and the blind ends with
-        ``blind_ends: outlet``) that are not inlets.
-    config : mapping or None, keyword-only
-        Full config or its ``flow`` section; missing keys take defaults. The
-        ``enabled`` key is for the caller; this function always solves.
-
-    Returns
-    -------
-    FlowResult
-
-    Raises
-    ------
-    InputError
-        Missing columns, invalid lengths or radii, unknown or no inlets, a
-        node both inlet and outlet, or a prescribed inflow with no inlet
-        connected to an outlet.
-    ConfigError
-        Invalid ``flow`` options.
-    SolverError
-        The linear solve failed or did not converge.
+    Arrays over segments are (S,), over nodes (N,); node rows index ``ids``.
     """
-    cfg = _flow_config(config)
+
+    ids: pd.Index
+    seg_id: np.ndarray
+    u: np.ndarray
+    v: np.ndarray
+    length_um: np.ndarray
+    radius_um: np.ndarray
+    rh: np.ndarray  # hydraulic radius, µm (the radius where the table has none)
+    kind: np.ndarray
+    ends: np.ndarray  # segment ends at each node
+    estimate: bool
+    is_inlet: np.ndarray
+    out_mask: np.ndarray
+    fixed: np.ndarray  # inlets and outlets: a pressure condition
+    open_node: np.ndarray  # ends whose pressure and flow are estimated
+    known_q: np.ndarray  # prescribed inflow, m³/s (NaN where none)
+    known_p: np.ndarray  # prescribed pressure, Pa (NaN where none)
+    anchor: np.ndarray
+    n_comp: int
+    comp: np.ndarray
+    comp_in: np.ndarray | None  # pieces with an inlet (fixed pressures only)
+    solved_node: np.ndarray
+    flowing_node: np.ndarray
+    n_unsolved: int
+    dead: np.ndarray  # segments of dead-end parts
+    core: np.ndarray  # segments that can carry flow
+    core_node: np.ndarray
+
+    @property
+    def n_nodes(self) -> int:
+        return len(self.ids)
+
+    @property
+    def length_m(self) -> np.ndarray:
+        return self.length_um * UM
+
+    def conductance(self, mu_mpa_s: np.ndarray) -> np.ndarray:
+        """``pi r_h^4 / (8 mu L)`` per segment, m³/(Pa·s)."""
+        return math.pi * (self.rh * UM) ** 4 / (8.0 * mu_mpa_s * MPA_S * self.length_m)
+
+    def net_out(self, q: np.ndarray) -> np.ndarray:
+        """Flow leaving each node into its segments."""
+        return _wsum(self.u, q, self.n_nodes) - _wsum(self.v, q, self.n_nodes)
+
+
+def _check_tables(segments: pd.DataFrame, nodes: pd.DataFrame) -> None:
     for name, df, cols in (
         ("segments", segments, ("segment_id", "node_from", "node_to", "length_um", "radius_um")),
         ("nodes", nodes, ("node_id", "kind")),
@@ -241,28 +248,25 @@ def solve_flow(
         missing = [c for c in cols if c not in df.columns]
         if missing:
             raise InputError(f"{name}: missing column(s) {', '.join(missing)}")
-    warn: list[str] = []
 
-    ids, seg_id, u, v = segment_end_rows(segments, nodes)
-    length_um = _positive(segments, "length_um")
-    radius_um = _positive(segments, "radius_um")
-    if "radius_hydraulic_um" in segments.columns:
-        rh = segments["radius_hydraulic_um"].to_numpy(dtype=float)
-        rh = np.where(np.isnan(rh), radius_um, rh)
-        if not (np.isfinite(rh) & (rh > 0)).all():
-            k = int(np.flatnonzero(~(np.isfinite(rh) & (rh > 0)))[0])
-            raise InputError(
-                f"segments: radius_hydraulic_um must be finite and > 0 (segment_id {int(seg_id[k])}, "
-                f"value {rh[k]!r})"
-            )
-    else:
-        rh = radius_um
-    n_seg, n_nodes = len(seg_id), len(ids)
-    kind = nodes["kind"].astype(str).to_numpy()
-    ends = np.bincount(u, minlength=n_nodes) + np.bincount(v, minlength=n_nodes)
 
-    # Boundary nodes.
-    estimate = cfg["boundary"] == "estimate"
+def _hydraulic_radius(segments: pd.DataFrame, radius_um: np.ndarray, seg_id: np.ndarray) -> np.ndarray:
+    if "radius_hydraulic_um" not in segments.columns:
+        return radius_um
+    rh = segments["radius_hydraulic_um"].to_numpy(dtype=float)
+    rh = np.where(np.isnan(rh), radius_um, rh)
+    if not (np.isfinite(rh) & (rh > 0)).all():
+        k = int(np.flatnonzero(~(np.isfinite(rh) & (rh > 0)))[0])
+        raise InputError(
+            f"segments: radius_hydraulic_um must be finite and > 0 (segment_id {int(seg_id[k])}, "
+            f"value {rh[k]!r})"
+        )
+    return rh
+
+
+def _boundary_nodes(ids, kind, inlets, outlets, boundary_flows, cfg, estimate):
+    """Inlets, outlets and prescribed inflows as node masks; open ends by the node kinds."""
+    n_nodes = len(ids)
     inlet_rows = _node_rows(ids, inlets, "inlets")
     if inlet_rows.size == 0 and not estimate:
         raise InputError("inlets: at least one inlet node is needed")
@@ -289,15 +293,28 @@ def solve_flow(
         clash = is_inlet[q_rows] | out_mask[q_rows]
         if clash.any():
             raise InputError(f"boundary_flows: node id {int(ids[q_rows[clash][0]])} also has a pressure condition")
-        known_q[_node_rows(ids, list(boundary_flows), "boundary_flows")] = np.nan
         known_q[ids.get_indexer(np.asarray(list(boundary_flows), dtype=np.int64))] = q_vals / NL_MIN_PER_M3_S
+    return is_inlet, out_mask, open_kind, known_q
+
+
+def _network(segments, nodes, inlets, outlets, boundary_flows, cfg, warn) -> _Network:
+    """Checked tables -> :class:`_Network`; remarks on pieces that cannot be solved go to ``warn``."""
+    _check_tables(segments, nodes)
+    ids, seg_id, u, v = segment_end_rows(segments, nodes)
+    length_um = _positive(segments, "length_um")
+    radius_um = _positive(segments, "radius_um")
+    rh = _hydraulic_radius(segments, radius_um, seg_id)
+    n_nodes = len(ids)
+    kind = nodes["kind"].astype(str).to_numpy()
+    ends = np.bincount(u, minlength=n_nodes) + np.bincount(v, minlength=n_nodes)
+    estimate = cfg["boundary"] == "estimate"
+    is_inlet, out_mask, open_kind, known_q = _boundary_nodes(ids, kind, inlets, outlets, boundary_flows, cfg,
+                                                             estimate)
     fixed = is_inlet | out_mask
     # open ends: cut by the volume, pressure and flow unknown (estimated)
     open_node = open_kind & ~fixed & np.isnan(known_q) if estimate else np.zeros(n_nodes, dtype=bool)
     anchor = fixed | open_node | np.isfinite(known_q)
-
     loop = u == v
-    length_m = length_um * UM
 
     # Components and which of them can be solved.
     if n_nodes:
@@ -307,6 +324,7 @@ def solve_flow(
     else:
         n_comp, comp = 0, np.zeros(0, dtype=np.int64)
     comp_has_seg = np.bincount(comp[u], minlength=n_comp) > 0
+    comp_in = None
     if estimate and cfg["blind_ends"] == "open" and n_nodes:
         # blind ends of a piece that reaches the border (or a given inlet or
         # outlet) are open: in a mask they are mostly vessels the
@@ -353,117 +371,148 @@ def solve_flow(
     core = candidate & ~dead
     core_deg = np.bincount(u[core], minlength=n_nodes) + np.bincount(v[core], minlength=n_nodes)
     core_node = flowing_node & (anchor | (core_deg > 0))
-
     known_p = np.full(n_nodes, np.nan)
     known_p[is_inlet] = cfg["inlet_pressure_pa"]
     known_p[out_mask] = cfg["outlet_pressure_pa"]
-    r_h_m = rh * UM
-    state: dict[str, Any] = {}
+    return _Network(ids=ids, seg_id=seg_id, u=u, v=v, length_um=length_um, radius_um=radius_um, rh=rh, kind=kind,
+                    ends=ends, estimate=estimate, is_inlet=is_inlet, out_mask=out_mask, fixed=fixed,
+                    open_node=open_node, known_q=known_q, known_p=known_p, anchor=anchor, n_comp=n_comp, comp=comp,
+                    comp_in=comp_in, solved_node=solved_node, flowing_node=flowing_node, n_unsolved=n_unsolved,
+                    dead=dead, core=core, core_node=core_node)
 
-    def solve_once(mu_mpa_s: np.ndarray) -> np.ndarray:
+
+class _Solver:
+    """Solves of one network for given segment viscosities; ``info`` keeps the last one's pressures and bookkeeping."""
+
+    def __init__(self, net: _Network, cfg: dict[str, Any]):
+        self.net, self.cfg = net, cfg
+        self.info: dict[str, Any] = {}
+        self._held_x = None
+        self._neumann_ok = None
+
+    def once(self, mu_mpa_s: np.ndarray) -> np.ndarray:
         """Pressures and flows for given segment viscosities; flows, m³/s."""
-        conductance = math.pi * r_h_m**4 / (8.0 * mu_mpa_s * MPA_S * length_m)  # m³/(Pa·s)
+        net = self.net
+        conductance = net.conductance(mu_mpa_s)  # m³/(Pa·s)
         info: dict[str, Any] = {"conductance": conductance, "phi": None, "dp": float("nan")}
-        if estimate:
-            est = estimate_pressures(
-                u[core], v[core], conductance[core],
-                radius_m=radius_um[core] * UM, length_m=length_m[core], n_nodes=n_nodes,
-                open_node=open_node, known_pressure_pa=known_p, known_inflow_m3_s=known_q,
-                target_pressure_pa=cfg["target_pressure_pa"], viscosity_pa_s=mu_mpa_s[core] * MPA_S,
-                target_shear_rate_s=cfg["target_shear_rate_s"],
-                pressure_dependent_target=cfg["target_shear_rate_by_pressure"],
-                pressure_weight=cfg["pressure_weight"], max_iter=cfg["estimate_max_iter"],
-            )
-            info.update(notes=est.notes, method="direct", iterations=est.iterations, lin_res=0.0,
-                        n_unknown=int(core_node.sum()), estimate=est)
-            pressure = est.pressure_pa
-            pressure[solved_node & ~core_node] = np.nan
+        if net.estimate:
+            pressure = self._estimate(mu_mpa_s, conductance, info)
+            dp_seg = np.nan_to_num(pressure[net.u]) - np.nan_to_num(pressure[net.v])
         else:
-            # Reduced system over the core, for the potential phi (1 at
-            # inlets, 0 at outlets); dead-end parts and pieces without flow
-            # need no solve.
-            unknown = core_node & ~fixed
-            unknown_index = np.full(n_nodes, -1, dtype=np.int64)
-            unknown_index[unknown] = np.arange(int(unknown.sum()))
-            A, b = _assemble(u, v, conductance, unknown_index, is_inlet.astype(float), core)
-            n_unknown = A.shape[0]
-            method = cfg["solver"]
-            if method == "auto":
-                method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
-            x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
-            if n_unknown:
-                bn = float(np.linalg.norm(b))
-                lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
-            else:
-                lin_res = 0.0
-            notes = []
-            if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
-                notes.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
-            phi = np.full(n_nodes, np.nan)
-            if n_comp:
-                # Pieces without an inlet-outlet pair have a constant potential.
-                phi[solved_node] = comp_in[comp[solved_node]].astype(float)
-            phi[is_inlet] = 1.0
-            phi[out_mask] = 0.0
-            phi[unknown] = x
-            p_out = cfg["outlet_pressure_pa"]
-            if cfg["inlet_flow_nl_min"] is None:
-                dp = cfg["inlet_pressure_pa"] - p_out
-            else:
-                q_unit = np.where(core, conductance * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])), 0.0)
-                unit_inflow = float((_wsum(u, q_unit, n_nodes) - _wsum(v, q_unit, n_nodes))[is_inlet].sum())
-                if not unit_inflow > 0:
-                    raise InputError(
-                        "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
-                    )
-                dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
-            pressure = p_out + dp * phi
-            info.update(notes=notes, method=method, iterations=iterations, lin_res=lin_res, n_unknown=n_unknown,
-                        phi=phi, dp=dp)
-        if estimate:
-            dp_seg = np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])
-        else:
+            pressure = self._potential(conductance, info)
             # from the potential: keeps small pressure drops exact
-            dp_seg = info["dp"] * (np.nan_to_num(info["phi"][u]) - np.nan_to_num(info["phi"][v]))
-        q = np.where(core, conductance * dp_seg, 0.0)
+            dp_seg = info["dp"] * (np.nan_to_num(info["phi"][net.u]) - np.nan_to_num(info["phi"][net.v]))
+        q = np.where(net.core, conductance * dp_seg, 0.0)
         info["pressure"] = pressure
-        state["info"] = info
+        self.info = info
         return q
 
-    def solve_held(mu_mpa_s: np.ndarray, held: np.ndarray) -> np.ndarray:
-        """Flows with the estimate's open ends held at its pressures and known inflows kept."""
-        conductance = math.pi * r_h_m**4 / (8.0 * mu_mpa_s * MPA_S * length_m)
-        dirichlet = core_node & (open_node | fixed | (np.isfinite(known_q) & ~neumann_ok))
-        unknown = core_node & ~dirichlet
+    def _estimate(self, mu_mpa_s, conductance, info):
+        """Pressures by the boundary estimate of the cut network (Fry et al. 2012)."""
+        net, cfg = self.net, self.cfg
+        core = net.core
+        est = estimate_pressures(
+            net.u[core], net.v[core], conductance[core],
+            radius_m=net.radius_um[core] * UM, length_m=net.length_m[core], n_nodes=net.n_nodes,
+            open_node=net.open_node, known_pressure_pa=net.known_p, known_inflow_m3_s=net.known_q,
+            target_pressure_pa=cfg["target_pressure_pa"], viscosity_pa_s=mu_mpa_s[core] * MPA_S,
+            target_shear_rate_s=cfg["target_shear_rate_s"],
+            pressure_dependent_target=cfg["target_shear_rate_by_pressure"],
+            pressure_weight=cfg["pressure_weight"], max_iter=cfg["estimate_max_iter"],
+        )
+        info.update(notes=est.notes, method="direct", iterations=est.iterations, lin_res=0.0,
+                    n_unknown=int(net.core_node.sum()), estimate=est)
+        pressure = est.pressure_pa
+        pressure[net.solved_node & ~net.core_node] = np.nan
+        return pressure
+
+    def _potential(self, conductance, info):
+        """Pressures from the potential phi (1 at inlets, 0 at outlets) of the core's reduced system."""
+        net, cfg = self.net, self.cfg
+        n_nodes, u, v = net.n_nodes, net.u, net.v
+        # dead-end parts and pieces without flow need no solve
+        unknown = net.core_node & ~net.fixed
         unknown_index = np.full(n_nodes, -1, dtype=np.int64)
         unknown_index[unknown] = np.arange(int(unknown.sum()))
-        A, b = _assemble(u, v, conductance, unknown_index, np.nan_to_num(held), core)
+        A, b = _assemble(u, v, conductance, unknown_index, net.is_inlet.astype(float), net.core)
+        n_unknown = A.shape[0]
+        method = cfg["solver"]
+        if method == "auto":
+            method = "direct" if n_unknown <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
+        x, iterations = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"])
+        if n_unknown:
+            bn = float(np.linalg.norm(b))
+            lin_res = float(np.linalg.norm(b - A @ x) / bn) if bn > 0 else 0.0
+        else:
+            lin_res = 0.0
+        notes = []
+        if method == "cg" and lin_res > 10.0 * cfg["cg_rtol"]:
+            notes.append(f"flow: CG true relative residual {lin_res:.2e} exceeds 10 × cg_rtol")
+        phi = np.full(n_nodes, np.nan)
+        if net.n_comp:
+            # Pieces without an inlet-outlet pair have a constant potential.
+            phi[net.solved_node] = net.comp_in[net.comp[net.solved_node]].astype(float)
+        phi[net.is_inlet] = 1.0
+        phi[net.out_mask] = 0.0
+        phi[unknown] = x
+        p_out = cfg["outlet_pressure_pa"]
+        if cfg["inlet_flow_nl_min"] is None:
+            dp = cfg["inlet_pressure_pa"] - p_out
+        else:
+            q_unit = np.where(net.core, conductance * (np.nan_to_num(phi[u]) - np.nan_to_num(phi[v])), 0.0)
+            unit_inflow = float(net.net_out(q_unit)[net.is_inlet].sum())
+            if not unit_inflow > 0:
+                raise InputError(
+                    "flow.inlet_flow_nl_min: a total inflow is prescribed but no inlet is connected to an outlet"
+                )
+            dp = cfg["inlet_flow_nl_min"] / NL_MIN_PER_M3_S / unit_inflow
+        info.update(notes=notes, method=method, iterations=iterations, lin_res=lin_res, n_unknown=n_unknown,
+                    phi=phi, dp=dp)
+        return p_out + dp * phi
+
+    def held(self, mu_mpa_s: np.ndarray, held: np.ndarray) -> np.ndarray:
+        """Flows with the estimate's open ends held at its pressures and known inflows kept."""
+        net, cfg = self.net, self.cfg
+        n_nodes, u, v = net.n_nodes, net.u, net.v
+        if self._neumann_ok is None:
+            # Known inflows stay inflows in the held solves where their piece
+            # has a held node besides (else its pressure level is free).
+            held_comp = np.bincount(net.comp[net.core_node & (net.open_node | net.fixed)], minlength=net.n_comp) > 0
+            self._neumann_ok = held_comp[net.comp] if net.n_comp else np.zeros(n_nodes, dtype=bool)
+        conductance = net.conductance(mu_mpa_s)
+        dirichlet = net.core_node & (net.open_node | net.fixed | (np.isfinite(net.known_q) & ~self._neumann_ok))
+        unknown = net.core_node & ~dirichlet
+        unknown_index = np.full(n_nodes, -1, dtype=np.int64)
+        unknown_index[unknown] = np.arange(int(unknown.sum()))
+        A, b = _assemble(u, v, conductance, unknown_index, np.nan_to_num(held), net.core)
         # A known inflow stays a known inflow (it leaves the node into its
         # segments): holding its node at the first estimate's pressure let
         # the flow drift with the viscosities, by 18 % on a cortex crop.
-        kq = unknown & np.isfinite(known_q)
-        b += _wsum(unknown_index[kq], known_q[kq], A.shape[0])
+        kq = unknown & np.isfinite(net.known_q)
+        b += _wsum(unknown_index[kq], net.known_q[kq], A.shape[0])
         method = cfg["solver"]
         if method == "auto":
             method = "direct" if A.shape[0] <= cfg["cg_threshold_nodes"] or _nearly_tree(A) else "cg"
         # Successive solves differ only by the viscosity update: CG from the
         # last pressures takes few iterations, where a direct solve would
         # refactorise every time.
-        last = state.get("held_x")
+        last = self._held_x
         if method == "direct" and A.shape[0] > 5000 and cfg["solver"] == "auto":
             method = "cg"
         x, _ = _solve_linear(A, b, method=method, rtol=cfg["cg_rtol"], max_iter=cfg["cg_max_iter"],
                              x0=last if last is not None and last.size == A.shape[0] else None)
-        state["held_x"] = x
+        self._held_x = x
         pressure = held.copy()
         pressure[unknown] = x
-        q = np.where(core, conductance * (np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])), 0.0)
-        state["info"] = dict(state["info"], conductance=conductance, pressure=pressure)
+        q = np.where(net.core, conductance * (np.nan_to_num(pressure[u]) - np.nan_to_num(pressure[v])), 0.0)
+        self.info = dict(self.info, conductance=conductance, pressure=pressure)
         return q
 
-    # Viscosity, then the solve (iterated with the haematocrit when asked).
+
+def _flows(net: _Network, cfg: dict[str, Any], solver: _Solver, warn: list[str]):
+    """Viscosity, then the solve, iterated with the haematocrit when asked; (q, mu, haematocrit, rheology)."""
     mu_mpa_s, vnotes = segment_viscosity_mpa_s(
-        2.0 * rh,
+        2.0 * net.rh,
         model=cfg["viscosity_model"],
         viscosity_mpa_s=cfg["viscosity_mpa_s"],
         haematocrit=cfg["haematocrit"],
@@ -471,164 +520,65 @@ def solve_flow(
         min_valid_diameter_um=cfg["min_valid_diameter_um"],
     )
     warn += vnotes
-    haematocrit = np.where(core, cfg["haematocrit"], np.nan)
-    rheo = None
-    if cfg["haematocrit_model"] == "phase_separation" and cfg["viscosity_model"] == "pries1994" and core.any():
-        def rheology(solve):
-            return iterate_rheology(
-                solve, u, v, 2.0 * rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=n_nodes,
-                plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
-                min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
-                rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=_STALL_WINDOW,
-                # the flow of the perfusion floor in each segment (parks
-                # stagnant segments that keep reversing; pipeline/flow/rheology.py)
-                stagnant_flow=cfg["perfused_min_velocity_mm_s"] * 1e-3 * math.pi * (radius_um * UM) ** 2,
-            )
+    haematocrit = np.where(net.core, cfg["haematocrit"], np.nan)
+    if not (cfg["haematocrit_model"] == "phase_separation" and cfg["viscosity_model"] == "pries1994"
+            and net.core.any()):
+        return solver.once(mu_mpa_s), mu_mpa_s, haematocrit, None
 
-        if estimate:
-            # Known inflows stay inflows in the held solves where their piece
-            # has a held node besides (else its pressure level is free).
-            held_comp = np.bincount(comp[core_node & (open_node | fixed)], minlength=n_comp) > 0
-            neumann_ok = held_comp[comp] if n_comp else np.zeros(n_nodes, dtype=bool)
-            # The estimate's KKT matrix depends on the viscosities; refactorising
-            # it at every step of the haematocrit iteration would cost tens of
-            # factorisations. Instead the end pressures are estimated with the
-            # uniform haematocrit's viscosities and held while haematocrit and
-            # viscosity converge (plain solves). A second estimate with the
-            # converged viscosities moved capillary speeds by a few per cent
-            # on the project's beds, for twice the time.
-            solve_once(mu_mpa_s)
-            held = state["info"]["pressure"].copy()
-            rheo = rheology(lambda mu_k: solve_held(mu_k, held))
-        else:
-            rheo = rheology(solve_once)
-        if not rheo.converged:
-            warn.append(f"flow: haematocrit and viscosity did not converge ({rheo.message})")
-        if rheo.n_parked:
-            warn.append(f"flow: {rheo.n_parked} stagnant segment(s) kept reversing in the haematocrit iteration "
-                        "and are taken to carry no red cells (haematocrit empty)")
-        mu_mpa_s = rheo.viscosity_mpa_s
-        haematocrit = np.where(core, rheo.haematocrit, np.nan)
-        q = rheo.flow
+    def rheology(solve):
+        return iterate_rheology(
+            solve, net.u, net.v, 2.0 * net.rh, inflow_haematocrit=cfg["haematocrit"], n_nodes=net.n_nodes,
+            plasma_viscosity_mpa_s=cfg["plasma_viscosity_mpa_s"],
+            min_valid_diameter_um=cfg["min_valid_diameter_um"], damping=cfg["rheology_damping"],
+            rtol=cfg["rheology_rtol"], max_iterations=cfg["rheology_max_iter"], stall_window=_STALL_WINDOW,
+            # the flow of the perfusion floor in each segment (parks
+            # stagnant segments that keep reversing; pipeline/flow/rheology.py)
+            stagnant_flow=cfg["perfused_min_velocity_mm_s"] * 1e-3 * math.pi * (net.radius_um * UM) ** 2,
+        )
+
+    if net.estimate:
+        # The estimate's KKT matrix depends on the viscosities; refactorising
+        # it at every step of the haematocrit iteration would cost tens of
+        # factorisations. Instead the end pressures are estimated with the
+        # uniform haematocrit's viscosities and held while haematocrit and
+        # viscosity converge (plain solves). A second estimate with the
+        # converged viscosities moved capillary speeds by a few per cent
+        # on the project's beds, for twice the time.
+        solver.once(mu_mpa_s)
+        held = solver.info["pressure"].copy()
+        rheo = rheology(lambda mu_k: solver.held(mu_k, held))
     else:
-        q = solve_once(mu_mpa_s)
-    info = state["info"]
-    warn += info["notes"]
-    conductance = info["conductance"]
-    pressure = info["pressure"]
-    dp = info["dp"]
-    method, iterations, lin_res, n_unknown = info["method"], info["iterations"], info["lin_res"], info["n_unknown"]
-    p_out = float("nan") if estimate else cfg["outlet_pressure_pa"]
-    mu = mu_mpa_s * MPA_S
-    resistance = 1.0 / conductance  # Pa·s/m³
-    hang = flowing_node & ~core_node
+        rheo = rheology(solver.once)
+    if not rheo.converged:
+        warn.append(f"flow: haematocrit and viscosity did not converge ({rheo.message})")
+    if rheo.n_parked:
+        warn.append(f"flow: {rheo.n_parked} stagnant segment(s) kept reversing in the haematocrit iteration "
+                    "and are taken to carry no red cells (haematocrit empty)")
+    return rheo.flow, rheo.viscosity_mpa_s, np.where(net.core, rheo.haematocrit, np.nan), rheo
+
+
+def _fill_pressures(net: _Network, cfg: dict[str, Any], pressure: np.ndarray) -> None:
+    """Pressures of the nodes off the core, in place."""
+    hang = net.flowing_node & ~net.core_node
     if hang.any():
         # Each dead-end part hangs from exactly one core node and shares its
         # pressure (no flow, no pressure drop).
+        dead = net.dead
         link = sparse.coo_matrix(
-            (np.ones(int(dead.sum())), (u[dead], v[dead])), shape=(n_nodes, n_nodes)
+            (np.ones(int(dead.sum())), (net.u[dead], net.v[dead])), shape=(net.n_nodes, net.n_nodes)
         )
         _, part = csgraph.connected_components(link, directed=False)
         part_p = np.full(int(part.max()) + 1, np.nan)
-        part_p[part[core_node]] = pressure[core_node]
+        part_p[part[net.core_node]] = pressure[net.core_node]
         pressure[hang] = part_p[part[hang]]
-    if estimate:
+    if net.estimate:
         # a piece with a single boundary node, or open ends only through
         # dead-end parts, carries no flow: it sits at the target pressure
-        pressure[solved_node & np.isnan(pressure)] = cfg["target_pressure_pa"]
+        pressure[net.solved_node & np.isnan(pressure)] = cfg["target_pressure_pa"]
 
-    def net_out(q):  # flow leaving each node into its segments
-        return _wsum(u, q, n_nodes) - _wsum(v, q, n_nodes)
 
-    node_net = net_out(q)
-    # A segment counts as perfused when its mean speed reaches the floor:
-    # below it the model's flow is rounding or a stalled vessel, and its
-    # transit time would be meaningless.
-    floor_m_s = cfg["perfused_min_velocity_mm_s"] * 1e-3
-    perfused = core & (np.abs(q) / (math.pi * (radius_um * UM) ** 2) >= floor_m_s)
-    if estimate:
-        # open ends are inlets or outlets by the estimated flow
-        tiny = 1e-9 * (float(np.abs(q).max()) if q.size else 0.0)
-        is_inlet = is_inlet | (open_node & (node_net > tiny))
-        out_mask = out_mask | (open_node & (node_net < -tiny))
-        fixed = is_inlet | out_mask
-        p_in = float(pressure[is_inlet].mean()) if is_inlet.any() else float("nan")
-        p_out = float(pressure[out_mask].mean()) if out_mask.any() else float("nan")
-        dp = p_in - p_out
-    role = np.full(n_nodes, "internal", dtype=object)
-    role[((kind == "blind") | (kind == "border") | (ends <= 1)) & ~fixed] = "sealed"
-    role[out_mask] = "outlet"
-    role[is_inlet] = "inlet"
-    inflow = float(node_net[is_inlet].sum())
-    boundary = "estimate" if estimate else ("pressure" if cfg["inlet_flow_nl_min"] is None else "flow")
-
-    # Derived quantities (robust radius for the local ones).
-    r_m = radius_um * UM
-    aq = np.abs(q)
-    speed = aq / (math.pi * r_m**2)  # m/s
-    shear = 4.0 * aq / (math.pi * r_m**3)  # 1/s
-    with np.errstate(divide="ignore", invalid="ignore"):
-        transit = np.where(perfused, length_m / np.where(perfused, speed, 1.0), np.nan)
-    out = pd.DataFrame({"segment_id": seg_id})
-    for col in PASS_THROUGH:
-        if col in segments.columns:
-            out[col] = segments[col].array  # keeps nullable Int64 with <NA>
-    out["flow_nl_min"] = q * NL_MIN_PER_M3_S
-    out["pressure_from_pa"] = pressure[u]
-    out["pressure_to_pa"] = pressure[v]
-    out["velocity_mm_s"] = speed * 1e3
-    out["velocity_peak_mm_s"] = 2.0 * speed * 1e3
-    out["shear_rate_s"] = shear
-    out["wss_pa"] = mu * shear
-    out["reynolds"] = cfg["blood_density_kg_m3"] * speed * 2.0 * r_m / mu
-    out["transit_time_s"] = transit
-    out["resistance_pa_s_um3"] = resistance * PA_S_UM3_PER_PA_S_M3
-    out["viscosity_mpa_s"] = mu_mpa_s
-    out["haematocrit"] = haematocrit
-    out["perfused"] = perfused
-    p05, p95, conf = _ensemble(
-        cfg, segments, q, perfused, core, radius_um, rh, length_m, mu_mpa_s, u, v, info, solve_once, estimate,
-    )
-    out["flow_p05_nl_min"] = p05
-    out["flow_p95_nl_min"] = p95
-    out["direction_confidence"] = conf
-
-    node_out = pd.DataFrame({
-        "node_id": ids.to_numpy(),
-        "pressure_pa": pressure,
-        "role": role.astype(str),
-        "inflow_nl_min": np.where(solved_node, node_net, 0.0) * NL_MIN_PER_M3_S,
-    })
-
-    # Summary.
-    interior = solved_node & ~fixed
-    if inflow > 0:
-        residual = float(np.abs(node_net[interior]).max() / inflow) if interior.any() else 0.0
-        net_r = dp / inflow * PA_S_UM3_PER_PA_S_M3 if math.isfinite(dp) else None
-    else:
-        residual, net_r = None, None
-    if residual is not None and residual > 1e-6:
-        warn.append(f"flow: largest relative conservation residual {residual:.2e} at a node")
-    total_len = float(length_um.sum())
-    summary = {
-        "total_inflow_nl_min": inflow * NL_MIN_PER_M3_S,
-        "network_resistance_pa_s_um3": net_r,
-        "perfused_length_fraction": float(length_um[perfused].sum() / total_len) if total_len > 0 else 0.0,
-        "max_conservation_residual": residual,
-        "n_inlets": int(is_inlet.sum()),
-        "n_outlets": int(out_mask.sum()),
-        "n_sealed": int((role == "sealed").sum()),
-        "n_segments": int(n_seg),
-        "n_perfused_segments": int(perfused.sum()),
-        "n_unsolved_components": n_unsolved,
-        "n_unknowns": int(n_unknown),
-        "boundary": boundary,
-        "inlet_pressure_pa": _finite_or_none(p_out + dp),
-        "outlet_pressure_pa": _finite_or_none(p_out),
-        "viscosity_model": cfg["viscosity_model"],
-        "solver": method if n_unknown else "none",
-        "solver_iterations": iterations,
-        "solver_residual": lin_res,
+def _rheology_summary(cfg, rheo) -> dict[str, Any]:
+    return {
         "haematocrit_model": cfg["haematocrit_model"] if rheo is not None else "uniform",
         "rheology_iterations": rheo.iterations if rheo is not None else None,
         "rheology_converged": rheo.converged if rheo is not None else None,
@@ -637,8 +587,168 @@ def solve_flow(
         "red_cell_conservation_residual": _last(rheo.red_cell_residual) if rheo is not None else None,
         "rheology_parked_segments": rheo.n_parked if rheo is not None else None,
     }
+
+
+def _segment_columns(net, cfg, segments, q, pressure, mu_mpa_s, haematocrit, perfused, conductance):
+    """The segments table of the result but for the ensemble's columns (robust radius for the local measures)."""
+    r_m = net.radius_um * UM
+    mu = mu_mpa_s * MPA_S
+    aq = np.abs(q)
+    speed = aq / (math.pi * r_m**2)  # m/s
+    shear = 4.0 * aq / (math.pi * r_m**3)  # 1/s
+    with np.errstate(divide="ignore", invalid="ignore"):
+        transit = np.where(perfused, net.length_m / np.where(perfused, speed, 1.0), np.nan)
+    out = pd.DataFrame({"segment_id": net.seg_id})
+    for col in PASS_THROUGH:
+        if col in segments.columns:
+            out[col] = segments[col].array  # keeps nullable Int64 with <NA>
+    out["flow_nl_min"] = q * NL_MIN_PER_M3_S
+    out["pressure_from_pa"] = pressure[net.u]
+    out["pressure_to_pa"] = pressure[net.v]
+    out["velocity_mm_s"] = speed * 1e3
+    out["velocity_peak_mm_s"] = 2.0 * speed * 1e3
+    out["shear_rate_s"] = shear
+    out["wss_pa"] = mu * shear
+    out["reynolds"] = cfg["blood_density_kg_m3"] * speed * 2.0 * r_m / mu
+    out["transit_time_s"] = transit
+    out["resistance_pa_s_um3"] = 1.0 / conductance * PA_S_UM3_PER_PA_S_M3  # from Pa·s/m³
+    out["viscosity_mpa_s"] = mu_mpa_s
+    out["haematocrit"] = haematocrit
+    out["perfused"] = perfused
+    return out
+
+
+def solve_flow(
+    segments: pd.DataFrame,
+    nodes: pd.DataFrame,
+    *,
+    inlets: Iterable[int] = (),
+    outlets: Iterable[int] | None = None,
+    boundary_flows: Mapping[int, float] | None = None,
+    config: Mapping[str, Any] | None = None,
+) -> FlowResult:
+    """Steady Hagen–Poiseuille flow in a vessel network.
+
+    Parameters
+    ----------
+    segments : DataFrame, shape (S, ...)
+        ``segment_id``, ``node_from``, ``node_to``, ``length_um`` (> 0),
+        ``radius_um`` (> 0), optionally ``radius_hydraulic_um`` (used for the
+        resistance; NaN or missing falls back to ``radius_um``) and
+        ``level``/``strahler``/``strahler_diameter`` (copied to the result).
+    nodes : DataFrame, shape (N, ...)
+        ``node_id`` and ``kind`` ('junction', 'blind', 'border', 'loop').
+    inlets : iterable of int, keyword-only
+        Inlet node ids (at least one).
+    outlets : iterable of int or None, keyword-only
+        Outlet node ids; None takes the border ends (and the blind ends with
+        ``blind_ends: outlet``) that are not inlets.
+    config : mapping or None, keyword-only
+        Full config or its ``flow`` section; missing keys take defaults. The
+        ``enabled`` key is for the caller; this function always solves.
+
+    Returns
+    -------
+    FlowResult
+
+    Raises
+    ------
+    InputError
+        Missing columns, invalid lengths or radii, unknown or no inlets, a
+        node both inlet and outlet, or a prescribed inflow with no inlet
+        connected to an outlet.
+    ConfigError
+        Invalid ``flow`` options.
+    SolverError
+        The linear solve failed or did not converge.
+    """
+    cfg = _flow_config(config)
+    warn: list[str] = []
+    net = _network(segments, nodes, inlets, outlets, boundary_flows, cfg, warn)
+    solver = _Solver(net, cfg)
+    q, mu_mpa_s, haematocrit, rheo = _flows(net, cfg, solver, warn)
+    info = solver.info
+    warn += info["notes"]
+    pressure = info["pressure"]
+    _fill_pressures(net, cfg, pressure)
+    u, v, n_nodes, kind, estimate = net.u, net.v, net.n_nodes, net.kind, net.estimate
+    dp = info["dp"]
+    p_out = float("nan") if estimate else cfg["outlet_pressure_pa"]
+    node_net = net.net_out(q)
+    # A segment counts as perfused when its mean speed reaches the floor:
+    # below it the model's flow is rounding or a stalled vessel, and its
+    # transit time would be meaningless.
+    r_m = net.radius_um * UM
+    floor_m_s = cfg["perfused_min_velocity_mm_s"] * 1e-3
+    perfused = net.core & (np.abs(q) / (math.pi * r_m ** 2) >= floor_m_s)
+    is_inlet, out_mask, fixed = net.is_inlet, net.out_mask, net.fixed
+    if estimate:
+        # open ends are inlets or outlets by the estimated flow
+        tiny = 1e-9 * (float(np.abs(q).max()) if q.size else 0.0)
+        is_inlet = is_inlet | (net.open_node & (node_net > tiny))
+        out_mask = out_mask | (net.open_node & (node_net < -tiny))
+        fixed = is_inlet | out_mask
+        p_in = float(pressure[is_inlet].mean()) if is_inlet.any() else float("nan")
+        p_out = float(pressure[out_mask].mean()) if out_mask.any() else float("nan")
+        dp = p_in - p_out
+    role = np.full(n_nodes, "internal", dtype=object)
+    role[((kind == "blind") | (kind == "border") | (net.ends <= 1)) & ~fixed] = "sealed"
+    role[out_mask] = "outlet"
+    role[is_inlet] = "inlet"
+    inflow = float(node_net[is_inlet].sum())
+    boundary = "estimate" if estimate else ("pressure" if cfg["inlet_flow_nl_min"] is None else "flow")
+
+    out = _segment_columns(net, cfg, segments, q, pressure, mu_mpa_s, haematocrit, perfused, info["conductance"])
+    p05, p95, conf = _ensemble(
+        cfg, segments, q, perfused, net.core, net.radius_um, net.rh, net.length_m, mu_mpa_s, u, v, info,
+        solver.once, estimate,
+    )
+    out["flow_p05_nl_min"] = p05
+    out["flow_p95_nl_min"] = p95
+    out["direction_confidence"] = conf
+
+    node_out = pd.DataFrame({
+        "node_id": net.ids.to_numpy(),
+        "pressure_pa": pressure,
+        "role": role.astype(str),
+        "inflow_nl_min": np.where(net.solved_node, node_net, 0.0) * NL_MIN_PER_M3_S,
+    })
+
+    # Summary.
+    interior = net.solved_node & ~fixed
+    if inflow > 0:
+        residual = float(np.abs(node_net[interior]).max() / inflow) if interior.any() else 0.0
+        net_r = dp / inflow * PA_S_UM3_PER_PA_S_M3 if math.isfinite(dp) else None
+    else:
+        residual, net_r = None, None
+    if residual is not None and residual > 1e-6:
+        warn.append(f"flow: largest relative conservation residual {residual:.2e} at a node")
+    length_um = net.length_um
+    total_len = float(length_um.sum())
+    n_unknown = info["n_unknown"]
+    summary = {
+        "total_inflow_nl_min": inflow * NL_MIN_PER_M3_S,
+        "network_resistance_pa_s_um3": net_r,
+        "perfused_length_fraction": float(length_um[perfused].sum() / total_len) if total_len > 0 else 0.0,
+        "max_conservation_residual": residual,
+        "n_inlets": int(is_inlet.sum()),
+        "n_outlets": int(out_mask.sum()),
+        "n_sealed": int((role == "sealed").sum()),
+        "n_segments": int(len(net.seg_id)),
+        "n_perfused_segments": int(perfused.sum()),
+        "n_unsolved_components": net.n_unsolved,
+        "n_unknowns": int(n_unknown),
+        "boundary": boundary,
+        "inlet_pressure_pa": _finite_or_none(p_out + dp),
+        "outlet_pressure_pa": _finite_or_none(p_out),
+        "viscosity_model": cfg["viscosity_model"],
+        "solver": info["method"] if n_unknown else "none",
+        "solver_iterations": info["iterations"],
+        "solver_residual": info["lin_res"],
+        **_rheology_summary(cfg, rheo),
+    }
     stats = class_statistics(
-        2.0 * radius_um, out["velocity_mm_s"].to_numpy(), out["wss_pa"].to_numpy(), perfused, length_um,
+        2.0 * net.radius_um, out["velocity_mm_s"].to_numpy(), out["wss_pa"].to_numpy(), perfused, length_um,
         capillary_max_um=cfg["capillary_max_diameter_um"], small_max_um=cfg["small_vessel_max_diameter_um"],
     )
     summary.update(stats)
