@@ -26,6 +26,7 @@ import pandas as pd
 
 from . import bifurcations as bif_step
 from . import cleaning, centrelines, flow as flow_step, graph as graph_step, levels as levels_step, measures
+from . import pruning as pruning_step
 from . import orders as orders_step
 from . import radii as radii_step
 from . import vessels as vessels_step
@@ -223,15 +224,15 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         wall = _fit_wall_radii(g, cleaned, sp, planar)
         tick("radii")
     p = cfg["pruning"]
-    graph_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
-                           junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
-                           spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
-                           web_loop_radii=p["web_loop_radii"], border_spur_radii=p["border_spur_radii"],
-                           voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
-                           min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
-                           reconnect=p["reconnect_gaps"], spacing_um=sp,
-                           volume_um=(np.asarray(original_shape) - 1) * np.asarray(sp),
-                           max_gap_voxels=p["max_gap_voxels"], max_gap_angle_deg=p["max_gap_angle_deg"])
+    pruning_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
+                             junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
+                             spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
+                             web_loop_radii=p["web_loop_radii"], border_spur_radii=p["border_spur_radii"],
+                             voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
+                             min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
+                             reconnect=p["reconnect_gaps"], spacing_um=sp,
+                             volume_um=(np.asarray(original_shape) - 1) * np.asarray(sp),
+                             max_gap_voxels=p["max_gap_voxels"], max_gap_angle_deg=p["max_gap_angle_deg"])
     if wall is not None:
         _to_mean_radii(g, *wall)
     tick("pruning")

@@ -131,7 +131,7 @@ def test_junction_f1_on_thin_capillary_beds_at_coarse_z(spacing, seed):
     # several capillaries meet the thinning split the crossing into
     # junctions 2.5-6.5 µm apart (beyond the capillary radius the scorer
     # matches within): F1 0.90-0.94 at z 3 and 0.92-0.94 at z 2 before
-    # crossings were merged (pipeline/graph.py, _merge_crossings),
+    # crossings were merged (pipeline/pruning.py, _merge_crossings),
     # 0.965-0.99 and 0.955-0.97 after, 0.985-0.995 and 0.973-0.992 once
     # junction line windows spanned at least three voxels.
     _assert_bed_meets_targets(seed, spacing, radius_range_um=(1.5, 2.5), vessel_fraction=0.06, strength=1.0)
@@ -144,7 +144,7 @@ def test_beds_of_thick_and_thin_vessels_cut_on_every_face(spacing, seed):
     # strength: many junctions lie within 10-15 µm of a face, and thin
     # vessels leave thick ones to be cut by it. Before branches to the face
     # were pruned only where the thick vessel is cut by a face there
-    # (pipeline/graph.py), such branches went with their junctions: F1
+    # (pipeline/pruning.py), such branches went with their junctions: F1
     # 0.928-0.968 and length -3.2 to -6.7 % at z 2 (0.959-0.979 and -1.3
     # to -3.7 % at 1 µm); after, 0.96-0.99 and -0.8 to -4.2 %.
     _assert_bed_meets_targets(seed, spacing, radius_range_um=(2.0, 8.0), vessel_fraction=0.15, strength=0.5)

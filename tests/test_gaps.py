@@ -1,4 +1,4 @@
-"""Reconnection of broken thin vessels (``pruning.reconnect_gaps``, :func:`pipeline.graph.reconnect_gaps`).
+"""Reconnection of broken thin vessels (``pruning.reconnect_gaps``, :func:`pipeline.gaps.reconnect_gaps`).
 
 End to end on rasterised tubes cut by slabs of background, and on hand-made
 centreline voxel sets for the geometry of the rule (direction, distance,
@@ -11,7 +11,9 @@ import pytest
 import pipeline
 from pipeline import synthetic
 from pipeline.centrelines import Centrelines
-from pipeline.graph import build_graph, prune_graph, reconnect_gaps
+from pipeline.gaps import reconnect_gaps
+from pipeline.graph import build_graph
+from pipeline.pruning import prune_graph
 
 # The pieces of a cut 2 µm tube hold about 30 µm x pi x 4 µm² = 380 µm³,
 # below the default speck size (1000 µm³), so the clean-up would drop them

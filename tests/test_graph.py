@@ -11,7 +11,8 @@ import pytest
 import pipeline
 from pipeline import synthetic
 from pipeline.centrelines import Centrelines
-from pipeline.graph import build_graph, prune_graph, voxel_adjacency
+from pipeline.graph import build_graph, voxel_adjacency
+from pipeline.pruning import prune_graph
 
 
 def _centrelines(voxels, radius=1.0, border=None):
@@ -265,7 +266,7 @@ def test_side_branches_of_a_thick_vessel_stay_apart(spacing):
     # between them leaves the two junctions' inscribed balls (13 µm of
     # centreline against 12.5 µm of radii), so they are two branch points,
     # not one crossing. (6 µm apart they merge into one junction of degree
-    # 4: the documented price of merging crossings, pipeline/graph.py.)
+    # 4: the documented price of merging crossings, pipeline/pruning.py.)
     sp = np.asarray(spacing, float)
     mask = np.zeros([int(s / q) for s, q in zip((50.0, 60.0, 100.0), sp)], bool)
     _tube(mask, sp, [[25.1, 30.2, 8.0], [25.1, 30.2, 92.0]], 6.0)

@@ -136,7 +136,7 @@ def test_median_radius_within_five_percent(measured, kind, strength, dz, seed):
 #   vessels, branches to the z faces). A branch to the face is pruned as the
 #   face cutting a rough thick vessel only where its junction lies within
 #   that vessel's radius of a face or joins four or more vessels
-#   (pipeline/graph.py): the five strength-1 beds went from 2.7-8.3 % apart
+#   (pipeline/pruning.py): the five strength-1 beds went from 2.7-8.3 % apart
 #   to 2.7-6.1 %, and the one bed 3 junctions apart to 2. Without the second
 #   condition they were 0.9-3.9 % apart, but beds of 2-8 µm vessels at z 3
 #   and full strength came out 5-14 % too long (the cut ends' fans kept).
