@@ -16,6 +16,7 @@ from scipy import stats
 
 from conftest import write_ybranch
 from pipeline import batch, synthetic
+from pipeline.batch import engine as batch_engine
 from pipeline.cli import main
 from pipeline.tables import RESULT_FILES, load_result
 
@@ -728,7 +729,7 @@ def test_progress_on_a_terminal_and_in_a_log():
             {"sample_id": "c", "status": "skipped", "seconds": 0.0, "step": "", "error": ""}]
     term, log = Terminal(), io.StringIO()
     for stream in (term, log):
-        p = batch._Progress(4, stream=stream)
+        p = batch_engine._Progress(4, stream=stream)
         for r in recs:
             p.update(r)
         p.finish()
@@ -749,3 +750,17 @@ def test_shipped_demo_sheet_is_valid():
     # Seven animals per group (synthetic_volumes/README.md): enough for an exact Mann-Whitney test to reach 0.05.
     assert [s.group for s in samples].count("control") == 7 and [s.group for s in samples].count("treated") == 7
     assert all(s.path.is_file() for s in samples)
+
+
+def test_failure_steps_are_the_steps_the_analysis_reports(tmp_path):
+    # A failed sample is charged to the step after the last one reported;
+    # the list it is looked up in must be the analysis's own steps, in order
+    # (it lacked vessels and orders, so a failure there was charged to flow).
+    from pipeline.analysis import analyze_file
+
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=40, radius_um=3), spacing=(1, 1, 1))
+    path = tmp_path / "t.npy"
+    np.save(path, mask)
+    seen = []
+    analyze_file(path, tmp_path / "out", spacing=(1, 1, 1), progress=lambda step, s: seen.append(step))
+    assert tuple(seen) == batch.STEPS
