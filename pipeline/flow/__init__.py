@@ -90,12 +90,14 @@ Layout (each module's docstring says what comes in and what goes out):
 ``rheology`` (viscosity laws, phase separation, the haematocrit
 iteration), ``linear`` (the Kirchhoff system and its solvers) and
 ``plausibility`` (statistics by diameter class against published ranges)
--> ``solve`` (:func:`solve_flow`, :class:`FlowResult`).
+-> ``network`` (the tables checked, boundary nodes, pieces, the core) ->
+``solve`` (:func:`solve_flow`, :class:`FlowResult`).
 """
 
 from .rheology import relative_viscosity_vitro, relative_viscosity_vivo, segment_viscosity_mpa_s
 from .plausibility import DIAMETER_CLASSES, PLAUSIBLE, class_statistics, plausibility_warnings
-from .solve import FlowResult, NL_MIN_PER_M3_S, solve_flow
+from .network import NL_MIN_PER_M3_S
+from .solve import FlowResult, solve_flow
 
 __all__ = [
     "FlowResult",
