@@ -149,7 +149,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "cg_max_iter": Param(20000, int, low=1),
         "min_valid_diameter_um": Param(3.3, float, low=1.1, low_open=True),
     },
-    # --- Murray's-law checks at junctions (pipeline/bifurcations.py) ---
+    # --- Murray's-law checks at junctions (pipeline/bifurcations/) ---
     "bifurcations": {
         "enabled": Param(True, bool),
         "murray_min_parent_diameter_um": Param(7.0, float, low=0.0, allow_none=True),

@@ -1342,7 +1342,7 @@ def test_direction_bend_of_a_curved_window(k):
     # slope difference between the numpy least-squares line through the
     # window and the tangent k x at x = 5 µm. The parabola model behind the
     # bend's 3.9 factor is approximate: within 35 %, and 0 for a straight one.
-    from pipeline.bifurcations import _directions
+    from pipeline.bifurcations.angles import _directions
 
     x = np.linspace(0.0, 60.0, 601)
     pts = np.column_stack([np.zeros_like(x), k * x**2 / 2, x])

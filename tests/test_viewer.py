@@ -129,7 +129,7 @@ def test_stepping_centres_camera_on_bifurcation(display, folder):
     try:
         base = _camera(v).zoom
         order = [int(r["node"]) for r in panel.table_rows()]
-        # The queue opens most severe first (pipeline/bifurcations.py: severity).
+        # The queue opens most severe first (pipeline/bifurcations/table.py: severity).
         severity = [float(flagged[n]["severity"]) for n in order]
         assert severity == sorted(severity, reverse=True)
         panel.next()
