@@ -19,11 +19,8 @@ from scipy.special import expit, logit
 
 from pipeline.errors import ConfigError, InputError
 from pipeline.flow import relative_viscosity_vivo
-from pipeline.flow.rheology import (
-    iterate_rheology,
-    phase_separation,
-    propagate_haematocrit,
-)
+from pipeline.flow.haematocrit import phase_separation, propagate_haematocrit
+from pipeline.flow.rheology import iterate_rheology
 
 H_SYS = 0.45  # normal systemic discharge haematocrit (common practice)
 SEEDS = [0, 1, 2]

@@ -87,14 +87,15 @@ warning. The formulas are in :func:`relative_viscosity_vitro` and
 
 Layout (each module's docstring says what comes in and what goes out):
 ``boundary`` (the boundary estimate of a cut network, Fry et al. 2012),
-``rheology`` (viscosity laws, phase separation, the haematocrit
-iteration), ``linear`` (the Kirchhoff system and its solvers) and
+``viscosity`` (the viscosity laws), ``haematocrit`` (phase separation and
+red cells through the network), ``rheology`` (the damped
+flow-haematocrit-viscosity iteration), ``linear`` (the Kirchhoff system and its solvers) and
 ``plausibility`` (statistics by diameter class against published ranges)
 -> ``network`` (the tables checked, boundary nodes, pieces, the core) ->
 ``solve`` (:func:`solve_flow`, :class:`FlowResult`).
 """
 
-from .rheology import relative_viscosity_vitro, relative_viscosity_vivo, segment_viscosity_mpa_s
+from .viscosity import relative_viscosity_vitro, relative_viscosity_vivo, segment_viscosity_mpa_s
 from .plausibility import DIAMETER_CLASSES, PLAUSIBLE, class_statistics, plausibility_warnings
 from .network import NL_MIN_PER_M3_S
 from .solve import FlowResult, solve_flow

@@ -23,7 +23,8 @@ from .boundary import estimate_pressures
 from .linear import _assemble, _nearly_tree, _solve_linear, _wsum
 from .network import MPA_S, NL_MIN_PER_M3_S, PA_S_UM3_PER_PA_S_M3, UM, _Network, _network
 from .plausibility import class_statistics, plausibility_warnings
-from .rheology import iterate_rheology, segment_viscosity_mpa_s
+from .rheology import iterate_rheology
+from .viscosity import segment_viscosity_mpa_s
 
 # Solves without progress after which the haematocrit iteration stops (not
 # converged), for networks where it cycles. 10 stopped a 531-segment bed of
