@@ -1,4 +1,4 @@
-"""Tests of pipeline/viewer.py in a real napari viewer, headless under Xvfb with Mesa's software OpenGL.
+"""Tests of pipeline/viewer/ in a real napari viewer, headless under Xvfb with Mesa's software OpenGL.
 
 The tests start their own Xvfb. Outside CI they are skipped when Xvfb or napari is
 missing; with CI=true a missing piece fails them (``.ci/run`` installs Xvfb and Mesa).

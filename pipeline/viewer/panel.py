@@ -1,102 +1,31 @@
-"""Look at a result folder in napari and review its flagged bifurcations.
+"""The review panel: the flagged junctions in a sortable table, their measures and the decision buttons.
 
-In: a result folder (and the mask it was computed from). Out: napari layers,
-the review panel (a dock widget) that writes ``review.csv`` on every change,
-and screenshots.
-
-This and ``napari.yaml`` are the only parts of vesselflow that import napari
-or Qt; the command line imports this module only for ``vesselflow view``, and
-it needs the optional extra (``pip install 'vesselflow[viewer]'``).
-
-Everything is shown in physical units: the world frame is µm, with voxel
-(i, j, k) at (i·dz, j·dy, k·dx). The mask is an image layer with
-``scale = spacing``; centrelines, nodes and bifurcations are placed at their
-µm positions from ``centrelines.npz``, ``nodes.csv`` and ``bifurcations.csv``
-(scale 1).
-
-Layers:
-
-``mask``
-    The binary mask, as a faint maximum projection in 3-D.
-``centrelines``
-    Every segment's smoothed centreline as a chain of short vectors, coloured
-    by the chosen measure (:data:`pipeline.review.COLOUR_MEASURES`) with the
-    ``viridis`` colour map; grey where a segment has no value. The legend is
-    a colour bar in the review panel and a text line on the canvas.
-``nodes``
-    All nodes, light grey.
-``flagged bifurcations``
-    The flagged junctions, drawn over everything else; magenta until
-    reviewed, then orange (``confirmed``), grey (``artefact``) or light blue
-    (``unsure``).
-``current bifurcation``
-    A white ring round the junction under review.
-
-The review panel lists the flagged junctions in a sortable table, at first
-by decreasing ``severity`` (deviation from Murray's law in standard
-uncertainties, see :mod:`pipeline.bifurcations`); Previous and Next follow
-the table's order; choosing a row centres and zooms the
-camera on the junction and shows its parent and daughter radii and measures;
-the decision buttons and the note field save ``review.csv`` at once.
-
-For napari's own menus the module provides an npe2 reader (open a result
-folder: File > Open Folder) and the review panel as a widget
-(Plugins > vesselflow > Bifurcation review), which finds the result through
-the layers the reader made.
+In: a napari viewer showing a result's layers. Out: a dock widget that centres the camera on a
+junction, shows its parent and daughters, and saves ``review.csv`` on every decision or note.
 """
 
 from __future__ import annotations
 
 import math
-import os
 from pathlib import Path
-from typing import Any
 
-import napari
 import numpy as np
 import pandas as pd
 from napari.utils.colormaps import ensure_colormap
 from qtpy import QtCore, QtGui, QtWidgets
 
-from . import review as rv, tables
-from .errors import InputError
+from .. import review as rv, tables
+from ..errors import InputError
 
-__all__ = [
-    "ReviewPanel",
-    "open_result",
-    "render_screenshot",
-    "read_mask_for",
-    "result_layers",
-    "napari_get_reader",
-    "FLAGGED_RGBA",
-    "DECISION_RGBA",
-    "CENTRELINE_COLORMAP",
-]
+from .layers import (
+    CENTRELINE_COLORMAP, _META_KEY, _centreline_vectors, _colours, _flag_colours, _flagged, read_mask_for,
+    result_layers,
+)
 
-CENTRELINE_COLORMAP = "viridis"
-#: Face colour of a flagged junction not yet reviewed (magenta: not in viridis,
-#: so it never blends into the centreline colours).
-FLAGGED_RGBA = (1.0, 0.0, 1.0, 1.0)
-#: Face colour of a reviewed flagged junction, per decision.
-DECISION_RGBA = {
-    "confirmed": (1.0, 0.55, 0.0, 1.0),
-    "artefact": (0.5, 0.5, 0.5, 1.0),
-    "unsure": (0.35, 0.75, 1.0, 1.0),
-}
-NO_VALUE_RGBA = (0.6, 0.6, 0.6, 1.0)
-NODE_RGBA = (0.85, 0.85, 0.85, 1.0)
-CURRENT_RGBA = (1.0, 1.0, 1.0, 1.0)
 
-_META_KEY = "vesselflow_result"
-# Markers are sized from the local vessel radius so they read as "this junction"
-# without hiding the vessels round it: a flagged marker a little wider than the
-# parent vessel, the ring round it wider still, and the close-up view a few
-# parent diameters across (never below 40 µm, so thin capillaries keep context).
-_FLAG_SIZE_RADII = 2.4
 _RING_SIZE_RADII = 4.0
 _VIEW_RADII = 8.0
 _VIEW_MIN_UM = 40.0
-_SCREENSHOT_SIZE = (768, 1024)
 
 
 # ---------------------------------------------------------------------------
@@ -115,151 +44,6 @@ def _text_overlay(viewer):
     if overlays is not None and hasattr(overlays, "text"):
         return overlays.text
     return viewer.text_overlay
-
-
-# ---------------------------------------------------------------------------
-# data -> layers
-# ---------------------------------------------------------------------------
-
-def read_mask_for(result: tables.Result, mask_path: str | os.PathLike[str] | None = None):
-    """The mask of a result, as a boolean (Z, Y, X) array.
-
-    Parameters
-    ----------
-    result : pipeline.tables.Result
-    mask_path : path, optional
-        Default: the input recorded in ``run.json``.
-
-    Returns
-    -------
-    mask : ndarray of bool or None
-        None when no path was given and the recorded file no longer exists.
-    message : str or None
-        Why the mask is missing, or that it differs from the one analysed,
-        for a warning.
-
-    Raises
-    ------
-    InputError
-        If ``mask_path`` is given but cannot be read, or the mask's shape
-        differs from the one the result was computed from.
-    """
-    img, notes = tables.read_result_mask(result, mask_path)
-    if img is None:
-        return None, notes[0] + "; showing the graph without it (pass --mask PATH)"
-    return img.mask, ("; ".join(notes) or None)
-
-
-def _colours(values: np.ndarray, *, measure: str):
-    """RGBA per value and the colour limits (grey for NaN)."""
-    finite = values[np.isfinite(values)]
-    if finite.size:
-        lo, hi = float(finite.min()), float(finite.max())
-    else:
-        lo, hi = 0.0, 1.0
-    if measure == "murray_ratio" and finite.size:
-        # Centre the scale on the cube law (ratio 1) so above and below read alike.
-        half = max(abs(hi - 1.0), abs(1.0 - lo), 1e-6)
-        lo, hi = 1.0 - half, 1.0 + half
-    span = hi - lo if hi > lo else 1.0
-    t = np.clip((np.nan_to_num(values, nan=lo) - lo) / span, 0.0, 1.0)
-    rgba = np.asarray(ensure_colormap(CENTRELINE_COLORMAP).map(t), dtype=np.float32).reshape(-1, 4)
-    rgba[~np.isfinite(values)] = NO_VALUE_RGBA
-    return rgba, (lo, hi)
-
-
-def _centreline_vectors(result: tables.Result):
-    """(N, 2, 3) napari vectors (start, step) along every centreline, and each one's segment row."""
-    starts, steps, owner = [], [], []
-    for row, p in enumerate(result.centrelines):
-        p = np.asarray(p, dtype=float)
-        if len(p) < 2:
-            continue
-        starts.append(p[:-1])
-        steps.append(np.diff(p, axis=0))
-        owner.append(np.full(len(p) - 1, row))
-    if not starts:
-        return np.zeros((0, 2, 3)), np.zeros(0, dtype=np.int64)
-    return np.stack([np.vstack(starts), np.vstack(steps)], axis=1), np.concatenate(owner)
-
-
-def _flagged(result: tables.Result) -> pd.DataFrame:
-    """The review queue: flagged junctions, most severe first (ties and results without ``severity`` by node)."""
-    b = result.bifurcations
-    if b.shape[1] == 0 or "flagged" not in b.columns:
-        return pd.DataFrame(columns=["node_id", "z_um", "y_um", "x_um", "radius_parent_um"])
-    fl = b[b["flagged"].astype(bool)]
-    if "severity" in fl.columns:
-        fl = fl.sort_values("severity", ascending=False, kind="stable", na_position="last")
-    return fl.reset_index(drop=True)
-
-
-def _flag_colours(node_ids, decisions: dict) -> np.ndarray:
-    out = np.array([DECISION_RGBA.get(decisions.get(int(n)), FLAGGED_RGBA) for n in node_ids], dtype=float)
-    return out.reshape(-1, 4)
-
-
-def result_layers(result: tables.Result, *, mask: np.ndarray | None = None, colour_by: str = "radius",
-                  review: pd.DataFrame | None = None) -> list[tuple[Any, dict, str]]:
-    """napari layer data tuples for a result folder.
-
-    Parameters
-    ----------
-    result : pipeline.tables.Result
-    mask : ndarray of bool, optional, keyword-only
-        Shown with ``scale = spacing``.
-    colour_by : str, keyword-only
-        A key of :data:`pipeline.review.COLOUR_MEASURES`.
-    review : DataFrame, optional, keyword-only
-        Decisions that colour the flagged junctions (default: none).
-
-    Returns
-    -------
-    list of (data, kwargs, layer_type)
-        ``mask`` (if given), ``centrelines``, ``nodes``,
-        ``flagged bifurcations``; every layer's metadata names the folder.
-    """
-    meta = {_META_KEY: str(Path(result.path).resolve())}
-    spacing = tuple(float(s) for s in result.spacing)
-    layers: list[tuple[Any, dict, str]] = []
-    if mask is not None:
-        layers.append((np.asarray(mask).view(np.uint8), dict(
-            name="mask", scale=spacing, colormap="gray", contrast_limits=(0, 1), opacity=0.35,
-            # A maximum projection added to what lies behind keeps the centrelines
-            # inside the vessels visible, and renders several times faster than an
-            # iso-surface with software OpenGL.
-            rendering="mip", blending="additive", metadata=dict(meta)), "image"))
-    values = rv.segment_measure(result, colour_by)
-    vec, owner = _centreline_vectors(result)
-    rgba, _ = _colours(values, measure=colour_by)
-    radius = result.segments["radius_um"].to_numpy(float) if len(result.segments) else np.ones(0)
-    width = float(np.clip(0.4 * np.nanmedian(radius), 0.5, 5.0)) if radius.size else 1.0
-    layers.append((vec, dict(
-        name="centrelines", edge_color=rgba[owner] if len(owner) else "white", edge_width=width, length=1.0,
-        vector_style="line", features=pd.DataFrame({
-            "segment_id": result.segments["segment_id"].to_numpy(np.int64)[owner] if len(owner) else [],
-            "value": values[owner] if len(owner) else []}),
-        metadata={**meta, "colour_by": colour_by}), "vectors"))
-    nodes = result.nodes
-    npos = nodes[["z_um", "y_um", "x_um"]].to_numpy(float) if len(nodes) else np.zeros((0, 3))
-    nrad = nodes["radius_um"].to_numpy(float) if "radius_um" in nodes.columns else np.full(len(nodes), 1.0)
-    nrad = np.where(np.isfinite(nrad) & (nrad > 0), nrad, 1.0)
-    layers.append((npos, dict(
-        name="nodes", size=0.8 * nrad, face_color=np.tile(NODE_RGBA, (len(npos), 1)), border_width=0, opacity=0.6,
-        features=pd.DataFrame({"node_id": nodes["node_id"].to_numpy(np.int64) if len(nodes) else [],
-                               "kind": nodes["kind"].astype(str).to_numpy() if len(nodes) else []}),
-        metadata=dict(meta)), "points"))
-    flag = _flagged(result)
-    decisions = {} if review is None else dict(zip(review["node_id"].astype(int), review["decision"]))
-    fpos = flag[["z_um", "y_um", "x_um"]].to_numpy(float) if len(flag) else np.zeros((0, 3))
-    frad = flag["radius_parent_um"].to_numpy(float) if len(flag) else np.zeros(0)
-    layers.append((fpos, dict(
-        name="flagged bifurcations", size=_FLAG_SIZE_RADII * np.where(np.isfinite(frad), frad, 2.0),
-        face_color=_flag_colours(flag["node_id"], decisions),
-        border_width=0, blending="translucent_no_depth",
-        features=pd.DataFrame({"node_id": flag["node_id"].to_numpy(np.int64) if len(flag) else []}),
-        metadata=dict(meta)), "points"))
-    return layers
 
 
 # ---------------------------------------------------------------------------
@@ -743,134 +527,3 @@ class ReviewPanel(QtWidgets.QWidget):
         overlay.text = (f"centrelines: {label}{(' [' + unit + ']') if unit else ''}\n"
                         f"{lo:.3g} (purple) to {hi:.3g} (yellow), grey: none; flagged junctions: magenta")
         overlay.visible = True
-
-
-# ---------------------------------------------------------------------------
-# entry points
-# ---------------------------------------------------------------------------
-
-def open_result(outdir, *, mask_path=None, colour_by="radius", show=True, viewer=None):
-    """Open a result folder in a napari viewer with the review panel docked.
-
-    Parameters
-    ----------
-    outdir : path
-    mask_path : path, optional, keyword-only
-        Default: the input recorded in ``run.json``.
-    colour_by : str, keyword-only
-    show : bool, keyword-only
-        Show the window (False for screenshots and tests).
-    viewer : napari.Viewer, optional, keyword-only
-        Add to this viewer instead of a new one.
-
-    Returns
-    -------
-    (napari.Viewer, ReviewPanel)
-
-    Raises
-    ------
-    InputError
-        Incomplete folder, invalid review, unreadable mask, unknown measure.
-    """
-    result = tables.load_result(outdir)
-    rv.segment_measure(result, colour_by)  # fail before a window opens
-    planar = bool(result.run.get("planar"))
-    own = viewer is None
-    if own:
-        viewer = napari.Viewer(title=f"vesselflow: {Path(outdir).name}", ndisplay=2 if planar else 3, show=show)
-    try:
-        panel = ReviewPanel(viewer, outdir=outdir, mask_path=mask_path, colour_by=colour_by, add_layers=True)
-        viewer.window.add_dock_widget(panel, name="Bifurcation review", area="right")
-    except BaseException:
-        if own:
-            viewer.close()
-        raise
-    return viewer, panel
-
-
-def _realise_hidden(viewer):
-    # A never-shown Qt window has no GL surface and napari renders it black;
-    # WA_DontShowOnScreen lets Qt create the surface without mapping a window.
-    win = getattr(viewer.window, "_qt_window", None)
-    if win is None:
-        return
-    win.setAttribute(QtCore.Qt.WidgetAttribute.WA_DontShowOnScreen, True)
-    win.resize(_SCREENSHOT_SIZE[1] + 400, _SCREENSHOT_SIZE[0] + 200)
-    win.show()
-    QtWidgets.QApplication.processEvents()
-
-
-def render_screenshot(outdir, path, *, mask_path=None, colour_by="radius", bifurcation=None, overwrite=False,
-                      size=_SCREENSHOT_SIZE):
-    """Render the canvas to a PNG file without showing a window.
-
-    Parameters
-    ----------
-    outdir : path
-        Result folder.
-    path : path
-        PNG file to write (atomically).
-    mask_path, colour_by : keyword-only
-        As for :func:`open_result`.
-    bifurcation : int, optional, keyword-only
-        Centre and zoom on this junction; default: the whole sample.
-    overwrite : bool, keyword-only
-        Replace an existing file.
-    size : (int, int), keyword-only
-        Height and width in pixels.
-
-    Returns
-    -------
-    ndarray, shape (H, W, 4)
-        The RGBA picture written.
-
-    Raises
-    ------
-    InputError
-        Bad folder, junction or file name, or an existing file without ``overwrite``.
-    """
-    out = Path(path)
-    if out.suffix.lower() != ".png":
-        raise InputError(f"--screenshot: expected a .png file name, got '{out}'")
-    if out.exists() and not overwrite:
-        raise InputError(f"--screenshot: '{out}' exists; pass --overwrite to replace it")
-    viewer, panel = open_result(outdir, mask_path=mask_path, colour_by=colour_by, show=False)
-    try:
-        _realise_hidden(viewer)
-        viewer.reset_view()
-        panel._base_zoom = float(_camera(viewer).zoom)
-        if bifurcation is not None:
-            panel.goto(bifurcation)
-        img = np.asarray(viewer.screenshot(canvas_only=True, size=tuple(size)))
-    finally:
-        viewer.close()
-    _write_png(out, img)
-    return img
-
-
-def _write_png(path: Path, img: np.ndarray):
-    from PIL import Image
-
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tables.write_atomic(path, lambda tmp: Image.fromarray(np.ascontiguousarray(img)).save(tmp, format="PNG"))
-
-
-def napari_get_reader(path):
-    """npe2 reader: a function reading a vesselflow result folder, or None for other paths."""
-    if isinstance(path, (list, tuple)):
-        if len(path) != 1:
-            return None
-        path = path[0]
-    p = Path(path)
-    if not (p.is_dir() and (p / "run.json").is_file() and (p / "bifurcations.csv").is_file()):
-        return None
-    return _read_result
-
-
-def _read_result(path):
-    if isinstance(path, (list, tuple)):
-        path = path[0]
-    result = tables.load_result(path)
-    mask, _ = read_mask_for(result)
-    return result_layers(result, mask=mask, review=rv.load_review(path))
-

@@ -1,0 +1,131 @@
+"""A viewer session over a result folder, and screenshots.
+
+In: a result folder (and its mask). Out: a napari viewer with the result's layers and the review
+panel (:func:`open_result`), or a PNG of the view (:func:`render_screenshot`, headless).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import napari
+import numpy as np
+from qtpy import QtCore, QtWidgets
+
+from .. import review as rv, tables
+from ..errors import InputError
+
+from .panel import ReviewPanel, _camera
+
+
+_SCREENSHOT_SIZE = (768, 1024)
+
+
+# ---------------------------------------------------------------------------
+# entry points
+# ---------------------------------------------------------------------------
+
+def open_result(outdir, *, mask_path=None, colour_by="radius", show=True, viewer=None):
+    """Open a result folder in a napari viewer with the review panel docked.
+
+    Parameters
+    ----------
+    outdir : path
+    mask_path : path, optional, keyword-only
+        Default: the input recorded in ``run.json``.
+    colour_by : str, keyword-only
+    show : bool, keyword-only
+        Show the window (False for screenshots and tests).
+    viewer : napari.Viewer, optional, keyword-only
+        Add to this viewer instead of a new one.
+
+    Returns
+    -------
+    (napari.Viewer, ReviewPanel)
+
+    Raises
+    ------
+    InputError
+        Incomplete folder, invalid review, unreadable mask, unknown measure.
+    """
+    result = tables.load_result(outdir)
+    rv.segment_measure(result, colour_by)  # fail before a window opens
+    planar = bool(result.run.get("planar"))
+    own = viewer is None
+    if own:
+        viewer = napari.Viewer(title=f"vesselflow: {Path(outdir).name}", ndisplay=2 if planar else 3, show=show)
+    try:
+        panel = ReviewPanel(viewer, outdir=outdir, mask_path=mask_path, colour_by=colour_by, add_layers=True)
+        viewer.window.add_dock_widget(panel, name="Bifurcation review", area="right")
+    except BaseException:
+        if own:
+            viewer.close()
+        raise
+    return viewer, panel
+
+
+def _realise_hidden(viewer):
+    # A never-shown Qt window has no GL surface and napari renders it black;
+    # WA_DontShowOnScreen lets Qt create the surface without mapping a window.
+    win = getattr(viewer.window, "_qt_window", None)
+    if win is None:
+        return
+    win.setAttribute(QtCore.Qt.WidgetAttribute.WA_DontShowOnScreen, True)
+    win.resize(_SCREENSHOT_SIZE[1] + 400, _SCREENSHOT_SIZE[0] + 200)
+    win.show()
+    QtWidgets.QApplication.processEvents()
+
+
+def render_screenshot(outdir, path, *, mask_path=None, colour_by="radius", bifurcation=None, overwrite=False,
+                      size=_SCREENSHOT_SIZE):
+    """Render the canvas to a PNG file without showing a window.
+
+    Parameters
+    ----------
+    outdir : path
+        Result folder.
+    path : path
+        PNG file to write (atomically).
+    mask_path, colour_by : keyword-only
+        As for :func:`open_result`.
+    bifurcation : int, optional, keyword-only
+        Centre and zoom on this junction; default: the whole sample.
+    overwrite : bool, keyword-only
+        Replace an existing file.
+    size : (int, int), keyword-only
+        Height and width in pixels.
+
+    Returns
+    -------
+    ndarray, shape (H, W, 4)
+        The RGBA picture written.
+
+    Raises
+    ------
+    InputError
+        Bad folder, junction or file name, or an existing file without ``overwrite``.
+    """
+    out = Path(path)
+    if out.suffix.lower() != ".png":
+        raise InputError(f"--screenshot: expected a .png file name, got '{out}'")
+    if out.exists() and not overwrite:
+        raise InputError(f"--screenshot: '{out}' exists; pass --overwrite to replace it")
+    viewer, panel = open_result(outdir, mask_path=mask_path, colour_by=colour_by, show=False)
+    try:
+        _realise_hidden(viewer)
+        viewer.reset_view()
+        panel._base_zoom = float(_camera(viewer).zoom)
+        if bifurcation is not None:
+            panel.goto(bifurcation)
+        img = np.asarray(viewer.screenshot(canvas_only=True, size=tuple(size)))
+    finally:
+        viewer.close()
+    _write_png(out, img)
+    return img
+
+
+def _write_png(path: Path, img: np.ndarray):
+    from PIL import Image
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tables.write_atomic(path, lambda tmp: Image.fromarray(np.ascontiguousarray(img)).save(tmp, format="PNG"))
