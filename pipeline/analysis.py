@@ -110,13 +110,12 @@ class Analysis:
         return self._graph
 
 
-def _as_mask(mask):
+def _as_mask(mask, threshold):
     arr = np.asarray(mask)
     if arr.ndim not in (2, 3):
         raise InputError(f"mask: expected a 2-D (Y, X) or 3-D (Z, Y, X) array, got {arr.ndim} dimensions {arr.shape}")
-    if arr.dtype != bool:
-        arr = arr != 0
-    return arr
+    # the rules files are read by: two values (0 and vessel), or a threshold
+    return reading.binarise(arr, threshold=threshold, label="mask")
 
 
 def _check_spacing(spacing, ndim):
@@ -141,7 +140,10 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     Parameters
     ----------
     mask : (Z, Y, X) or (Y, X) array_like
-        Vessel mask; any non-zero value is vessel.
+        Vessel mask: boolean, or two values of which one is 0 (the other is
+        vessel), as a file is read (:func:`pipeline.reading.binarise`); an
+        intensity or probability image needs ``input.threshold`` in the
+        config (vessel is ``value > threshold``).
     spacing : sequence of float
         Voxel spacing in µm, ``(dz, dy, dx)`` (or ``(dy, dx)`` for 2-D).
     config : dict, str, Path or None
@@ -177,7 +179,7 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     1
     """
     cfg = load_config(config)
-    arr = _as_mask(mask)
+    arr = _as_mask(mask, cfg["input"]["threshold"])
     sp = _check_spacing(spacing, arr.ndim)
     if arr.ndim == 2:
         arr = arr[None]

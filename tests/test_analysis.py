@@ -316,3 +316,32 @@ def test_default_haematocrit_iteration_converges(volume):
     assert flow["rheology_flow_change"] <= res.run["config"]["flow"]["rheology_rtol"]
     assert flow["red_cell_conservation_residual"] <= 1e-6
     assert not [w for w in res.run["warnings"] if "did not converge" in w]
+
+
+@pytest.fixture(scope="module")
+def tube_mask():
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=40.0, radius_um=3.0), spacing=(1, 1, 1))
+    return mask
+
+
+@pytest.mark.parametrize("values, threshold", [
+    ((0, 255), None),  # a two-valued 8-bit export: non-zero is vessel
+    ((0.0, 1.0), None),
+    ((0.1, 0.9), 0.5),  # a probability map with the threshold in the config
+])
+def test_arrays_are_binarised_as_files_are(tube_mask, values, threshold):
+    arr = np.where(tube_mask, values[1], values[0]).astype(np.uint8 if isinstance(values[1], int) else float)
+    res = pipeline.analyze(arr, spacing=(1, 1, 1), config={"input": {"threshold": threshold}, "flow": {"enabled": False}})
+    ref = pipeline.analyze(tube_mask, spacing=(1, 1, 1), config={"flow": {"enabled": False}})
+    assert len(res.segments) == len(ref.segments) == 1
+    assert res.segments["length_um"].iloc[0] == ref.segments["length_um"].iloc[0]
+
+
+@pytest.mark.parametrize("make", [
+    lambda m: np.where(m, 0.9, 0.1) + 0.01 * np.arange(m.size).reshape(m.shape) / m.size,  # intensities
+    lambda m: m.astype(np.uint8) * (1 + (np.indices(m.shape)[2] > 20)),  # labels 0, 1, 2
+])
+def test_a_non_binary_array_without_threshold_is_refused(tube_mask, make):
+    # As read_mask refuses such a file: every non-zero voxel would be vessel.
+    with pytest.raises(InputError, match="distinct values.*threshold"):
+        pipeline.analyze(make(tube_mask), spacing=(1, 1, 1))

@@ -49,6 +49,7 @@ from ._common import DEFAULT_SPACING_WARNING, MaskImage, SUPPORTED_EXTENSIONS
 from .spacing import PLAUSIBLE_SPACING_UM, spacing_problem
 from .memory import available_memory_bytes, check_memory, estimate_memory_bytes, thinning_grid_shape
 from .reader import mask_from_array, read_mask, sha256_file
+from .values import binarise
 
 __all__ = [
     "MaskImage",
@@ -63,4 +64,5 @@ __all__ = [
     "SUPPORTED_EXTENSIONS",
     "DEFAULT_SPACING_WARNING",
     "sha256_file",
+    "binarise",
 ]

@@ -120,6 +120,38 @@ def _fmt_value(v: Any) -> str:
     return f"{float(v):.6g}"
 
 
+def binarise(array: Any, *, threshold: float | None = None, label: str = "mask") -> np.ndarray:
+    """Boolean mask of an array by the rules files are read by.
+
+    Parameters
+    ----------
+    array : (Z, Y, X) or (Y, X) array_like
+        Boolean, integer or floating-point values.
+    threshold : float, optional
+        Vessel is ``value > threshold``. Without it the array must hold at
+        most two distinct values, one of them 0, and vessel is non-zero.
+    label : str
+        What the array is, for the messages.
+
+    Returns
+    -------
+    ndarray of bool, same shape as ``array``
+        A new array (the input is never changed); a boolean input without a
+        threshold is returned as it is.
+
+    Raises
+    ------
+    InputError
+        Values of another type, or more than two distinct values without a
+        threshold (an intensity or probability image).
+    """
+    arr = np.asarray(array)
+    if arr.dtype == np.bool_ and threshold is None:
+        return arr
+    raw = arr if arr.ndim == 3 else arr.reshape((1,) * (3 - arr.ndim) + arr.shape)
+    return _binarise(label, raw, threshold=threshold, in_place=False).reshape(arr.shape)
+
+
 def _binarise(
     label: str,
     raw: np.ndarray,
