@@ -192,143 +192,176 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         raise InputError("mask: expected some vessel voxels, got an empty mask (every voxel is 0)")
     if arr.all():
         raise InputError("mask: expected background around the vessels, got a mask where every voxel is vessel")
-    timings = {}
-    t = time.perf_counter()
-
-    def tick(step):
-        nonlocal t
-        now = time.perf_counter()
-        timings[step] = round(now - t, 4)
-        if progress is not None:
-            progress(step, now - t)
-        t = now
-
+    clock = _Clock(progress)
     c = cfg["cleaning"]
     cleaned = cleaning.clean_mask(arr, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
                                   min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"],
                                   planar=planar)
     original_shape = arr.shape
     del arr
-    tick("cleaning")
+    clock.tick("cleaning")
     cl = centrelines.extract_centrelines(
         cleaned.mask, spacing=sp, offset=cleaned.offset, original_shape=original_shape, planar=planar,
         max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"],
         half_voxel_correction=cfg["radii"]["half_voxel_correction"],
     )
-    tick("centrelines")
+    clock.tick("centrelines")
     g = graph_step.build_graph(cl)
-    tick("graph")
+    clock.tick("graph")
     # Radii from the wall before pruning: the pruning rules compare lengths
     # with radii, and the distance map's inscribed radius reads low on rough
     # walls (it touches the deepest dent), which keeps bumps as branches.
     wall = None
     if cfg["radii"]["estimator"] == "wall_fit":
         wall = _fit_wall_radii(g, cleaned, sp, planar)
-        tick("radii")
-    p = cfg["pruning"]
+        clock.tick("radii")
+    _prune(g, cfg["pruning"], grid_spacing=cl.grid_spacing, spacing=sp, planar=planar, shape=original_shape)
+    if wall is not None:
+        _to_mean_radii(g, *wall)
+    clock.tick("pruning")
+    segs, nodes, keys, smoothed = _graph_tables(g, cfg, grid_spacing=cl.grid_spacing, spacing=sp)
+    clock.tick("measures")
+    warnings = []
+    summary = _sample_summary(segs, nodes, cleaned, cl, spacing=sp, planar=planar, shape=original_shape,
+                              warnings=warnings)
+    clock.tick("summary")
+    net = _network_steps(segs, nodes, smoothed, cfg, inlets=inlets, outlets=outlets, spacing=sp, planar=planar,
+                         summary=summary, warnings=warnings, clock=clock)
+    counts = {**cleaned.stats, **g.counts, "resampled_isotropic": bool(cl.resampled),
+              "thinning_grid_spacing_um": list(cl.grid_spacing)}
+    run = {"config": cfg, "timings_s": clock.timings, "counts": counts, "warnings": warnings, "planar": bool(planar),
+           "shape": list(original_shape), "crop_offset": list(cleaned.offset), "roots": [int(r) for r in net["roots"]],
+           "notes": net["notes"], "flow": net["flow"]}
+    return Analysis(segments=net["segments"], nodes=net["nodes"], summary=summary, centrelines=smoothed,
+                    centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=net["levels"],
+                    bifurcations=net["bifurcations"], run=run, vessels=net["vessels"], orders=net["orders"].table,
+                    order_connectivity=net["orders"].connectivity)
+
+
+class _Clock:
+    """Seconds per step for run.json, each also handed to ``progress(step, seconds)``."""
+
+    def __init__(self, progress):
+        self.progress, self.timings, self.t = progress, {}, time.perf_counter()
+
+    def tick(self, step):
+        now = time.perf_counter()
+        self.timings[step] = round(now - self.t, 4)
+        if self.progress is not None:
+            self.progress(step, now - self.t)
+        self.t = now
+
+
+def _prune(g, p, *, grid_spacing, spacing, planar, shape):
+    """The pruning step with the ``pruning`` section's options (in place)."""
     pruning_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
                              junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
                              spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
                              web_loop_radii=p["web_loop_radii"], border_spur_radii=p["border_spur_radii"],
-                             voxel_um=float(max(cl.grid_spacing[1:] if planar else cl.grid_spacing)),
+                             voxel_um=float(max(grid_spacing[1:] if planar else grid_spacing)),
                              min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],
-                             reconnect=p["reconnect_gaps"], spacing_um=sp,
-                             volume_um=(np.asarray(original_shape) - 1) * np.asarray(sp),
+                             reconnect=p["reconnect_gaps"], spacing_um=spacing,
+                             volume_um=(np.asarray(shape) - 1) * np.asarray(spacing),
                              max_gap_voxels=p["max_gap_voxels"], max_gap_angle_deg=p["max_gap_angle_deg"])
-    if wall is not None:
-        _to_mean_radii(g, *wall)
-    tick("pruning")
-    segs, keys, smoothed = measures.segment_table(g, grid_spacing=cl.grid_spacing, radii_config=cfg["radii"],
+
+
+def _graph_tables(g, cfg, *, grid_spacing, spacing):
+    """Segments and nodes tables of the pruned graph, nodes numbered 0..N-1; path keys and smoothed centrelines."""
+    segs, keys, smoothed = measures.segment_table(g, grid_spacing=grid_spacing, radii_config=cfg["radii"],
                                                   measures_config=cfg["measures"])
     alive = np.flatnonzero(g.node_alive)
     renumber = np.full(len(g.node_pos_um), -1, dtype=np.int64)
     renumber[alive] = np.arange(len(alive))
     segs["node_from"] = renumber[segs["node_from"].to_numpy()]
     segs["node_to"] = renumber[segs["node_to"].to_numpy()]
-    nodes = measures.node_table(g, spacing=sp, node_ids=alive)
-    tick("measures")
-    warnings = []
+    nodes = measures.node_table(g, spacing=spacing, node_ids=alive)
+    return segs, nodes, keys, smoothed
+
+
+def _sample_summary(segs, nodes, cleaned, cl, *, spacing, planar, shape, warnings):
+    """The sample's morphometry summary; remarks on an empty or implausible result go to ``warnings``."""
     if len(segs) == 0:
         warnings.append("no vessel segment survived pruning; the tables are empty")
     td = cl.tissue_distance_um
     if td is None:
-        td = measures.tissue_distance(cleaned.mask, cleaned.offset, original_shape, sp, planar=planar)
-    summary = measures.summarize(segs, nodes, cleaned=cleaned, spacing=sp, planar=planar,
-                                 original_shape=original_shape, tissue_dist=td)
+        td = measures.tissue_distance(cleaned.mask, cleaned.offset, shape, spacing, planar=planar)
+    summary = measures.summarize(segs, nodes, cleaned=cleaned, spacing=spacing, planar=planar,
+                                 original_shape=shape, tissue_dist=td)
     median_radius = float(segs["radius_um"].median()) if len(segs) else math.nan
     lo, hi = _PLAUSIBLE_MEDIAN_RADIUS_UM
     if math.isfinite(median_radius) and not lo <= median_radius <= hi:
-        shown = ", ".join(f"{v:g}" for v in sp)
+        shown = ", ".join(f"{v:g}" for v in spacing)
         warnings.append(f"median vessel radius {median_radius:.3g} µm is outside {lo:g}-{hi:g} µm, the vessels "
                         f"microscopy and micro-CT resolve; check the voxel spacing ({shown} µm, Z Y X) and its unit")
-    tick("summary")
-    notes = []
-    level_table = pd.DataFrame()
-    vessel_table = pd.DataFrame(columns=vessels_step.VESSEL_COLUMNS)
-    bif_table = pd.DataFrame(columns=bif_step.COLUMNS)
-    roots = []
-    flow_info = {"solved": False}
-    ordered = orders_step.empty_orders()
+    return summary
+
+
+def _network_steps(segs, nodes, smoothed, cfg, *, inlets, outlets, spacing, planar, summary, warnings, clock):
+    """Levels, vessels, orders, flow and bifurcations over the graph's tables; updates ``summary``."""
+    out = {"segments": segs, "nodes": nodes, "levels": pd.DataFrame(), "roots": [], "notes": [],
+           "vessels": pd.DataFrame(columns=vessels_step.VESSEL_COLUMNS),
+           "bifurcations": pd.DataFrame(columns=bif_step.COLUMNS), "flow": {"solved": False},
+           "orders": orders_step.empty_orders()}
     if len(segs):
         inlet_ids = _resolve_nodes(inlets, nodes, segs, "inlet")
         outlet_ids = _resolve_nodes(outlets, nodes, segs, "outlet")
-        lv, roots = levels_step.compute_levels(segs, nodes, config=cfg, inlets=inlet_ids, notes=notes)
+        lv, roots = levels_step.compute_levels(segs, nodes, config=cfg, inlets=inlet_ids, notes=out["notes"])
         segs = segs.merge(lv, on="segment_id", how="left", validate="one_to_one")
         level_table = levels_step.level_table(segs)
         summary["roots"] = [int(r) for r in roots]
         summary["segments_without_level"] = int(segs["level"].isna().sum())
-        tick("levels")
+        clock.tick("levels")
         mc = cfg["measures"]
-        assign, vessel_table = vessels_step.build_vessels(segs, nodes, smoothed, step_um=mc["tortuosity_step_um"],
-                                                          window_um=mc["vessel_window_um"], roots=roots)
+        assign, out["vessels"] = vessels_step.build_vessels(segs, nodes, smoothed, step_um=mc["tortuosity_step_um"],
+                                                            window_um=mc["vessel_window_um"], roots=roots)
         segs = segs.merge(assign[["segment_id", "vessel_id"]], on="segment_id", how="left", validate="one_to_one")
-        summary.update(vessels_step.vessel_summary(vessel_table))
-        tick("vessels")
+        summary.update(vessels_step.vessel_summary(out["vessels"]))
+        clock.tick("vessels")
         ordered = orders_step.compute_orders(segs)
         segs = segs.merge(ordered.segments, on="segment_id", how="left", validate="one_to_one")
-        tick("orders")
+        clock.tick("orders")
         if cfg["flow"]["enabled"] and roots:
-            known = roots
-            if cfg["flow"]["boundary"] == "estimate" and str(cfg["levels"]["root"]).strip().lower() == "auto":
-                # the automatic root is a guess for counting levels, not a
-                # measured inlet: only inlets the user named are known
-                known = inlet_ids
-            fr = flow_step.solve_flow(segs, nodes, inlets=known, outlets=outlet_ids or None, config=cfg)
-            new = [c for c in fr.segments.columns if c == "segment_id" or c not in segs.columns]
-            segs = segs.merge(fr.segments[new], on="segment_id", how="left", validate="one_to_one")
-            nodes = nodes.merge(fr.nodes, on="node_id", how="left", validate="one_to_one")
-            for key in ("total_inflow_nl_min", "network_resistance_pa_s_um3", "perfused_length_fraction",
-                        "max_conservation_residual", "n_inlets", "n_outlets"):
-                summary[key] = fr.summary.get(key)
-            # speed and shear by diameter class, and what is checked against
-            # physiological ranges
-            for key in fr.summary:
-                if key.startswith(("velocity_", "wss_", "n_perfused_", "perfused_length_um_")):
-                    summary[key] = fr.summary[key]
-            flow_info = {"solved": True, **fr.summary}
-            warnings.extend(fr.warnings)
-            tick("flow")
+            segs, nodes, out["flow"] = _flow(segs, nodes, cfg, roots=roots, inlet_ids=inlet_ids,
+                                             outlet_ids=outlet_ids, summary=summary, warnings=warnings)
+            clock.tick("flow")
         elif cfg["flow"]["enabled"]:
             warnings.append("flow not solved: no root or inlet node could be chosen")
         # The wall fit's slab and quantisation follow the coarsest spacing of
         # the mask (planar: in-plane) the radii were fitted on.
         bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed, config=cfg,
-                                                               voxel_um=float(max(sp[1:] if planar else sp)))
+                                                               voxel_um=float(max(spacing[1:] if planar else spacing)))
         summary.update(bif_summary)
         if len(bif_table) and len(level_table):
             per_level = bif_step.levels_murray(bif_table)
             level_table = level_table.merge(per_level, on="level", how="left")
-        tick("bifurcations")
-    summary.update(ordered.summary)
-    counts = {**cleaned.stats, **g.counts, "resampled_isotropic": bool(cl.resampled),
-              "thinning_grid_spacing_um": list(cl.grid_spacing)}
-    run = {"config": cfg, "timings_s": timings, "counts": counts, "warnings": warnings, "planar": bool(planar),
-           "shape": list(original_shape), "crop_offset": list(cleaned.offset), "roots": [int(r) for r in roots],
-           "notes": notes, "flow": flow_info}
-    return Analysis(segments=segs, nodes=nodes, summary=summary, centrelines=smoothed,
-                    centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=level_table,
-                    bifurcations=bif_table, run=run, vessels=vessel_table, orders=ordered.table,
-                    order_connectivity=ordered.connectivity)
+        clock.tick("bifurcations")
+        out.update(segments=segs, nodes=nodes, levels=level_table, roots=roots, bifurcations=bif_table,
+                   orders=ordered)
+    summary.update(out["orders"].summary)
+    return out
+
+
+def _flow(segs, nodes, cfg, *, roots, inlet_ids, outlet_ids, summary, warnings):
+    """The flow step merged into the tables and the summary; returns (segments, nodes, run.json's flow record)."""
+    known = roots
+    if cfg["flow"]["boundary"] == "estimate" and str(cfg["levels"]["root"]).strip().lower() == "auto":
+        # the automatic root is a guess for counting levels, not a
+        # measured inlet: only inlets the user named are known
+        known = inlet_ids
+    fr = flow_step.solve_flow(segs, nodes, inlets=known, outlets=outlet_ids or None, config=cfg)
+    new = [c for c in fr.segments.columns if c == "segment_id" or c not in segs.columns]
+    segs = segs.merge(fr.segments[new], on="segment_id", how="left", validate="one_to_one")
+    nodes = nodes.merge(fr.nodes, on="node_id", how="left", validate="one_to_one")
+    for key in ("total_inflow_nl_min", "network_resistance_pa_s_um3", "perfused_length_fraction",
+                "max_conservation_residual", "n_inlets", "n_outlets"):
+        summary[key] = fr.summary.get(key)
+    # speed and shear by diameter class, and what is checked against
+    # physiological ranges
+    for key in fr.summary:
+        if key.startswith(("velocity_", "wss_", "n_perfused_", "perfused_length_um_")):
+            summary[key] = fr.summary[key]
+    warnings.extend(fr.warnings)
+    return segs, nodes, {"solved": True, **fr.summary}
 
 
 def _paths(g):
