@@ -21,7 +21,6 @@ import pandas as pd
 
 from ..config import load_config
 from ..errors import EngineError, InputError, VesselflowError
-
 from .study import cohort_tables
 
 

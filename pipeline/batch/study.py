@@ -16,7 +16,6 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
-
 from .stats import cliffs_delta, hodges_lehmann
 
 

@@ -17,7 +17,6 @@ import pandas as pd
 from .._checks import segment_end_rows
 from ..errors import InputError
 from ..measures import radius_uncertainty
-
 from ._common import REASON_CODES, UNCERTAIN_CODES, _empty_table, _float_column, _require, _section, _typed
 from .laws import _exponent_u, _exponents, _optimal_angles_u, _ratio_u, murray_optimal_angles
 from .angles import _angles_deg, _directions, _out_of_plane_deg

@@ -194,7 +194,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import ConfigError, InputError, SolverError
-
 from .haematocrit import _count_nodes, propagate_haematocrit, red_cell_residual
 from .viscosity import vivo_viscosity_mpa_s
 

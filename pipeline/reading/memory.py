@@ -17,7 +17,6 @@ from typing import Sequence
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import _fmt_axes, _positive_number
 from .spacing import _fmt_shown, spacing_problem
 

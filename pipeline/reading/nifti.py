@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import _FileSpacing, _Layout, _axes_error, _collect_library_messages, _corrupt, _short_reason
 from .spacing import PLAUSIBLE_SPACING_UM, _float_from_metadata, _fmt_spacing, _plausible
 from .values import _check_dtype

@@ -14,7 +14,6 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import _FileSpacing, _corrupt, _layout_positional, _short_reason
 from .values import _check_dtype
 from .opened import _Opened

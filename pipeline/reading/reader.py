@@ -16,7 +16,6 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import (
     MaskImage, SUPPORTED_EXTENSIONS, _check_threshold, _layout_positional, _optional_positive,
     _parse_spacing_argument, _positive_number, _recorded_warnings,

@@ -12,7 +12,6 @@ from typing import Any, Sequence
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import DEFAULT_SPACING_WARNING, _FileSpacing, _fmt_axes
 
 # Voxel sizes, µm, that the imaging this package is for produces (common

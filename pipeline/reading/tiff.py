@@ -16,7 +16,6 @@ from typing import Any
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import _FileSpacing, _collect_library_messages, _corrupt, _layout_named, _short_reason
 from .spacing import _unit_factor
 from .values import _check_dtype

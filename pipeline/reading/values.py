@@ -14,7 +14,6 @@ from typing import Any, Iterator
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import _CHUNK_VOXELS
 
 

@@ -15,7 +15,6 @@ import pandas as pd
 
 from .._version import __version__
 from ..errors import InputError, VesselflowError
-
 from ._common import (
     FIGURE_DIR, REPORT_NAME, STUDY_MEASURES, _CAUTION, _LOW_Q, _SECTION_FIGURES, _anchor, _esc, _fmt, _kv_table,
     _label, _num, _table,

@@ -17,7 +17,6 @@ from matplotlib.colors import LogNorm, Normalize
 from matplotlib.lines import Line2D
 
 from ..errors import InputError
-
 from ._common import (
     FLOW_FIGURES, OKABE_ITO, SAMPLE_FIGURES, _FLAG_COLOUR, _MASK_GREY, _MAX_NUMBERED, _bool_col, _col,
     _level_colours, _log_axes, _new_figure, _no_data,

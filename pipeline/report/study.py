@@ -12,7 +12,6 @@ import numpy as np
 import pandas as pd
 
 from ..batch import add_densities, hodges_lehmann_one_sample, science_measures
-
 from ._common import NETWORK_EXPONENT_KEYS, OKABE_ITO, _col, _fmt, _fmt_q, _label, _new_figure, _no_data, _num, _table
 
 

@@ -17,7 +17,6 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ..errors import InputError
-
 from ._common import (
     NODE_KINDS, _bad, _jsonable, _make_segment, _node, _nominal_radius, _polyline_length, _positive, _vec3,
 )

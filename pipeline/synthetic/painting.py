@@ -15,7 +15,6 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import InputError
-
 from .network import VesselNetwork, _chord_selection
 
 # The roughness field is clipped to +-2.5 sd, so with roughness <= 0.3 the local

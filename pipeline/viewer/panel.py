@@ -16,7 +16,6 @@ from qtpy import QtCore, QtGui, QtWidgets
 
 from .. import review as rv, tables
 from ..errors import InputError
-
 from .layers import (
     CENTRELINE_COLORMAP, _META_KEY, _centreline_vectors, _colours, _flag_colours, _flagged, read_mask_for,
     result_layers,

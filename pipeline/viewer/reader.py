@@ -9,7 +9,6 @@ from __future__ import annotations
 from pathlib import Path
 
 from .. import review as rv, tables
-
 from .layers import read_mask_for, result_layers
 
 

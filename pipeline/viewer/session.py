@@ -14,7 +14,6 @@ from qtpy import QtCore, QtWidgets
 
 from .. import review as rv, tables
 from ..errors import InputError
-
 from .panel import ReviewPanel, _camera
 
 
