@@ -56,7 +56,7 @@ def main(argv=None):
         for label, workers, threads in (("1 worker", 1, 1), ("2 workers", 2, 1), ("1 worker, 2 threads", 1, 2)):
             out = tmp / f"out-{workers}-{threads}"
             t = time.perf_counter()
-            res = batch.run_batch(samples, out, workers=workers, threads=threads, quiet=True)
+            res = batch.run_batch(samples, out, workers=workers, threads=threads)
             wall = time.perf_counter() - t
             computed = res.status.loc[res.status["status"] == "done", "seconds"]
             assert res.n_failed == 0 and len(computed) == args.samples, res.status

@@ -42,6 +42,73 @@ class _Reporter:
         print(f"vesselflow: warning: {msg}", file=sys.stderr, flush=True)
 
 
+class _BatchProgress:
+    """The batch's progress for ``run_batch(progress=...)``.
+
+    Counts on one terminal line, or plain log lines when not on a terminal.
+    """
+
+    def __init__(self, total, *, quiet=False, stream=None):
+        self.total, self.quiet = total, quiet
+        self.stream = stream or sys.stderr
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.done = self.failed = self.skipped = 0
+        self.start = time.monotonic()
+        self.pending_line = False  # a status line without its newline is on the terminal
+
+    def __call__(self, kind, value=None):
+        {"info": self.info, "sample": self.update, "warning": self.warn, "finish": lambda _: self.finish()}[kind](value)
+
+    def _eta(self):
+        # Skipped samples cost next to nothing: the rate is that of the analysed ones.
+        left = self.total - self.done - self.failed - self.skipped
+        if not left or not self.done + self.failed:
+            return ""
+        elapsed = time.monotonic() - self.start
+        per = elapsed / max(1, self.done + self.failed)
+        secs = per * left
+        return f", ETA {int(secs // 60)}m{int(secs % 60):02d}s"
+
+    def line(self):
+        left = self.total - self.done - self.failed - self.skipped
+        return (f"{self.done + self.skipped}/{self.total} done ({self.skipped} skipped), {self.failed} failed, "
+                f"{left} left{self._eta()}")
+
+    def update(self, rec):
+        status = rec["status"]
+        if status == "done":
+            self.done += 1
+        elif status == "skipped":
+            self.skipped += 1
+        else:
+            self.failed += 1
+        if self.quiet:
+            return
+        if self.tty:
+            if status == "failed":
+                self.info(f"{rec['sample_id']} failed in {rec['step']}: {rec['error']}")
+            print(f"\rvesselflow batch: {self.line()}\x1b[K", end="", file=self.stream, flush=True)
+            self.pending_line = True
+        else:
+            what = {"done": f"done in {rec['seconds']:.1f} s", "skipped": "skipped (complete result matches)",
+                    "failed": f"failed in {rec['step']}: {rec['error']}"}[status]
+            print(f"vesselflow batch: {rec['sample_id']} {what} [{self.line()}]", file=self.stream, flush=True)
+
+    def info(self, msg):
+        if not self.quiet:
+            self.finish()
+            print(f"vesselflow batch: {msg}", file=self.stream, flush=True)
+
+    def warn(self, msg):
+        self.finish()  # warnings show even with quiet
+        print(f"vesselflow batch: warning: {msg}", file=self.stream, flush=True)
+
+    def finish(self):
+        if self.pending_line:
+            print(file=self.stream, flush=True)
+            self.pending_line = False
+
+
 def _parser():
     p = argparse.ArgumentParser(prog="vesselflow", description="Measured vessel graphs from binary vessel masks.")
     p.add_argument("--version", action="version", version=f"vesselflow {__version__}")
@@ -251,7 +318,8 @@ def _cmd_batch(args):
         raise InputError(f"--workers: expected a whole number of at least 1, got {args.workers}")
     res = batch.run_batch(samples, args.output, config=cfg, workers=args.workers, scheduler=args.scheduler,
                           force=args.force, overwrite=args.overwrite, memory_limit=args.memory_limit,
-                          threads=args.threads, quiet=args.quiet, input_label=str(Path(args.input).resolve()),
+                          threads=args.threads, progress=_BatchProgress(len(samples), quiet=args.quiet),
+                          input_label=str(Path(args.input).resolve()),
                           worker_timeout=args.worker_timeout)
     if args.report:
         from .report import build_report

@@ -16,7 +16,6 @@ from scipy import stats
 
 from conftest import write_ybranch
 from pipeline import batch, synthetic
-from pipeline.batch import engine as batch_engine
 from pipeline.cli import main
 from pipeline.tables import RESULT_FILES, load_result
 
@@ -645,7 +644,7 @@ def test_a_killed_worker_fails_its_sample_alone(beds, tmp_path):
             samples = batch.find_samples(beds)
             result = {}
             t = threading.Thread(target=lambda: result.update(r=batch.run_batch(
-                samples, out, scheduler=cluster.scheduler_address, quiet=True)))
+                samples, out, scheduler=cluster.scheduler_address)))
             t.start()
             # bed0 stands for a sample that always outgrows its worker: kill
             # the worker whenever it runs bed0, until the batch ends.
@@ -720,6 +719,8 @@ def test_batch_picks_up_reviews_and_keeps_them(tmp_path):
 def test_progress_on_a_terminal_and_in_a_log():
     import io
 
+    from pipeline.cli import _BatchProgress
+
     class Terminal(io.StringIO):
         def isatty(self):
             return True
@@ -729,10 +730,10 @@ def test_progress_on_a_terminal_and_in_a_log():
             {"sample_id": "c", "status": "skipped", "seconds": 0.0, "step": "", "error": ""}]
     term, log = Terminal(), io.StringIO()
     for stream in (term, log):
-        p = batch_engine._Progress(4, stream=stream)
+        p = _BatchProgress(4, stream=stream)
         for r in recs:
-            p.update(r)
-        p.finish()
+            p("sample", r)
+        p("finish")
     t = term.getvalue()
     # One rewritten status line (carriage returns), failures on lines of their own.
     assert t.count("\r") == 3 and "\nvesselflow batch: b failed in reading: bad file\n" in t
@@ -764,3 +765,18 @@ def test_failure_steps_are_the_steps_the_analysis_reports(tmp_path):
     seen = []
     analyze_file(path, tmp_path / "out", spacing=(1, 1, 1), progress=lambda step, s: seen.append(step))
     assert tuple(seen) == batch.STEPS
+
+
+def test_the_library_prints_nothing_and_reports_through_the_callback(beds, tmp_path, capsys):
+    # run_batch tells its progress to the caller (the command line draws it),
+    # as analyze reports its steps: nothing on stdout or stderr of its own.
+    samples = batch.collect_samples(beds)[:2]
+    events = []
+    res = batch.run_batch(samples, tmp_path / "out", workers=1,
+                          progress=lambda kind, value: events.append((kind, value)))
+    out = capsys.readouterr()
+    assert "vesselflow batch" not in out.out + out.err
+    finished = [v for k, v in events if k == "sample"]
+    assert sorted(r["sample_id"] for r in finished) == sorted(s.sample_id for s in samples)
+    assert all(r["status"] == "done" for r in finished) and res.n_failed == 0
+    assert any(k == "info" for k, _ in events)

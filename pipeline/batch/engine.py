@@ -185,65 +185,33 @@ def _failed_step(done_steps, config):
 # --------------------------------------------------------------------------- #
 
 
-class _Progress:
-    """Counts on one terminal line, or plain log lines when not on a terminal."""
+class _Events:
+    """What the engine tells as it goes, handed to the caller's ``progress(kind, value)``.
 
-    def __init__(self, total, *, quiet=False, stream=None):
-        self.total, self.quiet = total, quiet
-        self.stream = stream or sys.stderr
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
-        self.done = self.failed = self.skipped = 0
-        self.start = time.monotonic()
-        self.pending_line = False  # a status line without its newline is on the terminal
+    Kinds: ``"info"`` (a message), ``"sample"`` (a finished sample's record:
+    ``sample_id``, ``status`` done/skipped/failed, ``step``, ``error``,
+    ``seconds``), ``"warning"`` (a message) and ``"finish"`` (nothing more
+    for now: a caller drawing a status line ends it).
+    """
 
-    def _eta(self):
-        # Skipped samples cost next to nothing: the rate is that of the analysed ones.
-        left = self.total - self.done - self.failed - self.skipped
-        if not left or not self.done + self.failed:
-            return ""
-        elapsed = time.monotonic() - self.start
-        per = elapsed / max(1, self.done + self.failed)
-        secs = per * left
-        return f", ETA {int(secs // 60)}m{int(secs % 60):02d}s"
+    def __init__(self, progress):
+        self.progress = progress
 
-    def line(self):
-        left = self.total - self.done - self.failed - self.skipped
-        return (f"{self.done + self.skipped}/{self.total} done ({self.skipped} skipped), {self.failed} failed, "
-                f"{left} left{self._eta()}")
-
-    def update(self, rec):
-        status = rec["status"]
-        if status == "done":
-            self.done += 1
-        elif status == "skipped":
-            self.skipped += 1
-        else:
-            self.failed += 1
-        if self.quiet:
-            return
-        if self.tty:
-            if status == "failed":
-                self.info(f"{rec['sample_id']} failed in {rec['step']}: {rec['error']}")
-            print(f"\rvesselflow batch: {self.line()}\x1b[K", end="", file=self.stream, flush=True)
-            self.pending_line = True
-        else:
-            what = {"done": f"done in {rec['seconds']:.1f} s", "skipped": "skipped (complete result matches)",
-                    "failed": f"failed in {rec['step']}: {rec['error']}"}[status]
-            print(f"vesselflow batch: {rec['sample_id']} {what} [{self.line()}]", file=self.stream, flush=True)
+    def _say(self, kind, value=None):
+        if self.progress is not None:
+            self.progress(kind, value)
 
     def info(self, msg):
-        if not self.quiet:
-            self.finish()
-            print(f"vesselflow batch: {msg}", file=self.stream, flush=True)
+        self._say("info", msg)
+
+    def update(self, rec):
+        self._say("sample", rec)
 
     def warn(self, msg):
-        self.finish()  # warnings show even with quiet
-        print(f"vesselflow batch: warning: {msg}", file=self.stream, flush=True)
+        self._say("warning", msg)
 
     def finish(self):
-        if self.pending_line:
-            print(file=self.stream, flush=True)
-            self.pending_line = False
+        self._say("finish")
 
 
 def _client(*, workers, scheduler, memory_limit):
@@ -437,7 +405,7 @@ def _start_engine(*, workers, scheduler, memory_limit):
 
 
 def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, force=False, overwrite=False,
-              memory_limit=None, threads=None, quiet=False, stream=None, input_label=None, worker_timeout=120.0):
+              memory_limit=None, threads=None, progress=None, input_label=None, worker_timeout=120.0):
     """Analyse every sample on Dask, then write the study tables.
 
     Parameters
@@ -464,10 +432,12 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     threads : int, optional
         Threads of each sample's compiled steps (distance transforms,
         thinning); default the worker's cores divided by its task slots.
-    quiet : bool
-        No progress output.
-    stream : file, optional
-        Where progress goes; default stderr.
+    progress : callable, optional
+        Called as ``progress(kind, value)`` as the batch goes: ``"info"`` and
+        ``"warning"`` with a message, ``"sample"`` with each finished
+        sample's record (``sample_id``, ``status``, ``step``, ``error``,
+        ``seconds``), ``"finish"`` when a status line should end. The
+        library prints nothing itself; the command line draws the counts.
     input_label : str, optional
         What ``batch.json`` records as the input (the folder or sheet).
     worker_timeout : float
@@ -535,17 +505,17 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     lock = _BatchLock.acquire(out)
     try:
         return _run_locked(samples, out, cfg, lock=lock, nworkers=nworkers, scheduler=scheduler, force=force,
-                           memory_limit=memory_limit, threads=threads, quiet=quiet, stream=stream,
+                           memory_limit=memory_limit, threads=threads, progress=progress,
                            input_label=input_label, worker_timeout=float(worker_timeout))
     finally:
         lock.release()
 
 
-def _run_locked(samples, out, cfg, *, lock, nworkers, scheduler, force, memory_limit, threads, quiet, stream,
+def _run_locked(samples, out, cfg, *, lock, nworkers, scheduler, force, memory_limit, threads, progress,
                 input_label, worker_timeout):
     from ..tables import clean_stale_partials, write_atomic, write_json
 
-    prog = _Progress(len(samples), quiet=quiet, stream=stream)
+    prog = _Events(progress)
     notice = lock.takeover_notice()
     if notice:
         prog.info(notice)
