@@ -13,7 +13,6 @@ from scipy.sparse import csgraph
 
 from .graph import _drop_segment, _fresh_id, _oriented, _other, _polyline_length, _seg_radius, _split_segment
 
-
 __all__ = ["reconnect_gaps"]
 
 def reconnect_gaps(g, *, spacing_um, max_gap_voxels=3.0, max_angle_deg=35.0, small_loop_radii=8.0,

@@ -28,7 +28,6 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse import csgraph
 
-
 __all__ = ["VesselGraph", "build_graph", "voxel_adjacency"]
 
 

@@ -29,7 +29,6 @@ from scipy.sparse import csgraph
 from .graph import _drop_segment, _fresh_id, _move_nodes, _oriented, _other, _polyline_length, _reach, _seg_radius
 from .gaps import reconnect_gaps
 
-
 __all__ = ["prune_graph"]
 
 def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragment_length_um=10.0, max_rounds=20,
@@ -649,9 +648,9 @@ def _merge_close_junctions(g, inc, seg_len, remove_segment, factor, floor):
         # joining segment's own (wall) radius: the distance map reads low at
         # a crossing on rough or jittered walls, and how low depends on the
         # grid (in-plane or 3-D distance), while a segment shorter than its
-        # own radius between two junctions lies inside the crossing.
-        # The same test as against max(factor * r, floor) with r the largest
-        # of the three radii, the segment's own (a lookup) only when needed.
+        # own radius between two junctions lies inside the crossing. Written
+        # as two tests so the segment's radius is looked up only when the
+        # junctions' radii do not decide (same result as one max of three).
         length = seg_len(s)
         if length < max(factor * max(node_r[u], node_r[v]), floor) or length < factor * _seg_radius(g, s):
             cands.append((length, s))
