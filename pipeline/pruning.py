@@ -113,162 +113,12 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         ``fragments_removed``, ``pruning_rounds``, ``gaps_reconnected``
         (0 unless ``reconnect``).
     """
-    inc = g.incidence()
-    bridged = g.seg_reconnected
-    spurs = dissolved = rounds = merged = loops = 0
-    floor = 2.0 * float(voxel_um) if voxel_um else 0.0
-    next_id = max(g.seg_nodes, default=-1) + 1
-
-    lengths = g.seg_length_um
-
-    def seg_len(s):
-        if s not in lengths:
-            lengths[s] = _polyline_length(g.seg_path[s])
-        return lengths[s]
-
-    def remove_segment(s):
-        _drop_segment(g, inc, s)
-
-    # the far faces of the volume; a planar volume has no z faces
-    face_hi = None if volume_um is None else np.asarray(volume_um, dtype=float)
-    face_axes = None if face_hi is None else face_hi > 0
-
-    def face_distance(n):
-        """Distance of node ``n`` from the nearest face of the volume, µm (0 without ``volume_um``)."""
-        if face_hi is None or not face_axes.any():
-            return 0.0
-        p = g.node_pos_um[n][face_axes]
-        return float(min(p.min(), (face_hi[face_axes] - p).min()))
-
-    def cut_at_face(junc, rj):
-        """Whether junction ``junc``'s vessel (radius ``rj``) is cut by a face near it.
-
-        It is when the junction lies within the vessel's radius of a face,
-        or when it is a fan of four or more vessels: a rough thick vessel's
-        cut end thins into several branches, whose junction at coarse z can
-        lie a little deeper (on beds of 2-8 µm vessels at z 3 and full
-        strength, keeping those fans made the centreline 5-14 % too long).
-        """
-        return face_distance(junc) < rj or len(inc[junc]) > 3
-
-    def settle():
-        """Prune rounds until the graph stops changing (or ``max_rounds`` of them)."""
-        nonlocal spurs, dissolved, rounds, merged, loops, next_id
-        loops_done = False
-        for _ in range(max_rounds):
-            rounds += 1
-            changed = False
-            # Spurs: decide on the current graph, then remove together, so the
-            # result does not depend on iteration order within a round.
-            doomed = []
-            for s, (u, v) in g.seg_nodes.items():
-                if u == v:
-                    continue
-                du, dv = len(inc[u]), len(inc[v])
-                if du == 1 and dv >= 3:
-                    end, junc = u, v
-                elif dv == 1 and du >= 3:
-                    end, junc = v, u
-                else:
-                    continue
-                # The junction's vessel: the largest of the inscribed radius at
-                # the node and the other vessels' radii there.
-                rj = max([g.node_radius_um[junc]] + [_seg_radius(g, t) for t in inc[junc] if t != s])
-                if g.node_on_border[end]:
-                    # A vessel cut by the volume's face may be short, so only one
-                    # kind of branch to the face goes: one clearly thinner than
-                    # the junction's vessel that ends before it is out of that
-                    # vessel's wall, which is how a rough thick vessel's cut face
-                    # thins (several such branches at coarse z steps). Nothing of
-                    # it could be measured as a vessel of its own. Its reach, not
-                    # its arc: such branches run along the face. Only where the
-                    # vessel itself is cut there (cut_at_face): a thin vessel
-                    # leaving a thick one further in and reaching the face
-                    # 10-15 µm on is a vessel (on 120 µm beds of 2-8 µm vessels,
-                    # up to 3 of about 50 junctions went, and 2 µm stacks lost
-                    # up to 7 % of their length to it against the same beds at
-                    # 1 µm).
-                    rs = _seg_radius(g, s)
-                    if (border_spur_radii > 0 and rs < border_spur_radii * rj and _reach(g, s, junc) < rj + rs
-                            and cut_at_face(junc, rj)):
-                        doomed.append((s, end))
-                    continue
-                limit = max(spur_radius_factor * rj, min_spur_length_um)
-                # What sticks out of the junction's vessel, against the spur's own
-                # thickness: a blob on the wall protrudes by about its own width,
-                # a branch by many of its radii. Measured by how far the spur
-                # gets from the junction, not by its arc: a thinned blob's
-                # centreline wanders inside the blob.
-                protrusion = _reach(g, s, junc) - rj
-                stub = spur_protrusion_radii > 0 and protrusion < spur_protrusion_radii * _seg_radius(g, s)
-                if seg_len(s) < limit or stub:
-                    doomed.append((s, end))
-            # A junction keeps two segments: where only one would be left, the
-            # spurs are the forked tip of that vessel, and the longest is its end.
-            by_junction = defaultdict(list)
-            for s, end in doomed:
-                u, v = g.seg_nodes[s]
-                by_junction[v if end == u else u].append((s, end))
-            for junc, items in by_junction.items():
-                if len(items) >= len(inc[junc]) - 1:
-                    items = sorted(items, key=lambda it: seg_len(it[0]))[:-1]
-                for s, end in items:
-                    remove_segment(s)
-                    g.node_alive[end] = False
-                    spurs += 1
-                    changed = True
-            if junction_merge_radii > 0:
-                n_merged = _merge_close_junctions(g, inc, seg_len, remove_segment, junction_merge_radii, floor)
-                merged += n_merged
-                changed |= n_merged > 0
-            if wall_loop_radii > 0:
-                n_loops = _remove_wall_loops(g, inc, seg_len, remove_segment, wall_loop_radii, floor)
-                loops += n_loops
-                changed |= n_loops > 0
-            cheap_changed = changed
-            if not changed and small_loop_radii > 0 and not loops_done:
-                # Last, on the graph the cheaper rules have settled: the search
-                # for short loops is the costly one. What it removes may leave
-                # nodes to dissolve (and two segments joined there may close a
-                # new short loop), so the rounds go on until neither changes.
-                loops_done = True
-                n_loops = _remove_small_loops(g, inc, seg_len, remove_segment, small_loop_radii,
-                                              web_factor=web_loop_radii)
-                loops += n_loops
-                changed |= n_loops > 0
-            # Dissolve nodes with exactly two segment ends that are not a self-loop.
-            for n in np.flatnonzero(g.node_alive):
-                segs = inc[n]
-                if len(segs) != 2 or segs[0] == segs[1]:
-                    continue
-                a, b = segs
-                pa, ra = _oriented(g, a, n, at_end=True)
-                pb, rb = _oriented(g, b, n, at_end=False)
-                ua = _other(g.seg_nodes[a], n)
-                ub = _other(g.seg_nodes[b], n)
-                merged_length = seg_len(a) + seg_len(b)  # the paths share node n's point
-                remove_segment(a)
-                remove_segment(b)
-                s = next_id
-                next_id += 1
-                g.seg_nodes[s] = (ua, ub)
-                g.seg_path[s] = np.vstack([pa, pb[1:]])
-                g.seg_radii[s] = np.r_[ra, rb[1:]]
-                lengths[s] = merged_length
-                if a in bridged or b in bridged:
-                    bridged.add(s)
-                inc[ua].append(s)
-                inc[ub].append(s)
-                g.node_alive[n] = False
-                dissolved += 1
-                changed = True
-                cheap_changed = True
-            if cheap_changed:
-                loops_done = False  # the graph moved on since the last search for short loops
-            if not changed:
-                break
-
-    settle()
+    pr = _Pruner(g, spur_radius_factor=spur_radius_factor, min_spur_length_um=min_spur_length_um,
+                 max_rounds=max_rounds, junction_merge_radii=junction_merge_radii, wall_loop_radii=wall_loop_radii,
+                 spur_protrusion_radii=spur_protrusion_radii, small_loop_radii=small_loop_radii,
+                 web_loop_radii=web_loop_radii, border_spur_radii=border_spur_radii, voxel_um=voxel_um,
+                 volume_um=volume_um)
+    pr.settle()
     reconnected = 0
     if reconnect:
         # After the rounds, so that only ends of vessels that pruning keeps
@@ -280,21 +130,231 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         reconnected = reconnect_gaps(g, spacing_um=spacing_um if spacing_um is not None else voxel_um or 1.0,
                                      max_gap_voxels=max_gap_voxels,
                                      max_angle_deg=max_gap_angle_deg, small_loop_radii=small_loop_radii,
-                                     step_um=voxel_um, inc=inc)
+                                     step_um=voxel_um, inc=pr.inc)
         if reconnected:
-            next_id = _fresh_id(g)
-            settle()
+            pr.next_id = _fresh_id(g)
+            pr.settle()
     if junction_merge_radii > 0:
         # a crossing thinned into three or more junctions merges pair by pair
         for _ in range(max_rounds):
-            n_merged = _merge_crossings(g, inc, seg_len, remove_segment, junction_merge_radii)
-            merged += n_merged
+            n_merged = _merge_crossings(g, pr.inc, pr.seg_len, pr.remove_segment, junction_merge_radii)
+            pr.merged += n_merged
             if not n_merged:
                 break
-    # Fragments: connected pieces by total centreline length.
-    alive = np.flatnonzero(g.node_alive)
-    fragments = 0
-    if len(alive):
+    fragments = pr.remove_fragments(min_fragment_length_um)
+    _refine_junctions(g, pr.inc, min_window_radius_um=_WINDOW_VOXELS * float(voxel_um) if voxel_um else 0.0)
+    # Nodes with no segment left (isolated voxels) are not part of the graph.
+    g.node_alive &= np.array([len(pr.inc[i]) > 0 for i in range(len(g.node_pos_um))], dtype=bool)
+    g.counts.update(
+        spurs_removed=pr.spurs, junctions_merged=pr.merged, wall_loops_removed=pr.loops,
+        nodes_dissolved=pr.dissolved, fragments_removed=fragments, pruning_rounds=pr.rounds
+    )
+    g.counts["gaps_reconnected"] = reconnected
+    return g
+
+
+class _Pruner:
+    """The pruning rounds of :func:`prune_graph` over one graph, with their counts.
+
+    Holds the graph, its incidence lists and the options; the rules that
+    need no state of their own are module functions called with
+    :meth:`seg_len` and :meth:`remove_segment`.
+    """
+
+    def __init__(self, g, *, spur_radius_factor, min_spur_length_um, max_rounds, junction_merge_radii,
+                 wall_loop_radii, spur_protrusion_radii, small_loop_radii, web_loop_radii, border_spur_radii,
+                 voxel_um, volume_um):
+        self.g = g
+        self.inc = g.incidence()
+        self.bridged = g.seg_reconnected
+        self.lengths = g.seg_length_um
+        self.spurs = self.dissolved = self.rounds = self.merged = self.loops = 0
+        self.floor = 2.0 * float(voxel_um) if voxel_um else 0.0
+        self.next_id = max(g.seg_nodes, default=-1) + 1
+        self.spur_radius_factor = spur_radius_factor
+        self.min_spur_length_um = min_spur_length_um
+        self.max_rounds = max_rounds
+        self.junction_merge_radii = junction_merge_radii
+        self.wall_loop_radii = wall_loop_radii
+        self.spur_protrusion_radii = spur_protrusion_radii
+        self.small_loop_radii = small_loop_radii
+        self.web_loop_radii = web_loop_radii
+        self.border_spur_radii = border_spur_radii
+        # the far faces of the volume; a planar volume has no z faces
+        self.face_hi = None if volume_um is None else np.asarray(volume_um, dtype=float)
+        self.face_axes = None if self.face_hi is None else self.face_hi > 0
+
+    def seg_len(self, s):
+        """Polyline length of segment ``s``, µm (cached)."""
+        lengths = self.lengths
+        if s not in lengths:
+            lengths[s] = _polyline_length(self.g.seg_path[s])
+        return lengths[s]
+
+    def remove_segment(self, s):
+        _drop_segment(self.g, self.inc, s)
+
+    def face_distance(self, n):
+        """Distance of node ``n`` from the nearest face of the volume, µm (0 without ``volume_um``)."""
+        if self.face_hi is None or not self.face_axes.any():
+            return 0.0
+        p = self.g.node_pos_um[n][self.face_axes]
+        return float(min(p.min(), (self.face_hi[self.face_axes] - p).min()))
+
+    def cut_at_face(self, junc, rj):
+        """Whether junction ``junc``'s vessel (radius ``rj``) is cut by a face near it.
+
+        It is when the junction lies within the vessel's radius of a face,
+        or when it is a fan of four or more vessels: a rough thick vessel's
+        cut end thins into several branches, whose junction at coarse z can
+        lie a little deeper (on beds of 2-8 µm vessels at z 3 and full
+        strength, keeping those fans made the centreline 5-14 % too long).
+        """
+        return self.face_distance(junc) < rj or len(self.inc[junc]) > 3
+
+    def settle(self):
+        """Prune rounds until the graph stops changing (or ``max_rounds`` of them)."""
+        loops_done = False
+        for _ in range(self.max_rounds):
+            self.rounds += 1
+            changed = self._remove_spurs()
+            if self.junction_merge_radii > 0:
+                n_merged = _merge_close_junctions(self.g, self.inc, self.seg_len, self.remove_segment,
+                                                  self.junction_merge_radii, self.floor)
+                self.merged += n_merged
+                changed |= n_merged > 0
+            if self.wall_loop_radii > 0:
+                n_loops = _remove_wall_loops(self.g, self.inc, self.seg_len, self.remove_segment,
+                                             self.wall_loop_radii, self.floor)
+                self.loops += n_loops
+                changed |= n_loops > 0
+            cheap_changed = changed
+            if not changed and self.small_loop_radii > 0 and not loops_done:
+                # Last, on the graph the cheaper rules have settled: the search
+                # for short loops is the costly one. What it removes may leave
+                # nodes to dissolve (and two segments joined there may close a
+                # new short loop), so the rounds go on until neither changes.
+                loops_done = True
+                n_loops = _remove_small_loops(self.g, self.inc, self.seg_len, self.remove_segment,
+                                              self.small_loop_radii, web_factor=self.web_loop_radii)
+                self.loops += n_loops
+                changed |= n_loops > 0
+            if self._dissolve_two_way_nodes():
+                changed = cheap_changed = True
+            if cheap_changed:
+                loops_done = False  # the graph moved on since the last search for short loops
+            if not changed:
+                break
+
+    def _doomed_spurs(self):
+        """Terminal spurs the spur rules remove this round, as ``(segment, end node)`` pairs."""
+        g, inc = self.g, self.inc
+        doomed = []
+        for s, (u, v) in g.seg_nodes.items():
+            if u == v:
+                continue
+            du, dv = len(inc[u]), len(inc[v])
+            if du == 1 and dv >= 3:
+                end, junc = u, v
+            elif dv == 1 and du >= 3:
+                end, junc = v, u
+            else:
+                continue
+            # The junction's vessel: the largest of the inscribed radius at
+            # the node and the other vessels' radii there.
+            rj = max([g.node_radius_um[junc]] + [_seg_radius(g, t) for t in inc[junc] if t != s])
+            if g.node_on_border[end]:
+                # A vessel cut by the volume's face may be short, so only one
+                # kind of branch to the face goes: one clearly thinner than
+                # the junction's vessel that ends before it is out of that
+                # vessel's wall, which is how a rough thick vessel's cut face
+                # thins (several such branches at coarse z steps). Nothing of
+                # it could be measured as a vessel of its own. Its reach, not
+                # its arc: such branches run along the face. Only where the
+                # vessel itself is cut there (cut_at_face): a thin vessel
+                # leaving a thick one further in and reaching the face
+                # 10-15 µm on is a vessel (on 120 µm beds of 2-8 µm vessels,
+                # up to 3 of about 50 junctions went, and 2 µm stacks lost
+                # up to 7 % of their length to it against the same beds at
+                # 1 µm).
+                rs = _seg_radius(g, s)
+                if (self.border_spur_radii > 0 and rs < self.border_spur_radii * rj
+                        and _reach(g, s, junc) < rj + rs and self.cut_at_face(junc, rj)):
+                    doomed.append((s, end))
+                continue
+            limit = max(self.spur_radius_factor * rj, self.min_spur_length_um)
+            # What sticks out of the junction's vessel, against the spur's own
+            # thickness: a blob on the wall protrudes by about its own width,
+            # a branch by many of its radii. Measured by how far the spur
+            # gets from the junction, not by its arc: a thinned blob's
+            # centreline wanders inside the blob.
+            protrusion = _reach(g, s, junc) - rj
+            stub = self.spur_protrusion_radii > 0 and protrusion < self.spur_protrusion_radii * _seg_radius(g, s)
+            if self.seg_len(s) < limit or stub:
+                doomed.append((s, end))
+        return doomed
+
+    def _remove_spurs(self):
+        """Remove this round's terminal spurs; True when any went.
+
+        Decided on the current graph, then removed together, so the result
+        does not depend on iteration order within a round.
+        """
+        g = self.g
+        changed = False
+        # A junction keeps two segments: where only one would be left, the
+        # spurs are the forked tip of that vessel, and the longest is its end.
+        by_junction = defaultdict(list)
+        for s, end in self._doomed_spurs():
+            u, v = g.seg_nodes[s]
+            by_junction[v if end == u else u].append((s, end))
+        for junc, items in by_junction.items():
+            if len(items) >= len(self.inc[junc]) - 1:
+                items = sorted(items, key=lambda it: self.seg_len(it[0]))[:-1]
+            for s, end in items:
+                self.remove_segment(s)
+                g.node_alive[end] = False
+                self.spurs += 1
+                changed = True
+        return changed
+
+    def _dissolve_two_way_nodes(self):
+        """Join the two segments at every node with exactly two segment ends (not a self-loop); True when any."""
+        g, inc, lengths = self.g, self.inc, self.lengths
+        changed = False
+        for n in np.flatnonzero(g.node_alive):
+            segs = inc[n]
+            if len(segs) != 2 or segs[0] == segs[1]:
+                continue
+            a, b = segs
+            pa, ra = _oriented(g, a, n, at_end=True)
+            pb, rb = _oriented(g, b, n, at_end=False)
+            ua = _other(g.seg_nodes[a], n)
+            ub = _other(g.seg_nodes[b], n)
+            merged_length = self.seg_len(a) + self.seg_len(b)  # the paths share node n's point
+            self.remove_segment(a)
+            self.remove_segment(b)
+            s = self.next_id
+            self.next_id += 1
+            g.seg_nodes[s] = (ua, ub)
+            g.seg_path[s] = np.vstack([pa, pb[1:]])
+            g.seg_radii[s] = np.r_[ra, rb[1:]]
+            lengths[s] = merged_length
+            if a in self.bridged or b in self.bridged:
+                self.bridged.add(s)
+            inc[ua].append(s)
+            inc[ub].append(s)
+            g.node_alive[n] = False
+            self.dissolved += 1
+            changed = True
+        return changed
+
+    def remove_fragments(self, min_fragment_length_um):
+        """Drop connected pieces with less centreline than ``min_fragment_length_um``; returns how many."""
+        g = self.g
+        alive = np.flatnonzero(g.node_alive)
+        if not len(alive):
+            return 0
         seg_ids = list(g.seg_nodes)
         n = len(g.node_pos_um)
         if seg_ids:
@@ -305,23 +365,14 @@ def prune_graph(g, *, spur_radius_factor=1.5, min_spur_length_um=2.0, min_fragme
         _, comp = csgraph.connected_components(a, directed=False)
         comp_len = np.zeros(comp.max() + 1)
         for s in seg_ids:
-            comp_len[comp[g.seg_nodes[s][0]]] += seg_len(s)
+            comp_len[comp[g.seg_nodes[s][0]]] += self.seg_len(s)
         small = comp_len < min_fragment_length_um
         for s in seg_ids:
             if small[comp[g.seg_nodes[s][0]]]:
-                remove_segment(s)
+                self.remove_segment(s)
         dead = small[comp] & g.node_alive
-        fragments = int(np.unique(comp[dead]).size)
         g.node_alive &= ~dead
-    _refine_junctions(g, inc, min_window_radius_um=_WINDOW_VOXELS * float(voxel_um) if voxel_um else 0.0)
-    # Nodes with no segment left (isolated voxels) are not part of the graph.
-    g.node_alive &= np.array([len(inc[i]) > 0 for i in range(len(g.node_pos_um))], dtype=bool)
-    g.counts.update(
-        spurs_removed=spurs, junctions_merged=merged, wall_loops_removed=loops, nodes_dissolved=dissolved,
-        fragments_removed=fragments, pruning_rounds=rounds
-    )
-    g.counts["gaps_reconnected"] = reconnected
-    return g
+        return int(np.unique(comp[dead]).size)
 
 
 # Smallest radius, in voxels of the thinning grid, by which a junction's line
