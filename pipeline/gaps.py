@@ -125,31 +125,12 @@ def _end_direction(p, length):
 
 
 def _reconnect_pass(g, inc, d, h, max_gap_voxels, cos_max, small_loop_radii, fit_radii):
-    from scipy.spatial import cKDTree
-
+    """One pass of :func:`reconnect_gaps`: propose a bridge for every blind end, make them closest first."""
     alive = np.flatnonzero(g.node_alive)
     ends = [int(n) for n in alive if len(inc[n]) == 1 and not g.node_on_border[n]]
     if not ends or not g.seg_nodes:
         return 0
-    keys = list(g.seg_nodes)
-    rseg = np.array([_seg_radius(g, s) for s in keys])
-    lens = np.array([len(g.seg_path[s]) for s in keys])
-    P = np.vstack([g.seg_path[s] for s in keys])
-    owner = np.repeat(np.arange(len(keys)), lens)
-    first = np.r_[0, np.cumsum(lens)[:-1]]
-    index = np.arange(len(P)) - np.repeat(first, lens)  # position along its path
-    steps = np.r_[0.0, np.sqrt((np.diff(P, axis=0) ** 2).sum(axis=1))]
-    steps[first] = 0.0
-    arc = np.cumsum(steps)
-    arc -= np.repeat(arc[first], lens)  # arc from the segment's first node
-    arc_left = np.repeat(arc[first + lens - 1], lens) - arc  # arc to its last node
-    # Connected pieces: a bridge within one closes a loop.
-    n_nodes = len(g.node_pos_um)
-    uv = np.array([g.seg_nodes[s] for s in keys])
-    w = np.array([g.seg_length_um.get(s) or _polyline_length(g.seg_path[s]) for s in keys])
-    adj = sparse.coo_matrix((np.maximum(w, 1e-9), (uv[:, 0], uv[:, 1])), shape=(n_nodes, n_nodes)).tocsr()
-    _, comp = csgraph.connected_components(adj, directed=False)
-    rank = {s: k for k, s in enumerate(keys)}
+    cl = _Centrelines(g)
     # Each end: its segment, radius, tip and direction.
     info = {}
     for e in ends:
@@ -161,80 +142,145 @@ def _reconnect_pass(g, inc, d, h, max_gap_voxels, cos_max, small_loop_radii, fit
             info[e] = (s, r, p[-1], t)
     if not info:
         return 0
-    tree = cKDTree(P)
+    from scipy.spatial import cKDTree
+
+    tree = cKDTree(cl.P)
     order = list(info)
     tips = np.array([info[e][2] for e in order])
-    reach = np.array([info[e][1] for e in order]) + rseg.max() + max_gap_voxels * d.sum()
+    reach = np.array([info[e][1] for e in order]) + cl.rseg.max() + max_gap_voxels * d.sum()
     hits = tree.query_ball_point(tips, reach)
     proposals = []
     for e, cand in zip(order, hits):
-        s, r, tip, t = info[e]
-        c = np.asarray(cand, dtype=np.int64)
-        c = c[owner[c] != rank[s]]
-        if not len(c):
-            continue
-        vec = P[c] - tip
-        dist = np.sqrt((vec ** 2).sum(axis=1))
-        ok = dist > 0
-        c, vec, dist = c[ok], vec[ok], dist[ok]
-        u = vec / dist[:, None]
-        layer = np.abs(u) @ d  # one voxel layer along each line
-        # Gaps in voxel layers: to a centreline point, from the tip to the
-        # target's surface, less the half layer between the tip's voxel centre
-        # and its face; to another tip, the distance less one layer.
-        gap_line = (dist - rseg[owner[c]]) / layer - 0.5
-        gap_tip = dist / layer - 1.0
-        ok = (u @ t >= cos_max) & (np.minimum(gap_line, gap_tip) <= max_gap_voxels)
-        valid = []
-        for k in np.flatnonzero(ok):
-            j = int(c[k])
-            ts = keys[owner[j]]
-            tu, tv = g.seg_nodes[ts]
-            snap = max(rseg[owner[j]], 2.0 * h)
-            node = tu if arc[j] <= snap else tv if arc_left[j] <= snap else None
-            if node is not None:
-                kind = "end" if len(inc[node]) == 1 else "node"
-                if node == e or (kind == "end" and g.node_on_border[node]):
-                    continue  # where a vessel leaves the volume is no broken end
-                target_pos = g.node_pos_um[node]
-                if kind == "end":
-                    j_gap = np.linalg.norm(target_pos - tip) / layer[k] - 1.0
-                else:
-                    j_gap = gap_line[k]
+        best = _best_target(g, inc, cl, info, e, np.asarray(cand, dtype=np.int64), d=d, h=h,
+                            max_gap_voxels=max_gap_voxels, cos_max=cos_max, small_loop_radii=small_loop_radii)
+        if best is not None:
+            proposals.append(best)
+    return _make_bridges(g, inc, proposals, h)
+
+
+class _Centrelines:
+    """Every centreline point of a graph in one array, with its segment and place along it.
+
+    Attributes
+    ----------
+    keys : list of int
+        Segment ids in row order; ``rank`` maps an id to its row.
+    rseg : (S,) float ndarray
+        Median radius of each segment, µm.
+    P : (K, 3) float ndarray
+        All path points, segment after segment, µm.
+    owner, index : (K,) int ndarray
+        Row of each point's segment and its position along the path.
+    arc, arc_left : (K,) float ndarray
+        Arc from the segment's first node to the point, and from the point
+        to its last node, µm.
+    adj : sparse (N, N) matrix
+        Node graph weighted by segment length, µm; ``comp`` (N,) the
+        connected piece of each node (a bridge within one closes a loop).
+    """
+
+    def __init__(self, g):
+        keys = self.keys = list(g.seg_nodes)
+        self.rseg = np.array([_seg_radius(g, s) for s in keys])
+        lens = np.array([len(g.seg_path[s]) for s in keys])
+        P = self.P = np.vstack([g.seg_path[s] for s in keys])
+        self.owner = np.repeat(np.arange(len(keys)), lens)
+        first = np.r_[0, np.cumsum(lens)[:-1]]
+        self.index = np.arange(len(P)) - np.repeat(first, lens)  # position along its path
+        steps = np.r_[0.0, np.sqrt((np.diff(P, axis=0) ** 2).sum(axis=1))]
+        steps[first] = 0.0
+        arc = np.cumsum(steps)
+        arc -= np.repeat(arc[first], lens)  # arc from the segment's first node
+        self.arc = arc
+        self.arc_left = np.repeat(arc[first + lens - 1], lens) - arc  # arc to its last node
+        n_nodes = len(g.node_pos_um)
+        uv = np.array([g.seg_nodes[s] for s in keys])
+        w = np.array([g.seg_length_um.get(s) or _polyline_length(g.seg_path[s]) for s in keys])
+        self.adj = sparse.coo_matrix((np.maximum(w, 1e-9), (uv[:, 0], uv[:, 1])),
+                                     shape=(n_nodes, n_nodes)).tocsr()
+        _, self.comp = csgraph.connected_components(self.adj, directed=False)
+        self.rank = {s: k for k, s in enumerate(keys)}
+
+
+def _best_target(g, inc, cl, info, e, c, *, d, h, max_gap_voxels, cos_max, small_loop_radii):
+    """The bridge proposed for blind end ``e`` among the centreline points ``c`` near it, or None.
+
+    Returns
+    -------
+    tuple or None
+        ``(gap, e, s, kind, ts, node, i, target_pos, within, piece_e,
+        piece_t)`` as :func:`_make_bridges` takes them.
+    """
+    s, r, tip, t = info[e]
+    owner, rseg = cl.owner, cl.rseg
+    c = c[owner[c] != cl.rank[s]]
+    if not len(c):
+        return None
+    vec = cl.P[c] - tip
+    dist = np.sqrt((vec ** 2).sum(axis=1))
+    ok = dist > 0
+    c, vec, dist = c[ok], vec[ok], dist[ok]
+    u = vec / dist[:, None]
+    layer = np.abs(u) @ d  # one voxel layer along each line
+    # Gaps in voxel layers: to a centreline point, from the tip to the
+    # target's surface, less the half layer between the tip's voxel centre
+    # and its face; to another tip, the distance less one layer.
+    gap_line = (dist - rseg[owner[c]]) / layer - 0.5
+    gap_tip = dist / layer - 1.0
+    ok = (u @ t >= cos_max) & (np.minimum(gap_line, gap_tip) <= max_gap_voxels)
+    valid = []
+    for k in np.flatnonzero(ok):
+        j = int(c[k])
+        ts = cl.keys[owner[j]]
+        tu, tv = g.seg_nodes[ts]
+        snap = max(rseg[owner[j]], 2.0 * h)
+        node = tu if cl.arc[j] <= snap else tv if cl.arc_left[j] <= snap else None
+        if node is not None:
+            kind = "end" if len(inc[node]) == 1 else "node"
+            if node == e or (kind == "end" and g.node_on_border[node]):
+                continue  # where a vessel leaves the volume is no broken end
+            target_pos = g.node_pos_um[node]
+            if kind == "end":
+                j_gap = np.linalg.norm(target_pos - tip) / layer[k] - 1.0
             else:
-                kind, target_pos, j_gap = "split", P[j], gap_line[k]
-            if j_gap > max_gap_voxels:
-                continue
-            within = comp[e] == comp[tu]
-            if within:
-                # Within one piece: only two blind ends facing each other,
-                # joined by a loop that pruning would keep.
-                if kind != "end" or node not in info or -u[k] @ info[node][3] < cos_max:
-                    continue
-                limit = small_loop_radii * max(r, rseg[owner[j]])
-                around = csgraph.dijkstra(adj, indices=e, limit=limit)[node]
-                if around + dist[k] < limit:
-                    continue
-            along = float(vec[k] @ t)
-            off_axis = float(np.sqrt(max(dist[k] ** 2 - along ** 2, 0.0)))
-            valid.append((off_axis <= rseg[owner[j]], along, off_axis, float(j_gap), ts,
-                          (float(j_gap), e, s, kind, ts, node, int(index[j]), target_pos, within,
-                           int(comp[e]), int(comp[tu]))))
-        if not valid:
-            continue
-        # Where the end's axis runs into a vessel, the contact is where it
-        # meets that vessel's axis (the first vessel hit, its point nearest
-        # the ray): a daughter cut off at its start is joined at its branch
-        # point, not at the parent's surface point nearest its tip. An axis
-        # that hits nothing joins the closest target by gap.
-        hits = [v for v in valid if v[0]]
-        if hits:
-            first = min(hits, key=lambda v: v[1])[4]
-            best = min((v for v in valid if v[4] == first), key=lambda v: v[2])
+                j_gap = gap_line[k]
         else:
-            best = min(valid, key=lambda v: v[3])
-        proposals.append(best[5])
-    # Closest first; each end, node and segment once a pass.
+            kind, target_pos, j_gap = "split", cl.P[j], gap_line[k]
+        if j_gap > max_gap_voxels:
+            continue
+        within = cl.comp[e] == cl.comp[tu]
+        if within:
+            # Within one piece: only two blind ends facing each other,
+            # joined by a loop that pruning would keep.
+            if kind != "end" or node not in info or -u[k] @ info[node][3] < cos_max:
+                continue
+            limit = small_loop_radii * max(r, rseg[owner[j]])
+            around = csgraph.dijkstra(cl.adj, indices=e, limit=limit)[node]
+            if around + dist[k] < limit:
+                continue
+        along = float(vec[k] @ t)
+        off_axis = float(np.sqrt(max(dist[k] ** 2 - along ** 2, 0.0)))
+        valid.append((off_axis <= rseg[owner[j]], along, off_axis, float(j_gap), ts,
+                      (float(j_gap), e, s, kind, ts, node, int(cl.index[j]), target_pos, within,
+                       int(cl.comp[e]), int(cl.comp[tu]))))
+    if not valid:
+        return None
+    # Where the end's axis runs into a vessel, the contact is where it
+    # meets that vessel's axis (the first vessel hit, its point nearest
+    # the ray): a daughter cut off at its start is joined at its branch
+    # point, not at the parent's surface point nearest its tip. An axis
+    # that hits nothing joins the closest target by gap.
+    hits = [v for v in valid if v[0]]
+    if hits:
+        first = min(hits, key=lambda v: v[1])[4]
+        best = min((v for v in valid if v[4] == first), key=lambda v: v[2])
+    else:
+        best = min(valid, key=lambda v: v[3])
+    return best[5]
+
+
+def _make_bridges(g, inc, proposals, h):
+    """Make the proposed bridges, closest first, each end, node and segment once; returns how many."""
     made = 0
     used_nodes, touched = set(), set()
     piece = {}  # pieces joined by this pass's bridges (union-find)
