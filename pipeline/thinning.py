@@ -555,6 +555,84 @@ def _regions(nz, n_regions):
 
 
 @numba.njit(cache=True)
+def _border_lists(flat, nz, ny, nx, offs, doff, idx_probe, big, list_min, room_div, kstart, abuf, aoff, meta, lo_z,
+                  hi_z, state):
+    """The six direction lists of border voxels: count per slab, turn counts into slots, fill.
+
+    Returns ``(lists, lens, cap)``: the lists (6, cap), their lengths (6,)
+    and their capacity, ``list_min`` plus ``1 / room_div`` of the longest to
+    spare; ``cap`` is 0 when the volume has no foreground.
+    """
+    zero = nz - nz  # a literal 0 argument would compile a specialisation of its own
+    cnt = np.zeros((nz, 7), np.int64)
+    lists = np.empty((6, 0), idx_probe.dtype)
+    res = np.empty(0, np.uint8)
+    cand = np.empty(0, idx_probe.dtype)
+    visit = np.empty(0, np.int32)
+    if big:
+        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
+                     res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+    else:
+        for z in range(1, nz - 1):
+            _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(False))
+    lens = np.zeros(6, np.int64)
+    n_fg = 0
+    for z in range(nz):
+        n_fg += cnt[z, 6]
+        for d in range(6):
+            k = cnt[z, d]
+            cnt[z, d] = lens[d]
+            lens[d] += k
+    if n_fg == 0:
+        return lists, lens, 0
+    longest = 0
+    for d in range(6):
+        longest = max(longest, lens[d])
+    cap = longest + longest // room_div + list_min
+    lists = np.empty((6, cap), idx_probe.dtype)
+    if big:
+        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
+                     res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+    else:
+        for z in range(1, nz - 1):
+            _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(True))
+    return lists, lens, cap
+
+
+@numba.njit(cache=True)
+def _append_relisted(tasks_par, n_tasks, flat, nz, ny, nx, offs, doff, lists, lens, new_lens, d, res, cand, visit,
+                     zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state):
+    """Append every task's relisted entries to the lists, each batch in plane order; returns the lists (grown if full)."""
+    zero = nz - nz
+    zslot.fill(0)
+    if tasks_par:
+        _in_parallel(np.int64(_MERGE_COUNT), n_tasks, zero, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                     res, cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+    else:
+        _merge_task(abuf, aoff, meta, n_tasks, zslot, lists, nz, ny * nx, np.bool_(False))
+    need = 0
+    for e in range(6):
+        pos = lens[e]
+        for z in range(nz):
+            for t in range(n_tasks + 1):
+                k = zslot[t, e * nz + z]
+                zslot[t, e * nz + z] = pos
+                pos += k
+        new_lens[e] = pos
+        need = max(need, pos)
+    if need > lists.shape[1]:
+        lists = _grown(lists, lens, need)
+    if tasks_par:
+        _in_parallel(np.int64(_MERGE_FILL), n_tasks, zero, flat, nz, ny, nx, offs, doff, lists, d, zero,
+                     res, cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
+    else:
+        _merge_task(abuf, aoff, meta, n_tasks, zslot, lists, nz, ny * nx, np.bool_(True))
+    for e in range(6):
+        lens[e] = new_lens[e]
+    return lists
+
+
+@numba.njit(cache=True)
 def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, room_div):
     """Thin the padded volume ``flat`` in place; returns the number of iterations.
 
@@ -576,42 +654,13 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
     aoff = np.zeros(n_tasks + 2, np.int64)
     abuf = np.empty(0, idx_probe.dtype)
 
-    # List the border voxels: count per slab, turn counts into slots, fill.
-    cnt = np.zeros((nz, 7), np.int64)
-    lists = np.empty((6, 0), idx_probe.dtype)
-    res = np.empty(0, np.uint8)
-    cand = np.empty(0, idx_probe.dtype)
-    visit = np.empty(0, np.int32)
     n_keys = 8 * nz
     kstart = np.zeros(n_keys + 1, np.int64)
     big = parallel and flat.shape[0] >= par_min
-    if big:
-        _in_parallel(np.int64(_BORDER_COUNT), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
-                     res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
-    else:
-        for z in range(1, nz - 1):
-            _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(False))
-    lens = np.zeros(6, np.int64)
-    n_fg = 0
-    for z in range(nz):
-        n_fg += cnt[z, 6]
-        for d in range(6):
-            k = cnt[z, d]
-            cnt[z, d] = lens[d]
-            lens[d] += k
-    if n_fg == 0:
+    lists, lens, cap = _border_lists(flat, nz, ny, nx, offs, doff, idx_probe, big, list_min, room_div, kstart, abuf,
+                                     aoff, meta, lo_z, hi_z, state)
+    if cap == 0:
         return 0
-    longest = 0
-    for d in range(6):
-        longest = max(longest, lens[d])
-    cap = longest + longest // room_div + list_min
-    lists = np.empty((6, cap), idx_probe.dtype)
-    if big:
-        _in_parallel(np.int64(_BORDER_FILL), nz - 2, zero, flat, nz, ny, nx, offs, doff, lists, zero, zero,
-                     res, cand, visit, cnt, kstart, abuf, aoff, meta, lo_z, hi_z, state)
-    else:
-        for z in range(1, nz - 1):
-            _border_slab(flat, z, ny, nx, doff, cnt, lists, np.bool_(True))
 
     cand = np.empty(cap, idx_probe.dtype)
     res = np.empty(cap, np.uint8)  # per candidate: deleted
@@ -695,31 +744,8 @@ def _run(flat, nz, ny, nx, offs, doff, idx_probe, threads, par_min, list_min, ro
                                             meta[t], lo_z[t], hi_z[t], state[t])
             # Append the relisted entries to the lists, each batch in plane
             # order (which keeps the next selection's reads sequential).
-            zslot.fill(0)
-            if tasks_par:
-                _in_parallel(np.int64(_MERGE_COUNT), n_tasks, zero, flat, nz, ny, nx, offs, doff, lists, d, zero,
-                             res, cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
-            else:
-                _merge_task(abuf, aoff, meta, n_tasks, zslot, lists, nz, ny * nx, np.bool_(False))
-            need = 0
-            for e in range(6):
-                pos = lens[e]
-                for z in range(nz):
-                    for t in range(n_tasks + 1):
-                        k = zslot[t, e * nz + z]
-                        zslot[t, e * nz + z] = pos
-                        pos += k
-                new_lens[e] = pos
-                need = max(need, pos)
-            if need > lists.shape[1]:
-                lists = _grown(lists, lens, need)
-            if tasks_par:
-                _in_parallel(np.int64(_MERGE_FILL), n_tasks, zero, flat, nz, ny, nx, offs, doff, lists, d, zero,
-                             res, cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
-            else:
-                _merge_task(abuf, aoff, meta, n_tasks, zslot, lists, nz, ny * nx, np.bool_(True))
-            for e in range(6):
-                lens[e] = new_lens[e]
+            lists = _append_relisted(tasks_par, n_tasks, flat, nz, ny, nx, offs, doff, lists, lens, new_lens, d, res,
+                                     cand, visit, zslot, kstart, abuf, aoff, meta, lo_z, hi_z, state)
             for t in range(n_tasks + 1):
                 deleted += state[t, 3]
 
