@@ -24,6 +24,35 @@ from .errors import ConfigError, InputError, VesselflowError
 
 __all__ = ["main"]
 
+# The library's errors name its Python parameters (VesselflowError.param) and
+# its hints spell a call (``overwrite=True``); the command line shows its own
+# options instead. Per command where one parameter name means different things.
+_OPTION_OF = {"overwrite": "--overwrite", "spacing": "--spacing", "threshold": "--threshold",
+              "scheduler": "--scheduler", "workers": "--workers", "threads": "--threads",
+              "worker_timeout": "--worker-timeout", "memory_limit": "--memory-limit", "config": "--config"}
+_OPTION_OF_COMMAND = {"analyze": {"mask": "MASK"},
+                      "report": {"mask": "--mask", "mask_path": "--mask"},
+                      "view": {"path": "--screenshot", "node_id": "--bifurcation", "mask_path": "--mask"},
+                      "synth": {"path": "--output", "artefacts": "--artefacts", "seed": "--seed",
+                                "roughness": "--roughness", "specks": "--specks", "holes": "--holes"},
+                      "score": {"path": "--output"}, "summarize": {"review": "--apply-review"}}
+_HINT_OF = {"overwrite=True": "--overwrite", "spacing=(dz, dy, dx)": "--spacing Z Y X",
+            "threshold=T": "--threshold T", "mask_path=PATH": "--mask PATH"}
+
+
+def _as_options(text):
+    """A library message with the parameters in its hints spelled as options."""
+    for call, option in _HINT_OF.items():
+        text = text.replace(call, option)
+    return text
+
+
+def _message(exc, command=None):
+    """One line for an error: its parameter as the command's option, hints as options."""
+    param = getattr(exc, "param", None)
+    option = _OPTION_OF_COMMAND.get(command, {}).get(param) or _OPTION_OF.get(param)
+    return _as_options(f"{option}: {exc.detail}" if option else str(exc))
+
 
 class _Reporter:
     def __init__(self, quiet):
@@ -39,7 +68,7 @@ class _Reporter:
             print(f"vesselflow: {msg}", file=sys.stderr, flush=True)
 
     def warn(self, msg):
-        print(f"vesselflow: warning: {msg}", file=sys.stderr, flush=True)
+        print(f"vesselflow: warning: {_as_options(msg)}", file=sys.stderr, flush=True)
 
 
 class _BatchProgress:
@@ -101,7 +130,7 @@ class _BatchProgress:
 
     def warn(self, msg):
         self.finish()  # warnings show even with quiet
-        print(f"vesselflow batch: warning: {msg}", file=self.stream, flush=True)
+        print(f"vesselflow batch: warning: {_as_options(msg)}", file=self.stream, flush=True)
 
     def finish(self):
         if self.pending_line:
@@ -279,24 +308,10 @@ def _cmd_report(args):
 def _cmd_synth(args):
     from . import synthetic
 
-    out = Path(args.output)
-    if out.exists() and not args.overwrite:
-        raise InputError(f"output '{out}' exists; pass --overwrite to replace it")
-    if args.kind not in synthetic.SYNTH_KINDS:
-        raise InputError(f"synth kind: expected one of {', '.join(synthetic.SYNTH_KINDS)}, got '{args.kind}'")
-    if not 0.0 <= args.artefacts <= 1.0:
-        raise InputError(f"--artefacts: expected a strength in [0, 1], got {args.artefacts:g}")
-    opts = {}
-    if args.artefacts:
-        opts = synthetic.hostile_artefacts(args.artefacts, spacing=tuple(args.spacing), seed=args.seed)
-    for name in ("roughness", "specks", "holes"):
-        if getattr(args, name) or name not in opts:
-            opts[name] = getattr(args, name)
-    opts.update(spacing=tuple(args.spacing), seed=args.seed)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    mask, truth = synthetic.synthesize(args.kind, **opts)
-    synthetic.write_volume(out, mask, spacing=tuple(args.spacing), truth=truth)
-    _Reporter(args.quiet).info(f"wrote {out} {mask.shape} and its ground truth")
+    out, shape = synthetic.write_synthetic(args.output, args.kind, spacing=tuple(args.spacing), seed=args.seed,
+                                           artefacts=args.artefacts, roughness=args.roughness, specks=args.specks,
+                                           holes=args.holes, overwrite=args.overwrite)
+    _Reporter(args.quiet).info(f"wrote {out} {shape} and its ground truth")
     return 0
 
 
@@ -314,8 +329,6 @@ def _cmd_batch(args):
         logging.getLogger(name).setLevel(logging.CRITICAL + 1)
     cfg = _load_cfg(args)
     samples = batch.collect_samples(args.input, exclude=args.output)
-    if args.workers is not None and args.workers < 1:
-        raise InputError(f"--workers: expected a whole number of at least 1, got {args.workers}")
     res = batch.run_batch(samples, args.output, config=cfg, workers=args.workers, scheduler=args.scheduler,
                           force=args.force, overwrite=args.overwrite, memory_limit=args.memory_limit,
                           threads=args.threads, progress=_BatchProgress(len(samples), quiet=args.quiet),
@@ -359,23 +372,14 @@ def _cmd_demo(args):
 
 def _cmd_summarize(args):
     import json
-    import os
 
     from . import review, tables
 
-    result = tables.load_result(args.outdir)
     if not args.apply_review:
-        print(json.dumps(result.summary, indent=2))
+        print(json.dumps(tables.load_result(args.outdir).summary, indent=2))
         return 0
-    if not os.path.lexists(Path(args.outdir) / review.REVIEW_FILE):  # a folder or a broken link: review says why
-        raise InputError(f"--apply-review: expected {review.REVIEW_FILE} in '{args.outdir}', found none "
-                         "(review the flagged bifurcations with: vesselflow view OUTDIR)")
-    out = Path(args.outdir) / "summary_reviewed.json"
-    if out.exists() and not args.overwrite:
-        raise InputError(f"'{out}' exists; pass --overwrite to replace it")
-    summary, _ = review.apply_review(result)
-    tables.write_atomic(out, lambda tmp: tables.write_json(tmp, summary))
-    for key, before, after in review.changed_measures(result.summary, summary):
+    out, changes = review.write_reviewed_summary(args.outdir, overwrite=args.overwrite)
+    for key, before, after in changes:
         print(f"{key}: {after}" if before is None else f"{key}: {before} -> {after}")
     print(f"vesselflow: wrote {out}", file=sys.stderr)
     return 0
@@ -384,17 +388,14 @@ def _cmd_summarize(args):
 def _cmd_view(args):
     import os as _os
 
-    from . import tables
+    from . import review, tables
 
-    result = tables.load_result(args.outdir)  # a clear error before the slow napari import
+    # clear errors before the slow napari import
+    result = tables.load_result(args.outdir)
     if args.bifurcation is not None:
-        _check_junction(result, args.bifurcation)
+        review.check_bifurcation(result, args.bifurcation)
     if args.screenshot:
-        shot = Path(args.screenshot)
-        if shot.suffix.lower() != ".png":
-            raise InputError(f"--screenshot: expected a .png file name, got '{shot}'")
-        if shot.exists() and not args.overwrite:
-            raise InputError(f"--screenshot: '{shot}' exists; pass --overwrite to replace it")
+        tables.check_new_file(args.screenshot, suffix=".png", overwrite=args.overwrite)
     if sys.platform.startswith("linux") and not (_os.environ.get("DISPLAY") or _os.environ.get("WAYLAND_DISPLAY")):
         raise InputError("view: no display (DISPLAY is not set); on a machine without a screen run it under a "
                          "virtual one, for example: xvfb-run -a vesselflow view ...")
@@ -418,51 +419,18 @@ def _cmd_view(args):
 
 
 def _cmd_score(args):
-    import json
+    from . import scoring
 
-    from . import scoring, tables
-
-    out = Path(args.output) if args.output else None
-    if out is not None:
-        if out.suffix.lower() != ".json":
-            raise InputError(f"--output: expected a .json file name, got '{out}'")
-        if out.is_dir():
-            raise InputError(f"--output: expected a file name, got the folder '{out}'")
-        if Path(args.outdir).resolve() in out.resolve().parents:
-            raise InputError(f"--output: expected a file outside the result folder '{args.outdir}' (a result "
-                             f"folder holds only the result's own files), got '{out}'")
-        if out.exists() or out.is_symlink():
-            if not args.overwrite:
-                raise InputError(f"--output: '{out}' exists; pass --overwrite to replace it")
-            try:
-                old = json.loads(out.read_text(encoding="utf-8"))
-            except (OSError, ValueError):
-                old = None
-            if not (isinstance(old, dict) and old.get("format") == scoring.SCORE_FORMAT):
-                raise InputError(f"--overwrite: '{out}' is not a score file vesselflow wrote; it is never "
-                                 "replaced: choose another file name")
+    if args.output:  # every refusal before any work
+        scoring.check_score_file(args.output, result_dir=args.outdir, overwrite=args.overwrite)
     truth = scoring.load_truth(args.truth)
     s = scoring.score(args.outdir, truth)  # reads and checks the result folder
     print(scoring.format_score(s))
-    if out is not None:
-        doc = {**s, "result": str(args.outdir), "truth": str(args.truth)}
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tables.write_atomic(out, lambda tmp: tables.write_json(tmp, doc))
+    if args.output:
+        out = scoring.write_score(s, args.output, result_dir=args.outdir, truth_path=args.truth,
+                                  overwrite=args.overwrite)
         print(f"vesselflow: wrote {out}", file=sys.stderr)
     return 0
-
-
-def _check_junction(result, node_id):
-    b = result.bifurcations
-    if len(b) and int(node_id) in set(b["node_id"].astype(int).tolist()):
-        return
-    nodes = result.nodes
-    hit = nodes[nodes["node_id"] == int(node_id)] if len(nodes) else nodes
-    if not len(hit):
-        raise InputError(f"--bifurcation: node_id {node_id} is not a node of '{result.path}' "
-                         f"(nodes.csv has ids {nodes['node_id'].min()} to {nodes['node_id'].max()})")
-    raise InputError(f"--bifurcation: node {node_id} is a {hit['kind'].iloc[0]} node, not a bifurcation "
-                     "(expected a node_id from bifurcations.csv)")
 
 
 def main(argv=None):
@@ -475,10 +443,10 @@ def main(argv=None):
     try:
         return handlers[args.command](args)
     except (InputError, ConfigError) as exc:
-        print(f"vesselflow: error: {exc}", file=sys.stderr)
+        print(f"vesselflow: error: {_message(exc, args.command)}", file=sys.stderr)
         return 2
     except VesselflowError as exc:
-        print(f"vesselflow: failed: {exc}", file=sys.stderr)
+        print(f"vesselflow: failed: {_message(exc, args.command)}", file=sys.stderr)
         return 1
     except OSError as exc:  # the environment (disk, permissions) rather than a bug: one line, no traceback
         where = f" '{exc.filename}'" if exc.filename else ""

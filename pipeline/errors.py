@@ -9,7 +9,33 @@ __all__ = ["VesselflowError", "InputError", "ConfigError", "SolverError", "Stora
 
 
 class VesselflowError(Exception):
-    """Base class of every error vesselflow raises on purpose."""
+    """Base class of every error vesselflow raises on purpose.
+
+    Parameters
+    ----------
+    message : str
+        What was expected and what was got.
+    param : str, optional
+        The Python parameter the message is about (``'workers'``,
+        ``'overwrite'``): the message then reads ``'param: message'``, and
+        the command line shows the parameter's option instead
+        (``'--workers: ...'``). Hints in the message name parameters as
+        Python spells them (``overwrite=True``); the command line rewrites
+        those too.
+    """
+
+    def __init__(self, message="", *, param=None):
+        super().__init__(f"{param}: {message}" if param else message)
+        self.param = param
+        self.detail = message
+
+    def __reduce__(self):
+        # the keyword survives pickling (errors travel from Dask workers)
+        return _rebuild, (type(self), self.detail, self.param)
+
+
+def _rebuild(cls, detail, param):
+    return cls(detail, param=param)
 
 
 class InputError(VesselflowError, ValueError):

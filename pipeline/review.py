@@ -61,7 +61,10 @@ __all__ = [
     "record_decision",
     "clear_decision",
     "apply_review",
+    "write_reviewed_summary",
+    "REVIEWED_SUMMARY_FILE",
     "changed_measures",
+    "check_bifurcation",
     "COLOUR_MEASURES",
     "segment_measure",
     "available_measures",
@@ -73,6 +76,8 @@ REVIEW_FILE = "review.csv"
 REVIEW_COLUMNS = ("node_id", "decision", "note", "reviewed_at")
 #: Allowed decisions.
 DECISIONS = ("confirmed", "artefact", "unsure")
+#: File name of the summary with the review applied (:func:`write_reviewed_summary`).
+REVIEWED_SUMMARY_FILE = "summary_reviewed.json"
 
 
 def empty_review() -> pd.DataFrame:
@@ -448,8 +453,8 @@ def _checked_node_id(node_id: Any) -> int:
     try:
         return _node_id(node_id)
     except ValueError:
-        raise InputError(f"node_id: expected a node id, a whole number from 0 to {_MAX_NODE_ID}, "
-                         f"got {_shown(node_id)}") from None
+        raise InputError(f"expected a node id, a whole number from 0 to {_MAX_NODE_ID}, got {_shown(node_id)}",
+                         param="node_id") from None
 
 
 def apply_review(result, review: pd.DataFrame | None = None) -> tuple[dict[str, Any], pd.DataFrame]:
@@ -516,6 +521,70 @@ def apply_review(result, review: pd.DataFrame | None = None) -> tuple[dict[str, 
     summary["bifurcations_excluded_by_review"] = int(artefact.sum())
     summary["review_counts"] = counts
     return summary, bifs
+
+
+def write_reviewed_summary(outdir: str | os.PathLike[str], *, overwrite: bool = False
+                           ) -> tuple[Path, list[tuple[str, Any, Any]]]:
+    """Apply a result folder's ``review.csv`` and write ``summary_reviewed.json`` beside it.
+
+    Parameters
+    ----------
+    outdir : str or Path
+        A result folder with a ``review.csv``.
+    overwrite : bool, keyword-only
+        Replace an existing ``summary_reviewed.json``.
+
+    Returns
+    -------
+    path : Path
+        The file written (atomically).
+    changes : list of (str, object, object)
+        :func:`changed_measures` between the summary and the reviewed one.
+
+    Raises
+    ------
+    InputError
+        No ``review.csv`` (``param`` 'review'), an existing file without
+        ``overwrite``, or a review :func:`check_review` rejects.
+    """
+    from .tables import load_result, write_json
+
+    result = load_result(outdir)
+    if not os.path.lexists(Path(outdir) / REVIEW_FILE):  # a folder or a broken link: check_review says why
+        raise InputError(f"expected {REVIEW_FILE} in '{outdir}', found none (review the flagged bifurcations "
+                         "with: vesselflow view OUTDIR)", param="review")
+    out = Path(outdir) / REVIEWED_SUMMARY_FILE
+    if out.exists() and not overwrite:
+        raise InputError(f"'{out}' exists; pass overwrite=True to replace it")
+    summary, _ = apply_review(result)
+    write_atomic(out, lambda tmp: write_json(tmp, summary))
+    return out, changed_measures(result.summary, summary)
+
+
+def check_bifurcation(result, node_id: Any) -> int:
+    """The node id of a bifurcation of ``result``, checked; InputError (``param`` 'node_id') when it is none.
+
+    Parameters
+    ----------
+    result : pipeline.tables.Result
+    node_id : int
+
+    Returns
+    -------
+    int
+    """
+    node_id = _checked_node_id(node_id)
+    b = result.bifurcations
+    if len(b) and node_id in set(b["node_id"].astype(int).tolist()):
+        return node_id
+    nodes = result.nodes
+    hit = nodes[nodes["node_id"] == node_id] if len(nodes) else nodes
+    if not len(hit):
+        shown = f"ids {nodes['node_id'].min()} to {nodes['node_id'].max()}" if len(nodes) else "no nodes"
+        raise InputError(f"node_id {node_id} is not a node of '{result.path}' (nodes.csv has {shown})",
+                         param="node_id")
+    raise InputError(f"node {node_id} is a {hit['kind'].iloc[0]} node, not a bifurcation (expected a node_id "
+                     "from bifurcations.csv)", param="node_id")
 
 
 def changed_measures(before: Mapping[str, Any], after: Mapping[str, Any]) -> list[tuple[str, Any, Any]]:

@@ -55,7 +55,8 @@ import pandas as pd
 from .errors import InputError, StorageError
 from .tablefiles import write_csv, write_graphml
 
-__all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "write_atomic",
+__all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "check_new_file",
+           "write_atomic",
            "RESULT_FILES", "OWNED_NAMES", "verify_result", "is_result_folder", "clean_stale_partials",
            "make_partial_dir", "storage_error", "file_digest", "check_writable"]
 
@@ -310,15 +311,45 @@ def check_outdir(outdir, *, overwrite, inputs=()):
     if empty:
         return
     if not overwrite:
-        raise InputError(f"output folder '{out}' is not empty; pass --overwrite to replace it")
+        raise InputError(f"output folder '{out}' is not empty; pass overwrite=True to replace it")
     if not is_result_folder(out):
-        raise InputError(f"--overwrite: '{out}' is not a vesselflow result folder (no run.json of vesselflow's); "
-                         "it is never replaced: choose a new or empty folder")
+        raise InputError(f"'{out}' is not a vesselflow result folder (no run.json of vesselflow's); "
+                         "it is never replaced: choose a new or empty folder", param="overwrite")
     foreign = _foreign_entries(out)
     if foreign:
         shown = ", ".join(foreign[:5]) + (f" and {len(foreign) - 5} more" if len(foreign) > 5 else "")
-        raise InputError(f"--overwrite: result folder '{out}' also holds files vesselflow did not write ({shown}); "
-                         "move them out first or choose another folder")
+        raise InputError(f"result folder '{out}' also holds files vesselflow did not write ({shown}); "
+                         "move them out first or choose another folder", param="overwrite")
+
+
+def check_new_file(path, *, suffix, overwrite=False, param="path"):
+    """Refuse, before any work, a file name with the wrong suffix or an existing file without ``overwrite``.
+
+    Parameters
+    ----------
+    path : str or Path
+    suffix : str
+        Expected suffix, such as ``'.png'`` (any case).
+    overwrite : bool, keyword-only
+    param : str, keyword-only
+        The caller's parameter name, for the error.
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    InputError
+    """
+    out = Path(path)
+    if out.suffix.lower() != suffix:
+        raise InputError(f"expected a {suffix} file name, got '{out}'", param=param)
+    if out.is_dir():
+        raise InputError(f"expected a file name, got the folder '{out}'", param=param)
+    if out.exists() and not overwrite:
+        raise InputError(f"'{out}' exists; pass overwrite=True to replace it", param=param)
+    return out
 
 
 def file_digest(path):
@@ -590,7 +621,7 @@ def read_result_mask(result, mask_path=None):
         mask_path = recorded
     path = Path(mask_path)
     if not path.is_file():
-        raise InputError(f"--mask: expected a mask file, got '{path}' (not found)")
+        raise InputError(f"expected a mask file, got '{path}' (not found)", param="mask_path")
     spacing = result.spacing[1:] if run.get("planar") else result.spacing
     threshold = ((run.get("config") or {}).get("input") or {}).get("threshold")
     # Only the boolean mask is held for display, none of the analysis' work arrays.

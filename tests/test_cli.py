@@ -1,6 +1,7 @@
 """The command line: outputs, exit codes, refusal to overwrite, bad input."""
 
 import json
+import pickle
 import subprocess
 import sys
 
@@ -10,9 +11,11 @@ import pandas as pd
 import pytest
 import tifffile
 
-from pipeline import synthetic
-from pipeline.cli import main
-from pipeline.tables import RESULT_FILES, load_result
+from pipeline import batch, synthetic
+from pipeline.cli import _message, main
+from pipeline.errors import InputError, StorageError
+from pipeline.scoring import check_score_file
+from pipeline.tables import RESULT_FILES, check_new_file, load_result
 
 
 @pytest.fixture(scope="module")
@@ -196,3 +199,81 @@ def test_demo_analyses_every_volume_with_reports(tube_tif, tmp_path):
     assert all((folder / f).is_file() for f in RESULT_FILES)
     assert (folder / "report.html").is_file()
     assert main(["demo", "-o", str(out), "--input-dir", str(tmp_path / "none"), "--quiet"]) == 2
+
+
+# --- errors name Python parameters; the command line shows its options ---
+
+
+def _bad_strength(tmp):
+    synthetic.write_synthetic(tmp / "x.tif", "tube", artefacts=2.0)
+
+
+def _bad_suffix(tmp):
+    check_new_file(tmp / "x.jpg", suffix=".png")
+
+
+def _existing_score_file(tmp):
+    (tmp / "s.json").write_text("{}")
+    check_score_file(tmp / "s.json")
+
+
+@pytest.mark.parametrize("call, param", [(_bad_strength, "artefacts"), (_bad_suffix, "path"),
+                                         (_existing_score_file, "path")])
+def test_library_errors_name_parameters_not_options(tmp_path, call, param):
+    # The library is called from Python, where '--overwrite' means nothing:
+    # its messages name its parameters (and hints spell a call), and the
+    # error carries the parameter for the command line to translate.
+    with pytest.raises(InputError) as info:
+        call(tmp_path)
+    assert "--" not in str(info.value)
+    assert info.value.param == param and str(info.value) == f"{param}: {info.value.detail}"
+    assert not (tmp_path / "x.tif").exists()
+
+
+def test_batch_option_errors_carry_the_parameter(tmp_path, tube_tif):
+    samples = batch.collect_samples(tube_tif.parent)
+    for kwargs, param in [({"workers": 0}, "workers"), ({"threads": -1}, "threads"),
+                          ({"worker_timeout": 0}, "worker_timeout"), ({"memory_limit": "lots"}, "memory_limit")]:
+        with pytest.raises(InputError) as info:
+            batch.run_batch(samples, tmp_path / f"out-{param}", **kwargs)
+        assert info.value.param == param and "--" not in str(info.value)
+        assert not (tmp_path / f"out-{param}").exists()
+
+
+@pytest.mark.parametrize("param, command, option", [
+    ("worker_timeout", "batch", "--worker-timeout"),
+    ("memory_limit", "batch", "--memory-limit"),
+    ("mask_path", "view", "--mask"),
+    ("mask", "report", "--mask"),
+    ("mask", "analyze", "MASK"),
+    ("path", "view", "--screenshot"),
+    ("path", "score", "--output"),
+    ("node_id", "view", "--bifurcation"),
+    ("artefacts", "synth", "--artefacts"),
+])
+def test_the_command_line_shows_its_option_for_a_parameter(param, command, option):
+    line = _message(InputError("expected X, got Y; pass overwrite=True to replace it", param=param), command)
+    assert line == f"{option}: expected X, got Y; pass --overwrite to replace it"
+
+
+def test_a_parameter_without_an_option_keeps_its_name():
+    assert _message(InputError("expected a 3-D array", param="radius_um"), "analyze") == \
+        "radius_um: expected a 3-D array"
+    assert _message(InputError("no parameter here"), "analyze") == "no parameter here"
+
+
+def test_the_parameter_survives_pickling():
+    # Errors travel from Dask worker processes to the batch.
+    for exc in (InputError("expected 1, got 2", param="workers"), StorageError("disk full")):
+        back = pickle.loads(pickle.dumps(exc))
+        assert type(back) is type(exc) and str(back) == str(exc) and back.param == exc.param
+
+
+def test_probability_image_hint_shows_the_threshold_option(tmp_path, capsys):
+    prob = np.random.default_rng(1).random((6, 7, 8)).astype(np.float32)
+    path = tmp_path / "p.tif"
+    tifffile.imwrite(path, prob)
+    assert main(["analyze", str(path), "-o", str(tmp_path / "res"), "--quiet", "--spacing", "1", "1", "1"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "pass --threshold T to binarise" in err[0]
+    assert not (tmp_path / "res").exists()

@@ -224,7 +224,8 @@ def _client(*, workers, scheduler, memory_limit):
         try:
             return Client(scheduler, timeout="10s", set_as_default=False), None
         except (OSError, TimeoutError) as exc:
-            raise InputError(f"--scheduler '{scheduler}': cannot connect to a Dask scheduler there ({exc})") from None
+            raise InputError(f"cannot connect to a Dask scheduler at '{scheduler}' ({exc})",
+                             param="scheduler") from None
     # A worker killed for memory takes its sample with it: the scheduler gives
     # up on it at once (Dask's default retries 3 times) and run_batch tries it
     # exactly once more.
@@ -251,12 +252,12 @@ def _check_reachable(address):
     except ValueError:
         host = port = None
     if parts.scheme not in ("tcp", "tls") or not host or not port:
-        raise InputError(f"--scheduler: expected an address such as tcp://HOST:8786, got '{address}'")
+        raise InputError(f"expected an address such as tcp://HOST:8786, got '{address}'", param="scheduler")
     try:
         socket.create_connection((host, port), timeout=5).close()
     except OSError as exc:
-        raise InputError(f"--scheduler '{address}': cannot connect to a Dask scheduler there ({exc.strerror or exc})"
-                         ) from None
+        raise InputError(f"cannot connect to a Dask scheduler at '{address}' ({exc.strerror or exc})",
+                         param="scheduler") from None
 
 
 def _default_workers():
@@ -284,13 +285,13 @@ def _check_batch_outdir(outdir, *, overwrite, samples):
     ours = (out / "batch.json").is_file()
     if any(out.iterdir()) and not ours:
         if not overwrite:
-            raise InputError(f"output folder '{out}' is not empty and holds no earlier batch; pass --overwrite to "
-                             "write into it anyway")
+            raise InputError(f"output folder '{out}' is not empty and holds no earlier batch; pass overwrite=True "
+                             "to write into it anyway")
         taken = [n for n in STUDY_FILES if (out / n).exists()]
         if taken:
-            raise InputError(f"--overwrite: '{out}' holds no earlier batch but has files named like the study "
+            raise InputError(f"'{out}' holds no earlier batch but has files named like the study "
                              f"tables ({', '.join(taken)}); they are not vesselflow's and are never replaced: "
-                             "choose another folder")
+                             "choose another folder", param="overwrite")
     for s in samples:
         try:
             check_outdir(out / s.sample_id, overwrite=True, inputs=[s.path])
@@ -475,20 +476,21 @@ def run_batch(samples, outdir, *, config=None, workers=None, scheduler=None, for
     for s in samples:
         _settings(s, cfg)  # a bad per-sample root fails before any work
     if workers is not None and (not isinstance(workers, int) or workers < 1):
-        raise InputError(f"--workers: expected a whole number of at least 1, got {workers!r}")
+        raise InputError(f"expected a whole number of at least 1, got {workers!r}", param="workers")
     if threads is not None and (not isinstance(threads, int) or threads < 1):
-        raise InputError(f"--threads: expected a whole number of at least 1, got {threads!r}")
+        raise InputError(f"expected a whole number of at least 1, got {threads!r}", param="threads")
     if not (isinstance(worker_timeout, (int, float)) and math.isfinite(worker_timeout) and worker_timeout > 0):
-        raise InputError(f"--worker-timeout: expected a positive number of seconds, got {worker_timeout!r}")
+        raise InputError(f"expected a positive number of seconds, got {worker_timeout!r}", param="worker_timeout")
     if isinstance(memory_limit, str):
         from dask.utils import parse_bytes
 
         try:
             memory_limit = int(parse_bytes(memory_limit))
         except (ValueError, TypeError):
-            raise InputError(f"--memory-limit: expected a size such as 6GB or 500MB, got '{memory_limit}'") from None
+            raise InputError(f"expected a size such as 6GB or 500MB, got '{memory_limit}'",
+                             param="memory_limit") from None
         if memory_limit <= 0:
-            raise InputError(f"--memory-limit: expected a positive size, got {memory_limit} bytes")
+            raise InputError(f"expected a positive size, got {memory_limit} bytes", param="memory_limit")
     nworkers = workers or min(_default_workers(), len(samples))
     if memory_limit is None and not scheduler:
         from ..reading import available_memory_bytes
@@ -708,7 +710,7 @@ def _worker_failure(sample, exc, memory_limit):
     if _is_killed_worker(exc):
         lim = f" of {memory_limit / 2**30:.1f} GiB" if isinstance(memory_limit, (int, float)) else ""
         error = (f"the worker process died while analysing this sample (most often its memory limit{lim} was "
-                 "exceeded; give workers more memory with --memory-limit or use fewer --workers)")
+                 "exceeded; give workers more memory or use fewer of them)")
     else:
         error = f"{name}: {' '.join(str(exc).split())}"
     return {"sample_id": sample.sample_id, "group": sample.group, "path": str(sample.path), "status": "failed",

@@ -122,7 +122,7 @@ def _unitless_nifti_unit(label: str, pixdim: list[float], unit_code: int,
         note = (
             f"{header}; {shown} is a plausible voxel size ({lo:g}-{hi:g} µm) only in {word}, so the "
             f"spacing is read as {_fmt_spacing(spacing)} µm ({'Y X' if len(spacing) == 2 else 'Z Y X'}); "
-            "pass --spacing Z Y X in µm if that is wrong"
+            "pass spacing=(dz, dy, dx) in µm if that is wrong"
         )
         return factor, f"nifti-no-unit-{name}", note, None
     how = "plausible both as µm and as mm" if fits else "plausible neither as µm nor as mm"

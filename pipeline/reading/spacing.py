@@ -146,10 +146,10 @@ def _check_spacing_plausible(label: str, spacing: tuple[float, float, float], wh
     if mode == "error":
         lo, hi = PLAUSIBLE_SPACING_UM
         raise InputError(
-            f"{text}; expected voxel sizes of {lo:g}-{hi:g} µm in Z Y X order: pass the right spacing "
-            "(--spacing Z Y X in µm), or set input.implausible_spacing to warn to go on"
+            f"{text}; expected voxel sizes of {lo:g}-{hi:g} µm in Z Y X order: pass the right "
+            "spacing=(dz, dy, dx) in µm, or set input.implausible_spacing to warn to go on"
         )
-    notes.append(f"{text}; check it, or pass the right spacing (--spacing Z Y X in µm)")
+    notes.append(f"{text}; check it, or pass the right spacing=(dz, dy, dx) in µm")
 
 
 def _unit_factor(unit: Any) -> float | None:
@@ -219,7 +219,7 @@ def _resolve_spacing(
         result = (dz if dz is not None else min(found.dy, found.dx), found.dy, found.dx)
         source = found.source
     elif problem is not None:
-        raise InputError(f"{problem}; pass spacing=(dz, dy, dx) in µm (--spacing) to set it")
+        raise InputError(f"{problem}; pass spacing=(dz, dy, dx) in µm to set it")
     else:
         notes.append(DEFAULT_SPACING_WARNING)
         result = (1.0, 1.0, 1.0)

@@ -170,7 +170,7 @@ def _binarise(
         raise InputError(
             f"{label} has {_distinct_values(raw)} distinct values (min {_fmt_value(scan.vmin)}, "
             f"max {_fmt_value(scan.vmax)}); it looks like an intensity or probability image: "
-            "pass threshold=T (--threshold T) to binarise"
+            "pass threshold=T to binarise"
         )
 
     operand: Any

@@ -102,7 +102,7 @@ def _label(measure):
 
 
 def _col(df, name):
-    """A numeric column, or all-NaN when it is absent (for example with --no-flow)."""
+    """A numeric column, or all-NaN when it is absent (for example when flow was not solved)."""
     if name in df.columns:
         return pd.to_numeric(df[name], errors="coerce").to_numpy(float)
     return np.full(len(df), np.nan)

@@ -71,10 +71,10 @@ def build_report(outdir, *, mask=None, overwrite=False) -> Path:
                          "segments.csv) nor a batch folder (expected cohort_summary.csv)")
     if not overwrite and ((out / REPORT_NAME).exists() or (out / FIGURE_DIR).exists()):
         raise InputError(f"report: '{out}' already has {REPORT_NAME} or {FIGURE_DIR}/; "
-                         "pass --overwrite to replace them")
+                         "pass overwrite=True to replace them")
     if kind == "batch":
         if mask is not None:
-            raise InputError("report: --mask applies to one sample; a batch folder reads each sample's own")
+            raise InputError("applies to one sample; a batch folder reads each sample's own", param="mask")
         page, figures = _study_report(out)
     else:
         page, figures = _sample_report(out, mask=mask)

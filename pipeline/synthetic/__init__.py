@@ -48,7 +48,7 @@ from .trees import binary_tree, murray_angles_deg, murray_daughter_radii, y_bran
 from .beds import capillary_bed
 from .cortex import MMHG_PA, VESSEL_CLASSES, cortex_network, network_flow_truth
 from .raster import HOSTILE_AT_FULL_STRENGTH, hostile_artefacts, rasterize
-from .writing import truth_path_for, write_volume
+from .writing import truth_path_for, write_synthetic, write_volume
 from .kinds import SYNTH_KINDS, SynthKind, synthesize
 
 __all__ = [
@@ -76,6 +76,7 @@ __all__ = [
     "HOSTILE_AT_FULL_STRENGTH",
     "hostile_artefacts",
     "write_volume",
+    "write_synthetic",
     "truth_path_for",
     "synthesize",
 ]

@@ -23,7 +23,7 @@ NODE_KINDS = ("junction", "blind", "border", "loop")
 
 
 def _bad(name: str, expected: str, got: Any) -> InputError:
-    return InputError(f"{name}: expected {expected}, got {got!r}")
+    return InputError(f"expected {expected}, got {got!r}", param=name)
 
 
 def _real(

@@ -12,6 +12,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from ..errors import InputError
 from ._common import _bad, _json_default, _spacing
 
 
@@ -77,3 +78,70 @@ def write_volume(
         text = json.dumps(truth, separators=(",", ":"), default=_json_default)
         write_atomic(truth_path_for(p), lambda tmp: tmp.write_text(text + "\n", encoding="utf-8"))
     return p
+
+
+def write_synthetic(
+    path: str | Path,
+    kind: str,
+    *,
+    spacing: Sequence[float] = (1.0, 1.0, 1.0),
+    seed: int = 0,
+    artefacts: float = 0.0,
+    roughness: float = 0.0,
+    specks: int = 0,
+    holes: int = 0,
+    overwrite: bool = False,
+) -> tuple[Path, tuple[int, ...]]:
+    """Build a named synthetic volume and write it with its ground truth.
+
+    Parameters
+    ----------
+    path : str or Path
+        TIFF file to write; its truth goes beside it (:func:`truth_path_for`).
+    kind : str
+        A key of :data:`pipeline.synthetic.SYNTH_KINDS`.
+    spacing : sequence of 3 float, keyword-only
+        ``(dz, dy, dx)`` µm.
+    seed : int, keyword-only
+    artefacts : float, keyword-only
+        Strength in [0, 1] of every artefact of the hostile model
+        (:func:`pipeline.synthetic.hostile_artefacts`); 0 adds none.
+    roughness, specks, holes : keyword-only
+        Wall roughness, specks and holes (:func:`pipeline.synthetic.rasterize`);
+        a non-zero value overrides the one ``artefacts`` sets.
+    overwrite : bool, keyword-only
+        Replace an existing file.
+
+    Returns
+    -------
+    path : Path
+        The TIFF written.
+    shape : tuple of int
+        The volume's shape (Z, Y, X).
+
+    Raises
+    ------
+    InputError
+        An unknown kind, a strength outside [0, 1], an existing file
+        without ``overwrite``; nothing is written then.
+    """
+    from .kinds import SYNTH_KINDS, synthesize
+    from .raster import hostile_artefacts
+
+    out = Path(path)
+    if out.exists() and not overwrite:
+        raise InputError(f"'{out}' exists; pass overwrite=True to replace it", param="path")
+    if kind not in SYNTH_KINDS:
+        raise _bad("kind", "one of " + ", ".join(SYNTH_KINDS), kind)
+    if not (isinstance(artefacts, (int, float)) and 0.0 <= artefacts <= 1.0):
+        raise _bad("artefacts", "a strength in [0, 1]", artefacts)
+    d = tuple(float(x) for x in _spacing(spacing))
+    opts: dict[str, Any] = hostile_artefacts(artefacts, spacing=d, seed=seed) if artefacts else {}
+    for name, value in (("roughness", roughness), ("specks", specks), ("holes", holes)):
+        if value or name not in opts:
+            opts[name] = value
+    opts.update(spacing=d, seed=seed)
+    mask, truth = synthesize(kind, **opts)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    write_volume(out, mask, spacing=d, truth=truth)
+    return out, tuple(mask.shape)

@@ -69,7 +69,7 @@ def read_mask_for(result: tables.Result, mask_path: str | os.PathLike[str] | Non
     """
     img, notes = tables.read_result_mask(result, mask_path)
     if img is None:
-        return None, notes[0] + "; showing the graph without it (pass --mask PATH)"
+        return None, notes[0] + "; showing the graph without it (pass mask_path=PATH)"
     return img.mask, ("; ".join(notes) or None)
 
 

@@ -13,7 +13,6 @@ import numpy as np
 from qtpy import QtCore, QtWidgets
 
 from .. import review as rv, tables
-from ..errors import InputError
 from .panel import ReviewPanel, _camera
 
 
@@ -104,11 +103,7 @@ def render_screenshot(outdir, path, *, mask_path=None, colour_by="radius", bifur
     InputError
         Bad folder, junction or file name, or an existing file without ``overwrite``.
     """
-    out = Path(path)
-    if out.suffix.lower() != ".png":
-        raise InputError(f"--screenshot: expected a .png file name, got '{out}'")
-    if out.exists() and not overwrite:
-        raise InputError(f"--screenshot: '{out}' exists; pass --overwrite to replace it")
+    out = tables.check_new_file(path, suffix=".png", overwrite=overwrite)
     viewer, panel = open_result(outdir, mask_path=mask_path, colour_by=colour_by, show=False)
     try:
         _realise_hidden(viewer)
