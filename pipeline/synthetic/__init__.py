@@ -34,11 +34,11 @@ Layout (each module's docstring says what comes in and what goes out):
 ``_common`` (argument checks, geometry helpers) -> ``network`` (the
 :class:`VesselNetwork` type, clipping to a box) -> the builders ``shapes``
 (tubes, helix, torus, ladder), ``trees`` (Y branch, Murray trees), ``beds``
-(capillary bed), ``cortex`` (cortex-like network and its flow truth) ->
-``painting`` (capsule walls into voxels, imaging) and ``artefacts`` (what
-real segmentations add) -> ``raster`` (:func:`rasterize`, the mask and its
-truth) -> ``writing`` (TIFF and truth file) and ``kinds`` (the named kinds
-of the ``synth`` command).
+(capillary bed), ``cortex`` (cortex-like network and its flow truth; its
+penetrating trees grow in ``_cortex_trees``) -> ``painting`` (capsule walls
+into voxels, imaging) and ``artefacts`` (what real segmentations add) ->
+``raster`` (:func:`rasterize`, the mask and its truth) -> ``writing`` (TIFF
+and truth file) and ``kinds`` (the named kinds of the ``synth`` command).
 """
 
 from ._common import MAX_STEP_UM

@@ -9,22 +9,17 @@ arteriolar roots at one pressure and venular roots at another.
 from __future__ import annotations
 
 import math
-from typing import Any, Mapping, Sequence
+from typing import Any, Mapping, NamedTuple, Sequence
 
 import numpy as np
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from ._common import (
-    _any_perpendicular, _bad, _count, _line_points, _make_segment, _n_steps, _node, _positive, _real, _rng, _rotate,
-    _unit, _vec3,
-)
+from ._common import _bad, _count, _make_segment, _n_steps, _node, _positive, _real, _rng, _vec3
 from .network import VesselNetwork, network_tables
-from .trees import (
-    _Clearance, _bifurcation_record, _daughter_directions, _siblings_apart, murray_angles_deg,
-    murray_daughter_radii,
-)
+from .trees import _bifurcation_record
+from ._cortex_trees import _TreeEdges, _grow_trees
 
 
 # ------------------------------------------------------------------- cortex-like network
@@ -35,8 +30,6 @@ MMHG_PA = 133.322
 #: Vessel classes of :func:`cortex_network` (segment key ``vessel_class``).
 VESSEL_CLASSES = ("arteriole", "venule", "capillary")
 
-# Directions tried for a branch before its parent is left to end in the mesh.
-_BRANCH_TRIES = 12
 # Lattice nodes looked at when a terminal branch is joined to the mesh.
 _SNAP_CANDIDATES = 8
 
@@ -60,29 +53,465 @@ def _pair(name: str, value: Any, *, low: float = 0.0, high: float | None = None)
     return float(arr[0]), float(arr[1])
 
 
-def _trunk_sites(rng: np.random.Generator, n: int, box: np.ndarray) -> np.ndarray:
-    """(n, 2) surface positions (y, x) µm, spread by dart throwing.
+def _mesh_nodes(
+    rng: np.random.Generator,
+    tree_pos: list[np.ndarray],
+    terminals: list[int],
+    n_cells: np.ndarray,
+    cell: np.ndarray,
+    jitter: float,
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """Jittered lattice nodes of the capillary mesh; terminal branches take their nearest free one.
 
-    Sites keep a tenth of the box from the side faces, so that trunks and
-    their first branches stay inside; the spacing starts at 0.7 of the mean
-    nearest-neighbour distance of a hexagonal packing and shrinks by a tenth
-    whenever 400 throws in a row miss.
+    Returns
+    -------
+    gid : ndarray of int64, shape (prod(n_cells),)
+        Node of each lattice site: the terminal moved onto it, or a new node
+        numbered after the tree nodes.
+    all_pos : ndarray, shape (N, 3)
+        Tree nodes, then the lattice's own nodes, µm.
+    n_joined : int
+        Terminals that took a lattice node.
     """
-    lo, hi = 0.1 * box[1:], 0.9 * box[1:]
-    d_min = 0.7 * math.sqrt(float(np.prod(hi - lo)) / n)
-    sites: list[np.ndarray] = []
-    misses = 0
-    while len(sites) < n:
-        p = rng.uniform(lo, hi)
-        if all(np.linalg.norm(p - q) >= d_min for q in sites):
-            sites.append(p)
-            misses = 0
-        else:
-            misses += 1
-            if misses >= 400:
-                d_min *= 0.9
-                misses = 0
-    return np.array(sites)
+    n_tree_nodes = len(tree_pos)
+    grid = np.stack(np.meshgrid(*[np.arange(n) for n in n_cells], indexing="ij"), axis=-1).reshape(-1, 3)
+    lat = (grid + 0.5) * cell + rng.uniform(-jitter, jitter, size=grid.shape)
+    gid = np.full(len(lat), -1, dtype=np.int64)
+    order = rng.permutation(len(terminals))
+    term = np.asarray(terminals, dtype=np.int64)[order]
+    kq = min(_SNAP_CANDIDATES, len(lat))
+    if len(term):
+        _, cand = cKDTree(lat).query(np.array([tree_pos[i] for i in term]), k=kq)
+        cand = np.asarray(cand).reshape(len(term), kq)
+        for ti, row in zip(term.tolist(), cand.tolist()):
+            free = [j for j in row if gid[j] < 0]
+            if free:
+                gid[free[0]] = ti
+    snapped = gid >= 0
+    n_joined = int(snapped.sum())
+    gid[~snapped] = n_tree_nodes + np.arange(int((~snapped).sum()))
+    all_pos = np.array([*tree_pos, *lat[~snapped]])
+    return gid, all_pos, n_joined
+
+
+def _mesh_links(
+    rng: np.random.Generator,
+    gid: np.ndarray,
+    all_pos: np.ndarray,
+    n_cells: np.ndarray,
+    *,
+    bend: float,
+    r_cap_hi: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Bent links between neighbouring lattice sites, as dense polylines.
+
+    Returns
+    -------
+    la, lb : ndarray of int64, shape (L,)
+        End nodes of each link.
+    link_pts : ndarray, shape (L, K, 3)
+        From ``all_pos[la]`` to ``all_pos[lb]``, bowed sideways by up to ``bend``.
+    """
+    flat = np.arange(len(gid)).reshape(tuple(n_cells))
+    links = np.concatenate([
+        np.stack([np.take(flat, np.arange(n_cells[ax] - 1), axis=ax).ravel(),
+                  np.take(flat, np.arange(1, n_cells[ax]), axis=ax).ravel()], axis=1)
+        for ax in range(3)
+    ]) if len(gid) > 1 else np.zeros((0, 2), dtype=np.int64)
+    la, lb = gid[links[:, 0]], gid[links[:, 1]]
+    a_pos, b_pos = all_pos[la], all_pos[lb]
+    chord = b_pos - a_pos
+    clen = np.linalg.norm(chord, axis=1)
+    keep = clen > 2.0 * r_cap_hi  # two snapped ends can almost meet
+    la, lb, a_pos, b_pos, chord, clen = la[keep], lb[keep], a_pos[keep], b_pos[keep], chord[keep], clen[keep]
+    n_links = len(la)
+    k_pts = _n_steps(float(clen.max(initial=1.0)) + 2.0 * bend) + 1
+    tt = np.linspace(0.0, 1.0, k_pts)
+    dirs = chord / np.maximum(clen, 1e-12)[:, None]
+    ref = np.where(np.abs(dirs[:, :1]) < 0.9, np.array([[1.0, 0, 0]]), np.array([[0, 1.0, 0]]))
+    e1 = np.cross(dirs, ref)
+    e1 /= np.linalg.norm(e1, axis=1, keepdims=True)
+    e2 = np.cross(dirs, e1)
+    ang = rng.uniform(0, 2 * math.pi, n_links)[:, None]
+    e_perp = np.cos(ang) * e1 + np.sin(ang) * e2
+    amp = rng.uniform(0.0, bend, n_links)
+    link_pts = (
+        a_pos[:, None, :]
+        + tt[None, :, None] * chord[:, None, :]
+        + (amp[:, None] * (np.sin(np.pi * tt) ** 2)[None, :])[:, :, None] * e_perp[:, None, :]
+    )
+    link_pts[:, 0], link_pts[:, -1] = a_pos, b_pos
+    return la, lb, link_pts
+
+
+def _clashing(
+    all_pos: np.ndarray,
+    pa: np.ndarray,
+    pb: np.ndarray,
+    a1: np.ndarray,
+    b1: np.ndarray,
+    a2: np.ndarray,
+    b2: np.ndarray,
+    limit: float | np.ndarray,
+    dist: np.ndarray,
+) -> np.ndarray:
+    """Point pairs closer than ``limit``, not both near a node their vessels share.
+
+    Parameters
+    ----------
+    pa, pb : ndarray, shape (P, 3)
+        The pairs' points; ``(a1, b1)`` and ``(a2, b2)`` the end nodes of
+        their vessels, ``dist`` their distances, shape (P,).
+    """
+    shared = np.where((a1 == a2) | (a1 == b2), a1, np.where((b1 == a2) | (b1 == b2), b1, -1))
+    meet = shared >= 0
+    at = all_pos[np.where(meet, shared, 0)]
+    off = np.minimum(np.linalg.norm(pa - at, axis=1), np.linalg.norm(pb - at, axis=1))
+    return (dist < limit) & (~meet | (off > 2.0 * limit))
+
+
+def _clashing_links(
+    tr: _TreeEdges,
+    all_pos: np.ndarray,
+    la: np.ndarray,
+    lb: np.ndarray,
+    link_pts: np.ndarray,
+    *,
+    r_cap_hi: float,
+) -> np.ndarray:
+    """Links that come closer than ``1.25 (r_a + r_b) + gap`` to a tree or to another link.
+
+    Returns
+    -------
+    ndarray of bool, shape (L,)
+    """
+    fac, gap = tr.index.factor, tr.gap
+    # Clashes, judged on points about 2 µm apart. Vessels meeting at a node may
+    # touch within twice their clearance of it (their tubes overlap there anyway);
+    # farther out they must keep clear too, so that they part at more than about
+    # 30 degrees instead of running fused side by side.
+    n_links, k_pts = link_pts.shape[:2]
+    sub = np.unique(np.r_[np.arange(0, k_pts, 4), k_pts - 1])
+    lp = link_pts[:, sub].reshape(-1, 3)
+    l_own = np.repeat(np.arange(n_links), len(sub))
+    bad = np.zeros(n_links, dtype=bool)
+    n_tree_edges = len(tr.a)
+    if n_links and n_tree_edges:
+        tp = np.concatenate([p[::2] for p in tr.pts])
+        t_own = np.repeat(np.arange(n_tree_edges), [len(p[::2]) for p in tr.pts])
+        t_rad = np.asarray(tr.rad)[t_own]
+        ta, tb = np.asarray(tr.a)[t_own], np.asarray(tr.b)[t_own]
+        reach = fac * (r_cap_hi + float(t_rad.max())) + gap
+        sdm = cKDTree(lp).sparse_distance_matrix(cKDTree(tp), reach, output_type="ndarray")
+        pi_, tj = sdm["i"], sdm["j"]
+        li = l_own[pi_]
+        hit = _clashing(
+            all_pos, lp[pi_], tp[tj], la[li], lb[li], ta[tj], tb[tj], fac * (r_cap_hi + t_rad[tj]) + gap, sdm["v"]
+        )
+        bad[np.unique(li[hit])] = True
+    if n_links:
+        limit = fac * 2.0 * r_cap_hi + gap
+        pairs = cKDTree(lp).query_pairs(limit, output_type="ndarray")
+        pi_, pj_ = l_own[pairs[:, 0]], l_own[pairs[:, 1]]
+        dist = np.linalg.norm(lp[pairs[:, 0]] - lp[pairs[:, 1]], axis=1)
+        hit = (pi_ != pj_) & _clashing(
+            all_pos, lp[pairs[:, 0]], lp[pairs[:, 1]], la[pi_], lb[pi_], la[pj_], lb[pj_], limit, dist
+        )
+        clash = np.unique(np.sort(np.stack([pi_, pj_], axis=1)[hit & ~bad[pi_] & ~bad[pj_]], axis=1), axis=0)
+        # Drop the link in most clashes until none is left (only links at moved nodes clash).
+        while len(clash):
+            worst = int(np.argmax(np.bincount(clash.ravel(), minlength=n_links)))
+            bad[worst] = True
+            clash = clash[(clash[:, 0] != worst) & (clash[:, 1] != worst)]
+    return bad
+
+
+def _thin_to_three(
+    rng: np.random.Generator, bad: np.ndarray, la: np.ndarray, lb: np.ndarray, tr: _TreeEdges, n_nodes: int
+) -> None:
+    """Drop links (``bad`` in place), in random order, while both their nodes keep more than three vessels."""
+    deg = np.bincount(np.r_[tr.a, tr.b, la[~bad], lb[~bad]].astype(np.int64), minlength=n_nodes)
+    for li_ in rng.permutation(np.flatnonzero(~bad)).tolist():
+        a, b = la[li_], lb[li_]
+        if deg[a] > 3 and deg[b] > 3:
+            bad[li_] = True
+            deg[a] -= 1
+            deg[b] -= 1
+
+
+def _build_mesh(
+    rng: np.random.Generator,
+    tr: _TreeEdges,
+    n_cells: np.ndarray,
+    cell: np.ndarray,
+    spare: float,
+    *,
+    r_cap_hi: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
+    """The capillary mesh, fed and drained by the trees' terminal branches.
+
+    Returns
+    -------
+    la, lb : ndarray of int64, shape (L,)
+        End nodes of the links kept.
+    link_pts : ndarray, shape (L, K, 3)
+        Their polylines.
+    all_pos : ndarray, shape (N, 3)
+        Tree nodes, then the mesh's own nodes, µm.
+    n_joined : int
+        Terminal branches joined to the mesh.
+    """
+    spare_jit = min(0.15 * float(cell.min()), 0.3 * spare)
+    bend = min(0.1 * float(cell.min()), 0.2 * spare)
+    gid, all_pos, n_joined = _mesh_nodes(rng, tr.pos, tr.terminals, n_cells, cell, spare_jit)
+    la, lb, link_pts = _mesh_links(rng, gid, all_pos, n_cells, bend=bend, r_cap_hi=r_cap_hi)
+    bad = _clashing_links(tr, all_pos, la, lb, link_pts, r_cap_hi=r_cap_hi)
+    _thin_to_three(rng, bad, la, lb, tr, len(all_pos))
+    ok = ~bad
+    return la[ok], lb[ok], link_pts[ok], all_pos, n_joined
+
+
+class _Joined(NamedTuple):
+    """The whole network's edges and nodes before pruning.
+
+    Edges are the tree edges first (oriented root side -> depth), then the
+    kept capillary links; all arrays but ``pos`` and ``is_root`` have one
+    entry per edge.
+    """
+
+    a: np.ndarray  # int64 end nodes
+    b: np.ndarray
+    cls: np.ndarray  # index into VESSEL_CLASSES
+    tree: np.ndarray  # penetrating vessel, -1 for capillaries
+    rad: np.ndarray
+    pts: list[np.ndarray]  # polylines (K, 3) from a to b
+    pos: np.ndarray  # (N, 3) node positions, µm
+    is_root: np.ndarray  # (N,) bool
+    n_tree_edges: int
+
+
+def _join(
+    rng: np.random.Generator,
+    tr: _TreeEdges,
+    la: np.ndarray,
+    lb: np.ndarray,
+    link_pts: np.ndarray,
+    all_pos: np.ndarray,
+    roots: np.ndarray,
+    r_cap: tuple[float, float],
+) -> _Joined:
+    """One edge list of the trees and the mesh; each capillary link draws its radius."""
+    n_cap = len(la)
+    # Each capillary link draws its radius now; a merged chain takes that of its
+    # first link, so radii stay put while the pruning reshapes chains.
+    rad = np.r_[np.asarray(tr.rad, dtype=float), rng.uniform(r_cap[0], r_cap[1], n_cap)]
+    is_root = np.zeros(len(all_pos), dtype=bool)
+    is_root[roots] = True
+    return _Joined(
+        a=np.r_[np.asarray(tr.a, dtype=np.int64), la],
+        b=np.r_[np.asarray(tr.b, dtype=np.int64), lb],
+        cls=np.r_[np.asarray(tr.cls, dtype=np.int64), np.full(n_cap, 2)],
+        tree=np.r_[np.asarray(tr.tree, dtype=np.int64), np.full(n_cap, -1)],
+        rad=rad,
+        pts=list(tr.pts) + list(link_pts),
+        pos=all_pos,
+        is_root=is_root,
+        n_tree_edges=len(tr.a),
+    )
+
+
+def _prune(
+    g: _Joined, alive: np.ndarray, roots: np.ndarray, cls_of: np.ndarray, *, shape_um: Any
+) -> np.ndarray:
+    """The edges of ``alive`` left once dead ends and pieces without both kinds of root are gone.
+
+    Parameters
+    ----------
+    alive : ndarray of bool, shape (E,)
+        Edges to start from (not changed).
+    roots, cls_of : ndarray, shape (n,)
+        Each tree's root node and class.
+    shape_um
+        As given, for the error message.
+
+    Returns
+    -------
+    ndarray of bool, shape (E,)
+    """
+    n_nodes = len(g.pos)
+    alive = alive.copy()
+    while True:
+        deg = np.bincount(g.a[alive], minlength=n_nodes) + np.bincount(g.b[alive], minlength=n_nodes)
+        dead_end = (deg == 1) & ~g.is_root
+        kill = alive & (dead_end[g.a] | dead_end[g.b])
+        if not kill.any():
+            # A tree branch whose end keeps one capillary would merge with it into a
+            # segment of two classes; the branch goes, and the capillary end next round.
+            lo_c = np.full(n_nodes, 9)
+            hi_c = np.full(n_nodes, -1)
+            for ends in (g.a, g.b):
+                np.minimum.at(lo_c, ends[alive], g.cls[alive])
+                np.maximum.at(hi_c, ends[alive], g.cls[alive])
+            mixed = (deg == 2) & (lo_c != hi_c)
+            kill = alive & (g.cls != 2) & (mixed[g.a] | mixed[g.b])
+        if not kill.any():
+            break
+        alive &= ~kill
+    # Keep the pieces that hold an arteriole root and a venule root.
+    adj = coo_matrix((np.ones(int(alive.sum())), (g.a[alive], g.b[alive])), shape=(n_nodes, n_nodes))
+    _, comp = connected_components(adj, directed=False)
+    both = set(comp[roots[cls_of == 0]].tolist()) & set(comp[roots[cls_of == 1]].tolist())
+    good = np.zeros(int(comp.max()) + 1, dtype=bool)
+    good[sorted(both)] = True
+    alive &= good[comp[g.a]]
+    if not alive.any():
+        raise _bad("shape_um", "a box that holds connected arteriolar and venular trees", shape_um)
+    return alive
+
+
+def _merged_chains(g: _Joined, alive: np.ndarray) -> tuple[list[tuple[list[int], list[int]]], np.ndarray]:
+    """Chains of kept edges through nodes of two vessels, tree chains oriented from the root side.
+
+    Returns
+    -------
+    chains : list of (list of int, list of int)
+        Node and edge sequences.
+    deg : ndarray of int, shape (N,)
+        Kept vessels at each node.
+    """
+    deg = np.bincount(g.a[alive], minlength=len(g.pos)) + np.bincount(g.b[alive], minlength=len(g.pos))
+    incident: dict[int, list[int]] = {}
+    for ei in np.flatnonzero(alive).tolist():
+        incident.setdefault(int(g.a[ei]), []).append(ei)
+        incident.setdefault(int(g.b[ei]), []).append(ei)
+    used = np.zeros(len(g.a), dtype=bool)
+    chains: list[tuple[list[int], list[int]]] = []
+    for nd in sorted(n for n in incident if deg[n] != 2 or g.is_root[n]):
+        for ei in incident[nd]:
+            if used[ei]:
+                continue
+            seq_n, seq_e, cur = [nd], [], nd
+            while True:
+                used[ei] = True
+                nxt = int(g.b[ei]) if g.a[ei] == cur else int(g.a[ei])
+                seq_e.append(ei)
+                seq_n.append(nxt)
+                if deg[nxt] != 2 or g.is_root[nxt] or nxt == nd:
+                    break
+                ei = next(x for x in incident[nxt] if not used[x])
+                cur = nxt
+            if g.cls[seq_e[0]] != 2 and g.a[seq_e[0]] != seq_n[0]:
+                seq_n, seq_e = seq_n[::-1], seq_e[::-1]
+            chains.append((seq_n, seq_e))
+    return chains, deg
+
+
+def _assemble(
+    g: _Joined, alive: np.ndarray, forks: list[dict]
+) -> tuple[list[dict], list[dict], list[dict], list[list[int]]]:
+    """Nodes and segments of the kept edges; chains through nodes of two vessels merged.
+
+    Returns
+    -------
+    nodes, segs, bifs : list of dict
+        Nodes, segments and the records of the forks left with three vessels.
+    seg_edges : list of list of int
+        Each segment's edges, from ``node_from`` on.
+    """
+    chains, deg = _merged_chains(g, alive)
+    # Every piece holds a root (one vessel), so no cycle is left without an end node.
+    node_new: dict[int, int] = {}
+    nodes: list[dict] = []
+    for n_g in sorted({c[0][0] for c in chains} | {c[0][-1] for c in chains}):
+        node_new[n_g] = len(nodes)
+        nodes.append(_node(len(nodes), g.pos[n_g], "border" if g.is_root[n_g] else "junction"))
+    segs: list[dict] = []
+    edge_seg = np.full(len(g.a), -1, dtype=np.int64)
+    for ci, (seq_n, seq_e) in enumerate(chains):
+        cls = int(g.cls[seq_e[0]])
+        parts, radii = [], []
+        for k, ei in enumerate(seq_e):
+            p = g.pts[ei] if g.a[ei] == seq_n[k] else g.pts[ei][::-1]
+            p = p if k == 0 else p[1:]
+            parts.append(p)
+            radii.append(np.full(len(p), g.rad[min(seq_e)] if cls == 2 else g.rad[ei]))
+        edge_seg[seq_e] = ci
+        segs.append(
+            _make_segment(
+                ci, nodes[node_new[seq_n[0]]], nodes[node_new[seq_n[-1]]], np.concatenate(parts),
+                np.concatenate(radii), vessel_class=VESSEL_CLASSES[cls], tree=int(g.tree[seq_e[0]]),
+            )
+        )
+    bifs = []
+    for rec in forks:
+        es = [rec["parent"], *rec["kids"]]
+        if rec["node"] in node_new and deg[rec["node"]] == 3 and alive[es].all():
+            r0, r1, r2 = rec["r"]
+            b = _bifurcation_record(
+                node_new[rec["node"]], 0, edge_seg[es[0]], edge_seg[es[1]], edge_seg[es[2]], r0, r1, r2,
+                3.0, rec["th"][0], rec["th"][1], False,
+            )
+            del b["level"]  # forks along a trunk and in its branches have no common level
+            b["vessel_class"] = VESSEL_CLASSES[int(g.cls[es[0]])]
+            bifs.append(b)
+    return nodes, segs, bifs, [c[1] for c in chains]
+
+
+def _subtree(children: dict[int, list[int]], ends: np.ndarray, ei: int) -> list[int]:
+    """Tree edge ``ei`` and every tree edge below it (``children``: tree edges by their first node)."""
+    out, todo = [], [ei]
+    while todo:
+        e = todo.pop()
+        out.append(e)
+        todo.extend(children.get(int(ends[e]), []))
+    return out
+
+
+def _settle(
+    g: _Joined,
+    alive: np.ndarray,
+    *,
+    forks: list[dict],
+    roots: np.ndarray,
+    cls_of: np.ndarray,
+    box: np.ndarray,
+    flow_consistent: bool,
+    shape_um: Any,
+) -> tuple[VesselNetwork, np.ndarray, int]:
+    """The network of the kept edges; with ``flow_consistent``, tree branches against the flow removed.
+
+    Returns
+    -------
+    net : VesselNetwork
+    alive : ndarray of bool, shape (E,)
+        Edges kept.
+    n_against : int
+        Tree segments removed for their flow.
+    """
+    children: dict[int, list[int]] = {}
+    for ei in range(g.n_tree_edges):
+        children.setdefault(int(g.a[ei]), []).append(ei)
+    n_against = 0
+    while True:
+        nodes, segs, bifs, seg_edges = _assemble(g, alive, forks)
+        net = VesselNetwork(nodes, segs, kind="cortex", bifurcations=bifs, box_um=tuple(box.tolist()))
+        if not flow_consistent:
+            break
+        res = network_flow_truth(net)
+        q = res.segments["flow_nl_min"].to_numpy()
+        # A margin over rounding, so that a check of the sign alone never meets a tie.
+        tiny = 1e-6 * float(res.summary["total_inflow_nl_min"] or 0.0)
+        cls_seg = np.array([VESSEL_CLASSES.index(s["vessel_class"]) for s in segs])
+        against = np.flatnonzero(((cls_seg == 0) & (q <= tiny)) | ((cls_seg == 1) & (q >= -tiny)))
+        if not len(against):
+            break
+        n_against += len(against)
+        # The branch and everything it feeds or drains go; the pruning tidies up after them.
+        kill = np.zeros(len(g.a), dtype=bool)
+        for si in against.tolist():
+            kill[_subtree(children, g.b, seg_edges[si][0])] = True
+        alive = _prune(g, alive & ~kill, roots, cls_of, shape_um=shape_um)
+    return net, alive, n_against
 
 
 def cortex_network(
@@ -238,390 +667,19 @@ def cortex_network(
             capillary_spacing_um,
         )
 
-    # ---- trees: trunks first (all of them), then their branches, tree by tree.
-    pos: list[np.ndarray] = []
-    e_a: list[int] = []
-    e_b: list[int] = []
-    e_pts: list[np.ndarray] = []
-    e_rad: list[float] = []
-    e_cls: list[int] = []
-    e_tree: list[int] = []
-    index = _Clearance(gap)
-    fac = index.factor
-    bif_design: list[dict] = []
-    terminals: list[int] = []
-
-    def new_node(p: np.ndarray) -> int:
-        pos.append(np.asarray(p, dtype=float))
-        return len(pos) - 1
-
-    def fits(pts: np.ndarray, r: float, exclude: set[int], *, from_surface: bool = False) -> bool:
-        m = fac * r + gap
-        lo = np.full(3, m)
-        if from_surface:
-            lo[0] = 0.0  # a trunk starts on the pial face
-        sample = pts[::2]
-        if np.any(sample < lo) or np.any(sample > box - m):
-            return False
-        return index.clear(sample, r, exclude)
-
-    def add_edge(a: int, b: int, pts: np.ndarray, r: float, cls: int, tree: int, clear_r: float) -> int:
-        eid = len(e_a)
-        e_a.append(a)
-        e_b.append(b)
-        e_pts.append(pts)
-        e_rad.append(r)
-        e_cls.append(cls)
-        e_tree.append(tree)
-        index.add(pts[::2], clear_r, eid)
-        return eid
-
-    n_tot = n_art + n_ven
-    cls_of = rng.permutation(np.r_[np.zeros(n_art, dtype=int), np.ones(n_ven, dtype=int)])
-    sites = _trunk_sites(rng, n_tot, box)
-    root_r = np.where(cls_of == 0, r_art, r_art * v_fac)
-    r_min_cls = (r_min, r_min * v_fac)
-    trunks: list[tuple[list[int], list[int]]] = []  # (node ids, edge ids) from the root down
-    roots = np.zeros(n_tot, dtype=np.int64)
-    for t in range(n_tot):
-        r0 = float(root_r[t])
-        p = np.r_[0.0, sites[t]]
-        roots[t] = new_node(p)
-        nodes_t, edges_t = [int(roots[t])], []
-        z_end = rng.uniform(*depth_rng) * box[0]
-        while p[0] < z_end - 0.5 * interval[0]:
-            step = min(rng.uniform(*interval), max(z_end - p[0], 1.0))
-            # A few degrees of tilt per node; the lateral part turns back near the side faces.
-            d = _unit(np.r_[1.0, rng.normal(0.0, 0.08, 2)])
-            near = ((p[1:] < 0.15 * box[1:]) & (d[1:] < 0)) | ((p[1:] > 0.85 * box[1:]) & (d[1:] > 0))
-            d[1:][near] *= -1.0
-            q = p + step * d
-            pts = _line_points(p, q)
-            if not fits(pts, r0, set(edges_t[-1:]), from_surface=not edges_t):
-                break
-            b = new_node(q)
-            edges_t.append(add_edge(nodes_t[-1], b, pts, r0, int(cls_of[t]), t, r0))
-            nodes_t.append(b)
-            p = q
-        if not edges_t:
-            raise _bad("shape_um", "a box deep enough for the penetrating vessels", shape_um)
-        trunks.append((nodes_t, edges_t))
-
-    def fork(e: int, node: int, r: float, q_range: tuple[float, float], stack: list) -> None:
-        """Two daughters at the end of edge ``e``, or none (the end joins the mesh)."""
-        q = rng.uniform(*q_range)
-        r1, r2 = murray_daughter_radii(r, exponent=3.0, asymmetry=q)
-        if r2 < r_min_cls[e_cls[e]]:
-            terminals.append(node)
-            return
-        th1, th2 = murray_angles_deg(r, r1, r2)
-        l1, l2 = ratio * r1 * rng.uniform(0.8, 1.25), ratio * r2 * rng.uniform(0.8, 1.25)
-        start = pos[node]
-        d = _unit(start - pos[e_a[e]])
-        if _siblings_apart(r1, r2, th1, th2, l1, l2):
-            for _ in range(_BRANCH_TRIES):
-                normal = _rotate(_any_perpendicular(d), d, rng.uniform(0.0, 2.0 * math.pi))
-                d1, d2 = _daughter_directions(d, normal, th1, th2)
-                p1, p2 = _line_points(start, start + l1 * d1), _line_points(start, start + l2 * d2)
-                if fits(p1, r1, {e}) and fits(p2, r2, {e}):
-                    kids = []
-                    for pk, rk in ((p1, r1), (p2, r2)):
-                        b = new_node(pk[-1])
-                        kids.append(add_edge(node, b, pk, rk, e_cls[e], e_tree[e], rk))
-                        stack.append((kids[-1], b, rk))
-                    bif_design.append(dict(node=node, parent=e, kids=kids, r=(r, r1, r2), th=(th1, th2)))
-                    return
-        terminals.append(node)
-
-    for t in rng.permutation(n_tot).tolist():
-        nodes_t, edges_t = trunks[t]
-        r = float(root_r[t])
-        e_rad[edges_t[0]] = r
-        stack: list[tuple[int, int, float]] = []
-        for k in range(1, len(nodes_t) - 1):
-            node, e_in, e_out = nodes_t[k], edges_t[k - 1], edges_t[k]
-            q = rng.uniform(*side_q)
-            r_cont, r_side = murray_daughter_radii(r, exponent=3.0, asymmetry=q)
-            placed = False
-            if r_side >= r_min_cls[e_cls[e_in]]:
-                th1, th2 = murray_angles_deg(r, r_cont, r_side)
-                d = _unit(pos[nodes_t[k + 1]] - pos[node])
-                length = ratio * r_side * rng.uniform(0.8, 1.25)
-                for _ in range(_BRANCH_TRIES):
-                    az = rng.uniform(0.0, 2.0 * math.pi)
-                    u = _rotate(_any_perpendicular(d), d, az)
-                    ds = _unit(math.cos(math.radians(th2)) * d + math.sin(math.radians(th2)) * u)
-                    pts = _line_points(pos[node], pos[node] + length * ds)
-                    if fits(pts, r_side, {e_in, e_out}):
-                        b = new_node(pts[-1])
-                        side = add_edge(node, b, pts, r_side, e_cls[e_in], t, r_side)
-                        bif_design.append(dict(
-                            node=node, parent=e_in, kids=[e_out, side], r=(r, r_cont, r_side), th=(th1, th2)
-                        ))
-                        stack.append((side, b, r_side))
-                        placed = True
-                        break
-            if placed:
-                r = r_cont
-            e_rad[e_out] = r
-            while stack:  # depth first, so each side branch is done before the trunk goes on
-                e, node_s, r_s = stack.pop()
-                fork(e, node_s, r_s, tree_q, stack)
-        fork(edges_t[-1], nodes_t[-1], r, tree_q, stack)
-        while stack:
-            e, node_s, r_s = stack.pop()
-            fork(e, node_s, r_s, tree_q, stack)
-
-    # ---- capillary lattice; terminal branches take their nearest free node.
-    n_tree_nodes = len(pos)
-    spare_jit = min(0.15 * float(cell.min()), 0.3 * spare)
-    bend = min(0.1 * float(cell.min()), 0.2 * spare)
-    grid = np.stack(np.meshgrid(*[np.arange(n) for n in n_cells], indexing="ij"), axis=-1).reshape(-1, 3)
-    lat = (grid + 0.5) * cell + rng.uniform(-spare_jit, spare_jit, size=grid.shape)
-    gid = np.full(len(lat), -1, dtype=np.int64)
-    order = rng.permutation(len(terminals))
-    term = np.asarray(terminals, dtype=np.int64)[order]
-    kq = min(_SNAP_CANDIDATES, len(lat))
-    if len(term):
-        _, cand = cKDTree(lat).query(np.array([pos[i] for i in term]), k=kq)
-        cand = np.asarray(cand).reshape(len(term), kq)
-        for ti, row in zip(term.tolist(), cand.tolist()):
-            free = [j for j in row if gid[j] < 0]
-            if free:
-                gid[free[0]] = ti
-    snapped = gid >= 0
-    n_joined = int(snapped.sum())
-    gid[~snapped] = n_tree_nodes + np.arange(int((~snapped).sum()))
-    pos.extend(lat[~snapped])
-    all_pos = np.array(pos)
-
-    flat = np.arange(len(grid)).reshape(tuple(n_cells))
-    links = np.concatenate([
-        np.stack([np.take(flat, np.arange(n_cells[ax] - 1), axis=ax).ravel(),
-                  np.take(flat, np.arange(1, n_cells[ax]), axis=ax).ravel()], axis=1)
-        for ax in range(3)
-    ]) if len(grid) > 1 else np.zeros((0, 2), dtype=np.int64)
-    la, lb = gid[links[:, 0]], gid[links[:, 1]]
-    a_pos, b_pos = all_pos[la], all_pos[lb]
-    chord = b_pos - a_pos
-    clen = np.linalg.norm(chord, axis=1)
-    keep = clen > 2.0 * r_cap[1]  # two snapped ends can almost meet
-    la, lb, a_pos, b_pos, chord, clen = la[keep], lb[keep], a_pos[keep], b_pos[keep], chord[keep], clen[keep]
-    n_links = len(la)
-    k_pts = _n_steps(float(clen.max(initial=1.0)) + 2.0 * bend) + 1
-    tt = np.linspace(0.0, 1.0, k_pts)
-    dirs = chord / np.maximum(clen, 1e-12)[:, None]
-    ref = np.where(np.abs(dirs[:, :1]) < 0.9, np.array([[1.0, 0, 0]]), np.array([[0, 1.0, 0]]))
-    e1 = np.cross(dirs, ref)
-    e1 /= np.linalg.norm(e1, axis=1, keepdims=True)
-    e2 = np.cross(dirs, e1)
-    ang = rng.uniform(0, 2 * math.pi, n_links)[:, None]
-    e_perp = np.cos(ang) * e1 + np.sin(ang) * e2
-    amp = rng.uniform(0.0, bend, n_links)
-    link_pts = (
-        a_pos[:, None, :]
-        + tt[None, :, None] * chord[:, None, :]
-        + (amp[:, None] * (np.sin(np.pi * tt) ** 2)[None, :])[:, :, None] * e_perp[:, None, :]
+    tr, roots, cls_of, sites = _grow_trees(
+        rng, box, n_art=n_art, n_ven=n_ven, r_art=r_art, v_fac=v_fac, r_min=r_min, depth_range=depth_rng,
+        interval=interval, side_q=side_q, tree_q=tree_q, ratio=ratio, gap=gap, shape_um=shape_um,
     )
-    link_pts[:, 0], link_pts[:, -1] = a_pos, b_pos
+    la, lb, link_pts, all_pos, n_joined = _build_mesh(rng, tr, n_cells, cell, spare, r_cap_hi=r_cap[1])
+    g = _join(rng, tr, la, lb, link_pts, all_pos, roots, r_cap)
+    alive = _prune(g, np.ones(len(g.a), dtype=bool), roots, cls_of, shape_um=shape_um)
+    net, alive, n_against = _settle(
+        g, alive, forks=tr.forks, roots=roots, cls_of=cls_of, box=box, flow_consistent=flow_consistent,
+        shape_um=shape_um,
+    )
 
-    # Clashes, judged on points about 2 µm apart. Vessels meeting at a node may
-    # touch within twice their clearance of it (their tubes overlap there anyway);
-    # farther out they must keep clear too, so that they part at more than about
-    # 30 degrees instead of running fused side by side.
-    sub = np.unique(np.r_[np.arange(0, k_pts, 4), k_pts - 1])
-    lp = link_pts[:, sub].reshape(-1, 3)
-    l_own = np.repeat(np.arange(n_links), len(sub))
-    bad = np.zeros(n_links, dtype=bool)
-    n_tree_edges = len(e_a)
-
-    def clashing(pa, pb, a1, b1, a2, b2, limit, dist):
-        """Point pairs closer than ``limit``, not both near a node their vessels share."""
-        shared = np.where((a1 == a2) | (a1 == b2), a1, np.where((b1 == a2) | (b1 == b2), b1, -1))
-        meet = shared >= 0
-        at = all_pos[np.where(meet, shared, 0)]
-        off = np.minimum(np.linalg.norm(pa - at, axis=1), np.linalg.norm(pb - at, axis=1))
-        return (dist < limit) & (~meet | (off > 2.0 * limit))
-
-    if n_links and n_tree_edges:
-        tp = np.concatenate([p[::2] for p in e_pts])
-        t_own = np.repeat(np.arange(n_tree_edges), [len(p[::2]) for p in e_pts])
-        t_rad = np.asarray(e_rad)[t_own]
-        ta, tb = np.asarray(e_a)[t_own], np.asarray(e_b)[t_own]
-        reach = fac * (r_cap[1] + float(t_rad.max())) + gap
-        sdm = cKDTree(lp).sparse_distance_matrix(cKDTree(tp), reach, output_type="ndarray")
-        pi_, tj = sdm["i"], sdm["j"]
-        li = l_own[pi_]
-        hit = clashing(
-            lp[pi_], tp[tj], la[li], lb[li], ta[tj], tb[tj], fac * (r_cap[1] + t_rad[tj]) + gap, sdm["v"]
-        )
-        bad[np.unique(li[hit])] = True
-    if n_links:
-        limit = fac * 2.0 * r_cap[1] + gap
-        pairs = cKDTree(lp).query_pairs(limit, output_type="ndarray")
-        pi_, pj_ = l_own[pairs[:, 0]], l_own[pairs[:, 1]]
-        dist = np.linalg.norm(lp[pairs[:, 0]] - lp[pairs[:, 1]], axis=1)
-        hit = (pi_ != pj_) & clashing(
-            lp[pairs[:, 0]], lp[pairs[:, 1]], la[pi_], lb[pi_], la[pj_], lb[pj_], limit, dist
-        )
-        clash = np.unique(np.sort(np.stack([pi_, pj_], axis=1)[hit & ~bad[pi_] & ~bad[pj_]], axis=1), axis=0)
-        # Drop the link in most clashes until none is left (only links at moved nodes clash).
-        while len(clash):
-            worst = int(np.argmax(np.bincount(clash.ravel(), minlength=n_links)))
-            bad[worst] = True
-            clash = clash[(clash[:, 0] != worst) & (clash[:, 1] != worst)]
-    n_nodes = len(all_pos)
-    deg = np.bincount(np.r_[e_a, e_b, la[~bad], lb[~bad]].astype(np.int64), minlength=n_nodes)
-    for li_ in rng.permutation(np.flatnonzero(~bad)).tolist():
-        a, b = la[li_], lb[li_]
-        if deg[a] > 3 and deg[b] > 3:
-            bad[li_] = True
-            deg[a] -= 1
-            deg[b] -= 1
-
-    # ---- one edge list (tree edges first, oriented root side -> depth), then
-    # dead ends pruned, chains merged and, optionally, branches against the flow removed.
-    ok = ~bad
-    n_cap = int(ok.sum())
-    E_a = np.r_[np.asarray(e_a, dtype=np.int64), la[ok]]
-    E_b = np.r_[np.asarray(e_b, dtype=np.int64), lb[ok]]
-    E_cls = np.r_[np.asarray(e_cls, dtype=np.int64), np.full(n_cap, 2)]
-    E_tree = np.r_[np.asarray(e_tree, dtype=np.int64), np.full(n_cap, -1)]
-    # Each capillary link draws its radius now; a merged chain takes that of its
-    # first link, so radii stay put while the pruning below reshapes chains.
-    E_rad = np.r_[np.asarray(e_rad, dtype=float), rng.uniform(r_cap[0], r_cap[1], n_cap)]
-    E_pts = list(e_pts) + list(link_pts[ok])
-    n_e = len(E_a)
-    is_root = np.zeros(n_nodes, dtype=bool)
-    is_root[roots] = True
-    children: dict[int, list[int]] = {}
-    for ei in range(n_tree_edges):
-        children.setdefault(int(E_a[ei]), []).append(ei)
-
-    def prune(alive: np.ndarray) -> np.ndarray:
-        alive = alive.copy()
-        while True:
-            deg = np.bincount(E_a[alive], minlength=n_nodes) + np.bincount(E_b[alive], minlength=n_nodes)
-            dead_end = (deg == 1) & ~is_root
-            kill = alive & (dead_end[E_a] | dead_end[E_b])
-            if not kill.any():
-                # A tree branch whose end keeps one capillary would merge with it into a
-                # segment of two classes; the branch goes, and the capillary end next round.
-                lo_c = np.full(n_nodes, 9)
-                hi_c = np.full(n_nodes, -1)
-                for ends in (E_a, E_b):
-                    np.minimum.at(lo_c, ends[alive], E_cls[alive])
-                    np.maximum.at(hi_c, ends[alive], E_cls[alive])
-                mixed = (deg == 2) & (lo_c != hi_c)
-                kill = alive & (E_cls != 2) & (mixed[E_a] | mixed[E_b])
-            if not kill.any():
-                break
-            alive &= ~kill
-        # Keep the pieces that hold an arteriole root and a venule root.
-        adj = coo_matrix((np.ones(int(alive.sum())), (E_a[alive], E_b[alive])), shape=(n_nodes, n_nodes))
-        _, comp = connected_components(adj, directed=False)
-        both = set(comp[roots[cls_of == 0]].tolist()) & set(comp[roots[cls_of == 1]].tolist())
-        good = np.zeros(int(comp.max()) + 1, dtype=bool)
-        good[sorted(both)] = True
-        alive &= good[comp[E_a]]
-        if not alive.any():
-            raise _bad("shape_um", "a box that holds connected arteriolar and venular trees", shape_um)
-        return alive
-
-    def assemble(alive: np.ndarray) -> tuple[list[dict], list[dict], list[list[int]], np.ndarray]:
-        """Nodes and segments of the kept edges; chains through nodes of two vessels merged."""
-        deg = np.bincount(E_a[alive], minlength=n_nodes) + np.bincount(E_b[alive], minlength=n_nodes)
-        incident: dict[int, list[int]] = {}
-        for ei in np.flatnonzero(alive).tolist():
-            incident.setdefault(int(E_a[ei]), []).append(ei)
-            incident.setdefault(int(E_b[ei]), []).append(ei)
-        used = np.zeros(n_e, dtype=bool)
-        chains: list[tuple[list[int], list[int]]] = []
-        for nd in sorted(n for n in incident if deg[n] != 2 or is_root[n]):
-            for ei in incident[nd]:
-                if used[ei]:
-                    continue
-                seq_n, seq_e, cur = [nd], [], nd
-                while True:
-                    used[ei] = True
-                    nxt = int(E_b[ei]) if E_a[ei] == cur else int(E_a[ei])
-                    seq_e.append(ei)
-                    seq_n.append(nxt)
-                    if deg[nxt] != 2 or is_root[nxt] or nxt == nd:
-                        break
-                    ei = next(x for x in incident[nxt] if not used[x])
-                    cur = nxt
-                if E_cls[seq_e[0]] != 2 and E_a[seq_e[0]] != seq_n[0]:
-                    seq_n, seq_e = seq_n[::-1], seq_e[::-1]
-                chains.append((seq_n, seq_e))
-        # Every piece holds a root (one vessel), so no cycle is left without an end node.
-        node_new: dict[int, int] = {}
-        nodes: list[dict] = []
-        for g in sorted({c[0][0] for c in chains} | {c[0][-1] for c in chains}):
-            node_new[g] = len(nodes)
-            nodes.append(_node(len(nodes), all_pos[g], "border" if is_root[g] else "junction"))
-        segs: list[dict] = []
-        edge_seg = np.full(n_e, -1, dtype=np.int64)
-        for ci, (seq_n, seq_e) in enumerate(chains):
-            cls = int(E_cls[seq_e[0]])
-            parts, radii = [], []
-            for k, ei in enumerate(seq_e):
-                p = E_pts[ei] if E_a[ei] == seq_n[k] else E_pts[ei][::-1]
-                p = p if k == 0 else p[1:]
-                parts.append(p)
-                radii.append(np.full(len(p), E_rad[min(seq_e)] if cls == 2 else E_rad[ei]))
-            edge_seg[seq_e] = ci
-            segs.append(
-                _make_segment(
-                    ci, nodes[node_new[seq_n[0]]], nodes[node_new[seq_n[-1]]], np.concatenate(parts),
-                    np.concatenate(radii), vessel_class=VESSEL_CLASSES[cls], tree=int(E_tree[seq_e[0]]),
-                )
-            )
-        bifs = []
-        for rec in bif_design:
-            es = [rec["parent"], *rec["kids"]]
-            if rec["node"] in node_new and deg[rec["node"]] == 3 and alive[es].all():
-                r0, r1, r2 = rec["r"]
-                b = _bifurcation_record(
-                    node_new[rec["node"]], 0, edge_seg[es[0]], edge_seg[es[1]], edge_seg[es[2]], r0, r1, r2,
-                    3.0, rec["th"][0], rec["th"][1], False,
-                )
-                del b["level"]  # forks along a trunk and in its branches have no common level
-                b["vessel_class"] = VESSEL_CLASSES[int(E_cls[es[0]])]
-                bifs.append(b)
-        return nodes, segs, bifs, [c[1] for c in chains]
-
-    def subtree(ei: int) -> list[int]:
-        out, todo = [], [ei]
-        while todo:
-            e = todo.pop()
-            out.append(e)
-            todo.extend(children.get(int(E_b[e]), []))
-        return out
-
-    alive = prune(np.ones(n_e, dtype=bool))
-    n_against = 0
-    while True:
-        nodes, segs, bifs, seg_edges = assemble(alive)
-        net = VesselNetwork(nodes, segs, kind="cortex", bifurcations=bifs, box_um=tuple(box.tolist()))
-        if not flow_consistent:
-            break
-        res = network_flow_truth(net)
-        q = res.segments["flow_nl_min"].to_numpy()
-        # A margin over rounding, so that a check of the sign alone never meets a tie.
-        tiny = 1e-6 * float(res.summary["total_inflow_nl_min"] or 0.0)
-        cls_seg = np.array([VESSEL_CLASSES.index(s["vessel_class"]) for s in segs])
-        against = np.flatnonzero(((cls_seg == 0) & (q <= tiny)) | ((cls_seg == 1) & (q >= -tiny)))
-        if not len(against):
-            break
-        n_against += len(against)
-        # The branch and everything it feeds or drains go; the pruning tidies up after them.
-        kill = np.zeros(n_e, dtype=bool)
-        for si in against.tolist():
-            kill[subtree(seg_edges[si][0])] = True
-        alive = prune(alive & ~kill)
-
-    counts = {c: sum(1 for s in segs if s["vessel_class"] == c) for c in VESSEL_CLASSES}
+    counts = {c: sum(1 for s in net.segments if s["vessel_class"] == c) for c in VESSEL_CLASSES}
     net.params = {
         "shape_um": box,
         "n_arterioles": n_art,
@@ -642,12 +700,12 @@ def cortex_network(
         "lattice_period_um": cell,
         "trunk_sites_um": [
             {"vessel_class": VESSEL_CLASSES[int(cls_of[t])], "tree": t, "yx_um": sites[t]}
-            for t in range(n_tot)
+            for t in range(n_art + n_ven)
         ],
-        "n_terminals": len(terminals),
+        "n_terminals": len(tr.terminals),
         "n_terminals_joined": n_joined,
         "n_tree_segments_against_flow": n_against,
-        "n_edges_pruned": int(n_e - alive.sum()),
+        "n_edges_pruned": int(len(g.a) - alive.sum()),
         "n_segments_by_class": counts,
     }
     return net

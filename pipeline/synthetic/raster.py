@@ -22,6 +22,162 @@ from .artefacts import (
 )
 
 
+def _placed_grid(
+    network: VesselNetwork, d: np.ndarray, *, shape: Sequence[int] | None, margin: float, rough: float
+) -> tuple[np.ndarray, np.ndarray, VesselNetwork]:
+    """The grid shape, the shift of the network into it and the network so shifted.
+
+    Parameters
+    ----------
+    network : VesselNetwork
+        Network as given.
+    d : ndarray, shape (3,)
+        Voxel size, µm.
+    shape, margin, rough
+        :func:`rasterize`'s ``shape`` (unchecked), margin in µm and roughness.
+
+    Returns
+    -------
+    grid : ndarray of int64, shape (3,)
+    offset : ndarray, shape (3,)
+        Added to the network's coordinates, µm.
+    placed : VesselNetwork
+    """
+    if shape is not None:
+        try:
+            grid = np.asarray(shape, dtype=np.int64)
+            bad = (
+                grid.shape != (3,)
+                or not np.array_equal(grid, np.asarray(shape, dtype=float))
+                or np.any(grid < 1)
+            )
+        except (TypeError, ValueError):
+            bad = True
+        if bad:
+            raise _bad("shape", "three integers >= 1 (Z, Y, X)", shape)
+        offset = np.zeros(3)
+        placed = network
+    elif network.box_um is not None:
+        grid = np.maximum(1, np.round(np.asarray(network.box_um) / d)).astype(np.int64)
+        offset = np.zeros(3)
+        placed = network
+    else:
+        offset, grid = _auto_place(network, d, margin, 1.0 + _FIELD_CLIP * rough)
+        placed = network.translated(offset)
+    if np.prod(grid.astype(float)) > 2**34:
+        raise _bad("shape", "at most 2**34 voxels", tuple(grid.tolist()))
+    return grid, offset, placed
+
+
+def _paint_as_imaged(
+    dims: tuple[int, int, int],
+    placed: VesselNetwork,
+    d: np.ndarray,
+    rough: float,
+    rng_rough: np.random.Generator,
+    *,
+    correlation_um: float | None,
+    shift_vox: np.ndarray | None,
+    psf_sigma_um: np.ndarray | None,
+    psf_threshold: float,
+) -> tuple[np.ndarray, dict[str, int]]:
+    """The vessels as a lab's imaging shows them, without cavities.
+
+    Returns
+    -------
+    mask : ndarray of bool, shape ``dims``
+    imaged : dict
+        ``roughness_voxels_refused``, ``imaged_cavities_filled`` and
+        ``imaged_euler_number``, for the truth.
+    """
+    mask, n_refused = _paint_imaged(
+        dims, placed, d, rough, rng_rough, correlation_um=correlation_um, shift_vox=shift_vox,
+        psf_sigma_um=psf_sigma_um, psf_threshold=psf_threshold,
+    )
+    # Imaging can still enclose background (a blur closing a narrow gap, planes
+    # shifted over a bend); those cavities are filled, so that the only
+    # cavities are the recorded holes. The Euler number of the vessels as
+    # imaged is kept so that every recorded change adds to it.
+    n_filled = _fill_cavities(mask)
+    imaged_euler = _euler_26(mask)
+    return mask, {
+        "roughness_voxels_refused": n_refused,
+        "imaged_cavities_filled": n_filled,
+        "imaged_euler_number": imaged_euler,
+    }
+
+
+def _wall_defects(
+    mask: np.ndarray,
+    cut: VesselNetwork,
+    d: np.ndarray,
+    hole_rec: list[dict],
+    *,
+    n_open: int,
+    n_gaps: int,
+    n_handles: int,
+    n_blobs: int,
+    rng_open: np.random.Generator,
+    rng_gaps: np.random.Generator,
+    rng_handles: np.random.Generator,
+    rng_blobs: np.random.Generator,
+    rough: float,
+    shift_um: np.ndarray | None,
+    fit: bool,
+) -> dict[str, list[dict]]:
+    """Open holes, gaps, handles and blobs, in that order, changing ``mask`` in place.
+
+    Each is placed clear of the enclosed holes already carved (``hole_rec``)
+    and of the ones placed before it.
+
+    Returns
+    -------
+    dict
+        ``open_holes``, ``blobs``, ``handles`` and ``gaps``: the records of
+        those placed.
+    """
+    reach = 1.0 + _FIELD_CLIP * rough
+    samp = _centreline_samples(cut, d, shift_um) if n_open + n_gaps + n_handles + n_blobs else None
+    occupied = _Occupied(float(d.max()))
+    for h in hole_rec:
+        occupied.add(np.asarray(h["centre_um"]), (h["radius_vox"] + 1.0) * float(d.max()))
+    jitter_um = 0.0 if shift_um is None else float(np.max(np.linalg.norm(shift_um, axis=1)))
+    open_rec = _carve_open_holes(mask, samp, d, n_open, rng_open, occupied, reach, fit)
+    gap_rec = _carve_gaps(mask, samp, d, n_gaps, rng_gaps, occupied, reach, jitter_um, fit)
+    handle_rec = _add_handles(mask, samp, d, n_handles, rng_handles, occupied, reach, fit)
+    blob_rec = _add_blobs(mask, samp, d, n_blobs, rng_blobs, occupied, fit)
+    return {"open_holes": open_rec, "blobs": blob_rec, "handles": handle_rec, "gaps": gap_rec}
+
+
+def _truth_record(
+    cut: VesselNetwork,
+    mask: np.ndarray,
+    d: np.ndarray,
+    *,
+    grid: np.ndarray,
+    offset: np.ndarray,
+    options: dict[str, Any],
+    records: dict[str, Any],
+) -> dict[str, Any]:
+    """The truth of a rasterised network: its own, then the grid, the mask's size, options and records."""
+    truth = cut.to_truth()
+    for n in truth["nodes"]:
+        n["pos_vox"] = (np.asarray(n["pos_um"]) / d).tolist()
+    n_vox = int(np.count_nonzero(mask))
+    extra = dict(
+        spacing=d.tolist(),
+        shape=[int(n) for n in grid],
+        offset_um=offset.tolist(),
+        voxel_volume_um3=float(np.prod(d)),
+        mask_voxels=n_vox,
+        mask_volume_um3=float(n_vox * np.prod(d)),
+        rasterize=options,
+        **records,
+    )
+    truth.update(_jsonable(extra))
+    return truth
+
+
 def rasterize(
     network: VesselNetwork,
     *,
@@ -237,29 +393,7 @@ def rasterize(
         or fit
     )
 
-    if shape is not None:
-        try:
-            grid = np.asarray(shape, dtype=np.int64)
-            bad = (
-                grid.shape != (3,)
-                or not np.array_equal(grid, np.asarray(shape, dtype=float))
-                or np.any(grid < 1)
-            )
-        except (TypeError, ValueError):
-            bad = True
-        if bad:
-            raise _bad("shape", "three integers >= 1 (Z, Y, X)", shape)
-        offset = np.zeros(3)
-        placed = network
-    elif network.box_um is not None:
-        grid = np.maximum(1, np.round(np.asarray(network.box_um) / d)).astype(np.int64)
-        offset = np.zeros(3)
-        placed = network
-    else:
-        offset, grid = _auto_place(network, d, margin, 1.0 + _FIELD_CLIP * rough)
-        placed = network.translated(offset)
-    if np.prod(grid.astype(float)) > 2**34:
-        raise _bad("shape", "at most 2**34 voxels", tuple(grid.tolist()))
+    grid, offset, placed = _placed_grid(network, d, shape=shape, margin=margin, rough=rough)
     top = (grid - 1) * d
     cut = _clip_network(placed, np.zeros(3), top)
     dims = tuple(int(n) for n in grid)
@@ -270,34 +404,19 @@ def rasterize(
         mask = np.zeros(dims, dtype=bool)
         _paint_tubes(mask, placed, d, rough, rng_rough)
     else:
-        mask, n_refused = _paint_imaged(
+        mask, imaged = _paint_as_imaged(
             dims, placed, d, rough, rng_rough, correlation_um=corr, shift_vox=shift_vox, psf_sigma_um=psf,
             psf_threshold=psf_t,
         )
-        # Imaging can still enclose background (a blur closing a narrow gap, planes
-        # shifted over a bend); those cavities are filled, so that the only
-        # cavities are the recorded holes. The Euler number of the vessels as
-        # imaged is kept so that every recorded change adds to it.
-        n_filled = _fill_cavities(mask)
-        imaged_euler = _euler_26(mask)
     hole_rec = _carve_holes(mask, cut, d, n_holes, rng_holes, hole_range, shift_um, fit)
     if extended:
-        reach = 1.0 + _FIELD_CLIP * rough
-        samp = _centreline_samples(cut, d, shift_um) if n_open + n_gaps + n_handles + n_blobs else None
-        occupied = _Occupied(float(d.max()))
-        for h in hole_rec:
-            occupied.add(np.asarray(h["centre_um"]), (h["radius_vox"] + 1.0) * float(d.max()))
-        jitter_um = 0.0 if shift_um is None else float(np.max(np.linalg.norm(shift_um, axis=1)))
-        open_rec = _carve_open_holes(mask, samp, d, n_open, rng_open, occupied, reach, fit)
-        gap_rec = _carve_gaps(mask, samp, d, n_gaps, rng_gaps, occupied, reach, jitter_um, fit)
-        handle_rec = _add_handles(mask, samp, d, n_handles, rng_handles, occupied, reach, fit)
-        blob_rec = _add_blobs(mask, samp, d, n_blobs, rng_blobs, occupied, fit)
+        defects = _wall_defects(
+            mask, cut, d, hole_rec, n_open=n_open, n_gaps=n_gaps, n_handles=n_handles, n_blobs=n_blobs,
+            rng_open=rng_open, rng_gaps=rng_gaps, rng_handles=rng_handles, rng_blobs=rng_blobs, rough=rough,
+            shift_um=shift_um, fit=fit,
+        )
     speck_rec = _add_specks(mask, d, n_specks, rng_specks, fit)
 
-    truth = cut.to_truth()
-    for n in truth["nodes"]:
-        n["pos_vox"] = (np.asarray(n["pos_um"]) / d).tolist()
-    n_vox = int(np.count_nonzero(mask))
     options = {
         "roughness": rough,
         "roughness_correlation": "one nominal radius" if corr is None else f"{corr:g} um",
@@ -306,17 +425,7 @@ def rasterize(
         "holes": n_holes,
         "seed": seed,
     }
-    extra = dict(
-        spacing=d.tolist(),
-        shape=[int(n) for n in grid],
-        offset_um=offset.tolist(),
-        voxel_volume_um3=float(np.prod(d)),
-        mask_voxels=n_vox,
-        mask_volume_um3=float(n_vox * np.prod(d)),
-        rasterize=options,
-        specks=speck_rec,
-        holes=hole_rec,
-    )
+    records = {"specks": speck_rec, "holes": hole_rec}
     if extended:
         options.update(
             roughness_correlation_um=corr,
@@ -331,19 +440,13 @@ def rasterize(
             jitter_vox=jitter,
             fit_artefacts=fit,
         )
-        extra.update(
-            open_holes=open_rec,
-            blobs=blob_rec,
-            handles=handle_rec,
-            gaps=gap_rec,
-            jitter=None if shift_vox is None else {"shift_vox": shift_vox, "shift_um": shift_um},
-            roughness_voxels_refused=n_refused,
-            imaged_cavities_filled=n_filled,
-            imaged_euler_number=imaged_euler,
-            artefact_euler_change=len(hole_rec) + len(speck_rec) + len(gap_rec) - len(handle_rec),
+        records.update(defects)
+        records["jitter"] = None if shift_vox is None else {"shift_vox": shift_vox, "shift_um": shift_um}
+        records.update(imaged)
+        records["artefact_euler_change"] = (
+            len(hole_rec) + len(speck_rec) + len(defects["gaps"]) - len(defects["handles"])
         )
-    truth.update(_jsonable(extra))
-    return mask, truth
+    return mask, _truth_record(cut, mask, d, grid=grid, offset=offset, options=options, records=records)
 
 
 #: What :func:`hostile_artefacts` asks for at strength 1 (counts are rounded

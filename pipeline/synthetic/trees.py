@@ -242,6 +242,180 @@ class _Clearance:
         return True
 
 
+# Turns of the branching plane (degrees, from the level's nominal one) tried
+# in order before an end is left blind.
+_PLANE_TURNS_DEG = (0.0, 30.0, -30.0, 60.0, -60.0, 90.0, 15.0, -15.0, 45.0, -45.0, 75.0, -75.0)
+
+
+def _perp_draw(rng: np.random.Generator, d: np.ndarray) -> tuple[np.ndarray, int]:
+    """A random unit vector perpendicular to ``d`` and a wiggle mode (1 or 2)."""
+    e = _unit(_rotate(_any_perpendicular(d), d, rng.uniform(0, 2 * math.pi)))
+    return e, int(rng.integers(1, 3))
+
+
+def _tree_points(a: np.ndarray, b: np.ndarray, e_perp: np.ndarray, m: int, wig: float) -> np.ndarray:
+    """Centreline from ``a`` to ``b``: straight, or wiggled along ``e_perp`` with mode ``m``."""
+    if wig == 0:
+        return _line_points(a, b)
+    return _wiggled_points(a, b, wig * float(np.linalg.norm(b - a)), e_perp, m)
+
+
+def _add_tree_segment(
+    nodes: list[dict],
+    segs: list[dict],
+    index: _Clearance,
+    start: dict,
+    end_pos: np.ndarray,
+    radius: float,
+    level: int,
+    parent: int | None,
+    pts: np.ndarray,
+    *,
+    wig: float,
+) -> tuple[dict, dict]:
+    """Append a blind end node and the segment from ``start`` to it; index its points.
+
+    Returns
+    -------
+    (dict, dict)
+        The segment and its end node.
+    """
+    end = _node(len(nodes), end_pos, "blind")
+    nodes.append(end)
+    length = float(np.linalg.norm(end_pos - np.asarray(start["pos_um"]))) if wig == 0 else None
+    seg = _make_segment(len(segs), start, end, pts, radius, length_um=length, level=level)
+    if parent is not None:
+        seg["parent_segment"] = int(parent)
+    segs.append(seg)
+    index.add(seg["points_um"][::2], radius, seg["id"])
+    return seg, end
+
+
+def _next_broken(acc: float, frac: float) -> tuple[float, bool]:
+    """One step of the error diffusion that spreads broken bifurcations evenly.
+
+    Returns
+    -------
+    (float, bool)
+        The accumulator after this bifurcation and whether it is broken.
+    """
+    if frac > 0:
+        acc += frac
+        if acc >= 1.0:
+            return acc - 1.0, True
+    return acc, False
+
+
+def _daughter_angles(
+    rng: np.random.Generator,
+    r0: float,
+    r1: float,
+    r2: float,
+    *,
+    angles: tuple[float, float] | None,
+    angle_deg: Any,
+    ratio: float,
+    jitter: float,
+) -> tuple[float, float, bool]:
+    """Angles of two daughters from the parent axis, and whether they separate at the nominal ones.
+
+    Parameters
+    ----------
+    angles : (float, float) or None
+        Checked ``angle_deg``; None takes Murray's minimum-work angles.
+    angle_deg
+        As given, for the error message.
+    ratio, jitter : float
+        Length over radius of the daughters; standard deviation of the
+        angles' jitter, degrees.
+
+    Returns
+    -------
+    (float, float, bool)
+        ``theta1``, ``theta2`` in degrees and whether the pair separates.
+    """
+    th_nominal = angles if angles is not None else murray_angles_deg(r0, r1, r2)
+    apart = _siblings_apart(r1, r2, *th_nominal, ratio * r1, ratio * r2)
+    if angles is not None and not apart:
+        raise _bad("angle_deg", "daughter angles wide enough for the daughters to separate", angle_deg)
+    th1, th2 = th_nominal
+    if jitter > 0:
+        # Redraw jitter that would close the pair so far that the
+        # daughters fuse; after a few misses keep the nominal angles.
+        for _ in range(8):
+            j1 = float(np.clip(th_nominal[0] + rng.normal(0, jitter), 1.0, 89.0))
+            j2 = float(np.clip(th_nominal[1] + rng.normal(0, jitter), 1.0, 89.0))
+            if _siblings_apart(r1, r2, j1, j2, ratio * r1, ratio * r2):
+                th1, th2 = j1, j2
+                break
+    return th1, th2, apart
+
+
+def _place_daughters(
+    index: _Clearance,
+    parent_id: int,
+    start: np.ndarray,
+    d: np.ndarray,
+    n_ref: np.ndarray,
+    *,
+    phi_base: float,
+    angles: tuple[float, float],
+    radii: tuple[float, float],
+    draws: list[tuple[np.ndarray, int]],
+    origin: np.ndarray,
+    axis0: np.ndarray,
+    ratio: float,
+    wig: float,
+    gap: float,
+) -> tuple[float, np.ndarray, list[tuple]] | None:
+    """The first turn of the branching plane at which both daughters fit, or None.
+
+    Parameters
+    ----------
+    parent_id : int
+        Segment the daughters leave (their clearance ignores it).
+    start, d, n_ref : ndarray, shape (3,)
+        Fork position, parent direction and the level's reference plane normal.
+    phi_base : float
+        Nominal plane rotation, degrees; :data:`_PLANE_TURNS_DEG` are tried about it.
+    angles, radii : (float, float)
+        Daughters' angles from ``d`` (degrees) and radii.
+    draws : list of (ndarray, int)
+        Each daughter's wiggle direction and mode (:func:`_perp_draw`).
+    origin, axis0 : ndarray, shape (3,)
+        Root position and direction: no daughter comes back near the root face.
+
+    Returns
+    -------
+    (float, ndarray, list) or None
+        Plane rotation, plane normal and ``(direction, radius, end, points)``
+        of each daughter.
+    """
+    th1, th2 = angles
+    for step in _PLANE_TURNS_DEG:
+        phi = phi_base + step
+        normal = _unit(_rotate(n_ref, d, math.radians(phi)))
+        d1, d2 = _daughter_directions(d, normal, th1, th2)
+        cand = []
+        ok = True
+        for dk, rk, (ek, mk) in zip((d1, d2), radii, draws):
+            ek = _unit(ek - np.dot(ek, dk) * dk)
+            b = start + ratio * rk * dk
+            pts = _tree_points(start, b, ek, mk, wig)
+            sample = pts[::2]
+            # Stay on the tree side of the root face so no branch is cut by it.
+            if np.any((sample - origin) @ axis0 < index.factor * rk + gap):
+                ok = False
+                break
+            if not index.clear(sample, rk, {parent_id}):
+                ok = False
+                break
+            cand.append((dk, rk, b, pts))
+        if ok:
+            return phi, normal, cand
+    return None
+
+
 def binary_tree(
     *,
     depth: int,
@@ -339,40 +513,18 @@ def binary_tree(
     origin = np.zeros(3)
     axis0 = np.array([1.0, 0.0, 0.0])
 
-    def add_segment(
-        start: dict, end_pos: np.ndarray, radius: float, level: int, parent: int | None, pts: np.ndarray
-    ):
-        end = _node(len(nodes), end_pos, "blind")
-        nodes.append(end)
-        length = float(np.linalg.norm(end_pos - np.asarray(start["pos_um"]))) if wig == 0 else None
-        seg = _make_segment(len(segs), start, end, pts, radius, length_um=length, level=level)
-        if parent is not None:
-            seg["parent_segment"] = int(parent)
-        segs.append(seg)
-        index.add(seg["points_um"][::2], radius, seg["id"])
-        return seg, end
-
-    def shape(a: np.ndarray, b: np.ndarray, e_perp: np.ndarray, m: int) -> np.ndarray:
-        if wig == 0:
-            return _line_points(a, b)
-        return _wiggled_points(a, b, wig * float(np.linalg.norm(b - a)), e_perp, m)
-
-    def perp_draw(d: np.ndarray) -> tuple[np.ndarray, int]:
-        e = _unit(_rotate(_any_perpendicular(d), d, rng.uniform(0, 2 * math.pi)))
-        return e, int(rng.integers(1, 3))
-
     root_node = _node(0, origin, "border")
     nodes.append(root_node)
-    e, m = perp_draw(axis0)
+    e, m = _perp_draw(rng, axis0)
     l_root = ratio * r_root
-    root_seg, root_end = add_segment(
-        root_node, l_root * axis0, r_root, 0, None, shape(origin, l_root * axis0, e, m)
+    root_seg, root_end = _add_tree_segment(
+        nodes, segs, index, root_node, l_root * axis0, r_root, 0, None,
+        _tree_points(origin, l_root * axis0, e, m, wig), wig=wig,
     )
     # frontier: (segment, end node, chord direction, reference plane normal, radius, level)
     frontier = [(root_seg, root_end, axis0, np.array([0.0, 1.0, 0.0]), r_root, 0)]
     acc = rng.random()  # error-diffusion phase for spreading broken bifurcations
     n_terminated = 0
-    rot_steps = (0.0, 30.0, -30.0, 60.0, -60.0, 90.0, 15.0, -15.0, 45.0, -45.0, 75.0, -75.0)
     while frontier:
         nxt = []
         for seg, end, d, n_ref, r0, level in frontier:
@@ -381,57 +533,21 @@ def binary_tree(
             r1, r2 = murray_daughter_radii(r0, exponent=x, asymmetry=q)
             if min(r1, r2) < r_min:
                 continue
-            broken = False
             acc_before = acc
-            if frac > 0:
-                acc += frac
-                if acc >= 1.0:
-                    acc -= 1.0
-                    broken = True
+            acc, broken = _next_broken(acc, frac)
             if broken:
                 r1 = r2 = b_ratio * r0
-            th_nominal = angles if angles is not None else murray_angles_deg(r0, r1, r2)
-            apart = _siblings_apart(r1, r2, *th_nominal, ratio * r1, ratio * r2)
-            if angles is not None and not apart:
-                raise _bad(
-                    "angle_deg", "daughter angles wide enough for the daughters to separate", angle_deg
-                )
-            th1, th2 = th_nominal
-            if jitter > 0:
-                # Redraw jitter that would close the pair so far that the
-                # daughters fuse; after a few misses keep the nominal angles.
-                for _ in range(8):
-                    j1 = float(np.clip(th_nominal[0] + rng.normal(0, jitter), 1.0, 89.0))
-                    j2 = float(np.clip(th_nominal[1] + rng.normal(0, jitter), 1.0, 89.0))
-                    if _siblings_apart(r1, r2, j1, j2, ratio * r1, ratio * r2):
-                        th1, th2 = j1, j2
-                        break
+            th1, th2, apart = _daughter_angles(
+                rng, r0, r1, r2, angles=angles, angle_deg=angle_deg, ratio=ratio, jitter=jitter
+            )
             phi_base = phi0 + (rng.normal(0, jitter) if jitter > 0 else 0.0)
-            draws = [perp_draw(d), perp_draw(d)]
-            start = np.asarray(end["pos_um"])
+            draws = [_perp_draw(rng, d), _perp_draw(rng, d)]
             placed = None
-            for step in rot_steps if apart else ():
-                phi = phi_base + step
-                normal = _unit(_rotate(n_ref, d, math.radians(phi)))
-                d1, d2 = _daughter_directions(d, normal, th1, th2)
-                cand = []
-                ok = True
-                for dk, rk, (ek, mk) in zip((d1, d2), (r1, r2), draws):
-                    ek = _unit(ek - np.dot(ek, dk) * dk)
-                    b = start + ratio * rk * dk
-                    pts = shape(start, b, ek, mk)
-                    sample = pts[::2]
-                    # Stay on the tree side of the root face so no branch is cut by it.
-                    if np.any((sample - origin) @ axis0 < index.factor * rk + gap):
-                        ok = False
-                        break
-                    if not index.clear(sample, rk, {seg["id"]}):
-                        ok = False
-                        break
-                    cand.append((dk, rk, b, pts))
-                if ok:
-                    placed = (phi, normal, cand)
-                    break
+            if apart:
+                placed = _place_daughters(
+                    index, seg["id"], np.asarray(end["pos_um"]), d, n_ref, phi_base=phi_base, angles=(th1, th2),
+                    radii=(r1, r2), draws=draws, origin=origin, axis0=axis0, ratio=ratio, wig=wig, gap=gap,
+                )
             if placed is None:
                 n_terminated += 1
                 acc = acc_before  # no bifurcation here, so it takes no share of broken ones
@@ -440,7 +556,7 @@ def binary_tree(
             end["kind"] = "junction"
             kids = []
             for dk, rk, b, pts in cand:
-                kseg, kend = add_segment(end, b, rk, level + 1, seg["id"], pts)
+                kseg, kend = _add_tree_segment(nodes, segs, index, end, b, rk, level + 1, seg["id"], pts, wig=wig)
                 kids.append(kseg["id"])
                 nxt.append((kseg, kend, dk, normal, rk, level + 1))
             bifs.append(
