@@ -300,7 +300,7 @@ def _cmd_analyze(args):
 def _cmd_report(args):
     from .report import build_report
 
-    page = build_report(args.outdir, mask=args.mask, overwrite=args.overwrite)
+    page = build_report(args.outdir, mask_path=args.mask, overwrite=args.overwrite)
     _Reporter(args.quiet).info(f"wrote {page}")
     return 0
 

@@ -252,6 +252,27 @@ def test_map_without_the_mask_says_so(sample, tmp_path):
     assert data.mip is None and not report.figure_map_level(data, []).axes[0].images
 
 
+def test_mask_path_and_its_earlier_name(sample, tmp_path):
+    # One name per concept: the mask file is ``mask_path`` in the report, the
+    # viewer and pipeline.tables. The earlier ``mask`` still works, with a
+    # FutureWarning; both at once is a mistake.
+    tif, out, _ = sample
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    run = json.loads((copy / "run.json").read_text())
+    run["input"]["path"] = str(tmp_path / "gone.tif")
+    (copy / "run.json").write_text(json.dumps(run))
+    report.build_report(copy, mask_path=tif, overwrite=True)
+    assert "centrelines alone" not in (copy / "report.html").read_text(encoding="utf-8")
+    with pytest.warns(FutureWarning, match="mask_path"):
+        report.build_report(copy, mask=tif, overwrite=True)
+    assert "centrelines alone" not in (copy / "report.html").read_text(encoding="utf-8")
+    with pytest.raises(TypeError):
+        report.build_report(copy, mask=tif, mask_path=tif, overwrite=True)
+    with pytest.raises(TypeError):
+        report.build_report(copy, mask_file=tif, overwrite=True)
+
+
 def test_no_flow_sample_leaves_flow_figures_out(sample, tmp_path):
     tif, _, _ = sample
     out = tmp_path / "noflow"

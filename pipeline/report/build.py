@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import warnings
 from pathlib import Path
 
 import pandas as pd
@@ -30,7 +31,7 @@ from .page import (
 # --------------------------------------------------------------------------- entry point
 
 
-def build_report(outdir, *, mask=None, overwrite=False) -> Path:
+def build_report(outdir, *, mask_path=None, overwrite=False, **renamed) -> Path:
     """Build ``report.html`` and ``figures/`` for a sample or a batch folder.
 
     Parameters
@@ -38,13 +39,16 @@ def build_report(outdir, *, mask=None, overwrite=False) -> Path:
     outdir : str or Path
         A result folder written by ``vesselflow analyze`` (has ``run.json``
         and ``segments.csv``) or a batch folder (has ``cohort_summary.csv``).
-    mask : str or Path, optional
+    mask_path : str or Path, optional
         The mask file for the projection map of a sample; default: the input
         recorded in ``run.json``. When neither can be read the map is drawn
         from the centrelines alone and the report says so. Not accepted for a
         batch folder.
     overwrite : bool
         Replace an existing report (``report.html`` and ``figures/``).
+    **renamed
+        ``mask``, the earlier name of ``mask_path`` (deprecated: a
+        FutureWarning, once).
 
     Returns
     -------
@@ -55,10 +59,11 @@ def build_report(outdir, *, mask=None, overwrite=False) -> Path:
     ------
     InputError
         If ``outdir`` is not a sample or batch folder, is incomplete, already
-        holds a report and ``overwrite`` is False, ``mask`` cannot be read, or
+        holds a report and ``overwrite`` is False, ``mask_path`` cannot be read, or
         a sample folder's ``review.csv`` is invalid
         (:func:`pipeline.review.check_review`). Nothing is written then.
     """
+    mask_path = _renamed_mask(mask_path, renamed)
     out = Path(outdir)
     if not out.exists():
         raise InputError(f"report: folder '{out}' does not exist; expected a result or batch folder")
@@ -73,11 +78,11 @@ def build_report(outdir, *, mask=None, overwrite=False) -> Path:
         raise InputError(f"report: '{out}' already has {REPORT_NAME} or {FIGURE_DIR}/; "
                          "pass overwrite=True to replace them")
     if kind == "batch":
-        if mask is not None:
-            raise InputError("applies to one sample; a batch folder reads each sample's own", param="mask")
+        if mask_path is not None:
+            raise InputError("applies to one sample; a batch folder reads each sample's own", param="mask_path")
         page, figures = _study_report(out)
     else:
-        page, figures = _sample_report(out, mask=mask)
+        page, figures = _sample_report(out, mask=mask_path)
     return _publish(out, page, figures)
 
 
@@ -133,6 +138,20 @@ def _publish(out, page, figures):
         if old is not None:
             shutil.rmtree(old, ignore_errors=True)
     return out / REPORT_NAME
+
+
+def _renamed_mask(mask_path, renamed):
+    """``mask_path``, or the value given under its earlier name ``mask`` (with a FutureWarning)."""
+    unknown = sorted(set(renamed) - {"mask"})
+    if unknown:
+        raise TypeError(f"build_report() got an unexpected keyword argument '{unknown[0]}'")
+    if "mask" not in renamed:
+        return mask_path
+    if mask_path is not None:
+        raise TypeError("build_report(): give mask_path, not both mask_path and mask")
+    warnings.warn("build_report(mask=...) is now build_report(mask_path=...), the name the viewer and "
+                  "pipeline.tables use; 'mask' will go in a later version", FutureWarning, stacklevel=3)
+    return renamed["mask"]
 
 
 def _sample_report(out, *, mask):
