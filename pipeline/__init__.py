@@ -3,7 +3,11 @@
 The public API is :func:`analyze` (array in, tables out) and the step
 modules it runs, one per step, each usable on its own.
 
-Importing the package is cheap: ``analyze`` and ``Analysis`` load the
+:func:`analyze` returns a :class:`Result` (``Analysis`` is the same type),
+the one type a result folder reads back as (``pipeline.tables.load_result``)
+and the batch, the report, the scorer and the viewer take.
+
+Importing the package is cheap: ``analyze``, ``Result`` and ``Analysis`` load the
 analysis (numpy, scipy, pandas, numba...) on first use, and the step modules
 load when imported (``from pipeline import synthetic``). Nothing here
 changes the process environment.
@@ -12,9 +16,9 @@ changes the process environment.
 from ._version import __version__
 from .errors import ConfigError, InputError, SolverError, VesselflowError
 
-__all__ = ["analyze", "Analysis", "VesselflowError", "InputError", "ConfigError", "SolverError", "__version__"]
+__all__ = ["analyze", "Result", "Analysis", "VesselflowError", "InputError", "ConfigError", "SolverError", "__version__"]
 
-_LAZY = {"analyze", "Analysis"}
+_LAZY = {"analyze", "Result", "Analysis"}
 
 
 def __getattr__(name):

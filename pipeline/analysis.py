@@ -1,7 +1,7 @@
 """The analysis pipeline as one call: mask in, measured vessel graph out.
 
 In: a boolean mask ``(Z, Y, X)`` (or ``(Y, X)``), its spacing in µm, a config.
-Out: :class:`Analysis`, with ``segments`` and ``nodes`` DataFrames, a networkx
+Out: :class:`~pipeline.result.Result` (``Analysis`` is the same type), with ``segments`` and ``nodes`` DataFrames, a networkx
 ``graph``, the ``summary`` dict, the smoothed ``centrelines`` and ``run``
 bookkeeping (effective config, time per step, counts, warnings).
 
@@ -18,9 +18,6 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
-
 import numpy as np
 import pandas as pd
 
@@ -33,11 +30,9 @@ from . import vessels as vessels_step
 from . import reading
 from .config import load_config
 from .errors import InputError
+from .result import STEPS, Result, to_networkx
 
-if TYPE_CHECKING:
-    import networkx as nx
-
-__all__ = ["Analysis", "analyze", "analyze_file"]
+__all__ = ["Analysis", "Result", "STEPS", "analyze", "analyze_file", "to_networkx"]
 
 # Median segment radius, µm, beyond which the spacing is more likely wrong
 # than the sample (common practice): capillaries have radii of 2-4 µm and the
@@ -46,68 +41,9 @@ __all__ = ["Analysis", "analyze", "analyze_file"]
 _PLAUSIBLE_MEDIAN_RADIUS_UM = (0.1, 1000.0)
 
 
-@dataclass
-class Analysis:
-    """Result of :func:`analyze`.
-
-    Attributes
-    ----------
-    segments : DataFrame
-        One row per segment; ``segment_id``, ``node_from``, ``node_to``,
-        ``length_um``, ``radius_um`` and more (see ``DEVELOPERS.md``).
-    nodes : DataFrame
-        One row per node; ``node_id``, voxel ``z, y, x``, ``z_um, y_um, x_um``,
-        ``degree``, ``kind``.
-    graph : networkx.MultiGraph
-        Nodes keyed by ``node_id``; edges keyed by ``segment_id`` with the
-        segment's columns as attributes. Built from ``segments`` and
-        ``nodes`` on first access (:func:`to_networkx`): the tables are the
-        result, the graph is their view for networkx, and on a bed of 40,000
-        segments it takes 0.7 s and much memory that a caller of the tables
-        alone does not need.
-    summary : dict
-        Sample-level measures.
-    centrelines : list of (K, 3) float ndarray
-        Smoothed centreline of each segment (row order), µm.
-    centreline_radii : list of (K,) float ndarray
-        Radius along each raw centreline, µm.
-    spacing : tuple of 3 float
-    levels : DataFrame
-        Per-level morphometry and Murray statistics (``levels.csv``).
-    vessels : DataFrame
-        One row per vessel, segments chained through junctions, with its
-        tortuosity (``vessels.csv``, :mod:`pipeline.vessels`).
-    bifurcations : DataFrame
-        One row per junction (``bifurcations.csv``).
-    orders : DataFrame
-        Per diameter-defined Strahler order: elements, segments, element
-        diameter and length (``orders.csv``, :mod:`pipeline.orders`).
-    order_connectivity : DataFrame
-        Connectivity matrix C(m, n) in long form (``order_connectivity.csv``).
-    run : dict
-        ``config``, ``timings_s``, ``counts``, ``warnings``, ``planar``,
-        ``roots``, ``flow`` (solver details).
-    """
-
-    segments: pd.DataFrame
-    nodes: pd.DataFrame
-    summary: dict
-    centrelines: list
-    centreline_radii: list
-    spacing: tuple
-    levels: pd.DataFrame = field(default_factory=pd.DataFrame)
-    bifurcations: pd.DataFrame = field(default_factory=pd.DataFrame)
-    run: dict = field(default_factory=dict)
-    vessels: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=vessels_step.VESSEL_COLUMNS))
-    orders: pd.DataFrame = field(default_factory=pd.DataFrame)
-    order_connectivity: pd.DataFrame = field(default_factory=pd.DataFrame)
-    _graph: object = field(default=None, repr=False, compare=False)
-
-    @property
-    def graph(self) -> nx.MultiGraph:
-        if self._graph is None:
-            self._graph = to_networkx(self.segments, self.nodes)
-        return self._graph
+#: The type :func:`analyze` returns: :class:`pipeline.result.Result`, also
+#: what :func:`pipeline.tables.load_result` reads back (one result type).
+Analysis = Result
 
 
 def _as_mask(mask, threshold):
@@ -178,6 +114,21 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     >>> len(res.segments)
     1
     """
+    try:
+        cfg, arr, sp, planar = _checked_input(mask, spacing, config, planar, memory_limit_bytes)
+    except BaseException as exc:
+        _charge(exc, "reading")  # the checks of the input, as a file's are part of reading it
+        raise
+    clock = _Clock(progress, cfg)
+    try:
+        return _analyze_steps(arr, sp, cfg, planar=planar, inlets=inlets, outlets=outlets, clock=clock)
+    except BaseException as exc:
+        _charge(exc, clock.running())
+        raise
+
+
+def _checked_input(mask, spacing, config, planar, memory_limit_bytes):
+    """The config, mask (Z, Y, X), spacing and planar flag of :func:`analyze`, checked."""
     cfg = load_config(config)
     arr = _as_mask(mask, cfg["input"]["threshold"])
     sp = _check_spacing(spacing, arr.ndim)
@@ -192,7 +143,21 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
         raise InputError("mask: expected some vessel voxels, got an empty mask (every voxel is 0)")
     if arr.all():
         raise InputError("mask: expected background around the vessels, got a mask where every voxel is vessel")
-    clock = _Clock(progress)
+    return cfg, arr, sp, planar
+
+
+def _charge(exc, step):
+    """Name on ``exc`` the step it was raised in (``exc.step``), unless a step inside named it first."""
+    if getattr(exc, "step", None) is None:
+        try:
+            exc.step = step
+        except AttributeError:  # an exception type without attributes of its own
+            pass
+
+
+def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
+    """The steps of :func:`analyze` on a checked mask, each timed by ``clock``."""
+    cc = cfg["centrelines"]
     c = cfg["cleaning"]
     cleaned = cleaning.clean_mask(arr, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
                                   min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"],
@@ -232,17 +197,25 @@ def analyze(mask, *, spacing, config=None, planar=None, inlets=(), outlets=(), p
     run = {"config": cfg, "timings_s": clock.timings, "counts": counts, "warnings": warnings, "planar": bool(planar),
            "shape": list(original_shape), "crop_offset": list(cleaned.offset), "roots": [int(r) for r in net["roots"]],
            "notes": net["notes"], "flow": net["flow"]}
-    return Analysis(segments=net["segments"], nodes=net["nodes"], summary=summary, centrelines=smoothed,
-                    centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=net["levels"],
-                    bifurcations=net["bifurcations"], run=run, vessels=net["vessels"], orders=net["orders"].table,
-                    order_connectivity=net["orders"].connectivity)
+    return Result(segments=net["segments"], nodes=net["nodes"], summary=summary, centrelines=smoothed,
+                  centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=net["levels"],
+                  bifurcations=net["bifurcations"], run=run, vessels=net["vessels"], orders=net["orders"].table,
+                  order_connectivity=net["orders"].connectivity)
 
 
 class _Clock:
-    """Seconds per step for run.json, each also handed to ``progress(step, seconds)``."""
+    """Seconds per step for run.json, each also handed to ``progress(step, seconds)``.
 
-    def __init__(self, progress):
+    Knows which step is running (:meth:`running`): the one after the last
+    that ended, among the :data:`STEPS` this config runs.
+    """
+
+    def __init__(self, progress, cfg):
         self.progress, self.timings, self.t = progress, {}, time.perf_counter()
+        self.order = [st for st in STEPS if st not in ("reading", "writing")
+                      and (st != "flow" or cfg["flow"]["enabled"])
+                      and (st != "radii" or cfg["radii"]["estimator"] == "wall_fit")]
+        self.passed = 0
 
     def tick(self, step):
         now = time.perf_counter()
@@ -250,6 +223,15 @@ class _Clock:
         if self.progress is not None:
             self.progress(step, now - self.t)
         self.t = now
+        self.skip(step)
+
+    def skip(self, step):
+        """Mark ``step`` as over without a time of its own (it had nothing to do)."""
+        if step in self.order:
+            self.passed = max(self.passed, self.order.index(step) + 1)
+
+    def running(self):
+        return self.order[min(self.passed, len(self.order) - 1)]
 
 
 def _prune(g, p, *, grid_spacing, spacing, planar, shape):
@@ -326,6 +308,7 @@ def _network_steps(segs, nodes, smoothed, cfg, *, inlets, outlets, spacing, plan
             clock.tick("flow")
         elif cfg["flow"]["enabled"]:
             warnings.append("flow not solved: no root or inlet node could be chosen")
+            clock.skip("flow")
         # The wall fit's slab and quantisation follow the coarsest spacing of
         # the mask (planar: in-plane) the radii were fitted on.
         bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed, config=cfg,
@@ -431,40 +414,6 @@ def _resolve_nodes(specs, nodes, segments, what):
     return out
 
 
-def _records(df):
-    """Rows of ``df`` as dicts of Python values, as ``df.to_dict("records")`` gives them.
-
-    Column by column (``tolist`` converts a whole column at once) rather
-    than value by value: about three times quicker on a table of 40,000
-    segments and 40 columns. A missing value of a nullable column
-    (``pd.NA``) becomes None, as in ``to_dict``.
-    """
-    cols = list(df.columns)
-    values = []
-    for c in cols:
-        col = df[c]
-        v = col.tolist()
-        if isinstance(col.dtype, pd.api.extensions.ExtensionDtype) and col.hasnans:
-            v = [None if x is pd.NA else x for x in v]
-        values.append(v)
-    return [dict(zip(cols, row)) for row in zip(*values)]
-
-
-def to_networkx(segments, nodes):
-    """Build the networkx MultiGraph of the tables (edges keyed by ``segment_id``).
-
-    Every node carries its row of ``nodes`` and every edge its row of
-    ``segments`` as attributes.
-    """
-    import networkx as nx  # only for this view of the tables
-
-    G = nx.MultiGraph()
-    G.add_nodes_from((int(row["node_id"]), row) for row in _records(nodes))
-    G.add_edges_from((int(row["node_from"]), int(row["node_to"]), int(row["segment_id"]), row)
-                     for row in _records(segments))
-    return G
-
-
 def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, inlets=(), outlets=(),
                  progress=None, warn=None, run_info=None, memory_limit_bytes=None):
     """Read one mask file, analyse it and write its result folder.
@@ -515,29 +464,21 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     import platform
     from pathlib import Path as _Path
 
-    from . import reading, tables
+    from . import tables
     from ._version import __version__
 
-    cfg = load_config(config)
-    tables.check_outdir(outdir, overwrite=overwrite, inputs=[path])
-    tables.check_writable(outdir)
-    t0 = time.perf_counter()
-    limit = memory_limit_bytes
-    if limit is None and cfg["input"]["max_memory_gb"] is not None:
-        limit = int(cfg["input"]["max_memory_gb"] * 2**30)
-    if limit is None:
-        # One figure, taken before the mask is loaded, for both memory checks.
-        limit = reading.available_memory_bytes()
-    cc = cfg["centrelines"]
-    img = reading.read_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"], memory_limit_bytes=limit,
-                            implausible_spacing=cfg["input"]["implausible_spacing"],
-                            max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"])
-    for w in img.warnings:
-        if warn is not None:
-            warn(w)
-    read_s = time.perf_counter() - t0
-    if progress is not None:
-        progress("reading", read_s)
+    try:
+        cfg = load_config(config)
+        tables.check_outdir(outdir, overwrite=overwrite, inputs=[path])
+        tables.check_writable(outdir)
+    except BaseException as exc:
+        _charge(exc, "writing")  # where the result would go, checked before any work
+        raise
+    try:
+        img, read_s, limit = _read(path, spacing, cfg, memory_limit_bytes, progress, warn)
+    except BaseException as exc:
+        _charge(exc, "reading")
+        raise
     result = analyze(img.mask, spacing=img.spacing, config=cfg, planar=img.planar, inlets=inlets, outlets=outlets,
                      progress=progress, memory_limit_bytes=limit)
     for w in result.run["warnings"]:
@@ -556,7 +497,33 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
         **(run_info or {}),
     }
     t0 = time.perf_counter()
-    out = tables.write_result(result, outdir, run_info=info, overwrite=overwrite, inputs=[path])
+    try:
+        out = tables.write_result(result, outdir, run_info=info, overwrite=overwrite, inputs=[path])
+    except BaseException as exc:
+        _charge(exc, "writing")
+        raise
     if progress is not None:
         progress("writing", time.perf_counter() - t0)
     return out, result
+
+
+def _read(path, spacing, cfg, memory_limit_bytes, progress, warn):
+    """The mask file read and checked (:func:`pipeline.reading.read_mask`), the seconds it took, the memory limit."""
+    t0 = time.perf_counter()
+    limit = memory_limit_bytes
+    if limit is None and cfg["input"]["max_memory_gb"] is not None:
+        limit = int(cfg["input"]["max_memory_gb"] * 2**30)
+    if limit is None:
+        # One figure, taken before the mask is loaded, for both memory checks.
+        limit = reading.available_memory_bytes()
+    cc = cfg["centrelines"]
+    img = reading.read_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"], memory_limit_bytes=limit,
+                            implausible_spacing=cfg["input"]["implausible_spacing"],
+                            max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"])
+    for w in img.warnings:
+        if warn is not None:
+            warn(w)
+    seconds = time.perf_counter() - t0
+    if progress is not None:
+        progress("reading", seconds)
+    return img, seconds, limit

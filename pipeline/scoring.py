@@ -1,7 +1,7 @@
 """Scoring a measured vessel graph against a synthetic ground truth.
 
-In: a result (a result folder, :class:`~pipeline.tables.Result` or
-:class:`~pipeline.analysis.Analysis`: ``segments``, ``nodes`` and
+In: a result (a result folder, or a :class:`~pipeline.result.Result` from
+:func:`pipeline.analyze` or :func:`pipeline.tables.load_result`: ``segments``, ``nodes`` and
 ``centrelines`` in µm) and a ground truth (the ``NAME.truth.json`` that
 :func:`pipeline.synthetic.write_volume` writes beside a synthetic volume, or
 the dict :func:`pipeline.synthetic.rasterize` returns).

@@ -1,6 +1,6 @@
 """Writing and reading a result folder.
 
-In: an :class:`~pipeline.analysis.Analysis` and the run metadata.
+In: a :class:`~pipeline.result.Result` and the run metadata.
 Out: files in a result folder, written atomically (into a temporary sibling
 folder that is renamed at the end, so an interrupted run never leaves a
 folder that looks complete):
@@ -46,13 +46,13 @@ import shutil
 import socket
 import tempfile
 import threading
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from .errors import InputError, StorageError
+from .result import Result
 from .tablefiles import write_csv, write_graphml
 
 __all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "check_new_file",
@@ -383,7 +383,9 @@ def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None
 
     Parameters
     ----------
-    result : Analysis
+    result : Result
+        From :func:`pipeline.analyze`; on success its ``path`` becomes the
+        folder and its ``run`` the record written (``run.json``).
     outdir : str or Path
     run_info : dict
         Merged into ``run.json`` (version, input, checksum, spacing source...).
@@ -432,6 +434,8 @@ def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None
         if isinstance(exc, OSError) and not isinstance(exc, StorageError):
             raise storage_error(exc, out) from None
         raise
+    # the result in memory is now the folder's: what load_result would give
+    result.path, result.run = out, run
     return out
 
 
@@ -517,27 +521,6 @@ def verify_result(outdir):
     return problems
 
 
-@dataclass
-class Result:
-    """A result folder read back: tables, summary, run info and centrelines."""
-
-    path: Path
-    segments: pd.DataFrame
-    nodes: pd.DataFrame
-    summary: dict
-    run: dict
-    centrelines: list
-    bifurcations: pd.DataFrame
-    levels: pd.DataFrame
-    vessels: pd.DataFrame = field(default_factory=pd.DataFrame)
-    orders: pd.DataFrame = field(default_factory=pd.DataFrame)
-    order_connectivity: pd.DataFrame = field(default_factory=pd.DataFrame)
-
-    @property
-    def spacing(self):
-        return tuple(self.run["spacing_um"])
-
-
 def load_result(outdir, *, verify=True):
     """Read a result folder written by :func:`write_result`.
 
@@ -581,11 +564,14 @@ def load_result(outdir, *, verify=True):
         with np.load(out / "centrelines.npz") as z:
             pts, off = z["points_um"], z["offsets"]
             lines = [pts[off[i]:off[i + 1]] for i in range(len(off) - 1)]
+            rad = z["radii_um"] if "radii_um" in z.files else None
+            radii = None if rad is None else [rad[off[i]:off[i + 1]] for i in range(len(off) - 1)]
     except (ValueError, KeyError, OSError, EOFError, pd.errors.ParserError) as exc:
         raise InputError(f"result folder '{out}': a file cannot be read ({type(exc).__name__}: "
                          f"{' '.join(str(exc).split())[:200]}); analyse the mask again") from None
     return Result(path=out, segments=segs, nodes=nodes, summary=summary, run=run, centrelines=lines,
-                  bifurcations=bifs, levels=levels, vessels=vessels, orders=orders, order_connectivity=order_conn)
+                  centreline_radii=radii, bifurcations=bifs, levels=levels, vessels=vessels, orders=orders,
+                  order_connectivity=order_conn)
 
 
 def read_result_mask(result, mask_path=None):

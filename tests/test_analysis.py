@@ -345,3 +345,74 @@ def test_a_non_binary_array_without_threshold_is_refused(tube_mask, make):
     # As read_mask refuses such a file: every non-zero voxel would be vessel.
     with pytest.raises(InputError, match="distinct values.*threshold"):
         pipeline.analyze(make(tube_mask), spacing=(1, 1, 1))
+
+
+# --- one result type; errors name their step ---
+
+
+def test_one_result_type_from_analyze_to_the_folder_and_back(tmp_path):
+    # analyze, analyze_file and load_result give the same type, and a result
+    # read back holds what was written: the tables, the centrelines and their
+    # radii, the spacing and the run record.
+    import json
+
+    import pandas as pd
+
+    from pipeline.analysis import analyze_file
+    from pipeline.result import Result
+    from pipeline.tables import load_result, write_result
+
+    mask, _ = synthetic.rasterize(synthetic.y_branch(parent_radius_um=4, parent_length_um=30, daughter_length_um=30),
+                                  spacing=(2, 1, 1))
+    mem = pipeline.analyze(mask, spacing=(2, 1, 1))
+    assert type(mem) is Result and pipeline.Analysis is Result and pipeline.Result is Result
+    assert mem.path is None and mem.spacing == (2.0, 1.0, 1.0)
+    path = tmp_path / "y.npy"
+    np.save(path, mask)
+    out, written = analyze_file(path, tmp_path / "res", spacing=(2, 1, 1))
+    back = load_result(out)
+    assert type(back) is Result and back.path == out == written.path
+    assert written.run == json.loads((out / "run.json").read_text())
+    assert back.spacing == written.spacing == (2.0, 1.0, 1.0)
+    assert len(back.centreline_radii) == len(back.centrelines) == len(written.segments)
+    for a, b in zip(back.centreline_radii, written.centreline_radii):
+        np.testing.assert_allclose(a, b, rtol=1e-6)  # stored as float32
+    # a result read back can be written again and reads back the same
+    again = load_result(write_result(back, tmp_path / "again", run_info={}))
+    pd.testing.assert_frame_equal(again.segments, back.segments)
+    pd.testing.assert_frame_equal(again.nodes, back.nodes)
+
+
+@pytest.mark.parametrize("target, step", [
+    ("pipeline.analysis.flow_step.solve_flow", "flow"),
+    ("pipeline.analysis.bif_step.analyze_bifurcations", "bifurcations"),
+    ("pipeline.analysis.graph_step.build_graph", "graph"),
+    ("pipeline.analysis.cleaning.clean_mask", "cleaning"),
+])
+def test_an_error_names_the_step_it_was_raised_in(monkeypatch, target, step):
+    def fail(*a, **k):
+        raise pipeline.SolverError("stopped here")
+
+    monkeypatch.setattr(target, fail)
+    mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=40, radius_um=3), spacing=(1, 1, 1))
+    with pytest.raises(pipeline.SolverError) as info:
+        pipeline.analyze(mask, spacing=(1, 1, 1))
+    assert info.value.step == step
+
+
+def test_input_and_output_errors_name_reading_and_writing(tmp_path):
+    from pipeline.analysis import analyze_file
+
+    with pytest.raises(pipeline.InputError) as info:
+        pipeline.analyze(np.zeros((4, 8, 8), bool), spacing=(1, 1, 1))
+    assert info.value.step == "reading"
+    bad = tmp_path / "bad.npy"
+    bad.write_bytes(b"not an array")
+    with pytest.raises(pipeline.InputError) as info:
+        analyze_file(bad, tmp_path / "res")
+    assert info.value.step == "reading"
+    (tmp_path / "full").mkdir()
+    (tmp_path / "full" / "mine.txt").write_text("keep")
+    with pytest.raises(pipeline.InputError) as info:
+        analyze_file(bad, tmp_path / "full")
+    assert info.value.step == "writing"

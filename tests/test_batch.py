@@ -754,9 +754,8 @@ def test_shipped_demo_sheet_is_valid():
 
 
 def test_failure_steps_are_the_steps_the_analysis_reports(tmp_path):
-    # A failed sample is charged to the step after the last one reported;
-    # the list it is looked up in must be the analysis's own steps, in order
-    # (it lacked vessels and orders, so a failure there was charged to flow).
+    # Progress reports the steps of pipeline.result.STEPS, in order, and a
+    # failure is charged to one of them (tests/test_analysis.py).
     from pipeline.analysis import analyze_file
 
     mask, _ = synthetic.rasterize(synthetic.straight_tube(length_um=40, radius_um=3), spacing=(1, 1, 1))
@@ -765,6 +764,28 @@ def test_failure_steps_are_the_steps_the_analysis_reports(tmp_path):
     seen = []
     analyze_file(path, tmp_path / "out", spacing=(1, 1, 1), progress=lambda step, s: seen.append(step))
     assert tuple(seen) == batch.STEPS
+
+
+@pytest.mark.parametrize("where, step", [("solve_flow", "flow"), ("analyze_bifurcations", "bifurcations"),
+                                         ("build_vessels", "vessels")])
+def test_a_failed_sample_is_charged_to_the_step_that_failed(tmp_path, monkeypatch, where, step):
+    from pipeline import analysis
+    from pipeline.errors import SolverError
+
+    module = {"solve_flow": analysis.flow_step, "analyze_bifurcations": analysis.bif_step,
+              "build_vessels": analysis.vessels_step}[where]
+
+    def fail(*a, **k):
+        raise SolverError("did not converge")
+
+    monkeypatch.setattr(module, where, fail)
+    mask, _ = synthetic.rasterize(synthetic.y_branch(parent_radius_um=4, parent_length_um=30,
+                                                     daughter_length_um=30), spacing=(1, 1, 1))
+    (tmp_path / "in").mkdir()
+    np.save(tmp_path / "in" / "y.npy", mask)
+    samples = batch.collect_samples(tmp_path / "in")
+    rec = batch.process_sample(samples[0], tmp_path / "out" / "y", config=None)
+    assert rec["status"] == "failed" and rec["step"] == step and "did not converge" in rec["error"]
 
 
 def test_the_library_prints_nothing_and_reports_through_the_callback(beds, tmp_path, capsys):

@@ -51,7 +51,8 @@ from .study import (
     BOOKKEEPING_COLUMNS, COMPARISON_COLUMNS, FALLBACK_MEASURES, MIN_TEST_SAMPLES, SCIENCE_MEASURES, StudyMeasure,
     add_densities, bookkeeping_measures, cohort_tables, group_bookkeeping, group_comparison, science_measures,
 )
-from .engine import BatchResult, FAILURE_COLUMNS, FINAL_STATES, LOCK_FILE, STEPS, STUDY_FILES, process_sample, run_batch
+from ..result import STEPS
+from .engine import BatchResult, FAILURE_COLUMNS, FINAL_STATES, LOCK_FILE, STUDY_FILES, process_sample, run_batch
 
 __all__ = [
     "Sample",

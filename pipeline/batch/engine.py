@@ -32,8 +32,6 @@ STUDY_FILES = ("failures.csv", "cohort_summary.csv", "cohort_segments.parquet", 
 FAILURE_COLUMNS = ("sample_id", "path", "step", "error")
 # Order in which one sample's steps run; a failure is charged to the step after
 # the last one that finished.
-STEPS = ("reading", "cleaning", "centrelines", "graph", "radii", "pruning", "measures", "summary", "levels", "vessels",
-         "orders", "flow", "bifurcations", "writing")
 
 
 @dataclass
@@ -143,7 +141,6 @@ def process_sample(sample, sample_dir, config, *, force=False, threads=None, mem
     out = Path(sample_dir)
     rec = {"sample_id": sample.sample_id, "group": sample.group, "path": str(sample.path), "status": "failed",
            "step": "reading", "error": "", "seconds": 0.0}
-    done_steps = []
     cfg = load_config(config)
     try:
         cfg = _settings(sample, cfg)
@@ -157,27 +154,17 @@ def process_sample(sample, sample_dir, config, *, force=False, threads=None, mem
         # and settings match, else set aside as review-superseded.csv).
         with limit_threads(threads or share_threads):
             analyze_file(sample.path, out, spacing=sample.spacing, config=cfg, overwrite=True,
-                         progress=lambda step, s: done_steps.append(step),
                          memory_limit_bytes=memory_limit_bytes or share_memory,
                          run_info={"batch": {"sample_id": sample.sample_id, "group": sample.group,
                                              "spacing_override_um": list(sample.spacing) if sample.spacing else None,
                                              "run": batch_run}})
         rec.update(status="done", step="", seconds=round(time.perf_counter() - t0, 3))
     except Exception as exc:  # one sample's failure must not stop the study
-        rec["step"] = _failed_step(done_steps, cfg)
+        # analyze_file names the step that failed; what fails before it is the sample's reading
+        rec["step"] = getattr(exc, "step", None) or "reading"
         msg = str(exc) if isinstance(exc, VesselflowError) else f"{type(exc).__name__}: {exc}"
         rec.update(error=" ".join(msg.split()), seconds=round(time.perf_counter() - t0, 3))
     return rec
-
-
-def _failed_step(done_steps, config):
-    """The step a failure is charged to: the one after the last that finished."""
-    if not done_steps:
-        return "reading"
-    order = [st for st in STEPS if (st != "flow" or config["flow"]["enabled"])
-             and (st != "radii" or config["radii"]["estimator"] == "wall_fit")]
-    last = done_steps[-1]
-    return order[min(order.index(last) + 1, len(order) - 1)] if last in order else "writing"
 
 
 # --------------------------------------------------------------------------- #
