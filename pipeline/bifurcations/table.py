@@ -304,46 +304,86 @@ def _code_strings(hits: np.ndarray, codes: Sequence[str]) -> np.ndarray:
     return text[inverse.ravel()]
 
 
-def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radius, cols, nodes, points, offsets,
-                    cfg) -> pd.DataFrame:
-    """One row per junction, in the order of ``node_row`` (see :func:`analyze_bifurcations`)."""
-    n = len(node_row)
-    g, first = arms.group, arms.first
-    length, npts, level, flow, wss = (cols[c] for c in ("length_um", "radius_n_points", "level", "flow_nl_min",
-                                                        "wss_pa"))
-    r = radius[arms.seg]
-    parent, parent_by, pattern, by_width = _choose_parents(arms, r, seg_id[arms.seg], level, flow)
+def _daughters(arms: _Arms, parent: np.ndarray, by_width: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The daughter arms of every junction: the arms but the parent, widest first.
 
-    # Daughters: the other arms, widest first. Dropping each junction's parent
-    # from the width order leaves every junction's daughters contiguous.
-    is_parent = np.zeros(len(g), dtype=bool)
+    Returns
+    -------
+    daughters : ndarray of int, shape (A - J,)
+        Arm indices, by junction, widest first.
+    d_first : ndarray of int, shape (J,)
+        Index of each junction's first daughter in ``daughters``.
+    """
+    # Dropping each junction's parent from the width order leaves every
+    # junction's daughters contiguous.
+    is_parent = np.zeros(len(arms.group), dtype=bool)
     is_parent[parent] = True
     daughters = by_width[~is_parent[by_width]]
-    d_first = first - np.arange(n)
-    n_daughters = np.diff(np.r_[d_first, len(daughters)])
-    multi = n_daughters > 2
-    p = arms.seg[parent]
-    ds = arms.seg[daughters]
-    d1, d2 = ds[d_first], ds[d_first + 1]
+    d_first = arms.first - np.arange(len(arms.first))
+    return daughters, d_first
 
-    # Radius law, with sums over all daughters, and its first-order uncertainty.
-    r0, rd, r1, r2 = radius[p], radius[ds], radius[d1], radius[d2]
-    u0, ud, u1, u2 = u_radius[p], u_radius[ds], u_radius[d1], u_radius[d2]
+
+def _radius_law(r0, u0, rd, ud, d_first, r0_of_daughter):
+    """Murray's radius law with sums over all daughters, and its first-order uncertainty.
+
+    Parameters
+    ----------
+    r0, u0 : ndarray, shape (J,)
+        Parent radius and its standard uncertainty.
+    rd, ud : ndarray, shape (D,)
+        Daughter radii and their uncertainties, by junction.
+    d_first : ndarray of int, shape (J,)
+        Index of each junction's first daughter.
+    r0_of_daughter : ndarray, shape (D,)
+        The parent radius at each daughter.
+
+    Returns
+    -------
+    sum3, ratio, ratio_u, area, expo, expo_u : ndarray, shape (J,)
+        Sum of the daughters' cubed radii, the Murray ratio and its
+        uncertainty, the area ratio, the exponent and its uncertainty.
+    undefined : ndarray of bool, shape (J,)
+        A daughter at least as wide as the parent (no exponent).
+    """
     sum3 = np.add.reduceat(rd**3, d_first)
     ratio = sum3 / r0**3
     ratio_u = _ratio_u(r0, u0, rd, ud, d_first, ratio)
     area = np.add.reduceat(rd**2, d_first) / r0**2
     expo = _exponents(r0, rd, d_first)
     expo_u = _exponent_u(r0, u0, rd, ud, d_first, expo)
-    undefined = np.logical_or.reduceat(rd >= r0[g[daughters]], d_first)
-    # The widest daughter (daughter 1) against the parent, for exponent_undefined.
-    with np.errstate(invalid="ignore", divide="ignore"):
-        wider_sig = (r1 - r0) / np.sqrt(u1**2 + u0**2)
+    undefined = np.logical_or.reduceat(rd >= r0_of_daughter, d_first)
+    return sum3, ratio, ratio_u, area, expo, expo_u, undefined
 
-    # Directions pointing away from the node, for parent, daughter 1 and 2;
-    # the junction zone scales with the widest vessel meeting there.
-    scale = np.maximum.reduceat(r, first)
-    trio = np.column_stack([parent, daughters[d_first], daughters[d_first + 1]])  # arms, (n, 3)
+
+def _branch_angles(arms: _Arms, trio, scale, radii, uncertainties, multi, *, points, offsets, cfg):
+    """Branching angles at every junction against Murray's optimum.
+
+    Parameters
+    ----------
+    arms : _Arms
+    trio : ndarray of int, shape (J, 3)
+        Arms of the parent, daughter 1 and daughter 2.
+    scale : ndarray, shape (J,)
+        Radius of the widest vessel at the junction (the junction zone scales with it).
+    radii, uncertainties : tuple of 3 ndarrays, shape (J,)
+        Radii of parent, daughter 1 and 2, and their uncertainties.
+    multi : ndarray of bool, shape (J,)
+        More than two daughters (no optimum).
+    points, offsets, cfg : keyword-only
+        Centreline points and offsets, the ``bifurcations`` config.
+
+    Returns
+    -------
+    a1, a2, between, oop, o1, o2, dev, dev_u : ndarray, shape (J,)
+        Daughter angles from the parent's continuation, the angle between
+        the daughters, out of plane, the optimal angles, the deviation and
+        its uncertainty, degrees.
+    from_node : ndarray of bool, shape (3 J,)
+        Tangents of ``trio.ravel()`` taken from the node.
+    """
+    r0, r1, r2 = radii
+    u0, u1, u2 = uncertainties
+    # Directions pointing away from the node, for parent, daughter 1 and 2.
     dirs, from_node, bend = _directions(points, offsets, arms.seg[trio.ravel()], arms.start[trio.ravel()],
                                         np.repeat(scale, 3), cfg["tangent_skip_radii"], cfg["tangent_fit_radii"])
     b0, b1, b2 = bend[0::3], bend[1::3], bend[2::3]
@@ -360,10 +400,20 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
     # The optimum is defined for two daughters.
     o1, o2, dev, dev_u = (np.where(multi, np.nan, x) for x in (o1, o2, dev, dev_u))
     dev_u = np.where(np.isfinite(dev), dev_u, np.nan)
+    return a1, a2, between, oop, o1, o2, dev, dev_u, from_node
 
-    # Flow split (diverging and converging only: mass balance gives it a
-    # meaning there) and shear.
-    cube = r1**3 / sum3
+
+def _flow_split(flow, wss, pattern, p, ds, d1, d2, d_first):
+    """Daughter 1's share of the daughters' flow, and the daughters' wall shear stress over the parent's.
+
+    The split is given at diverging and converging junctions only: mass
+    balance gives it a meaning there. All NaN without flow (or shear).
+
+    Returns
+    -------
+    split, w1, w2 : ndarray, shape (J,)
+    """
+    n = len(pattern)
     split = np.full(n, np.nan)
     if flow is not None:
         tot = np.add.reduceat(np.abs(flow[ds]), d_first)
@@ -374,9 +424,24 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
         ok = np.isfinite(wss[p]) & (wss[p] > 0)
         np.divide(wss[d1], wss[p], out=w1, where=ok)
         np.divide(wss[d2], wss[p], out=w2, where=ok)
+    return split, w1, w2
 
-    # Confidence, over the parent and all daughters, parent first.
-    members = np.empty(len(g), dtype=np.int64)  # laid out like the arms: parent in each junction's first slot
+
+def _confidence(arms: _Arms, p, ds, *, npts, length, radius, cfg):
+    """Segments of every junction measured on too few radius points or too short, parent first.
+
+    Returns
+    -------
+    members : ndarray of int, shape (A,)
+        Segment rows laid out like the arms: the parent in each junction's
+        first slot, then its daughters widest first.
+    few, short : ndarray of bool, shape (A,)
+        Per member.
+    low_conf : ndarray of bool, shape (J,)
+        A member of the junction is either.
+    """
+    g, first = arms.group, arms.first
+    members = np.empty(len(g), dtype=np.int64)
     members[first] = p
     rest = np.ones(len(g), dtype=bool)
     rest[first] = False
@@ -386,9 +451,35 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
         few = np.isfinite(npts[members]) & (npts[members] < cfg["min_radius_points"])
     short = np.isfinite(length[members]) & (length[members] < cfg["min_length_radii"] * radius[members])
     low_conf = np.logical_or.reduceat(few | short, first)
+    return members, few, short, low_conf
 
-    # Notes, in this order within a row: few_points, short, self_loop,
-    # tangent_from_node (parent, daughter 1, daughter 2).
+
+def _confidence_notes(arms: _Arms, trio, from_node, members, few, short, loops, seg_id) -> list[str]:
+    """The ``confidence_notes`` of every junction.
+
+    Notes, in this order within a row: few_points, short, self_loop,
+    tangent_from_node (parent, daughter 1, daughter 2), each with its
+    segment id.
+
+    Parameters
+    ----------
+    arms : _Arms
+    trio : ndarray of int, shape (J, 3)
+        Arms of the parent, daughter 1 and daughter 2.
+    from_node : ndarray of bool, shape (3 J,)
+        Tangents of ``trio.ravel()`` taken from the node.
+    members, few, short : ndarray, shape (A,)
+        As :func:`_confidence` returns them.
+    loops : tuple of 2 ndarrays
+        Junction index and segment id of each self-loop at a junction.
+    seg_id : ndarray of int, shape (S,)
+
+    Returns
+    -------
+    list of str, length J
+    """
+    g = arms.group
+    n = len(arms.first)
     loop_group, loop_id = loops
     tangent_seg = arms.seg[trio.ravel()][from_node]
     note_group = np.concatenate([g[few], g[short], loop_group, np.repeat(np.arange(n), 3)[from_node]])
@@ -396,12 +487,23 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
                  + [f"short:{i}" for i in seg_id[members[short]].tolist()]
                  + [f"self_loop:{i}" for i in loop_id.tolist()]
                  + [f"tangent_from_node:{i}" for i in seg_id[tangent_seg].tolist()])
-    notes = _join_groups(note_group, note_text, n)
-    daughter_text = _join_groups(g[daughters], [str(i) for i in seg_id[ds].tolist()], n)
+    return _join_groups(note_group, note_text, n)
 
-    # Flags, in REASON_CODES order: outside the band (a null threshold
-    # switches its rule off; NaN compares False and never trips a bound) and
-    # farther from the law than z standard uncertainties.
+
+def _flags(*, ratio, ratio_u, expo, expo_u, dev, dev_u, undefined, wider_sig, multi, cfg):
+    """Flags in :data:`REASON_CODES` order and their severity (module notes).
+
+    A junction is flagged outside the band (a null threshold switches its
+    rule off; NaN compares False and never trips a bound) and farther from
+    the law than ``significance_z`` standard uncertainties.
+
+    Returns
+    -------
+    hits : ndarray of bool, shape (J, len(REASON_CODES))
+    severity : ndarray, shape (J,)
+        The largest significance of the out-of-band quantities, 0 for none.
+    """
+    n = len(ratio)
     z = cfg["significance_z"]
 
     def above(values, key):
@@ -431,9 +533,20 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
     severity = np.zeros(n)
     for out, sig in ((out_ratio, sig_ratio), (out_expo, sig_expo), (out_undef, wider_sig), (out_angle, sig_angle)):
         severity = np.where(out & ~np.isnan(sig), np.fmax(severity, sig), severity)
+    return hits, severity
 
-    # Uncertain: not judged (module notes). A ratio is unresolved when z
-    # uncertainties reach from the cube law to the band's edge on its side.
+
+def _uncertain_reasons(*, ratio, ratio_u, hits, low_conf, pattern, r0, cfg):
+    """Why each junction is not judged, in :data:`UNCERTAIN_CODES` order (module notes).
+
+    Returns
+    -------
+    ndarray of bool, shape (J, len(UNCERTAIN_CODES))
+    """
+    n = len(ratio)
+    z = cfg["significance_z"]
+    # A ratio is unresolved when z uncertainties reach from the cube law to
+    # the band's edge on its side.
     edge = np.full(n, np.inf)
     if cfg["ratio_max"] is not None:
         edge = np.where(ratio >= 1.0, cfg["ratio_max"] - 1.0, edge)
@@ -445,10 +558,13 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
     # of 2), so junctions whose parent is capillary-sized are not judged.
     cap_min = cfg["murray_min_parent_diameter_um"]
     capillary = (2.0 * r0 < cap_min) if cap_min is not None else np.zeros(n, dtype=bool)
-    why = np.column_stack([low_conf & bool(cfg["low_confidence_uncertain"]), unresolved, pattern == "mixed",
-                           capillary])
-    uncertain = why.any(axis=1)
-    hits &= ~uncertain[:, None]
+    return np.column_stack([low_conf & bool(cfg["low_confidence_uncertain"]), unresolved, pattern == "mixed",
+                            capillary])
+
+
+def _location_columns(nodes: pd.DataFrame, node_row: np.ndarray) -> dict[str, Any]:
+    """The junction nodes' ``z``, ``y``, ``x`` (nullable integers) and ``z_um``, ``y_um``, ``x_um`` columns."""
+    n = len(node_row)
 
     def voxel(c):
         if c not in nodes.columns:
@@ -460,12 +576,59 @@ def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radiu
     def micron(c):
         return _float_column(nodes, c)[node_row] if c in nodes.columns else np.full(n, np.nan)
 
+    return {"z": voxel("z"), "y": voxel("y"), "x": voxel("x"),
+            "z_um": micron("z_um"), "y_um": micron("y_um"), "x_um": micron("x_um")}
+
+
+def _junction_table(node_row, arms, loops, *, ends, ids, seg_id, radius, u_radius, cols, nodes, points, offsets,
+                    cfg) -> pd.DataFrame:
+    """One row per junction, in the order of ``node_row`` (see :func:`analyze_bifurcations`)."""
+    n = len(node_row)
+    g, first = arms.group, arms.first
+    length, npts, level, flow, wss = (cols[c] for c in ("length_um", "radius_n_points", "level", "flow_nl_min",
+                                                        "wss_pa"))
+    r = radius[arms.seg]
+    parent, parent_by, pattern, by_width = _choose_parents(arms, r, seg_id[arms.seg], level, flow)
+
+    # Daughters: the other arms, widest first.
+    daughters, d_first = _daughters(arms, parent, by_width)
+    n_daughters = np.diff(np.r_[d_first, len(daughters)])
+    multi = n_daughters > 2
+    p = arms.seg[parent]
+    ds = arms.seg[daughters]
+    d1, d2 = ds[d_first], ds[d_first + 1]
+
+    r0, rd, r1, r2 = radius[p], radius[ds], radius[d1], radius[d2]
+    u0, ud, u1, u2 = u_radius[p], u_radius[ds], u_radius[d1], u_radius[d2]
+    sum3, ratio, ratio_u, area, expo, expo_u, undefined = _radius_law(r0, u0, rd, ud, d_first, r0[g[daughters]])
+    # The widest daughter (daughter 1) against the parent, for exponent_undefined.
+    with np.errstate(invalid="ignore", divide="ignore"):
+        wider_sig = (r1 - r0) / np.sqrt(u1**2 + u0**2)
+
+    trio = np.column_stack([parent, daughters[d_first], daughters[d_first + 1]])  # arms, (n, 3)
+    a1, a2, between, oop, o1, o2, dev, dev_u, from_node = _branch_angles(
+        arms, trio, np.maximum.reduceat(r, first), (r0, r1, r2), (u0, u1, u2), multi,
+        points=points, offsets=offsets, cfg=cfg)
+    cube = r1**3 / sum3
+    split, w1, w2 = _flow_split(flow, wss, pattern, p, ds, d1, d2, d_first)
+    members, few, short, low_conf = _confidence(arms, p, ds, npts=npts, length=length, radius=radius, cfg=cfg)
+
+    notes = _confidence_notes(arms, trio, from_node, members, few, short, loops, seg_id)
+    daughter_text = _join_groups(g[daughters], [str(i) for i in seg_id[ds].tolist()], n)
+
+    hits, severity = _flags(ratio=ratio, ratio_u=ratio_u, expo=expo, expo_u=expo_u, dev=dev, dev_u=dev_u,
+                            undefined=undefined, wider_sig=wider_sig, multi=multi, cfg=cfg)
+    # Uncertain: not judged (module notes).
+    why = _uncertain_reasons(ratio=ratio, ratio_u=ratio_u, hits=hits, low_conf=low_conf, pattern=pattern, r0=r0,
+                             cfg=cfg)
+    uncertain = why.any(axis=1)
+    hits &= ~uncertain[:, None]
+
     lv = level[p] if level is not None else np.full(n, np.nan)
     known_lv = np.isfinite(lv)
     table = pd.DataFrame({
         "node_id": ids.to_numpy()[node_row],
-        "z": voxel("z"), "y": voxel("y"), "x": voxel("x"),
-        "z_um": micron("z_um"), "y_um": micron("y_um"), "x_um": micron("x_um"),
+        **_location_columns(nodes, node_row),
         "level": pd.arrays.IntegerArray(np.where(known_lv, lv, 0).astype(np.int64), ~known_lv),
         "degree": ends[node_row],
         "flow_pattern": pattern,

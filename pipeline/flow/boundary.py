@@ -124,6 +124,7 @@ the project's synthetic cortex crops (see ``tests/test_boundary.py``).
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings as _warnings
 from collections.abc import Callable
@@ -412,6 +413,381 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
     return s, borrowed
 
 
+class _KKT:
+    """The quadratic problem of :func:`estimate_pressures` on the used nodes, factorised once.
+
+    Unknowns of the KKT system: the scaled pressures ``x / dx`` of the M
+    used nodes (``x = (p - p0) / p0``), then the multipliers of the
+    Kirchhoff rows (interior and known-inflow nodes) and of the
+    known-pressure rows. The matrix does not change between sign
+    iterations or starts; the starts run side by side on its factors.
+
+    Parameters
+    ----------
+    a, b : (S,) int ndarray
+        Used-node rows of the segments.
+    conductance : (S,) float ndarray
+    rows : (M,) int ndarray, keyword-only
+        Node of each used-node row.
+    n_nodes : int, keyword-only
+    piece : (M,) int ndarray, keyword-only
+        Connected piece of each row, ``0 .. n_piece - 1``.
+    n_piece : int, keyword-only
+    open_node, known_pressure_pa, known_inflow_m3_s : (M,) ndarray, keyword-only
+        As in :func:`estimate_pressures`, per used-node row.
+    radius_m, length_m, viscosity_pa_s : (S,) float ndarray, keyword-only
+    target_pressure_pa, target_shear_rate_s, pressure_weight : float, keyword-only
+    pressure_dependent_target : bool, keyword-only
+    max_iter : int, keyword-only
+        As in :func:`estimate_pressures`.
+
+    Raises
+    ------
+    SolverError
+        The factorisation failed.
+    """
+
+    def __init__(self, a, b, conductance, *, rows, n_nodes, piece, n_piece, open_node, known_pressure_pa,
+                 known_inflow_m3_s, radius_m, length_m, viscosity_pa_s, target_pressure_pa, target_shear_rate_s,
+                 pressure_dependent_target, pressure_weight, max_iter):
+        m = rows.size
+        self.a, self.b, self.m, self.rows, self.n = a, b, m, rows, n_nodes
+        self.s_count = len(a)
+        self.conductance, self.length_m = conductance, length_m
+        self.piece, self.n_piece, self.seg_piece = piece, n_piece, piece[a]
+        self.known_pressure_pa, self.known_inflow_m3_s = known_pressure_pa, known_inflow_m3_s
+        self.pressure_dependent_target, self.max_iter = pressure_dependent_target, max_iter
+
+        self.p0 = p0 = float(target_pressure_pa)
+        self.g_ref = float(target_shear_rate_s)
+        self.tau_p0 = float(set_point_wss_pa(p0))
+        # dimensionless x = (p - p0) / p0; shear rate over gamma_ref per unit dx
+        self.c = radius_m / (2.0 * length_m * viscosity_pa_s) * p0 / self.g_ref
+        lbar = float(length_m.mean())
+        self.w_seg = w_seg = length_m / lbar
+        self.w_node = 0.5 * (np.bincount(a, weights=w_seg, minlength=m) + np.bincount(b, weights=w_seg, minlength=m))
+        self.kp = float(pressure_weight)
+
+        self.kp_node = np.isfinite(known_pressure_pa)
+        self.kq_node = np.isfinite(known_inflow_m3_s) & ~self.kp_node
+        kirch = ~open_node & ~self.kp_node
+        self.k_rows = np.flatnonzero(kirch)
+        self.pos = np.full(m, -1, dtype=np.int64)
+        self.pos[self.k_rows] = np.arange(self.k_rows.size)
+        self.d_rows = np.flatnonzero(self.kp_node)
+        self.n_con = self.k_rows.size + self.d_rows.size
+        self.qk = np.flatnonzero(self.kq_node & kirch)
+        self.h_rows = np.r_[np.arange(m), a, b]
+        self.h_cols = np.r_[np.arange(m), b, a]
+        # Symmetric scaling: unit diagonal in the pressure block and unit row
+        # norms (in the scaled variables) in the constraint block, so that the
+        # Schur complement C H^-1 C^T is of order one. Repeated solves with
+        # perturbed coefficients (the ensemble) keep this scaling.
+        self.dx = 1.0 / np.sqrt(self._h_diag(self.c))
+        self.kkt, self.rhs_con = self.assemble(conductance, self.c)
+        self.lu, self.perm = self._factorise()
+        self.settle = int(1e-4 * self.s_count)
+
+    def _h_diag(self, cc_):
+        """Diagonal of the objective's Hessian H for shear coefficients ``cc_`` (S,); (M,)."""
+        a, b, m = self.a, self.b, self.m
+        hc_ = self.w_seg * cc_ * cc_
+        return (self.kp * self.w_node + np.bincount(a, weights=hc_, minlength=m)
+                + np.bincount(b, weights=hc_, minlength=m))
+
+    def assemble(self, cond, cc_):
+        """Scaled KKT matrix and constraint right-hand side.
+
+        Parameters
+        ----------
+        cond : (S,) float ndarray
+            Segment conductances.
+        cc_ : (S,) float ndarray
+            Shear rate over ``gamma_ref`` per unit ``x`` drop along each segment.
+
+        Returns
+        -------
+        mat : (M + C, M + C) sparse CSC matrix
+        rhs : (C,) float ndarray
+            Right-hand side of the C constraint rows.
+        """
+        a, b, m, dx, n_con = self.a, self.b, self.m, self.dx, self.n_con
+        pos, k_rows, d_rows, qk = self.pos, self.k_rows, self.d_rows, self.qk
+        h_rows, h_cols, p0 = self.h_rows, self.h_cols, self.p0
+        size = m + n_con
+        # H = kp diag(w_node) + B^T diag(w_seg c^2) B
+        hc = self.w_seg * cc_ * cc_
+        h_vals = np.r_[self._h_diag(cc_), -hc, -hc] * dx[h_rows] * dx[h_cols]
+        # Kirchhoff rows (interior and known-inflow nodes), scaled by their
+        # diagonal; identity rows for known pressures
+        gdiag = np.bincount(a, weights=cond, minlength=m) + np.bincount(b, weights=cond, minlength=m)
+        scale = np.zeros(m)
+        scale[k_rows] = 1.0 / gdiag[k_rows]
+        cr, cc, cv = [], [], []
+        for end, other in ((a, b), (b, a)):
+            sel = pos[end] >= 0
+            e, o, g = end[sel], other[sel], cond[sel]
+            cr += [pos[e], pos[e]]
+            cc += [e, o]
+            cv += [g * scale[e], -g * scale[e]]
+        cr.append(k_rows.size + np.arange(d_rows.size))
+        cc.append(d_rows)
+        cv.append(np.ones(d_rows.size))
+        cr, cc, cv = np.concatenate(cr), np.concatenate(cc), np.concatenate(cv)
+        rhs = np.zeros(n_con)
+        # known inflow q at node k leaves it into its segments:
+        # sum_j g (p_k - p_other) = q
+        rhs[pos[qk]] = self.known_inflow_m3_s[qk] / p0 * scale[qk]
+        rhs[k_rows.size:] = (self.known_pressure_pa[d_rows] - p0) / p0
+        cv = cv * dx[cc]
+        rnorm = np.sqrt(np.bincount(cr, weights=cv * cv, minlength=n_con))
+        cv = cv / rnorm[cr]
+        mat = sparse.coo_matrix(
+            (np.r_[h_vals, cv, cv], (np.r_[h_rows, m + cr, cc], np.r_[h_cols, cc, m + cr])),
+            shape=(size, size),
+        ).tocsc()
+        return mat, rhs / rnorm
+
+    def _factorise(self):
+        """SuperLU factors of the regularised KKT matrix, and their order (None: SuperLU's own)."""
+        m, n_con = self.m, self.n_con
+        # A small negative diagonal in the constraint block makes the matrix
+        # quasi-definite, which has an LDL^T factorisation for every symmetric
+        # ordering (Vanderbei 1995, SIAM J Optim 5:100): the factorisation can
+        # then pivot on the diagonal in a fill-reducing order, instead of the
+        # row pivoting an indefinite saddle-point matrix needs, which fills in
+        # catastrophically. Iterative refinement against the exact matrix
+        # removes the perturbation.
+        eps = 1e-8
+        reg = self.kkt - sparse.diags(np.r_[np.zeros(m), np.full(n_con, eps)]).tocsc()
+        # Every unknown belongs to a node: its pressure, and the multiplier of
+        # its Kirchhoff or known-pressure row. The KKT graph is the node graph
+        # with these pairs as blocks, so the node graph's order serves.
+        owner = np.r_[np.arange(m), self.k_rows, self.d_rows]
+        perm = _kkt_order(self.a, self.b, m, owner)
+        try:
+            with _warnings.catch_warnings():
+                _warnings.simplefilter("error")
+                if perm is None:
+                    lu = spla.splu(reg.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                                   options={"SymmetricMode": True})
+                else:
+                    lu = spla.splu(reg[perm][:, perm].tocsc(), permc_spec="NATURAL", diag_pivot_thresh=0.0,
+                                   options={"SymmetricMode": True})
+        except (RuntimeError, Warning) as exc:
+            raise SolverError(
+                f"flow: the boundary estimate's system is singular ({exc}); every piece needs an open end "
+                "or a known pressure"
+            ) from None
+        return lu, perm
+
+    def _lu_solve(self, rhs):
+        """Solve with the factors of the regularised matrix; rhs and result (M + C,)."""
+        if self.perm is None:
+            return self.lu.solve(rhs)
+        out = np.empty_like(rhs)
+        out[self.perm] = self.lu.solve(rhs[self.perm])
+        return out
+
+    def solve(self, rhs, refine=True):
+        """Solve the KKT system, refined against the exact matrix unless ``refine`` is False; (M + C,)."""
+        sol = self._lu_solve(rhs)
+        if not refine:
+            # the regularisation's relative error, about eps, does not change
+            # a flow direction that the next iteration would keep
+            return sol
+        norm = float(np.abs(rhs).max()) or 1.0
+        for _ in range(5):
+            res = rhs - self.kkt @ sol
+            if float(np.abs(res).max()) <= 1e-12 * norm:
+                break
+            sol = sol + self._lu_solve(res)
+        return sol
+
+    def _force(self, cc_, t0):
+        """Pressure block of the right-hand side for signed targets ``t0`` (S,); (M,)."""
+        a, b, m = self.a, self.b, self.m
+        return (np.bincount(a, weights=self.w_seg * cc_ * t0, minlength=m)
+                - np.bincount(b, weights=self.w_seg * cc_ * t0, minlength=m)) * self.dx
+
+    def objective_parts(self, x, t0):
+        """Objective of each piece for pressures ``x`` (M,) and signed targets ``t0`` (S,); (n_piece,)."""
+        a, b, n_piece = self.a, self.b, self.n_piece
+        drop = x[a] - x[b]
+        tau = self.c * drop
+        seg_term = self.w_seg * (tau - t0) ** 2
+        node_term = self.kp * self.w_node * x * x
+        return 0.5 * (np.bincount(self.seg_piece, weights=seg_term, minlength=n_piece)
+                      + np.bincount(self.piece, weights=node_term, minlength=n_piece))
+
+    def targets(self, x):
+        """Target magnitudes per segment over ``gamma_ref`` at pressures ``x`` (M,); (S,)."""
+        if not self.pressure_dependent_target:
+            return np.ones(self.s_count)
+        a, b, p0 = self.a, self.b, self.p0
+        pm = p0 * (1.0 + 0.5 * (x[a] + x[b]))
+        return set_point_wss_pa(pm) / self.tau_p0
+
+    def run(self, signs):
+        """Sign iteration from the start ``signs`` (S,).
+
+        Returns
+        -------
+        x : (M,) float ndarray
+            Pressures ``(p - p0) / p0``, refined against the exact matrix.
+        objective : (n_piece,) float ndarray
+            Objective of each piece on the pressure-dependent targets.
+        iterations, flips : int
+            Iterations, and segments whose direction changed in the last.
+        t0 : (S,) float ndarray
+            The signed targets of the kept solution.
+        """
+        a, b, m, s_count, c, dx = self.a, self.b, self.m, self.s_count, self.c, self.dx
+        p0, rhs_con = self.p0, self.rhs_con
+        x = np.zeros(m)
+        mag = self.targets(x)
+        flips = s_count
+        it = 0
+        for it in range(1, self.max_iter + 1):
+            t0 = signs * mag
+            g = self._force(c, t0)
+            sol = self.solve(np.r_[g, rhs_con], refine=False)
+            x = sol[:m] * dx
+            if not np.all(np.isfinite(x)):
+                raise SolverError("flow: the boundary estimate produced non-finite pressures")
+            q = self.conductance * (x[a] - x[b])
+            # directions of segments carrying next to no flow stay as they were
+            qmax = np.abs(q).max() if s_count else 0.0
+            new = np.where(np.abs(q) > 1e-9 * qmax, np.sign(q), signs)
+            new_mag = self.targets(x)
+            flips = int((new != signs).sum())
+            mag_change = float(np.abs(new_mag - mag).max()) if s_count else 0.0
+            signs = new
+            # damped update of the pressure-dependent magnitudes
+            mag = 0.5 * (mag + new_mag)
+            # Settled: at most one segment in 10,000 still changes direction
+            # (such segments carry next to no flow and flip on rounding; on
+            # a 40,000-segment bed the last 1-4 kept the iteration going for
+            # another 20 solves).
+            if flips <= self.settle and mag_change < 1e-3:
+                break
+        # the kept solution, refined against the exact matrix
+        t0 = signs * mag
+        g = self._force(c, t0)
+        x = self.solve(np.r_[g, rhs_con])[:m] * dx
+        # Pieces are compared on the pressure-dependent objective whether or
+        # not the solve used it: it is what tells their orientation apart.
+        t_choice = signs * (set_point_wss_pa(p0 * (1.0 + 0.5 * (x[a] + x[b]))) / self.tau_p0)
+        return x, self.objective_parts(x, t_choice), it, flips, signs * mag
+
+    def keep_best(self, solved, n_starts, free, borrowed):
+        """Per piece with nothing known, the converged solution of smallest objective over the starts.
+
+        Parameters
+        ----------
+        solved : list of tuple
+            :meth:`run`'s results: the first start's, then the other
+            starts' in order, but for the reversed start when the targets
+            are constant (its solution is the mirror image).
+        n_starts : int
+            Number of other starts.
+        free : (n_piece,) bool ndarray
+            Pieces with nothing known.
+        borrowed : (n_piece,) bool ndarray
+            Pieces classed by the volume's trunk classes.
+
+        Returns
+        -------
+        x, objective, iterations, flips, t0
+            As :meth:`run`, combined over the pieces; iterations and flips
+            are the largest over the starts.
+        reversed_pieces : int
+            Pieces that kept the reversed start.
+        """
+        a, b, p0, piece, seg_piece = self.a, self.b, self.p0, self.piece, self.seg_piece
+        results = iter(solved)
+        x, obj, its, flips, t0 = next(results)
+        reversed_pieces = 0
+        for k in range(n_starts):
+            if k == 0 and not self.pressure_dependent_target:
+                # With constant targets a piece with nothing known is
+                # symmetric under reversal: the reversed start converges to
+                # the mirror image, pressures reflected about p0 and every
+                # flow and target reversed. No need to solve it again.
+                x2, t2, it2, fl2 = -x, -t0, 0, flips
+                choice = np.sign(t2) * set_point_wss_pa(p0 * (1.0 + 0.5 * (x2[a] + x2[b]))) / self.tau_p0
+                obj2 = self.objective_parts(x2, choice)
+            else:
+                x2, obj2, it2, fl2, t2 = next(results)
+            # A piece classed by the volume's trunk widths keeps that
+            # orientation: its own objective cannot tell a cut-off tree's
+            # direction (module notes), the widths of the other pieces can.
+            take = free & ~borrowed & (obj2 < obj)
+            if take.any():
+                x = np.where(take[piece], x2, x)
+                obj = np.where(take, obj2, obj)
+                t0 = np.where(take[seg_piece], t2, t0)
+                reversed_pieces += int(take.sum()) if k == 0 else 0
+            its = max(its, it2)
+            flips = max(flips, fl2)
+        return x, obj, its, flips, t0, reversed_pieces
+
+    def estimate(self, x, its, flips, obj, reversed_pieces, t0):
+        """The :class:`Estimate` of the kept solution ``x`` (M,) with signed targets ``t0`` (S,)."""
+        pressure = np.full(self.n, np.nan)
+        pressure[self.rows] = self.p0 * (1.0 + x)
+        notes = [] if flips <= self.settle else [
+            f"flow: the boundary estimate's flow directions did not settle in {self.max_iter} iterations "
+            f"({flips} segment(s) still changing)"
+        ]
+        sol0 = np.r_[x / self.dx, np.zeros(self.n_con)]
+        return Estimate(pressure, int(its), flips <= self.settle, int(flips), float(np.sum(obj)), reversed_pieces,
+                        notes, resolve=functools.partial(self.resolve, sol0, t0))
+
+    def resolve(self, sol0, t0, cond_k, radius_k, viscosity_k, target_scale_k):
+        """Pressures with perturbed coefficients, directions kept (module notes).
+
+        Parameters
+        ----------
+        sol0 : (M + C,) float ndarray
+            The estimate's solution of the KKT system.
+        t0 : (S,) float ndarray
+            The estimate's signed targets.
+        cond_k, radius_k, viscosity_k, target_scale_k : (S,) float ndarray
+            Perturbed conductance, radius (m), viscosity (Pa·s), and the
+            factor on each segment's target.
+
+        Returns
+        -------
+        (N,) float ndarray
+            Pressures, Pa (NaN for nodes outside the solved pieces).
+        """
+        m, dx, p0 = self.m, self.dx, self.p0
+        c_k = radius_k / (2.0 * self.length_m * viscosity_k) * p0 / self.g_ref
+        mat, rhs_c = self.assemble(cond_k, c_k)
+        t = t0 * target_scale_k
+        g = self._force(c_k, t)
+        rhs = np.r_[g, rhs_c]
+        # First-order update from the estimate's factorisation (one
+        # Richardson step on the perturbed matrix, kept when it lowers
+        # the residual): an ensemble member is a linearised
+        # perturbation of the estimate, as in first-order uncertainty
+        # propagation, at the cost of a pair of triangular solves.
+        sol = sol0.copy()
+        res = rhs - mat @ sol
+        rn = float(np.abs(res).max())
+        for _ in range(1):
+            trial = sol + self._lu_solve(res)
+            res_t = rhs - mat @ trial
+            rt = float(np.abs(res_t).max())
+            if rt >= rn:
+                break
+            sol, res, rn = trial, res_t, rt
+        out = np.full(self.n, np.nan)
+        out[self.rows] = p0 * (1.0 + sol[:m] * dx)
+        return out
+
+
 def estimate_pressures(
     u: np.ndarray,
     v: np.ndarray,
@@ -476,8 +852,6 @@ def estimate_pressures(
     """
     n = int(n_nodes)
     s_count = len(u)
-    known_p = np.isfinite(known_pressure_pa)
-    known_q = np.isfinite(known_inflow_m3_s) & ~known_p
     used = np.zeros(n, dtype=bool)
     used[u] = True
     used[v] = True
@@ -486,237 +860,29 @@ def estimate_pressures(
     idx[rows] = np.arange(rows.size)
     m = rows.size
     a, b = idx[u], idx[v]
-    pressure = np.full(n, np.nan)
     if s_count == 0:
-        return Estimate(pressure, 0, True, 0, 0.0, 0)
+        return Estimate(np.full(n, np.nan), 0, True, 0, 0.0, 0)
 
     _, piece = csgraph.connected_components(
         sparse.coo_matrix((np.ones(s_count), (a, b)), shape=(m, m)), directed=False
     )
     n_piece = int(piece.max()) + 1
     seg_piece = piece[a]
-
-    p0 = float(target_pressure_pa)
-    g_ref = float(target_shear_rate_s)
-    tau_p0 = float(set_point_wss_pa(p0))
-    # dimensionless x = (p - p0) / p0; shear rate over gamma_ref per unit dx
-    c = radius_m / (2.0 * length_m * viscosity_pa_s) * p0 / g_ref
-    lbar = float(length_m.mean())
-    w_seg = length_m / lbar
-    w_node = 0.5 * (np.bincount(a, weights=w_seg, minlength=m) + np.bincount(b, weights=w_seg, minlength=m))
-    kp = float(pressure_weight)
-
-    kp_node = known_p[rows]
-    kq_node = known_q[rows]
-    kirch = ~open_node[rows] & ~kp_node
-    k_rows = np.flatnonzero(kirch)
-    pos = np.full(m, -1, dtype=np.int64)
-    pos[k_rows] = np.arange(k_rows.size)
-    d_rows = np.flatnonzero(kp_node)
-    n_con = k_rows.size + d_rows.size
-    qk = np.flatnonzero(kq_node & kirch)
-    size = m + n_con
-    h_rows = np.r_[np.arange(m), a, b]
-    h_cols = np.r_[np.arange(m), b, a]
-
-    def h_diag(cc_):
-        hc_ = w_seg * cc_ * cc_
-        return kp * w_node + np.bincount(a, weights=hc_, minlength=m) + np.bincount(b, weights=hc_, minlength=m)
-
-    # Symmetric scaling: unit diagonal in the pressure block and unit row
-    # norms (in the scaled variables) in the constraint block, so that the
-    # Schur complement C H^-1 C^T is of order one. Repeated solves with
-    # perturbed coefficients (the ensemble) keep this scaling.
-    dx = 1.0 / np.sqrt(h_diag(c))
-
-    def assemble(cond, cc_):
-        """Scaled KKT matrix and constraint right-hand side."""
-        # H = kp diag(w_node) + B^T diag(w_seg c^2) B
-        hc = w_seg * cc_ * cc_
-        h_vals = np.r_[h_diag(cc_), -hc, -hc] * dx[h_rows] * dx[h_cols]
-        # Kirchhoff rows (interior and known-inflow nodes), scaled by their
-        # diagonal; identity rows for known pressures
-        gdiag = np.bincount(a, weights=cond, minlength=m) + np.bincount(b, weights=cond, minlength=m)
-        scale = np.zeros(m)
-        scale[k_rows] = 1.0 / gdiag[k_rows]
-        cr, cc, cv = [], [], []
-        for end, other in ((a, b), (b, a)):
-            sel = pos[end] >= 0
-            e, o, g = end[sel], other[sel], cond[sel]
-            cr += [pos[e], pos[e]]
-            cc += [e, o]
-            cv += [g * scale[e], -g * scale[e]]
-        cr.append(k_rows.size + np.arange(d_rows.size))
-        cc.append(d_rows)
-        cv.append(np.ones(d_rows.size))
-        cr, cc, cv = np.concatenate(cr), np.concatenate(cc), np.concatenate(cv)
-        rhs = np.zeros(n_con)
-        # known inflow q at node k leaves it into its segments:
-        # sum_j g (p_k - p_other) = q
-        rhs[pos[qk]] = known_inflow_m3_s[rows[qk]] / p0 * scale[qk]
-        rhs[k_rows.size:] = (known_pressure_pa[rows[d_rows]] - p0) / p0
-        cv = cv * dx[cc]
-        rnorm = np.sqrt(np.bincount(cr, weights=cv * cv, minlength=n_con))
-        cv = cv / rnorm[cr]
-        mat = sparse.coo_matrix(
-            (np.r_[h_vals, cv, cv], (np.r_[h_rows, m + cr, cc], np.r_[h_cols, cc, m + cr])),
-            shape=(size, size),
-        ).tocsc()
-        return mat, rhs / rnorm
-
-    kkt, rhs_con = assemble(conductance, c)
-    # A small negative diagonal in the constraint block makes the matrix
-    # quasi-definite, which has an LDL^T factorisation for every symmetric
-    # ordering (Vanderbei 1995, SIAM J Optim 5:100): the factorisation can
-    # then pivot on the diagonal in a fill-reducing order, instead of the
-    # row pivoting an indefinite saddle-point matrix needs, which fills in
-    # catastrophically. Iterative refinement against the exact matrix
-    # removes the perturbation.
-    eps = 1e-8
-    reg = kkt - sparse.diags(np.r_[np.zeros(m), np.full(n_con, eps)]).tocsc()
-    # Every unknown belongs to a node: its pressure, and the multiplier of
-    # its Kirchhoff or known-pressure row. The KKT graph is the node graph
-    # with these pairs as blocks, so the node graph's order serves.
-    owner = np.r_[np.arange(m), k_rows, d_rows]
-    perm = _kkt_order(a, b, m, owner)
-    try:
-        with _warnings.catch_warnings():
-            _warnings.simplefilter("error")
-            if perm is None:
-                lu = spla.splu(reg.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                               options={"SymmetricMode": True})
-            else:
-                lu = spla.splu(reg[perm][:, perm].tocsc(), permc_spec="NATURAL", diag_pivot_thresh=0.0,
-                               options={"SymmetricMode": True})
-    except (RuntimeError, Warning) as exc:
-        raise SolverError(
-            f"flow: the boundary estimate's system is singular ({exc}); every piece needs an open end "
-            "or a known pressure"
-        ) from None
-
-    def lu_solve(rhs):
-        if perm is None:
-            return lu.solve(rhs)
-        out = np.empty_like(rhs)
-        out[perm] = lu.solve(rhs[perm])
-        return out
-
-    def kkt_solve(rhs, refine=True):
-        sol = lu_solve(rhs)
-        if not refine:
-            # the regularisation's relative error, about eps, does not change
-            # a flow direction that the next iteration would keep
-            return sol
-        norm = float(np.abs(rhs).max()) or 1.0
-        for _ in range(5):
-            res = rhs - kkt @ sol
-            if float(np.abs(res).max()) <= 1e-12 * norm:
-                break
-            sol = sol + lu_solve(res)
-        return sol
-
+    kkt = _KKT(
+        a, b, conductance, rows=rows, n_nodes=n, piece=piece, n_piece=n_piece, open_node=open_node[rows],
+        known_pressure_pa=known_pressure_pa[rows], known_inflow_m3_s=known_inflow_m3_s[rows],
+        radius_m=radius_m, length_m=length_m, viscosity_pa_s=viscosity_pa_s,
+        target_pressure_pa=target_pressure_pa, target_shear_rate_s=target_shear_rate_s,
+        pressure_dependent_target=pressure_dependent_target, pressure_weight=pressure_weight, max_iter=max_iter,
+    )
     piece_known = np.zeros(n_piece, dtype=bool)
-    piece_known[piece[kp_node | kq_node]] = True
-    radius_ref = radius_m
-
-    def objective_parts(x, t0):
-        dx = x[a] - x[b]
-        tau = c * dx
-        seg_term = w_seg * (tau - t0) ** 2
-        node_term = kp * w_node * x * x
-        return 0.5 * (np.bincount(seg_piece, weights=seg_term, minlength=n_piece)
-                      + np.bincount(piece, weights=node_term, minlength=n_piece))
-
-    def targets(x):
-        if not pressure_dependent_target:
-            return np.ones(s_count)
-        pm = p0 * (1.0 + 0.5 * (x[a] + x[b]))
-        return set_point_wss_pa(pm) / tau_p0
-
-    settle = int(1e-4 * s_count)
-
-    def run(signs):
-        x = np.zeros(m)
-        mag = targets(x)
-        flips = s_count
-        it = 0
-        for it in range(1, max_iter + 1):
-            t0 = signs * mag
-            g = (np.bincount(a, weights=w_seg * c * t0, minlength=m)
-                 - np.bincount(b, weights=w_seg * c * t0, minlength=m)) * dx
-            sol = kkt_solve(np.r_[g, rhs_con], refine=False)
-            x = sol[:m] * dx
-            if not np.all(np.isfinite(x)):
-                raise SolverError("flow: the boundary estimate produced non-finite pressures")
-            q = conductance * (x[a] - x[b])
-            # directions of segments carrying next to no flow stay as they were
-            qmax = np.abs(q).max() if s_count else 0.0
-            new = np.where(np.abs(q) > 1e-9 * qmax, np.sign(q), signs)
-            new_mag = targets(x)
-            flips = int((new != signs).sum())
-            mag_change = float(np.abs(new_mag - mag).max()) if s_count else 0.0
-            signs = new
-            # damped update of the pressure-dependent magnitudes
-            mag = 0.5 * (mag + new_mag)
-            # Settled: at most one segment in 10,000 still changes direction
-            # (such segments carry next to no flow and flip on rounding; on
-            # a 40,000-segment bed the last 1-4 kept the iteration going for
-            # another 20 solves).
-            if flips <= settle and mag_change < 1e-3:
-                break
-        # the kept solution, refined against the exact matrix
-        t0 = signs * mag
-        g = (np.bincount(a, weights=w_seg * c * t0, minlength=m)
-             - np.bincount(b, weights=w_seg * c * t0, minlength=m)) * dx
-        x = kkt_solve(np.r_[g, rhs_con])[:m] * dx
-        # Pieces are compared on the pressure-dependent objective whether or
-        # not the solve used it: it is what tells their orientation apart.
-        t_choice = signs * (set_point_wss_pa(p0 * (1.0 + 0.5 * (x[a] + x[b]))) / tau_p0)
-        return x, objective_parts(x, t_choice), it, flips, signs * mag
-
-    def finish(x, its, flips, obj, reversed_pieces, t0):
-        pressure[rows] = p0 * (1.0 + x)
-        notes = [] if flips <= settle else [
-            f"flow: the boundary estimate's flow directions did not settle in {max_iter} iterations "
-            f"({flips} segment(s) still changing)"
-        ]
-        sol0 = np.r_[x / dx, np.zeros(n_con)]
-
-        def resolve(cond_k, radius_k, viscosity_k, target_scale_k):
-            """Pressures with perturbed coefficients, directions kept (module notes)."""
-            c_k = radius_k / (2.0 * length_m * viscosity_k) * p0 / g_ref
-            mat, rhs_c = assemble(cond_k, c_k)
-            t = t0 * target_scale_k
-            g = (np.bincount(a, weights=w_seg * c_k * t, minlength=m)
-                 - np.bincount(b, weights=w_seg * c_k * t, minlength=m)) * dx
-            rhs = np.r_[g, rhs_c]
-            # First-order update from the estimate's factorisation (one
-            # Richardson step on the perturbed matrix, kept when it lowers
-            # the residual): an ensemble member is a linearised
-            # perturbation of the estimate, as in first-order uncertainty
-            # propagation, at the cost of a pair of triangular solves.
-            sol = sol0.copy()
-            res = rhs - mat @ sol
-            rn = float(np.abs(res).max())
-            for _ in range(1):
-                trial = sol + lu_solve(res)
-                res_t = rhs - mat @ trial
-                rt = float(np.abs(res_t).max())
-                if rt >= rn:
-                    break
-                sol, res, rn = trial, res_t, rt
-            out = np.full(n, np.nan)
-            out[rows] = p0 * (1.0 + sol[:m] * dx)
-            return out
-
-        return Estimate(pressure, int(its), flips <= settle, int(flips), float(np.sum(obj)), reversed_pieces, notes,
-                        resolve=resolve)
+    piece_known[piece[kkt.kp_node | kkt.kq_node]] = True
 
     # Starts: the trunk guess where a piece has two trunk classes, else flow
     # spreading from its widest open end; pieces with nothing known also try
     # the reverses and the other guess, and keep the smallest objective.
-    s_far = _initial_signs(a, b, m, radius_ref, open_node[rows], piece, n_piece, length_m)
-    s_trunk, borrowed = _trunk_signs(a, b, m, radius_ref, conductance, open_node[rows], piece, n_piece)
+    s_far = _initial_signs(a, b, m, radius_m, open_node[rows], piece, n_piece, length_m)
+    s_trunk, borrowed = _trunk_signs(a, b, m, radius_m, conductance, open_node[rows], piece, n_piece)
     has = np.zeros(n_piece, dtype=bool)
     has[seg_piece[s_trunk != 0]] = True
     s_init = np.where(has[seg_piece], s_trunk, s_far)
@@ -728,33 +894,9 @@ def estimate_pressures(
             starts += [s_far, -s_far]
     # The starts are independent solves of one factorisation, whose
     # triangular solves release the GIL: they run side by side, and are
-    # compared below in a fixed order.
+    # compared in a fixed order.
     signs = [s_init] + [np.where(free[seg_piece], st, s_init)
                         for k, st in enumerate(starts) if k > 0 or pressure_dependent_target]
-    solved = thread_map(run, signs)
-    x, obj, its, flips, t0 = solved.pop(0)
-    reversed_pieces = 0
-    if starts:
-        for k, st in enumerate(starts):
-            if k == 0 and not pressure_dependent_target:
-                # With constant targets a piece with nothing known is
-                # symmetric under reversal: the reversed start converges to
-                # the mirror image, pressures reflected about p0 and every
-                # flow and target reversed. No need to solve it again.
-                x2, t2, it2, fl2 = -x, -t0, 0, flips
-                choice = np.sign(t2) * set_point_wss_pa(p0 * (1.0 + 0.5 * (x2[a] + x2[b]))) / tau_p0
-                obj2 = objective_parts(x2, choice)
-            else:
-                x2, obj2, it2, fl2, t2 = solved.pop(0)
-            # A piece classed by the volume's trunk widths keeps that
-            # orientation: its own objective cannot tell a cut-off tree's
-            # direction (module notes), the widths of the other pieces can.
-            take = free & ~borrowed & (obj2 < obj)
-            if take.any():
-                x = np.where(take[piece], x2, x)
-                obj = np.where(take, obj2, obj)
-                t0 = np.where(take[seg_piece], t2, t0)
-                reversed_pieces += int(take.sum()) if k == 0 else 0
-            its = max(its, it2)
-            flips = max(flips, fl2)
-    return finish(x, its, flips, obj, reversed_pieces, t0)
+    solved = thread_map(kkt.run, signs)
+    x, obj, its, flips, t0, reversed_pieces = kkt.keep_best(solved, len(starts), free, borrowed)
+    return kkt.estimate(x, its, flips, obj, reversed_pieces, t0)

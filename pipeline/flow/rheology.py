@@ -252,6 +252,147 @@ class RheologyResult:
     n_parked: int = 0
 
 
+def _check_options(*, damping, rtol, max_iterations, anderson_depth, plasma_viscosity_mpa_s, min_valid_diameter_um):
+    """Raise ConfigError for an option of :func:`iterate_rheology` out of range."""
+    if not 0.0 < damping <= 1.0:
+        raise ConfigError(f"damping: expected a value in (0, 1], got {damping!r}")
+    if not rtol > 0.0:
+        raise ConfigError(f"rtol: expected a value > 0, got {rtol!r}")
+    integral = isinstance(max_iterations, (int, np.integer)) and not isinstance(max_iterations, bool)
+    if not integral or max_iterations < 1:
+        raise ConfigError(f"max_iterations: expected an integer >= 1, got {max_iterations!r}")
+    integral = isinstance(anderson_depth, (int, np.integer)) and not isinstance(anderson_depth, bool)
+    if not integral or anderson_depth < 0:
+        raise ConfigError(f"anderson_depth: expected an integer >= 0, got {anderson_depth!r}")
+    if not plasma_viscosity_mpa_s > 0.0:
+        raise ConfigError(f"plasma_viscosity_mpa_s: expected a value > 0, got {plasma_viscosity_mpa_s!r}")
+    if not min_valid_diameter_um > 1.1:
+        raise ConfigError(f"min_valid_diameter_um: expected a value > 1.1, got {min_valid_diameter_um!r}")
+
+
+def _start(n_seg, inflow_haematocrit, initial_haematocrit, stagnant_flow):
+    """Checked starting state of :func:`iterate_rheology`.
+
+    Returns
+    -------
+    h : (S,) float ndarray
+        Starting haematocrit of every segment.
+    h_scale : float
+        The haematocrit changes are relative to it (the largest inflow
+        haematocrit, 1 when that is 0).
+    stagnant : (S,) float ndarray or None
+        Parking threshold of every segment's flow.
+    """
+    h_in = np.asarray(inflow_haematocrit, dtype=float)
+    h_ref = float(np.max(h_in)) if h_in.size else 0.0
+    if initial_haematocrit is None:
+        h = np.full(n_seg, h_ref)
+    else:
+        h = np.broadcast_to(np.asarray(initial_haematocrit, dtype=float), (n_seg,)).copy()
+        if not np.all((h >= 0) & (h < 1)):
+            raise InputError("initial_haematocrit: expected values in [0, 1), got some outside (or NaN)")
+    h_scale = h_ref if h_ref > 0 else 1.0
+    stagnant = None
+    if stagnant_flow is not None:
+        stagnant = np.broadcast_to(np.asarray(stagnant_flow, dtype=float), (n_seg,))
+        if not np.all(stagnant >= 0):
+            raise InputError("stagnant_flow: expected values >= 0, got some below 0 (or NaN)")
+    return h, h_scale, stagnant
+
+
+def _no_progress(history_q, history_h, start, stall_window):
+    """True when no change of the last ``stall_window`` iterations since ``start`` is below half the best before.
+
+    The change is the larger of the two the tolerance judges: a flow change
+    that has levelled off while the haematocrits still settle is progress.
+    """
+    change = np.maximum(history_q, history_h)[start:]
+    recent = float(change[-stall_window:].min())
+    before = float(change[1:-stall_window].min())
+    return recent > 0.5 * before
+
+
+class _Mixer:
+    """Haematocrit update: Anderson mixing over the last ``depth`` iterates, damped (module notes).
+
+    Parameters
+    ----------
+    depth : int
+        Past iterates combined; 0 is the plain damped iteration.
+    damping : float
+    max_haematocrit : float
+        Mixed iterates are clipped to [0, max_haematocrit].
+    """
+
+    def __init__(self, depth, damping, max_haematocrit):
+        self.depth, self.damping, self.max_haematocrit = depth, damping, max_haematocrit
+        self.hist_h: list[np.ndarray] = []
+        self.hist_f: list[np.ndarray] = []
+        self.best_dh = math.inf
+
+    def reset(self):
+        """Drop the history."""
+        self.hist_h.clear()
+        self.hist_f.clear()
+        self.best_dh = math.inf
+
+    def step(self, h, f, has, dh):
+        """Next haematocrit (S,) from the current ``h`` (S,) and its residual ``f`` (S,).
+
+        ``has`` (S,) marks the flowing segments, ``dh`` is the relative size
+        of the residual.
+        """
+        damping = self.damping
+        hist_h, hist_f = self.hist_h, self.hist_f
+        if self.depth:
+            if dh > 2.0 * self.best_dh:
+                # The residual jumped (a flow reversal or a law bound crossed):
+                # old secants no longer describe the map, start afresh.
+                hist_h.clear()
+                hist_f.clear()
+                self.best_dh = dh
+            self.best_dh = min(self.best_dh, dh)
+            hist_h.append(h.copy())
+            hist_f.append(f)
+            if len(hist_h) > self.depth + 1:
+                hist_h.pop(0)
+                hist_f.pop(0)
+        if len(hist_h) <= 1:
+            return h + damping * f
+        # Anderson mixing (Walker & Ni 2011, SIAM J Numer Anal 49:1715): the
+        # damped step from the combination of recent iterates whose
+        # residuals cancel best in least squares.
+        d_f = np.column_stack([hist_f[i + 1] - hist_f[i] for i in range(len(hist_f) - 1)])
+        d_h = np.column_stack([hist_h[i + 1] - hist_h[i] for i in range(len(hist_h) - 1)])
+        # Normal equations summed with einsum, which runs single-threaded:
+        # a threaded BLAS least-squares sums in an order that depends on
+        # the thread count, and the iteration carries those roundings
+        # into results that then differ between machines and workers.
+        gram = np.einsum("ij,ik->jk", d_f, d_f)
+        gram += 1e-12 * max(float(np.trace(gram)), 1e-300) * np.eye(gram.shape[0])
+        gamma = np.linalg.lstsq(gram, np.einsum("ij,i->j", d_f, f), rcond=None)[0]
+        step = damping * f - np.einsum("ij,j->i", d_h + damping * d_f, gamma)
+        return np.clip(np.where(has, h + step, h), 0.0, self.max_haematocrit)
+
+
+def _message(*, converged, stalled, iterations, stall_window, flow_change, haematocrit_change, rtol, n_unresolved):
+    """Why the iteration did not converge, and flowing segments left without haematocrit; empty when neither."""
+    message = ""
+    if not converged:
+        message = (
+            f"rheology: not converged after {iterations} iteration(s){' (no progress over the last ' + str(stall_window) + ')' if stalled else ''} (flow change {flow_change:.2e}, "
+            f"haematocrit change {haematocrit_change:.2e}, tolerance {rtol:g}); lower damping or raise "
+            f"max_iterations"
+        )
+    if n_unresolved:
+        note = (
+            f"rheology: {n_unresolved} flowing segment(s) lie downstream of a directed flow cycle; "
+            f"haematocrit NaN"
+        )
+        message = f"{message}; {note}" if message else note
+    return message
+
+
 def iterate_rheology(
     solve: Callable[[np.ndarray], np.ndarray],
     u,
@@ -338,38 +479,13 @@ def iterate_rheology(
     SolverError
         ``solve`` returned non-finite flows.
     """
-    if not 0.0 < damping <= 1.0:
-        raise ConfigError(f"damping: expected a value in (0, 1], got {damping!r}")
-    if not rtol > 0.0:
-        raise ConfigError(f"rtol: expected a value > 0, got {rtol!r}")
-    integral = isinstance(max_iterations, (int, np.integer)) and not isinstance(max_iterations, bool)
-    if not integral or max_iterations < 1:
-        raise ConfigError(f"max_iterations: expected an integer >= 1, got {max_iterations!r}")
-    integral = isinstance(anderson_depth, (int, np.integer)) and not isinstance(anderson_depth, bool)
-    if not integral or anderson_depth < 0:
-        raise ConfigError(f"anderson_depth: expected an integer >= 0, got {anderson_depth!r}")
-    if not plasma_viscosity_mpa_s > 0.0:
-        raise ConfigError(f"plasma_viscosity_mpa_s: expected a value > 0, got {plasma_viscosity_mpa_s!r}")
-    if not min_valid_diameter_um > 1.1:
-        raise ConfigError(f"min_valid_diameter_um: expected a value > 1.1, got {min_valid_diameter_um!r}")
+    _check_options(damping=damping, rtol=rtol, max_iterations=max_iterations, anderson_depth=anderson_depth,
+                   plasma_viscosity_mpa_s=plasma_viscosity_mpa_s, min_valid_diameter_um=min_valid_diameter_um)
     d = np.asarray(diameter_um, dtype=float)
     if d.ndim != 1:
         raise InputError(f"diameter_um: expected a 1-D array, got shape {d.shape}")
     n_seg = d.shape[0]
-    h_in = np.asarray(inflow_haematocrit, dtype=float)
-    h_ref = float(np.max(h_in)) if h_in.size else 0.0
-    if initial_haematocrit is None:
-        h = np.full(n_seg, h_ref)
-    else:
-        h = np.broadcast_to(np.asarray(initial_haematocrit, dtype=float), (n_seg,)).copy()
-        if not np.all((h >= 0) & (h < 1)):
-            raise InputError("initial_haematocrit: expected values in [0, 1), got some outside (or NaN)")
-    h_scale = h_ref if h_ref > 0 else 1.0
-    stagnant = None
-    if stagnant_flow is not None:
-        stagnant = np.broadcast_to(np.asarray(stagnant_flow, dtype=float), (n_seg,))
-        if not np.all(stagnant >= 0):
-            raise InputError("stagnant_flow: expected values >= 0, got some below 0 (or NaN)")
+    h, h_scale, stagnant = _start(n_seg, inflow_haematocrit, initial_haematocrit, stagnant_flow)
     reversals = np.zeros(n_seg, dtype=np.int64)
     parked = np.zeros(n_seg, dtype=bool)
     parking = False
@@ -387,9 +503,7 @@ def iterate_rheology(
     q_prev = None
     converged = False
     stalled = False
-    best_dh = math.inf
-    hist_h: list[np.ndarray] = []
-    hist_f: list[np.ndarray] = []
+    mixer = _Mixer(anderson_depth, damping, max_haematocrit)
     for it in range(1, max_iterations + 1):
         mu = vivo_viscosity_mpa_s(
             d, h, plasma_viscosity_mpa_s=plasma_viscosity_mpa_s, min_valid_diameter_um=min_valid_diameter_um,
@@ -422,79 +536,31 @@ def iterate_rheology(
         if dq <= rtol and dh <= rtol:
             converged = True
             break
-        if stall_window and it - start >= 2 * stall_window:
-            # No progress: no change of the last window is below half the
-            # best before it. Where the iteration cycles (a network whose
-            # flow reversals keep switching the node rules), 50 more solves
-            # change nothing; stop early. The
-            # change is the larger of the two the tolerance judges: a flow
-            # change that has levelled off while the haematocrits still
-            # settle is progress.
-            change = np.maximum(history_q, history_h)[start:]
-            recent = float(change[-stall_window:].min())
-            before = float(change[1:-stall_window].min())
-            if recent > 0.5 * before:
-                if parking or stagnant is None or not ((reversals >= 2) & (np.abs(q) < stagnant)).any():
-                    stalled = True
-                    break
-                # The fallback for a cycle around stagnant segments that keep
-                # reversing: park them and go on, with a fresh history.
-                parking = True
-                start = it
-                hist_h.clear()
-                hist_f.clear()
-                best_dh = math.inf
+        # No progress: where the iteration cycles (a network whose flow
+        # reversals keep switching the node rules), 50 more solves change
+        # nothing; stop early.
+        if (stall_window and it - start >= 2 * stall_window
+                and _no_progress(history_q, history_h, start, stall_window)):
+            if parking or stagnant is None or not ((reversals >= 2) & (np.abs(q) < stagnant)).any():
+                stalled = True
+                break
+            # The fallback for a cycle around stagnant segments that keep
+            # reversing: park them and go on, with a fresh history.
+            parking = True
+            start = it
+            mixer.reset()
         # Residual of the fixed-point map on the flowing segments; segments
         # without flow keep their haematocrit for the viscosity.
         f = np.where(has, h_new - h, 0.0)
-        if anderson_depth:
-            if dh > 2.0 * best_dh:
-                # The residual jumped (a flow reversal or a law bound crossed):
-                # old secants no longer describe the map, start afresh.
-                hist_h.clear()
-                hist_f.clear()
-                best_dh = dh
-            best_dh = min(best_dh, dh)
-            hist_h.append(h.copy())
-            hist_f.append(f)
-            if len(hist_h) > anderson_depth + 1:
-                hist_h.pop(0)
-                hist_f.pop(0)
-        if len(hist_h) > 1:
-            # Anderson mixing (Walker & Ni 2011, SIAM J Numer Anal 49:1715): the
-            # damped step from the combination of recent iterates whose
-            # residuals cancel best in least squares.
-            d_f = np.column_stack([hist_f[i + 1] - hist_f[i] for i in range(len(hist_f) - 1)])
-            d_h = np.column_stack([hist_h[i + 1] - hist_h[i] for i in range(len(hist_h) - 1)])
-            # Normal equations summed with einsum, which runs single-threaded:
-            # a threaded BLAS least-squares sums in an order that depends on
-            # the thread count, and the iteration carries those roundings
-            # into results that then differ between machines and workers.
-            gram = np.einsum("ij,ik->jk", d_f, d_f)
-            gram += 1e-12 * max(float(np.trace(gram)), 1e-300) * np.eye(gram.shape[0])
-            gamma = np.linalg.lstsq(gram, np.einsum("ij,i->j", d_f, f), rcond=None)[0]
-            step = damping * f - np.einsum("ij,j->i", d_h + damping * d_f, gamma)
-            h = np.clip(np.where(has, h + step, h), 0.0, max_haematocrit)
-        else:
-            h = h + damping * f
+        h = mixer.step(h, f, has, dh)
         q_prev = q
 
     aq = np.abs(q_cells)
     flowing = aq > zero_flow_rtol * (float(aq.max()) if n_seg else 0.0)
     n_unresolved = int((flowing & ~np.isfinite(h_new)).sum())
-    message = ""
-    if not converged:
-        message = (
-            f"rheology: not converged after {it} iteration(s){' (no progress over the last ' + str(stall_window) + ')' if stalled else ''} (flow change {history_q[-1]:.2e}, "
-            f"haematocrit change {history_h[-1]:.2e}, tolerance {rtol:g}); lower damping or raise "
-            f"max_iterations"
-        )
-    if n_unresolved:
-        note = (
-            f"rheology: {n_unresolved} flowing segment(s) lie downstream of a directed flow cycle; "
-            f"haematocrit NaN"
-        )
-        message = f"{message}; {note}" if message else note
+    message = _message(converged=converged, stalled=stalled, iterations=it, stall_window=stall_window,
+                       flow_change=history_q[-1], haematocrit_change=history_h[-1], rtol=rtol,
+                       n_unresolved=n_unresolved)
     return RheologyResult(
         flow=q, haematocrit=h_new, viscosity_mpa_s=mu, iterations=it, converged=converged,
         message=message, flow_change=history_q, haematocrit_change=history_h,

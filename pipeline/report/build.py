@@ -237,7 +237,18 @@ def _read_table(path, required, what):
     return df
 
 
-def _study_report(out):
+def _read_study(out):
+    """The batch folder's tables and batch record.
+
+    Returns
+    -------
+    cohort : DataFrame
+        One row per sample, at least one.
+    comparison, failures, bookkeeping : DataFrame or None
+        None where the file is missing.
+    batch : dict
+        ``batch.json``; empty when it is missing.
+    """
     cohort = _read_table(out / "cohort_summary.csv", ("sample_id", "group"), "cohort summary")
     if cohort.empty:
         raise InputError(f"report: cohort summary '{out / 'cohort_summary.csv'}' has no samples; "
@@ -252,13 +263,20 @@ def _study_report(out):
         batch = {}
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise InputError(f"report: '{out / 'batch.json'}' is not valid JSON ({exc})") from None
-    notes = []
-    if comparison is None:
-        notes.append("group_comparison.csv is missing: no q-values are shown.")
-    if failures is None:
-        notes.append("failures.csv is missing: failed samples, if any, are not listed.")
+    return cohort, comparison, failures, bookkeeping, batch
 
-    # Sample sections first: reading them finds folders that are missing.
+
+def _study_samples(out, cohort, notes):
+    """Every sample of the cohort, read; what is wrong with one is added to ``notes``.
+
+    Returns
+    -------
+    samples : list of (str, str, SampleData or None)
+        Sample id, group, and the sample (None where its folder is missing
+        or incomplete), in the cohort's order.
+    bad_reviews : dict of str to str
+        The note on each sample whose review is not valid.
+    """
     samples = []
     bad_reviews = {}
     for _, row in cohort.iterrows():
@@ -277,8 +295,11 @@ def _study_report(out):
                 bad_reviews[sid] = f"The review of this sample is not valid: {exc}. Fix or remove review.csv."
                 notes.append(f"sample {sid}: {bad_reviews[sid]}")
         samples.append((sid, str(row["group"]), sd))
+    return samples, bad_reviews
 
-    figs = study_figures(cohort, comparison)
+
+def _thumbnails(samples):
+    """Rendered centreline map of every sample with centrelines, by sample id."""
     thumbs = {}
     for sid, _, sd in samples:
         if sd is not None and sd.centrelines:
@@ -286,20 +307,28 @@ def _study_report(out):
             thumbs[sid] = _render(fig, f"sample_{_anchor(sid)[2:]}_map_level", f"{sid}: centrelines by level",
                                   "Centrelines projected along z, coloured by branching level; circles: flagged "
                                   "bifurcations by node id (drawn without the mask).")
-    rendered = _render_all(figs)
+    return thumbs
+
+
+def _study_header(out, cohort, batch):
+    """Title, provenance, caution and navigation of the study page; list of HTML pieces."""
     groups = sorted(cohort["group"].astype(str).unique())
-    parts = [f"<h1>vesselflow study report: {_esc(out.name)}</h1>",
-             f"<p class=\"muted\">Built {_esc(_generated())} by vesselflow {_esc(__version__)}; batch run "
-             f"{_esc(batch.get('created', '?'))} by vesselflow "
-             f"{_esc(batch.get('version') or batch.get('vesselflow_version') or '?')} on "
-             f"{_esc(batch.get('input', '?'))}. "
-             f"{len(cohort)} samples in {len(groups)} groups: {_esc(', '.join(groups))}.</p>",
-             f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)} Group differences are "
-             "exploratory unless the study was designed and powered for them.</div>",
-             "<nav><a href=\"#samples\">Samples</a><a href=\"#warnings\">Warnings</a><a href=\"#measures\">Measures"
-             "</a><a href=\"#network-exponent\">Network exponent</a><a href=\"#comparison\">Comparison</a>"
-             "<a href=\"#failures\">Failures</a>"
-             "<a href=\"#config\">Configuration</a></nav>"]
+    return [f"<h1>vesselflow study report: {_esc(out.name)}</h1>",
+            f"<p class=\"muted\">Built {_esc(_generated())} by vesselflow {_esc(__version__)}; batch run "
+            f"{_esc(batch.get('created', '?'))} by vesselflow "
+            f"{_esc(batch.get('version') or batch.get('vesselflow_version') or '?')} on "
+            f"{_esc(batch.get('input', '?'))}. "
+            f"{len(cohort)} samples in {len(groups)} groups: {_esc(', '.join(groups))}.</p>",
+            f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)} Group differences are "
+            "exploratory unless the study was designed and powered for them.</div>",
+            "<nav><a href=\"#samples\">Samples</a><a href=\"#warnings\">Warnings</a><a href=\"#measures\">Measures"
+            "</a><a href=\"#network-exponent\">Network exponent</a><a href=\"#comparison\">Comparison</a>"
+            "<a href=\"#failures\">Failures</a>"
+            "<a href=\"#config\">Configuration</a></nav>"]
+
+
+def _samples_html(samples):
+    """The samples-and-inputs section: a row per sample and links to the samples' sections."""
     srows = []
     for sid, grp, sd in samples:
         run = sd.run if sd is not None else {}
@@ -309,19 +338,14 @@ def _study_report(out):
                       "warnings": len(run.get("warnings") or []) if sd is not None else "–",
                       "version": run.get("vesselflow_version", "–")})
     stab = pd.DataFrame(srows)
-    parts.append("<h2 id=\"samples\">Samples and inputs</h2>" + _table(stab)
-                 + "<p>" + " ".join(f"<a href=\"#{_anchor(sid)}\">{_esc(sid)}</a>" for sid, _, _ in samples)
-                 + "</p>")
-    allw = [f"{sid}: {w}" for sid, _, sd in samples if sd is not None for w in (sd.run.get("warnings") or [])]
-    parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analyses</h3>" + _warnings_html(allw)
-                 + "<h3>From the report</h3>" + _warnings_html(notes))
-    parts.append("<h2 id=\"measures\">Measures by group</h2><div class=\"grid\">"
-                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
-                           if r.name != "study_network_exponent") + "</div>")
-    parts.append("<h2 id=\"network-exponent\">Network Murray exponent</h2>"
-                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
-                           if r.name == "study_network_exponent") + _network_exponent_html(cohort))
-    parts.append("<h2 id=\"comparison\">Group comparison</h2>")
+    return ("<h2 id=\"samples\">Samples and inputs</h2>" + _table(stab)
+            + "<p>" + " ".join(f"<a href=\"#{_anchor(sid)}\">{_esc(sid)}</a>" for sid, _, _ in samples)
+            + "</p>")
+
+
+def _comparison_html(comparison, bookkeeping, cohort):
+    """The group-comparison section, low q-values highlighted, and the bookkeeping columns; list of HTML pieces."""
+    parts = ["<h2 id=\"comparison\">Group comparison</h2>"]
     if comparison is not None and not comparison.empty:
         low = [("low-q" if _num(q) < _LOW_Q else "") for q in comparison["q_value"]]
         shown = comparison[[c for c, _ in _COMPARISON_SHOWN if c in comparison.columns]].rename(
@@ -341,32 +365,66 @@ def _study_report(out):
     if bookkeeping is not None and not bookkeeping.empty:
         parts.append("<details><summary>Bookkeeping columns per group (group_bookkeeping.csv: counts, "
                      "residuals, sizes; described, not tested)</summary>" + _table(bookkeeping) + "</details>")
+    return parts
+
+
+def _sample_section_html(out, sid, grp, sd, *, bad_reviews, thumbs):
+    """One sample's section of the study page: inputs, measures, warnings, review and map."""
+    sec = [f"<section id=\"{_esc(_anchor(sid))}\"><h3>{_esc(sid)} <span class=\"muted\">({_esc(grp)})</span>"
+           "</h3>"]
+    if sd is None:
+        sec.append("<p>Result folder missing or incomplete (see the notes).</p></section>")
+        return "".join(sec)
+    run, s = sd.run, sd.summary
+    inp = run.get("input") or {}
+    sec.append(_kv_table([("mask file", inp.get("path", "?")),
+                          ("spacing (dz, dy, dx) µm", ", ".join(_fmt(v, 4) for v in run.get("spacing_um", []))),
+                          ("spacing source", run.get("spacing_source", "?"))]
+                         + [(_label(m), _fmt(s.get(m))) for m in STUDY_MEASURES if m in s]))
+    sec.append("<p><b>Warnings:</b></p>" + _warnings_html(run.get("warnings") or []))
+    if sid in bad_reviews:
+        sec.append(f"<p class=\"note\"><b>Review:</b> {_esc(bad_reviews[sid])}</p>")
+    if sid in thumbs:
+        sec.append(_figure_html(thumbs[sid]))
+    if (out / sid / REPORT_NAME).is_file():
+        sec.append(f"<p class=\"note\">This sample has its own report: {_esc(sid)}/{REPORT_NAME}.</p>")
+    sec.append("</section>")
+    return "".join(sec)
+
+
+def _study_report(out):
+    """The study page of a batch folder and its rendered figures."""
+    cohort, comparison, failures, bookkeeping, batch = _read_study(out)
+    notes = []
+    if comparison is None:
+        notes.append("group_comparison.csv is missing: no q-values are shown.")
+    if failures is None:
+        notes.append("failures.csv is missing: failed samples, if any, are not listed.")
+
+    # Sample sections first: reading them finds folders that are missing.
+    samples, bad_reviews = _study_samples(out, cohort, notes)
+
+    figs = study_figures(cohort, comparison)
+    thumbs = _thumbnails(samples)
+    rendered = _render_all(figs)
+    parts = _study_header(out, cohort, batch)
+    parts.append(_samples_html(samples))
+    allw = [f"{sid}: {w}" for sid, _, sd in samples if sd is not None for w in (sd.run.get("warnings") or [])]
+    parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analyses</h3>" + _warnings_html(allw)
+                 + "<h3>From the report</h3>" + _warnings_html(notes))
+    parts.append("<h2 id=\"measures\">Measures by group</h2><div class=\"grid\">"
+                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
+                           if r.name != "study_network_exponent") + "</div>")
+    parts.append("<h2 id=\"network-exponent\">Network Murray exponent</h2>"
+                 + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
+                           if r.name == "study_network_exponent") + _network_exponent_html(cohort))
+    parts += _comparison_html(comparison, bookkeeping, cohort)
     parts.append("<h2 id=\"failures\">Failed samples</h2>"
                  + (_table(failures) if failures is not None and not failures.empty else "<p>None.</p>"))
     parts.append("<h2 id=\"cohort\">Cohort summary</h2>" + _table(cohort))
     parts.append("<h2 id=\"per-sample\">Per sample</h2>")
     for sid, grp, sd in samples:
-        sec = [f"<section id=\"{_esc(_anchor(sid))}\"><h3>{_esc(sid)} <span class=\"muted\">({_esc(grp)})</span>"
-               "</h3>"]
-        if sd is None:
-            sec.append("<p>Result folder missing or incomplete (see the notes).</p></section>")
-            parts.append("".join(sec))
-            continue
-        run, s = sd.run, sd.summary
-        inp = run.get("input") or {}
-        sec.append(_kv_table([("mask file", inp.get("path", "?")),
-                              ("spacing (dz, dy, dx) µm", ", ".join(_fmt(v, 4) for v in run.get("spacing_um", []))),
-                              ("spacing source", run.get("spacing_source", "?"))]
-                             + [(_label(m), _fmt(s.get(m))) for m in STUDY_MEASURES if m in s]))
-        sec.append("<p><b>Warnings:</b></p>" + _warnings_html(run.get("warnings") or []))
-        if sid in bad_reviews:
-            sec.append(f"<p class=\"note\"><b>Review:</b> {_esc(bad_reviews[sid])}</p>")
-        if sid in thumbs:
-            sec.append(_figure_html(thumbs[sid]))
-        if (out / sid / REPORT_NAME).is_file():
-            sec.append(f"<p class=\"note\">This sample has its own report: {_esc(sid)}/{REPORT_NAME}.</p>")
-        sec.append("</section>")
-        parts.append("".join(sec))
+        parts.append(_sample_section_html(out, sid, grp, sd, bad_reviews=bad_reviews, thumbs=thumbs))
     parts.append("<h2 id=\"config\">Effective configuration</h2>" + _config_html(batch.get("config")))
     parts.append("<h2 id=\"sources\">Sources</h2>" + _sources_html())
     return _page(f"vesselflow study report: {out.name}", "\n".join(parts)), rendered + list(thumbs.values())
