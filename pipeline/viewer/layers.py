@@ -16,6 +16,7 @@ import pandas as pd
 from napari.utils.colormaps import ensure_colormap
 
 from .. import review as rv, tables
+from ..review_session import review_queue
 
 
 CENTRELINE_COLORMAP = "viridis"
@@ -106,17 +107,6 @@ def _centreline_vectors(result: tables.Result):
     return np.stack([np.vstack(starts), np.vstack(steps)], axis=1), np.concatenate(owner)
 
 
-def _flagged(result: tables.Result) -> pd.DataFrame:
-    """The review queue: flagged junctions, most severe first (ties and results without ``severity`` by node)."""
-    b = result.bifurcations
-    if b.shape[1] == 0 or "flagged" not in b.columns:
-        return pd.DataFrame(columns=["node_id", "z_um", "y_um", "x_um", "radius_parent_um"])
-    fl = b[b["flagged"].astype(bool)]
-    if "severity" in fl.columns:
-        fl = fl.sort_values("severity", ascending=False, kind="stable", na_position="last")
-    return fl.reset_index(drop=True)
-
-
 def _flag_colours(node_ids, decisions: dict) -> np.ndarray:
     out = np.array([DECISION_RGBA.get(decisions.get(int(n)), FLAGGED_RGBA) for n in node_ids], dtype=float)
     return out.reshape(-1, 4)
@@ -172,7 +162,7 @@ def result_layers(result: tables.Result, *, mask: np.ndarray | None = None, colo
         features=pd.DataFrame({"node_id": nodes["node_id"].to_numpy(np.int64) if len(nodes) else [],
                                "kind": nodes["kind"].astype(str).to_numpy() if len(nodes) else []}),
         metadata=dict(meta)), "points"))
-    flag = _flagged(result)
+    flag = review_queue(result)
     decisions = {} if review is None else dict(zip(review["node_id"].astype(int), review["decision"]))
     fpos = flag[["z_um", "y_um", "x_um"]].to_numpy(float) if len(flag) else np.zeros((0, 3))
     frad = flag["radius_parent_um"].to_numpy(float) if len(flag) else np.zeros(0)

@@ -16,9 +16,9 @@ from qtpy import QtCore, QtGui, QtWidgets
 
 from .. import review as rv, tables
 from ..errors import InputError
+from ..review_session import ReviewSession
 from .layers import (
-    CENTRELINE_COLORMAP, _META_KEY, _centreline_vectors, _colours, _flag_colours, _flagged, read_mask_for,
-    result_layers,
+    CENTRELINE_COLORMAP, _META_KEY, _centreline_vectors, _colours, _flag_colours, read_mask_for, result_layers,
 )
 
 
@@ -74,13 +74,12 @@ def _num(v) -> float:
     return f
 
 
-def _fmt(v, digits=3) -> str:
-    f = _num(v)
-    return "–" if math.isnan(f) else f"{f:.{digits}g}"
-
-
 class ReviewPanel(QtWidgets.QWidget):
     """Dock widget: the flagged bifurcations of one result folder and their review.
+
+    A view of a :class:`pipeline.review_session.ReviewSession` (the queue,
+    the junction under review, the decisions and their saving), which it
+    draws and forwards its buttons to.
 
     Also the npe2 widget contribution (napari passes ``napari_viewer``); it
     then finds the folder through the layers the vesselflow reader added.
@@ -98,15 +97,12 @@ class ReviewPanel(QtWidgets.QWidget):
         Add the result's layers (False when the reader already did).
     """
 
-    COLUMNS = ("node", "level", "reasons", "ratio", "exponent", "severity", "decision", "note")
+    COLUMNS = ReviewSession.COLUMNS
 
     def __init__(self, napari_viewer, *, outdir=None, mask_path=None, colour_by="radius", add_layers=True):
         super().__init__()
         self.viewer = napari_viewer
-        self.result: tables.Result | None = None
-        self.review = rv.empty_review()
-        self.flagged = pd.DataFrame()
-        self.current_node: int | None = None
+        self.session: ReviewSession | None = None
         self.colour_by = colour_by
         self._base_zoom: float | None = None
         self._syncing = False
@@ -116,6 +112,23 @@ class ReviewPanel(QtWidgets.QWidget):
             add_layers = outdir is None and add_layers
         if outdir is not None:
             self.load(outdir, mask_path=mask_path, colour_by=colour_by, add_layers=add_layers)
+
+    # the session's state, as the panel shows it
+    @property
+    def result(self) -> tables.Result | None:
+        return None if self.session is None else self.session.result
+
+    @property
+    def review(self) -> pd.DataFrame:
+        return rv.empty_review() if self.session is None else self.session.review
+
+    @property
+    def flagged(self) -> pd.DataFrame:
+        return pd.DataFrame() if self.session is None else self.session.queue
+
+    @property
+    def current_node(self) -> int | None:
+        return None if self.session is None else self.session.current
 
     # -- widgets -----------------------------------------------------------
     def _build(self):
@@ -222,14 +235,12 @@ class ReviewPanel(QtWidgets.QWidget):
             If the folder is incomplete, its ``review.csv`` invalid, or the
             mask unreadable.
         """
-        result = tables.load_result(outdir)
-        self.review = rv.load_review(outdir)
-        rv.apply_review(result, self.review)  # checks the review's node ids against this result
-        self.result = result
-        self.colour_by = colour_by or self.colour_by
-        if self.colour_by not in rv.available_measures(result):
-            rv.segment_measure(result, self.colour_by)  # raises with the reason
-        self.flagged = _flagged(result)
+        session = ReviewSession(outdir)  # checks the review's node ids against this result
+        result = session.result
+        colour_by = colour_by or self.colour_by
+        if colour_by not in rv.available_measures(result):
+            rv.segment_measure(result, colour_by)  # raises with the reason
+        self.session, self.colour_by = session, colour_by
         if add_layers:
             mask, why = read_mask_for(result, mask_path)
             if why:
@@ -267,33 +278,14 @@ class ReviewPanel(QtWidgets.QWidget):
         return None
 
     # -- table -------------------------------------------------------------
-    def _decision_of(self, node_id):
-        hit = self.review[self.review["node_id"] == int(node_id)]
-        if len(hit):
-            return str(hit["decision"].iloc[0]), str(hit["note"].iloc[0])
-        return "", ""
-
     def _fill_table(self):
         self._syncing = True
         self.table.setSortingEnabled(False)
-        self.table.setRowCount(len(self.flagged))
-        for r, b in enumerate(self.flagged.itertuples(index=False)):
-            node = int(b.node_id)
-            decision, note = self._decision_of(node)
-            level = _num(getattr(b, "level", math.nan))
-            reasons = getattr(b, "flag_reasons", "")
-            reasons = "" if not isinstance(reasons, str) else reasons.replace(";", ", ")
-            cells = [
-                _SortItem(str(node), float(node)),
-                _SortItem("–" if math.isnan(level) else str(int(level)), level),
-                _SortItem(reasons, reasons),
-                _SortItem(_fmt(b.murray_ratio), _num(b.murray_ratio)),
-                _SortItem(_fmt(b.murray_exponent), _num(b.murray_exponent)),
-                _SortItem(_fmt(getattr(b, "severity", math.nan)), _num(getattr(b, "severity", math.nan))),
-                _SortItem(decision, decision),
-                _SortItem(note, note),
-            ]
-            cells[0].setData(QtCore.Qt.ItemDataRole.UserRole, node)
+        rows = self.session.rows()
+        self.table.setRowCount(len(rows))
+        for r, row in enumerate(rows):
+            cells = [_SortItem(*row[name]) for name in self.COLUMNS]
+            cells[0].setData(QtCore.Qt.ItemDataRole.UserRole, int(row["node"][1]))
             for c, item in enumerate(cells):
                 self.table.setItem(r, c, item)
         self.table.setSortingEnabled(True)
@@ -321,13 +313,10 @@ class ReviewPanel(QtWidgets.QWidget):
             self.goto(node)
 
     def _update_title(self):
-        r = self.result
-        counts = {d: int((self.review["decision"] == d).sum()) for d in rv.DECISIONS}
-        done = sum(int(n) in set(self.review["node_id"].tolist()) for n in self.flagged["node_id"])
-        self.title.setText(f"<b>{Path(r.path).name}</b>: {len(self.flagged)} flagged of "
-                           f"{len(r.bifurcations)} bifurcations; reviewed {done} "
-                           f"({counts['confirmed']} confirmed, {counts['artefact']} artefact, "
-                           f"{counts['unsure']} unsure)")
+        c = self.session.counts()
+        self.title.setText(f"<b>{Path(self.result.path).name}</b>: {c['flagged']} flagged of "
+                           f"{c['bifurcations']} bifurcations; reviewed {c['reviewed']} "
+                           f"({c['confirmed']} confirmed, {c['artefact']} artefact, {c['unsure']} unsure)")
 
     # -- navigation --------------------------------------------------------
     def goto(self, node_id):
@@ -338,13 +327,7 @@ class ReviewPanel(QtWidgets.QWidget):
         InputError
             If ``node_id`` is not a junction of the result.
         """
-        b = self.result.bifurcations
-        hit = b[b["node_id"].astype(np.int64) == int(node_id)] if len(b) else b
-        if not len(hit):
-            raise InputError(f"bifurcation: node_id {node_id} is not a junction of '{self.result.path}' "
-                             "(expected a node_id from bifurcations.csv)")
-        row = hit.iloc[0]
-        self.current_node = int(node_id)
+        row = self.session.go(node_id)
         pos = tuple(float(row[c]) for c in ("z_um", "y_um", "x_um"))
         r0 = _num(row["radius_parent_um"])
         r0 = r0 if math.isfinite(r0) and r0 > 0 else 2.0
@@ -372,51 +355,13 @@ class ReviewPanel(QtWidgets.QWidget):
         else:
             self.table.clearSelection()
         self._syncing = False
-        decision, note = self._decision_of(node_id)
+        decision, note = self.session.decision_of(node_id)
         for d, btn in self.decision_buttons.items():
             btn.setChecked(d == decision)
         self.note.setText(note)
         self._enable(True)
-        self.details.setText(self._details_html(row, decision))
-
-    def _details_html(self, b, decision):
-        lines = [f"<b>junction {int(b['node_id'])}</b> at z {b['z_um']:.1f}, y {b['y_um']:.1f}, "
-                 f"x {b['x_um']:.1f} µm; level {_fmt(b.get('level'))}"]
-        reasons = b.get("flag_reasons")
-        lines.append("flags: " + (reasons.replace(";", ", ") if isinstance(reasons, str) and reasons else "none"))
-        segs = self.result.segments.set_index("segment_id")
-
-        def seg_line(role, sid, radius):
-            extra = ""
-            if sid is not None and sid in segs.index:
-                s = segs.loc[sid]
-                extra = f", length {_fmt(s.get('length_um'))} µm"
-                if "flow_nl_min" in segs.columns:
-                    extra += f", |flow| {_fmt(abs(_num(s.get('flow_nl_min'))))} nL/min"
-                if "wss_pa" in segs.columns:
-                    extra += f", WSS {_fmt(abs(_num(s.get('wss_pa'))))} Pa"
-            name = "" if sid is None else f" (segment {sid})"
-            return f"{role}{name}: r = {_fmt(radius)} µm{extra}"
-
-        daughters = [int(x) for x in str(b.get("daughter_segments", "")).split(";") if x.strip().isdigit()]
-        lines.append(seg_line("parent", int(b["parent_segment"]), b["radius_parent_um"]))
-        lines.append(seg_line("daughter 1", daughters[0] if daughters else None, b["radius_daughter1_um"]))
-        lines.append(seg_line("daughter 2", daughters[1] if len(daughters) > 1 else None, b["radius_daughter2_um"]))
-        if len(daughters) > 2:
-            lines.append(f"further daughters: {', '.join(str(d) for d in daughters[2:])}")
-        lines.append(f"Murray ratio (r1³+r2³)/r0³ = {_fmt(b['murray_ratio'])}; exponent = "
-                     f"{_fmt(b['murray_exponent'])}; asymmetry r2/r1 = {_fmt(b.get('asymmetry'))}")
-        lines.append(f"angles {_fmt(b.get('angle_daughter1_deg'))}° / {_fmt(b.get('angle_daughter2_deg'))}° "
-                     f"(optimum {_fmt(b.get('angle_optimal_daughter1_deg'))}° / "
-                     f"{_fmt(b.get('angle_optimal_daughter2_deg'))}°)")
-        if math.isfinite(_num(b.get("flow_split_daughter1"))):
-            lines.append(f"flow split to daughter 1: {_fmt(b['flow_split_daughter1'])} "
-                         f"(cube law {_fmt(b.get('flow_split_cube_law'))})")
-        notes = b.get("confidence_notes")
-        if isinstance(notes, str) and notes:
-            lines.append(f"notes: {notes.replace(';', ', ')}")
-        lines.append(f"review: {decision or 'not reviewed'}")
-        return "<br>".join(lines)
+        lines = self.session.details(node_id)
+        self.details.setText("<br>".join([f"<b>{lines[0]}</b>"] + lines[1:]))
 
     def _order(self) -> list[int]:
         return [self.table.item(r, 0).data(QtCore.Qt.ItemDataRole.UserRole) for r in range(self.table.rowCount())]
@@ -430,31 +375,25 @@ class ReviewPanel(QtWidgets.QWidget):
         self._step(-1)
 
     def _step(self, k):
-        order = self._order()
-        if not order:
-            return
-        if self.current_node in order:
-            i = (order.index(self.current_node) + k) % len(order)
-        else:
-            i = 0 if k > 0 else len(order) - 1
-        self.goto(order[i])
+        node = self.session.step(k, self._order()) if self.session is not None else None
+        if node is not None:
+            self.goto(node)
 
     # -- decisions ---------------------------------------------------------
     def decide(self, decision, note=None):
         """Record ``decision`` for the current junction and save ``review.csv``."""
         if self.current_node is None:
             return
-        note = self.note.text() if note is None else note
-        self.review = rv.record_decision(self.review, self.current_node, decision=decision, note=note)
-        self._saved()
+        path = self.session.decide(decision, self.note.text() if note is None else note)
+        self._saved(path)
 
     def clear(self):
         """Remove the current junction's decision and save ``review.csv``."""
         if self.current_node is None:
             return
-        self.review = rv.clear_decision(self.review, self.current_node)
+        path = self.session.clear()
         self.note.clear()
-        self._saved()
+        self._saved(path)
 
     def set_note(self, text):
         """Set the current junction's note (saved at once if it has a decision)."""
@@ -464,18 +403,18 @@ class ReviewPanel(QtWidgets.QWidget):
     def _note_done(self):
         if self.current_node is None:
             return
-        decision, note = self._decision_of(self.current_node)
+        decision, _ = self.session.decision_of(self.current_node)
         if not decision:
             if self.note.text():
                 self.status.setText("Choose a decision to save the note.")
             return
-        if note != self.note.text():
-            self.decide(decision, self.note.text())
+        path = self.session.set_note(self.note.text())
+        if path is not None:
+            self._saved(path)
 
-    def _saved(self):
-        path = rv.save_review(self.result.path, self.review)
+    def _saved(self, path):
         node = self.current_node
-        decision, _ = self._decision_of(node)
+        decision, _ = self.session.decision_of(node)
         for d, btn in self.decision_buttons.items():
             btn.setChecked(d == decision)
         self._fill_table()
@@ -483,8 +422,7 @@ class ReviewPanel(QtWidgets.QWidget):
         self._update_title()
         layer = self._layer("flagged bifurcations")
         if layer is not None and len(self.flagged):
-            layer.face_color = _flag_colours(self.flagged["node_id"],
-                                             dict(zip(self.review["node_id"].astype(int), self.review["decision"])))
+            layer.face_color = _flag_colours(self.flagged["node_id"], self.session.decisions())
         self.status.setText(f"Saved {path.name} ({len(self.review)} decisions).")
 
     # -- colour ------------------------------------------------------------
