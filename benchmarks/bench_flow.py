@@ -73,9 +73,9 @@ if route in ("vesselflow", "estimate"):
     # the linear solve alone: constant viscosity, one haematocrit, no ensemble
     plain = {"viscosity_model": "constant", "haematocrit_model": "uniform", "ensemble_size": 0}
     if route == "vesselflow":
-        res = solve_flow(segs, nodes, inlets=data["inlets"], config={"flow": {**plain, "boundary": "pressure"}})
+        res = solve_flow(segs, nodes, inlets=data["inlets"], **{**plain, "boundary": "pressure"})
     else:  # every cut end estimated (Fry et al. 2012), nothing known
-        res = solve_flow(segs, nodes, config={"flow": {**plain, "boundary": "estimate"}})
+        res = solve_flow(segs, nodes, **{**plain, "boundary": "estimate"})
     seconds = time.perf_counter() - t0
     p = res.nodes["pressure_pa"].to_numpy()
     out = {"summary": {k: res.summary[k] for k in ("solver", "solver_iterations", "n_unknowns",

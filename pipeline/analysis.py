@@ -331,7 +331,8 @@ def _flow(segs, nodes, cfg, *, roots, inlet_ids, outlet_ids, summary, warnings):
         # the automatic root is a guess for counting levels, not a
         # measured inlet: only inlets the user named are known
         known = inlet_ids
-    fr = flow_step.solve_flow(segs, nodes, inlets=known, outlets=outlet_ids or None, config=cfg)
+    options = {k: v for k, v in cfg["flow"].items() if k != "enabled"}
+    fr = flow_step.solve_flow(segs, nodes, inlets=known, outlets=outlet_ids or None, **options)
     new = [c for c in fr.segments.columns if c == "segment_id" or c not in segs.columns]
     segs = segs.merge(fr.segments[new], on="segment_id", how="left", validate="one_to_one")
     nodes = nodes.merge(fr.nodes, on="node_id", how="left", validate="one_to_one")

@@ -21,7 +21,7 @@ import yaml
 
 from .errors import ConfigError
 
-__all__ = ["SCHEMA", "default_config", "load_config", "validate_config", "Param"]
+__all__ = ["SCHEMA", "default_config", "load_config", "validate_config", "step_options", "Param"]
 
 
 @dataclass(frozen=True)
@@ -232,6 +232,55 @@ def validate_config(overrides: Mapping[str, Any] | None) -> dict[str, dict[str, 
 # Keys that bound one range: the first may not exceed the second (either may
 # be None, "no bound").
 _ORDERED_PAIRS = (("bifurcations", "ratio_min", "ratio_max"), ("bifurcations", "exponent_min", "exponent_max"))
+
+
+def step_options(section: str, values: Mapping[str, Any], *, config: Mapping[str, Any] | None = None,
+                 caller: str = "") -> dict[str, Any]:
+    """A step's keyword options, validated as that section of the config.
+
+    Step functions take their options as keywords with the defaults of
+    :data:`SCHEMA` in their signatures (a test checks they agree) and call
+    this once at their edge: ``values`` is their ``locals()``, of which the
+    section's keys are taken.
+
+    Parameters
+    ----------
+    section : str
+        A key of :data:`SCHEMA`.
+    values : mapping
+        The step's keyword arguments (other names are ignored).
+    config : mapping, optional, keyword-only
+        The earlier way to give them: a full config or the section. Options
+        given as keywords (not at their defaults) win. Deprecated: a
+        DeprecationWarning names the keywords to use.
+    caller : str, keyword-only
+        The step's name, for the warning.
+
+    Returns
+    -------
+    dict
+        The whole section, validated (cross-key rules included).
+
+    Raises
+    ------
+    ConfigError
+    """
+    schema = SCHEMA[section]
+    given = {k: values[k] for k in schema if k in values and values[k] is not schema[k].default
+             and values[k] != schema[k].default}
+    if config is not None:
+        import warnings
+
+        warnings.warn(f"{caller or 'this step'}(config=...) is deprecated: pass the options of the '{section}' "
+                      f"section as keywords, e.g. {caller or 'step'}(..., **config['{section}'])",
+                      DeprecationWarning, stacklevel=3)
+        old = config.get(section, config) if isinstance(config, Mapping) else config
+        if not isinstance(old, Mapping):
+            raise ConfigError(f"{section} config: expected a mapping, got {type(old).__name__}")
+        if section not in config and set(config) & set(SCHEMA):
+            old = {}  # a full config from before this section existed
+        given = {**{k: v for k, v in old.items()}, **given}
+    return validate_config({section: given})[section]
 
 
 def _check_pairs(cfg: dict[str, dict[str, Any]]) -> None:

@@ -1121,7 +1121,7 @@ def test_ideal_cube_law_tree_flow_split_follows_cube_law():
     from pipeline.flow import solve_flow
 
     segs, nodes, lines = ideal_tree(4)
-    res = solve_flow(segs, nodes, inlets=[0], config={"blind_ends": "outlet", "boundary": "pressure",
+    res = solve_flow(segs, nodes, inlets=[0], **{"blind_ends": "outlet", "boundary": "pressure",
                                                   "viscosity_model": "constant"})
     segs = segs.merge(res.segments[["segment_id", "flow_nl_min", "wss_pa"]], on="segment_id")
     table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
@@ -1299,7 +1299,7 @@ def test_measured_tree_flow_split_near_cube_law(tree):
 
     t = tree("cube")
     segs, nodes = t["segments"], t["res"].nodes
-    res = solve_flow(segs, nodes, inlets=choose_roots(nodes, segs), config={"blind_ends": "outlet", "boundary": "pressure",
+    res = solve_flow(segs, nodes, inlets=choose_roots(nodes, segs), **{"blind_ends": "outlet", "boundary": "pressure",
                                                   "viscosity_model": "constant"})
     segs = segs.drop(columns=[c for c in ("flow_nl_min", "wss_pa") if c in segs.columns])
     segs = segs.merge(res.segments[["segment_id", "flow_nl_min", "wss_pa"]], on="segment_id")

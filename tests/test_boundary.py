@@ -22,7 +22,7 @@ MU = 3.5e-3  # Pa·s
 def cfg(**flow):
     base = {"boundary": "estimate", "viscosity_model": "constant", "viscosity_mpa_s": MU * 1e3}
     base.update(flow)
-    return {"flow": base}
+    return base
 
 
 def tables(u, v, length_um, radius_um, kinds):
@@ -64,7 +64,7 @@ def test_cube_law_tree_with_only_the_root_known_splits_by_the_cube_law(seed):
     # splits as r^3, Q1 / (Q1 + Q2) = r1^3 / (r1^3 + r2^3). The acceptance
     # asks for >= 80 % of bifurcations within 0.1 of that split.
     segs, nodes = cube_law_tree(seed)
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     q = res.segments["flow_nl_min"].to_numpy()
     u, r = segs["node_from"].to_numpy(), segs["radius_um"].to_numpy()
     ok = []
@@ -106,7 +106,7 @@ def test_with_every_end_known_the_estimate_is_the_kirchhoff_solution(seed):
     L, r = rng.uniform(20, 80, len(e)), rng.uniform(2.5, 6, len(e))
     segs, nodes = tables(e[:, 0], e[:, 1], L, r, {int(s): "border" for s in stubs})
     inlets, outlets = stubs[: n // 2], stubs[n // 2:]
-    res = solve_flow(segs, nodes, inlets=inlets, outlets=outlets, config=cfg(
+    res = solve_flow(segs, nodes, inlets=inlets, outlets=outlets, **cfg(
         inlet_pressure_pa=7000.0, outlet_pressure_pa=2500.0))
     g = math.pi * (r * 1e-6) ** 4 / (8 * MU * L * 1e-6)
     fixed = np.zeros(stubs.max() + 1, bool)
@@ -130,7 +130,7 @@ def test_two_trunks_orient_flow_from_the_narrow_one_to_the_wide_one(narrow_first
         L.append(60.0 + 5 * k)
         r.append(2.6)
     segs, nodes = tables(np.array(u), np.array(v), np.array(L), np.array(r), {0: "border", 2: "border"})
-    res = solve_flow(segs, nodes, config=cfg())
+    res = solve_flow(segs, nodes, **cfg())
     roles = res.nodes.set_index("node_id")["role"]
     narrow, wide = (0, 2) if narrow_first else (2, 0)
     assert roles[narrow] == "inlet" and roles[wide] == "outlet"
@@ -164,7 +164,7 @@ def test_estimated_flow_is_conserved_and_physiological_on_a_cut_lattice(seed):
     segs, nodes = lattice_with_stubs(n, seed)
     e = segs[["node_from", "node_to"]].to_numpy()
     stubs = nodes.index[nodes["kind"] == "border"].to_numpy()
-    res = solve_flow(segs, nodes, config=cfg())
+    res = solve_flow(segs, nodes, **cfg())
     q = res.segments["flow_nl_min"].to_numpy()
     net = np.bincount(e[:, 0], q, minlength=stubs.max() + 1) - np.bincount(e[:, 1], q, minlength=stubs.max() + 1)
     interior = np.ones(stubs.max() + 1, bool)
@@ -182,7 +182,7 @@ def test_a_piece_touching_nothing_stays_unperfused_and_says_so():
     u, v = np.array([0, 1, 2, 4, 5]), np.array([1, 2, 3, 5, 6])
     segs, nodes = tables(u, v, np.full(5, 50.0), np.full(5, 3.0),
                          {0: "border", 3: "border", 4: "blind", 6: "blind"})
-    res = solve_flow(segs, nodes, config=cfg(blind_ends="open"))
+    res = solve_flow(segs, nodes, **cfg(blind_ends="open"))
     perf = res.segments.set_index("segment_id")["perfused"]
     assert perf[[0, 1, 2]].all() and not perf[[3, 4]].any()
     assert any("touch neither the volume border" in w for w in res.warnings)
@@ -203,7 +203,7 @@ def test_speed_floor_marks_next_to_stagnant_segments_unperfused():
     L = np.array([50.0, 60.0, 60.0, 60.0, 60.0, 30.0, 50.0])
     r = np.array([5.0, 3.0, 3.0, 3.0, 3.0, 3.0, 5.0])
     segs, nodes = tables(u, v, L, r, {0: "border", 5: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], outlets=[5], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], outlets=[5], **cfg())
     rung = res.segments.iloc[5]
     assert abs(rung["flow_nl_min"]) < 1e-9 * res.summary["total_inflow_nl_min"]
     assert not rung["perfused"] and math.isnan(rung["transit_time_s"])
@@ -232,7 +232,7 @@ def cortex_crop_estimate(seed, width_um):
     lo = (0.0, (400.0 - width_um) / 2, (400.0 - width_um) / 2)
     crop = sy.crop_network(net, box_um=(lo, tuple(x + width_um for x in lo)))
     segs, nodes = sy.network_tables(crop)
-    q = solve_flow(segs, nodes, config={"flow": {}}).segments["flow_nl_min"].to_numpy()
+    q = solve_flow(segs, nodes).segments["flow_nl_min"].to_numpy()
     qt = truth.loc[segs["source_segment"].to_numpy()].to_numpy()
     ok = np.abs(qt) > 1e-9 * np.abs(qt).max()
     right = float(np.mean(np.sign(q[ok]) == np.sign(qt[ok])))
@@ -282,7 +282,7 @@ def test_known_boundary_flows_are_kept_with_the_default_rheology(seed):
             widest[c] = (segs["radius_um"].iloc[j], int(n), float(q))
     known = {n: q for _, n, q in widest.values()}
     assert len(known) == 2
-    res = solve_flow(segs, nodes, boundary_flows=known, config={"flow": {}})
+    res = solve_flow(segs, nodes, boundary_flows=known)
     assert res.summary["rheology_iterations"] > 1
     q = res.segments.set_index("segment_id").loc[segs["segment_id"], "flow_nl_min"].to_numpy()
     for n, q_known in known.items():
@@ -320,9 +320,9 @@ def test_nested_dissection_order_gives_the_minimum_degree_solution(monkeypatch):
     pos[perm] = np.arange(perm.size)
     assert np.all(pos[n_nodes:] == pos[np.arange(0, n_nodes, 2)] + 1)
 
-    dissected = solve_flow(segs, nodes, config=cfg()).segments["flow_nl_min"].to_numpy()
+    dissected = solve_flow(segs, nodes, **cfg()).segments["flow_nl_min"].to_numpy()
     monkeypatch.setattr(boundary, "_DISSECTION_MIN_NODES", 10**9)
-    plain = solve_flow(segs, nodes, config=cfg()).segments["flow_nl_min"].to_numpy()
+    plain = solve_flow(segs, nodes, **cfg()).segments["flow_nl_min"].to_numpy()
     assert np.abs(dissected - plain).max() <= 1e-8 * np.abs(plain).max()
 
 
@@ -341,7 +341,7 @@ def test_cut_off_trees_take_the_volume_s_trunk_classes():
     L = np.array([100.0, 80.0, 80.0, 60.0, 80.0, 80.0, 100.0, 90.0, 70.0, 70.0, 90.0, 60.0, 60.0])
     ends = (0, 5, 6, 8, 9, 10, 12, 13)
     segs, nodes = tables(u, v, L, r, {e: "border" for e in ends})
-    q = solve_flow(segs, nodes, config=cfg()).segments.set_index("segment_id")["flow_nl_min"]
+    q = solve_flow(segs, nodes, **cfg()).segments.set_index("segment_id")["flow_nl_min"]
     assert q[0] > 0 and q[6] > 0  # the main piece: 4 µm trunk in, 6 µm trunk out
     assert q[7] < 0 and q[8] < 0 and q[9] < 0  # the 6 µm tree drains to its root (node 6)
     assert q[10] > 0 and q[11] > 0 and q[12] > 0  # the 4 µm tree feeds from its root (node 10)

@@ -48,7 +48,7 @@ def cfg(**flow):
     base = {"inlet_pressure_pa": P_IN, "outlet_pressure_pa": P_OUT, "solver": "direct", "boundary": "pressure",
             "viscosity_model": "constant", "blind_ends": "sealed"}
     base.update(flow)
-    return {"flow": base}
+    return base
 
 
 def poiseuille_r(length_um, radius_um, mu=MU):
@@ -65,7 +65,7 @@ def test_single_tube_hagen_poiseuille(length_um, radius_um):
     # peak twice the mean. No unknowns are solved for, so only rounding
     # separates the result from the formula; 1e-9 leaves a wide margin.
     segs, nodes = tables([(0, 1, length_um, radius_um)], {0: "border", 1: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     row = res.segments.iloc[0]
     r, L, dp = radius_um * 1e-6, length_um * 1e-6, P_IN - P_OUT
     q = math.pi * r**4 * dp / (8 * MU * L)
@@ -88,7 +88,7 @@ def test_tubes_in_series_add_resistances():
     # solved directly; 1e-9 covers rounding of a 2x2 solve.
     parts = [(80.0, 4.0), (50.0, 3.0), (120.0, 6.0)]
     segs, nodes = tables([(i, i + 1, L, r) for i, (L, r) in enumerate(parts)], {0: "border", 3: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     r_total = sum(poiseuille_r(L, r) for L, r in parts)
     q = (P_IN - P_OUT) / r_total * NL_MIN_PER_M3_S
     np.testing.assert_allclose(res.segments["flow_nl_min"], q, rtol=1e-9)
@@ -104,7 +104,7 @@ def test_tubes_in_parallel_add_conductances():
     parts = [(100.0, 3.0), (100.0, 5.0), (60.0, 4.0)]
     edges = [(0, 1, 10.0, 20.0)] + [(1, 2, L, r) for L, r in parts] + [(2, 3, 10.0, 20.0)]
     segs, nodes = tables(edges, {0: "border", 3: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     r_par = 1.0 / sum(1.0 / poiseuille_r(L, r) for L, r in parts)
     r_total = poiseuille_r(10.0, 20.0) * 2 + r_par
     assert res.summary["network_resistance_pa_s_um3"] == pytest.approx(r_total * 1e-18, rel=1e-9)
@@ -115,7 +115,7 @@ def test_tubes_in_parallel_add_conductances():
 
 def test_flow_sign_follows_segment_direction():
     segs, nodes = tables([(0, 1, 50.0, 4.0), (2, 1, 50.0, 4.0)], {0: "border", 2: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     q = res.segments["flow_nl_min"].to_numpy()
     assert q[0] > 0 and q[1] < 0  # second segment points against the flow
     assert q[0] == pytest.approx(-q[1], rel=1e-12)
@@ -146,7 +146,7 @@ def test_effective_resistance_equals_networkx_resistance_distance(seed, multigra
     edges = random_grid(n, seed, multigraph=multigraph)
     a, b = 0, n * n - 1
     segs, nodes = tables(edges)
-    res = solve_flow(segs, nodes, inlets=[a], outlets=[b], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[a], outlets=[b], **cfg())
     g = nx.MultiGraph()
     for u, v, L, r in edges:
         g.add_edge(u, v, conductance=math.pi * r**4 / (8 * MU * L))
@@ -160,7 +160,7 @@ def test_continuity_at_every_internal_node():
     # of the inflow is the required bound.
     edges = random_grid(9, 3)
     segs, nodes = tables(edges)
-    res = solve_flow(segs, nodes, inlets=[0, 1], outlets=[80, 79, 44], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0, 1], outlets=[80, 79, 44], **cfg())
     q = res.segments["flow_nl_min"].to_numpy()
     net = np.zeros(81)
     np.add.at(net, segs["node_from"].to_numpy(), q)
@@ -212,7 +212,7 @@ def test_parent_flow_equals_sum_of_daughters():
     # Conservation at bifurcations of a tree: Q_parent = Q_d1 + Q_d2, with the
     # tree orientation from the levels step. Tolerance as for continuity.
     segs, nodes = random_tree(6, 4)
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     lv = assign_levels(segs, nodes, [0])
     q = dict(zip(res.segments["segment_id"], res.segments["flow_nl_min"]))
     parent = lv.dropna(subset=["parent_segment_id"])
@@ -243,7 +243,7 @@ def test_cube_law_symmetric_tree_has_uniform_wss():
         frontier = new
     kinds.update({n: "border" for n in frontier})
     segs, nodes = tables(edges, kinds)
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     wss = res.segments["wss_pa"].to_numpy()
     # Exact in theory; the brief asks for 1 %, the direct solve gives rounding only.
     np.testing.assert_allclose(wss, wss[0], rtol=1e-9)
@@ -257,7 +257,7 @@ def test_cube_law_asymmetric_tree_with_length_proportional_to_radius():
     # outlets at the same depth then has the same pressure drop per segment
     # and tau = r dP / (2 L) = dP / (2 k) everywhere (Murray 1926: flow ∝ r^3).
     segs, nodes = random_tree(5, 6, cube_law=True, length_per_radius=10.0)
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     wss = res.segments["wss_pa"].to_numpy()
     np.testing.assert_allclose(wss, wss[0], rtol=1e-9)
     ratio = res.segments["flow_nl_min"].to_numpy() / segs["radius_um"].to_numpy() ** 3
@@ -325,7 +325,7 @@ def test_vivo_over_vitro_about_four_at_10_um():
 
 def test_pries_model_in_solver_and_clamped_diameters():
     segs, nodes = tables([(0, 1, 100.0, 5.0), (1, 2, 100.0, 1.0)], {0: "border", 2: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg(viscosity_model="pries1992", haematocrit=0.45,
+    res = solve_flow(segs, nodes, inlets=[0], **cfg(viscosity_model="pries1992", haematocrit=0.45,
                                                           plasma_viscosity_mpa_s=1.2))
     mu = res.segments["viscosity_mpa_s"].to_numpy()
     assert mu[0] == pytest.approx(1.2 * pries_vitro_as_published(10.0, 0.45), rel=1e-12)
@@ -342,7 +342,7 @@ def test_pries_model_in_solver_and_clamped_diameters():
 def test_disconnected_piece_without_inlet_is_unperfused():
     edges = [(0, 1, 50.0, 4.0), (10, 11, 50.0, 4.0), (11, 12, 50.0, 4.0)]
     segs, nodes = tables(edges, {0: "border", 1: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     s = res.segments.set_index("segment_id")
     assert s.loc[0, "perfused"] and not s.loc[1, "perfused"] and not s.loc[2, "perfused"]
     assert s.loc[1, "flow_nl_min"] == 0.0 and s.loc[2, "flow_nl_min"] == 0.0
@@ -356,7 +356,7 @@ def test_disconnected_piece_without_inlet_is_unperfused():
 def test_piece_with_outlets_only_carries_no_flow():
     edges = [(0, 1, 50.0, 4.0), (10, 11, 50.0, 4.0), (11, 12, 50.0, 4.0)]
     segs, nodes = tables(edges, {0: "border", 1: "border", 10: "border", 12: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     s = res.segments.set_index("segment_id")
     assert (s.loc[[1, 2], "flow_nl_min"] == 0.0).all() and not s.loc[[1, 2], "perfused"].any()
     p = res.nodes.set_index("node_id")["pressure_pa"]
@@ -371,7 +371,7 @@ def y_network():
 
 def test_sealed_blind_ends_carry_no_flow():
     segs, nodes = y_network()
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs, nodes, inlets=[0], **cfg())
     s = res.segments.set_index("segment_id")
     assert (s.loc[[2, 3, 4], "flow_nl_min"] == 0.0).all()
     assert not s.loc[[2, 3, 4], "perfused"].any() and s.loc[[0, 1], "perfused"].all()
@@ -389,7 +389,7 @@ def test_sealed_blind_ends_carry_no_flow():
 
 def test_blind_ends_as_outlets_carry_flow():
     segs, nodes = y_network()
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg(blind_ends="outlet"))
+    res = solve_flow(segs, nodes, inlets=[0], **cfg(blind_ends="outlet"))
     s = res.segments.set_index("segment_id")
     assert (s.loc[[2, 3, 4], "flow_nl_min"] > 0).all() and s["perfused"].all()
     assert res.summary["n_outlets"] == 3
@@ -400,7 +400,7 @@ def test_prescribed_inflow_is_reproduced():
     edges = random_grid(6, 7)
     segs, nodes = tables(edges)
     target = 123.4
-    res = solve_flow(segs, nodes, inlets=[0, 5], outlets=[35, 30], config=cfg(inlet_flow_nl_min=target))
+    res = solve_flow(segs, nodes, inlets=[0, 5], outlets=[35, 30], **cfg(inlet_flow_nl_min=target))
     # Linear scaling of the unit solution: exact up to rounding.
     assert res.summary["total_inflow_nl_min"] == pytest.approx(target, rel=1e-12)
     assert res.summary["boundary"] == "flow"
@@ -409,14 +409,14 @@ def test_prescribed_inflow_is_reproduced():
     assert p[0] == pytest.approx(res.summary["inlet_pressure_pa"], rel=1e-12)
     # The same pressure as an inlet pressure gives the same flow.
     res2 = solve_flow(segs, nodes, inlets=[0, 5], outlets=[35, 30],
-                      config=cfg(inlet_pressure_pa=float(p[0])))
+                      **cfg(inlet_pressure_pa=float(p[0])))
     assert res2.summary["total_inflow_nl_min"] == pytest.approx(target, rel=1e-9)
 
 
 def test_prescribed_inflow_without_outlet_is_an_input_error():
     segs, nodes = tables([(0, 1, 50.0, 4.0)], {0: "border", 1: "blind"})
     with pytest.raises(InputError, match="inlet_flow_nl_min"):
-        solve_flow(segs, nodes, inlets=[0], config=cfg(inlet_flow_nl_min=10.0))
+        solve_flow(segs, nodes, inlets=[0], **cfg(inlet_flow_nl_min=10.0))
 
 
 def test_self_loop_carries_no_flow_and_changes_nothing():
@@ -424,8 +424,8 @@ def test_self_loop_carries_no_flow_and_changes_nothing():
     kinds = {0: "border", 2: "border", 3: "border"}
     segs, nodes = tables(base, kinds)
     segs_l, nodes_l = tables(base + [(1, 1, 40.0, 3.0)], kinds)
-    a = solve_flow(segs, nodes, inlets=[0], config=cfg())
-    b = solve_flow(segs_l, nodes_l, inlets=[0], config=cfg())
+    a = solve_flow(segs, nodes, inlets=[0], **cfg())
+    b = solve_flow(segs_l, nodes_l, inlets=[0], **cfg())
     assert b.segments["flow_nl_min"].iloc[3] == 0.0 and not b.segments["perfused"].iloc[3]
     np.testing.assert_allclose(b.segments["flow_nl_min"].iloc[:3], a.segments["flow_nl_min"], rtol=1e-12)
 
@@ -433,7 +433,7 @@ def test_self_loop_carries_no_flow_and_changes_nothing():
 def test_levels_pass_through():
     segs, nodes = random_tree(2, 0)
     lv = assign_levels(segs, nodes, [0])
-    res = solve_flow(segs.merge(lv, on="segment_id"), nodes, inlets=[0], config=cfg())
+    res = solve_flow(segs.merge(lv, on="segment_id"), nodes, inlets=[0], **cfg())
     assert res.segments["level"].tolist() == lv["level"].tolist()
     assert res.segments.columns[:4].tolist() == ["segment_id", "level", "strahler", "strahler_diameter"]
 
@@ -454,9 +454,9 @@ def test_cg_matches_direct_on_mid_size_graph():
     # 1e5, so 1e-6 of the pressure drop is a safe bound.
     (segs, nodes), n = lattice_3d(12, 8)
     outlets = list(range(n * n * n - n * n, n * n * n))
-    direct = solve_flow(segs, nodes, inlets=list(range(n * n)), outlets=outlets, config=cfg(solver="direct"))
+    direct = solve_flow(segs, nodes, inlets=list(range(n * n)), outlets=outlets, **cfg(solver="direct"))
     cg = solve_flow(segs, nodes, inlets=list(range(n * n)), outlets=outlets,
-                    config=cfg(solver="cg", cg_rtol=1e-12))
+                    **cfg(solver="cg", cg_rtol=1e-12))
     assert cg.summary["solver"] == "cg" and cg.summary["solver_iterations"] > 0
     diff = np.abs(cg.nodes["pressure_pa"] - direct.nodes["pressure_pa"]).max()
     assert diff <= 1e-6 * (P_IN - P_OUT)
@@ -467,15 +467,15 @@ def test_cg_matches_direct_on_mid_size_graph():
 def test_auto_solver_switches_on_size():
     (segs, nodes), n = lattice_3d(5, 9)
     kw = dict(inlets=list(range(n * n)), outlets=list(range(n**3 - n * n, n**3)))
-    assert solve_flow(segs, nodes, config=cfg(solver="auto"), **kw).summary["solver"] == "direct"
-    res = solve_flow(segs, nodes, config=cfg(solver="auto", cg_threshold_nodes=10), **kw)
+    assert solve_flow(segs, nodes, **cfg(solver="auto"), **kw).summary["solver"] == "direct"
+    res = solve_flow(segs, nodes, **cfg(solver="auto", cg_threshold_nodes=10), **kw)
     assert res.summary["solver"] == "cg"
 
 
 def test_cg_that_does_not_converge_raises():
     (segs, nodes), n = lattice_3d(6, 10)
     with pytest.raises(SolverError, match="did not converge"):
-        solve_flow(segs, nodes, inlets=[0], outlets=[n**3 - 1], config=cfg(solver="cg", cg_max_iter=2))
+        solve_flow(segs, nodes, inlets=[0], outlets=[n**3 - 1], **cfg(solver="cg", cg_max_iter=2))
 
 
 def test_component_without_pressure_condition_is_not_assembled():
@@ -484,7 +484,7 @@ def test_component_without_pressure_condition_is_not_assembled():
     edges = [(0, 1, 50.0, 4.0), (10, 11, 50.0, 4.0), (11, 12, 50.0, 4.0), (12, 10, 50.0, 4.0)]
     segs, nodes = tables(edges, {0: "border", 1: "border"})
     for solver in ("direct", "cg"):
-        res = solve_flow(segs, nodes, inlets=[0], config=cfg(solver=solver))
+        res = solve_flow(segs, nodes, inlets=[0], **cfg(solver=solver))
         assert res.segments["perfused"].tolist() == [True, False, False, False]
 
 
@@ -506,15 +506,37 @@ def test_bad_inputs_raise_input_error(change, kwargs, error, fragment):
     if change:
         segs.loc[0, change[0]] = change[1]
     with pytest.raises(error, match=fragment):
-        solve_flow(segs, nodes, config=cfg(), **kwargs)
+        solve_flow(segs, nodes, **cfg(), **kwargs)
 
 
-@pytest.mark.parametrize("flow", [{"nosuch": 1}, {"viscosity_model": "casson"}, {"haematocrit": 1.5},
+@pytest.mark.parametrize("flow", [{"viscosity_model": "casson"}, {"haematocrit": 1.5},
                                   {"blind_ends": "leaky"}, {"boundary": "guess"}, {"min_valid_diameter_um": 1.0}])
 def test_bad_config_raises_config_error(flow):
     segs, nodes = tables([(0, 1, 50.0, 4.0)], {0: "border", 1: "border"})
     with pytest.raises(ConfigError):
-        solve_flow(segs, nodes, inlets=[0], config={"flow": flow})
+        solve_flow(segs, nodes, inlets=[0], **flow)
+
+
+def test_options_are_keywords_with_the_config_defaults():
+    # One way to give options: keywords with the defaults of the config's
+    # flow section in the signature (analyze passes **config["flow"]); an
+    # unknown one is Python's TypeError, the earlier config= still works but
+    # says it is deprecated.
+    import inspect
+
+    from pipeline.config import SCHEMA
+
+    params = inspect.signature(solve_flow).parameters
+    for key, p in SCHEMA["flow"].items():
+        if key != "enabled":
+            assert params[key].default == p.default and params[key].kind is inspect.Parameter.KEYWORD_ONLY
+    segs, nodes = tables([(0, 1, 50.0, 4.0)], {0: "border", 1: "border"})
+    with pytest.raises(TypeError):
+        solve_flow(segs, nodes, inlets=[0], nosuch=1)
+    with pytest.warns(DeprecationWarning, match="keywords"):
+        old = solve_flow(segs, nodes, inlets=[0], config={"flow": cfg()})
+    new = solve_flow(segs, nodes, inlets=[0], **cfg())
+    pd.testing.assert_frame_equal(old.segments, new.segments)
 
 
 def test_cg_kernel_agrees_with_scipy_cg():
@@ -544,7 +566,7 @@ def test_cg_kernel_agrees_with_scipy_cg():
 def test_auto_solver_keeps_direct_for_trees():
     # Sparse LU of a tree has no fill: auto stays direct above the size threshold.
     segs, nodes = random_tree(6, 12)
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg(solver="auto", cg_threshold_nodes=10))
+    res = solve_flow(segs, nodes, inlets=[0], **cfg(solver="auto", cg_threshold_nodes=10))
     assert res.summary["solver"] == "direct"
 
 
@@ -561,7 +583,7 @@ def test_ensemble_interval_of_a_tube_matches_the_lognormal_law(sd_rel):
     segs, nodes = tables([(0, 1, 100.0, 4.0)], {0: "border", 1: "border"})
     segs["radius_sd_um"] = 4.0 * sd_rel
     segs["radius_n_points"] = 1
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg(ensemble_size=2000, radius_uncertainty_floor=0.0))
+    res = solve_flow(segs, nodes, inlets=[0], **cfg(ensemble_size=2000, radius_uncertainty_floor=0.0))
     row = res.segments.iloc[0]
     z = stats.norm.ppf(0.95)
     assert row["flow_p05_nl_min"] / row["flow_nl_min"] == pytest.approx(math.exp(-z * 4 * sd_rel), rel=0.05)
@@ -571,7 +593,7 @@ def test_ensemble_interval_of_a_tube_matches_the_lognormal_law(sd_rel):
 
 def test_ensemble_off_gives_no_interval():
     segs, nodes = tables([(0, 1, 100.0, 4.0)], {0: "border", 1: "border"})
-    res = solve_flow(segs, nodes, inlets=[0], config=cfg(ensemble_size=0))
+    res = solve_flow(segs, nodes, inlets=[0], **cfg(ensemble_size=0))
     assert res.segments[["flow_p05_nl_min", "flow_p95_nl_min", "direction_confidence"]].isna().all().all()
 
 

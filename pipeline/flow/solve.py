@@ -18,6 +18,7 @@ from scipy import sparse
 from scipy.sparse import csgraph
 
 from .._parallel import thread_map
+from ..config import step_options
 from ..errors import InputError
 from .boundary import estimate_pressures
 from .linear import _assemble, _nearly_tree, _solve_linear, _wsum
@@ -96,13 +97,6 @@ class FlowResult:
 # ---------------------------------------------------------------------------
 # input
 # ---------------------------------------------------------------------------
-
-def _flow_config(config: Mapping[str, Any] | None) -> dict[str, Any]:
-    from ..config import validate_config
-
-    section = {} if config is None else config.get("flow", config)
-    return validate_config({"flow": dict(section)})["flow"]
-
 
 def _finite_or_none(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
@@ -352,6 +346,37 @@ def solve_flow(
     inlets: Iterable[int] = (),
     outlets: Iterable[int] | None = None,
     boundary_flows: Mapping[int, float] | None = None,
+    boundary: str = "estimate",
+    viscosity_model: str = "pries1994",
+    viscosity_mpa_s: float = 3.5,
+    haematocrit: float = 0.45,
+    haematocrit_model: str = "phase_separation",
+    plasma_viscosity_mpa_s: float = 1.2,
+    inlet_pressure_pa: float = 7999.32,
+    outlet_pressure_pa: float = 2666.44,
+    inlet_flow_nl_min: float | None = None,
+    blind_ends: str = "open",
+    target_pressure_pa: float = 3999.66,
+    target_shear_rate_s: float = 500.0,
+    target_shear_rate_by_pressure: bool = False,
+    pressure_weight: float = 0.1,
+    estimate_max_iter: int = 100,
+    perfused_min_velocity_mm_s: float = 0.01,
+    ensemble_size: int = 16,
+    ensemble_seed: int = 0,
+    radius_uncertainty_floor: float = 0.05,
+    target_spread: float = 0.3,
+    capillary_max_diameter_um: float = 8.0,
+    small_vessel_max_diameter_um: float = 30.0,
+    rheology_damping: float = 0.5,
+    rheology_rtol: float = 1e-4,
+    rheology_max_iter: int = 50,
+    blood_density_kg_m3: float = 1055.0,
+    solver: str = "auto",
+    cg_threshold_nodes: int = 50000,
+    cg_rtol: float = 1e-10,
+    cg_max_iter: int = 20000,
+    min_valid_diameter_um: float = 3.3,
     config: Mapping[str, Any] | None = None,
 ) -> FlowResult:
     """Steady Hagen–Poiseuille flow in a vessel network.
@@ -370,9 +395,14 @@ def solve_flow(
     outlets : iterable of int or None, keyword-only
         Outlet node ids; None takes the border ends (and the blind ends with
         ``blind_ends: outlet``) that are not inlets.
+    boundary, viscosity_model, ..., min_valid_diameter_um : keyword-only
+        The options of the ``flow`` section of the config, with its defaults
+        and meanings (``configs/default.yaml`` explains each);
+        ``pipeline.analyze`` passes the validated section as
+        ``**config['flow']`` without ``enabled``.
     config : mapping or None, keyword-only
-        Full config or its ``flow`` section; missing keys take defaults. The
-        ``enabled`` key is for the caller; this function always solves.
+        Deprecated (a DeprecationWarning): a full config or its ``flow``
+        section, as earlier versions took the options.
 
     Returns
     -------
@@ -389,7 +419,7 @@ def solve_flow(
     SolverError
         The linear solve failed or did not converge.
     """
-    cfg = _flow_config(config)
+    cfg = step_options("flow", locals(), config=config, caller="solve_flow")
     warn: list[str] = []
     net = _network(segments, nodes, inlets, outlets, boundary_flows, cfg, warn)
     solver = _Solver(net, cfg)

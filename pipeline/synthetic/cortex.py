@@ -9,7 +9,7 @@ arteriolar roots at one pressure and venular roots at another.
 from __future__ import annotations
 
 import math
-from typing import Any, Mapping, NamedTuple, Sequence
+from typing import Any, NamedTuple, Sequence
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -716,7 +716,7 @@ def network_flow_truth(
     *,
     arteriole_pressure_pa: float = 55.0 * MMHG_PA,
     venule_pressure_pa: float = 18.0 * MMHG_PA,
-    config: Mapping[str, Any] | None = None,
+    **flow_options: Any,
 ):
     """Steady flow of a whole network with its vessel classes as boundary conditions.
 
@@ -733,13 +733,12 @@ def network_flow_truth(
         Segments with ``vessel_class`` (see :data:`VESSEL_CLASSES`).
     arteriole_pressure_pa, venule_pressure_pa : float
         Boundary pressures, Pa; the arteriolar one must be the higher.
-    config : mapping, optional
-        Full config or its ``flow`` section for :func:`pipeline.flow.solve_flow`
-        (viscosity law, haematocrit and its model, solver); missing keys take
-        the project's defaults (the in-vivo viscosity law, with phase
-        separation). ``boundary`` ('pressure'), the two pressures,
-        ``blind_ends`` ('sealed') and ``inlet_flow_nl_min`` (None) are set
-        here.
+    **flow_options
+        Options of :func:`pipeline.flow.solve_flow` (viscosity law,
+        haematocrit and its model, solver); missing ones take the project's
+        defaults (the in-vivo viscosity law, with phase separation).
+        ``boundary`` ('pressure'), the two pressures, ``blind_ends``
+        ('sealed') and ``inlet_flow_nl_min`` (None) are set here.
 
     Returns
     -------
@@ -777,12 +776,7 @@ def network_flow_truth(
             ends[s["vessel_class"]] |= {s["node_from"], s["node_to"]} & border
     if not ends["arteriole"] or not ends["venule"]:
         raise _bad("net", "border ends of both arterioles and venules", {k: len(v) for k, v in ends.items()})
-    section = dict({} if config is None else config.get("flow", config))
-    section.update(
-        boundary="pressure", inlet_pressure_pa=p_art, outlet_pressure_pa=p_ven, blind_ends="sealed",
-        inlet_flow_nl_min=None,
-    )
-    return solve_flow(
-        segments, nodes, inlets=sorted(ends["arteriole"]), outlets=sorted(ends["venule"]), config=section
-    )
+    options = {**flow_options, "boundary": "pressure", "inlet_pressure_pa": p_art, "outlet_pressure_pa": p_ven,
+               "blind_ends": "sealed", "inlet_flow_nl_min": None}
+    return solve_flow(segments, nodes, inlets=sorted(ends["arteriole"]), outlets=sorted(ends["venule"]), **options)
 
