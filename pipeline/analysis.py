@@ -249,8 +249,12 @@ def _prune(g, p, *, grid_spacing, spacing, planar, shape):
 
 def _graph_tables(g, cfg, *, grid_spacing, spacing):
     """Segments and nodes tables of the pruned graph, nodes numbered 0..N-1; path keys and smoothed centrelines."""
-    segs, keys, smoothed = measures.segment_table(g, grid_spacing=grid_spacing, radii_config=cfg["radii"],
-                                                  measures_config=cfg["measures"])
+    r, m = cfg["radii"], cfg["measures"]
+    segs, keys, smoothed = measures.segment_table(g, grid_spacing=grid_spacing,
+                                                  smoothing_sigma_um=m["smoothing_sigma_um"],
+                                                  tortuosity_step_um=m["tortuosity_step_um"],
+                                                  statistic=r["statistic"],
+                                                  junction_exclusion_radii=r["junction_exclusion_radii"])
     alive = np.flatnonzero(g.node_alive)
     renumber = np.full(len(g.node_pos_um), -1, dtype=np.int64)
     renumber[alive] = np.arange(len(alive))
@@ -287,7 +291,8 @@ def _network_steps(segs, nodes, smoothed, cfg, *, inlets, outlets, spacing, plan
     if len(segs):
         inlet_ids = _resolve_nodes(inlets, nodes, segs, "inlet")
         outlet_ids = _resolve_nodes(outlets, nodes, segs, "outlet")
-        lv, roots = levels_step.compute_levels(segs, nodes, config=cfg, inlets=inlet_ids, notes=out["notes"])
+        lv, roots = levels_step.compute_levels(segs, nodes, inlets=inlet_ids, notes=out["notes"],
+                                                **cfg["levels"])
         segs = segs.merge(lv, on="segment_id", how="left", validate="one_to_one")
         level_table = levels_step.level_table(segs)
         summary["roots"] = [int(r) for r in roots]
@@ -311,8 +316,9 @@ def _network_steps(segs, nodes, smoothed, cfg, *, inlets, outlets, spacing, plan
             clock.skip("flow")
         # The wall fit's slab and quantisation follow the coarsest spacing of
         # the mask (planar: in-plane) the radii were fitted on.
-        bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed, config=cfg,
-                                                               voxel_um=float(max(spacing[1:] if planar else spacing)))
+        bif_table, bif_summary = bif_step.analyze_bifurcations(segs, nodes, smoothed,
+                                                               voxel_um=float(max(spacing[1:] if planar else spacing)),
+                                                               **cfg["bifurcations"])
         summary.update(bif_summary)
         if len(bif_table) and len(level_table):
             per_level = bif_step.levels_murray(bif_table)

@@ -59,6 +59,7 @@ from __future__ import annotations
 import math
 import numbers
 from collections.abc import Iterable, Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -426,22 +427,30 @@ def compute_levels(
     segments: pd.DataFrame,
     nodes: pd.DataFrame,
     *,
-    config: dict | None = None,
     inlets: Iterable[int] = (),
     notes: list[str] | None = None,
+    root: Any = "auto",
+    diameter_order_max_iter: int = 50,
+    config: dict | None = None,
 ) -> tuple[pd.DataFrame, list[int]]:
-    """Choose roots from the config and assign levels and orders.
+    """Choose roots and assign levels and orders.
 
     Parameters
     ----------
     segments, nodes : DataFrame
         As for :func:`assign_levels`.
-    config : dict, optional, keyword-only
-        Full validated config or its ``levels`` section; defaults if None.
     inlets : iterable of int, keyword-only
         Explicit inlet node ids (see :func:`choose_roots`).
     notes : list of str, optional, keyword-only
         Receives the root choice and other remarks.
+    root, diameter_order_max_iter : keyword-only
+        The options of the ``levels`` section of the config (the root as
+        :func:`choose_roots` takes it; the iteration limit of the
+        diameter-defined orders); ``pipeline.analyze`` passes
+        ``**config['levels']``.
+    config : dict, optional, keyword-only
+        Deprecated (a DeprecationWarning): a full config or its ``levels``
+        section.
 
     Returns
     -------
@@ -450,10 +459,9 @@ def compute_levels(
     roots : list of int
         Root node ids used.
     """
-    from .config import validate_config
+    from .config import step_options
 
-    section = {} if config is None else config.get("levels", config)
-    cfg = validate_config({"levels": dict(section)})["levels"]
+    cfg = step_options("levels", locals(), config=config, caller="compute_levels")
     roots = choose_roots(nodes, segments, root=cfg["root"], inlets=inlets, notes=notes)
     table = assign_levels(segments, nodes, roots, max_iter=cfg["diameter_order_max_iter"], notes=notes)
     return table, roots

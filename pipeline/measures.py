@@ -301,7 +301,8 @@ def _segment_measures(P, R, off, closed, excl_start, excl_end, sigma_um, soam_st
     return out, smooth
 
 
-def segment_table(g, *, grid_spacing, radii_config, measures_config):
+def segment_table(g, *, grid_spacing, smoothing_sigma_um=None, tortuosity_step_um=8.0, statistic="trimmed_mean",
+                  junction_exclusion_radii=1.0):
     """Per-segment measures.
 
     Parameters
@@ -310,8 +311,15 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
         Pruned graph.
     grid_spacing : sequence of 3 float
         Spacing of the grid the centrelines were traced on, µm.
-    radii_config, measures_config : dict
-        The ``radii`` and ``measures`` config sections.
+    smoothing_sigma_um : float or None, keyword-only
+        Gaussian smoothing of the centrelines along their arc, µm; None: two
+        grid spacings (``measures.smoothing_sigma_um``).
+    tortuosity_step_um : float, keyword-only
+        Resampling step of the sum-of-angles metric, µm (``measures.tortuosity_step_um``).
+    statistic : {'median', 'mean', 'trimmed_mean'}, keyword-only
+        Segment radius from its points (``radii.statistic``).
+    junction_exclusion_radii : float, keyword-only
+        Radii left out at segment ends (``radii.junction_exclusion_radii``).
 
     Returns
     -------
@@ -323,9 +331,9 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
         Smoothed centreline of each row, µm.
     """
     h = float(min(grid_spacing))
-    sigma_um = measures_config["smoothing_sigma_um"]
+    sigma_um = smoothing_sigma_um
     sigma_um = 2.0 * h if sigma_um is None else float(sigma_um)
-    soam_step = float(measures_config["tortuosity_step_um"])
+    soam_step = float(tortuosity_step_um)
     kinds, _ = node_kinds(g)
     keys = sorted(g.seg_nodes, key=lambda s: (g.seg_nodes[s], s))
     uv = np.array([g.seg_nodes[s] for s in keys], dtype=np.int64).reshape(-1, 2)
@@ -342,7 +350,7 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
     # Junction zones (inflated distance) and blind tips (tapering) are left out.
     excl_start = ~closed & np.isin(k_from, ("junction", "blind"))
     excl_end = ~closed & np.isin(k_to, ("junction", "blind"))
-    stat = {"median": 0, "mean": 1, "trimmed_mean": 2}[radii_config["statistic"]]
+    stat = {"median": 0, "mean": 1, "trimmed_mean": 2}[statistic]
     if keys:
         # Each node's thickest vessel: the median radius of its thickest segment.
         seg_r = np.array([_seg_radius(g, s) for s in keys])
@@ -350,7 +358,7 @@ def segment_table(g, *, grid_spacing, radii_config, measures_config):
         np.maximum.at(node_r, uv[:, 0], seg_r)
         np.maximum.at(node_r, uv[:, 1], seg_r)
         m, smooth = _segment_measures(P, R, off, closed, excl_start, excl_end, sigma_um, soam_step,
-                                      float(radii_config["junction_exclusion_radii"]), stat,
+                                      float(junction_exclusion_radii), stat,
                                       np.where(k_from == "junction", node_r[uv[:, 0]], 0.0),
                                       np.where(k_to == "junction", node_r[uv[:, 1]], 0.0))
     else:

@@ -113,14 +113,13 @@ by about 0.1.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .errors import ConfigError, InputError
+from .errors import InputError
 
 __all__ = ["network_exponent", "network_summary", "usable_junctions", "SUMMARY_KEYS"]
 
@@ -390,16 +389,17 @@ def _quantile(values: np.ndarray, q: float) -> float | None:
     return float(np.quantile(finite, q)) if finite.size else None
 
 
-def network_summary(table: pd.DataFrame, *, config: Mapping[str, Any] | None = None) -> dict[str, Any]:
+def network_summary(table: pd.DataFrame, *, network_bootstrap_resamples: int = 2000,
+                    network_bootstrap_seed: int = 0) -> dict[str, Any]:
     """The network exponent and the Murray ratio's spread for ``summary.json``.
 
     Parameters
     ----------
     table : DataFrame, shape (J, ...)
         Rows of ``bifurcations.csv`` (possibly a subset, e.g. after a review).
-    config : mapping or None, keyword-only
-        The validated ``bifurcations`` section (``network_bootstrap_resamples``,
-        ``network_bootstrap_seed``); None: defaults.
+    network_bootstrap_resamples, network_bootstrap_seed : int, keyword-only
+        Bootstrap resamples over junctions and their seed (the
+        ``bifurcations`` options of the same names).
 
     Returns
     -------
@@ -414,15 +414,7 @@ def network_summary(table: pd.DataFrame, *, config: Mapping[str, Any] | None = N
         ``murray_ratio_median``, ``murray_ratio_q25``, ``murray_ratio_q75``
         (over the finite ratios of all rows; None without any).
     """
-    if config is None:
-        from .config import SCHEMA
-
-        config = {k: p.default for k, p in SCHEMA["bifurcations"].items()}
-    try:
-        n_boot = int(config["network_bootstrap_resamples"])
-        seed = int(config["network_bootstrap_seed"])
-    except KeyError as err:
-        raise ConfigError(f"bifurcations config: expected key {err.args[0]!r}, got none") from None
+    n_boot, seed = int(network_bootstrap_resamples), int(network_bootstrap_seed)
     use, n_multi = usable_junctions(table)
     ratio = (pd.to_numeric(table["murray_ratio"], errors="coerce").to_numpy(float) if "murray_ratio" in table.columns
              else np.zeros(0))

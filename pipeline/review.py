@@ -46,7 +46,6 @@ import numpy as np
 import pandas as pd
 
 from . import bifurcations as _bif
-from .config import SCHEMA
 from .errors import InputError
 from .tables import write_atomic
 
@@ -510,11 +509,10 @@ def apply_review(result, review: pd.DataFrame | None = None) -> tuple[dict[str, 
     has_flow = "flow_nl_min" in result.segments.columns
     # The run's own options, so the network fit's bootstrap uses the same seed
     # and resamples as the analysis did (a result from before they existed: defaults).
-    bif_cfg = {k: v for k, v in ((result.run.get("config") or {}).get("bifurcations") or {}).items()
-               if k in SCHEMA["bifurcations"]}
+    bif_cfg = ((result.run.get("config") or {}).get("bifurcations") or {})
+    boot = {k: bif_cfg[k] for k in ("network_bootstrap_resamples", "network_bootstrap_seed") if k in bif_cfg}
     summary.update(_bif.summarize_bifurcations(kept.reset_index(drop=True), has_flow=has_flow,
-                                               skipped=int(summary.get("junctions_skipped", 0) or 0),
-                                               config={"bifurcations": bif_cfg}))
+                                               skipped=int(summary.get("junctions_skipped", 0) or 0), **boot))
     flagged = bifs["flagged"].astype(bool).to_numpy() if len(bifs) else np.zeros(0, bool)
     counts = {d: int((bifs["review_decision"] == d).sum()) for d in DECISIONS}
     counts["flagged_unreviewed"] = int((flagged & (bifs["review_decision"] == "").to_numpy()).sum())

@@ -270,7 +270,7 @@ def codes(row):
 
 def test_table_columns_and_types():
     segs, nodes, lines = star(murray_junction())
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=default_config())
+    table, summary = analyze_bifurcations(segs, nodes, lines, **default_config()["bifurcations"])
     assert list(table.columns) == COLUMNS
     assert str(table["level"].dtype) == "Int64"
     assert table["low_confidence"].dtype == bool and table["flagged"].dtype == bool
@@ -287,7 +287,7 @@ def test_planar_murray_junction_angles():
     # J Gen Physiol 9:835): 74.9 deg between them, no tilt, no deviation.
     # Straight centrelines give exact principal axes: tolerances are rounding.
     segs, nodes, lines = star(murray_junction())
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["murray_ratio"] == pytest.approx(1.0, abs=1e-12)
     assert row["murray_exponent"] == pytest.approx(3.0, abs=1e-9)
     assert row["area_ratio"] == pytest.approx(2 * CUBE**2, abs=1e-12)
@@ -312,7 +312,7 @@ def test_daughter_tilted_out_of_plane(tilt):
     arms = murray_junction()
     arms[2]["direction"] = in_plane(THETA, -1, tilt_deg=tilt)
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["out_of_plane_deg"] == pytest.approx(tilt, abs=1e-6)
     # Angle of the tilted daughter to the flow direction: cos = cos(theta) cos(tilt).
     expected = math.degrees(math.acos(math.cos(math.radians(THETA)) * math.cos(math.radians(tilt))))
@@ -326,7 +326,7 @@ def test_daughter_orientation_does_not_matter(towards):
     arms[1]["towards"] = towards
     arms[2]["direction"] = in_plane(50.0, -1)
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["angle_daughter1_deg"] == pytest.approx(THETA, abs=1e-6)
     assert row["angle_daughter2_deg"] == pytest.approx(50.0, abs=1e-6)
     assert row["angle_between_daughters_deg"] == pytest.approx(THETA + 50.0, abs=1e-6)
@@ -347,9 +347,9 @@ def test_bend_inside_the_junction_zone_is_ignored():
         end = kink + 20 * r0 * in_plane(THETA, side)
         lines[k] = np.vstack([line(c, kink), line(kink, end)[1:]])
         nodes.loc[nodes["node_id"] == k + 1, ["z_um", "y_um", "x_um"]] = end
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["angle_between_daughters_deg"] == pytest.approx(2 * THETA, abs=1e-6)
-    naive = only_row(analyze_bifurcations(segs, nodes, lines, config={"tangent_skip_radii": 0.0})[0])
+    naive = only_row(analyze_bifurcations(segs, nodes, lines, **{"tangent_skip_radii": 0.0})[0])
     assert naive["angle_between_daughters_deg"] < 2 * THETA - 1.0
 
 
@@ -359,7 +359,7 @@ def test_short_segment_direction_fitted_from_node():
     arms = murray_junction()
     arms[1]["length"] = 4.0  # < 1 junction radius (6 um) of skip
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert "tangent_from_node:11" in row["confidence_notes"]
     assert row["angle_daughter1_deg"] == pytest.approx(THETA, abs=1e-6)
     # 4 um < 2 radii (2 * 4.76 um): low confidence, so uncertain: not judged, not flagged.
@@ -392,7 +392,7 @@ def test_parent_by_flow(towards):
     for a, w in zip(arms, (1.2, 1.5, 1.1)):
         a["wss"] = w
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["parent_segment"] == 10 and row["parent_by"] == "flow"
     assert row["daughter_segments"] == "12;11"  # daughter 1 is the wider
     assert row["radius_daughter1_um"] == 4.5 and row["radius_daughter2_um"] == 3.0
@@ -412,7 +412,7 @@ def test_converging_flow_takes_the_outflow_as_parent():
     arms[1]["flow"] = -1.0  # also into the junction
     arms[2]["flow"] = 6.0  # out
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["flow_pattern"] == "converging"
     assert row["parent_segment"] == 12 and row["parent_by"] == "flow"
     assert row["daughter_segments"] == "10;11"
@@ -439,7 +439,7 @@ def test_other_flow_patterns(flows, pattern, parent):
             for d, r, q in zip((PARENT_DIR, in_plane(40, 1), in_plane(40, -1), in_plane(40, 1, 60)),
                                (5.0, 4.0, 3.5, 3.0), flows)]
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["flow_pattern"] == pattern and row["parent_segment"] == parent
     assert row["parent_by"] == ("radius" if pattern == "unsolved" else "flow")
     assert row["uncertain"] == (pattern == "mixed")
@@ -453,7 +453,7 @@ def test_parent_by_level_without_flow():
     for a, lv in zip(arms, (2, 3, None)):
         a["level"] = lv
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["parent_segment"] == 10 and row["parent_by"] == "level"
     assert row["level"] == 2
 
@@ -465,14 +465,14 @@ def test_parent_by_level_when_flow_is_zero():
         a["level"] = lv
         a["flow"] = 0.0
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["parent_segment"] == 10 and row["parent_by"] == "level"
     assert math.isnan(row["flow_split_daughter1"])
 
 
 def test_parent_by_width_without_flow_or_levels():
     segs, nodes, lines = star(three_arms(4.0, 4.5))
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["parent_segment"] == 12 and row["parent_by"] == "radius"
     assert pd.isna(row["level"])
     assert row["daughter_segments"] == "10;11"
@@ -488,7 +488,7 @@ def test_degree_four_junction_flagged_multi():
     ]
     arms[3]["direction"] = in_plane(40.0, 1, tilt_deg=60.0)
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["degree"] == 4 and "multi" in codes(row)
     assert row["daughter_segments"] == "11;12;13"
     # Generalised sums over all daughters.
@@ -499,7 +499,7 @@ def test_degree_four_junction_flagged_multi():
     # Murray's optimal angles are for two daughters only.
     assert math.isnan(row["angle_optimal_daughter1_deg"]) and math.isnan(row["angle_deviation_deg"])
     cfg = {"flag_multi": False}
-    assert "multi" not in codes(only_row(analyze_bifurcations(segs, nodes, lines, config=cfg)[0]))
+    assert "multi" not in codes(only_row(analyze_bifurcations(segs, nodes, lines, **cfg)[0]))
 
 
 def test_daughter_wider_than_parent_flagged_undefined():
@@ -511,14 +511,14 @@ def test_daughter_wider_than_parent_flagged_undefined():
     for a, lv in zip(arms, (0, 1, 1)):
         a["level"] = lv
     segs, nodes, lines = star(arms)
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     row = only_row(table)
     assert math.isnan(row["murray_exponent"]) and math.isnan(row["murray_exponent_u"])
     assert "exponent_undefined" in codes(row)
     assert summary["flag_counts"]["exponent_undefined"] == 1
     assert summary["fraction_within_tolerance"] == 0.0
     off = {"flag_undefined_exponent": False, "ratio_max": None}
-    assert "exponent_undefined" not in codes(only_row(analyze_bifurcations(segs, nodes, lines, config=off)[0]))
+    assert "exponent_undefined" not in codes(only_row(analyze_bifurcations(segs, nodes, lines, **off)[0]))
 
 
 def test_daughter_as_wide_as_parent_is_not_flagged():
@@ -530,7 +530,7 @@ def test_daughter_as_wide_as_parent_is_not_flagged():
     arms[1]["radius"] = 6.0
     arms[2]["radius"] = 0.3 * 6.0
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config={"angle_deviation_max_deg": None})[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **{"angle_deviation_max_deg": None})[0])
     assert math.isnan(row["murray_exponent"])
     assert row["murray_ratio"] == pytest.approx(1.0 + 0.3**3)
     assert codes(row) == set() and not row["flagged"] and not row["uncertain"]
@@ -553,7 +553,7 @@ def test_ratio_and_exponent_flags(factor, expected):
     for a in arms[1:]:
         a["radius"] *= factor
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config={"angle_deviation_max_deg": None})[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **{"angle_deviation_max_deg": None})[0])
     assert codes(row) == expected
     assert row["flagged"] == bool(expected)
 
@@ -564,10 +564,10 @@ def test_rules_switch_off_and_thresholds_move():
         a["radius"] *= 0.95 / CUBE
     segs, nodes, lines = star(arms)
     cfg = {"ratio_max": None, "exponent_max": None, "angle_deviation_max_deg": None}
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=cfg)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **cfg)[0])
     assert not row["flagged"]
     cfg = {"ratio_max": 2.0, "exponent_max": 20.0, "angle_deviation_max_deg": None}
-    assert codes(only_row(analyze_bifurcations(segs, nodes, lines, config=cfg)[0])) == set()
+    assert codes(only_row(analyze_bifurcations(segs, nodes, lines, **cfg)[0])) == set()
 
 
 def test_angle_flag():
@@ -576,18 +576,18 @@ def test_angle_flag():
     arms[1]["direction"] = in_plane(70.0, +1)
     arms[2]["direction"] = in_plane(70.0, -1)
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["angle_deviation_deg"] == pytest.approx(70.0 - THETA, abs=1e-6)
     assert codes(row) == {"angle"}
     loose = {"angle_deviation_max_deg": 35.0}
-    assert not only_row(analyze_bifurcations(segs, nodes, lines, config=loose)[0])["flagged"]
+    assert not only_row(analyze_bifurcations(segs, nodes, lines, **loose)[0])["flagged"]
 
 
 def test_low_confidence_few_points():
     arms = murray_junction()
     arms[2]["n_points"] = 3  # below min_radius_points = 5
     segs, nodes, lines = star(arms)
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     row = only_row(table)
     assert row["low_confidence"] and row["confidence_notes"] == "few_points:12"
     assert row["uncertain"] and row["uncertain_reasons"] == "low_confidence"
@@ -596,9 +596,9 @@ def test_low_confidence_few_points():
     assert summary["uncertain_counts"] == {"low_confidence": 1, "ratio_unresolved": 0, "mixed_flow": 0, "capillary": 0}
     # No junction is judged: no fraction within tolerance.
     assert summary["fraction_within_tolerance"] is None
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config={"low_confidence_uncertain": False})[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **{"low_confidence_uncertain": False})[0])
     assert row["low_confidence"] and not row["uncertain"] and not row["flagged"]
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config={"min_radius_points": 3})[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **{"min_radius_points": 3})[0])
     assert not row["low_confidence"] and not row["uncertain"]
 
 
@@ -609,7 +609,7 @@ def test_self_loop_is_not_a_daughter():
     loop = {"row": {"segment_id": 99, "node_from": 0, "node_to": 0, "length_um": 50.0, "radius_um": 9.0,
                     "radius_n_points": 40, "radius_sd_um": 0.1}, "line": loop_line}
     segs, nodes, lines = star(murray_junction(), extra=[loop])
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["degree"] == 5  # a self-loop counts twice
     assert row["parent_segment"] == 10  # the wider loop is not the parent either
     assert row["daughter_segments"] == "11;12"
@@ -624,7 +624,7 @@ def test_junction_with_only_loop_and_one_segment_is_skipped():
     loop = {"row": {"segment_id": 99, "node_from": 0, "node_to": 0, "length_um": 50.0, "radius_um": 3.0,
                     "radius_n_points": 40, "radius_sd_um": 0.1}, "line": loop_line}
     segs, nodes, lines = star([{"direction": PARENT_DIR, "radius": 4.0}], extra=[loop])
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     assert len(table) == 0 and list(table.columns) == COLUMNS
     assert summary["junctions_skipped"] == 1 and summary["bifurcations"] == 0
     assert summary["murray_exponent_median"] is None
@@ -632,7 +632,7 @@ def test_junction_with_only_loop_and_one_segment_is_skipped():
 
 def test_disabled_returns_empty_table():
     segs, nodes, lines = star(murray_junction())
-    table, summary = analyze_bifurcations(segs, nodes, lines, config={"bifurcations": {"enabled": False}})
+    table, summary = analyze_bifurcations(segs, nodes, lines, enabled=False)
     assert len(table) == 0 and list(table.columns) == COLUMNS
     assert summary == {"bifurcations_enabled": False}
 
@@ -642,20 +642,41 @@ def test_disabled_returns_empty_table():
     [
         ({"ratio_min": 2.0, "ratio_max": 1.5}, "ratio_min <= ratio_max"),
         ({"exponent_min": 5.0}, "exponent_min <= exponent_max"),
-        ({"nosuch": 1}, "unknown key 'bifurcations.nosuch'"),
         ({"tangent_fit_radii": 0.0}, "bifurcations.tangent_fit_radii"),
         ({"min_radius_points": 2.5}, "bifurcations.min_radius_points"),
         ({"significance_z": -1.0}, "bifurcations.significance_z"),
         ({"radius_floor_voxels": 2.0}, "bifurcations.radius_floor_voxels"),
         ({"angle_sd_deg": -0.5}, "bifurcations.angle_sd_deg"),
-        # The old switch: low-confidence junctions are now uncertain, not flagged.
-        ({"flag_low_confidence": True}, "unknown key 'bifurcations.flag_low_confidence'"),
     ],
 )
 def test_bad_config(config, fragment):
     segs, nodes, lines = star(murray_junction())
     with pytest.raises(ConfigError, match=fragment.replace(".", r"\.")):
-        analyze_bifurcations(segs, nodes, lines, config=config)
+        analyze_bifurcations(segs, nodes, lines, **config)
+
+
+@pytest.mark.parametrize("name", ["nosuch", "flag_low_confidence"])
+def test_unknown_options_are_python_type_errors(name):
+    # Options are keywords (the old switch flag_low_confidence is gone:
+    # low-confidence junctions are now uncertain, not flagged).
+    segs, nodes, lines = star(murray_junction())
+    with pytest.raises(TypeError):
+        analyze_bifurcations(segs, nodes, lines, **{name: True})
+
+
+def test_options_are_keywords_with_the_config_defaults():
+    import inspect
+
+    from pipeline.config import SCHEMA
+
+    params = inspect.signature(analyze_bifurcations).parameters
+    for key, p in SCHEMA["bifurcations"].items():
+        assert params[key].default == p.default and params[key].kind is inspect.Parameter.KEYWORD_ONLY
+    segs, nodes, lines = star(murray_junction())
+    with pytest.warns(DeprecationWarning, match="keywords"):
+        old, _ = analyze_bifurcations(segs, nodes, lines, config={"bifurcations": {"angle_sd_deg": 3.0}})
+    new, _ = analyze_bifurcations(segs, nodes, lines, angle_sd_deg=3.0)
+    pd.testing.assert_frame_equal(old, new)
 
 
 @pytest.mark.parametrize(
@@ -671,13 +692,13 @@ def test_bad_config(config, fragment):
 def test_bad_inputs(change, fragment):
     args = change(*star(murray_junction()))
     with pytest.raises(InputError, match=fragment):
-        analyze_bifurcations(*args, config=None)
+        analyze_bifurcations(*args)
 
 
 @pytest.mark.parametrize("voxel", [0.0, -1.0, float("nan"), "x", True])
 def test_bad_voxel(voxel):
     with pytest.raises(InputError, match="voxel_um: expected a positive finite voxel spacing"):
-        analyze_bifurcations(*star(murray_junction()), config=None, voxel_um=voxel)
+        analyze_bifurcations(*star(murray_junction()), voxel_um=voxel)
 
 
 def test_flow_at_rounding_level_counts_as_none():
@@ -697,11 +718,11 @@ def test_flow_at_rounding_level_counts_as_none():
         parts.append((s, nd, ln))
     table, _ = analyze_bifurcations(pd.concat([p[0] for p in parts], ignore_index=True),
                                     pd.concat([p[1] for p in parts], ignore_index=True),
-                                    [c for p in parts for c in p[2]], config=None)
+                                    [c for p in parts for c in p[2]])
     assert table["flow_pattern"].tolist() == ["diverging", "unsolved"]
     assert table["parent_by"].tolist() == ["flow", "radius"]
     # On its own the small junction is its whole network: its flow counts.
-    alone, _ = analyze_bifurcations(*parts[1], config=None)
+    alone, _ = analyze_bifurcations(*parts[1])
     assert alone["flow_pattern"].tolist() == ["diverging"]
 
 
@@ -725,7 +746,7 @@ def test_cube_law_y_parent_is_the_trunk_either_way(direction, trunk_towards):
     for a in arms[1:]:
         a["flow"] = -1.0 * into  # stored junction -> end: flow into the junction is negative
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["flow_pattern"] == direction
     assert row["parent_segment"] == 10 and row["parent_by"] == "flow"
     assert 0.8 <= row["murray_ratio"] <= 1.25  # the bound around the cube law's 1
@@ -746,7 +767,7 @@ def test_old_parent_rule_is_gone_at_a_converging_junction():
     arms[1]["flow"] = -1.1  # tributaries stored junction -> end, flowing in
     arms[2]["flow"] = -0.9
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     assert row["parent_segment"] == 10 and row["flow_pattern"] == "converging"
     assert row["flow_split_daughter1"] == pytest.approx(1.1 / 2.0)  # daughters tie on width: 11 first
 
@@ -763,9 +784,9 @@ def test_ideal_cube_law_tree_drained_through_its_root_is_converging():
     leaves = nodes.loc[nodes["kind"] == "blind", "node_id"].tolist()
     # fixed pressures and constant viscosity, where Poiseuille splits are exact
     res = solve_flow(segs, nodes, inlets=leaves, outlets=[0],
-                     config={"flow": {"boundary": "pressure", "viscosity_model": "constant"}})
+                     boundary="pressure", viscosity_model="constant")
     segs = segs.merge(res.segments[["segment_id", "flow_nl_min"]], on="segment_id")
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     assert (table["flow_pattern"] == "converging").all()
     trunk = segs.set_index("node_to")["segment_id"]  # each junction's segment towards the root ends there
     assert (table["parent_segment"].to_numpy() == trunk.loc[table["node_id"]].to_numpy()).all()
@@ -836,7 +857,7 @@ def test_strong_deviation_is_flagged_unless_its_uncertainty_is_huge():
     # the band's edge at 1.5: not judged, not flagged, not in the queue.
     arms, r0, rd = deviating_junction(2.5, 0.1)
     segs, nodes, lines = star(arms)
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     row = only_row(table)
     assert row["murray_ratio"] == pytest.approx(2.5)
     assert {"ratio_high", "exponent_undefined"} <= codes(row) and row["flagged"] and not row["uncertain"]
@@ -848,7 +869,7 @@ def test_strong_deviation_is_flagged_unless_its_uncertainty_is_huge():
 
     arms, r0, rd = deviating_junction(2.5, 4.5, n=9)
     segs, nodes, lines = star(arms)
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     row = only_row(table)
     assert row["murray_ratio"] == pytest.approx(2.5)
     assert row["uncertain"] and row["uncertain_reasons"] == "ratio_unresolved"
@@ -867,12 +888,12 @@ def test_ratio_band_and_significance_both_needed(ratio, flagged):
     cfg = {"exponent_min": None, "exponent_max": None}
     arms, _, _ = deviating_junction(ratio, 0.1)
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=cfg)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **cfg)[0])
     assert row["flagged"] == flagged and codes(row) == ({"ratio_high"} if flagged else set())
     assert (row["severity"] > 0) == flagged  # only quantities outside their band count
     # z = 1000 standard uncertainties: nothing is significant, and the ratio
     # cannot be told from the cube law (uncertain).
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config={**cfg, "significance_z": 1000.0})[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **{**cfg, "significance_z": 1000.0})[0])
     assert not row["flagged"] and row["uncertain_reasons"] == "ratio_unresolved"
 
 
@@ -894,7 +915,7 @@ def test_severity_orders_the_queue():
     segs["level"] = pd.array(segs["level"], dtype="Int64")
     nodes = pd.concat([p[1] for p in parts], ignore_index=True)
     lines = [c for p in parts for c in p[2]]
-    table, _ = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, _ = analyze_bifurcations(segs, nodes, lines)
     expected = []
     for ratio, sd in cases:
         u = sd / math.sqrt(40)
@@ -926,7 +947,7 @@ def test_uncertainty_propagation_matches_monte_carlo(seed):
     for a in arms:
         a["sd"] = 0.01 * a["radius"] * math.sqrt(40)  # 1 % after dividing by sqrt(40 points)
     segs, nodes, lines = star(arms)
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config={"angle_sd_deg": 3.0})[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines, **{"angle_sd_deg": 3.0})[0])
     assert row["angle_deviation_deg"] == pytest.approx(20.0, abs=1e-6)
     rng = np.random.default_rng(seed)
     n = 100_000
@@ -1001,7 +1022,7 @@ def test_curved_daughter_direction_is_the_principal_axis_of_the_window(towards):
     if towards:
         segs.loc[1, ["node_from", "node_to"]] = [2, 0]
     nodes.loc[nodes["node_id"] == 2, ["z_um", "y_um", "x_um"]] = arc[-1]
-    row = only_row(analyze_bifurcations(segs, nodes, lines, config=None)[0])
+    row = only_row(analyze_bifurcations(segs, nodes, lines)[0])
     d1 = reference_direction(arc, 6.0)  # junction radius: the parent's 6 um
     expected = math.degrees(math.acos(np.clip(np.dot(d1, -unit(PARENT_DIR)), -1.0, 1.0)))
     assert row["angle_daughter1_deg"] == pytest.approx(expected, abs=1e-9)
@@ -1049,12 +1070,12 @@ def test_many_junctions_at_once_equal_each_alone():
     # equals the rows of each junction analysed on its own.
     rng = np.random.default_rng(7)
     stars = [random_star(rng, 1000 * (k + 1)) for k in reversed(range(60))]  # node ids out of order
-    alone = [analyze_bifurcations(*s, config=None) for s in stars]
+    alone = [analyze_bifurcations(*s) for s in stars]
     segs = pd.concat([s for s, _, _ in stars], ignore_index=True)
     segs["level"] = pd.array(segs["level"], dtype="Int64")
     nodes = pd.concat([n for _, n, _ in stars], ignore_index=True)
     lines = [c for _, _, cs in stars for c in cs]
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     expected = pd.concat([t for t, _ in alone], ignore_index=True).sort_values("node_id").reset_index(drop=True)
     pd.testing.assert_frame_equal(table, expected, check_exact=False, rtol=1e-12)
     assert set(table["parent_by"]) == {"flow", "level", "radius"}  # every parent rule was exercised
@@ -1124,7 +1145,7 @@ def test_ideal_cube_law_tree_flow_split_follows_cube_law():
     res = solve_flow(segs, nodes, inlets=[0], **{"blind_ends": "outlet", "boundary": "pressure",
                                                   "viscosity_model": "constant"})
     segs = segs.merge(res.segments[["segment_id", "flow_nl_min", "wss_pa"]], on="segment_id")
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     assert len(table) == 2**4 - 1
     assert (table["parent_by"] == "flow").all()
     np.testing.assert_allclose(table["flow_split_daughter1"], table["flow_split_cube_law"], rtol=1e-9)
@@ -1171,7 +1192,7 @@ def tree():
             mask, truth = synthetic.rasterize(net, spacing=(1.0, 1.0, 1.0))
             res = pipeline.analyze(mask, spacing=(1.0, 1.0, 1.0))
             segs = with_levels(res.segments, res.nodes)
-            table, summary = analyze_bifurcations(segs, res.nodes, res.centrelines, config=None)
+            table, summary = analyze_bifurcations(segs, res.nodes, res.centrelines)
             cache[name] = dict(truth=truth, res=res, segments=segs, table=table, summary=summary,
                                matched=match(truth, table))
         return cache[name]
@@ -1303,7 +1324,7 @@ def test_measured_tree_flow_split_near_cube_law(tree):
                                                   "viscosity_model": "constant"})
     segs = segs.drop(columns=[c for c in ("flow_nl_min", "wss_pa") if c in segs.columns])
     segs = segs.merge(res.segments[["segment_id", "flow_nl_min", "wss_pa"]], on="segment_id")
-    table, summary = analyze_bifurcations(segs, nodes, t["res"].centrelines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, t["res"].centrelines)
     assert (table["parent_by"] == "flow").all()
     rel = np.abs(table["flow_split_daughter1"] / table["flow_split_cube_law"] - 1.0)
     assert np.median(rel) < 0.05
@@ -1323,7 +1344,7 @@ def test_capillary_junctions_are_not_judged_against_murray(radius, judged):
         {"direction": in_plane(THETA, -1), "radius": radius, "sd": 0.01 * radius},
     ]
     segs, nodes, lines = star(arms)
-    table, summary = analyze_bifurcations(segs, nodes, lines, config=None)
+    table, summary = analyze_bifurcations(segs, nodes, lines)
     row = only_row(table)
     assert row["murray_ratio"] == pytest.approx(2.0, rel=1e-9)
     if judged:

@@ -87,3 +87,30 @@ def test_every_shipped_config_is_valid_and_explained(path):
         assert data, "a preset lists at least one setting"
         changed = {(s, k) for s, kv in data.items() for k in kv}
         assert all(cfg[s][k] != default_config()[s][k] for s, k in changed), "a preset repeats a default"
+
+
+def _step_functions():
+    from pipeline.bifurcations import analyze_bifurcations, summarize_bifurcations
+    from pipeline.flow import solve_flow
+    from pipeline.levels import compute_levels
+    from pipeline.measures import segment_table
+    from pipeline.murray import network_summary
+
+    return [(solve_flow, "flow"), (analyze_bifurcations, "bifurcations"), (summarize_bifurcations, "bifurcations"),
+            (network_summary, "bifurcations"), (compute_levels, "levels"), (segment_table, "radii"),
+            (segment_table, "measures")]
+
+
+@pytest.mark.parametrize("func, section", _step_functions(), ids=lambda x: getattr(x, "__name__", x))
+def test_step_keywords_have_the_config_defaults(func, section):
+    # Options one way: a step takes its section's options as keyword-only
+    # arguments whose defaults are the config's (analyze passes the
+    # validated section; a direct caller gets the same defaults).
+    import inspect
+
+    params = inspect.signature(func).parameters
+    shared = [k for k in SCHEMA[section] if k in params]
+    assert shared, f"{func.__name__} takes none of the {section} options"
+    for key in shared:
+        assert params[key].kind is inspect.Parameter.KEYWORD_ONLY
+        assert params[key].default == SCHEMA[section][key].default, key

@@ -261,10 +261,12 @@ def test_bad_roots_raise(spec, error):
         choose_roots(nodes, segs, root=spec)
 
 
-def test_compute_levels_reads_config():
+def test_compute_levels_takes_the_levels_options():
     segs, nodes = binary_tree(2)
-    table, roots = compute_levels(segs, nodes, config={"levels": {"root": "node:0"}})
+    table, roots = compute_levels(segs, nodes, root="node:0")
     assert roots == [0]
     assert table["level"].tolist() == [0, 1, 1, 2, 2, 2, 2]
+    with pytest.raises(TypeError):
+        compute_levels(segs, nodes, nosuch=1)
     with pytest.raises(ConfigError):
-        compute_levels(segs, nodes, config={"levels": {"nosuch": 1}})
+        compute_levels(segs, nodes, diameter_order_max_iter=0)

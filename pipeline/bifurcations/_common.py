@@ -8,13 +8,13 @@ undefined.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from ..errors import ConfigError, InputError
+from ..errors import InputError
 
 #: Flag reason codes, in the order they appear in ``flag_reasons``.
 REASON_CODES = (
@@ -53,25 +53,8 @@ _STR_COLUMNS = ("flow_pattern", "parent_by", "daughter_segments", "confidence_no
 
 
 # ---------------------------------------------------------------------------
-# configuration and inputs
+# inputs
 # ---------------------------------------------------------------------------
-
-def _section(config: Mapping[str, Any] | None) -> dict[str, Any]:
-    from ..config import SCHEMA, validate_config
-
-    if config is None:
-        section: Mapping[str, Any] = {}
-    elif not isinstance(config, Mapping):
-        raise ConfigError(f"bifurcations config: expected a mapping, got {type(config).__name__}")
-    elif "bifurcations" in config:
-        section = config["bifurcations"] or {}
-    elif set(config) & set(SCHEMA):
-        section = {}  # a full config from before this section existed
-    else:
-        section = config
-    # validated whole: the rules that tie two keys live in the config module
-    return validate_config({"bifurcations": dict(section)})["bifurcations"]
-
 
 def _require(df: Any, name: str, columns: Sequence[str]) -> None:
     if not isinstance(df, pd.DataFrame):

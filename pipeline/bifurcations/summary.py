@@ -14,9 +14,10 @@ import numpy as np
 import pandas as pd
 
 
+from ..config import step_options
 from ._common import (
     FLOW_PATTERNS, MURRAY_CODES, REASON_CODES, UNCERTAIN_CODES, _empty_table, _median, _median_exponent,
-    _nan_if_none, _require, _section,
+    _nan_if_none, _require,
 )
 
 
@@ -65,7 +66,8 @@ def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int,
         "murray_exponent_median": _median_exponent(expo),
         "murray_ratio_median": _median(ratio),
     })
-    out.update(network_summary(table, config=cfg))
+    out.update(network_summary(table, network_bootstrap_resamples=cfg["network_bootstrap_resamples"],
+                               network_bootstrap_seed=cfg["network_bootstrap_seed"]))
     for k in ("diverging", "converging"):
         out[f"murray_exponent_median_{k}"] = _median_exponent(expo[pattern == k])
         out[f"murray_ratio_median_{k}"] = _median(ratio[pattern == k])
@@ -78,6 +80,7 @@ def _summary(table: pd.DataFrame, *, has_flow: bool, skipped: int,
 
 
 def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int = 0,
+                           network_bootstrap_resamples: int = 2000, network_bootstrap_seed: int = 0,
                            config: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """The bifurcation part of ``summary.json``, from a bifurcations table.
 
@@ -94,18 +97,22 @@ def summarize_bifurcations(table: pd.DataFrame, *, has_flow: bool, skipped: int 
     skipped : int, keyword-only
         ``junctions_skipped``, carried over: it cannot be recomputed from
         the table.
+    network_bootstrap_resamples, network_bootstrap_seed : int, keyword-only
+        The network fit's bootstrap (the ``bifurcations`` options of the
+        same names).
     config : mapping or None, keyword-only
-        Full config or its ``bifurcations`` section (the network fit's
-        bootstrap resamples and seed); None: defaults.
+        Deprecated (a DeprecationWarning): a full config or its
+        ``bifurcations`` section.
 
     Returns
     -------
     dict
         The keys listed under ``summary`` in :func:`analyze_bifurcations`.
     """
+    cfg = step_options("bifurcations", locals(), config=config, caller="summarize_bifurcations")
     if table.shape[1] == 0:
         table = _empty_table()
-    return _summary(table, has_flow=has_flow, skipped=skipped, cfg=_section(config))
+    return _summary(table, has_flow=has_flow, skipped=skipped, cfg=cfg)
 
 
 def levels_murray(table: pd.DataFrame) -> pd.DataFrame:

@@ -16,8 +16,9 @@ import pandas as pd
 
 from .._checks import segment_end_rows
 from ..errors import InputError
+from ..config import step_options
 from ..measures import radius_uncertainty
-from ._common import REASON_CODES, UNCERTAIN_CODES, _empty_table, _float_column, _require, _section, _typed
+from ._common import REASON_CODES, UNCERTAIN_CODES, _empty_table, _float_column, _require, _typed
 from .laws import _exponent_u, _exponents, _optimal_angles_u, _ratio_u, murray_optimal_angles
 from .angles import _angles_deg, _directions, _out_of_plane_deg
 from .summary import _summary
@@ -65,8 +66,27 @@ def analyze_bifurcations(
     nodes: pd.DataFrame,
     centrelines: Sequence[np.ndarray],
     *,
-    config: Mapping[str, Any] | None = None,
     voxel_um: float | None = None,
+    enabled: bool = True,
+    murray_min_parent_diameter_um: float | None = 7.0,
+    ratio_min: float | None = 0.6667,
+    ratio_max: float | None = 1.5,
+    exponent_min: float | None = 2.0,
+    exponent_max: float | None = 4.0,
+    flag_undefined_exponent: bool = True,
+    angle_deviation_max_deg: float | None = 30.0,
+    flag_multi: bool = True,
+    significance_z: float = 2.0,
+    radius_floor_voxels: float = 0.04,
+    angle_sd_deg: float = 6.0,
+    low_confidence_uncertain: bool = True,
+    min_radius_points: int = 5,
+    min_length_radii: float = 2.0,
+    tangent_fit_radii: float = 3.0,
+    tangent_skip_radii: float = 1.0,
+    network_bootstrap_resamples: int = 2000,
+    network_bootstrap_seed: int = 0,
+    config: Mapping[str, Any] | None = None,
 ) -> tuple[pd.DataFrame, dict[str, Any]]:
     """Radius law, branching angles, flow split and flags at every junction.
 
@@ -82,13 +102,17 @@ def analyze_bifurcations(
         copied to the table when present.
     centrelines : sequence of (K, 3) array_like
         One per segment row, µm, from ``node_from`` to ``node_to``.
-    config : mapping or None, keyword-only
-        Full validated config or its ``bifurcations`` section; missing keys
-        take defaults.
     voxel_um : float, optional, keyword-only
         Coarsest voxel spacing of the mask the segments were measured on, µm
         (module notes, "Radius uncertainty"): without it the radius
         uncertainty has no floor.
+    enabled, murray_min_parent_diameter_um, ..., network_bootstrap_seed : keyword-only
+        The options of the ``bifurcations`` section of the config, with its
+        defaults and meanings (``configs/default.yaml``); ``pipeline.analyze``
+        passes the validated section as ``**config['bifurcations']``.
+    config : mapping or None, keyword-only
+        Deprecated (a DeprecationWarning): a full config or its
+        ``bifurcations`` section, as earlier versions took the options.
 
     Returns
     -------
@@ -133,7 +157,7 @@ def analyze_bifurcations(
     ConfigError
         Invalid ``bifurcations`` options.
     """
-    cfg = _section(config)
+    cfg = step_options("bifurcations", locals(), config=config, caller="analyze_bifurcations")
     if not cfg["enabled"]:
         return _empty_table(), {"bifurcations_enabled": False}
     _require(segments, "segments", ("segment_id", "node_from", "node_to", "length_um", "radius_um"))
