@@ -20,11 +20,12 @@ from ._common import (
     FIGURE_DIR, REPORT_NAME, STUDY_MEASURES, _CAUTION, _LOW_Q, _SECTION_FIGURES, _anchor, _esc, _fmt, _kv_table,
     _label, _num, _table,
 )
+from .overview import flow_record_html, grouped_summary_html, overview_html, readable_table
 from .sample import figure_map_level, load_sample, sample_figures
 from .study import _COMPARISON_SHOWN, _network_exponent_html, study_figures
 from .page import (
     _bifurcation_html, _checked_review, _config_html, _figure_html, _generated, _orders_html, _page,
-    _plausibility_html, _render, _render_all, _sources_html, _summary_rows, _uncertainty_html, _warnings_html,
+    _plausibility_html, _render, _render_all, _sources_html, _uncertainty_html, _warnings_html,
 )
 
 
@@ -170,6 +171,7 @@ def _sample_report(out, *, mask):
              f"folder written {_esc(run.get('created', '?'))} by vesselflow "
              f"{_esc(run.get('vesselflow_version', '?'))}.</p>",
              f"<div class=\"caution\"><b>Research use only.</b> {_esc(_CAUTION)}</div>",
+             overview_html(summary, flow_solved=bool((run.get("flow") or {}).get("solved"))),
              "<nav><a href=\"#inputs\">Inputs</a><a href=\"#warnings\">Warnings</a><a href=\"#summary\">Summary</a>"
              "<a href=\"#figures\">Figures</a><a href=\"#plausibility\">Plausibility</a><a href=\"#uncertainty\">"
              "Uncertainty</a><a href=\"#levels\">Levels</a><a href=\"#orders\">Orders</a>"
@@ -195,7 +197,7 @@ def _sample_report(out, *, mask):
     parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analysis (run.json)</h3>"
                  + _warnings_html(run.get("warnings") or []) + "<h3>From the report</h3>" + _warnings_html(notes)
                  + ("<h3>Run notes</h3>" + _warnings_html(run["notes"]) if run.get("notes") else ""))
-    parts.append("<h2 id=\"summary\">Summary</h2>" + _kv_table(_summary_rows(summary)))
+    parts.append("<h2 id=\"summary\">Summary</h2>" + grouped_summary_html(summary))
     parts.append("<h2 id=\"figures\">Figures</h2>")
     parts.append("<div class=\"grid\">" + "".join(_figure_html(r, anchor=f"fig-{r.name}") for r in rendered
                                                if r.name not in _SECTION_FIGURES) + "</div>")
@@ -205,20 +207,22 @@ def _sample_report(out, *, mask):
     parts.append("<h2 id=\"uncertainty\">Uncertainty of the flows</h2>"
                  + _uncertainty_html(data, own.get("flow_intervals")))
     parts.append("<h2 id=\"levels\">Branching levels</h2>"
-                 + (_table(data.levels) if not data.levels.empty else "<p>No levels.</p>"))
+                 + (readable_table(data.levels) if not data.levels.empty else "<p>No levels.</p>"))
     parts.append("<h2 id=\"orders\">Diameter-defined Strahler orders</h2>" + _orders_html(data))
     parts.append("<h2 id=\"bifurcations\">Bifurcations</h2>"
                  + _bifurcation_html(data.bifurcations, review, summary))
     flow = run.get("flow") or {}
     if flow:
-        parts.append("<h2 id=\"flow\">Flow model</h2>" + _kv_table([(k, _fmt(v)) for k, v in flow.items()]))
-    parts.append("<h2 id=\"config\">Effective configuration</h2>" + _config_html(run.get("config")))
+        parts.append("<h2 id=\"flow\">Flow model</h2>" + flow_record_html(flow))
+    parts.append("<h2 id=\"config\">Effective configuration</h2><details><summary>Every option the analysis "
+                 "ran with (YAML, as a config file takes it)</summary>" + _config_html(run.get("config")) + "</details>")
     counts = run.get("counts") or {}
     timings = run.get("timings_s") or {}
-    parts.append("<h2 id=\"run\">Run record</h2>"
+    parts.append("<h2 id=\"run\">Run record</h2><details><summary>What each step removed or changed, and the "
+                 "time it took</summary>"
                  + _kv_table([(k, _fmt(v) if not isinstance(v, list) else ", ".join(_fmt(x) for x in v))
                               for k, v in counts.items()]
-                             + [(f"time: {k} (s)", _fmt(v)) for k, v in timings.items()]))
+                             + [(f"time: {k} (s)", _fmt(v)) for k, v in timings.items()]) + "</details>")
     parts.append("<h2 id=\"sources\">Sources</h2>" + _sources_html())
     return _page(f"vesselflow report: {data.name}", "\n".join(parts)), rendered
 

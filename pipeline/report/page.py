@@ -19,6 +19,7 @@ from ._common import _DPI, _bool_col, _esc, _fmt, _kv_table, _num, _table
 from .plausibility import (
     DIRECTION_CONFIDENCE_MIN, _flow_cfg, flow_uncertainty, plausibility_checks, plausibility_messages,
 )
+from .overview import readable_table
 
 
 @dataclass
@@ -33,13 +34,26 @@ class _Rendered:
 
 
 def _render(fig, name, title, caption):
-    png, svg = io.BytesIO(), io.BytesIO()
-    fig.savefig(png, format="png", dpi=_DPI, metadata={"Software": None})
-    # A fixed hash salt and no date keep the SVG identical from run to run.
+    import logging
+
     import matplotlib
 
-    with matplotlib.rc_context({"svg.hashsalt": "vesselflow", "svg.fonttype": "path"}):
-        fig.savefig(svg, format="svg", metadata={"Date": None})
+    png, svg = io.BytesIO(), io.BytesIO()
+    # Tick labels such as 10^-3 are set as mathematics, in the page's own
+    # font; where a font installation lacks matplotlib's display fonts it
+    # falls back to DejaVu Sans and logs each fallback on the terminal, which
+    # says nothing to a reader of the report.
+    fonts = logging.getLogger("matplotlib.font_manager")
+    level = fonts.level
+    fonts.setLevel(logging.ERROR)
+    try:
+        with matplotlib.rc_context({"mathtext.fontset": "dejavusans"}):
+            fig.savefig(png, format="png", dpi=_DPI, metadata={"Software": None})
+            # A fixed hash salt and no date keep the SVG identical from run to run.
+            with matplotlib.rc_context({"svg.hashsalt": "vesselflow", "svg.fonttype": "path"}):
+                fig.savefig(svg, format="svg", metadata={"Date": None})
+    finally:
+        fonts.setLevel(level)
     return _Rendered(name=name, title=title, caption=caption, png=png.getvalue(), svg=svg.getvalue())
 
 
@@ -61,6 +75,10 @@ figcaption{font-size:.85em;color:#333;margin-top:.3em}
 pre{background:#f6f6f6;padding:.6em;overflow-x:auto;font-size:.8em}
 .note{font-size:.85em;color:#444}ul.warn li{color:#7a3300}nav a{margin-right:1em}
 .muted{color:#666}.scroll{overflow-x:auto;max-width:100%}
+.overview{background:#f3f8fc;border-left:6px solid #0072B2;padding:.3em 1em;margin:1em 0}
+table.summary td.num,table.classes td.num{text-align:right;font-variant-numeric:tabular-nums}
+.groups{display:flex;flex-wrap:wrap;gap:0 2em}.group{flex:1 1 420px;min-width:0}table.summary{width:100%}
+details{margin:.6em 0}summary{cursor:pointer;color:#0b4f7a}
 """
 
 # The page loads nothing from outside: images only as data: URIs, no
@@ -101,19 +119,6 @@ def _config_html(cfg):
 
     text = yaml.safe_dump(cfg or {}, sort_keys=False, default_flow_style=False, allow_unicode=True)
     return f"<pre>{_esc(text)}</pre>"
-
-
-def _summary_rows(summary):
-    rows = []
-    for k, v in summary.items():
-        if isinstance(v, dict):
-            for kk, vv in v.items():
-                rows.append((f"{k}.{kk}", _fmt(vv)))
-        elif isinstance(v, list):
-            rows.append((k, ", ".join(_fmt(x) for x in v)))
-        else:
-            rows.append((k, _fmt(v)))
-    return rows
 
 
 def _generated():
@@ -178,7 +183,7 @@ def _orders_html(data):
                         ("Horton ratio of length", _fmt(s.get("horton_ratio_length")))])
     return ("<p>Orders after Kassab et al. (1993, Am J Physiol 265:H350); an element is the segments of one "
             "order in series; diameters and lengths are of elements (orders.csv; the connectivity matrix is "
-            "in order_connectivity.csv).</p>" + _table(data.orders) + ratios)
+            "in order_connectivity.csv).</p>" + readable_table(data.orders) + ratios)
 
 
 def _plausibility_html(data, fig):
