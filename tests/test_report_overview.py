@@ -6,6 +6,7 @@ import subprocess
 import sys
 from html.parser import HTMLParser
 
+import numpy as np
 import pytest
 
 from pipeline import synthetic
@@ -119,3 +120,82 @@ def test_report_page_leads_with_the_overview_and_prints_no_font_noise(sample):
     assert page.index('class="overview"') < page.index('id="inputs"') < page.index('id="summary"')
     assert "mmHg" in page  # pressures of the flow record, also in mmHg
     assert re.search(r"<details><summary>Every option the analysis ran with", page)
+
+
+# --- robust figures on extreme model values (issue: axes to 1e-19, 1,300 circles) ---
+
+
+@pytest.fixture
+def data(sample):
+    from pipeline import report
+
+    return report.load_sample(sample)
+
+
+def _extreme(data, seed=0):
+    """Flows and shear stresses spread over 18 decades, as an ill-posed boundary gives them."""
+    rng = np.random.default_rng(seed)
+    n = len(data.segments)
+    segs = data.segments.copy()
+    segs["wss_pa"] = 10.0 ** rng.uniform(-17, 1, n)
+    segs["flow_nl_min"] = 10.0 ** rng.uniform(-19, 2, n)
+    segs["perfused"] = True
+    data.segments = segs
+    return data
+
+
+def test_map_colour_limits_are_percentiles_of_the_perfused_segments(data):
+    from pipeline.report.sample import figure_map_wss
+
+    data = _extreme(data)
+    wss = data.segments["wss_pa"].to_numpy()
+    fig = figure_map_wss(data, [])
+    lc = [c for c in fig.axes[0].collections if c.get_gid() == "centrelines"][0]
+    lo, hi = lc.norm.vmin, lc.norm.vmax
+    # numpy's percentiles of the same values (the 2nd and 98th)
+    assert lo == pytest.approx(np.percentile(wss, 2)) and hi == pytest.approx(np.percentile(wss, 98))
+    assert lo > wss.min() and hi < wss.max()
+
+
+def test_scatter_axes_stop_four_decades_below_the_median(data):
+    from pipeline.report.sample import figure_flow_radius, figure_wss_diameter
+
+    data = _extreme(data)
+    for make, col in ((figure_wss_diameter, "wss_pa"), (figure_flow_radius, "flow_nl_min")):
+        v = np.abs(data.segments[col].to_numpy())
+        ax = make(data, []).axes[0]
+        floor = 10 ** (np.log10(np.median(v)) - 4)
+        assert ax.get_ylim()[0] >= floor / 10  # a margin below the floor, never 1e-19
+        labels = [t.get_text() for t in ax.get_legend().get_texts()]
+        assert any(lab.startswith("below ") and f"({int((v < floor).sum())})" in lab for lab in labels)
+
+
+def test_no_slope_from_a_handful_of_segments(data):
+    from pipeline.report.sample import figure_flow_radius
+
+    segs = data.segments.copy()
+    keep = np.zeros(len(segs), bool)
+    keep[:8] = True
+    segs.loc[~keep, "flow_nl_min"] = np.nan
+    data.segments = segs
+    labels = [t.get_text() for t in figure_flow_radius(data, []).axes[0].get_legend().get_texts()]
+    assert not any("least-squares" in lab for lab in labels)
+
+
+def test_maps_circle_only_the_most_severe_of_a_long_queue(data):
+    from pipeline.report._common import _MAX_NUMBERED
+    from pipeline.report.sample import figure_map_level
+
+    b = data.bifurcations.copy()
+    b["flagged"] = True
+    b["severity"] = np.arange(len(b), dtype=float)
+    data.bifurcations = b
+    assert len(b) > _MAX_NUMBERED, "the fixture needs more junctions than the maps circle"
+    notes = []
+    ax = figure_map_level(data, notes).axes[0]
+    circles = [c for c in ax.collections if c.get_gid() == "flagged-circles"][0]
+    assert len(circles.get_offsets()) == _MAX_NUMBERED
+    numbers = sorted(int(t.get_text()) for t in ax.texts)
+    top = b.sort_values("severity", ascending=False)["node_id"].head(_MAX_NUMBERED).astype(int)
+    assert numbers == sorted(top)
+    assert any(f"{_MAX_NUMBERED} most severe of the {len(b)}" in n for n in notes)

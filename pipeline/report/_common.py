@@ -43,9 +43,9 @@ NETWORK_EXPONENT_KEYS = ("murray_exponent_network", "murray_exponent_network_ci_
 REPORT_NAME = "report.html"
 FIGURE_DIR = "figures"
 
-# Numbering every flagged junction on a dense capillary bed buries the map
-# in digits; past this many they are circled only and the table lists them.
-_MAX_NUMBERED = 60
+# Circling every flagged junction of a dense bed buries the map: the maps
+# circle and number the most severe this many, and the table lists them all.
+_MAX_NUMBERED = 40
 # Projection maps: the mask is shown in light grey so that every palette
 # colour (and the dark flag circles) keeps its contrast on top of it.
 _MASK_GREY = ListedColormap(["#ffffff", "#d0d0d0"])

@@ -287,6 +287,11 @@ def _severity_text(v):
     return _fmt(f)
 
 
+# The flagged junctions listed on the page, most severe first: a reader
+# works down the top of the queue; the CSV holds the rest.
+_MAX_TABLE_ROWS = 50
+
+
 def _bifurcation_html(b, review, summary=None):
     """Flagged junctions most severe first, uncertain ones counted apart, Murray medians per flow pattern."""
     if b.empty or "flagged" not in b.columns:
@@ -337,6 +342,9 @@ def _bifurcation_html(b, review, summary=None):
     if "flag_reasons" in fl.columns:
         fl["flag_reasons"] = fl["flag_reasons"].fillna("").astype(str).str.replace(";", ", ")
     fl, note = _review_table(fl, review)
-    parts.append("<h3>Flagged junctions</h3>" + (f"<p class=\"note\">{_esc(note)}</p>" if note else "")
-                 + _table(fl, classes="bif"))
+    shown = "" if len(fl) <= _MAX_TABLE_ROWS else (
+        f"<p class=\"note\">The {_MAX_TABLE_ROWS} most severe of {len(fl)} flagged junctions; bifurcations.csv "
+        "has every junction (column flagged).</p>")
+    parts.append("<h3>Flagged junctions</h3>" + (f"<p class=\"note\">{_esc(note)}</p>" if note else "") + shown
+                 + _table(fl, classes="bif", max_rows=_MAX_TABLE_ROWS))
     return "".join(parts)

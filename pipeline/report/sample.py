@@ -136,23 +136,65 @@ def _centreline_collection(data, colours=None, **kw):
 
 
 def _flag_overlay(ax, data, numbered_note):
+    """Circle (and number) the review queue's most severe junctions; returns how many are circled."""
     b = data.bifurcations
     if b.empty or "flagged" not in b.columns:
         return 0
     fl = b[_bool_col(b, "flagged")]
     if fl.empty:
         return 0
-    ax.scatter(fl["x_um"], fl["y_um"], s=140, facecolors="none", edgecolors=_FLAG_COLOUR, linewidths=1.3,
-               zorder=5, label=f"flagged bifurcation ({len(fl)})", gid="flagged-circles")
-    if len(fl) <= _MAX_NUMBERED:
-        for _, r in fl.iterrows():
-            ax.annotate(str(int(r["node_id"])), (r["x_um"], r["y_um"]), xytext=(5, 5), textcoords="offset points",
-                        fontsize=7, color=_FLAG_COLOUR, zorder=6,
-                        bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.8))
-    else:
-        numbered_note.append(f"{len(fl)} flagged bifurcations are circled but not numbered (too many to read); "
-                             "the bifurcation table lists them.")
-    return len(fl)
+    if "severity" in fl.columns:
+        fl = fl.sort_values("severity", ascending=False, kind="stable", na_position="last")
+    # The queue, not every junction, and at most _MAX_NUMBERED of it: more
+    # circles than that bury the network they are meant to point into.
+    shown = fl.head(_MAX_NUMBERED)
+    ax.scatter(shown["x_um"], shown["y_um"], s=140, facecolors="none", edgecolors=_FLAG_COLOUR, linewidths=1.3,
+               zorder=5, label=f"flagged bifurcation ({len(shown)})", gid="flagged-circles")
+    for _, r in shown.iterrows():
+        ax.annotate(str(int(r["node_id"])), (r["x_um"], r["y_um"]), xytext=(5, 5), textcoords="offset points",
+                    fontsize=7, color=_FLAG_COLOUR, zorder=6,
+                    bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.8))
+    if len(fl) > len(shown):
+        numbered_note.append(f"The maps circle the {len(shown)} most severe of the {len(fl)} flagged bifurcations; "
+                             "the bifurcation table and bifurcations.csv list them all.")
+    return len(shown)
+
+
+# Colour limits of the maps: these percentiles of the perfused segments'
+# values (a few stagnant or extreme segments would stretch the scale over
+# decades where nothing else lies); values beyond them take the end colours.
+_COLOUR_PERCENTILES = (2.0, 98.0)
+# The log axes of the scatter plots reach at most this many decades below
+# the median; values below are drawn on the axis's floor and counted.
+_FLOOR_DECADES = 4.0
+_MIN_SLOPE_POINTS = 20
+
+
+def _perfused(data):
+    """(S,) bool: segments the flow model perfuses (all, for a result from before the column)."""
+    if "perfused" in data.segments.columns:
+        return _bool_col(data.segments, "perfused")
+    return np.ones(len(data.segments), dtype=bool)
+
+
+def _robust_range(v):
+    """Colour limits of positive values: their 2nd and 98th percentiles (min and max when those meet)."""
+    lo, hi = np.percentile(v, _COLOUR_PERCENTILES)
+    if not hi > lo:
+        lo, hi = float(np.min(v)), float(np.max(v))
+    if not hi > lo:
+        lo, hi = lo / 2, hi * 2
+    return float(lo), float(hi)
+
+
+def _floored(ax, x, y):
+    """``y`` with values far below the median raised to a floor, those drawn there as triangles and counted."""
+    floor = 10 ** (np.log10(np.median(y)) - _FLOOR_DECADES)
+    low = y < floor
+    if low.any():
+        ax.scatter(x[low], np.full(low.sum(), floor), s=22, marker="v", color="#555555", lw=0, zorder=4,
+                   label=f"below {floor:.2g} ({int(low.sum())}), drawn at the axis floor")
+    return np.where(low, floor, y)
 
 
 def figure_map_level(data, notes):
@@ -164,9 +206,10 @@ def figure_map_level(data, notes):
     ax.add_collection(_centreline_collection(data, colours, zorder=3, gid="centrelines"))
     n = _flag_overlay(ax, data, notes)
     if n:
-        how = ", numbered by node id" if n <= _MAX_NUMBERED else ""
+        total = int(_bool_col(data.bifurcations, "flagged").sum())
+        which = f"the {n} most severe of {total} flagged" if total > n else f"flagged bifurcation ({n})"
         handles = handles + [Line2D([], [], ls="none", marker="o", mfc="none", mec=_FLAG_COLOUR, ms=9,
-                                    label=f"flagged bifurcation ({n}){how}")]
+                                    label=f"{which}, numbered by node id")]
     if seq is not None:
         cmap, norm = seq
         from matplotlib.cm import ScalarMappable
@@ -188,9 +231,9 @@ def figure_map_wss(data, notes):
     ax = fig.add_subplot()
     _map_axes(ax, data)
     wss = _col(data.segments, "wss_pa")
-    good = np.isfinite(wss) & (wss > 0)
+    good = np.isfinite(wss) & (wss > 0) & _perfused(data)
     if good.any():
-        lo, hi = np.nanmin(wss[good]), np.nanmax(wss[good])
+        lo, hi = _robust_range(wss[good])
         # A log scale when the range spans more than a decade, else the
         # colour steps would all sit at one end.
         norm = LogNorm(lo, hi) if hi > 10 * lo else Normalize(lo, hi)
@@ -198,10 +241,12 @@ def figure_map_wss(data, notes):
         grey.set_visible(not good.all())
         ax.add_collection(grey)
         lc = _centreline_collection(data, cmap="viridis", norm=norm, zorder=3, gid="centrelines")
-        arr = np.where(good, wss, np.nan)
+        arr = np.where(good, np.clip(wss, lo, hi), np.nan)
         lc.set_array(np.ma.masked_invalid(arr))
         ax.add_collection(lc)
-        cb = fig.colorbar(lc, ax=ax, shrink=0.8)
+        clipped = (wss[good] < lo).any(), (wss[good] > hi).any()
+        extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(clipped, "neither")
+        cb = fig.colorbar(lc, ax=ax, shrink=0.8, extend=extend)
         cb.set_label("wall shear stress (Pa)")
     else:
         _no_data(ax, "no wall shear stress (flow model not run)")
@@ -345,13 +390,14 @@ def figure_wss_diameter(data, notes):
     fig = _new_figure(6.4, 4.6)
     ax = fig.add_subplot()
     d, w = 2 * _col(data.segments, "radius_um"), _col(data.segments, "wss_pa")
-    ok = np.isfinite(d) & np.isfinite(w) & (w > 0) & (d > 0)
+    ok = np.isfinite(d) & np.isfinite(w) & (w > 0) & (d > 0) & _perfused(data)
     if not ok.any():
         _no_data(ax, "no wall shear stress (flow model not run)")
     else:
-        ax.scatter(d[ok], w[ok], s=14, color=OKABE_ITO[2], alpha=0.7, lw=0, label=f"segment ({ok.sum()})")
-        if w[ok].max() > 10 * w[ok].min():
-            _log_axes(ax, y=w[ok])
+        y = _floored(ax, d[ok], w[ok])
+        ax.scatter(d[ok], y, s=14, color=OKABE_ITO[2], alpha=0.7, lw=0, label=f"perfused segment ({ok.sum()})")
+        if y.max() > 10 * y.min():
+            _log_axes(ax, y=y)
         ax.legend(fontsize=8)
     ax.set_xlabel("diameter 2r (µm)")
     ax.set_ylabel("wall shear stress (Pa)")
@@ -364,21 +410,24 @@ def figure_flow_radius(data, notes):
     fig = _new_figure(6.4, 4.8)
     ax = fig.add_subplot()
     r, q = _col(data.segments, "radius_um"), np.abs(_col(data.segments, "flow_nl_min"))
-    ok = np.isfinite(r) & np.isfinite(q) & (r > 0) & (q > 0)
+    ok = np.isfinite(r) & np.isfinite(q) & (r > 0) & (q > 0) & _perfused(data)
     if not ok.any():
         _no_data(ax, "no flows (flow model not run)")
     else:
         lr, lq = np.log10(r[ok]), np.log10(q[ok])
-        ax.scatter(r[ok], q[ok], s=14, color=OKABE_ITO[0], alpha=0.7, lw=0, label=f"segment ({ok.sum()})")
+        y = _floored(ax, r[ok], q[ok])
+        ax.scatter(r[ok], y, s=14, color=OKABE_ITO[0], alpha=0.7, lw=0, label=f"perfused segment ({ok.sum()})")
         # The guide passes through the median point so it sits on the cloud.
         r_ref, q_ref = 10 ** np.median(lr), 10 ** np.median(lq)
         rg = np.array([r[ok].min(), r[ok].max()])
         ax.plot(rg, q_ref * (rg / r_ref) ** 3, color="k", lw=1.2, ls="--",
                 label="slope 3: Q ∝ r³ (Murray 1926)", gid="slope3")
-        if len(np.unique(lr)) > 1:
+        # A slope says something only over enough segments and radii: at
+        # least _MIN_SLOPE_POINTS and a factor of 1.5 between the radii.
+        if ok.sum() >= _MIN_SLOPE_POINTS and lr.max() - lr.min() >= np.log10(1.5):
             slope = np.polyfit(lr, lq, 1)[0]
-            ax.plot([], [], " ", label=f"least-squares slope {slope:.2f}")
-        _log_axes(ax, x=r[ok], y=q[ok])
+            ax.plot([], [], " ", label=f"least-squares slope {slope:.2f} ({ok.sum()} segments)")
+        _log_axes(ax, x=r[ok], y=y)
         ax.legend(fontsize=8, loc="upper left")
     ax.set_xlabel("segment radius (µm, log scale)")
     ax.set_ylabel("|flow| (nL/min, log scale)")
@@ -389,11 +438,12 @@ def figure_flow_radius(data, notes):
 _SAMPLE_BUILDERS = {
     "map_level": (figure_map_level, "Map by branching level",
                   "Projection of the mask along z (grey) with centrelines coloured by branching level "
-                  "(Okabe–Ito colours); line width follows radius. Circles: flagged bifurcations, numbered "
-                  "by node id (the bifurcation table below)."),
+                  "(Okabe–Ito colours); line width follows radius. Circles: the review queue's most severe "
+                  f"bifurcations (up to {_MAX_NUMBERED}), numbered by node id (the bifurcation table below)."),
     "map_wss": (figure_map_wss, "Map by wall shear stress",
-                "The same projection with centrelines coloured by model wall shear stress (viridis); "
-                "dotted grey: segments without flow."),
+                "The same projection with centrelines coloured by model wall shear stress (viridis) of the "
+                "perfused segments; colour limits at their 2nd and 98th percentiles (values beyond take the end "
+                "colours); dotted grey: segments without flow."),
     "distributions": (figure_distributions, "Radius and length", "Histograms over all segments."),
     "radius_by_level": (figure_radius_by_level, "Radius by branching level",
                         "Segment radii per level (log axis); bars: level means; ×: ratio of the mean radius "

@@ -42,7 +42,7 @@ def _cortex_kind(**params: Any) -> VesselNetwork:
     p_ven = flow.get("venule_pressure_pa", 18.0 * MMHG_PA)
     model = flow.get("viscosity_model", "pries1994")
     res = network_flow_truth(
-        net, arteriole_pressure_pa=p_art, venule_pressure_pa=p_ven, config={"viscosity_model": model}
+        net, arteriole_pressure_pa=p_art, venule_pressure_pa=p_ven, viscosity_model=model
     )
     q = dict(zip(res.segments["segment_id"].tolist(), res.segments["flow_nl_min"].tolist()))
     for s in net.segments:
