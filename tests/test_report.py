@@ -173,16 +173,22 @@ def test_murray_plot_identity_and_flagged_points(sample):
     b = pd.read_csv(out / "bifurcations.csv")
     x = b["radius_parent_um"] ** 3
     y = b["radius_daughter1_um"] ** 3 + b["radius_daughter2_um"] ** 3
-    for gid, sel in (("flagged", b["flagged"].astype(bool)), ("not-flagged", ~b["flagged"].astype(bool))):
+    flagged = b["flagged"].astype(bool)
+    by_ratio = b["flag_reasons"].fillna("").astype(str).str.contains(r"(?:^|;)ratio_(?:high|low)(?:;|$)")
+    # flagged for the ratio apart from flagged for another reason (which may lie inside the limits)
+    for gid, sel in (("flagged", flagged & by_ratio), ("flagged-other", flagged & ~by_ratio),
+                     ("not-flagged", ~flagged)):
         pts = np.asarray([c for c in ax.collections if c.get_gid() == gid][0].get_offsets())
         want = np.c_[x[sel], y[sel]]
         assert len(pts) == len(want)
         assert np.allclose(pts[np.lexsort(pts.T)], want[np.lexsort(want.T)], rtol=1e-12)
     # The written SVG holds the same number of flagged markers (one <use> each).
     svg = ET.parse(out / "figures" / "murray.svg").getroot()
-    group = [g for g in svg.iter("{http://www.w3.org/2000/svg}g") if g.get("id") == "flagged"][0]
-    n_use = sum(1 for e in group.iter() if e.tag == "{http://www.w3.org/2000/svg}use")
-    assert n_use == int(b["flagged"].astype(bool).sum())
+    n_use = 0
+    for gid in ("flagged", "flagged-other"):
+        group = [g for g in svg.iter("{http://www.w3.org/2000/svg}g") if g.get("id") == gid][0]
+        n_use += sum(1 for e in group.iter() if e.tag == "{http://www.w3.org/2000/svg}use")
+    assert n_use == int(flagged.sum())
 
 
 def test_flow_guide_has_slope_three(sample):

@@ -338,9 +338,18 @@ def figure_murray(data, notes):
         m = ok & ~flag
         ax.scatter(x[m], y[m], s=22, color=OKABE_ITO[0], alpha=0.8, lw=0, label=f"not flagged ({m.sum()})",
                    gid="not-flagged")
-        m = ok & flag
-        ax.scatter(x[m], y[m], s=40, marker="X", color=OKABE_ITO[3], lw=0, label=f"flagged ({m.sum()})",
+        # Flagged for the ratio (outside the dashed limits, beyond its
+        # uncertainty) apart from flagged for something else (exponent,
+        # angle, more than two daughters), which may well lie inside them.
+        reasons = (b["flag_reasons"].fillna("").astype(str) if "flag_reasons" in b.columns
+                   else pd.Series([""] * len(b), index=b.index))
+        by_ratio = reasons.str.contains(r"(?:^|;)ratio_(?:high|low)(?:;|$)").to_numpy()
+        m = ok & flag & by_ratio
+        ax.scatter(x[m], y[m], s=40, marker="X", color=OKABE_ITO[3], lw=0, label=f"flagged: ratio ({m.sum()})",
                    gid="flagged")
+        m = ok & flag & ~by_ratio
+        ax.scatter(x[m], y[m], s=34, marker="o", facecolors="none", edgecolors=OKABE_ITO[3], lw=1.2,
+                   label=f"flagged: exponent, angle or more daughters ({m.sum()})", gid="flagged-other")
         _log_axes(ax, x=[lo, hi], y=[lo, hi])
         ax.set_xlim(lo, hi)
         ax.set_ylim(lo, hi)
