@@ -191,7 +191,8 @@ def _parser():
     b.add_argument("--force", action="store_true", help="redo samples that already have a matching result")
     b.add_argument("--overwrite", action="store_true", help="write into a non-empty folder that holds no batch")
     b.add_argument("--quiet", action="store_true", help="no progress lines")
-    b.add_argument("--report", action="store_true", help="also write the study report (report.html)")
+    b.add_argument("--report", action="store_true",
+                   help="also write the study report (report.html) and each sample's report, linked from it")
 
     d = sub.add_parser("demo", help="analyse the bundled synthetic volumes")
     d.add_argument("-o", "--output", default="results", help="folder for one result folder per volume")
@@ -337,7 +338,7 @@ def _cmd_batch(args):
     if args.report:
         from .report import build_report
 
-        page = build_report(res.outdir, overwrite=True)
+        page = build_report(res.outdir, overwrite=True, sample_reports=True)
         _Reporter(args.quiet).info(f"wrote {page}")
     return 1 if res.n_failed else 0
 

@@ -1067,3 +1067,44 @@ def test_study_report_shows_the_network_exponent_or_says_it_is_absent(study, tmp
             for v in c["murray_exponent_network"]:
                 assert _fmt(v) in section
             assert "exact coverage" in section
+
+
+def test_batch_report_builds_and_links_each_sample_report(study, tmp_path):
+    # batch --report: every sample gets its own report, and the study page
+    # links it (a link inside the batch folder; nothing is fetched into the page).
+    out, rows = study
+    copy = tmp_path / "batch"
+    shutil.copytree(out, copy)
+    report.build_report(copy, overwrite=True, sample_reports=True)
+    text = (copy / "report.html").read_text(encoding="utf-8")
+    for r in rows:
+        assert (copy / r["sample_id"] / "report.html").is_file()
+        assert f'href="{r["sample_id"]}/report.html"' in text
+    p = _parse(copy / "report.html")
+    for tag, attr, ref in p.refs:
+        local = tag == "a" and attr == "href" and (copy / ref).is_file() and ref.endswith("/report.html")
+        assert ref.startswith("data:") or (ref.startswith("#") and ref[1:] in p.ids) or local, (tag, ref[:80])
+    # Without overwrite an existing sample report is never replaced, and nothing is written.
+    fresh = tmp_path / "batch2"
+    shutil.copytree(out, fresh)
+    (fresh / rows[0]["sample_id"] / "report.html").write_text("mine")
+    (fresh / "report.html").unlink()
+    shutil.rmtree(fresh / "figures")
+    before = sorted(p.relative_to(fresh) for p in fresh.rglob("*"))
+    with pytest.raises(pipeline.InputError, match="already have a report"):
+        report.build_report(fresh, sample_reports=True)
+    assert sorted(p.relative_to(fresh) for p in fresh.rglob("*")) == before
+    assert (fresh / rows[0]["sample_id"] / "report.html").read_text() == "mine"
+
+
+def test_a_warning_of_every_sample_is_said_once():
+    from types import SimpleNamespace
+
+    from pipeline.report.build import _shared_warnings
+
+    def one(sid, *warnings):
+        return sid, "g", SimpleNamespace(run={"warnings": list(warnings)})
+
+    got = _shared_warnings([one("a", "w1", "w2"), one("b", "w1"), one("c", "w1", "w3"),
+                            one("d", "w1"), one("e", "w1", "w2", "w2")])
+    assert got == ["every sample: w1", "a, e: w2", "c: w3"]

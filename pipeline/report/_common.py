@@ -108,6 +108,14 @@ def _col(df, name):
     return np.full(len(df), np.nan)
 
 
+def _text_col(df, name):
+    """A text column as str, "" where missing (a column read back from CSV with no text at all is float NaN)."""
+    if name not in df.columns:
+        return pd.Series([""] * len(df), index=df.index, dtype=object)
+    s = df[name]
+    return s.astype(object).where(s.notna(), "").astype(str)
+
+
 def _bool_col(df, name):
     if name not in df.columns:
         return np.zeros(len(df), bool)

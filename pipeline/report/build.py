@@ -11,6 +11,7 @@ import os
 import shutil
 import warnings
 from pathlib import Path
+from urllib.parse import quote
 
 import pandas as pd
 
@@ -32,7 +33,7 @@ from .page import (
 # --------------------------------------------------------------------------- entry point
 
 
-def build_report(outdir, *, mask_path=None, overwrite=False, **renamed) -> Path:
+def build_report(outdir, *, mask_path=None, overwrite=False, sample_reports=False, **renamed) -> Path:
     """Build ``report.html`` and ``figures/`` for a sample or a batch folder.
 
     Parameters
@@ -47,6 +48,10 @@ def build_report(outdir, *, mask_path=None, overwrite=False, **renamed) -> Path:
         batch folder.
     overwrite : bool
         Replace an existing report (``report.html`` and ``figures/``).
+    sample_reports : bool, keyword-only
+        For a batch folder: also build every sample's own report (in its
+        result folder, replaced only with ``overwrite``), which the study
+        page then links. Ignored for a sample folder.
     **renamed
         ``mask``, the earlier name of ``mask_path`` (deprecated: a
         FutureWarning, once).
@@ -81,10 +86,25 @@ def build_report(outdir, *, mask_path=None, overwrite=False, **renamed) -> Path:
     if kind == "batch":
         if mask_path is not None:
             raise InputError("applies to one sample; a batch folder reads each sample's own", param="mask_path")
+        if sample_reports:
+            _sample_reports(out, overwrite=overwrite)
         page, figures = _study_report(out)
     else:
         page, figures = _sample_report(out, mask=mask_path)
     return _publish(out, page, figures)
+
+
+def _sample_reports(out, *, overwrite):
+    """Every sample folder of a batch gets its own report; refused, before any is built, where one would be replaced."""
+    cohort = _read_table(out / "cohort_summary.csv", ("sample_id", "group"), "cohort summary")
+    folders = [out / str(sid) for sid in cohort["sample_id"]]
+    folders = [f for f in folders if f.is_dir() and _folder_kind(f) == "sample"]
+    taken = [f for f in folders if (f / REPORT_NAME).exists() or (f / FIGURE_DIR).exists()]
+    if taken and not overwrite:
+        raise InputError(f"report: {len(taken)} sample folder(s) already have a report (first: '{taken[0]}'); "
+                         "pass overwrite=True to replace them")
+    for f in folders:
+        _publish(f, *_sample_report(f, mask=None))
 
 
 def _folder_kind(out):
@@ -372,6 +392,24 @@ def _comparison_html(comparison, bookkeeping, cohort):
     return parts
 
 
+def _shared_warnings(samples):
+    """The samples' warnings, each said once: with the samples it concerns, or "every sample"."""
+    by_text = {}
+    read = [(sid, sd) for sid, _, sd in samples if sd is not None]
+    for sid, sd in read:
+        for w in dict.fromkeys(sd.run.get("warnings") or []):
+            by_text.setdefault(w, []).append(sid)
+    out = []
+    for w, sids in by_text.items():
+        if len(sids) == len(read) and len(read) > 1:
+            out.append(f"every sample: {w}")
+        elif len(sids) > 3:
+            out.append(f"{len(sids)} samples ({', '.join(sids[:3])} and {len(sids) - 3} more): {w}")
+        else:
+            out.append(f"{', '.join(sids)}: {w}")
+    return out
+
+
 def _sample_section_html(out, sid, grp, sd, *, bad_reviews, thumbs):
     """One sample's section of the study page: inputs, measures, warnings, review and map."""
     sec = [f"<section id=\"{_esc(_anchor(sid))}\"><h3>{_esc(sid)} <span class=\"muted\">({_esc(grp)})</span>"
@@ -391,7 +429,10 @@ def _sample_section_html(out, sid, grp, sd, *, bad_reviews, thumbs):
     if sid in thumbs:
         sec.append(_figure_html(thumbs[sid]))
     if (out / sid / REPORT_NAME).is_file():
-        sec.append(f"<p class=\"note\">This sample has its own report: {_esc(sid)}/{REPORT_NAME}.</p>")
+        # a link within the batch folder: opened from the page, nothing fetched into it
+        href = f"{quote(sid)}/{REPORT_NAME}"
+        sec.append(f"<p><a href=\"{_esc(href)}\">The full report of {_esc(sid)}</a> (its own page, in the "
+                   "sample's folder).</p>")
     sec.append("</section>")
     return "".join(sec)
 
@@ -413,7 +454,7 @@ def _study_report(out):
     rendered = _render_all(figs)
     parts = _study_header(out, cohort, batch)
     parts.append(_samples_html(samples))
-    allw = [f"{sid}: {w}" for sid, _, sd in samples if sd is not None for w in (sd.run.get("warnings") or [])]
+    allw = _shared_warnings(samples)
     parts.append("<h2 id=\"warnings\">Warnings and notes</h2><h3>From the analyses</h3>" + _warnings_html(allw)
                  + "<h3>From the report</h3>" + _warnings_html(notes))
     parts.append("<h2 id=\"measures\">Measures by group</h2><div class=\"grid\">"

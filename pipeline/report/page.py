@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import pandas as pd
 
-from ._common import _DPI, _bool_col, _esc, _fmt, _kv_table, _num, _table
+from ._common import _DPI, _bool_col, _esc, _fmt, _kv_table, _num, _table, _text_col
 from .plausibility import (
     DIRECTION_CONFIDENCE_MIN, _flow_cfg, flow_uncertainty, plausibility_checks, plausibility_messages,
 )
@@ -340,7 +340,7 @@ def _bifurcation_html(b, review, summary=None):
     if "severity" in fl.columns:
         fl["severity"] = [_severity_text(v) for v in fl["severity"]]
     if "flag_reasons" in fl.columns:
-        fl["flag_reasons"] = fl["flag_reasons"].fillna("").astype(str).str.replace(";", ", ")
+        fl["flag_reasons"] = _text_col(fl, "flag_reasons").str.replace(";", ", ")
     fl, note = _review_table(fl, review)
     shown = "" if len(fl) <= _MAX_TABLE_ROWS else (
         f"<p class=\"note\">The {_MAX_TABLE_ROWS} most severe of {len(fl)} flagged junctions; bifurcations.csv "

@@ -19,7 +19,7 @@ from matplotlib.lines import Line2D
 from ..errors import InputError
 from ._common import (
     FLOW_FIGURES, OKABE_ITO, SAMPLE_FIGURES, _FLAG_COLOUR, _MASK_GREY, _MAX_NUMBERED, _bool_col, _col,
-    _level_colours, _log_axes, _new_figure, _no_data,
+    _level_colours, _log_axes, _new_figure, _no_data, _text_col,
 )
 from .plausibility import _caption_intervals, _caption_plausibility, figure_flow_intervals, figure_flow_plausibility
 
@@ -341,9 +341,7 @@ def figure_murray(data, notes):
         # Flagged for the ratio (outside the dashed limits, beyond its
         # uncertainty) apart from flagged for something else (exponent,
         # angle, more than two daughters), which may well lie inside them.
-        reasons = (b["flag_reasons"].fillna("").astype(str) if "flag_reasons" in b.columns
-                   else pd.Series([""] * len(b), index=b.index))
-        by_ratio = reasons.str.contains(r"(?:^|;)ratio_(?:high|low)(?:;|$)").to_numpy()
+        by_ratio = _text_col(b, "flag_reasons").str.contains(r"(?:^|;)ratio_(?:high|low)(?:;|$)").to_numpy()
         m = ok & flag & by_ratio
         ax.scatter(x[m], y[m], s=40, marker="X", color=OKABE_ITO[3], lw=0, label=f"flagged: ratio ({m.sum()})",
                    gid="flagged")
