@@ -31,8 +31,9 @@ _OPTION_OF = {"overwrite": "--overwrite", "spacing": "--spacing", "threshold": "
               "scheduler": "--scheduler", "workers": "--workers", "threads": "--threads",
               "worker_timeout": "--worker-timeout", "memory_limit": "--memory-limit", "config": "--config"}
 _OPTION_OF_COMMAND = {"analyze": {"mask": "MASK"},
+                      "view": {"path": "--screenshot", "node_id": "--bifurcation", "mask_path": "--mask",
+                               "size": "--size"},
                       "report": {"mask": "--mask", "mask_path": "--mask"},
-                      "view": {"path": "--screenshot", "node_id": "--bifurcation", "mask_path": "--mask"},
                       "synth": {"path": "--output", "artefacts": "--artefacts", "seed": "--seed",
                                 "roughness": "--roughness", "specks": "--specks", "holes": "--holes"},
                       "score": {"path": "--output"}, "summarize": {"review": "--apply-review"}}
@@ -228,6 +229,8 @@ def _review_parsers(sub):
                    help="measure that colours the centrelines (default: radius)")
     v.add_argument("--bifurcation", type=int, metavar="NODE_ID", help="centre and zoom on this junction")
     v.add_argument("--screenshot", metavar="FILE.png", help="render a picture without a window, then exit")
+    v.add_argument("--size", nargs=2, type=int, metavar=("W", "H"), default=(1024, 768),
+                   help="width and height of the screenshot in pixels (default: 1024 768)")
     v.add_argument("--overwrite", action="store_true", help="replace an existing screenshot file")
 
 
@@ -407,7 +410,8 @@ def _cmd_view(args):
                          "pip install 'vesselflow[viewer]'") from None
     if args.screenshot:
         viewer.render_screenshot(args.outdir, args.screenshot, mask_path=args.mask, colour_by=args.colour_by,
-                                 bifurcation=args.bifurcation, overwrite=args.overwrite)
+                                 bifurcation=args.bifurcation, overwrite=args.overwrite,
+                                 size=(args.size[1], args.size[0]))
         print(f"vesselflow: wrote {args.screenshot}", file=sys.stderr)
         return 0
     import napari

@@ -521,6 +521,25 @@ def verify_result(outdir):
     return problems
 
 
+def _not_a_result(out, missing):
+    """Why ``out`` is not a result folder, and what to pick instead."""
+    if not out.exists():
+        return f"result folder '{out}' does not exist; expected a folder written by vesselflow analyze"
+    if not out.is_dir():
+        return f"'{out}' is a file; expected a result folder written by vesselflow analyze"
+    if (out / "batch.json").is_file() or (out / "cohort_summary.csv").is_file():
+        samples = sorted(p.name for p in out.iterdir() if p.is_dir() and (p / "run.json").is_file())
+        shown = ", ".join(samples[:5]) + (f" and {len(samples) - 5} more" if len(samples) > 5 else "")
+        pick = f"; pick one of its {len(samples)} samples ({shown}), e.g. '{out / samples[0]}'" if samples else ""
+        return f"'{out}' is a batch folder, not one sample's result{pick}"
+    if not (out / "run.json").is_file():
+        found = sorted(p.name for p in out.iterdir())[:3]
+        held = f" (it holds {', '.join(found)}{', ...' if len(found) == 3 else ''})" if found else " (it is empty)"
+        return (f"'{out}' is not a vesselflow result folder{held}; expected a folder written by "
+                "vesselflow analyze (run.json, segments.csv, ...)")
+    return f"result folder '{out}': expected a complete result, missing {', '.join(missing)}"
+
+
 def load_result(outdir, *, verify=True):
     """Read a result folder written by :func:`write_result`.
 
@@ -541,7 +560,7 @@ def load_result(outdir, *, verify=True):
     out = Path(outdir)
     missing = [f for f in RESULT_FILES if not (out / f).is_file()]
     if missing:
-        raise InputError(f"result folder '{out}': expected a complete result, missing {', '.join(missing)}")
+        raise InputError(_not_a_result(out, missing))
     if verify:
         run = _read_json(out / "run.json")
         if not isinstance(run, dict):

@@ -110,8 +110,13 @@ def test_layers_in_physical_units(display, folder):
         assert np.all(np.abs(v.layers["nodes"].data - want) <= 0.5 * np.array(SPACING) + 1e-9)
         flagged = _flagged(folder)
         assert len(v.layers["flagged bifurcations"].data) == len(flagged) > 0
-        # Flagged markers not yet reviewed are magenta.
-        assert np.allclose(v.layers["flagged bifurcations"].face_color[:, :3], MAGENTA / 255)
+        # Flagged markers not yet reviewed are magenta rings: transparent inside, so the vessels show.
+        layer = v.layers["flagged bifurcations"]
+        assert np.allclose(layer.border_color[:, :3], MAGENTA / 255)
+        assert np.allclose(layer.face_color[:, 3], 0.0)
+        from pipeline.viewer.panel import _scale_bar
+
+        assert _scale_bar(v).visible  # a scale bar in µm on the canvas
         # The centrelines span the same world box as the mask (both in µm).
         lo, hi = v.layers["centrelines"].extent.world
         mlo, mhi = v.layers["mask"].extent.world
@@ -181,7 +186,7 @@ def test_review_survives_closing_and_reopening(display, folder, tmp_path):
         assert all(shown[n] == ("", "") for n in flagged[2:])
         # The artefact marker turned grey (README.md: artefact grey).
         colours = dict(zip(v.layers["flagged bifurcations"].features["node_id"],
-                           v.layers["flagged bifurcations"].face_color[:, :3].tolist()))
+                           v.layers["flagged bifurcations"].border_color[:, :3].tolist()))
         assert np.allclose(colours[flagged[0]], [0.5, 0.5, 0.5])
         assert np.allclose(colours[flagged[2]], MAGENTA / 255)
     finally:
@@ -202,21 +207,25 @@ def test_plugin_reader_and_widget(display, folder):
         v.close()
 
 
-def test_screenshot_centres_the_highlighted_bifurcation(display, folder, tmp_path):
+def test_screenshot_shows_the_junction_inside_its_ring(display, folder, tmp_path):
     from PIL import Image
 
     node = sorted(_flagged(folder))[0]
     shot = tmp_path / "junction.png"
-    assert main(["view", str(folder), "--screenshot", str(shot), "--bifurcation", str(node)]) == 0
+    assert main(["view", str(folder), "--screenshot", str(shot), "--bifurcation", str(node),
+                 "--size", "800", "600"]) == 0
     img = np.asarray(Image.open(shot).convert("RGB")).astype(int)  # read back with Pillow
+    assert img.shape == (600, 800, 3)  # the size asked for, width then height
     assert img.std() > 10  # not blank: more than one colour on the canvas
     h, w, _ = img.shape
-    centre = img[h // 2 - 4:h // 2 + 5, w // 2 - 4:w // 2 + 5]
-    # The marker is drawn opaque without depth test, so its pixels are the exact colour;
-    # 10 levels leave room for antialiasing of a neighbouring edge.
-    assert np.all(np.abs(centre - MAGENTA).max(axis=-1) <= 10)
-    # Away from the centre the picture is not all magenta (the marker is a spot, not a fill).
-    assert (np.abs(img - MAGENTA).max(axis=-1) <= 10).mean() < 0.5
+    centre = img[h // 2 - 2:h // 2 + 3, w // 2 - 2:w // 2 + 3]
+    # The junction itself shows, not a marker: no magenta at the centre (the
+    # markers are rings); 10 levels leave room for antialiasing.
+    assert not np.any(np.abs(centre - MAGENTA).max(axis=-1) <= 10)
+    assert centre.max() > 40  # something is drawn there: vessel or centreline, not the black background
+    # The ring is there, round it.
+    magenta = np.abs(img - MAGENTA).max(axis=-1) <= 10
+    assert magenta.any() and magenta.mean() < 0.2
     assert main(["view", str(folder), "--screenshot", str(shot)]) == 2  # exists, no --overwrite
 
 
@@ -227,5 +236,38 @@ def test_view_rejects_bad_input(display, folder, tmp_path, capsys):
     assert "not a bifurcation" in capsys.readouterr().err
     assert main(["view", str(folder), "--screenshot", str(tmp_path / "a.png"), "--bifurcation", "99999"]) == 2
     assert main(["view", str(tmp_path / "missing"), "--screenshot", str(tmp_path / "a.png")]) == 2
-    assert "expected a complete result" in capsys.readouterr().err
+    assert "does not exist" in capsys.readouterr().err
+    assert main(["view", str(folder), "--screenshot", str(tmp_path / "a.png"), "--size", "10", "10"]) == 2
+    assert "--size" in capsys.readouterr().err
     assert not (tmp_path / "a.png").exists()
+
+
+def test_keys_step_through_the_queue_and_record_decisions(display, folder, tmp_path):
+    from pipeline import viewer as V
+
+    out = tmp_path / "copy"
+    shutil.copytree(folder, out)
+    v, panel = V.open_result(out, show=False)
+    try:
+        keys = v.window._qt_viewer._key_map_handler  # the handler napari feeds real key presses to
+        order = [int(r["node"]) for r in panel.table_rows()]
+        keys.press_key("n")
+        assert panel.current_node == order[0]
+        keys.press_key("x")  # artefact
+        keys.press_key("n")
+        keys.press_key("c")  # confirmed
+        keys.press_key("b")
+        assert panel.current_node == order[0]
+        saved = {int(r["node_id"]): r["decision"] for r in _rows(out / "review.csv")}
+        assert saved == {order[0]: "artefact", order[1]: "confirmed"}
+        # the parent and daughters of the junction under review are drawn and labelled
+        labels = list(v.layers["current labels"].features["label"])
+        assert labels[0] == "parent" and "daughter 1" in labels
+        from pipeline.viewer.panel import _text_overlay
+
+        assert f"junction {order[0]} (node id)" in _text_overlay(v).text
+        before = v.dims.ndisplay
+        panel.toggle_ndisplay()
+        assert v.dims.ndisplay != before
+    finally:
+        v.close()

@@ -26,11 +26,18 @@ Layers:
 ``nodes``
     All nodes, light grey.
 ``flagged bifurcations``
-    The flagged junctions, drawn over everything else; magenta until
-    reviewed, then orange (``confirmed``), grey (``artefact``) or light blue
-    (``unsure``).
+    The flagged junctions as rings round them (transparent inside, so the
+    junction shows), drawn over everything else; magenta until reviewed, then
+    orange (``confirmed``), grey (``artefact``) or light blue (``unsure``).
 ``current bifurcation``
     A white ring round the junction under review.
+``current vessels``, ``current labels``
+    Its parent and daughters, drawn white over the other centrelines and
+    labelled.
+
+The canvas also shows a scale bar (µm) and, in its text, the node id of the
+junction under review. Keys: N next, B back, C confirmed, X artefact, U
+unsure.
 
 The review panel lists the flagged junctions in a sortable table, at first
 by decreasing ``severity`` (deviation from Murray's law in standard

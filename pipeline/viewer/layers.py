@@ -20,10 +20,10 @@ from ..review_session import review_queue
 
 
 CENTRELINE_COLORMAP = "viridis"
-#: Face colour of a flagged junction not yet reviewed (magenta: not in viridis,
+#: Ring colour of a flagged junction not yet reviewed (magenta: not in viridis,
 #: so it never blends into the centreline colours).
 FLAGGED_RGBA = (1.0, 0.0, 1.0, 1.0)
-#: Face colour of a reviewed flagged junction, per decision.
+#: Ring colour of a reviewed flagged junction, per decision.
 DECISION_RGBA = {
     "confirmed": (1.0, 0.55, 0.0, 1.0),
     "artefact": (0.5, 0.5, 0.5, 1.0),
@@ -34,11 +34,19 @@ NODE_RGBA = (0.85, 0.85, 0.85, 1.0)
 CURRENT_RGBA = (1.0, 1.0, 1.0, 1.0)
 
 _META_KEY = "vesselflow_result"
-# Markers are sized from the local vessel radius so they read as "this junction"
-# without hiding the vessels round it: a flagged marker a little wider than the
-# parent vessel, the ring round it wider still, and the close-up view a few
-# parent diameters across (never below 40 µm, so thin capillaries keep context).
-_FLAG_SIZE_RADII = 2.4
+# Markers are rings sized from the local vessel radius, so they read as "this
+# junction" without hiding the vessels they point at: a flagged junction's ring
+# lies outside its parent's wall (diameter 3.2 parent radii, the line a twelfth
+# of it), the ring of the junction under review wider still, and the close-up
+# view a few parent diameters across (never below 40 µm, so thin capillaries
+# keep context).
+_FLAG_SIZE_RADII = 3.2
+_FLAG_RING_WIDTH = 0.08
+# Colour limits of the centrelines: these percentiles of the finite values (a
+# few extreme segments would otherwise make every other vessel one colour),
+# on a log scale for flows and shear stresses, which span decades.
+_COLOUR_PERCENTILES = (2.0, 98.0)
+_LOG_MEASURES = ("flow", "wss")
 
 
 # ---------------------------------------------------------------------------
@@ -75,20 +83,38 @@ def read_mask_for(result: tables.Result, mask_path: str | os.PathLike[str] | Non
 
 
 def _colours(values: np.ndarray, *, measure: str):
-    """RGBA per value and the colour limits (grey for NaN)."""
-    finite = values[np.isfinite(values)]
+    """RGBA per value and the colour limits (grey for NaN; log scale, positive values only, for flow and shear).
+
+    Returns
+    -------
+    rgba : (S, 4) float32 ndarray
+    limits : (float, float)
+        The values at the two ends of the colour map (values beyond take the
+        end colours).
+    """
+    values = np.asarray(values, dtype=float)
+    log = measure in _LOG_MEASURES
+    ok = np.isfinite(values) & ((values > 0) if log else True)
+    finite = values[ok]
     if finite.size:
-        lo, hi = float(finite.min()), float(finite.max())
+        lo, hi = (float(x) for x in np.percentile(finite, _COLOUR_PERCENTILES))
+        if not hi > lo:
+            lo, hi = float(finite.min()), float(finite.max())
     else:
-        lo, hi = 0.0, 1.0
+        lo, hi = (1.0, 10.0) if log else (0.0, 1.0)
     if measure == "murray_ratio" and finite.size:
         # Centre the scale on the cube law (ratio 1) so above and below read alike.
         half = max(abs(hi - 1.0), abs(1.0 - lo), 1e-6)
         lo, hi = 1.0 - half, 1.0 + half
-    span = hi - lo if hi > lo else 1.0
-    t = np.clip((np.nan_to_num(values, nan=lo) - lo) / span, 0.0, 1.0)
-    rgba = np.asarray(ensure_colormap(CENTRELINE_COLORMAP).map(t), dtype=np.float32).reshape(-1, 4)
-    rgba[~np.isfinite(values)] = NO_VALUE_RGBA
+    if log:
+        a, b = np.log10(lo), np.log10(hi) if hi > lo else np.log10(lo) + 1.0
+        t = (np.log10(np.where(ok, values, lo)) - a) / (b - a)
+    else:
+        span = hi - lo if hi > lo else 1.0
+        t = (np.where(ok, values, lo) - lo) / span
+    rgba = np.asarray(ensure_colormap(CENTRELINE_COLORMAP).map(np.clip(t, 0.0, 1.0)),
+                      dtype=np.float32).reshape(-1, 4)
+    rgba[~ok] = NO_VALUE_RGBA
     return rgba, (lo, hi)
 
 
@@ -168,8 +194,8 @@ def result_layers(result: tables.Result, *, mask: np.ndarray | None = None, colo
     frad = flag["radius_parent_um"].to_numpy(float) if len(flag) else np.zeros(0)
     layers.append((fpos, dict(
         name="flagged bifurcations", size=_FLAG_SIZE_RADII * np.where(np.isfinite(frad), frad, 2.0),
-        face_color=_flag_colours(flag["node_id"], decisions),
-        border_width=0, blending="translucent_no_depth",
+        face_color="transparent", border_color=_flag_colours(flag["node_id"], decisions),
+        border_width=_FLAG_RING_WIDTH, border_width_is_relative=True, blending="translucent_no_depth",
         features=pd.DataFrame({"node_id": flag["node_id"].to_numpy(np.int64) if len(flag) else []}),
         metadata=dict(meta)), "points"))
     return layers

@@ -18,11 +18,19 @@ from .. import review as rv, tables
 from ..errors import InputError
 from ..review_session import ReviewSession
 from .layers import (
-    CENTRELINE_COLORMAP, _META_KEY, _centreline_vectors, _colours, _flag_colours, read_mask_for, result_layers,
+    CENTRELINE_COLORMAP, _LOG_MEASURES, _META_KEY, _centreline_vectors, _colours, _flag_colours, read_mask_for,
+    result_layers,
 )
 
 
 _RING_SIZE_RADII = 4.0
+# Keys of the review (viewer-wide; none of them is a key of napari's points,
+# vectors or image layers, so a keystroke never edits a layer instead).
+_NEXT_KEY, _PREVIOUS_KEY = "n", "b"
+_DECISION_KEYS = {"confirmed": "c", "artefact": "x", "unsure": "u"}
+# The parent and daughters of the junction under review: white, wider than
+# the other centrelines, each labelled.
+_CURRENT_VESSELS_RGBA = (1.0, 1.0, 1.0, 1.0)
 _VIEW_RADII = 8.0
 _VIEW_MIN_UM = 40.0
 
@@ -38,11 +46,20 @@ def _camera(viewer):
 
 
 def _text_overlay(viewer):
+    return _overlay(viewer, "text")
+
+
+def _scale_bar(viewer):
+    return _overlay(viewer, "scale_bar")
+
+
+def _overlay(viewer, name):
+    # napari 0.9 moved the canvas overlays to viewer.canvas.overlays.
     canvas = getattr(viewer, "canvas", None)
     overlays = getattr(canvas, "overlays", None)
-    if overlays is not None and hasattr(overlays, "text"):
-        return overlays.text
-    return viewer.text_overlay
+    if overlays is not None and hasattr(overlays, name):
+        return getattr(overlays, name)
+    return getattr(viewer, f"{name}_overlay" if name == "text" else name)
 
 
 # ---------------------------------------------------------------------------
@@ -171,12 +188,16 @@ class ReviewPanel(QtWidgets.QWidget):
         lay.addWidget(self.table, 2)
 
         nav = QtWidgets.QHBoxLayout()
-        self.prev_button = QtWidgets.QPushButton("◀ Previous")
-        self.next_button = QtWidgets.QPushButton("Next ▶")
+        self.prev_button = QtWidgets.QPushButton("◀ Previous (B)")
+        self.next_button = QtWidgets.QPushButton("Next (N) ▶")
         self.prev_button.clicked.connect(self.previous)
         self.next_button.clicked.connect(self.next)
+        self.ndisplay_button = QtWidgets.QPushButton("2-D / 3-D")
+        self.ndisplay_button.setToolTip("Switch between a 2-D slice and the 3-D view")
+        self.ndisplay_button.clicked.connect(self.toggle_ndisplay)
         nav.addWidget(self.prev_button)
         nav.addWidget(self.next_button)
+        nav.addWidget(self.ndisplay_button)
         lay.addLayout(nav)
 
         self.details = QtWidgets.QLabel("")
@@ -188,7 +209,8 @@ class ReviewPanel(QtWidgets.QWidget):
         dec = QtWidgets.QHBoxLayout()
         self.decision_buttons = {}
         for d in rv.DECISIONS:
-            b = QtWidgets.QPushButton(d.capitalize())
+            key = _DECISION_KEYS[d]
+            b = QtWidgets.QPushButton(f"{d.capitalize()} ({key.upper()})")
             b.setCheckable(True)
             b.clicked.connect(lambda _checked=False, d=d: self.decide(d))
             dec.addWidget(b)
@@ -252,10 +274,26 @@ class ReviewPanel(QtWidgets.QWidget):
         ring = self._layer("current bifurcation")
         if ring is None:
             self.viewer.add_points(np.zeros((0, 3)), name="current bifurcation", size=1.0,
-                                   face_color="transparent", border_color="white", border_width=0.12,
+                                   face_color="transparent", border_color="white", border_width=0.06,
                                    border_width_is_relative=True, blending="translucent_no_depth",
                                    metadata={_META_KEY: str(Path(result.path).resolve())})
+        if self._layer("current vessels") is None:
+            meta = {_META_KEY: str(Path(result.path).resolve())}
+            self.viewer.add_vectors(np.zeros((0, 2, 3)), name="current vessels", edge_color="white",
+                                    edge_width=1.0, vector_style="line", blending="translucent_no_depth",
+                                    metadata=dict(meta))
+            self.viewer.add_points(np.zeros((0, 3)), name="current labels", size=0.1, face_color="transparent",
+                                   border_width=0, text={"string": "{label}", "color": "white", "size": 10,
+                                                         "anchor": "upper_left"},
+                                   features=pd.DataFrame({"label": pd.Series([], dtype=str)}),
+                                   blending="translucent_no_depth", metadata=dict(meta))
+        for name in ("flagged bifurcations", "current bifurcation", "nodes", "current labels"):
+            layer = self._layer(name)
+            if layer is not None:
+                layer.editable = False  # a stray keystroke must not move or delete a marker
         self.viewer.layers.selection.active = self._layer("flagged bifurcations")
+        self._bind_keys()
+        self._show_scale_bar()
         available = rv.available_measures(result)
         model = self.colour_box.model()
         for i in range(self.colour_box.count()):
@@ -270,6 +308,32 @@ class ReviewPanel(QtWidgets.QWidget):
         self._enable(len(self.flagged) > 0)
         self.viewer.reset_view()
         self._base_zoom = float(_camera(self.viewer).zoom)
+
+    def _bind_keys(self):
+        """The review's keys on the viewer: N next, B back, C / X / U a decision."""
+        bindings = [(_NEXT_KEY, self.next), (_PREVIOUS_KEY, self.previous)]
+        bindings += [(key, lambda d=d: self.decide(d)) for d, key in _DECISION_KEYS.items()]
+        for key, action in bindings:
+            self.viewer.bind_key(key, lambda _viewer, f=action: f(), overwrite=True)
+
+    def _show_scale_bar(self):
+        """A scale bar in µm, the unit of the world frame."""
+        bar = _scale_bar(self.viewer)
+        bar.visible = True
+        layers = [layer for layer in self.viewer.layers if _META_KEY in layer.metadata]
+        if layers and hasattr(layers[0], "units"):
+            # napari 0.6 and later take the unit from the layers
+            for layer in layers:
+                layer.units = ("um",) * layer.ndim
+        else:
+            bar.unit = "um"
+
+    def toggle_ndisplay(self):
+        """Switch the canvas between 2-D and 3-D, staying on the junction under review."""
+        dims = self.viewer.dims
+        dims.ndisplay = 2 if dims.ndisplay == 3 else 3
+        if self.current_node is not None:
+            self.goto(self.current_node)
 
     def _layer(self, name):
         for layer in self.viewer.layers:
@@ -346,6 +410,7 @@ class ReviewPanel(QtWidgets.QWidget):
         if ring is not None:
             ring.data = np.asarray([pos])
             ring.size = np.asarray([_RING_SIZE_RADII * r0])
+        self._show_vessels(row)
         r = self._row_of(node_id)
         self._syncing = True
         if r is not None:
@@ -362,6 +427,48 @@ class ReviewPanel(QtWidgets.QWidget):
         self._enable(True)
         lines = self.session.details(node_id)
         self.details.setText("<br>".join([f"<b>{lines[0]}</b>"] + lines[1:]))
+        self._update_overlay()
+
+    def _show_vessels(self, row):
+        """Draw the parent and daughters of a junction over the other centrelines, each labelled."""
+        segs = self.result.segments
+        index = {int(s): i for i, s in enumerate(segs["segment_id"].to_numpy(np.int64))}
+        daughters = [int(x) for x in str(row.get("daughter_segments", "")).split(";") if x.strip().isdigit()]
+        roles = [("parent", int(row["parent_segment"]))] + [(f"daughter {k + 1}", d) for k, d in enumerate(daughters)]
+        vectors, points, labels = [], [], []
+        for label, sid in roles:
+            if sid not in index:
+                continue
+            p = np.asarray(self.result.centrelines[index[sid]], dtype=float)
+            if len(p) < 2:
+                continue
+            vectors.append(np.stack([p[:-1], np.diff(p, axis=0)], axis=1))
+            # the label two thirds of the way out from the junction, where the vessels have parted
+            near_start = np.linalg.norm(p[0] - np.asarray([row["z_um"], row["y_um"], row["x_um"]], float)) <= \
+                np.linalg.norm(p[-1] - np.asarray([row["z_um"], row["y_um"], row["x_um"]], float))
+            k = (2 * (len(p) - 1)) // 3
+            points.append(p[k] if near_start else p[len(p) - 1 - k])
+            labels.append(label)
+        lines = self._layer("current vessels")
+        if lines is not None:
+            r = segs["radius_um"].to_numpy(float)
+            lines.edge_width = float(np.clip(0.6 * np.nanmedian(r), 0.8, 6.0)) if r.size else 1.0
+            lines.data = np.concatenate(vectors) if vectors else np.zeros((0, 2, 3))
+        tags = self._layer("current labels")
+        if tags is not None:
+            tags.data = np.asarray(points) if points else np.zeros((0, 3))
+            tags.features = pd.DataFrame({"label": labels})
+            tags.text.refresh(tags.features)
+
+    def _update_overlay(self):
+        """The canvas text: the colour legend, and the junction under review with its node id."""
+        overlay = _text_overlay(self.viewer)
+        text = getattr(self, "_legend_text", "")
+        if self.current_node is not None:
+            c = self.session.counts()
+            text = f"junction {self.current_node} (node id); reviewed {c['reviewed']} of {c['flagged']}\n" + text
+        overlay.text = text
+        overlay.visible = True
 
     def _order(self) -> list[int]:
         return [self.table.item(r, 0).data(QtCore.Qt.ItemDataRole.UserRole) for r in range(self.table.rowCount())]
@@ -422,7 +529,7 @@ class ReviewPanel(QtWidgets.QWidget):
         self._update_title()
         layer = self._layer("flagged bifurcations")
         if layer is not None and len(self.flagged):
-            layer.face_color = _flag_colours(self.flagged["node_id"], self.session.decisions())
+            layer.border_color = _flag_colours(self.flagged["node_id"], self.session.decisions())
         self.status.setText(f"Saved {path.name} ({len(self.review)} decisions).")
 
     # -- colour ------------------------------------------------------------
@@ -459,8 +566,9 @@ class ReviewPanel(QtWidgets.QWidget):
         self.legend_bar.setPixmap(QtGui.QPixmap.fromImage(qimg).scaled(
             160, 12, QtCore.Qt.AspectRatioMode.IgnoreAspectRatio))
         self.legend_bar.setToolTip(f"{label}{unit_text}, {CENTRELINE_COLORMAP}; grey: no value")
-        overlay = _text_overlay(self.viewer)
-        # Two short lines: one long line is cut off on a screenshot-sized canvas.
-        overlay.text = (f"centrelines: {label}{(' [' + unit + ']') if unit else ''}\n"
-                        f"{lo:.3g} (purple) to {hi:.3g} (yellow), grey: none; flagged junctions: magenta")
-        overlay.visible = True
+        scale = ", log scale" if self.colour_by in _LOG_MEASURES else ""
+        # Short lines: one long line is cut off on a screenshot-sized canvas.
+        self._legend_text = (f"centrelines: {label}{(' [' + unit + ']') if unit else ''}{scale}\n"
+                             f"{lo:.3g} (purple) to {hi:.3g} (yellow), grey: none\n"
+                             "flagged junctions: magenta rings; white: parent and daughters")
+        self._update_overlay()

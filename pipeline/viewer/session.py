@@ -13,10 +13,14 @@ import numpy as np
 from qtpy import QtCore, QtWidgets
 
 from .. import review as rv, tables
+from ..errors import InputError
 from .panel import ReviewPanel, _camera
 
 
 _SCREENSHOT_SIZE = (768, 1024)
+_MIN_PIXELS, _MAX_PIXELS = 64, 8192
+# Share of the screen's free area an opened window takes, each way.
+_SCREEN_SHARE = 0.9
 
 
 # ---------------------------------------------------------------------------
@@ -55,6 +59,8 @@ def open_result(outdir, *, mask_path=None, colour_by="radius", show=True, viewer
     try:
         panel = ReviewPanel(viewer, outdir=outdir, mask_path=mask_path, colour_by=colour_by, add_layers=True)
         viewer.window.add_dock_widget(panel, name="Bifurcation review", area="right")
+        if own and show:
+            _fit_to_screen(viewer)
     except BaseException:
         if own:
             viewer.close()
@@ -62,14 +68,26 @@ def open_result(outdir, *, mask_path=None, colour_by="radius", show=True, viewer
     return viewer, panel
 
 
-def _realise_hidden(viewer):
+def _fit_to_screen(viewer):
+    """Most of the screen for the window (napari opens small, with a canvas too narrow beside the panel)."""
+    win = getattr(viewer.window, "_qt_window", None)
+    screen = QtWidgets.QApplication.primaryScreen()
+    if win is None or screen is None:
+        return
+    area = screen.availableGeometry()
+    win.resize(int(area.width() * _SCREEN_SHARE), int(area.height() * _SCREEN_SHARE))
+    win.move(area.x() + int(area.width() * (1 - _SCREEN_SHARE) / 2),
+             area.y() + int(area.height() * (1 - _SCREEN_SHARE) / 2))
+
+
+def _realise_hidden(viewer, size):
     # A never-shown Qt window has no GL surface and napari renders it black;
     # WA_DontShowOnScreen lets Qt create the surface without mapping a window.
     win = getattr(viewer.window, "_qt_window", None)
     if win is None:
         return
     win.setAttribute(QtCore.Qt.WidgetAttribute.WA_DontShowOnScreen, True)
-    win.resize(_SCREENSHOT_SIZE[1] + 400, _SCREENSHOT_SIZE[0] + 200)
+    win.resize(size[1] + 400, size[0] + 200)
     win.show()
     QtWidgets.QApplication.processEvents()
 
@@ -103,10 +121,11 @@ def render_screenshot(outdir, path, *, mask_path=None, colour_by="radius", bifur
     InputError
         Bad folder, junction or file name, or an existing file without ``overwrite``.
     """
+    size = _checked_size(size)
     out = tables.check_new_file(path, suffix=".png", overwrite=overwrite)
     viewer, panel = open_result(outdir, mask_path=mask_path, colour_by=colour_by, show=False)
     try:
-        _realise_hidden(viewer)
+        _realise_hidden(viewer, size)
         viewer.reset_view()
         panel._base_zoom = float(_camera(viewer).zoom)
         if bifurcation is not None:
@@ -116,6 +135,19 @@ def render_screenshot(outdir, path, *, mask_path=None, colour_by="radius", bifur
         viewer.close()
     _write_png(out, img)
     return img
+
+
+def _checked_size(size):
+    """``(height, width)`` in pixels, each a whole number from 64 to 8192."""
+    try:
+        h, w = (int(v) for v in size)
+        ok = all(float(v) == int(v) for v in size) and all(_MIN_PIXELS <= v <= _MAX_PIXELS for v in (h, w))
+    except (TypeError, ValueError):
+        ok = False
+    if not ok:
+        raise InputError(f"expected (height, width) in whole pixels from {_MIN_PIXELS} to {_MAX_PIXELS}, got "
+                         f"{size!r}", param="size")
+    return h, w
 
 
 def _write_png(path: Path, img: np.ndarray):
