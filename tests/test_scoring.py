@@ -446,7 +446,7 @@ def test_cli_never_replaces_other_files(scored, tmp_path, capsys, snapshot, wher
     ("missing truth", "not found"),
     ("bad truth", "expected JSON"),
     ("missing result", "expected a result folder"),
-    ("not a result", "expected a complete result"),
+    ("not a result", "not a vesselflow result folder"),
 ])
 def test_cli_bad_input_is_exit_2_one_line(scored, tmp_path, capsys, case, words):
     result, truth = str(scored.result), str(scored.truth)

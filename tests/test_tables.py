@@ -23,3 +23,34 @@ def test_write_atomic_failure_keeps_the_old_file_and_leaves_nothing(tmp_path):
     with pytest.raises(RuntimeError):
         write_atomic(path, broken)
     assert path.read_text() == "old\n" and sorted(p.name for p in tmp_path.iterdir()) == ["t.csv"]
+
+
+@pytest.mark.parametrize("what, words", [
+    ("missing", "does not exist"),
+    ("file", "is a file"),
+    ("empty", "is not a vesselflow result folder (it is empty)"),
+    ("other", "is not a vesselflow result folder (it holds notes.txt)"),
+    ("batch", "is a batch folder, not one sample's result; pick one of its 2 samples (s1, s2)"),
+])
+def test_load_result_says_what_a_folder_is_instead(tmp_path, what, words):
+    # `view` and `score` pointed at the wrong folder: one line that says what it is and what to pick.
+    from pipeline.errors import InputError
+    from pipeline.tables import load_result
+
+    target = tmp_path / "x"
+    if what == "file":
+        target.write_text("")
+    elif what == "empty":
+        target.mkdir()
+    elif what == "other":
+        target.mkdir()
+        (target / "notes.txt").write_text("mine")
+    elif what == "batch":
+        target.mkdir()
+        (target / "batch.json").write_text("{}")
+        for sid in ("s1", "s2"):
+            (target / sid).mkdir()
+            (target / sid / "run.json").write_text("{}")
+    with pytest.raises(InputError) as info:
+        load_result(target)
+    assert words in str(info.value) and "\n" not in str(info.value)
