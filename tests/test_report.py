@@ -1,6 +1,7 @@
 """The report: figures and a self-contained report.html per sample and per study."""
 
 import base64
+import html
 import json
 import os
 import re
@@ -1108,3 +1109,90 @@ def test_a_warning_of_every_sample_is_said_once():
     got = _shared_warnings([one("a", "w1", "w2"), one("b", "w1"), one("c", "w1", "w3"),
                             one("d", "w1"), one("e", "w1", "w2", "w2")])
     assert got == ["every sample: w1", "a, e: w2", "c: w3"]
+
+
+def test_study_maps_are_drawn_from_the_masks(study, tmp_path, monkeypatch):
+    # Every sample's mask exists, so no per-sample map may be drawn without it
+    # (its title would say "(no mask found)").
+    from pipeline.report import build
+
+    out, rows = study
+    copy = tmp_path / "batch"
+    shutil.copytree(out, copy)
+    seen = {}
+    real = build.figure_map_level
+
+    def spy(data, notes):
+        seen[data.name] = data.mip is not None
+        return real(data, notes)
+
+    monkeypatch.setattr(build, "figure_map_level", spy)
+    report.build_report(copy, overwrite=True)
+    assert len(seen) == len(rows) and all(seen.values()), seen
+
+
+def _layout(exe, page, tmp, width=1300):
+    """Widths a real browser lays the page out at: the page, and every scroll box and <pre> wider than its box.
+
+    A copy of the page without its Content-Security-Policy gets a script that
+    measures after loading and writes the numbers into the DOM, which
+    ``--dump-dom`` returns; the report itself carries no script.
+    """
+    src = page.read_text(encoding="utf-8")
+    src = re.sub(r'<meta http-equiv="Content-Security-Policy"[^>]*>', "", src)
+    script = ("<script>window.addEventListener('load', () => {const d = document.documentElement;"
+              "const wide = [...document.querySelectorAll('.scroll, pre')].filter(e => e.scrollWidth > "
+              "e.clientWidth + 1).map(e => e.scrollWidth);"
+              "const p = document.createElement('p'); p.id = 'layout'; p.textContent = JSON.stringify("
+              "{page: d.scrollWidth, client: d.clientWidth, wide: wide}); document.body.appendChild(p);});"
+              "</script></body>")
+    probe = page.with_name("layout-probe.html")
+    probe.write_text(src.replace("</body>", script), encoding="utf-8")
+    try:
+        cmd = [exe, "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run", "--disable-dev-shm-usage",
+               f"--user-data-dir={tmp / 'profile'}", f"--window-size={width},1000", "--dump-dom", probe.as_uri()]
+        dom = subprocess.run(cmd, capture_output=True, text=True, timeout=120, stdin=subprocess.DEVNULL).stdout
+    finally:
+        probe.unlink()
+    m = re.search(r'<p id="layout">(.*?)</p>', dom)
+    assert m, dom[-300:]
+    return json.loads(html.unescape(m.group(1)))
+
+
+@pytest.mark.integration  # headless Chromium
+@pytest.mark.parametrize("which", ["sample", "study"])
+def test_pages_fit_a_1300_px_window(which, request, tmp_path):
+    # Issue of readers: a page (and every table on it) fits its content
+    # without horizontal scrolling on a 1300 px wide window.
+    exe = _chromium()
+    out = request.getfixturevalue(which)[1 if which == "sample" else 0]
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    got = _layout(exe, copy / "report.html", tmp_path)
+    assert got["page"] <= got["client"] and not got["wide"], got
+
+
+@pytest.mark.integration  # headless Chromium
+def test_reader_sees_the_summary_with_labels_and_units(sample, tmp_path):
+    exe = _chromium()
+    _, out, _ = sample
+    rc, dom, console, _ = _render(exe, out / "report.html", tmp_path, dump=True)
+    assert rc == 0 and not console, console
+    body = dom[dom.index('id="summary"'):]
+    assert "Total vessel length" in body and "<td>mm</td>" in body and "Vessel volume fraction" in body
+    assert dom.index('class="overview"') < dom.index('id="summary"')
+
+
+@pytest.mark.integration  # headless Chromium
+def test_layout_check_catches_a_wide_table(sample, tmp_path):
+    # The check above must be able to fail: a table of 40 unbreakable column
+    # names in a scroll box is wider than its box.
+    exe = _chromium()
+    _, out, _ = sample
+    page = tmp_path / "wide.html"
+    heads = "".join(f"<th>column_name_{i:02d}_without_spaces</th>" for i in range(40))
+    text = (out / "report.html").read_text(encoding="utf-8")
+    page.write_text(text.replace("</body>", f'<div class="scroll"><table><tr>{heads}</tr></table></div></body>'),
+                    encoding="utf-8")
+    got = _layout(exe, page, tmp_path)
+    assert got["wide"], got

@@ -13,15 +13,16 @@ import warnings
 from pathlib import Path
 from urllib.parse import quote
 
+import numpy as np
 import pandas as pd
 
 from .._version import __version__
 from ..errors import InputError, VesselflowError
 from ._common import (
     FIGURE_DIR, REPORT_NAME, STUDY_MEASURES, _CAUTION, _LOW_Q, _SECTION_FIGURES, _anchor, _esc, _fmt, _kv_table,
-    _label, _num, _table,
+    _fmt_q, _label, _num, _table,
 )
-from .overview import flow_record_html, grouped_summary_html, overview_html, readable_table
+from .overview import flow_record_html, format_number, grouped_summary_html, overview_html, readable_table
 from .sample import figure_map_level, load_sample, sample_figures
 from .study import _COMPARISON_SHOWN, _network_exponent_html, study_figures
 from .page import (
@@ -307,7 +308,7 @@ def _study_samples(out, cohort, notes):
         sid = str(row["sample_id"])
         folder = out / sid
         try:
-            sd = load_sample(folder, read_mip=False)
+            sd = load_sample(folder)  # with the mask's projection, for the sample's map
         except InputError as exc:
             notes.append(f"sample {sid}: {exc}")
             sd = None
@@ -329,8 +330,9 @@ def _thumbnails(samples):
         if sd is not None and sd.centrelines:
             fig = figure_map_level(sd, [])
             thumbs[sid] = _render(fig, f"sample_{_anchor(sid)[2:]}_map_level", f"{sid}: centrelines by level",
-                                  "Centrelines projected along z, coloured by branching level; circles: flagged "
-                                  "bifurcations by node id (drawn without the mask).")
+                                  "The mask projected along z (grey) with the centrelines coloured by branching "
+                                  "level; circles: flagged bifurcations by node id. Where the sample's mask could "
+                                  "not be read, the title says so and the map shows the centrelines alone.")
     return thumbs
 
 
@@ -371,9 +373,16 @@ def _comparison_html(comparison, bookkeeping, cohort):
     """The group-comparison section, low q-values highlighted, and the bookkeeping columns; list of HTML pieces."""
     parts = ["<h2 id=\"comparison\">Group comparison</h2>"]
     if comparison is not None and not comparison.empty:
+        comparison = _by_effect_size(comparison)
         low = [("low-q" if _num(q) < _LOW_Q else "") for q in comparison["q_value"]]
-        shown = comparison[[c for c, _ in _COMPARISON_SHOWN if c in comparison.columns]].rename(
-            columns=dict(_COMPARISON_SHOWN))
+        shown = comparison[[c for c, _ in _COMPARISON_SHOWN if c in comparison.columns]].copy()
+        for c in shown.columns:
+            if c not in ("label", "unit", "group_a", "group_b", "test_note"):
+                shown[c] = [("–" if v is None or (isinstance(v, float) and v != v) else
+                             _fmt_q(v) if c in ("p_value", "q_value") else format_number(v, "n" if c in ("n_a", "n_b")
+                                                                                          else "num"))
+                            for v in shown[c]]
+        shown = shown.rename(columns=dict(_COMPARISON_SHOWN))
         parts.append(f"<p>Highlighted: q &lt; {_LOW_Q:g} (Benjamini–Hochberg across the measures of a pair of "
                      "groups). Shift: Hodges–Lehmann estimate, the median of all differences b − a between "
                      "samples, with its distribution-free interval from the Mann–Whitney distribution and that "
@@ -390,6 +399,36 @@ def _comparison_html(comparison, bookkeeping, cohort):
         parts.append("<details><summary>Bookkeeping columns per group (group_bookkeeping.csv: counts, "
                      "residuals, sizes; described, not tested)</summary>" + _table(bookkeeping) + "</details>")
     return parts
+
+
+def _by_effect_size(comparison):
+    """The comparison rows, largest effect first (|Cliff's δ|, then q); rows without an effect last."""
+    if "cliffs_delta" not in comparison.columns:
+        return comparison
+    size = pd.to_numeric(comparison["cliffs_delta"], errors="coerce").abs()
+    q = pd.to_numeric(comparison["q_value"], errors="coerce")
+    order = np.lexsort((q.fillna(np.inf).to_numpy(), -size.fillna(-1.0).to_numpy()))
+    return comparison.iloc[order].reset_index(drop=True)
+
+
+# The cohort table on the page: one row per sample, the measures a reader
+# compares first; cohort_summary.csv has every column.
+_COHORT_SHOWN = ("length_density_mm_per_mm3", "vessel_volume_fraction", "junction_density_per_mm3",
+                 "radius_median_um", "vessel_tortuosity_median", "murray_exponent_network", "murray_ratio_median",
+                 "velocity_median_mm_s_capillary", "wss_median_pa_capillary", "perfused_length_fraction")
+
+
+def _cohort_html(cohort):
+    cols = [c for c in _COHORT_SHOWN if c in cohort.columns]
+    shown = cohort[["sample_id", "group"] + cols].copy()
+    for c in cols:
+        shown[c] = [format_number(v, "pct" if c.endswith("fraction") else "num") for v in shown[c]]
+    heads = {c: _label(c).replace(" (dimensionless)", "") for c in cols}
+    heads.update({c: heads[c].replace("(1)", "(%)") + (" (%)" if c.endswith("fraction") and "%" not in heads[c]
+                                                        else "") for c in cols if c.endswith("fraction")})
+    shown = shown.rename(columns={"sample_id": "sample", **heads})
+    return (f"<p>The measures compared first; cohort_summary.csv has all {cohort.shape[1]} columns.</p>"
+            + _table(shown, classes="readable"))
 
 
 def _shared_warnings(samples):
@@ -466,7 +505,7 @@ def _study_report(out):
     parts += _comparison_html(comparison, bookkeeping, cohort)
     parts.append("<h2 id=\"failures\">Failed samples</h2>"
                  + (_table(failures) if failures is not None and not failures.empty else "<p>None.</p>"))
-    parts.append("<h2 id=\"cohort\">Cohort summary</h2>" + _table(cohort))
+    parts.append("<h2 id=\"cohort\">Cohort summary</h2>" + _cohort_html(cohort))
     parts.append("<h2 id=\"per-sample\">Per sample</h2>")
     for sid, grp, sd in samples:
         parts.append(_sample_section_html(out, sid, grp, sd, bad_reviews=bad_reviews, thumbs=thumbs))

@@ -19,7 +19,7 @@ from ._common import _DPI, _bool_col, _esc, _fmt, _kv_table, _num, _table, _text
 from .plausibility import (
     DIRECTION_CONFIDENCE_MIN, _flow_cfg, flow_uncertainty, plausibility_checks, plausibility_messages,
 )
-from .overview import readable_table
+from .overview import format_number, readable_table
 
 
 @dataclass
@@ -290,6 +290,12 @@ def _severity_text(v):
 # The flagged junctions listed on the page, most severe first: a reader
 # works down the top of the queue; the CSV holds the rest.
 _MAX_TABLE_ROWS = 50
+# Their columns and headings (words wrap; the page fits 1300 px).
+_FLAGGED_COLUMNS = {"node_id": "node", "severity": "severity", "flow_pattern": "flow pattern", "level": "level",
+                    "radius_parent_um": "parent r (µm)", "radius_daughter1_um": "daughter 1 r (µm)",
+                    "radius_daughter2_um": "daughter 2 r (µm)", "murray_ratio": "Murray ratio",
+                    "murray_exponent": "exponent", "angle_deviation_deg": "angle deviation (°)",
+                    "flag_reasons": "reasons"}
 
 
 def _bifurcation_html(b, review, summary=None):
@@ -333,15 +339,18 @@ def _bifurcation_html(b, review, summary=None):
         return "".join(parts)
     fl = fl.sort_values("severity", ascending=False, kind="mergesort", na_position="last") \
         if "severity" in fl.columns else fl
-    cols = [c for c in ("node_id", "severity", "flow_pattern", "level", "degree", "radius_parent_um",
-                        "radius_daughter1_um", "radius_daughter2_um", "murray_ratio", "murray_exponent",
-                        "angle_deviation_deg", "low_confidence", "flag_reasons") if c in fl.columns]
-    fl = fl[cols].copy()
-    if "severity" in fl.columns:
-        fl["severity"] = [_severity_text(v) for v in fl["severity"]]
-    if "flag_reasons" in fl.columns:
-        fl["flag_reasons"] = _text_col(fl, "flag_reasons").str.replace(";", ", ")
-    fl, note = _review_table(fl, review)
+    cols = [c for c in _FLAGGED_COLUMNS if c in fl.columns]
+    fl, note = _review_table(fl[cols].copy(), review)
+    for c in cols:
+        if c == "severity":
+            fl[c] = [_severity_text(v) for v in fl[c]]
+        elif c == "flag_reasons":
+            fl[c] = _text_col(fl, c).str.replace(";", ", ").str.replace("_", " ")
+        elif c in ("node_id", "level"):
+            fl[c] = [format_number(v, "n") for v in fl[c]]
+        elif c != "flow_pattern":
+            fl[c] = [format_number(v) for v in fl[c]]
+    fl = fl.rename(columns=_FLAGGED_COLUMNS)
     shown = "" if len(fl) <= _MAX_TABLE_ROWS else (
         f"<p class=\"note\">The {_MAX_TABLE_ROWS} most severe of {len(fl)} flagged junctions; bifurcations.csv "
         "has every junction (column flagged).</p>")
