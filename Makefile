@@ -3,7 +3,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test quick bench clean
+.PHONY: demo test quick bench screenshots clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -24,6 +24,9 @@ quick: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py
+
+screenshots: $(STAMP)
+	$(BIN)/python docs/make_screenshots.py
 
 clean:
 	rm -rf $(VENV) results .pytest_cache

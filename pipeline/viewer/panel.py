@@ -30,7 +30,10 @@ _NEXT_KEY, _PREVIOUS_KEY = "n", "b"
 _DECISION_KEYS = {"confirmed": "c", "artefact": "x", "unsure": "u"}
 # The parent and daughters of the junction under review: white, wider than
 # the other centrelines, each labelled.
-_CURRENT_VESSELS_RGBA = (1.0, 1.0, 1.0, 1.0)
+_CURRENT_VESSELS_COLOUR = "#ffffff"
+# Their labels in a colour of their own, readable on white vessels, the grey
+# mask and the black background alike (not in viridis nor a decision colour).
+_LABEL_COLOUR = "#00e5ff"
 _VIEW_RADII = 8.0
 _VIEW_MIN_UM = 40.0
 
@@ -279,11 +282,11 @@ class ReviewPanel(QtWidgets.QWidget):
                                    metadata={_META_KEY: str(Path(result.path).resolve())})
         if self._layer("current vessels") is None:
             meta = {_META_KEY: str(Path(result.path).resolve())}
-            self.viewer.add_vectors(np.zeros((0, 2, 3)), name="current vessels", edge_color="white",
+            self.viewer.add_vectors(np.zeros((0, 2, 3)), name="current vessels", edge_color=_CURRENT_VESSELS_COLOUR,
                                     edge_width=1.0, vector_style="line", blending="translucent_no_depth",
                                     metadata=dict(meta))
             self.viewer.add_points(np.zeros((0, 3)), name="current labels", size=0.1, face_color="transparent",
-                                   border_width=0, text={"string": "{label}", "color": "white", "size": 10,
+                                   border_width=0, text={"string": "{label}", "color": _LABEL_COLOUR, "size": 12,
                                                          "anchor": "upper_left"},
                                    features=pd.DataFrame({"label": pd.Series([], dtype=str)}),
                                    blending="translucent_no_depth", metadata=dict(meta))
