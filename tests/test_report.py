@@ -1139,7 +1139,8 @@ def _layout(exe, page, tmp, width=1300):
     ``--dump-dom`` returns; the report itself carries no script.
     """
     src = page.read_text(encoding="utf-8")
-    src = re.sub(r'<meta http-equiv="Content-Security-Policy"[^>]*>', "", src)
+    # folded sections opened: a reader who opens one must not have to scroll sideways either
+    src = re.sub(r'<meta http-equiv="Content-Security-Policy"[^>]*>', "", src).replace("<details>", "<details open>")
     script = ("<script>window.addEventListener('load', () => {const d = document.documentElement;"
               "const wide = [...document.querySelectorAll('.scroll, pre')].filter(e => e.scrollWidth > "
               "e.clientWidth + 1).map(e => e.scrollWidth);"
