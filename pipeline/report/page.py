@@ -351,9 +351,12 @@ def _bifurcation_html(b, review, summary=None):
         elif c != "flow_pattern":
             fl[c] = [format_number(v) for v in fl[c]]
     fl = fl.rename(columns=_FLAGGED_COLUMNS)
-    shown = "" if len(fl) <= _MAX_TABLE_ROWS else (
-        f"<p class=\"note\">The {_MAX_TABLE_ROWS} most severe of {len(fl)} flagged junctions; bifurcations.csv "
-        "has every junction (column flagged).</p>")
+    full = ("<a href=\"bifurcations.csv\">bifurcations.csv</a> (beside this page) has every junction with all "
+            "its columns")
+    shown = (f"<p class=\"note\">The {len(fl)} flagged junctions, most severe first; {full}.</p>"
+             if len(fl) <= _MAX_TABLE_ROWS else
+             f"<p class=\"note\">The {_MAX_TABLE_ROWS} most severe of {len(fl)} flagged junctions; {full} "
+             "(column flagged).</p>")
     parts.append("<h3>Flagged junctions</h3>" + (f"<p class=\"note\">{_esc(note)}</p>" if note else "") + shown
                  + _table(fl, classes="bif", max_rows=_MAX_TABLE_ROWS))
     return "".join(parts)
