@@ -841,11 +841,10 @@ def check_score_file(path, *, result_dir=None, overwrite=False):
     InputError
         With ``param`` 'path' or 'overwrite'.
     """
-    out = Path(path)
-    if out.suffix.lower() != ".json":
-        raise InputError(f"expected a .json file name, got '{out}'", param="path")
-    if out.is_dir():
-        raise InputError(f"expected a file name, got the folder '{out}'", param="path")
+    from .tables import check_new_file
+
+    # a .json name, not a folder, not an existing file without overwrite
+    out = check_new_file(path, suffix=".json", overwrite=overwrite)
     if result_dir is not None and Path(result_dir).resolve() in out.resolve().parents:
         raise InputError(f"expected a file outside the result folder '{result_dir}' (a result folder holds only "
                          f"the result's own files), got '{out}'", param="path")

@@ -8,6 +8,25 @@ from pipeline import scoring, synthetic
 
 
 @pytest.fixture(scope="session")
+def broken_tree_result(tmp_path_factory):
+    """A result folder of a Murray tree with half its junctions broken on purpose, so several are flagged.
+
+    Analysed once through the command line; tests that write into it take a copy.
+    """
+    from pipeline.cli import main
+
+    root = tmp_path_factory.mktemp("broken-tree")
+    net = synthetic.binary_tree(depth=3, root_radius_um=5.0, exponent=3.0, seed=3, broken_fraction=0.5,
+                                broken_ratio=0.95, min_radius_um=2.0)
+    mask, _ = synthetic.rasterize(net, spacing=(1.0, 1.0, 1.0))
+    np.save(root / "tree.npy", mask)
+    out = root / "tree"
+    assert main(["analyze", str(root / "tree.npy"), "-o", str(out), "--spacing", "1", "1", "1", "--quiet",
+                 "--blind-ends", "outlet"]) == 0
+    return out
+
+
+@pytest.fixture(scope="session")
 def analyse():
     """Rasterise a network and analyse it; cached per argument set.
 

@@ -5,24 +5,15 @@ import shutil
 import numpy as np
 import pytest
 
-from pipeline import review, synthetic
-from pipeline.cli import main
+from pipeline import review
 from pipeline.errors import InputError
 from pipeline.review_session import ReviewSession, review_queue
 
 
 @pytest.fixture(scope="module")
-def folder(tmp_path_factory):
-    """A Murray tree with half its junctions broken on purpose, so several are flagged."""
-    root = tmp_path_factory.mktemp("session")
-    net = synthetic.binary_tree(depth=3, root_radius_um=5.0, exponent=3.0, seed=3, broken_fraction=0.5,
-                                broken_ratio=0.95, min_radius_um=2.0)
-    mask, _ = synthetic.rasterize(net, spacing=(1.0, 1.0, 1.0))
-    np.save(root / "tree.npy", mask)
-    out = root / "tree"
-    assert main(["analyze", str(root / "tree.npy"), "-o", str(out), "--spacing", "1", "1", "1", "--quiet",
-                 "--blind-ends", "outlet"]) == 0
-    return out
+def folder(broken_tree_result):
+    """A result folder of a Murray tree with half its junctions broken on purpose (conftest.py)."""
+    return broken_tree_result
 
 
 @pytest.fixture
