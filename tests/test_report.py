@@ -496,7 +496,7 @@ def test_study_plots_show_the_cohort_and_its_q_values(study):
             med = [ln for ln in ax.get_lines()
                    if len(ln.get_xdata()) == 2 and np.allclose(ln.get_xdata(), [i + 0.75, i + 1.25])]
             assert any(np.allclose(ln.get_ydata(), np.median(vals)) for ln in med), (m, g)
-        q_shown = float(re.search(r"q = ([0-9.e+-]+)", ax.get_title()).group(1))
+        q_shown = float(re.search(r"q\s=\s([0-9.e+-]+)", ax.get_title()).group(1))  # \s: no-break spaces too
         q_csv = float(comp.loc[comp["measure"] == m, "q_value"].iloc[0])
         # Two significant digits are shown: rounding moves a value by at most 5 %.
         assert q_shown == pytest.approx(q_csv, rel=0.05)
@@ -1199,3 +1199,25 @@ def test_layout_check_catches_a_wide_table(sample, tmp_path):
                     encoding="utf-8")
     got = _layout(exe, page, tmp_path)
     assert got["wide"], got
+
+
+def test_group_plots_of_four_groups_with_long_names_fit():
+    # Four groups give six pairs: the title keeps the comparisons with the
+    # first group, each line short enough for the figure; long names wrap.
+    from pipeline.report.study import _TITLE_CHARS, figure_study_measure
+
+    groups = ["control", "low dose treatment", "high dose treatment", "vehicle only"]
+    rng = np.random.default_rng(0)
+    cohort = pd.DataFrame({"sample_id": [f"s{i}" for i in range(16)], "group": np.repeat(groups, 4),
+                           "radius_median_um": rng.normal(3, 0.3, 16)})
+    pairs = [(a, b) for i, a in enumerate(groups) for b in groups[i + 1:]]
+    comparison = pd.DataFrame([dict(measure="radius_median_um", group_a=a, group_b=b, p_value=0.5, q_value=0.7,
+                                    hodges_lehmann_shift=-1234.5678, hodges_lehmann_ci_low=-98765.4321,
+                                    hodges_lehmann_ci_high=12345.6789, test_note="") for a, b in pairs])
+    ax = figure_study_measure(cohort, comparison, "radius_median_um", groups).axes[0]
+    lines = ax.get_title().replace("\u00a0", " ").splitlines()[1:]
+    assert all(len(ln) <= _TITLE_CHARS for ln in lines)
+    joined = " ".join(lines).replace("   ", " ").split(" q = 0.7")[:-1]  # continuation lines start indented
+    assert [c.strip(" ,").split(" − ")[0] for c in joined] == groups[1:]  # each against the first group
+    assert all(max(len(part) for part in t.get_text().split("\n")) <= len("treatment") + 3
+               for t in ax.get_xticklabels())

@@ -375,14 +375,7 @@ def _comparison_html(comparison, bookkeeping, cohort):
     if comparison is not None and not comparison.empty:
         comparison = _by_effect_size(comparison)
         low = [("low-q" if _num(q) < _LOW_Q else "") for q in comparison["q_value"]]
-        shown = comparison[[c for c, _ in _COMPARISON_SHOWN if c in comparison.columns]].copy()
-        for c in shown.columns:
-            if c not in ("label", "unit", "group_a", "group_b", "test_note"):
-                shown[c] = [("–" if v is None or (isinstance(v, float) and v != v) else
-                             _fmt_q(v) if c in ("p_value", "q_value") else format_number(v, "n" if c in ("n_a", "n_b")
-                                                                                          else "num"))
-                            for v in shown[c]]
-        shown = shown.rename(columns=dict(_COMPARISON_SHOWN))
+        shown = _comparison_table(comparison)
         parts.append(f"<p>Highlighted: q &lt; {_LOW_Q:g} (Benjamini–Hochberg across the measures of a pair of "
                      "groups). Shift: Hodges–Lehmann estimate, the median of all differences b − a between "
                      "samples, with its distribution-free interval from the Mann–Whitney distribution and that "
@@ -399,6 +392,32 @@ def _comparison_html(comparison, bookkeeping, cohort):
         parts.append("<details><summary>Bookkeeping columns per group (group_bookkeeping.csv: counts, "
                      "residuals, sizes; described, not tested)</summary>" + _table(bookkeeping) + "</details>")
     return parts
+
+
+def _comparison_table(comparison):
+    """The comparison as shown: numbers at three significant digits, the shift with its interval in one cell.
+
+    group_comparison.csv keeps every column (means, their difference, the
+    interval's ends apart); the page keeps what fits a 1300 px window.
+    """
+    shown = comparison[[c for c, _ in _COMPARISON_SHOWN if c in comparison.columns]].copy()
+
+    def text(v, c):
+        if v is None or (isinstance(v, float) and v != v):
+            return "–"
+        if c in ("p_value", "q_value"):
+            return _fmt_q(v)
+        return format_number(v, "n" if c in ("n_a", "n_b") else "num")
+
+    for c in shown.columns:
+        if c not in ("label", "unit", "group_a", "group_b", "test_note"):
+            shown[c] = [text(v, c) for v in shown[c]]
+    if {"hodges_lehmann_shift", "hodges_lehmann_ci_low", "hodges_lehmann_ci_high"} <= set(comparison.columns):
+        lo = [text(v, "") for v in comparison["hodges_lehmann_ci_low"]]
+        hi = [text(v, "") for v in comparison["hodges_lehmann_ci_high"]]
+        shown["hodges_lehmann_shift"] = [s if s == "–" else f"{s} [{a}, {b}]"
+                                         for s, a, b in zip(shown["hodges_lehmann_shift"], lo, hi)]
+    return shown.rename(columns=dict(_COMPARISON_SHOWN))
 
 
 def _by_effect_size(comparison):

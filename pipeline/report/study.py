@@ -7,15 +7,22 @@ per measure and the network exponent per sample and per group (:func:`network_ex
 from __future__ import annotations
 
 import math
+import textwrap
 
 import numpy as np
 import pandas as pd
 
 from ..batch import add_densities, hodges_lehmann_one_sample, science_measures
-from ._common import NETWORK_EXPONENT_KEYS, OKABE_ITO, _col, _fmt, _fmt_q, _label, _new_figure, _no_data, _num, _table
+from ._common import NETWORK_EXPONENT_KEYS, OKABE_ITO, _col, _fmt_q, _label, _new_figure, _no_data, _num, _table
+from .overview import format_number
 
 
 # --------------------------------------------------------------------------- study figures
+
+# Characters per line that fit the figure's width: the annotation lines over a
+# plot (fontsize 9 on a 5.2 inch figure) and a group name under its box.
+_TITLE_CHARS = 62
+_TICK_CHARS = 12
 
 
 def _box_and_points(ax, groups, values, colours):
@@ -29,7 +36,8 @@ def _box_and_points(ax, groups, values, colours):
         ax.scatter(p + rng.uniform(-0.12, 0.12, len(d)), d, s=30, color=c, edgecolor="k", lw=0.5, zorder=3,
                    label=f"{g} (n = {len(d)})")
     ax.set_xticks(pos)
-    ax.set_xticklabels([str(g) for g in groups])
+    # long group names wrap onto several lines rather than run into each other
+    ax.set_xticklabels([textwrap.fill(str(g), _TICK_CHARS) for g in groups])
 
 
 def figure_study_measure(cohort, comparison, measure, groups):
@@ -43,6 +51,11 @@ def figure_study_measure(cohort, comparison, measure, groups):
     lines = []
     if comparison is not None and not comparison.empty:
         rows = comparison[comparison["measure"] == measure]
+        if len(groups) > 2:
+            # Every pair of four groups is six lines over the plot: only the
+            # comparisons with the first group are written there; the table
+            # below the figures has them all.
+            rows = rows[rows["group_a"].astype(str) == str(groups[0])]
         for _, r in rows.iterrows():
             shift = _num(r.get("hodges_lehmann_shift"))
             lo, hi = _num(r.get("hodges_lehmann_ci_low")), _num(r.get("hodges_lehmann_ci_high"))
@@ -51,9 +64,12 @@ def figure_study_measure(cohort, comparison, measure, groups):
             if not math.isfinite(_num(r.get("p_value"))) and isinstance(note, str) and note:
                 lines.append(f"{text}: no test ({note})")
                 continue
+            # no-break spaces inside the interval and "q = ...": a wrapped line breaks between them
             if math.isfinite(shift):
-                text += f" {_fmt(shift)}" + (f" [{_fmt(lo)}, {_fmt(hi)}]" if math.isfinite(lo) else "")
-            lines.append(f"{text}, q = {_fmt_q(_num(r.get('q_value')))}")
+                text += f" {format_number(shift)}" + (f" [{format_number(lo)},\u00a0{format_number(hi)}]"
+                                                       if math.isfinite(lo) else "")
+            lines.append(f"{text}, q\u00a0=\u00a0{_fmt_q(_num(r.get('q_value')))}")
+    lines = [textwrap.fill(line, _TITLE_CHARS, subsequent_indent="  ") for line in lines]
     ax.set_title(_label(measure).split(" (")[0] + ("\n" + "\n".join(lines) if lines else ""), fontsize=9)
     ax.set_xlabel("group")
     ax.set_ylabel(_label(measure))
@@ -82,7 +98,9 @@ def study_figures(cohort, comparison):
                                              "its distribution-free 95 % interval, and q, the "
                                              "Benjamini–Hochberg-adjusted p-value of the Mann–Whitney U test "
                                              "(group_comparison.csv; no test with fewer than 3 samples in a "
-                                             "group).")
+                                             "group)." + (" With more than two groups the title has the "
+                                                          f"comparisons with {groups[0]}; the table, every pair."
+                                                          if len(groups) > 2 else ""))
     return out
 
 
@@ -202,7 +220,6 @@ def _network_exponent_html(cohort):
 # Columns of group_comparison.csv shown in the report, in order (those present).
 _COMPARISON_SHOWN = (("label", "measure"), ("unit", "unit"), ("group_a", "group a"), ("group_b", "group b"),
                      ("n_a", "n a"), ("n_b", "n b"), ("median_a", "median a"), ("median_b", "median b"),
-                     ("hodges_lehmann_shift", "shift b − a"), ("hodges_lehmann_ci_low", "shift low"),
-                     ("hodges_lehmann_ci_high", "shift high"), ("hodges_lehmann_coverage", "coverage"),
-                     ("cliffs_delta", "Cliff's δ"), ("difference", "mean b − mean a"), ("p_value", "p"),
+                     ("hodges_lehmann_shift", "shift b − a [95 % interval]"),
+                     ("hodges_lehmann_coverage", "coverage"), ("cliffs_delta", "Cliff's δ"), ("p_value", "p"),
                      ("q_value", "q"), ("test_note", "note"))
