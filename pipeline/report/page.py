@@ -62,12 +62,12 @@ def _render(fig, name, title, caption):
 
 _CSS = """
 body{font-family:"DejaVu Sans",Arial,Helvetica,sans-serif;margin:2em auto;max-width:1100px;color:#1a1a1a;
-line-height:1.4;padding:0 1em}
+line-height:1.4;padding:0 1em;overflow-wrap:break-word}
 h1{font-size:1.6em;margin-bottom:.2em}h2{border-bottom:2px solid #0072B2;padding-bottom:.2em;margin-top:1.6em}
 .caution{border-left:6px solid #D55E00;background:#fff4ec;padding:.6em 1em;margin:1em 0}
 table{border-collapse:collapse;margin:.5em 0;font-size:.85em}
-th,td{border:1px solid #c8c8c8;padding:.2em .5em;text-align:left;vertical-align:top}
-thead th{background:#eef3f8}table.kv th{background:#f6f6f6;font-weight:normal;color:#333}
+th,td{border:1px solid #c8c8c8;padding:.2em .5em;text-align:left;vertical-align:top;overflow-wrap:anywhere}
+thead th{background:#eef3f8}table.kv th{background:#f6f6f6;font-weight:normal;color:#333;min-width:10em}
 tr.low-q td{background:#fff7d6}tr.flag td{background:#fdf0ea}
 figure{margin:1em 0;page-break-inside:avoid}figure img{max-width:100%;height:auto;border:1px solid #ddd}
 figcaption{font-size:.85em;color:#333;margin-top:.3em}
