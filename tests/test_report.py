@@ -1228,3 +1228,45 @@ def test_group_plots_of_four_groups_with_long_names_fit():
     assert [c.strip(" ,").split(" − ")[0] for c in joined] == groups[1:]  # each against the first group
     assert all(max(len(part) for part in t.get_text().split("\n")) <= len("treatment") + 3
                for t in ax.get_xticklabels())
+
+
+def _inside_figure(fig, artist):
+    """Whether a drawn artist lies wholly inside its figure (matplotlib's own layout, in pixels)."""
+    fig.canvas.draw()
+    box, frame = artist.get_window_extent(), fig.bbox
+    return box.x0 >= frame.x0 - 1 and box.x1 <= frame.x1 + 1 and box.y0 >= frame.y0 - 1 and box.y1 <= frame.y1 + 1
+
+
+def test_no_study_plot_title_or_label_is_clipped(study):
+    # Issue of readers: the q-value line over a group plot was cut off on both
+    # sides. Every title and tick label of every study figure must lie inside
+    # the figure, also with four groups of long names.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from pipeline.report.study import figure_study_measure, study_figures
+
+    out, _ = study
+    cohort = pd.read_csv(out / "cohort_summary.csv")
+    comp = pd.read_csv(out / "group_comparison.csv")
+    figs = [f for f, _, _ in study_figures(cohort, comp).values()]
+    groups = ["control", "low dose treatment", "high dose treatment", "vehicle only"]
+    four = pd.DataFrame({"sample_id": [f"s{i}" for i in range(16)], "group": np.repeat(groups, 4),
+                         "radius_median_um": np.linspace(2, 4, 16)})
+    pairs = [(a, b) for i, a in enumerate(groups) for b in groups[i + 1:]]
+    comp4 = pd.DataFrame([dict(measure="radius_median_um", group_a=a, group_b=b, p_value=0.5, q_value=0.7,
+                               hodges_lehmann_shift=-1234.5678, hodges_lehmann_ci_low=-98765.4321,
+                               hodges_lehmann_ci_high=12345.6789, test_note="") for a, b in pairs])
+    figs.append(figure_study_measure(four, comp4, "radius_median_um", groups))
+    for fig in figs:
+        FigureCanvasAgg(fig)
+        for ax in fig.axes:
+            for artist in [ax.title, *ax.get_xticklabels()]:
+                if artist.get_text():
+                    assert _inside_figure(fig, artist), artist.get_text()[:60]
+    # the check can fail: a title of 200 characters runs out of the figure on both sides
+    from matplotlib.figure import Figure
+
+    control = Figure(figsize=(5.2, 4.4), layout="constrained")
+    FigureCanvasAgg(control)
+    control.add_subplot().set_title("x" * 200)
+    assert not _inside_figure(control, control.axes[0].title)
