@@ -246,13 +246,19 @@ def test_every_axis_has_a_label(sample):
                 assert re.search(r"\((.+)\)", lab), (name, lab)
 
 
-def test_map_without_the_mask_says_so(sample, tmp_path):
-    _, out, _ = sample
+def _mask_gone(out, tmp_path):
+    """A copy of a result folder whose recorded mask no longer exists."""
     copy = tmp_path / "moved"
     shutil.copytree(out, copy)
     run = json.loads((copy / "run.json").read_text())
     run["input"]["path"] = str(tmp_path / "gone.tif")
     (copy / "run.json").write_text(json.dumps(run))
+    return copy
+
+
+def test_map_without_the_mask_says_so(sample, tmp_path):
+    _, out, _ = sample
+    copy = _mask_gone(out, tmp_path)
     assert main(["report", str(copy), "--overwrite", "--quiet"]) == 0
     text = (copy / "report.html").read_text(encoding="utf-8")
     assert "centrelines alone" in text and "gone.tif" in text
@@ -266,11 +272,7 @@ def test_mask_path_and_its_earlier_name(sample, tmp_path):
     # viewer and pipeline.tables. The earlier ``mask`` still works, with a
     # FutureWarning; both at once is a mistake.
     tif, out, _ = sample
-    copy = tmp_path / "copy"
-    shutil.copytree(out, copy)
-    run = json.loads((copy / "run.json").read_text())
-    run["input"]["path"] = str(tmp_path / "gone.tif")
-    (copy / "run.json").write_text(json.dumps(run))
+    copy = _mask_gone(out, tmp_path)
     report.build_report(copy, mask_path=tif, overwrite=True)
     assert "centrelines alone" not in (copy / "report.html").read_text(encoding="utf-8")
     with pytest.warns(FutureWarning, match="mask_path"):
