@@ -438,6 +438,17 @@ def _cmd_score(args):
     return 0
 
 
+def _quiet_stdout():
+    """Point stdout at /dev/null, so that Python's flush at exit meets no closed pipe either."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):
+        pass
+
+
 def main(argv=None):
     """Entry point of the ``vesselflow`` command; returns the exit code."""
     parser = _parser()
@@ -447,6 +458,10 @@ def main(argv=None):
                 "score": _cmd_score}
     try:
         return handlers[args.command](args)
+    except BrokenPipeError:
+        # the reader of our output went away (``vesselflow summarize DIR | head``): nothing more to say
+        _quiet_stdout()
+        return 0
     except (InputError, ConfigError) as exc:
         print(f"vesselflow: error: {_message(exc, args.command)}", file=sys.stderr)
         return 2

@@ -532,6 +532,11 @@ def _not_a_result(out, missing):
         shown = ", ".join(samples[:5]) + (f" and {len(samples) - 5} more" if len(samples) > 5 else "")
         pick = f"; pick one of its {len(samples)} samples ({shown}), e.g. '{out / samples[0]}'" if samples else ""
         return f"'{out}' is a batch folder, not one sample's result{pick}"
+    results = sorted(p.name for p in out.iterdir() if p.is_dir() and (p / "run.json").is_file())
+    if results and not (out / "run.json").is_file():
+        shown = ", ".join(results[:5]) + (f" and {len(results) - 5} more" if len(results) > 5 else "")
+        return (f"'{out}' holds {len(results)} result folder(s) ({shown}), not one result; pick one, e.g. "
+                f"'{out / results[0]}'")
     if not (out / "run.json").is_file():
         found = sorted(p.name for p in out.iterdir())[:3]
         held = f" (it holds {', '.join(found)}{', ...' if len(found) == 3 else ''})" if found else " (it is empty)"

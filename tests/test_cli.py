@@ -277,3 +277,15 @@ def test_probability_image_hint_shows_the_threshold_option(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "pass --threshold T to binarise" in err[0]
     assert not (tmp_path / "res").exists()
+
+
+def test_a_reader_that_goes_away_is_no_error(tube_tif, tmp_path):
+    # `vesselflow summarize DIR | head -1`: the pipe closes early; the command
+    # stops quietly (exit 0, nothing on stderr), as Unix tools do.
+    out = tmp_path / "res"
+    assert main(["analyze", str(tube_tif), "-o", str(out), "--quiet"]) == 0
+    proc = subprocess.Popen([sys.executable, "-m", "pipeline", "summarize", str(out)], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE)
+    proc.stdout.close()  # before the command has written anything: its first write meets a closed pipe
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 0 and err.decode() == ""

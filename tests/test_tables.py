@@ -31,6 +31,7 @@ def test_write_atomic_failure_keeps_the_old_file_and_leaves_nothing(tmp_path):
     ("empty", "is not a vesselflow result folder (it is empty)"),
     ("other", "is not a vesselflow result folder (it holds notes.txt)"),
     ("batch", "is a batch folder, not one sample's result; pick one of its 2 samples (s1, s2)"),
+    ("results", "holds 2 result folder(s) (s1, s2), not one result; pick one"),
 ])
 def test_load_result_says_what_a_folder_is_instead(tmp_path, what, words):
     # `view` and `score` pointed at the wrong folder: one line that says what it is and what to pick.
@@ -45,9 +46,10 @@ def test_load_result_says_what_a_folder_is_instead(tmp_path, what, words):
     elif what == "other":
         target.mkdir()
         (target / "notes.txt").write_text("mine")
-    elif what == "batch":
+    elif what in ("batch", "results"):
         target.mkdir()
-        (target / "batch.json").write_text("{}")
+        if what == "batch":
+            (target / "batch.json").write_text("{}")
         for sid in ("s1", "s2"):
             (target / sid).mkdir()
             (target / sid / "run.json").write_text("{}")

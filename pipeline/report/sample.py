@@ -90,7 +90,7 @@ def _read_mip(data, result, mask):
         img, notes = read_result_mask(result, mask)
     except InputError as exc:
         if explicit:
-            raise InputError(f"report: {exc}") from None
+            raise  # the caller's own mask_path: its error names it
         data.notes.append(f"The mask recorded in run.json could not be used ({exc}), so the maps show the "
                           "centrelines alone.")
         return None
