@@ -1,7 +1,7 @@
 """A sample's summary for readers: a plain-language overview and the measures grouped by topic.
 
 In: ``summary.json`` (a dict) and the flow's plausibility ranges
-(:data:`pipeline.flow.PLAUSIBLE`). Out: HTML: :func:`overview_html`, a few
+(decided by :func:`pipeline.report.plausibility.plausibility_checks`). Out: HTML: :func:`overview_html`, a few
 sentences on what was measured, how much of the network the flow model
 perfuses and what lies outside physiological ranges (and why that matters);
 :func:`grouped_summary_html`, the measures in tables by topic (morphology,
@@ -17,8 +17,9 @@ import math
 from typing import Any, Mapping
 
 from ..flow.boundary import PA_PER_MMHG
-from ..flow.plausibility import PLAUSIBLE
+from ..flow.plausibility import plausibility_warnings
 from ._common import _esc
+from .plausibility import plausibility_checks
 
 __all__ = ["overview_html", "grouped_summary_html", "format_number", "SUMMARY_GROUPS"]
 
@@ -237,18 +238,16 @@ def grouped_summary_html(summary: Mapping[str, Any]) -> str:
 
 
 def _range_sentence(summary: Mapping[str, Any]) -> list[str]:
+    """A sentence per flow statistic outside its published range, as :func:`plausibility_checks` decides it."""
     out = []
-    for key, lo, hi, what, source in PLAUSIBLE:
-        val = summary.get(key)
-        if val is None:
+    for c in plausibility_checks(summary):
+        if c["verdict"] not in ("above", "below"):
             continue
-        name, _, unit = what.rpartition(" (")
-        unit = unit.rstrip(")")
-        if lo <= val <= hi:
-            continue
-        out.append(f"The {name} is {_sig(val)} {unit}, outside the {_sig(lo)}-{_sig(hi)} {unit} expected "
-                   f"({source}). Model flows this far from physiology usually mean boundary conditions or radii "
-                   "that do not fit the tissue: read the flows and shear stresses as relative, not absolute.")
+        unit = c["unit"]
+        out.append(f"The {c['what']} is {_sig(c['value'])} {unit}, outside the {_sig(c['low'])}-{_sig(c['high'])} "
+                   f"{unit} expected ({c['source']}). Model flows this far from physiology usually mean boundary "
+                   "conditions or radii that do not fit the tissue: read the flows and shear stresses as relative, "
+                   "not absolute.")
     return out
 
 
@@ -289,7 +288,7 @@ def overview_html(summary: Mapping[str, Any], *, flow_solved: bool) -> str:
             text += (f"; blood in capillaries moves at a median {_sig(s['velocity_median_mm_s_capillary'])} mm/s "
                      f"and the 99th percentile of the wall shear stress is {_sig(s.get('wss_p99_pa') or math.nan)} Pa")
         text += "."
-        if s["perfused_length_fraction"] < 0.5:
+        if plausibility_warnings({"perfused_length_fraction": s["perfused_length_fraction"]}):
             text += (" Less than half of the network carries flow in the model, so its flow statistics describe "
                      "only part of the sample.")
         out_of_range = _range_sentence(s)
