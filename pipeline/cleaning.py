@@ -30,7 +30,7 @@ import numpy as np
 from ._parallel import threads as _threads
 from .errors import InputError
 
-__all__ = ["CleanedMask", "clean_mask"]
+__all__ = ["CleanedMask", "CleanedRuns", "clean_mask", "clean_runs", "mask_runs"]
 
 
 @dataclass
@@ -98,13 +98,124 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     """
     spacing = tuple(float(s) for s in spacing)
     mask = np.ascontiguousarray(mask, dtype=bool)
-    nz, ny, nx = mask.shape
-    # For planar masks "volume" is area and the threshold the area threshold.
+    threads = _threads()
+    rows, x0, x1 = _runs(mask, threads)
+    runs = clean_runs(rows, x0, x1, mask.shape, spacing=spacing, min_object_volume_um3=min_object_volume_um3,
+                      min_object_area_um2=min_object_area_um2, fill_cavities=fill_cavities, planar=planar)
+    del mask
+    return CleanedMask(
+        mask=runs.paint(threads),
+        offset=runs.offset,
+        original_shape=runs.original_shape,
+        spacing=spacing,
+        stats=runs.stats,
+    )
+
+
+
+@dataclass
+class CleanedRuns:
+    """The cleaned, cropped mask as runs of vessel voxels along x (no volume).
+
+    The same mask as :attr:`CleanedMask.mask`, held as the runs of each row
+    (``row = z * Y' + y`` of the crop), so a volume that does not fit in
+    memory can be cleaned whole and painted back block by block
+    (:meth:`paint`).
+
+    Attributes
+    ----------
+    rows, x0, x1 : (K,) int ndarray
+        Runs of kept vessel voxels: crop row, first x, x past the last;
+        sorted by row.
+    cavity_rows, cavity_x0, cavity_x1 : (C,) int ndarray
+        Runs of filled cavities, sorted by row.
+    shape : tuple of 3 int
+        Shape of the crop.
+    offset, original_shape, stats
+        As for :class:`CleanedMask`.
+    """
+
+    rows: np.ndarray
+    x0: np.ndarray
+    x1: np.ndarray
+    cavity_rows: np.ndarray
+    cavity_x0: np.ndarray
+    cavity_x1: np.ndarray
+    shape: tuple[int, int, int]
+    offset: tuple[int, int, int]
+    original_shape: tuple[int, int, int]
+    stats: dict
+
+    def region(self, lo, hi):
+        """The runs inside the crop box ``[lo, hi)``, in that box's frame (a smaller :class:`CleanedRuns`).
+
+        Its ``offset`` is the box's first voxel in the original grid.
+        """
+        lo = [int(v) for v in lo]
+        hi = [int(v) for v in hi]
+        shape = tuple(b - a for a, b in zip(lo, hi))
+        parts = []
+        for rows, x0, x1 in ((self.rows, self.x0, self.x1), (self.cavity_rows, self.cavity_x0, self.cavity_x1)):
+            parts.append(_clip_runs(rows, x0, x1, self.shape[1], lo, hi))
+        return CleanedRuns(*parts[0], *parts[1], shape=shape,
+                           offset=tuple(int(o) + a for o, a in zip(self.offset, lo)),
+                           original_shape=self.original_shape, stats=self.stats)
+
+    def paint(self, threads=None):
+        """The mask of these runs, ``shape`` bool, C-contiguous."""
+        threads = _threads() if threads is None else threads
+        out = np.empty(self.shape, dtype=bool)
+        if out.size == 0:
+            return out
+        flat = out.reshape(-1, self.shape[2])
+        _paint(flat, self.rows, self.x0, self.x1, True, threads)
+        if len(self.cavity_rows):
+            _paint(flat, self.cavity_rows, self.cavity_x0, self.cavity_x1, False, threads)
+        return out
+
+    def face(self, axis, side):
+        """The plane of the crop at index 0 (``side`` 0) or at the end (``side`` 1) of ``axis``, bool 2-D."""
+        n = self.shape[axis]
+        lo = [0, 0, 0]
+        hi = list(self.shape)
+        lo[axis] = 0 if side == 0 else n - 1
+        hi[axis] = lo[axis] + 1
+        return np.take(self.region(lo, hi).paint(), 0, axis=axis)
+
+
+def _clip_runs(rows, x0, x1, ny, lo, hi):
+    """Runs of rows within ``[lo, hi)`` (z, y), clipped to ``[lo[2], hi[2])`` in x and re-based."""
+    z, y = np.divmod(rows, ny)
+    a = np.maximum(x0, lo[2])
+    b = np.minimum(x1, hi[2])
+    keep = (z >= lo[0]) & (z < hi[0]) & (y >= lo[1]) & (y < hi[1]) & (a < b)
+    nrow = (z[keep] - lo[0]) * (hi[1] - lo[1]) + (y[keep] - lo[1])
+    return (nrow.astype(np.int64), (a[keep] - lo[2]).astype(np.int32), (b[keep] - lo[2]).astype(np.int32))
+
+
+def clean_runs(rows, x0, x1, shape, *, spacing, min_object_volume_um3=1000.0, min_object_area_um2=100.0,
+               fill_cavities=True, planar=False):
+    """:func:`clean_mask` on the runs of a mask: the same decisions, with no volume.
+
+    Parameters
+    ----------
+    rows, x0, x1 : (K,) ndarray
+        Runs of vessel voxels of the whole mask: row ``z * Y + y`` (int64,
+        sorted), first x and x past the last (int32). Consumed (reordered in
+        place).
+    shape : tuple of 3 int
+        Shape ``(Z, Y, X)`` of the mask.
+    spacing, min_object_volume_um3, min_object_area_um2, fill_cavities, planar
+        As for :func:`clean_mask`.
+
+    Returns
+    -------
+    CleanedRuns
+    """
+    nz, ny, nx = (int(n) for n in shape)
     voxel_volume = (1.0 if planar else spacing[0]) * spacing[1] * spacing[2]
     if planar:
         min_object_volume_um3 = min_object_area_um2
-    threads = _threads()
-    rows, x0, x1 = _runs(mask, threads)
     piece = _join_runs(rows, x0, x1, ny, nz * ny, True)
     n = int(piece.max()) + 1 if len(piece) else 0
     sizes = _piece_sizes(piece, x0, x1, n)
@@ -124,29 +235,30 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     # volume's edge is a cut. The kept runs move to the crop's frame in place.
     k, lo, hi = _keep_runs(rows, x0, x1, piece, keep, ny)
     del piece
-    box = tuple(slice(max(int(a) - 1, 0), min(int(b) + 1, n_)) for a, b, n_ in zip(lo, hi, mask.shape))
-    shape = tuple(b.stop - b.start for b in box)
+    box = tuple(slice(max(int(a) - 1, 0), min(int(b) + 1, n_)) for a, b, n_ in zip(lo, hi, (nz, ny, nx)))
+    crop = tuple(b.stop - b.start for b in box)
     rows, x0, x1 = rows[:k], x0[:k], x1[:k]
-    _to_crop(rows, x0, x1, ny, shape[1], box[0].start, box[1].start, box[2].start)
-    cropped = np.empty(shape, dtype=bool)
-    _paint(cropped.reshape(-1, shape[2]), rows, x0, x1, True, threads)
-    filled = 0
-    if fill_cavities:
-        filled = _fill_cavities(cropped, rows, x0, x1, planar=planar, threads=threads)
+    _to_crop(rows, x0, x1, ny, crop[1], box[0].start, box[1].start, box[2].start)
+    empty = (np.zeros(0, np.int64), np.zeros(0, np.int32), np.zeros(0, np.int32))
+    cavities = _cavity_runs(crop, rows, x0, x1, planar=planar) if fill_cavities else empty
+    filled = int((cavities[2] - cavities[1]).sum())
     stats = {
         "kept_pieces": int(keep.sum()),
         "removed_pieces": removed,
         "removed_volume_um3": removed_volume,
-        "filled_cavity_voxels": int(filled),
-        "vessel_voxels": int(sizes[keep].sum()) + int(filled),
+        "filled_cavity_voxels": filled,
+        "vessel_voxels": int(sizes[keep].sum()) + filled,
     }
-    return CleanedMask(
-        mask=cropped,
-        offset=tuple(int(b.start) for b in box),
-        original_shape=(nz, ny, nx),
-        spacing=spacing,
-        stats=stats,
-    )
+    return CleanedRuns(rows, x0, x1, *cavities, shape=crop, offset=tuple(int(b.start) for b in box),
+                       original_shape=(nz, ny, nx), stats=stats)
+
+
+def mask_runs(mask, *, row_offset=0):
+    """Runs of True voxels of a (Z, Y, X) bool block: rows (+ ``row_offset``), first x, x past the last."""
+    rows, x0, x1 = _runs(np.ascontiguousarray(mask, dtype=bool), _threads())
+    if row_offset:
+        rows += row_offset
+    return rows, x0, x1
 
 
 @numba.njit(cache=True, parallel=True)
@@ -362,19 +474,15 @@ def _enclosed(brow, b0, b1, label, nz, ny, nx, planar):
     return k
 
 
-def _fill_cavities(cropped, rows, x0, x1, *, planar, threads):
-    """Fill background not connected to the crop box's faces, in place; returns the voxels filled.
+def _cavity_runs(shape, rows, x0, x1, *, planar):
+    """Background runs not connected to the crop box's faces (the cavities), sorted by row.
 
     Background beyond the box is all background, so background touching a
     face connects to the outside and is no cavity. In a planar mask the
     plane itself is not a face.
     """
-    nz, ny, nx = cropped.shape
+    nz, ny, nx = shape
     brow, b0, b1 = _gaps(rows, x0, x1, nz * ny, nx)
     label = _join_runs(brow, b0, b1, ny, nz * ny, False)
     k = _enclosed(brow, b0, b1, label, nz, ny, nx, planar)
-    if k == 0:
-        return 0
-    brow, b0, b1 = brow[:k], b0[:k], b1[:k]
-    _paint(cropped.reshape(-1, nx), brow, b0, b1, False, threads)
-    return int((b1 - b0).sum())
+    return brow[:k].copy(), b0[:k].copy(), b1[:k].copy()

@@ -88,7 +88,7 @@ from numba.cpython.unsafe.numbers import trailing_zeros
 
 from ._parallel import start_threads
 
-__all__ = ["WallRadii", "wall_radii", "segment_tangents"]
+__all__ = ["WallRadii", "wall_radii", "segment_tangents", "wall_fit_plan", "fit_wall_points", "finish_wall_radii"]
 
 # Search reach of the wall fits, in distance-map radii (plus two voxels): the
 # plain fit's (which pruning reads) and the wider one of the measured radius
@@ -688,24 +688,90 @@ def wall_radii(mask, *, spacing, offset, points_um, offsets, radii_um, planar=Fa
     R0 = np.ascontiguousarray(radii_um, dtype=np.float64)
     if planar or len(R0) == 0:
         return WallRadii(R0.copy(), np.zeros(len(R0), dtype=bool), R0.copy())
+    P, off, T, todo = wall_fit_plan(points_um, offsets, R0, spacing=spacing)
+    plain, mean, nfit = fit_wall_points(mask, spacing=spacing, offset=offset, points_um=P[todo],
+                                        tangents=T[todo], radii_um=R0[todo])
+    return finish_wall_radii(P, off, R0, todo, plain, mean, nfit)
+
+
+def wall_fit_plan(points_um, offsets, radii_um, *, spacing):
+    """Which points :func:`wall_radii` fits, and the tangent at every point.
+
+    Returns
+    -------
+    P : (M, 3) float ndarray
+        The points, C-contiguous float64.
+    off : (S + 1,) int64 ndarray
+    T : (M, 3) float ndarray
+        Unit tangent at each point.
+    todo : (F,) int64 ndarray
+        Indices of the points to fit (the rest are interpolated by
+        :func:`finish_wall_radii`).
+    """
     sp = np.asarray(spacing, dtype=np.float64)
-    origin = np.asarray(offset, dtype=np.float64) * sp
     P = np.ascontiguousarray(points_um, dtype=np.float64)
     off = np.ascontiguousarray(offsets, dtype=np.int64)
+    R0 = np.ascontiguousarray(radii_um, dtype=np.float64)
     T = segment_tangents(P, off)
-    out = R0.copy()
-    # -1: not fitted here (filled by interpolation); 0: fit failed; > 0: wall points used.
-    nfit = np.full(len(R0), -1, dtype=np.int64)
     # Slabs of neighbouring points overlap: fitting once per three quarters
     # of a slab's width (slabs overlapping by a quarter) and interpolating
     # between loses nothing the slab resolves; segment ends are not fitted
     # (module notes).
-    todo = _stride_points(P, off, R0, float(sp.max()))
-    start_threads()
-    nchunks = max(1, min(len(todo), 64 * numba.get_num_threads()))
-    faces = _wall_faces(np.ascontiguousarray(mask, dtype=bool))
+    return P, off, T, _stride_points(P, off, R0, float(sp.max()))
+
+
+def fit_wall_points(mask, *, spacing, offset, points_um, tangents, radii_um):
+    """Wall fits at the given points, on a mask that holds their surroundings.
+
+    A point's fit reads the mask within about ``2 r + 2`` voxels of it
+    (``r`` its first radius, :data:`_MEAN_REACH_RADII`); a mask that is a
+    block of the volume gives the whole volume's answer at points at least
+    that far from the block's faces that are not the volume's.
+
+    Parameters
+    ----------
+    mask : (Z, Y, X) bool ndarray
+        Cleaned mask (or a block of it), on the original grid.
+    spacing : sequence of 3 float
+    offset : sequence of 3 int
+        Index of ``mask[0, 0, 0]`` in the original volume.
+    points_um, tangents : (F, 3) float ndarray
+    radii_um : (F,) float ndarray
+
+    Returns
+    -------
+    plain, mean : (F,) float ndarray
+        The plain and the mean-over-angle fits (the first radius where no fit).
+    nfit : (F,) int ndarray
+        Wall points used, 0 where the fit failed.
+    """
+    sp = np.asarray(spacing, dtype=np.float64)
+    origin = np.asarray(offset, dtype=np.float64) * sp
+    P = np.ascontiguousarray(points_um, dtype=np.float64)
+    T = np.ascontiguousarray(tangents, dtype=np.float64)
+    R0 = np.ascontiguousarray(radii_um, dtype=np.float64)
+    out = R0.copy()
     out_mean = R0.copy()
+    nfit = np.zeros(len(R0), dtype=np.int64)
+    if len(R0) == 0:
+        return out, out_mean, nfit
+    start_threads()
+    nchunks = max(1, min(len(R0), 64 * numba.get_num_threads()))
+    faces = _wall_faces(np.ascontiguousarray(mask, dtype=bool))
+    todo = np.arange(len(R0), dtype=np.int64)
     _fit_all(faces, _wall_words(faces), sp, origin, P, T, R0, todo, out, out_mean, nfit, nchunks)
-    _fill_between(P, off, out, nfit)
-    _fill_between(P, off, out_mean, nfit)
-    return WallRadii(out_mean, nfit > 0, out)
+    return out, out_mean, nfit
+
+
+def finish_wall_radii(P, off, R0, todo, plain, mean, nfit):
+    """:class:`WallRadii` of every point from the fits at ``todo`` (interpolated between them)."""
+    out = R0.copy()
+    out_mean = R0.copy()
+    # -1: not fitted here (filled by interpolation); 0: fit failed; > 0: wall points used.
+    count = np.full(len(R0), -1, dtype=np.int64)
+    out[todo] = plain
+    out_mean[todo] = mean
+    count[todo] = nfit
+    _fill_between(P, off, out, count)
+    _fill_between(P, off, out_mean, count)
+    return WallRadii(out_mean, count > 0, out)
