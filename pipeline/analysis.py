@@ -171,6 +171,24 @@ def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
         half_voxel_correction=cfg["radii"]["half_voxel_correction"],
     )
     clock.tick("centrelines")
+
+    def fit(points, offsets, radii):
+        return radii_step.wall_radii(cleaned.mask, spacing=sp, offset=cleaned.offset, points_um=points,
+                                     offsets=offsets, radii_um=radii, planar=planar)
+
+    return graph_steps(cl, cleaned, sp, cfg, shape=original_shape, planar=planar, inlets=inlets, outlets=outlets,
+                       clock=clock, wall_fit=fit)
+
+
+def graph_steps(cl, cleaned, sp, cfg, *, shape, planar, inlets, outlets, clock, wall_fit):
+    """The steps of :func:`analyze` from the centrelines on: graph, radii, pruning, tables and the network steps.
+
+    ``cleaned`` needs ``stats`` and ``offset`` (and ``mask`` only when the
+    centrelines carry no tissue distances); ``wall_fit(points, offsets,
+    radii)`` returns the :class:`pipeline.radii.WallRadii` of the graph's
+    centreline points. The block-wise analysis comes in here with its own.
+    """
+    original_shape = tuple(shape)
     g = graph_step.build_graph(cl)
     clock.tick("graph")
     # Radii from the wall before pruning: the pruning rules compare lengths
@@ -178,7 +196,7 @@ def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
     # walls (it touches the deepest dent), which keeps bumps as branches.
     wall = None
     if cfg["radii"]["estimator"] == "wall_fit":
-        wall = _fit_wall_radii(g, cleaned, sp, planar)
+        wall = _fit_wall_radii(g, wall_fit)
         clock.tick("radii")
     _prune(g, cfg["pruning"], grid_spacing=cl.grid_spacing, spacing=sp, planar=planar, shape=original_shape)
     if wall is not None:
@@ -363,19 +381,19 @@ def _paths(g):
     return keys, off, np.vstack([g.seg_path[s] for s in keys])
 
 
-def _fit_wall_radii(g, cleaned, spacing, planar):
+def _fit_wall_radii(g, wall_fit):
     """Replace each segment's distance-map radii by the plain wall fit (pipeline/radii.py).
 
-    Returns the fitted points (M, 3) and, at each, the mean radius over
-    angle over the plain one, for :func:`_to_mean_radii` after pruning; None
-    when the graph has no segment.
+    ``wall_fit(points, offsets, radii)`` makes the fits. Returns the fitted
+    points (M, 3) and, at each, the mean radius over angle over the plain
+    one, for :func:`_to_mean_radii` after pruning; None when the graph has
+    no segment.
     """
     keys, off, P = _paths(g)
     if not keys:
         return None
     R0 = np.concatenate([g.seg_radii[s] for s in keys])
-    fit = radii_step.wall_radii(cleaned.mask, spacing=spacing, offset=cleaned.offset, points_um=P, offsets=off,
-                                radii_um=R0, planar=planar)
+    fit = wall_fit(P, off, R0)
     for i, s in enumerate(keys):
         g.seg_radii[s] = fit.plain[off[i]:off[i + 1]]
     # where no radius was found (0) there is nothing to move

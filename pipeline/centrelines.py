@@ -127,22 +127,30 @@ def _pad_width(mask, border_faces, spacing):
     in an ellipse whose inscribed circle has radius r). Measuring it on the
     faces alone needs no distance map of the whole crop before thinning.
     """
+    return pad_width_of_faces(lambda axis, side: np.take(mask, side, axis=axis), border_faces, spacing, spacing)
+
+
+def pad_width_of_faces(face, border_faces, spacing, grid_spacing):
+    """:func:`_pad_width` from a function ``face(axis, side)`` giving a face plane (side 0 or -1) on ``spacing``.
+
+    ``grid_spacing`` is the spacing of the grid the padding is counted on.
+    """
     deepest = 0.0
-    for axis in range(mask.ndim):
+    for axis in range(len(border_faces)):
         for side, cut in zip((0, -1), border_faces[axis]):
             if not cut:
                 continue
-            face = np.ascontiguousarray(np.take(mask, side, axis=axis))
-            if not face.any():
+            plane = np.ascontiguousarray(face(axis, side))
+            if not plane.any():
                 continue
             face_sp = tuple(float(s) for a, s in enumerate(spacing) if a != axis)
-            if face.ndim == 1:
-                face, face_sp = face[None], (1.0,) + face_sp
-            d = two_label_distance(face, spacing=face_sp)
-            r = float(np.max(d, where=face, initial=0.0))
+            if plane.ndim == 1:
+                plane, face_sp = plane[None], (1.0,) + face_sp
+            d = two_label_distance(plane, spacing=face_sp)
+            r = float(np.max(d, where=plane, initial=0.0))
             # A face that is all vessel: the thinning erodes at most the face's extent.
-            deepest = max(deepest, r if np.isfinite(r) else float(max(face.shape) * max(face_sp)))
-    width = int(np.ceil(deepest / float(np.min(spacing)))) + 2
+            deepest = max(deepest, r if np.isfinite(r) else float(max(plane.shape) * max(face_sp)))
+    width = int(np.ceil(deepest / float(np.min(grid_spacing)))) + 2
     # Even, so the thinning's subfields (voxel parities) keep their phase on
     # the unpadded grid: the skeleton then does not depend on the pad width.
     return width + width % 2
@@ -223,10 +231,14 @@ def _in_plane_distance(mask, spacing, axis):
     return dist
 
 
-def _in_plane_radii(dist, spacing, axis, positions, *, ridge):
-    """Sample :func:`_in_plane_distance` at physical positions (ridge within the plane)."""
+def _in_plane_radii(dist, spacing, axis, positions, *, ridge, origin_index=0):
+    """Sample :func:`_in_plane_distance` at physical positions (ridge within the plane).
+
+    ``dist`` may be a block of the crop's map whose first voxel is the
+    crop's voxel ``origin_index``; ``positions`` stay in the crop's frame.
+    """
     others = [a for a in range(dist.ndim) if a != axis]
-    vox = np.rint(positions / spacing).astype(np.int64)
+    vox = np.rint(positions / spacing).astype(np.int64) - np.asarray(origin_index, dtype=np.int64)
     vox = np.clip(vox, 0, np.array(dist.shape) - 1)
     best = dist[tuple(vox.T)].astype(np.float64)
     if ridge:
@@ -323,19 +335,34 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         del distance
         tissue_q = tissue_distance_quantiles(full, work, inside)
         del full
-    radii = radii.astype(np.float64)
+    return from_voxels(voxels, radii, grid_spacing=sp, grid_shape=work.shape, offset=offset, spacing=spacing,
+                       original_shape=original_shape, planar=planar, resampled=resampled, tissue_distance_um=tissue_q)
 
+
+def from_voxels(voxels, radii, *, grid_spacing, grid_shape, offset, spacing, original_shape, planar, resampled,
+                tissue_distance_um):
+    """:class:`Centrelines` from thinning-grid voxels (relative to the crop) and their radii.
+
+    ``grid_spacing`` and ``grid_shape`` have one entry per analysed axis
+    (two when ``planar``).
+    """
+    spacing = np.asarray(spacing, dtype=float)
+    offset = np.asarray(offset)
+    original_shape = np.asarray(original_shape)
+    axes = [1, 2] if planar else [0, 1, 2]
+    sp = np.asarray(grid_spacing, dtype=float)
+    radii = np.asarray(radii).astype(np.float64)
     pos = voxels * sp + offset[axes] * spacing[axes]
     if planar:
         positions = np.column_stack([np.zeros(len(pos)), pos])
         vox3 = np.column_stack([np.zeros(len(voxels), dtype=voxels.dtype), voxels])
         grid_spacing = (float(spacing[0]), float(sp[0]), float(sp[1]))
-        grid_shape = (1,) + tuple(work.shape)
+        grid_shape = (1,) + tuple(grid_shape)
     else:
         positions = pos
         vox3 = voxels
         grid_spacing = tuple(float(s) for s in sp)
-        grid_shape = tuple(work.shape)
+        grid_shape = tuple(grid_shape)
     # Border test on the original grid: within one voxel of a face that is the volume's edge.
     orig_idx = np.rint(positions / spacing).astype(np.int64)
     on_border = np.zeros(len(positions), dtype=bool)
@@ -350,5 +377,5 @@ def extract_centrelines(mask, *, spacing, offset, original_shape, planar=False,
         grid_shape=grid_shape,
         on_border=on_border,
         resampled=resampled,
-        tissue_distance_um=tissue_q,
+        tissue_distance_um=tissue_distance_um,
     )
