@@ -440,7 +440,8 @@ def _resolve_nodes(specs, nodes, segments, what):
 
 
 def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, inlets=(), outlets=(),
-                 progress=None, warn=None, run_info=None, memory_limit_bytes=None):
+                 progress=None, warn=None, run_info=None, memory_limit_bytes=None, blockwise=None, block_size=None,
+                 scheduler=None, workers=None, dataset=None, block_progress=None):
     """Read one mask file, analyse it and write its result folder.
 
     Parameters
@@ -466,12 +467,21 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
         Extra entries for ``run.json`` (the command line, batch bookkeeping).
     memory_limit_bytes : int, optional
         Memory the analysis may use; overrides ``input.max_memory_gb``.
+    blockwise : bool or None
+        Analyse block by block (:func:`pipeline.blockwise.analyze_blockwise`):
+        True always, False never (a volume over the memory limit is then
+        refused), None (default) when the in-memory analysis would need more
+        than the memory limit.
+    block_size, scheduler, workers, block_progress
+        Options of :func:`pipeline.blockwise.analyze_blockwise`.
+    dataset : str, optional
+        The array of a Zarr store or HDF5 file that holds several.
 
     Returns
     -------
     outdir : Path
         The result folder.
-    result : Analysis
+    result : Result
         The analysis that was written.
 
     Raises
@@ -488,6 +498,7 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     import datetime as _dt
     import platform
     from pathlib import Path as _Path
+    from types import SimpleNamespace
 
     from . import tables
     from ._version import __version__
@@ -500,15 +511,30 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
         _charge(exc, "writing")  # where the result would go, checked before any work
         raise
     try:
-        img, read_s, limit = _read(path, spacing, cfg, memory_limit_bytes, progress, warn)
+        limit = _memory_limit(cfg, memory_limit_bytes)
+        lazy = _opened_for_blocks(path, spacing, cfg, limit, blockwise, dataset)
+        if lazy is None:
+            img, read_s, limit = _read(path, spacing, cfg, limit, progress, warn, dataset)
     except BaseException as exc:
         _charge(exc, "reading")
         raise
-    result = analyze(img.mask, spacing=img.spacing, config=cfg, planar=img.planar, inlets=inlets, outlets=outlets,
-                     progress=progress, memory_limit_bytes=limit)
-    for w in result.run["warnings"]:
-        if warn is not None:
-            warn(w)
+    if lazy is not None:
+        with lazy:
+            for w in lazy.warnings:
+                if warn is not None:
+                    warn(w)
+            from .blockwise import analyze_blockwise
+
+            result = analyze_blockwise(lazy.source, spacing=lazy.spacing, config=cfg, block_size=block_size,
+                                       memory_limit_bytes=limit, scheduler=scheduler, workers=workers,
+                                       inlets=inlets, outlets=outlets, progress=progress,
+                                       block_progress=block_progress, label=lazy.label)
+            img = SimpleNamespace(sha256=lazy.sha256(), original_dtype=str(lazy.dtype), axes_found=lazy.axes_found,
+                                  spacing=lazy.spacing, spacing_source=lazy.spacing_source, warnings=lazy.warnings)
+        read_s = result.run["timings_s"].pop("reading", 0.0)
+    else:
+        result = analyze(img.mask, spacing=img.spacing, config=cfg, planar=img.planar, inlets=inlets,
+                         outlets=outlets, progress=progress, memory_limit_bytes=limit)
     result.run["timings_s"] = {"reading": round(read_s, 4), **result.run["timings_s"]}
     result.run["warnings"] = list(img.warnings) + list(result.run["warnings"])
     info = {
@@ -532,19 +558,50 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     return out, result
 
 
-def _read(path, spacing, cfg, memory_limit_bytes, progress, warn):
-    """The mask file read and checked (:func:`pipeline.reading.read_mask`), the seconds it took, the memory limit."""
-    t0 = time.perf_counter()
+def _memory_limit(cfg, memory_limit_bytes):
+    """The memory the analysis may use: the argument, ``input.max_memory_gb``, or what is available now."""
     limit = memory_limit_bytes
     if limit is None and cfg["input"]["max_memory_gb"] is not None:
         limit = int(cfg["input"]["max_memory_gb"] * 2**30)
     if limit is None:
         # One figure, taken before the mask is loaded, for both memory checks.
         limit = reading.available_memory_bytes()
+    return limit
+
+
+def _opened_for_blocks(path, spacing, cfg, limit, blockwise, dataset):
+    """The mask opened lazily when it is to be analysed block by block, else None."""
+    if blockwise is False:
+        return None
+    lazy = reading.open_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"],
+                             implausible_spacing=cfg["input"]["implausible_spacing"], dataset=dataset)
+    try:
+        if blockwise is None:
+            cc = cfg["centrelines"]
+            grid = reading.thinning_grid_shape(lazy.shape, lazy.spacing, planar=lazy.planar,
+                                               max_anisotropy=cc["max_anisotropy"],
+                                               resample_spacing_um=cc["resample_spacing_um"])
+            need = reading.estimate_memory_bytes(lazy.shape, grid_shape=grid)
+            if lazy.planar or limit is None or need <= limit:
+                lazy.close()
+                return None
+        elif lazy.planar:
+            raise InputError(f"{lazy.label}: a single plane is analysed in memory; the block-wise analysis is "
+                             "for 3-D volumes", param="blockwise")
+    except BaseException:
+        lazy.close()
+        raise
+    return lazy
+
+
+def _read(path, spacing, cfg, limit, progress, warn, dataset=None):
+    """The mask file read and checked (:func:`pipeline.reading.read_mask`), the seconds it took, the memory limit."""
+    t0 = time.perf_counter()
     cc = cfg["centrelines"]
     img = reading.read_mask(path, spacing=spacing, threshold=cfg["input"]["threshold"], memory_limit_bytes=limit,
                             implausible_spacing=cfg["input"]["implausible_spacing"],
-                            max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"])
+                            max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"],
+                            dataset=dataset)
     for w in img.warnings:
         if warn is not None:
             warn(w)

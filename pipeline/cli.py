@@ -30,12 +30,14 @@ __all__ = ["main"]
 _OPTION_OF = {"overwrite": "--overwrite", "spacing": "--spacing", "threshold": "--threshold",
               "scheduler": "--scheduler", "workers": "--workers", "threads": "--threads",
               "worker_timeout": "--worker-timeout", "memory_limit": "--memory-limit", "config": "--config"}
-_OPTION_OF_COMMAND = {"analyze": {"mask": "MASK"},
+_OPTION_OF_COMMAND = {"analyze": {"mask": "MASK", "block_size": "--block-size", "dataset": "--dataset",
+                                  "blockwise": "--blockwise"},
                       "view": {"path": "--screenshot", "node_id": "--bifurcation", "mask_path": "--mask",
                                "size": "--size"},
                       "report": {"mask": "--mask", "mask_path": "--mask"},
                       "synth": {"path": "--output", "artefacts": "--artefacts", "seed": "--seed",
-                                "roughness": "--roughness", "specks": "--specks", "holes": "--holes"},
+                                "roughness": "--roughness", "specks": "--specks", "holes": "--holes",
+                                "size_um": "--size", "shape_um": "--size"},
                       "score": {"path": "--output"}, "summarize": {"review": "--apply-review"}}
 _HINT_OF = {"overwrite=True": "--overwrite", "spacing=(dz, dy, dx)": "--spacing Z Y X",
             "threshold=T": "--threshold T", "mask_path=PATH": "--mask PATH"}
@@ -70,6 +72,16 @@ class _Reporter:
 
     def warn(self, msg):
         print(f"vesselflow: warning: {_as_options(msg)}", file=sys.stderr, flush=True)
+
+    def blocks(self, step, done, total):
+        """Blocks of a block-wise step: one updating line on a terminal, else a line per tenth."""
+        if self.quiet:
+            return
+        text = f"vesselflow: {step:<12} block {done}/{total}"
+        if self.tty:
+            print("\r" + text + ("\n" if done == total else ""), end="", file=sys.stderr, flush=True)
+        elif done == total or done % max(1, total // 10) == 0:
+            print(text, file=sys.stderr, flush=True)
 
 
 class _BatchProgress:
@@ -145,10 +157,27 @@ def _parser():
     sub = p.add_subparsers(dest="command", required=True)
 
     a = sub.add_parser("analyze", help="analyse one mask into a result folder")
-    a.add_argument("mask", help="mask file: .tif/.tiff, .ome.tif, .nii/.nii.gz, .npy, .npz")
+    a.add_argument("mask", help="mask file: .tif/.tiff, .ome.tif, .nii/.nii.gz, .npy, .npz, .h5/.hdf5, or a "
+                                "Zarr / OME-Zarr store (.zarr)")
     a.add_argument("-o", "--output", required=True, help="result folder (must be empty unless --overwrite)")
     a.add_argument("--report", action="store_true", help="also write report.html and figures/ into the result")
     _common(a)
+    g = a.add_argument_group("large volumes")
+    g.add_argument("--blockwise", action="store_true",
+                   help="analyse block by block, into one graph (default: only when the volume needs more than "
+                        "the memory limit)")
+    g.add_argument("--memory-limit", metavar="SIZE",
+                   help="memory the analysis may use, all its processes together, e.g. 1.5GB (default: the "
+                        "available memory); a volume that needs more is analysed block by block")
+    g.add_argument("--block-size", type=int, metavar="N", help="edge of a block in voxels (even, at least 32; "
+                                                                 "default: the largest the memory limit allows)")
+    g.add_argument("--workers", type=int, metavar="N", help="block-wise: local Dask worker processes (default 1: "
+                                                             "the blocks one after another in this process)")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="block-wise: run the blocks on an existing Dask cluster, e.g. tcp://HOST:8786 (the "
+                        "workers must see the mask file)")
+    g.add_argument("--dataset", metavar="PATH", help="the array inside a Zarr store or HDF5 file that holds several "
+                                                     "(or write MASK:/PATH)")
 
     r = sub.add_parser("report", help="figures and a self-contained report.html of a result or batch folder")
     r.add_argument("outdir", help="a result folder (from analyze) or a batch folder (from batch)")
@@ -162,7 +191,10 @@ def _parser():
     s = sub.add_parser("synth", help="write a synthetic volume and its ground truth",
                        formatter_class=argparse.RawDescriptionHelpFormatter, epilog="kinds:\n" + kinds)
     s.add_argument("kind", help="what to build: one of the kinds below")
-    s.add_argument("-o", "--output", required=True, help="output TIFF path")
+    s.add_argument("-o", "--output", required=True,
+                   help="output TIFF path, or an OME-Zarr store (.ome.zarr), written block by block")
+    s.add_argument("--size", nargs=3, type=float, metavar=("Z", "Y", "X"),
+                   help="extent in µm of the kinds built in a box (bed, cortex)")
     s.add_argument("--spacing", nargs=3, type=float, metavar=("Z", "Y", "X"), default=(1.0, 1.0, 1.0))
     s.add_argument("--seed", type=int, default=0)
     s.add_argument("--roughness", type=float, default=0.0)
@@ -275,22 +307,47 @@ def _load_cfg(args):
 
 
 def run_analyze(mask_path, output, *, spacing=None, config, overwrite, reporter, command=None, inlets=(),
-                outlets=()):
-    """Read, analyse and write one sample with progress lines; returns the output path."""
+                outlets=(), large=None):
+    """Read, analyse and write one sample with progress lines; returns the output path.
+
+    ``large``: the keyword options of :func:`pipeline.analysis.analyze_file`
+    for volumes larger than memory (``blockwise``, ``memory_limit_bytes``, ...).
+    """
     from .analysis import analyze_file
 
     out, result = analyze_file(mask_path, output, spacing=spacing, config=config, overwrite=overwrite,
                                inlets=inlets, outlets=outlets, progress=reporter.step, warn=reporter.warn,
-                               run_info={"command": command})
+                               run_info={"command": command}, block_progress=reporter.blocks, **(large or {}))
     reporter.info(f"wrote {out} ({len(result.segments)} segments, {len(result.nodes)} nodes)")
     return out
+
+
+def _large_options(args):
+    """The block-wise options of ``analyze`` as :func:`pipeline.analysis.analyze_file` keywords."""
+    limit = None
+    if args.memory_limit is not None:
+        from dask.utils import parse_bytes
+
+        try:
+            limit = int(parse_bytes(args.memory_limit))
+        except (ValueError, TypeError):
+            raise InputError(f"expected a size such as 1.5GB or 800MB, got '{args.memory_limit}'",
+                             param="memory_limit") from None
+        if limit <= 0:
+            raise InputError(f"expected a positive size, got '{args.memory_limit}'", param="memory_limit")
+    if args.workers is not None and args.workers < 1:
+        raise InputError(f"expected at least 1 worker, got {args.workers}", param="workers")
+    blockwise = True if (args.blockwise or args.scheduler or args.workers or args.block_size) else None
+    return {"blockwise": blockwise, "memory_limit_bytes": limit, "block_size": args.block_size,
+            "workers": args.workers, "scheduler": args.scheduler, "dataset": args.dataset}
 
 
 def _cmd_analyze(args):
     cfg = _load_cfg(args)
     rep = _Reporter(args.quiet)
     out = run_analyze(args.mask, args.output, spacing=args.spacing, config=cfg, overwrite=args.overwrite,
-                      reporter=rep, command=sys.argv, inlets=args.inlet, outlets=args.outlet)
+                      reporter=rep, command=sys.argv, inlets=args.inlet, outlets=args.outlet,
+                      large=_large_options(args))
     if args.report:
         from .report import build_report
 
@@ -312,10 +369,12 @@ def _cmd_report(args):
 def _cmd_synth(args):
     from . import synthetic
 
+    rep = _Reporter(args.quiet)
     out, shape = synthetic.write_synthetic(args.output, args.kind, spacing=tuple(args.spacing), seed=args.seed,
                                            artefacts=args.artefacts, roughness=args.roughness, specks=args.specks,
-                                           holes=args.holes, overwrite=args.overwrite)
-    _Reporter(args.quiet).info(f"wrote {out} {shape} and its ground truth")
+                                           holes=args.holes, overwrite=args.overwrite, size_um=args.size,
+                                           progress=lambda done, total: rep.blocks("writing", done, total))
+    rep.info(f"wrote {out} {shape} and its ground truth")
     return 0
 
 

@@ -227,21 +227,23 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, record, r
 def _tissue_quantiles(parts, bins):
     """Median and 95th percentile of the tissue distances from the blocks' histograms, and their brackets."""
     width, n = bins
-    upper = np.zeros(n, np.int64)
-    proven = np.zeros(n, np.int64)
+    upper = np.zeros((2, n))
+    proven = np.zeros((2, n))
     for p in parts:
         upper += p["tissue_upper"]
         proven += p["tissue_proven"]
-    total = int(upper.sum())
+    total = int(round(upper[0].sum()))
     if total == 0:
-        return (0.0, 0.0), {"median": [0.0, 0.0], "p95": [0.0, 0.0]}
+        return (0.0, 0.0), {"median": [0.0, 0.0], "p95": [0.0, 0.0], "bin_um": float(width)}
 
     def quantile(hist, q):
-        # numpy's linear rule between the order statistics around rank q (n - 1)
-        cum = np.cumsum(hist)
+        # numpy's linear rule between the order statistics around rank q (n - 1);
+        # each statistic is the mean of its bin (module notes of tasks.py)
+        cum = np.cumsum(hist[0])
         r = q * (total - 1)
         k = int(math.floor(r))
-        v = [(int(np.searchsorted(cum, j + 1)) + 0.5) * width for j in (k, min(k + 1, total - 1))]
+        b = [int(np.searchsorted(cum, j + 0.5)) for j in (k, min(k + 1, total - 1))]
+        v = [hist[1, i] / hist[0, i] for i in b]
         return v[0] + (r - k) * (v[1] - v[0])
 
     med = (quantile(proven, 0.5), quantile(upper, 0.5))

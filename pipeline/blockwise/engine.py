@@ -70,21 +70,11 @@ class BlockRunner:
     def __enter__(self):
         if self.scheduler is None and self.workers <= 1:
             return self
-        from distributed import Client, LocalCluster
+        if self.scheduler is None or isinstance(self.scheduler, str):
+            from ..batch.engine import _client
 
-        if self.scheduler is None:
-            cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, processes=True,
-                                   dashboard_address=None)
-            self._owned.append(cluster)
-            self.client = Client(cluster)
-            self._owned.insert(0, self.client)
-        elif isinstance(self.scheduler, str):
-            try:
-                self.client = Client(self.scheduler, timeout="20s")
-            except OSError as exc:
-                raise EngineError(f"scheduler: cannot reach a Dask scheduler at {self.scheduler} ({exc})",
-                                  param="scheduler") from None
-            self._owned.append(self.client)
+            self.client, cluster = _client(workers=self.workers, scheduler=self.scheduler, memory_limit=0)
+            self._owned = [self.client] + ([cluster] if cluster is not None else [])
         else:
             self.client = self.scheduler
         return self

@@ -2,7 +2,8 @@
 
 In: a path to a TIFF / BigTIFF / OME-TIFF (``.tif``, ``.tiff``, ``.ome.tif``,
 ``.ome.tiff``; uncompressed or LZW/zlib/zstd compressed), NIfTI-1/2 (``.nii``,
-``.nii.gz``) or NumPy (``.npy``, ``.npz``) file, or an in-memory array; an
+``.nii.gz``), NumPy (``.npy``, ``.npz``) or HDF5 (``.h5``, ``.hdf5``) file, a
+Zarr or OME-Zarr store (``.zarr``), or an in-memory array; an
 optional voxel spacing and an optional threshold. Out: a :class:`MaskImage`
 holding a C-contiguous boolean ``(Z, Y, X)`` mask, the voxel spacing in µm as
 ``(dz, dy, dx)``, where that spacing came from, and provenance (file hash,
@@ -41,19 +42,22 @@ Layout (each module's docstring says what comes in and what goes out):
 library messages) -> ``spacing`` (units, plausibility) -> ``memory``
 (estimates, the machine's and the cgroup's memory) and ``values`` (scans,
 binarising) -> ``opened`` (a file opened, pixels not yet loaded) -> one
-module per format: ``tiff``, ``nifti``, ``numpy_files`` -> ``reader``
-(:func:`read_mask`, :func:`mask_from_array`).
+module per format: ``tiff``, ``nifti``, ``numpy_files``, ``chunked`` (Zarr,
+OME-Zarr, HDF5) -> ``reader`` (:func:`read_mask`, :func:`open_mask` for
+reading part by part, :func:`mask_from_array`).
 """
 
 from ._common import DEFAULT_SPACING_WARNING, MaskImage, SUPPORTED_EXTENSIONS
 from .spacing import PLAUSIBLE_SPACING_UM, spacing_problem
 from .memory import available_memory_bytes, check_memory, estimate_memory_bytes, thinning_grid_shape
-from .reader import mask_from_array, read_mask, sha256_file
+from .reader import LazyMask, mask_from_array, open_mask, read_mask, sha256_file
 from .values import binarise
 
 __all__ = [
     "MaskImage",
     "read_mask",
+    "open_mask",
+    "LazyMask",
     "mask_from_array",
     "estimate_memory_bytes",
     "available_memory_bytes",

@@ -28,6 +28,10 @@ SUPPORTED_EXTENSIONS: tuple[str, ...] = (
     ".nii.gz",
     ".npy",
     ".npz",
+    ".zarr",
+    ".ome.zarr",
+    ".h5",
+    ".hdf5",
 )
 
 

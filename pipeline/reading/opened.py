@@ -27,3 +27,6 @@ class _Opened:
     spacing_problem: str | None
     load: Callable[[], tuple[np.ndarray, bool]]  # -> ((Z, Y, X) array, may overwrite)
     log: _LogCollector | None = None  # library log records worth passing on
+    # A (Z, Y, X) view read part by part as it is sliced, where the format
+    # allows more than ``load`` (a TIFF read plane by plane).
+    lazy: Callable[[], object] | None = None

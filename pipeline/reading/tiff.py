@@ -188,4 +188,46 @@ def _open_tiff(path: Path, path_text: str, label: str, stack: contextlib.ExitSta
             raise _corrupt("TIFF", path_text, f"decoded {raw.size} voxels, expected {math.prod(layout.shape3)}")
         return raw.reshape(layout.shape3), True
 
-    return _Opened(layout, dtype, found, problem, load)
+    def planes() -> "_TiffPlanes":
+        return _TiffPlanes(series, layout.shape3, dtype, label, path_text)
+
+    return _Opened(layout, dtype, found, problem, load, lazy=planes)
+
+
+class _TiffPlanes:
+    """A TIFF stack seen as (Z, Y, X), read plane by plane as it is sliced along z.
+
+    One page per plane (ImageJ and OME stacks, multi-page TIFF) is read page by
+    page; an uncompressed contiguous series is memory-mapped; anything else
+    (planes tiled across pages in another order) is read whole on first use.
+    """
+
+    def __init__(self, series, shape3, dtype, label, path_text):
+        self.series, self.shape, self.dtype, self.ndim = series, tuple(shape3), np.dtype(dtype), 3
+        self.label, self.path_text = label, path_text
+        self._whole = None
+        pages = len(series.pages)
+        self._by_page = pages == shape3[0] and all(
+            p is not None and math.prod(p.shape) == shape3[1] * shape3[2] for p in series.pages[:2])
+        if not self._by_page and series.dataoffset is not None:
+            import tifffile
+
+            self._whole = tifffile.memmap(series.parent.filehandle.path, mode="r", offset=series.dataoffset,
+                                          shape=shape3, dtype=series.dtype)
+
+    def __getitem__(self, index):
+        if not isinstance(index, tuple):
+            index = (index,)
+        try:
+            if self._whole is None and not self._by_page:
+                self._whole = self.series.asarray().reshape(self.shape)
+            if self._whole is not None:
+                return np.asarray(self._whole[index])
+            zsel, rest = index[0], index[1:]
+            zs = range(self.shape[0])[zsel] if isinstance(zsel, slice) else [int(zsel)]
+            stack = np.stack([self.series.pages[z].asarray().reshape(self.shape[1:]) for z in zs])
+            return stack[(slice(None),) + rest] if isinstance(zsel, slice) else stack[(0,) + rest]
+        except MemoryError:
+            raise InputError(f"{self.label}: not enough memory to read its planes") from None
+        except Exception as exc:
+            raise _corrupt("TIFF", self.path_text, _short_reason(exc)) from None

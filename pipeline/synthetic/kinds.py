@@ -133,6 +133,24 @@ _RASTER_KEYS = (
 )
 
 
+def build_network(kind: str, **params: Any) -> tuple[VesselNetwork, dict[str, Any]]:
+    """The network of a named kind and the :func:`rasterize` keywords among ``params`` (see :func:`synthesize`)."""
+    if kind not in SYNTH_KINDS:
+        raise _bad("kind", "one of " + ", ".join(SYNTH_KINDS), kind)
+    spec = SYNTH_KINDS[kind]
+    accepted = set(inspect.signature(spec.builder).parameters)
+    merged = {**spec.defaults, **params}
+    unknown = sorted(k for k in merged if k not in accepted and k not in _RASTER_KEYS)
+    if unknown:
+        raise _bad(
+            unknown[0],
+            f"a parameter of '{kind}' (one of {', '.join(sorted(accepted | set(_RASTER_KEYS)))})",
+            merged[unknown[0]],
+        )
+    net = spec.builder(**{k: v for k, v in merged.items() if k in accepted})
+    return net, {k: v for k, v in merged.items() if k in _RASTER_KEYS}
+
+
 def synthesize(kind: str, **params: Any) -> tuple[np.ndarray, dict[str, Any]]:
     """Build and rasterise a named synthetic volume.
 
@@ -154,20 +172,8 @@ def synthesize(kind: str, **params: Any) -> tuple[np.ndarray, dict[str, Any]]:
     truth : dict
         As from :func:`rasterize`, plus ``synth_kind`` and ``synth_params``.
     """
-    if kind not in SYNTH_KINDS:
-        raise _bad("kind", "one of " + ", ".join(SYNTH_KINDS), kind)
-    spec = SYNTH_KINDS[kind]
-    accepted = set(inspect.signature(spec.builder).parameters)
-    merged = {**spec.defaults, **params}
-    unknown = sorted(k for k in merged if k not in accepted and k not in _RASTER_KEYS)
-    if unknown:
-        raise _bad(
-            unknown[0],
-            f"a parameter of '{kind}' (one of {', '.join(sorted(accepted | set(_RASTER_KEYS)))})",
-            merged[unknown[0]],
-        )
-    net = spec.builder(**{k: v for k, v in merged.items() if k in accepted})
-    mask, truth = rasterize(net, **{k: v for k, v in merged.items() if k in _RASTER_KEYS})
+    net, raster = build_network(kind, **params)
+    mask, truth = rasterize(net, **raster)
     truth["synth_kind"] = kind
-    truth["synth_params"] = _jsonable(merged)
+    truth["synth_params"] = _jsonable({**SYNTH_KINDS[kind].defaults, **params})
     return mask, truth

@@ -9,7 +9,7 @@ the smooth ones through simple voxels only.
 from __future__ import annotations
 
 import math
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 import numpy as np
 from scipy import ndimage
@@ -140,7 +140,8 @@ def _random_rotation(rng: np.random.Generator) -> np.ndarray:
 
 
 def _paint_tubes(
-    mask: np.ndarray, net: VesselNetwork, d: np.ndarray, roughness: float, rng: np.random.Generator
+    mask: np.ndarray, net: VesselNetwork, d: np.ndarray, roughness: float, rng: np.random.Generator,
+    *, origin: Sequence[int] = (0, 0, 0),
 ) -> None:
     """Set every voxel whose centre lies in the union of capsules (in place).
 
@@ -149,7 +150,13 @@ def _paint_tubes(
     over voxels. Per-piece constants are expanded with ``np.repeat`` (a
     sequential fill, much cheaper than fancy indexing) and index arithmetic
     stays in int32 (integer division dominates otherwise).
+
+    ``mask`` may be a box of the grid whose first voxel is ``origin``: each
+    voxel's value depends only on its position (and ``rng``'s state, which
+    draws the roughness texture first), so boxes painted with copies of one
+    generator tile the whole volume's mask exactly.
     """
+    org = np.asarray(origin, dtype=np.int64)
     shape = np.asarray(mask.shape, dtype=np.int64)
     flat_mask = mask.reshape(-1)
     f_hi = 1.0 + _FIELD_CLIP * roughness
@@ -159,7 +166,7 @@ def _paint_tubes(
     # Exact index range of voxel centres within reach (tolerance against rounding).
     lo = np.ceil((np.minimum(a, b) - reach) / d - 1e-6).astype(np.int64)
     hi = np.floor((np.maximum(a, b) + reach) / d + 1e-6).astype(np.int64)
-    lo, hi = np.maximum(lo, 0), np.minimum(hi, shape - 1)
+    lo, hi = np.maximum(lo, org), np.minimum(hi, org + shape - 1)
     dims = hi - lo + 1
     live = np.all(dims > 0, axis=1)
     a, b, ra, rb, sid, lo, dims = a[live], b[live], ra[live], rb[live], sid[live], lo[live], dims[live]
@@ -176,7 +183,8 @@ def _paint_tubes(
     nyx32 = (dims[:, 1] * dims[:, 2]).astype(np.int32)
     nx32 = dims[:, 2].astype(np.int32)
     yx = int(shape[1] * shape[2])
-    base_lin = (lo[:, 0] * shape[1] + lo[:, 1]) * shape[2] + lo[:, 2]
+    rel = lo - org
+    base_lin = (rel[:, 0] * shape[1] + rel[:, 1]) * shape[2] + rel[:, 2]
     if roughness > 0:
         tex_flat = _noise_texture(rng).ravel()
         seg_off = rng.uniform(0, _TEX_N, size=(len(net.segments), 3))

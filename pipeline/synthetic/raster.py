@@ -151,7 +151,7 @@ def _wall_defects(
 
 def _truth_record(
     cut: VesselNetwork,
-    mask: np.ndarray,
+    mask: np.ndarray | int,
     d: np.ndarray,
     *,
     grid: np.ndarray,
@@ -159,11 +159,11 @@ def _truth_record(
     options: dict[str, Any],
     records: dict[str, Any],
 ) -> dict[str, Any]:
-    """The truth of a rasterised network: its own, then the grid, the mask's size, options and records."""
+    """The truth of a rasterised network: its own, then the grid, the mask's size (or its voxel count), options and records."""
     truth = cut.to_truth()
     for n in truth["nodes"]:
         n["pos_vox"] = (np.asarray(n["pos_um"]) / d).tolist()
-    n_vox = int(np.count_nonzero(mask))
+    n_vox = int(mask) if isinstance(mask, (int, np.integer)) else int(np.count_nonzero(mask))
     extra = dict(
         spacing=d.tolist(),
         shape=[int(n) for n in grid],
@@ -521,3 +521,53 @@ def hostile_artefacts(
         "jitter_vox": s * full["jitter_vox"],
         "fit_artefacts": True,
     }
+
+
+class BlockRaster:
+    """A network rasterised box by box, for volumes that do not fit in memory.
+
+    The same mask as :func:`rasterize` with ``spacing``, ``shape``,
+    ``margin_um``, ``roughness`` and ``seed`` (no other artefact: holes,
+    specks and the hostile model are placed by looking at the whole mask):
+    every voxel depends only on its position, so :meth:`paint` of boxes that
+    tile :attr:`shape` gives the whole mask exactly.
+
+    Attributes
+    ----------
+    shape : tuple of 3 int
+        The grid.
+    """
+
+    def __init__(self, network: VesselNetwork, *, spacing: Sequence[float] = (1.0, 1.0, 1.0),
+                 shape: Sequence[int] | None = None, margin_um: float | None = None, roughness: float = 0.0,
+                 seed: int | None = None):
+        if not isinstance(network, VesselNetwork):
+            raise _bad("network", "a VesselNetwork", type(network).__name__)
+        self.d = _spacing(spacing)
+        margin = max(5.0, 2.0 * float(self.d.max())) if margin_um is None else _real("margin_um", margin_um, low=0.0)
+        self.rough = _real("roughness", roughness, low=0.0, high=_MAX_ROUGHNESS)
+        self.seed, self.margin = seed, margin
+        base_rng = _rng(seed)
+        # the first of rasterize's streams, the roughness texture's
+        self._rng = np.random.default_rng(base_rng.bit_generator.seed_seq.spawn(8)[0])
+        self.grid, self.offset, self.placed = _placed_grid(network, self.d, shape=shape, margin=margin,
+                                                           rough=self.rough)
+        self.shape = tuple(int(n) for n in self.grid)
+        self.cut = _clip_network(self.placed, np.zeros(3), (self.grid - 1) * self.d)
+
+    def paint(self, lo: Sequence[int], hi: Sequence[int]) -> np.ndarray:
+        """The mask of the box ``[lo, hi)``, bool."""
+        import copy
+
+        box = np.zeros(tuple(int(b) - int(a) for a, b in zip(lo, hi)), dtype=bool)
+        if box.size:
+            _paint_tubes(box, self.placed, self.d, self.rough, copy.deepcopy(self._rng), origin=lo)
+        return box
+
+    def truth(self, mask_voxels: int) -> dict[str, Any]:
+        """The truth :func:`rasterize` would give, with the painted boxes' vessel voxel count."""
+        options = {"roughness": self.rough, "roughness_correlation": "one nominal radius",
+                   "margin_um": self.margin,
+                   "specks": 0, "holes": 0, "seed": self.seed}
+        return _truth_record(self.cut, int(mask_voxels), self.d, grid=self.grid, offset=self.offset,
+                             options=options, records={"specks": [], "holes": []})
