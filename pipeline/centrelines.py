@@ -37,7 +37,6 @@ from dataclasses import dataclass
 
 import numba
 import numpy as np
-from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
 
 from ._distance import tissue_distance_quantiles, two_label_distance, volume_distance
@@ -104,9 +103,42 @@ def resample_isotropic(mask, *, spacing, target):
     phi = two_label_distance(mask, spacing=tuple(spacing))
     np.negative(phi, out=phi, where=~mask)
     out_shape = tuple(int(np.floor((n - 1) * s / target + 1e-9)) + 1 for n, s in zip(mask.shape, spacing))
-    scale = target / spacing
-    fine = ndi.affine_transform(phi, scale, output_shape=out_shape, order=1, output=np.float32, mode="nearest")
-    return fine > 0
+    return linear_resample(phi, target / spacing, first=(0,) * phi.ndim, shape=out_shape) > 0
+
+
+def linear_resample(values, scale, *, first, shape, origin=None):
+    """(Multi)linear interpolation of ``values`` at output voxels ``j`` placed at input coordinate ``j * scale``.
+
+    Output voxels ``first + (0 .. shape - 1)`` per axis; ``values`` may be a
+    block of a larger array whose first voxel is the larger array's
+    ``origin``. Coordinates outside are clamped to the edge (the edge value
+    repeats). One axis at a time, each output coordinate computed as
+    ``j * scale - origin`` (an exact shift of ``j * scale``), so a block gives
+    bit for bit the values of the whole array: the sign of an interpolated
+    signed distance that lands exactly on 0 between opposite values, common
+    on lattices, is then the same in a block and in the whole.
+    """
+    # A block holding one class only has infinite distances: capped, so
+    # that differences stay finite (the signs are what matter).
+    out = np.clip(np.asarray(values, dtype=np.float32), -1e12, 1e12)
+    origin = (0,) * out.ndim if origin is None else origin
+    for a in range(out.ndim):
+        n = out.shape[a]
+        c = np.arange(first[a], first[a] + shape[a], dtype=np.float64) * float(scale[a]) - float(origin[a])
+        np.clip(c, 0.0, n - 1, out=c)
+        i0 = np.floor(c).astype(np.int64)
+        i1 = np.minimum(i0 + 1, n - 1)
+        f = (c - i0).astype(np.float32)
+        view = [None] * out.ndim
+        view[a] = slice(None)
+        f = f[tuple(view)]
+        lo = np.take(out, i0, axis=a)
+        hi = np.take(out, i1, axis=a)
+        hi -= lo
+        hi *= f
+        lo += hi
+        out = lo
+    return out
 
 
 def _edge_pads(border_faces, width):

@@ -403,20 +403,26 @@ def _words_into(faces, words):
 
 
 @numba.njit(cache=True)
-def _box(shape, sp, origin, p, t, h, reach, lo, hi):
-    """Voxel box around the disc of radius ``reach`` and half-thickness ``h``; returns its voxel count."""
+def _box(shape, sp, origin, base, p, t, h, reach, lo, hi):
+    """Voxel box around the disc of radius ``reach`` and half-thickness ``h``; returns its voxel count.
+
+    Positions are reckoned from ``origin``, the frame's first voxel; the
+    array's first voxel is the frame's ``base`` (integers, so a block's box
+    is the whole array's, shifted, bit for bit).
+    """
     vol = 1
     for a in range(3):
         ext = h * abs(t[a]) + reach * np.sqrt(max(0.0, 1.0 - t[a] * t[a])) + 0.5 * sp[a]
         c = (p[a] - origin[a]) / sp[a]
-        lo[a] = max(0, int(np.floor(c - ext / sp[a])))
-        hi[a] = min(shape[a] - 1, int(np.ceil(c + ext / sp[a])))
+        lo[a] = max(0, int(np.floor(c - ext / sp[a])) - base[a])
+        hi[a] = min(shape[a] - 1, int(np.ceil(c + ext / sp[a])) - base[a])
         vol *= max(0, hi[a] - lo[a] + 1)
     return vol
 
 
 @numba.njit(cache=True, inline="always")
 def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V, W, QU, QV, n):
+    # z, y, x: indices in the frame of ``origin``
     """Append the wall points of voxel ``(z, y, x)`` (face bits ``f``) that lie in the slab and reach; returns the new count."""
     # Whole voxel outside the slab or beyond reach (with half a voxel to
     # spare): none of its faces can count.
@@ -460,7 +466,7 @@ def _take_faces(f, z, y, x, sp, origin, p, t, h, reach, slack, e1, e2, wax, U, V
 
 
 @numba.njit(cache=True)
-def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, W, QU, QV, R, RW, OUT):
+def _fit_one(faces, words, sp, origin, base, p, t, r0, smin, smax, wax, lo, hi, U, V, W, QU, QV, R, RW, OUT):
     """Radius from the wall around one centreline point; returns (r, r_mean, number of wall points) or (r0, r0, 0).
 
     ``OUT`` (5, at least ``len(U)``) holds the points beyond the plain fit's
@@ -501,8 +507,8 @@ def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, 
                 while word != 0:
                     x = (wi << 6) + np.int64(trailing_zeros(word))
                     word &= word - one
-                    n = _take_faces(faces[z, y, x], z, y, x, sp, origin, p, t, h, reach_m, slack, e1, e2, wax, U, V, W,
-                                    QU, QV, n)
+                    n = _take_faces(faces[z, y, x], z + base[0], y + base[1], x + base[2], sp, origin, p, t, h,
+                                    reach_m, slack, e1, e2, wax, U, V, W, QU, QV, n)
     # The points within the plain fit's reach first, each part in scan order:
     # inner points move down in place (never past their own slot), outer ones
     # wait in OUT and go behind them.
@@ -540,7 +546,7 @@ def _fit_one(faces, words, sp, origin, p, t, r0, smin, smax, wax, lo, hi, U, V, 
 
 
 @numba.njit(parallel=True, cache=True)
-def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, out_mean, nfit, nchunks):
+def _fit_all(faces, words, sp, origin, base, P, T, R0, todo, out, out_mean, nfit, nchunks):
     smin = min(sp[0], min(sp[1], sp[2]))
     smax = max(sp[0], max(sp[1], sp[2]))
     wax = np.empty(3)
@@ -570,7 +576,7 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, out_mean, nfit, nchu
             h = max(0.75 * r0, 0.6 * smax)
             reach = _MEAN_REACH_RADII * r0 + 2.0 * smin
             # A face per voxel on average at most, six at the very most.
-            need = 6 * _box(faces.shape, sp, origin, P[i], T[i], h, reach, lo, hi)
+            need = 6 * _box(faces.shape, sp, origin, base, P[i], T[i], h, reach, lo, hi)
             if need > len(U):
                 U = np.empty(need)
                 V = np.empty(need)
@@ -580,7 +586,7 @@ def _fit_all(faces, words, sp, origin, P, T, R0, todo, out, out_mean, nfit, nchu
                 R = np.empty(2 * need)
                 RW = np.empty(need)
                 OUT = np.empty((5, need))
-            r, r_mean, k = _fit_one(faces, words, sp, origin, P[i], T[i], r0, smin, smax, wax, lo, hi,
+            r, r_mean, k = _fit_one(faces, words, sp, origin, base, P[i], T[i], r0, smin, smax, wax, lo, hi,
                                     U, V, W, QU, QV, R, RW, OUT)
             out[i] = r
             out_mean[i] = r_mean
@@ -720,7 +726,7 @@ def wall_fit_plan(points_um, offsets, radii_um, *, spacing):
     return P, off, T, _stride_points(P, off, R0, float(sp.max()))
 
 
-def fit_wall_points(mask, *, spacing, offset, points_um, tangents, radii_um):
+def fit_wall_points(mask, *, spacing, offset, points_um, tangents, radii_um, frame_offset=None):
     """Wall fits at the given points, on a mask that holds their surroundings.
 
     A point's fit reads the mask within about ``2 r + 2`` voxels of it
@@ -737,6 +743,9 @@ def fit_wall_points(mask, *, spacing, offset, points_um, tangents, radii_um):
         Index of ``mask[0, 0, 0]`` in the original volume.
     points_um, tangents : (F, 3) float ndarray
     radii_um : (F,) float ndarray
+    frame_offset : sequence of 3 int, optional
+        The voxel positions are reckoned from (default ``offset``): a block
+        fitted with the whole mask's frame gives its fits bit for bit.
 
     Returns
     -------
@@ -746,7 +755,9 @@ def fit_wall_points(mask, *, spacing, offset, points_um, tangents, radii_um):
         Wall points used, 0 where the fit failed.
     """
     sp = np.asarray(spacing, dtype=np.float64)
-    origin = np.asarray(offset, dtype=np.float64) * sp
+    frame = np.asarray(offset if frame_offset is None else frame_offset, dtype=np.int64)
+    origin = frame * sp
+    base = np.asarray(offset, dtype=np.int64) - frame
     P = np.ascontiguousarray(points_um, dtype=np.float64)
     T = np.ascontiguousarray(tangents, dtype=np.float64)
     R0 = np.ascontiguousarray(radii_um, dtype=np.float64)
@@ -759,7 +770,7 @@ def fit_wall_points(mask, *, spacing, offset, points_um, tangents, radii_um):
     nchunks = max(1, min(len(R0), 64 * numba.get_num_threads()))
     faces = _wall_faces(np.ascontiguousarray(mask, dtype=bool))
     todo = np.arange(len(R0), dtype=np.int64)
-    _fit_all(faces, _wall_words(faces), sp, origin, P, T, R0, todo, out, out_mean, nfit, nchunks)
+    _fit_all(faces, _wall_words(faces), sp, origin, base, P, T, R0, todo, out, out_mean, nfit, nchunks)
     return out, out_mean, nfit
 
 

@@ -58,6 +58,8 @@ _FIRST_HALO = 8
 
 def block_edge_for(budget_bytes, *, halo=16, largest=512):
     """Largest even block edge whose extent (edge + 2 halo, cubed) fits ``budget_bytes`` of working memory."""
+    if budget_bytes <= 0:
+        return 0
     edge = int((budget_bytes / BYTES_PER_BLOCK_VOXEL) ** (1 / 3)) - 2 * int(halo)
     edge = min(edge - edge % 2, int(largest))
     return edge
@@ -171,7 +173,7 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
     record = {"block_edge": int(edge), "grid": "isotropic" if frame.resampled else "original",
               "memory_limit_bytes": None if limit is None else int(limit)}
     with BlockRunner(scheduler=scheduler, workers=workers) as runner, runner.shared(runs) as shared:
-        cl = _centrelines(runner, shared, runs, frame, shape, sp, cfg, edge=edge, record=record,
+        cl = _centrelines(runner, shared, runs, frame, shape, sp, cfg, edge=edge, limit=limit, record=record,
                           report=report)
         clock.tick("centrelines")
 
@@ -182,10 +184,17 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
         result = graph_steps(cl, runs, sp, cfg, shape=shape, planar=False, inlets=inlets, outlets=outlets,
                              clock=clock, wall_fit=fit)
     result.run["blockwise"] = record
+    if not _closed(record["tissue_distance_bracket_um"]):
+        b = record["tissue_distance_bracket_um"]
+        result.run["warnings"].append(
+            "tissue_distance: the tissue-to-vessel distances are estimates (tissue far from every vessel, "
+            f"beyond what a block's halo can hold in memory): median between {b['median'][0]:.3g} and "
+            f"{b['median'][1]:.3g} µm, 95th percentile between {b['p95'][0]:.3g} and {b['p95'][1]:.3g} µm; the "
+            "summary gives the upper values")
     return result
 
 
-def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, record, report):
+def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, record, report):
     """The whole volume's :class:`~pipeline.centrelines.Centrelines`, from its blocks."""
     border = [(o == 0, o + n == N) for o, n, N in zip(runs.offset, runs.shape, shape)]
     pad = pad_width_of_faces(runs.face, border, sp, frame.spacing)
@@ -202,15 +211,19 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, record, r
     record.update(blocks=len(tiles), halo_voxels_max=[int(h) for h in halos.max(axis=0)],
                   largest_radius_um=float(rmax), pad_voxels=int(pad))
     if frame.resampled:
-        grid = blocks(shape, runs.offset, edge)
-        halo = needed_halo(rmax, sp, radii=CENTRELINE_HALO_RADII)
-        tissue = runner.map(tissue_block, shared, grid, step="centrelines",
-                            kwargs_of=lambda i: dict(crop_offset=runs.offset, original_shape=shape, spacing=sp,
-                                                     halo=halo, bins=bins),
-                            progress=report("tissue distances"))
+        tissue = _tissue_pass(runner, shared, runs, shape, sp, bins, edge=edge,
+                              halo=needed_halo(rmax, sp, radii=CENTRELINE_HALO_RADII), report=report)
     else:
         tissue = parts
     quantiles, bracket = _tissue_quantiles(tissue, bins)
+    if not _closed(bracket):
+        # Tissue far from every vessel: one more pass with a halo as wide as
+        # the 95th percentile's upper bound proves every distance below it.
+        halo = tuple(int(np.ceil(bracket["p95"][1] / s)) + 2 for s in sp)
+        edge_t = _tissue_edge(limit, halo)
+        if edge_t is not None:
+            tissue = _tissue_pass(runner, shared, runs, shape, sp, bins, edge=edge_t, halo=halo, report=report)
+            quantiles, bracket = _tissue_quantiles(tissue, bins)
     record["tissue_distance_bracket_um"] = bracket
     vox = np.concatenate([p["voxels"] for p in parts]) if parts else np.zeros((0, 3), np.int64)
     radii = np.concatenate([p["radii_um"] for p in parts]) if parts else np.zeros(0)
@@ -222,6 +235,40 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, record, r
     return centrelines_step.from_voxels(vox[order], radii[order], grid_spacing=frame.spacing, grid_shape=grid_shape,
                                         offset=runs.offset, spacing=sp, original_shape=shape, planar=False,
                                         resampled=frame.resampled, tissue_distance_um=quantiles)
+
+
+def _tissue_pass(runner, shared, runs, shape, sp, bins, *, edge, halo, report):
+    """Tissue-distance histograms of the original grid's blocks of ``edge`` with ``halo``."""
+    grid = blocks(shape, runs.offset, edge)
+    return runner.map(tissue_block, shared, grid, step="centrelines",
+                      kwargs_of=lambda i: dict(crop_offset=runs.offset, original_shape=shape, spacing=sp,
+                                               halo=halo, bins=bins),
+                      progress=report("tissue distances"))
+
+
+# Working memory of a tissue-distance block: per voxel of its extent the
+# mask and the distance map (5 bytes), per voxel of its core the distances
+# gathered for the histograms (about 40 bytes).
+_TISSUE_EXTENT_BYTES = 5
+_TISSUE_CORE_BYTES = 40
+
+
+def _tissue_edge(limit, halo):
+    """The largest even block edge whose tissue pass fits the memory limit with ``halo``, or None."""
+    if limit is None:
+        return 256
+    budget = limit - PROCESS_BYTES
+    edge = 512
+    while edge >= SMALLEST_BLOCK:
+        ext = np.prod([edge + 2 * h for h in halo], dtype=float)
+        if ext * _TISSUE_EXTENT_BYTES + edge**3 * _TISSUE_CORE_BYTES <= budget:
+            return edge
+        edge -= 32
+    return None
+
+
+def _closed(bracket):
+    return all(abs(bracket[q][1] - bracket[q][0]) <= 1e-9 * max(1.0, abs(bracket[q][1])) for q in ("median", "p95"))
 
 
 def _tissue_quantiles(parts, bins):

@@ -39,10 +39,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import ndimage as ndi
 
 from .._distance import two_label_distance
-from ..centrelines import _edge_pads, _in_plane_distance, _in_plane_radii, _inner_voxels, _ridge
+from ..centrelines import _edge_pads, _in_plane_distance, _in_plane_radii, _inner_voxels, _ridge, linear_resample
 from ..radii import fit_wall_points
 from ..thinning import thin
 
@@ -214,10 +213,8 @@ def _resampled_block(runs, frame, block, lo, hi, *, crop_offset, original_shape,
     phi = two_label_distance(m, spacing=tuple(sp))
     out = {"rmax_um": _largest_radius(phi, m)}
     np.negative(phi, out=phi, where=~m)
-    shift = [a * s - c for a, s, c in zip(lo, scale, c_lo)]
     shape = tuple(b - a for a, b in zip(lo, hi))
-    fine = ndi.affine_transform(phi, scale, offset=shift, output_shape=shape, order=1, output=np.float32,
-                                mode="nearest") > 0
+    fine = linear_resample(phi, scale, first=lo, shape=shape, origin=c_lo) > 0
     del phi
     border = [(o == 0, o + n == N) for o, n, N in zip(crop_offset, runs.shape, original_shape)]
     pads = _pads((0, 0, 0), frame.shape, lo, hi, border, pad_width)
@@ -256,5 +253,5 @@ def wall_block(runs, block, *, crop_offset, original_shape, spacing, points_um, 
     lo, hi = block.extent(halo, tuple(original_shape))
     m, _, _ = _paint(runs, crop_offset, lo, hi)
     plain, mean, nfit = fit_wall_points(m, spacing=spacing, offset=lo, points_um=points_um, tangents=tangents,
-                                        radii_um=radii_um)
+                                        radii_um=radii_um, frame_offset=crop_offset)
     return {"plain": plain, "mean": mean, "nfit": nfit}
