@@ -17,6 +17,7 @@ bifurcations (Murray's law, angles, flags).
 from __future__ import annotations
 
 import math
+from types import SimpleNamespace
 import time
 import numpy as np
 import pandas as pd
@@ -157,7 +158,6 @@ def _charge(exc, step):
 
 def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
     """The steps of :func:`analyze` on a checked mask, each timed by ``clock``."""
-    cc = cfg["centrelines"]
     c = cfg["cleaning"]
     cleaned = cleaning.clean_mask(arr, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
                                   min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"],
@@ -165,19 +165,25 @@ def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
     original_shape = arr.shape
     del arr
     clock.tick("cleaning")
-    cl = centrelines.extract_centrelines(
-        cleaned.mask, spacing=sp, offset=cleaned.offset, original_shape=original_shape, planar=planar,
-        max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"],
-        half_voxel_correction=cfg["radii"]["half_voxel_correction"],
-    )
-    clock.tick("centrelines")
-
     def fit(points, offsets, radii):
         return radii_step.wall_radii(cleaned.mask, spacing=sp, offset=cleaned.offset, points_um=points,
                                      offsets=offsets, radii_um=radii, planar=planar)
 
-    return graph_steps(cl, cleaned, sp, cfg, shape=original_shape, planar=planar, inlets=inlets, outlets=outlets,
+    # Handed straight on, so that graph_steps alone holds the centrelines.
+    return graph_steps(_centrelines_step(cleaned, sp, cfg, shape=original_shape, planar=planar, clock=clock),
+                       cleaned, sp, cfg, shape=original_shape, planar=planar, inlets=inlets, outlets=outlets,
                        clock=clock, wall_fit=fit)
+
+
+def _centrelines_step(cleaned, sp, cfg, *, shape, planar, clock):
+    cc = cfg["centrelines"]
+    cl = centrelines.extract_centrelines(
+        cleaned.mask, spacing=sp, offset=cleaned.offset, original_shape=shape, planar=planar,
+        max_anisotropy=cc["max_anisotropy"], resample_spacing_um=cc["resample_spacing_um"],
+        half_voxel_correction=cfg["radii"]["half_voxel_correction"],
+    )
+    clock.tick("centrelines")
+    return cl
 
 
 def graph_steps(cl, cleaned, sp, cfg, *, shape, planar, inlets, outlets, clock, wall_fit):
@@ -190,6 +196,10 @@ def graph_steps(cl, cleaned, sp, cfg, *, shape, planar, inlets, outlets, clock, 
     """
     original_shape = tuple(shape)
     g = graph_step.build_graph(cl)
+    # Only these are read from here on; the centreline voxels' arrays go
+    # (on a large volume they are hundreds of megabytes).
+    cl = SimpleNamespace(grid_spacing=cl.grid_spacing, resampled=cl.resampled,
+                         tissue_distance_um=cl.tissue_distance_um)
     clock.tick("graph")
     # Radii from the wall before pruning: the pruning rules compare lengths
     # with radii, and the distance map's inscribed radius reads low on rough
@@ -201,8 +211,13 @@ def graph_steps(cl, cleaned, sp, cfg, *, shape, planar, inlets, outlets, clock, 
     _prune(g, cfg["pruning"], grid_spacing=cl.grid_spacing, spacing=sp, planar=planar, shape=original_shape)
     if wall is not None:
         _to_mean_radii(g, *wall)
+    del wall
     clock.tick("pruning")
     segs, nodes, keys, smoothed = _graph_tables(g, cfg, grid_spacing=cl.grid_spacing, spacing=sp)
+    # The tables hold what is measured; of the graph only these go on (the
+    # flow model of a large network needs the memory the graph held).
+    graph_counts, centreline_radii = g.counts, [g.seg_radii[k] for k in keys]
+    del g
     clock.tick("measures")
     warnings = []
     summary = _sample_summary(segs, nodes, cleaned, cl, spacing=sp, planar=planar, shape=original_shape,
@@ -210,13 +225,13 @@ def graph_steps(cl, cleaned, sp, cfg, *, shape, planar, inlets, outlets, clock, 
     clock.tick("summary")
     net = _network_steps(segs, nodes, smoothed, cfg, inlets=inlets, outlets=outlets, spacing=sp, planar=planar,
                          summary=summary, warnings=warnings, clock=clock)
-    counts = {**cleaned.stats, **g.counts, "resampled_isotropic": bool(cl.resampled),
+    counts = {**cleaned.stats, **graph_counts, "resampled_isotropic": bool(cl.resampled),
               "thinning_grid_spacing_um": list(cl.grid_spacing)}
     run = {"config": cfg, "timings_s": clock.timings, "counts": counts, "warnings": warnings, "planar": bool(planar),
            "shape": list(original_shape), "crop_offset": list(cleaned.offset), "roots": [int(r) for r in net["roots"]],
            "notes": net["notes"], "flow": net["flow"]}
     return Result(segments=net["segments"], nodes=net["nodes"], summary=summary, centrelines=smoothed,
-                  centreline_radii=[g.seg_radii[k] for k in keys], spacing=sp, levels=net["levels"],
+                  centreline_radii=centreline_radii, spacing=sp, levels=net["levels"],
                   bifurcations=net["bifurcations"], run=run, vessels=net["vessels"], orders=net["orders"].table,
                   order_connectivity=net["orders"].connectivity)
 
@@ -498,7 +513,6 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     import datetime as _dt
     import platform
     from pathlib import Path as _Path
-    from types import SimpleNamespace
 
     from . import tables
     from ._version import __version__

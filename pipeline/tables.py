@@ -53,7 +53,7 @@ import pandas as pd
 
 from .errors import InputError, StorageError
 from .result import Result
-from .tablefiles import write_csv, write_graphml
+from .tablefiles import write_csv, write_graph_files
 
 __all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "check_new_file",
            "write_atomic",
@@ -440,9 +440,9 @@ def write_result(result, outdir, *, run_info, overwrite=False, extra_tables=None
 
 
 def _fill_result(tmp, result, extra_tables):
-    memo = {}  # floats formatted once for the CSV and the GraphML
-    write_csv(result.segments, tmp / "segments.csv", memo=memo)
-    write_csv(result.nodes, tmp / "nodes.csv", memo=memo)
+    # The graph's tables and its GraphML in one pass, each float formatted once for both.
+    write_graph_files(result.segments, result.nodes, graphml=tmp / "graph.graphml",
+                      segments_csv=tmp / "segments.csv", nodes_csv=tmp / "nodes.csv")
     tables = {"levels.csv": result.levels, "bifurcations.csv": result.bifurcations,
               "vessels.csv": getattr(result, "vessels", pd.DataFrame()),
               "orders.csv": result.orders, "order_connectivity.csv": result.order_connectivity,
@@ -450,7 +450,6 @@ def _fill_result(tmp, result, extra_tables):
     for name, table in tables.items():
         write_csv(table, tmp / name)
     write_json(tmp / "summary.json", result.summary)
-    write_graphml(result.segments, result.nodes, tmp / "graph.graphml", memo=memo)
     lens = [len(p) for p in result.centrelines]
     offsets = np.r_[0, np.cumsum(lens)].astype(np.int64)
     pts = np.vstack(result.centrelines).astype(np.float32) if lens else np.zeros((0, 3), np.float32)

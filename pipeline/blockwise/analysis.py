@@ -27,6 +27,7 @@ histograms (bins of 1 % of the finest spacing); ``run.json`` records, under
 from __future__ import annotations
 
 import math
+from types import SimpleNamespace
 
 import numpy as np
 
@@ -118,13 +119,36 @@ def analyze_blockwise(mask, *, spacing, config=None, block_size=None, memory_lim
     except BaseException as exc:
         _charge(exc, "reading")
         raise
-    clock = _Clock(progress, cfg)
+    clock = _Clock(_returning_memory(progress), cfg)
     try:
         return _steps(mask, shape, sp, cfg, edge=edge, limit=limit, scheduler=scheduler, workers=workers,
                       inlets=inlets, outlets=outlets, clock=clock, block_progress=block_progress, label=label)
     except BaseException as exc:
         _charge(exc, clock.running())
         raise
+
+
+def _returning_memory(progress):
+    """``progress`` after the C heap's free pages go back to the system (glibc's ``malloc_trim``).
+
+    A step frees hundreds of megabytes (blocks, the centreline voxels, the
+    runs) in pieces the allocator keeps; the next step's peak then counts
+    them too. Where there is no glibc this does nothing more than ``progress``.
+    """
+    try:
+        import ctypes
+
+        trim = ctypes.CDLL("libc.so.6").malloc_trim
+    except (OSError, AttributeError):
+        trim = None
+
+    def step(name, seconds):
+        if trim is not None:
+            trim(0)
+        if progress is not None:
+            progress(name, seconds)
+
+    return step
 
 
 def _block_edge(block_size, limit, workers, scheduler):
@@ -172,17 +196,29 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
                            resample_spacing_um=cc["resample_spacing_um"])
     record = {"block_edge": int(edge), "grid": "isotropic" if frame.resampled else "original",
               "memory_limit_bytes": None if limit is None else int(limit)}
-    with BlockRunner(scheduler=scheduler, workers=workers) as runner, runner.shared(runs) as shared:
-        cl = _centrelines(runner, shared, runs, frame, shape, sp, cfg, edge=edge, limit=limit, record=record,
-                          report=report)
-        clock.tick("centrelines")
+    cleaned = SimpleNamespace(stats=runs.stats, offset=runs.offset, mask=None)
+    with BlockRunner(scheduler=scheduler, workers=workers) as runner:
+        # The runs are held here alone, and dropped once the wall fits (the
+        # last step to read the mask) are made: the graph steps of a large
+        # volume need the memory.
+        held = {"runs": runs, "shared": runner.share(runs)}
+        del runs
 
         def fit(points, offsets, radii):
-            return _wall_fits(runner, shared, runs, shape, sp, points, offsets, radii, edge=edge,
-                              progress=report("radii"))
+            try:
+                return _wall_fits(runner, held["shared"], held["runs"], shape, sp, points, offsets, radii,
+                                  edge=edge, progress=report("radii"))
+            finally:
+                runner.release(held.pop("shared"))
+                held.clear()
 
-        result = graph_steps(cl, runs, sp, cfg, shape=shape, planar=False, inlets=inlets, outlets=outlets,
+        # Handed straight on, so that graph_steps alone holds the centrelines.
+        result = graph_steps(_centrelines(runner, held["shared"], held["runs"], frame, shape, sp, cfg, edge=edge,
+                                          limit=limit, record=record, report=report, clock=clock),
+                             cleaned, sp, cfg, shape=shape, planar=False, inlets=inlets, outlets=outlets,
                              clock=clock, wall_fit=fit)
+        if "shared" in held:  # no segment: no wall fit was asked for
+            runner.release(held.pop("shared"))
     result.run["blockwise"] = record
     if not _closed(record["tissue_distance_bracket_um"]):
         b = record["tissue_distance_bracket_um"]
@@ -194,7 +230,7 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
     return result
 
 
-def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, record, report):
+def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, record, report, clock):
     """The whole volume's :class:`~pipeline.centrelines.Centrelines`, from its blocks."""
     border = [(o == 0, o + n == N) for o, n, N in zip(runs.offset, runs.shape, shape)]
     pad = pad_width_of_faces(runs.face, border, sp, frame.spacing)
@@ -204,8 +240,16 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, re
     common = dict(frame=frame, crop_offset=runs.offset, original_shape=shape, spacing=sp, pad_width=pad,
                   halo=first, ridge=cfg["radii"]["half_voxel_correction"],
                   bins=None if frame.resampled else bins)
-    parts = runner.map(centreline_block, shared, tiles, step="centrelines", kwargs_of=lambda i: common,
-                       progress=report("centrelines"))
+    # The first block measures the halo the others start from (each still
+    # grows its own where wider vessels need it).
+    progress = report("centrelines")
+    parts = runner.map(centreline_block, shared, tiles[:1], step="centrelines", kwargs_of=lambda i: common)
+    common["halo"] = parts[0]["halo"]
+    if progress is not None:
+        progress(1, len(tiles))
+    if len(tiles) > 1:
+        parts += runner.map(centreline_block, shared, tiles[1:], step="centrelines", kwargs_of=lambda i: common,
+                            progress=None if progress is None else lambda done, total: progress(done + 1, total + 1))
     halos = np.array([p["halo"] for p in parts])
     rmax = max((p["rmax_um"] for p in parts), default=0.0)
     record.update(blocks=len(tiles), halo_voxels_max=[int(h) for h in halos.max(axis=0)],
@@ -232,9 +276,11 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, re
     vox = vox - crop
     order = np.lexsort((vox[:, 2], vox[:, 1], vox[:, 0]))
     grid_shape = runs.shape if not frame.resampled else frame.shape
-    return centrelines_step.from_voxels(vox[order], radii[order], grid_spacing=frame.spacing, grid_shape=grid_shape,
-                                        offset=runs.offset, spacing=sp, original_shape=shape, planar=False,
-                                        resampled=frame.resampled, tissue_distance_um=quantiles)
+    cl = centrelines_step.from_voxels(vox[order], radii[order], grid_spacing=frame.spacing, grid_shape=grid_shape,
+                                      offset=runs.offset, spacing=sp, original_shape=shape, planar=False,
+                                      resampled=frame.resampled, tissue_distance_um=quantiles)
+    clock.tick("centrelines")
+    return cl
 
 
 def _tissue_pass(runner, shared, runs, shape, sp, bins, *, edge, halo, report):

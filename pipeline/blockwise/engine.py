@@ -17,8 +17,6 @@ with its place in the volume (:class:`BlockError`).
 
 from __future__ import annotations
 
-from contextlib import contextmanager
-
 from .._parallel import limit_threads
 from ..errors import EngineError
 
@@ -85,17 +83,16 @@ class BlockRunner:
         self._owned = []
         return False
 
-    @contextmanager
-    def shared(self, runs):
+    def share(self, runs):
         """``runs`` as the tasks receive it: itself here, or a future of one copy per worker."""
         if self.client is None:
-            yield runs
-            return
-        future = self.client.scatter(runs, broadcast=True)
-        try:
-            yield future
-        finally:
-            future.release()
+            return runs
+        return self.client.scatter(runs, broadcast=True)
+
+    def release(self, shared):
+        """Let the workers drop what :meth:`share` sent them."""
+        if self.client is not None and hasattr(shared, "release"):
+            shared.release()
 
     def map(self, fn, runs, blocks, *, step, kwargs_of, progress=None):
         """``[fn(runs, block, **kwargs_of(i)) for i, block in enumerate(blocks)]``, in block order.

@@ -14,6 +14,7 @@ across slabs: without a threshold, at most two distinct values, one of them
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 
 from ..cleaning import mask_runs
@@ -32,7 +33,14 @@ def _binary(slab, threshold, seen, label):
     """The slab as bool; ``seen`` collects the distinct values found so far (without a threshold)."""
     if threshold is not None:
         return slab > threshold
-    values = np.unique(slab) if slab.dtype != bool else np.unique(slab.view(np.uint8))
+    if slab.dtype == bool:
+        return slab
+    if slab.dtype.itemsize == 1 and slab.dtype.kind in "iu":
+        # which of the 256 byte values occur, without an 8-byte copy of the slab
+        values = np.flatnonzero(_bytes_present(np.ascontiguousarray(slab).reshape(-1).view(np.uint8)))
+        values = values.astype(np.uint8).view(slab.dtype)
+    else:
+        values = np.unique(slab)
     seen.update(v.item() for v in values)
     if len(seen) > 2 or (len(seen) == 2 and 0 not in seen):
         shown = ", ".join(f"{v:g}" for v in sorted(seen)[:4])
@@ -40,6 +48,14 @@ def _binary(slab, threshold, seen, label):
                          "pass a threshold (input.threshold) for an intensity or probability image",
                          param="mask")
     return slab != 0
+
+
+@numba.njit(cache=True)
+def _bytes_present(flat):
+    seen = np.zeros(256, dtype=np.bool_)
+    for v in flat:
+        seen[v] = True
+    return seen
 
 
 def scan_runs(source, *, threshold=None, slab=None, label="mask", progress=None):
@@ -52,7 +68,7 @@ def scan_runs(source, *, threshold=None, slab=None, label="mask", progress=None)
     threshold : float or None
         Vessel is ``value > threshold``; None: binary values (module notes).
     slab : int or None
-        Planes per read; default about 256 MiB of input.
+        Planes per read; default about 128 MiB of input and its mask.
     label : str
         How errors name the volume.
     progress : callable or None
@@ -66,7 +82,7 @@ def scan_runs(source, *, threshold=None, slab=None, label="mask", progress=None)
     """
     nz, ny, nx = (int(n) for n in source.shape)
     itemsize = np.dtype(source.dtype).itemsize
-    slab = slab or slab_planes(source.shape, itemsize, 256 << 20)
+    slab = slab or slab_planes(source.shape, itemsize, 128 << 20)
     seen = set()
     parts = []
     for z0 in range(0, nz, slab):

@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import math
 
+import numba
 import numpy as np
 
 from .._distance import two_label_distance
@@ -98,15 +99,18 @@ def _pads(frame_lo, frame_hi, thin_lo, thin_hi, border, width):
 
 
 def _tissue_histograms(dist, mask, core, lo, hi, shape, spacing, bins):
-    """Histograms (upper bound, proven) of the tissue voxels of ``core`` (slices into the extent)."""
+    """Histograms (upper bound, proven) of the tissue voxels of ``core`` (slices into the extent).
+
+    Each is (2, n): counts and sums of the distances per bin. A bin's mean
+    is its value wherever the bin holds one distinct distance (lattice
+    distances near d lie about s^2 / (2 d) apart, more than the bin up to
+    d = 50 s).
+    """
     width, n = bins
-    d = dist[core][~mask[core]].astype(np.float64)
-    diag = (n - 2) * width
-    upper = np.minimum(d, diag)
-    # Distance from each tissue voxel to the first plane beyond the extent on
-    # faces inside the volume: no vessel outside is nearer.
     sp = np.asarray(spacing, dtype=float)
-    gap = np.full(mask[core].shape, np.inf)
+    # Per axis, the distance from each core index to the first plane beyond
+    # the extent on faces inside the volume: no vessel outside is nearer.
+    gaps = []
     for a in range(3):
         idx = np.arange(core[a].start, core[a].stop)
         g = np.full(len(idx), np.inf)
@@ -114,18 +118,35 @@ def _tissue_histograms(dist, mask, core, lo, hi, shape, spacing, bins):
             g = np.minimum(g, (idx + 1) * sp[a])
         if hi[a] < shape[a]:
             g = np.minimum(g, (dist.shape[a] - idx) * sp[a])
-        view = [None, None, None]
-        view[a] = slice(None)
-        gap = np.minimum(gap, g[tuple(view)])
-    proven = np.minimum(upper, gap[~mask[core]])
-    # Counts and sums per bin: a bin's mean is its value wherever the bin
-    # holds one distinct distance (lattice distances near d lie about
-    # s^2 / (2 d) apart, more than the bin up to d = 50 s).
-    out = []
-    for v in (upper, proven):
-        i = (v / width).astype(np.int64)
-        out.append(np.stack([np.bincount(i, minlength=n).astype(np.float64), np.bincount(i, weights=v, minlength=n)]))
-    return out[0], out[1]
+        gaps.append(g)
+    up = np.zeros((2, n))
+    pr = np.zeros((2, n))
+    _histograms(dist, mask, np.array([c.start for c in core], np.int64), gaps[0], gaps[1], gaps[2], float(width),
+                up, pr)
+    return up, pr
+
+
+@numba.njit(cache=True)
+def _histograms(dist, mask, start, g0, g1, g2, width, up, pr):
+    n = up.shape[1]
+    cap = (n - 2) * width
+    for i in range(len(g0)):
+        z = start[0] + i
+        for j in range(len(g1)):
+            y = start[1] + j
+            gzy = min(g0[i], g1[j])
+            for k in range(len(g2)):
+                x = start[2] + k
+                if mask[z, y, x]:
+                    continue
+                d = min(np.float64(dist[z, y, x]), cap)
+                b = int(d / width)
+                up[0, b] += 1.0
+                up[1, b] += d
+                q = min(d, min(gzy, g2[k]))
+                b = int(q / width)
+                pr[0, b] += 1.0
+                pr[1, b] += q
 
 
 def centreline_block(runs, block, *, frame, crop_offset, original_shape, spacing, pad_width, halo, ridge=True,
@@ -165,18 +186,28 @@ def centreline_block(runs, block, *, frame, crop_offset, original_shape, spacing
         lo, hi = block.extent(halo, frame.shape)
         out = (_resampled_block if frame.resampled else _original_block)(
             runs, frame, block, lo, hi, crop_offset=crop_offset, original_shape=original_shape, spacing=spacing,
-            pad_width=pad_width, ridge=ridge, bins=bins)
-        need = needed_halo(out["rmax_um"], frame.spacing, radii=CENTRELINE_HALO_RADII)
-        if all(n <= h for n, h in zip(need, halo)) or all(a == 0 and b == n for a, b, n in zip(lo, hi, frame.shape)):
+            pad_width=pad_width, ridge=ridge, bins=bins, halo=halo)
+        if "voxels" in out:
             out["halo"] = halo
             return out
+        need = needed_halo(out["rmax_um"], frame.spacing, radii=CENTRELINE_HALO_RADII)
         halo = tuple(max(n, h) for n, h in zip(need, halo))
 
 
-def _original_block(runs, frame, block, lo, hi, *, crop_offset, original_shape, spacing, pad_width, ridge, bins):
+def _too_narrow(rmax_um, frame, lo, hi, halo):
+    """Whether ``halo`` is narrower than the vessels of the extent need (and the extent could grow)."""
+    need = needed_halo(rmax_um, frame.spacing, radii=CENTRELINE_HALO_RADII)
+    whole = all(a == 0 and b == n for a, b, n in zip(lo, hi, frame.shape))
+    return not whole and any(n > h for n, h in zip(need, halo))
+
+
+def _original_block(runs, frame, block, lo, hi, *, crop_offset, original_shape, spacing, pad_width, ridge, bins,
+                    halo):
     m, c_lo, c_hi = _paint(runs, crop_offset, lo, hi)
     dist = two_label_distance(m, spacing=tuple(float(s) for s in spacing))
     out = {"rmax_um": _largest_radius(dist, m)}
+    if _too_narrow(out["rmax_um"], frame, lo, hi, halo):
+        return out
     core = tuple(slice(a - e, b - e) for a, b, e in zip(block.lo, block.hi, lo))
     if bins is not None:
         out["tissue_upper"], out["tissue_proven"] = _tissue_histograms(dist, m, core, lo, hi, original_shape,
@@ -202,7 +233,8 @@ def _original_block(runs, frame, block, lo, hi, *, crop_offset, original_shape, 
     return out
 
 
-def _resampled_block(runs, frame, block, lo, hi, *, crop_offset, original_shape, spacing, pad_width, ridge, bins):
+def _resampled_block(runs, frame, block, lo, hi, *, crop_offset, original_shape, spacing, pad_width, ridge, bins,
+                     halo):
     sp = np.asarray(spacing, dtype=float)
     t = float(frame.spacing[0])
     scale = t / sp
@@ -212,6 +244,8 @@ def _resampled_block(runs, frame, block, lo, hi, *, crop_offset, original_shape,
     m = runs.region(c_lo, c_hi).paint()
     phi = two_label_distance(m, spacing=tuple(sp))
     out = {"rmax_um": _largest_radius(phi, m)}
+    if _too_narrow(out["rmax_um"], frame, lo, hi, halo):
+        return out
     np.negative(phi, out=phi, where=~m)
     shape = tuple(b - a for a, b in zip(lo, hi))
     fine = linear_resample(phi, scale, first=lo, shape=shape, origin=c_lo) > 0

@@ -153,23 +153,48 @@ def _paint_tubes(
 
     ``mask`` may be a box of the grid whose first voxel is ``origin``: each
     voxel's value depends only on its position (and ``rng``'s state, which
-    draws the roughness texture first), so boxes painted with copies of one
-    generator tile the whole volume's mask exactly.
+    draws the roughness texture first), so boxes tile the whole volume's mask
+    exactly (:class:`TubePieces` keeps the pieces and texture for many boxes).
     """
-    org = np.asarray(origin, dtype=np.int64)
+    TubePieces(net, d, roughness, rng).paint(mask, origin=origin)
+
+
+class TubePieces:
+    """The chord pieces and roughness texture of a network, drawn once, painted into any box."""
+
+    def __init__(self, net: VesselNetwork, d: np.ndarray, roughness: float, rng: np.random.Generator):
+        self.d, self.roughness = d, roughness
+        f_hi = 1.0 + _FIELD_CLIP * roughness
+        self.a, self.b, self.ra, self.rb, self.sid = _raster_pieces(net, _SAGITTA_FRACTION * float(d.min()), d, f_hi)
+        reach = np.maximum(self.ra, self.rb)[:, None] * f_hi
+        # Exact index range of voxel centres within reach (tolerance against rounding).
+        self.lo = np.ceil((np.minimum(self.a, self.b) - reach) / d - 1e-6).astype(np.int64)
+        self.hi = np.floor((np.maximum(self.a, self.b) + reach) / d + 1e-6).astype(np.int64)
+        if roughness > 0:
+            self.tex_flat = _noise_texture(rng).ravel()
+            seg_off = rng.uniform(0, _TEX_N, size=(len(net.segments), 3))
+            # Correlation (1/e) length of filtered white noise is 2 sigma texels;
+            # map one nominal radius onto it.
+            seg_scale = np.array([2.0 * _TEX_SIGMA / s["radius_um"] for s in net.segments])
+            # Texture coordinate = w * scale + (piece start * scale + offset).
+            self.tex_scale = seg_scale[self.sid].astype(np.float32)
+            self.tex_const = (self.a * seg_scale[self.sid, None] + seg_off[self.sid]).astype(np.float32)
+
+    def paint(self, mask: np.ndarray, *, origin: Sequence[int] = (0, 0, 0)) -> None:
+        """Set the voxels of ``mask`` (a box of the grid starting at ``origin``) inside the tubes."""
+        _paint_box(mask, self, np.asarray(origin, dtype=np.int64))
+
+
+def _paint_box(mask: np.ndarray, tp: TubePieces, org: np.ndarray) -> None:
+    d, roughness = tp.d, tp.roughness
     shape = np.asarray(mask.shape, dtype=np.int64)
     flat_mask = mask.reshape(-1)
     f_hi = 1.0 + _FIELD_CLIP * roughness
     f_lo = 1.0 - _FIELD_CLIP * roughness
-    a, b, ra, rb, sid = _raster_pieces(net, _SAGITTA_FRACTION * float(d.min()), d, f_hi)
-    reach = np.maximum(ra, rb)[:, None] * f_hi
-    # Exact index range of voxel centres within reach (tolerance against rounding).
-    lo = np.ceil((np.minimum(a, b) - reach) / d - 1e-6).astype(np.int64)
-    hi = np.floor((np.maximum(a, b) + reach) / d + 1e-6).astype(np.int64)
-    lo, hi = np.maximum(lo, org), np.minimum(hi, org + shape - 1)
+    lo, hi = np.maximum(tp.lo, org), np.minimum(tp.hi, org + shape - 1)
     dims = hi - lo + 1
-    live = np.all(dims > 0, axis=1)
-    a, b, ra, rb, sid, lo, dims = a[live], b[live], ra[live], rb[live], sid[live], lo[live], dims[live]
+    live = np.flatnonzero(np.all(dims > 0, axis=1))
+    a, b, ra, rb, lo, dims = tp.a[live], tp.b[live], tp.ra[live], tp.rb[live], lo[live], dims[live]
     if len(a) == 0:
         return
     counts = np.prod(dims, axis=1)
@@ -186,14 +211,8 @@ def _paint_tubes(
     rel = lo - org
     base_lin = (rel[:, 0] * shape[1] + rel[:, 1]) * shape[2] + rel[:, 2]
     if roughness > 0:
-        tex_flat = _noise_texture(rng).ravel()
-        seg_off = rng.uniform(0, _TEX_N, size=(len(net.segments), 3))
-        # Correlation (1/e) length of filtered white noise is 2 sigma texels;
-        # map one nominal radius onto it.
-        seg_scale = np.array([2.0 * _TEX_SIGMA / s["radius_um"] for s in net.segments])
-        # Texture coordinate = w * scale + (piece start * scale + offset).
-        tex_scale = seg_scale[sid].astype(np.float32)
-        tex_const = (a * seg_scale[sid, None] + seg_off[sid]).astype(np.float32)
+        tex_flat = tp.tex_flat
+        tex_scale, tex_const = tp.tex_scale[live], tp.tex_const[live]
     cum = np.cumsum(counts)
     start = 0
     while start < len(counts):

@@ -14,7 +14,7 @@ import numpy as np
 
 from ._common import _bad, _count, _jsonable, _positive, _real, _rng, _spacing
 from .network import VesselNetwork, _clip_network
-from .painting import _FIELD_CLIP, _MAX_ROUGHNESS, _auto_place, _paint_imaged, _paint_tubes
+from .painting import _FIELD_CLIP, _MAX_ROUGHNESS, TubePieces, _auto_place, _paint_imaged, _paint_tubes
 from .artefacts import (
     _MAX_JITTER_VOX, _Occupied, _add_blobs, _add_handles, _add_specks, _carve_gaps, _carve_holes, _carve_open_holes,
     _centreline_samples, _clipped_normal_second_moment, _euler_26, _fill_cavities, _jitter_shifts, _psf_sigma,
@@ -554,14 +554,13 @@ class BlockRaster:
                                                            rough=self.rough)
         self.shape = tuple(int(n) for n in self.grid)
         self.cut = _clip_network(self.placed, np.zeros(3), (self.grid - 1) * self.d)
+        self._pieces = TubePieces(self.placed, self.d, self.rough, self._rng)
 
     def paint(self, lo: Sequence[int], hi: Sequence[int]) -> np.ndarray:
         """The mask of the box ``[lo, hi)``, bool."""
-        import copy
-
         box = np.zeros(tuple(int(b) - int(a) for a, b in zip(lo, hi)), dtype=bool)
         if box.size:
-            _paint_tubes(box, self.placed, self.d, self.rough, copy.deepcopy(self._rng), origin=lo)
+            self._pieces.paint(box, origin=lo)
         return box
 
     def truth(self, mask_voxels: int) -> dict[str, Any]:
