@@ -11,6 +11,10 @@ last test of each case checks too.
 """
 
 import itertools
+import socket
+import subprocess
+import sys
+import time
 
 import networkx as nx
 import numpy as np
@@ -182,3 +186,65 @@ def test_values_are_checked_across_slabs():
     m[30:35, 10:20, 10:20] = 2  # another non-zero value in a later slab
     with pytest.raises(InputError, match="expected a binary mask"):
         analyze_blockwise(m, spacing=(1, 1, 1), block_size=32)
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture
+def two_worker_cluster():
+    """A scheduler and two workers started as separate processes on the loopback interface."""
+    port = _free_port()
+    procs = []
+
+    def start(*args):
+        p = subprocess.Popen([sys.executable, "-m", *args], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                             start_new_session=True)
+        procs.append(p)
+        return p
+
+    start("distributed.cli.dask_scheduler", "--host", "127.0.0.1", "--port", str(port), "--no-dashboard")
+    deadline = time.monotonic() + 60
+    while True:
+        try:
+            socket.create_connection(("127.0.0.1", port), timeout=1).close()
+            break
+        except OSError:
+            assert time.monotonic() < deadline, "the scheduler did not start"
+            time.sleep(0.2)
+    for _ in range(2):
+        start("distributed.cli.dask_worker", f"tcp://127.0.0.1:{port}", "--nthreads", "1", "--no-dashboard",
+              "--host", "127.0.0.1")
+    address = f"tcp://127.0.0.1:{port}"
+    from distributed import Client
+
+    with Client(address, timeout="30s") as client:
+        client.wait_for_workers(2, timeout=60)
+    yield address
+    for p in procs:
+        if p.poll() is None:
+            p.kill()
+        p.wait(timeout=30)
+
+
+@pytest.mark.integration
+def test_real_dask_cluster_gives_the_embedded_result(bed, two_worker_cluster):
+    spacing = (1.0, 1.0, 1.0)
+    embedded = analyze_blockwise(bed, spacing=spacing, block_size=64)
+    remote = analyze_blockwise(bed, spacing=spacing, block_size=64, scheduler=two_worker_cluster)
+    local = analyze_blockwise(bed, spacing=spacing, block_size=64, workers=2)
+    for other in (remote, local):
+        for name in ("segments", "nodes", "bifurcations"):
+            a, b = getattr(embedded, name), getattr(other, name)
+            assert a.shape == b.shape
+            assert np.allclose(a.select_dtypes("number").to_numpy(float), b.select_dtypes("number").to_numpy(float),
+                               equal_nan=True, rtol=1e-12), name
+        assert other.summary["tissue_distance_median_um"] == embedded.summary["tissue_distance_median_um"]
+
+
+def test_unreachable_scheduler_is_one_clear_error(bed):
+    with pytest.raises(InputError, match="scheduler: cannot connect to a Dask scheduler"):
+        analyze_blockwise(bed, spacing=(1, 1, 1), block_size=64, scheduler="tcp://127.0.0.1:9")

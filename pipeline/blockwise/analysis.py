@@ -113,7 +113,7 @@ def analyze_blockwise(mask, *, spacing, config=None, block_size=None, memory_lim
         shape = tuple(int(n) for n in getattr(mask, "shape", ()))
         if len(shape) != 3 or min(shape) < 1:
             raise InputError(f"{label}: expected a 3-D (Z, Y, X) volume for a block-wise analysis, got shape "
-                             f"{shape}", param="mask")
+                             f"{shape}")
         limit = memory_limit_bytes if memory_limit_bytes is not None else available_memory_bytes()
         edge = _block_edge(block_size, limit, workers, scheduler)
     except BaseException as exc:
@@ -156,7 +156,7 @@ def _block_edge(block_size, limit, workers, scheduler):
     if block_size is not None:
         b = int(block_size)
         if b != block_size or b < SMALLEST_BLOCK or b % 2:
-            raise InputError(f"block_size: expected an even number of voxels of at least {SMALLEST_BLOCK}, "
+            raise InputError(f"expected an even number of voxels of at least {SMALLEST_BLOCK}, "
                              f"got {block_size!r}", param="block_size")
         return b
     if limit is None:
@@ -166,7 +166,7 @@ def _block_edge(block_size, limit, workers, scheduler):
     edge = block_edge_for(budget)
     if edge < SMALLEST_BLOCK:
         smallest = PROCESS_BYTES * local + local * BYTES_PER_BLOCK_VOXEL * (SMALLEST_BLOCK + 32) ** 3
-        raise InputError(f"memory_limit: expected at least {_format_bytes(smallest)} for the smallest workable "
+        raise InputError(f"expected at least {_format_bytes(smallest)} for the smallest workable "
                          f"block ({SMALLEST_BLOCK} voxels a side with its halos, {local} process(es)), got "
                          f"{_format_bytes(limit)}", param="memory_limit")
     return edge
@@ -182,11 +182,10 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
 
     rows, x0, x1 = scan_runs(mask, threshold=cfg["input"]["threshold"], label=label, progress=report("reading"))
     if len(rows) == 0:
-        raise InputError(f"{label}: expected some vessel voxels, got an empty mask (every voxel is 0)",
-                         param="mask")
+        raise InputError(f"{label}: expected some vessel voxels, got an empty mask (every voxel is 0)")
     if len(rows) == shape[0] * shape[1] and bool(np.all(x1 - x0 == shape[2])):
         raise InputError(f"{label}: expected background around the vessels, got a mask where every voxel is "
-                         "vessel", param="mask")
+                         "vessel")
     clock.tick("reading")
     runs = clean_runs(rows, x0, x1, shape, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
                       min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"])

@@ -112,22 +112,19 @@ class BlockRunner:
                 if progress is not None:
                     progress(i + 1, n)
             return out
-        from distributed import as_completed
-
         futures = [self.client.submit(_one_thread, fn, runs, block, kwargs_of(i), pure=False)
                    for i, block in enumerate(blocks)]
-        index = {f.key: i for i, f in enumerate(futures)}
-        out = [None] * n
-        done = 0
-        for future in as_completed(futures):
-            i = index[future.key]
+        out = []
+        # In block order: a block's result is taken as soon as it and those
+        # before it are done, while the others keep running.
+        for i, future in enumerate(futures):
             try:
-                out[i] = future.result()
+                out.append(future.result())
             except Exception as exc:
                 for f in futures:
                     f.cancel()
                 raise _fail(step, blocks[i], exc) from exc
-            done += 1
+            future.release()
             if progress is not None:
-                progress(done, n)
+                progress(i + 1, n)
         return out

@@ -45,8 +45,7 @@ def _binary(slab, threshold, seen, label):
     if len(seen) > 2 or (len(seen) == 2 and 0 not in seen):
         shown = ", ".join(f"{v:g}" for v in sorted(seen)[:4])
         raise InputError(f"{label}: expected a binary mask (0 and one other value), found values {shown}; "
-                         "pass a threshold (input.threshold) for an intensity or probability image",
-                         param="mask")
+                         "pass a threshold (input.threshold) for an intensity or probability image")
     return slab != 0
 
 
@@ -93,7 +92,7 @@ def scan_runs(source, *, threshold=None, slab=None, label="mask", progress=None)
             raise
         except Exception as exc:  # a chunk that does not decode, a file cut short
             reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-            raise InputError(f"{label}: planes {z0}-{z1 - 1} cannot be read ({reason})", param="mask") from None
+            raise InputError(f"{label}: planes {z0}-{z1 - 1} cannot be read ({reason})") from None
         parts.append(mask_runs(_binary(raw, threshold, seen, label), row_offset=z0 * ny))
         del raw
         if progress is not None:

@@ -203,12 +203,12 @@ def open_zarr(path: Path, path_text: str, label: str, stack: contextlib.ExitStac
                              f"'{level.get('path')}', which the store does not hold") from None
         found, spatial = _ome_spacing(label, ms, level, tuple(int(n) for n in array.shape))
         return _opened(array, label, found, kept=spatial)
-    arrays = _arrays_in(node)
+    arrays = sorted(_arrays_in(node))
     if len(arrays) == 1:
         return _opened(node[arrays[0]], label, None)
     listed = ", ".join(arrays[:8]) or "none"
     raise InputError(f"{label}: expected an OME-Zarr image or a single array, found arrays: {listed}; name one "
-                     "with dataset= (or STORE.zarr:/path)", param="dataset")
+                     "with dataset=NAME (or STORE.zarr:/NAME)")
 
 
 # --------------------------------------------------------------------------- #
@@ -228,10 +228,11 @@ def open_hdf5(path: Path, path_text: str, label: str, stack: contextlib.ExitStac
     if dataset is None:
         found: list[str] = []
         f.visititems(lambda name, obj: found.append(name) if isinstance(obj, h5py.Dataset) else None)
+        found.sort()
         if len(found) != 1:
             listed = ", ".join("/" + n for n in found[:8]) or "none"
-            raise InputError(f"{label}: expected a single dataset, found: {listed}; name one with dataset= "
-                             "(or FILE.h5:/path)", param="dataset")
+            raise InputError(f"{label}: expected a single dataset, found: {listed}; name one with dataset=NAME "
+                             "(or FILE.h5:/NAME)")
         dataset = found[0]
     obj = f.get(dataset)
     if not isinstance(obj, h5py.Dataset):

@@ -267,7 +267,7 @@ def open_mask(
         path_text = os.fsdecode(path_text)
     file_text, inner = split_dataset(path_text)
     if inner is not None and dataset is not None and inner.strip("/") != str(dataset).strip("/"):
-        raise InputError(f"dataset: '{path_text}' names dataset '{inner}', and dataset= names '{dataset}'; "
+        raise InputError(f"'{path_text}' names dataset '{inner}', and dataset= names '{dataset}'; "
                          "expected one of them", param="dataset")
     dataset = dataset if dataset is not None else inner
     p = Path(file_text)
@@ -281,7 +281,7 @@ def open_mask(
     if kind != "zarr" and not p.is_file():
         raise InputError(f"mask '{file_text}' is not a file; expected one of " + ", ".join(SUPPORTED_EXTENSIONS))
     if dataset is not None and kind not in _CONTAINERS:
-        raise InputError(f"dataset: a {kind} file holds one array; dataset= is for Zarr stores and HDF5 files",
+        raise InputError(f"a {kind} file holds one array; dataset= is for Zarr stores and HDF5 files",
                          param="dataset")
     notes: list[str] = []
     stack = contextlib.ExitStack()
