@@ -24,6 +24,7 @@ BENCHES = [
     ("bench_thinning.py", [], ["--quick"]),
     ("bench_flow.py", ["--segments", "1000000", "--timeout", "120"], ["--segments", "20000"]),
     ("bench_batch.py", ["--size", "320"], ["--size", "96", "--samples", "4"]),
+    ("bench_blockwise.py", ["--size", "768"], ["--size", "192", "--skip-speed"]),
     ("bench_accuracy.py", ["--seeds", "5"], ["--seeds", "1", "--strengths", "1", "--z-ratios", "1", "--tube-seeds", "1"]),
 ]
 

@@ -17,6 +17,7 @@ bifurcations (Murray's law, angles, flags).
 from __future__ import annotations
 
 import math
+from pathlib import Path as _Path
 from types import SimpleNamespace
 import time
 import numpy as np
@@ -512,7 +513,6 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
     """
     import datetime as _dt
     import platform
-    from pathlib import Path as _Path
 
     from . import tables
     from ._version import __version__
@@ -539,10 +539,12 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
                     warn(w)
             from .blockwise import analyze_blockwise
 
+            keep = _kept_blocks_folder(outdir)
             result = analyze_blockwise(lazy.source, spacing=lazy.spacing, config=cfg, block_size=block_size,
                                        memory_limit_bytes=limit, scheduler=scheduler, workers=workers,
                                        inlets=inlets, outlets=outlets, progress=progress,
-                                       block_progress=block_progress, label=lazy.label)
+                                       block_progress=block_progress, label=lazy.label, keep_blocks=keep,
+                                       input_id=_file_identity(lazy.file))
             img = SimpleNamespace(sha256=lazy.sha256(), original_dtype=str(lazy.dtype), axes_found=lazy.axes_found,
                                   spacing=lazy.spacing, spacing_source=lazy.spacing_source, warnings=lazy.warnings)
         read_s = result.run["timings_s"].pop("reading", 0.0)
@@ -569,7 +571,26 @@ def analyze_file(path, outdir, *, spacing=None, config=None, overwrite=False, in
         raise
     if progress is not None:
         progress("writing", time.perf_counter() - t0)
+    if lazy is not None:
+        # the result is safe: the blocks kept for a resumed run go
+        from .blockwise.engine import KeptBlocks
+
+        KeptBlocks.remove_folder(_kept_blocks_folder(outdir))
     return out, result
+
+
+def _kept_blocks_folder(outdir):
+    """Where a block-wise analysis into ``outdir`` keeps its finished blocks: ``.NAME.blocks`` beside it."""
+    out = _Path(outdir).resolve()
+    return out.parent / f".{out.name}.blocks"
+
+
+def _file_identity(path):
+    """Path, sizes and modification times of a file or of every file of a store: what resuming blocks checks."""
+    p = _Path(path).resolve()
+    files = [p] if p.is_file() else sorted(f for f in p.rglob("*") if f.is_file())
+    return [str(p)] + [[str(f.relative_to(p)) if f != p else "", f.stat().st_size, f.stat().st_mtime_ns]
+                       for f in files]
 
 
 def _memory_limit(cfg, memory_limit_bytes):

@@ -248,3 +248,37 @@ def test_real_dask_cluster_gives_the_embedded_result(bed, two_worker_cluster):
 def test_unreachable_scheduler_is_one_clear_error(bed):
     with pytest.raises(InputError, match="scheduler: cannot connect to a Dask scheduler"):
         analyze_blockwise(bed, spacing=(1, 1, 1), block_size=64, scheduler="tcp://127.0.0.1:9")
+
+
+def test_an_interrupted_analysis_resumes_from_its_kept_blocks(bed, monkeypatch, tmp_path):
+    keep = tmp_path / "kept"
+    real = block_tasks.thin
+    calls = []
+
+    def failing(mask, **kw):
+        calls.append(1)
+        if len(calls) == 5:
+            raise KeyboardInterrupt  # the user stops the run at the fifth block
+        return real(mask, **kw)
+
+    monkeypatch.setattr(block_tasks, "thin", failing)
+    with pytest.raises(KeyboardInterrupt):
+        analyze_blockwise(bed, spacing=(1, 1, 1), block_size=32, keep_blocks=keep, input_id="bed")
+    monkeypatch.setattr(block_tasks, "thin", real)
+    assert len(list(keep.glob("centrelines-*.block.npz"))) == 4
+    resumed = analyze_blockwise(bed, spacing=(1, 1, 1), block_size=32, keep_blocks=keep, input_id="bed")
+    assert resumed.run["blockwise"]["blocks_resumed"] == 4
+    fresh = analyze_blockwise(bed, spacing=(1, 1, 1), block_size=32)
+    assert resumed.segments.equals(fresh.segments) and resumed.summary == fresh.summary
+    # another input (or configuration) does not take up these blocks
+    other = analyze_blockwise(bed, spacing=(1, 1, 1), block_size=32, keep_blocks=keep, input_id="another")
+    assert other.run["blockwise"]["blocks_resumed"] == 0
+
+
+def test_the_command_removes_its_kept_blocks_when_the_result_is_written(bed, tmp_path):
+    from pipeline.cli import main
+
+    np.save(tmp_path / "bed.npy", bed)
+    assert main(["analyze", str(tmp_path / "bed.npy"), "--spacing", "1", "1", "1", "-o", str(tmp_path / "res"),
+                 "--blockwise", "--block-size", "64", "--quiet"]) == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bed.npy", "res"]

@@ -26,6 +26,8 @@ histograms (bins of 1 % of the finest spacing); ``run.json`` records, under
 
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 from types import SimpleNamespace
 
@@ -39,7 +41,8 @@ from ..config import load_config
 from ..errors import InputError
 from ..radii import finish_wall_radii, wall_fit_plan
 from ..reading.memory import _format_bytes, available_memory_bytes
-from .engine import BlockRunner
+from .._version import __version__
+from .engine import BlockRunner, KeptBlocks
 from .plan import BYTES_PER_BLOCK_VOXEL, blocks, thinning_frame
 from .source import scan_runs
 from .tasks import CENTRELINE_HALO_RADII, centreline_block, histogram_bins, needed_halo, tissue_block, wall_block
@@ -67,7 +70,8 @@ def block_edge_for(budget_bytes, *, halo=16, largest=512):
 
 
 def analyze_blockwise(mask, *, spacing, config=None, block_size=None, memory_limit_bytes=None, scheduler=None,
-                      workers=None, inlets=(), outlets=(), progress=None, block_progress=None, label="mask"):
+                      workers=None, inlets=(), outlets=(), progress=None, block_progress=None, label="mask",
+                      keep_blocks=None, input_id=None):
     """Analyse a volume too large for memory, block by block, into one graph.
 
     Parameters
@@ -96,6 +100,15 @@ def analyze_blockwise(mask, *, spacing, config=None, block_size=None, memory_lim
         ``block_progress(step, done, total)`` after each block.
     label : str
         How messages name the volume.
+    keep_blocks : str or Path, optional
+        Folder where finished blocks are kept (:class:`~pipeline.blockwise.engine.KeptBlocks`):
+        an analysis interrupted and started again with the same folder,
+        input, configuration and blocks takes them up instead of redoing
+        them. The caller removes the folder when the result is safe.
+    input_id : str, optional
+        What identifies the input for ``keep_blocks`` (a file's path, size
+        and times); without it the blocks are kept under the configuration
+        alone.
 
     Returns
     -------
@@ -121,8 +134,14 @@ def analyze_blockwise(mask, *, spacing, config=None, block_size=None, memory_lim
         raise
     clock = _Clock(_returning_memory(progress), cfg)
     try:
+        kept = None
+        if keep_blocks is not None:
+            key = json.dumps({"input": input_id, "config": cfg, "spacing": list(sp), "edge": edge, "shape": shape,
+                              "version": __version__}, sort_keys=True, default=str)
+            kept = KeptBlocks(keep_blocks, hashlib.sha256(key.encode()).hexdigest())
         return _steps(mask, shape, sp, cfg, edge=edge, limit=limit, scheduler=scheduler, workers=workers,
-                      inlets=inlets, outlets=outlets, clock=clock, block_progress=block_progress, label=label)
+                      inlets=inlets, outlets=outlets, clock=clock, block_progress=block_progress, label=label,
+                      kept=kept)
     except BaseException as exc:
         _charge(exc, clock.running())
         raise
@@ -172,7 +191,8 @@ def _block_edge(block_size, limit, workers, scheduler):
     return edge
 
 
-def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, outlets, clock, block_progress, label):
+def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, outlets, clock, block_progress, label,
+           kept):
     c, cc = cfg["cleaning"], cfg["centrelines"]
 
     def report(step):
@@ -206,18 +226,19 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
         def fit(points, offsets, radii):
             try:
                 return _wall_fits(runner, held["shared"], held["runs"], shape, sp, points, offsets, radii,
-                                  edge=edge, progress=report("radii"))
+                                  edge=edge, progress=report("radii"), kept=kept)
             finally:
                 runner.release(held.pop("shared"))
                 held.clear()
 
         # Handed straight on, so that graph_steps alone holds the centrelines.
         result = graph_steps(_centrelines(runner, held["shared"], held["runs"], frame, shape, sp, cfg, edge=edge,
-                                          limit=limit, record=record, report=report, clock=clock),
+                                          limit=limit, record=record, report=report, clock=clock, kept=kept),
                              cleaned, sp, cfg, shape=shape, planar=False, inlets=inlets, outlets=outlets,
                              clock=clock, wall_fit=fit)
         if "shared" in held:  # no segment: no wall fit was asked for
             runner.release(held.pop("shared"))
+    record["blocks_resumed"] = 0 if kept is None else kept.resumed
     result.run["blockwise"] = record
     if not _closed(record["tissue_distance_bracket_um"]):
         b = record["tissue_distance_bracket_um"]
@@ -229,7 +250,7 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
     return result
 
 
-def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, record, report, clock):
+def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, record, report, clock, kept):
     """The whole volume's :class:`~pipeline.centrelines.Centrelines`, from its blocks."""
     border = [(o == 0, o + n == N) for o, n, N in zip(runs.offset, runs.shape, shape)]
     pad = pad_width_of_faces(runs.face, border, sp, frame.spacing)
@@ -242,20 +263,22 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, re
     # The first block measures the halo the others start from (each still
     # grows its own where wider vessels need it).
     progress = report("centrelines")
-    parts = runner.map(centreline_block, shared, tiles[:1], step="centrelines", kwargs_of=lambda i: common)
+    parts = runner.map(centreline_block, shared, tiles[:1], step="centrelines", kwargs_of=lambda i: common,
+                       kept=kept)
     common["halo"] = parts[0]["halo"]
     if progress is not None:
         progress(1, len(tiles))
     if len(tiles) > 1:
         parts += runner.map(centreline_block, shared, tiles[1:], step="centrelines", kwargs_of=lambda i: common,
-                            progress=None if progress is None else lambda done, total: progress(done + 1, total + 1))
+                            progress=None if progress is None else lambda done, total: progress(done + 1, total + 1),
+                            kept=kept)
     halos = np.array([p["halo"] for p in parts])
     rmax = max((p["rmax_um"] for p in parts), default=0.0)
     record.update(blocks=len(tiles), halo_voxels_max=[int(h) for h in halos.max(axis=0)],
                   largest_radius_um=float(rmax), pad_voxels=int(pad))
     if frame.resampled:
         tissue = _tissue_pass(runner, shared, runs, shape, sp, bins, edge=edge,
-                              halo=needed_halo(rmax, sp, radii=CENTRELINE_HALO_RADII), report=report)
+                              halo=needed_halo(rmax, sp, radii=CENTRELINE_HALO_RADII), report=report, kept=kept)
     else:
         tissue = parts
     quantiles, bracket = _tissue_quantiles(tissue, bins)
@@ -265,7 +288,8 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, re
         halo = tuple(int(np.ceil(bracket["p95"][1] / s)) + 2 for s in sp)
         edge_t = _tissue_edge(limit, halo)
         if edge_t is not None:
-            tissue = _tissue_pass(runner, shared, runs, shape, sp, bins, edge=edge_t, halo=halo, report=report)
+            tissue = _tissue_pass(runner, shared, runs, shape, sp, bins, edge=edge_t, halo=halo, report=report,
+                                  kept=kept)
             quantiles, bracket = _tissue_quantiles(tissue, bins)
     record["tissue_distance_bracket_um"] = bracket
     vox = np.concatenate([p["voxels"] for p in parts]) if parts else np.zeros((0, 3), np.int64)
@@ -282,13 +306,14 @@ def _centrelines(runner, shared, runs, frame, shape, sp, cfg, *, edge, limit, re
     return cl
 
 
-def _tissue_pass(runner, shared, runs, shape, sp, bins, *, edge, halo, report):
+def _tissue_pass(runner, shared, runs, shape, sp, bins, *, edge, halo, report, kept):
     """Tissue-distance histograms of the original grid's blocks of ``edge`` with ``halo``."""
     grid = blocks(shape, runs.offset, edge)
     return runner.map(tissue_block, shared, grid, step="centrelines",
                       kwargs_of=lambda i: dict(crop_offset=runs.offset, original_shape=shape, spacing=sp,
                                                halo=halo, bins=bins),
-                      progress=report("tissue distances"))
+                      progress=report("tissue distances"),
+                      kept=None if kept is None else _Named(kept, "tissue-{}-{}-{}-{}".format(edge, *halo)))
 
 
 # Working memory of a tissue-distance block: per voxel of its extent the
@@ -314,6 +339,19 @@ def _tissue_edge(limit, halo):
 
 def _closed(bracket):
     return all(abs(bracket[q][1] - bracket[q][0]) <= 1e-9 * max(1.0, abs(bracket[q][1])) for q in ("median", "p95"))
+
+
+class _Named:
+    """Kept blocks of a pass under its own name (the step names the error, the pass the files)."""
+
+    def __init__(self, kept, name):
+        self.kept, self.name = kept, name
+
+    def get(self, step, block):
+        return self.kept.get(self.name, block)
+
+    def put(self, step, block, result):
+        self.kept.put(self.name, block, result)
 
 
 def _tissue_quantiles(parts, bins):
@@ -345,7 +383,7 @@ def _tissue_quantiles(parts, bins):
     return (float(med[1]), float(p95[1])), bracket
 
 
-def _wall_fits(runner, shared, runs, shape, sp, points, offsets, radii, *, edge, progress):
+def _wall_fits(runner, shared, runs, shape, sp, points, offsets, radii, *, edge, progress, kept):
     """:class:`~pipeline.radii.WallRadii` of the graph's points, each fitted in the block of the original grid holding it."""
     P, off, T, todo = wall_fit_plan(points, offsets, radii, spacing=sp)
     R0 = np.ascontiguousarray(radii, dtype=np.float64)
@@ -365,7 +403,7 @@ def _wall_fits(runner, shared, runs, shape, sp, points, offsets, radii, *, edge,
                     radii_um=R0[sel])
 
     parts = runner.map(wall_block, shared, [grid[i] for i in busy], step="radii", kwargs_of=kwargs_of,
-                       progress=progress)
+                       progress=progress, kept=kept)
     plain = np.empty(len(todo))
     mean = np.empty(len(todo))
     nfit = np.empty(len(todo), np.int64)

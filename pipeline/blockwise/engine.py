@@ -20,7 +20,7 @@ from __future__ import annotations
 from .._parallel import limit_threads
 from ..errors import EngineError
 
-__all__ = ["BlockError", "BlockRunner"]
+__all__ = ["BlockError", "BlockRunner", "KeptBlocks"]
 
 
 class BlockError(EngineError):
@@ -94,37 +94,128 @@ class BlockRunner:
         if self.client is not None and hasattr(shared, "release"):
             shared.release()
 
-    def map(self, fn, runs, blocks, *, step, kwargs_of, progress=None):
+    def map(self, fn, runs, blocks, *, step, kwargs_of, progress=None, kept=None):
         """``[fn(runs, block, **kwargs_of(i)) for i, block in enumerate(blocks)]``, in block order.
 
-        ``progress(done, total)`` after each block.
+        ``progress(done, total)`` after each block. ``kept`` (a
+        :class:`KeptBlocks`) gives the results of blocks finished by an
+        earlier, interrupted run and keeps each new one as it finishes.
         """
         n = len(blocks)
+        out = [None] * n
+        todo = []
+        for i, block in enumerate(blocks):
+            got = kept.get(step, block) if kept is not None else None
+            if got is None:
+                todo.append(i)
+            else:
+                out[i] = got
+        done = n - len(todo)
         if self.client is None:
-            out = []
-            for i, block in enumerate(blocks):
+            for i in todo:
                 try:
-                    out.append(fn(runs, block, **kwargs_of(i)))
+                    out[i] = fn(runs, blocks[i], **kwargs_of(i))
                 except MemoryError:
                     raise
                 except Exception as exc:
-                    raise _fail(step, block, exc) from exc
+                    raise _fail(step, blocks[i], exc) from exc
+                if kept is not None:
+                    kept.put(step, blocks[i], out[i])
+                done += 1
                 if progress is not None:
-                    progress(i + 1, n)
+                    progress(done, n)
             return out
-        futures = [self.client.submit(_one_thread, fn, runs, block, kwargs_of(i), pure=False)
-                   for i, block in enumerate(blocks)]
-        out = []
+        futures = {i: self.client.submit(_one_thread, fn, runs, blocks[i], kwargs_of(i), pure=False) for i in todo}
         # In block order: a block's result is taken as soon as it and those
         # before it are done, while the others keep running.
-        for i, future in enumerate(futures):
+        for i, future in futures.items():
             try:
-                out.append(future.result())
+                out[i] = future.result()
             except Exception as exc:
-                for f in futures:
+                for f in futures.values():
                     f.cancel()
                 raise _fail(step, blocks[i], exc) from exc
             future.release()
+            if kept is not None:
+                kept.put(step, blocks[i], out[i])
+            done += 1
             if progress is not None:
-                progress(i + 1, n)
+                progress(done, n)
         return out
+
+
+class KeptBlocks:
+    """Finished blocks kept on disk, so that an interrupted analysis resumes where it stopped.
+
+    Each block's result is one ``.npz`` file in ``folder``, named by the
+    step and the block, written atomically; a file ``KEY`` holds a digest of
+    everything the results depend on (the input file's size and times, the
+    configuration, the spacing, the block edge), and a folder whose key
+    differs is emptied of vesselflow's block files before use.
+
+    Parameters
+    ----------
+    folder : Path
+        Created if missing; vesselflow writes only ``KEY`` and
+        ``*.block.npz`` in it.
+    key : str
+    """
+
+    MARK = "KEY"
+
+    def __init__(self, folder, key):
+        from pathlib import Path
+
+        self.folder = Path(folder)
+        self.folder.mkdir(parents=True, exist_ok=True)
+        mark = self.folder / self.MARK
+        if not mark.is_file() or mark.read_text(encoding="utf-8") != key:
+            for f in self.folder.glob("*.block.npz"):
+                f.unlink()
+            mark.write_text(key, encoding="utf-8")
+        self.resumed = 0
+
+    def _path(self, step, block):
+        return self.folder / (f"{step}-" + "-".join(str(int(i)) for i in block.index) + ".block.npz")
+
+    def get(self, step, block):
+        import numpy as np
+
+        path = self._path(step, block)
+        if not path.is_file():
+            return None
+        try:
+            with np.load(path, allow_pickle=False) as z:
+                out = {k: (z[k].item() if z[k].ndim == 0 else z[k]) for k in z.files}
+        except (OSError, ValueError, EOFError):
+            return None  # cut short when the run stopped: done again
+        if "halo" in out:
+            out["halo"] = tuple(int(v) for v in out["halo"])
+        self.resumed += 1
+        return out
+
+    def put(self, step, block, result):
+        import os
+
+        import numpy as np
+
+        path = self._path(step, block)
+        tmp = path.with_name("." + path.name + ".partial.npz")
+        np.savez(tmp, **{k: np.asarray(v) for k, v in result.items()})
+        os.replace(tmp, path)
+
+    @classmethod
+    def remove_folder(cls, folder):
+        """Delete kept blocks and their folder (only what vesselflow wrote there), after a finished analysis."""
+        from pathlib import Path
+
+        folder = Path(folder)
+        if not (folder / cls.MARK).is_file():
+            return
+        for f in list(folder.glob("*.block.npz")) + list(folder.glob(".*.partial.npz")):
+            f.unlink()
+        (folder / cls.MARK).unlink(missing_ok=True)
+        try:
+            folder.rmdir()
+        except OSError:
+            pass  # something else is in it: left as it is
