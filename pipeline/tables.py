@@ -58,7 +58,7 @@ from .tablefiles import write_csv, write_graph_files
 __all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "check_new_file",
            "write_atomic",
            "RESULT_FILES", "OWNED_NAMES", "verify_result", "is_result_folder", "clean_stale_partials",
-           "make_partial_dir", "storage_error", "file_digest", "check_writable"]
+           "make_partial_dir", "storage_error", "file_digest", "check_writable", "PARQUET_ROWS"]
 
 RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "summary.json", "graph.graphml",
                 "centrelines.npz", "run.json", "vessels.csv", "orders.csv", "order_connectivity.csv")
@@ -66,7 +66,10 @@ RESULT_FILES = ("segments.csv", "nodes.csv", "levels.csv", "bifurcations.csv", "
 #: the report, the review and what is derived from it). ``--overwrite``
 #: replaces a folder only when it holds nothing else.
 OWNED_NAMES = RESULT_FILES + ("report.html", "figures", "review.csv", "review-superseded.csv",
-                              "summary_reviewed.json")
+                              "summary_reviewed.json", "segments.parquet", "nodes.parquet",
+                              "bifurcations.parquet")
+#: Tables with at least this many rows are also written as Parquet.
+PARQUET_ROWS = 200_000
 _PARTIAL_TAGS = (".partial-", ".old-")
 
 
@@ -449,6 +452,12 @@ def _fill_result(tmp, result, extra_tables):
               **(extra_tables or {})}
     for name, table in tables.items():
         write_csv(table, tmp / name)
+    # Large tables also as Parquet (columnar, typed, compressed): a million
+    # rows of CSV take seconds to parse where Parquet takes a fraction.
+    for name, table in (("segments", result.segments), ("nodes", result.nodes),
+                        ("bifurcations", result.bifurcations)):
+        if len(table) >= PARQUET_ROWS:
+            table.to_parquet(tmp / f"{name}.parquet", index=False)
     write_json(tmp / "summary.json", result.summary)
     lens = [len(p) for p in result.centrelines]
     offsets = np.r_[0, np.cumsum(lens)].astype(np.int64)
