@@ -13,9 +13,10 @@ import pytest
 # Libraries the bare import must not load: the analysis stack (loaded on
 # first use of ``analyze``) and the optional extras (batch, report, viewer).
 HEAVY = ("pandas", "numba", "scipy", "networkx", "skimage", "dask", "distributed", "matplotlib", "napari", "qtpy",
-         "PyQt5", "PyQt6", "PySide2", "PySide6", "vispy")
+         "PyQt5", "PyQt6", "PySide2", "PySide6", "vispy", "zarr", "h5py", "pyarrow")
 # Extras the analysis core never loads (the CLI's analyze command included).
-EXTRAS = ("dask", "distributed", "matplotlib", "napari", "qtpy", "PyQt5", "PyQt6", "PySide2", "PySide6", "vispy")
+EXTRAS = ("dask", "distributed", "matplotlib", "napari", "qtpy", "PyQt5", "PyQt6", "PySide2", "PySide6", "vispy",
+          "zarr", "h5py")
 
 
 def _run(code):
