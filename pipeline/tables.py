@@ -55,7 +55,7 @@ from .errors import InputError, StorageError
 from .result import Result
 from .tablefiles import write_csv, write_graph_files
 
-__all__ = ["write_result", "load_result", "read_result_mask", "Result", "check_outdir", "check_new_file",
+__all__ = ["write_result", "load_result", "read_result_mask", "read_result_projection", "Result", "check_outdir", "check_new_file",
            "write_atomic",
            "RESULT_FILES", "OWNED_NAMES", "verify_result", "is_result_folder", "clean_stale_partials",
            "make_partial_dir", "storage_error", "file_digest", "check_writable", "PARQUET_ROWS"]
@@ -606,6 +606,33 @@ def load_result(outdir, *, verify=True):
                   order_connectivity=order_conn)
 
 
+def _result_mask_path(result, mask_path):
+    """The mask file to read for a result (the recorded one by default), or (None, notes) when it is gone."""
+    from .reading.chunked import split_dataset
+
+    recorded = (result.run.get("input") or {}).get("path")
+    if mask_path is None:
+        if not recorded or not Path(split_dataset(str(recorded))[0]).exists():
+            return None, [f"the mask recorded in run.json ('{recorded}') is not there"]
+        mask_path = recorded
+    if not Path(split_dataset(str(mask_path))[0]).exists():
+        raise InputError(f"expected a mask file, got '{mask_path}' (not found)", param="mask_path")
+    return mask_path, []
+
+
+def _checked_against(result, label, shape, sha256):
+    """Notes on a mask read for a result; an error if its shape is not the analysed volume's."""
+    run = result.run
+    want = tuple(run.get("shape") or ())
+    if want and tuple(shape) != want:
+        raise InputError(f"{label}: expected shape {want} (the volume this result was computed from), "
+                         f"got {tuple(shape)}")
+    sha = (run.get("input") or {}).get("sha256")
+    if sha and sha256 != sha:
+        return [f"the {label} differs from the one analysed (its SHA-256 does not match run.json)"]
+    return []
+
+
 def read_result_mask(result, mask_path=None):
     """Read the mask a result was computed from, for display (viewer, report maps).
 
@@ -631,28 +658,41 @@ def read_result_mask(result, mask_path=None):
     """
     from . import reading
 
+    path, notes = _result_mask_path(result, mask_path)
+    if path is None:
+        return None, notes
     run = result.run
-    recorded = (run.get("input") or {}).get("path")
-    if mask_path is None:
-        if not recorded or not Path(recorded).is_file():
-            return None, [f"the mask recorded in run.json ('{recorded}') is not there"]
-        mask_path = recorded
-    path = Path(mask_path)
-    if not path.is_file():
-        raise InputError(f"expected a mask file, got '{path}' (not found)", param="mask_path")
     spacing = result.spacing[1:] if run.get("planar") else result.spacing
     threshold = ((run.get("config") or {}).get("input") or {}).get("threshold")
     # Only the boolean mask is held for display, none of the analysis' work arrays.
     img = reading.read_mask(path, spacing=spacing, threshold=threshold, bytes_per_voxel=2.0)
-    shape = tuple(run.get("shape") or ())
-    if shape and tuple(img.shape) != shape:
-        raise InputError(f"mask '{path}': expected shape {shape} (the volume this result was computed from), "
-                         f"got {tuple(img.shape)}")
-    notes = []
-    sha = (run.get("input") or {}).get("sha256")
-    if sha and img.sha256 != sha:
-        notes.append(f"the mask file '{path}' differs from the one analysed (its SHA-256 does not match run.json)")
-    return img, notes
+    return img, _checked_against(result, f"mask file '{path}'", img.shape, img.sha256)
+
+
+def read_result_projection(result, mask_path=None, *, slab_bytes=128 << 20):
+    """The mask's maximum projection along z, ``(Y, X)`` bool, read slab by slab (any size of volume).
+
+    Parameters and notes as :func:`read_result_mask`; returns ``(None,
+    notes)`` when the recorded mask is gone.
+    """
+    from . import reading
+    from .blockwise.source import slab_planes
+
+    path, notes = _result_mask_path(result, mask_path)
+    if path is None:
+        return None, notes
+    run = result.run
+    spacing = result.spacing[1:] if run.get("planar") else result.spacing
+    threshold = ((run.get("config") or {}).get("input") or {}).get("threshold")
+    with reading.open_mask(path, spacing=spacing, threshold=threshold) as lazy:
+        src = lazy.source
+        step = slab_planes(lazy.shape, lazy.dtype.itemsize, slab_bytes)
+        mip = np.zeros(lazy.shape[1:], dtype=bool)
+        for z0 in range(0, lazy.shape[0], step):
+            slab = np.asarray(src[z0:z0 + step])
+            mip |= (slab > threshold if threshold is not None else slab != 0).any(axis=0)
+        notes = _checked_against(result, f"mask file '{path}'", lazy.shape, lazy.sha256())
+    return mip, notes
 
 
 def _read_csv(path):

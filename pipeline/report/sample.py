@@ -83,23 +83,23 @@ def load_sample(outdir, *, mask=None, read_mip=True):
 
 def _read_mip(data, result, mask):
     """Maximum-intensity projection of the mask along z, or None with a note."""
-    from ..tables import read_result_mask
+    from ..tables import read_result_projection
 
     explicit = mask is not None
     try:
-        img, notes = read_result_mask(result, mask)
+        mip, notes = read_result_projection(result, mask)
     except InputError as exc:
         if explicit:
             raise  # the caller's own mask_path: its error names it
         data.notes.append(f"The mask recorded in run.json could not be used ({exc}), so the maps show the "
                           "centrelines alone.")
         return None
-    if img is None:
+    if mip is None:
         data.notes.append(f"{notes[0][0].upper()}{notes[0][1:]}, so the maps show the centrelines alone, without "
                           "the mask projection.")
         return None
     data.notes.extend(f"{n[0].upper()}{n[1:]}; its projection is shown as found." for n in notes)
-    return img.mask.any(axis=0)
+    return mip
 
 
 def _map_axes(ax, data):
