@@ -617,7 +617,10 @@ def _opened_for_blocks(path, spacing, cfg, limit, blockwise, dataset):
                                                max_anisotropy=cc["max_anisotropy"],
                                                resample_spacing_um=cc["resample_spacing_um"])
             need = reading.estimate_memory_bytes(lazy.shape, grid_shape=grid)
-            if lazy.planar or limit is None or need <= limit:
+            # A spacing in the wrong unit makes the estimate astronomical: the
+            # in-memory route refuses it with the likely mistake named.
+            wrong = reading.spacing_problem(lazy.spacing, planar=lazy.planar) is not None
+            if lazy.planar or limit is None or need <= limit or wrong:
                 lazy.close()
                 return None
         elif lazy.planar:

@@ -37,6 +37,7 @@ from dataclasses import dataclass
 
 import numba
 import numpy as np
+from scipy import ndimage as ndi
 from skimage.morphology import skeletonize
 
 from ._distance import tissue_distance_quantiles, two_label_distance, volume_distance
@@ -103,41 +104,46 @@ def resample_isotropic(mask, *, spacing, target):
     phi = two_label_distance(mask, spacing=tuple(spacing))
     np.negative(phi, out=phi, where=~mask)
     out_shape = tuple(int(np.floor((n - 1) * s / target + 1e-9)) + 1 for n, s in zip(mask.shape, spacing))
-    return linear_resample(phi, target / spacing, first=(0,) * phi.ndim, shape=out_shape) > 0
+    return resampled_inside(phi, target / spacing, first=(0,) * phi.ndim, shape=out_shape)
 
 
-def linear_resample(values, scale, *, first, shape, origin=None):
-    """(Multi)linear interpolation of ``values`` at output voxels ``j`` placed at input coordinate ``j * scale``.
+def resampled_inside(phi, scale, *, first, shape, origin=None):
+    """Voxels of the resampled grid inside the surface: trilinear interpolation of the signed distance ``phi``.
 
-    Output voxels ``first + (0 .. shape - 1)`` per axis; ``values`` may be a
-    block of a larger array whose first voxel is the larger array's
-    ``origin``. Coordinates outside are clamped to the edge (the edge value
-    repeats). One axis at a time, each output coordinate computed as
-    ``j * scale - origin`` (an exact shift of ``j * scale``), so a block gives
-    bit for bit the values of the whole array: the sign of an interpolated
-    signed distance that lands exactly on 0 between opposite values, common
-    on lattices, is then the same in a block and in the whole.
+    Output voxel ``j`` (``first + (0 .. shape - 1)`` per axis) lies at input
+    coordinate ``j * scale``; ``phi`` may be a block of a larger array whose
+    first voxel is that array's ``origin``; outside it the edge value
+    repeats. Inside is ``value > 0``.
+
+    On a lattice the interpolated distance often lands exactly on 0 between
+    opposite values (a voxel centre on the surface), where the last bit of
+    rounding decides the sign; so a block must reproduce the whole array's
+    arithmetic exactly. The whole array goes through
+    ``scipy.ndimage.affine_transform``, whose coordinate of output voxel
+    ``j`` is ``j * scale``; a block gives ``map_coordinates`` the coordinate
+    ``j * scale - origin``, an exact shift (an integer taken from a
+    non-negative double below 2^53), so the interpolation sees the same
+    cell and the same weights and returns the same bits
+    (``tests/test_blockwise.py``).
     """
-    # A block holding one class only has infinite distances: capped, so
-    # that differences stay finite (the signs are what matter).
-    out = np.clip(np.asarray(values, dtype=np.float32), -1e12, 1e12)
-    origin = (0,) * out.ndim if origin is None else origin
-    for a in range(out.ndim):
-        n = out.shape[a]
-        c = np.arange(first[a], first[a] + shape[a], dtype=np.float64) * float(scale[a]) - float(origin[a])
-        np.clip(c, 0.0, n - 1, out=c)
-        i0 = np.floor(c).astype(np.int64)
-        i1 = np.minimum(i0 + 1, n - 1)
-        f = (c - i0).astype(np.float32)
-        view = [None] * out.ndim
-        view[a] = slice(None)
-        f = f[tuple(view)]
-        lo = np.take(out, i0, axis=a)
-        hi = np.take(out, i1, axis=a)
-        hi -= lo
-        hi *= f
-        lo += hi
-        out = lo
+    origin = (0,) * phi.ndim if origin is None else tuple(int(o) for o in origin)
+    first = tuple(int(f) for f in first)
+    scale = np.asarray(scale, dtype=float)
+    if not any(first) and not any(origin):
+        fine = ndi.affine_transform(phi, scale, output_shape=tuple(shape), order=1, output=np.float32,
+                                    mode="nearest")
+        return fine > 0
+    out = np.empty(tuple(shape), dtype=bool)
+    axes = [np.arange(f, f + n, dtype=np.float64) * s - o for f, n, s, o in zip(first, shape, scale, origin)]
+    plane = int(np.prod(shape[1:]))
+    step = max(1, (32 << 20) // max(1, 24 * plane))  # about 32 MiB of coordinates at a time
+    for z0 in range(0, shape[0], step):
+        zs = axes[0][z0:z0 + step]
+        coords = np.empty((3, len(zs)) + tuple(shape[1:]))
+        coords[0] = zs[:, None, None]
+        coords[1] = axes[1][None, :, None]
+        coords[2] = axes[2][None, None, :]
+        out[z0:z0 + len(zs)] = ndi.map_coordinates(phi, coords, order=1, output=np.float32, mode="nearest") > 0
     return out
 
 

@@ -213,6 +213,14 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
     clock.tick("cleaning")
     frame = thinning_frame(runs.shape, runs.offset, shape, sp, max_anisotropy=cc["max_anisotropy"],
                            resample_spacing_um=cc["resample_spacing_um"])
+    n_grid = math.prod(frame.shape)
+    if frame.resampled and n_grid > 1e11 and n_grid > 64 * math.prod(shape):
+        from ..reading import spacing_problem
+
+        why = spacing_problem(sp)
+        raise InputError(f"{label}: resampled to {frame.spacing[0]:g} µm for thinning, the volume would have "
+                         f"{n_grid:.3g} voxels; check the voxel spacing {tuple(sp)} µm (Z Y X)"
+                         + (f": {why}" if why else ""))
     record = {"block_edge": int(edge), "grid": "isotropic" if frame.resampled else "original",
               "memory_limit_bytes": None if limit is None else int(limit)}
     cleaned = SimpleNamespace(stats=runs.stats, offset=runs.offset, mask=None)

@@ -156,8 +156,8 @@ class KeptBlocks:
     Parameters
     ----------
     folder : Path
-        Created if missing; vesselflow writes only ``KEY`` and
-        ``*.block.npz`` in it.
+        Created when the first block is kept; vesselflow writes only
+        ``KEY`` and ``*.block.npz`` in it.
     key : str
     """
 
@@ -166,13 +166,11 @@ class KeptBlocks:
     def __init__(self, folder, key):
         from pathlib import Path
 
-        self.folder = Path(folder)
-        self.folder.mkdir(parents=True, exist_ok=True)
+        self.folder, self.key = Path(folder), key
         mark = self.folder / self.MARK
-        if not mark.is_file() or mark.read_text(encoding="utf-8") != key:
-            for f in self.folder.glob("*.block.npz"):
-                f.unlink()
-            mark.write_text(key, encoding="utf-8")
+        # Made when the first block is kept, so a run refused before any
+        # block finished leaves nothing behind.
+        self.ready = mark.is_file() and mark.read_text(encoding="utf-8") == key
         self.resumed = 0
 
     def _path(self, step, block):
@@ -182,7 +180,7 @@ class KeptBlocks:
         import numpy as np
 
         path = self._path(step, block)
-        if not path.is_file():
+        if not self.ready or not path.is_file():
             return None
         try:
             with np.load(path, allow_pickle=False) as z:
@@ -199,6 +197,12 @@ class KeptBlocks:
 
         import numpy as np
 
+        if not self.ready:
+            self.folder.mkdir(parents=True, exist_ok=True)
+            for f in self.folder.glob("*.block.npz"):
+                f.unlink()  # kept for another input or configuration
+            (self.folder / self.MARK).write_text(self.key, encoding="utf-8")
+            self.ready = True
         path = self._path(step, block)
         tmp = path.with_name("." + path.name + ".partial.npz")
         np.savez(tmp, **{k: np.asarray(v) for k, v in result.items()})

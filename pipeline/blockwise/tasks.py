@@ -42,7 +42,7 @@ import numba
 import numpy as np
 
 from .._distance import two_label_distance
-from ..centrelines import _edge_pads, _in_plane_distance, _in_plane_radii, _inner_voxels, _ridge, linear_resample
+from ..centrelines import _edge_pads, _in_plane_distance, _in_plane_radii, _inner_voxels, _ridge, resampled_inside
 from ..radii import fit_wall_points
 from ..thinning import thin
 
@@ -248,7 +248,7 @@ def _resampled_block(runs, frame, block, lo, hi, *, crop_offset, original_shape,
         return out
     np.negative(phi, out=phi, where=~m)
     shape = tuple(b - a for a, b in zip(lo, hi))
-    fine = linear_resample(phi, scale, first=lo, shape=shape, origin=c_lo) > 0
+    fine = resampled_inside(phi, scale, first=lo, shape=shape, origin=c_lo)
     del phi
     border = [(o == 0, o + n == N) for o, n, N in zip(crop_offset, runs.shape, original_shape)]
     pads = _pads((0, 0, 0), frame.shape, lo, hi, border, pad_width)
