@@ -620,6 +620,13 @@ def _result_mask_path(result, mask_path):
     return mask_path, []
 
 
+def _read_settings(result):
+    """The spacing and threshold a result's mask was read with."""
+    run = result.run
+    spacing = result.spacing[1:] if run.get("planar") else result.spacing
+    return spacing, ((run.get("config") or {}).get("input") or {}).get("threshold")
+
+
 def _checked_against(result, label, shape, sha256):
     """Notes on a mask read for a result; an error if its shape is not the analysed volume's."""
     run = result.run
@@ -661,9 +668,7 @@ def read_result_mask(result, mask_path=None):
     path, notes = _result_mask_path(result, mask_path)
     if path is None:
         return None, notes
-    run = result.run
-    spacing = result.spacing[1:] if run.get("planar") else result.spacing
-    threshold = ((run.get("config") or {}).get("input") or {}).get("threshold")
+    spacing, threshold = _read_settings(result)
     # Only the boolean mask is held for display, none of the analysis' work arrays.
     img = reading.read_mask(path, spacing=spacing, threshold=threshold, bytes_per_voxel=2.0)
     return img, _checked_against(result, f"mask file '{path}'", img.shape, img.sha256)
@@ -681,9 +686,7 @@ def read_result_projection(result, mask_path=None, *, slab_bytes=128 << 20):
     path, notes = _result_mask_path(result, mask_path)
     if path is None:
         return None, notes
-    run = result.run
-    spacing = result.spacing[1:] if run.get("planar") else result.spacing
-    threshold = ((run.get("config") or {}).get("input") or {}).get("threshold")
+    spacing, threshold = _read_settings(result)
     with reading.open_mask(path, spacing=spacing, threshold=threshold) as lazy:
         src = lazy.source
         step = slab_planes(lazy.shape, lazy.dtype.itemsize, slab_bytes)

@@ -125,3 +125,50 @@ def fill_disk(folder):
         except OSError:  # ENOSPC: full
             pass
     return filler
+
+
+def _free_port():
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def start_dask_processes(workers=1, worker_args=()):
+    """A Dask scheduler and ``workers`` workers started as separate processes on loopback, as on a lab's cluster.
+
+    Returns the scheduler's address, its process and the worker processes;
+    :func:`stop_processes` ends them.
+    """
+    import socket
+    import subprocess
+    import sys
+    import time
+
+    port = _free_port()
+
+    def start(*args):
+        return subprocess.Popen([sys.executable, "-m", *args], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                                start_new_session=True)
+
+    sched = start("distributed.cli.dask_scheduler", "--host", "127.0.0.1", "--port", str(port), "--no-dashboard")
+    deadline = time.monotonic() + 60
+    while True:
+        try:
+            socket.create_connection(("127.0.0.1", port), timeout=1).close()
+            break
+        except OSError:
+            assert time.monotonic() < deadline, "the scheduler did not start"
+            time.sleep(0.2)
+    address = f"tcp://127.0.0.1:{port}"
+    procs = [start("distributed.cli.dask_worker", address, "--nthreads", "1", "--no-dashboard", *worker_args)
+             for _ in range(workers)]
+    return address, sched, procs
+
+
+def stop_processes(procs):
+    for p in procs:
+        if p.poll() is None:
+            p.kill()
+        p.wait(timeout=30)

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from conftest import fill_disk, write_ybranch
+from conftest import fill_disk, start_dask_processes, stop_processes, write_ybranch
 from pipeline import batch, synthetic
 from pipeline.cli import main
 from pipeline.tables import load_result
@@ -217,40 +217,12 @@ def test_a_full_disk_at_the_study_tables_is_one_line_and_a_final_state(sheet, lo
 # --------------------------------------------------------------------------- losing the cluster
 
 
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.fixture
 def external_cluster():
     """A scheduler and one worker as separate processes, as on a lab's cluster."""
-    port = _free_port()
-    procs = []
-
-    def start(*args):
-        p = subprocess.Popen([sys.executable, "-m", *args], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-                             start_new_session=True)
-        procs.append(p)
-        return p
-
-    sched = start("distributed.cli.dask_scheduler", "--host", "127.0.0.1", "--port", str(port), "--no-dashboard")
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            socket.create_connection(("127.0.0.1", port), timeout=1).close()
-            break
-        except OSError:
-            assert time.monotonic() < deadline, "the scheduler did not start"
-            time.sleep(0.2)
-    worker = start("distributed.cli.dask_worker", f"tcp://127.0.0.1:{port}", "--nthreads", "1", "--no-dashboard",
-                   "--no-nanny")
-    yield {"address": f"tcp://127.0.0.1:{port}", "scheduler": sched, "worker": worker}
-    for p in procs:
-        if p.poll() is None:
-            p.kill()
-        p.wait(timeout=30)
+    address, sched, workers = start_dask_processes(1, ("--no-nanny",))
+    yield {"address": address, "scheduler": sched, "worker": workers[0]}
+    stop_processes([sched, *workers])
 
 
 @pytest.fixture(scope="module")

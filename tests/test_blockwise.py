@@ -11,10 +11,6 @@ last test of each case checks too.
 """
 
 import itertools
-import socket
-import subprocess
-import sys
-import time
 
 import networkx as nx
 import numpy as np
@@ -28,6 +24,8 @@ from pipeline.blockwise import BlockError, analyze_blockwise
 from pipeline.blockwise import tasks as block_tasks
 from pipeline.errors import InputError
 from pipeline.thinning import thin
+
+from conftest import start_dask_processes, stop_processes
 
 
 def _tree(seed, spacing):
@@ -188,46 +186,16 @@ def test_values_are_checked_across_slabs():
         analyze_blockwise(m, spacing=(1, 1, 1), block_size=32)
 
 
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.fixture
 def two_worker_cluster():
     """A scheduler and two workers started as separate processes on the loopback interface."""
-    port = _free_port()
-    procs = []
-
-    def start(*args):
-        p = subprocess.Popen([sys.executable, "-m", *args], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-                             start_new_session=True)
-        procs.append(p)
-        return p
-
-    start("distributed.cli.dask_scheduler", "--host", "127.0.0.1", "--port", str(port), "--no-dashboard")
-    deadline = time.monotonic() + 60
-    while True:
-        try:
-            socket.create_connection(("127.0.0.1", port), timeout=1).close()
-            break
-        except OSError:
-            assert time.monotonic() < deadline, "the scheduler did not start"
-            time.sleep(0.2)
-    for _ in range(2):
-        start("distributed.cli.dask_worker", f"tcp://127.0.0.1:{port}", "--nthreads", "1", "--no-dashboard",
-              "--host", "127.0.0.1")
-    address = f"tcp://127.0.0.1:{port}"
+    address, sched, workers = start_dask_processes(2, ("--host", "127.0.0.1"))
     from distributed import Client
 
     with Client(address, timeout="30s") as client:
         client.wait_for_workers(2, timeout=60)
     yield address
-    for p in procs:
-        if p.poll() is None:
-            p.kill()
-        p.wait(timeout=30)
+    stop_processes([sched, *workers])
 
 
 @pytest.mark.integration

@@ -110,7 +110,15 @@ class BlockRunner:
                 todo.append(i)
             else:
                 out[i] = got
-        done = n - len(todo)
+        done = [n - len(todo)]
+
+        def finished(i):
+            if kept is not None:
+                kept.put(step, blocks[i], out[i])
+            done[0] += 1
+            if progress is not None:
+                progress(done[0], n)
+
         if self.client is None:
             for i in todo:
                 try:
@@ -119,11 +127,7 @@ class BlockRunner:
                     raise
                 except Exception as exc:
                     raise _fail(step, blocks[i], exc) from exc
-                if kept is not None:
-                    kept.put(step, blocks[i], out[i])
-                done += 1
-                if progress is not None:
-                    progress(done, n)
+                finished(i)
             return out
         futures = {i: self.client.submit(_one_thread, fn, runs, blocks[i], kwargs_of(i), pure=False) for i in todo}
         # In block order: a block's result is taken as soon as it and those
@@ -136,11 +140,7 @@ class BlockRunner:
                     f.cancel()
                 raise _fail(step, blocks[i], exc) from exc
             future.release()
-            if kept is not None:
-                kept.put(step, blocks[i], out[i])
-            done += 1
-            if progress is not None:
-                progress(done, n)
+            finished(i)
         return out
 
 
