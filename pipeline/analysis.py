@@ -166,6 +166,7 @@ def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
     original_shape = arr.shape
     del arr
     clock.tick("cleaning")
+
     def fit(points, offsets, radii):
         return radii_step.wall_radii(cleaned.mask, spacing=sp, offset=cleaned.offset, points_um=points,
                                      offsets=offsets, radii_um=radii, planar=planar)
