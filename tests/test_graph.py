@@ -298,3 +298,47 @@ def test_a_thin_vessel_from_a_thick_one_to_the_face_is_kept(branch_radius_um):
     # the branch ends on the face (y = 0)
     ends = res.nodes[res.nodes["degree"] == 1]
     assert (ends["y_um"] <= 1.0).sum() == 1
+
+
+def _straight_path(a, b, step=1.0):
+    a, b = np.asarray(a, float), np.asarray(b, float)
+    n = max(2, int(np.ceil(np.linalg.norm(b - a) / step)) + 1)
+    return a + np.linspace(0.0, 1.0, n)[:, None] * (b - a)
+
+
+def _star(junction, ends, radii, border):
+    """A junction (node 0) with one straight segment to each end (nodes 1..)."""
+    from pipeline.graph import VesselGraph
+
+    pos = np.array([junction] + list(ends), float)
+    n = len(pos)
+    return VesselGraph(node_pos_um=pos, node_radius_um=np.array([max(radii)] + list(radii), float),
+                       node_on_border=np.array([False] + list(border)), node_alive=np.ones(n, bool),
+                       seg_nodes={i: (0, i + 1) for i in range(n - 1)},
+                       seg_path={i: _straight_path(junction, e) for i, e in enumerate(ends)},
+                       seg_radii={i: np.full(len(_straight_path(junction, e)), r, float) for i, (e, r) in
+                                  enumerate(zip(ends, radii))})
+
+
+def test_a_thick_vessel_cut_by_the_face_into_a_fork_keeps_one_end():
+    # A 7 µm vessel runs in from 90 µm to a junction 9 µm from the z = 0
+    # face, where its cut face thinned into two stubs as thick as itself:
+    # one reaches the face 9.2 µm away, the other ends 6.6 µm from the
+    # junction, inside the vessel's radius. The shorter goes, the junction
+    # dissolves, and the vessel runs from 90 µm to the face.
+    g = _star([9.0, 50.0, 50.0], [[90.0, 50.0, 50.0], [0.0, 50.0, 52.0], [4.0, 47.0, 47.0]], [7.0, 7.0, 6.8],
+              [False, True, True])
+    prune_graph(g, voxel_um=1.0, volume_um=(100.0, 100.0, 100.0))
+    assert len(g.seg_nodes) == 1
+    (u, v), = g.seg_nodes.values()
+    assert {u, v} == {1, 2}  # from the inner end to the stub that reaches the face
+
+
+def test_daughters_of_a_bifurcation_cut_by_the_face_are_kept():
+    # A 5 µm vessel branches 9 µm from the face into two 4.5 µm daughters
+    # that reach the face 9.2 µm from the junction, beyond the parent's
+    # radius: a bifurcation cut just past it, not a forked cut face.
+    g = _star([9.0, 50.0, 50.0], [[90.0, 50.0, 50.0], [2.0, 44.0, 50.0], [2.0, 56.0, 50.0]], [5.0, 4.5, 4.5],
+              [False, True, True])
+    prune_graph(g, voxel_um=1.0, volume_um=(100.0, 100.0, 100.0))
+    assert len(g.seg_nodes) == 3
