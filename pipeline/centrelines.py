@@ -63,7 +63,8 @@ class Centrelines:
     grid_shape : tuple of 3 int
         Shape of the thinning grid.
     on_border : (M,) bool ndarray
-        Voxel lies within one voxel of the original volume's border.
+        Voxel lies within one voxel of the original volume's border, or
+        within its radius of the plane of the border voxels' centres.
     resampled : bool
         Whether the mask was resampled to an isotropic grid.
     tissue_distance_um : tuple of 2 float or None
@@ -450,12 +451,19 @@ def from_voxels(voxels, radii, *, grid_spacing, grid_shape, offset, spacing, ori
         vox3 = voxels
         grid_spacing = tuple(float(s) for s in sp)
         grid_shape = tuple(grid_shape)
-    # Border test on the original grid: within one voxel of a face that is the volume's edge.
+    # Border test on the original grid: within one voxel of a face that is the
+    # volume's edge, or within the voxel's radius of it.
     orig_idx = np.rint(positions / spacing).astype(np.int64)
     on_border = np.zeros(len(positions), dtype=bool)
     for a in axes:
         if original_shape[a] > 1:
             on_border |= (orig_idx[:, a] <= 1) | (orig_idx[:, a] >= original_shape[a] - 2)
+            # A voxel whose inscribed ball reaches the face's plane of voxel
+            # centres: the vessel's lumen is cut by the face there, although
+            # a rough cut face can thin to a skeleton that stops short of it
+            # (a 7-8 µm vessel: tips and junctions 2-6 µm in).
+            last = (original_shape[a] - 1) * spacing[a]
+            on_border |= np.minimum(positions[:, a], last - positions[:, a]) <= radii
     return Centrelines(
         voxels=vox3,
         positions_um=positions,

@@ -42,7 +42,8 @@ class VesselGraph:
     node_radius_um : (N,) float ndarray
         Largest radius among the node's voxels, µm.
     node_on_border : (N,) bool ndarray
-        Node lies within one voxel of the volume border.
+        Node lies within one voxel of the volume border, or within its
+        radius of the border voxels' plane (``Centrelines.on_border``).
     node_alive : (N,) bool ndarray
         False for nodes removed by pruning.
     seg_nodes : dict int -> (int, int)
