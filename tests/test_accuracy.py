@@ -140,17 +140,36 @@ def test_junction_f1_on_thin_capillary_beds_at_coarse_z(spacing, seed):
     _assert_bed_meets_targets(seed, spacing, radius_range_um=(1.5, 2.5), vessel_fraction=0.06, strength=1.0)
 
 
-@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (2.0, 1.0, 1.0)])
-@pytest.mark.parametrize("seed", [0, 1, 2, 3])
-def test_beds_of_thick_and_thin_vessels_cut_on_every_face(spacing, seed):
-    # Vessels of 2-8 µm in a 120 µm box, 15 % vessel, artefacts at half
-    # strength: many junctions lie within 10-15 µm of a face, and thin
-    # vessels leave thick ones to be cut by it. Before branches to the face
-    # were pruned only where the thick vessel is cut by a face there
-    # (pipeline/pruning.py), such branches went with their junctions: F1
-    # 0.928-0.968 and length -3.2 to -6.7 % at z 2 (0.959-0.979 and -1.3
-    # to -3.7 % at 1 µm); after, 0.96-0.99 and -0.8 to -4.2 %.
-    _assert_bed_meets_targets(seed, spacing, radius_range_um=(2.0, 8.0), vessel_fraction=0.15, strength=0.5)
+_GAPPED_AND_FACES = ("F1 0.9495 (0.95 needed): of 52 junctions two are lost where a thin vessel (2.3-2.5 µm) "
+                     "broken by a gap goes as two stubs (reconnection is off by default), two of 5-8 µm vessels "
+                     "within 15 µm of the y = 0 face come out 11 µm off and missing (nearest 30 µm)")
+BED_KNOWN = {(1.0, 2.0, 3): _GAPPED_AND_FACES}
+
+
+def _bed_cases():
+    out = []
+    for k in (0.5, 1.0):
+        for dz in (1.0, 2.0):
+            for seed in (0, 1, 2, 3):
+                reason = BED_KNOWN.get((k, dz, seed))
+                marks = [pytest.mark.xfail(strict=True, reason=reason)] if reason else []
+                out.append(pytest.param(k, (dz, 1.0, 1.0), seed, marks=marks, id=f"strength{k:g}-z{dz:g}-seed{seed}"))
+    return out
+
+
+@pytest.mark.parametrize("strength, spacing, seed", _bed_cases())
+def test_beds_of_thick_and_thin_vessels_cut_on_every_face(strength, spacing, seed):
+    # Vessels of 2-8 µm in a 120 µm box, 15 % vessel: many junctions lie
+    # within 10-15 µm of a face, and thin vessels leave thick ones to be cut
+    # by it. At half strength, before branches to the face were pruned only
+    # where the thick vessel is cut by a face there (pipeline/pruning.py),
+    # such branches went with their junctions: F1 0.928-0.968 and length
+    # -3.2 to -6.7 % at z 2 (0.959-0.979 and -1.3 to -3.7 % at 1 µm);
+    # after, 0.96-0.99 and -0.8 to -4.2 %. At full strength 3 of these 8
+    # cases met the targets at the start of 2026-12-05 (F1 0.85-0.99), 7
+    # since a thick vessel's rough cut face that thins short of the face is
+    # recognised (pipeline/centrelines.py, on_border; pipeline/pruning.py).
+    _assert_bed_meets_targets(seed, spacing, radius_range_um=(2.0, 8.0), vessel_fraction=0.15, strength=strength)
 
 
 def _assert_bed_meets_targets(seed, spacing, *, radius_range_um, vessel_fraction, strength):
