@@ -115,8 +115,9 @@ def resampled_inside(phi, scale, *, first, shape, origin=None):
     coordinate ``j * scale``; ``phi`` may be a block of a larger array whose
     first voxel is that array's ``origin``; outside it the edge value
     repeats. Inside is ``value > 0``; a voxel whose value is exactly 0 is
-    decided by the value a thousandth of an input voxel further along the
-    first axis (then the second and third, for ties those leave).
+    decided by the value just beyond it (a thousandth of an input voxel
+    further along the first axis, smaller steps along the others:
+    ``_TIE_STEP``).
 
     Ties. When the coarse step is an even multiple of the fine one, every
     other fine plane lies half-way between two drawn planes, and where a
@@ -135,8 +136,9 @@ def resampled_inside(phi, scale, *, first, shape, origin=None):
     voxels of an edge contact, which share a fine plane, alike, so the
     contact stays, and adds as much at one face of a vessel as it takes at
     the other. (A contact through a corner alone is no tie: the distances
-    are 1 and -sqrt(2) voxels, and the interpolation opens it.) At odd ratios (3, 5) and non-integer ones no tie arises and
-    the topology was kept either way.
+    are 1 and -sqrt(2) voxels, and the interpolation opens it.) At odd
+    ratios (3, 5) and non-integer ones no tie arises and the topology was
+    kept either way.
 
     On a lattice the interpolated distance often lands exactly on 0 between
     opposite values (a voxel centre on the surface), where the last bit of
