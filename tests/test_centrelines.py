@@ -105,7 +105,7 @@ def test_resample_keeps_an_edge_contact_across_planes():
 def test_resample_keeps_the_tunnels_and_cavities_of_a_hostile_mask(dz, seed):
     # A tree with every artefact at full strength, drawn at an even multiple
     # of the fine step, where half-way planes make ties: resampling must not
-    # open or close loops (opening corner contacts made 27-50 tunnels out of
+    # open or close loops (opening edge contacts made 27-50 tunnels out of
     # the drawn 2).
     net = synthetic.binary_tree(depth=3, root_radius_um=7.0, exponent=3.0, seed=seed, min_radius_um=1.5, wiggle=0.2)
     spacing = (dz, 1.0, 1.0)

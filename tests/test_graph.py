@@ -11,7 +11,7 @@ import pytest
 import pipeline
 from pipeline import synthetic
 from pipeline.centrelines import Centrelines
-from pipeline.graph import build_graph, voxel_adjacency
+from pipeline.graph import VesselGraph, build_graph, voxel_adjacency
 from pipeline.pruning import prune_graph
 
 
@@ -308,8 +308,6 @@ def _straight_path(a, b, step=1.0):
 
 def _star(junction, ends, radii, border):
     """A junction (node 0) with one straight segment to each end (nodes 1..)."""
-    from pipeline.graph import VesselGraph
-
     pos = np.array([junction] + list(ends), float)
     n = len(pos)
     return VesselGraph(node_pos_um=pos, node_radius_um=np.array([max(radii)] + list(radii), float),
