@@ -372,11 +372,16 @@ def test_trunk_classes_split_as_otsus_threshold(seed):
     assert x[j] - bin_width <= t < x[j + 1]
 
 
-def test_trunks_without_a_wide_gap_still_give_two_classes():
-    # Seed 3 of the cortex crops: trunk radii 5.6-7.5 and 9.0-10.5 µm whose
-    # largest gap is 1.19 (under the 1.2 that the earlier largest-gap split
-    # asked for), so the piece had no trunk classes and came out 49 % right,
-    # most venules reversed. Split by Otsu's rule the classes' medians are
-    # 7.0 and 10.5 µm; measured 84 % right (venules 88 %).
-    right, _ = cortex_crop_estimate(3, 300.0)
-    assert right >= 0.75
+@pytest.mark.parametrize("seed", range(3, 12))
+def test_cut_cortex_network_directions_on_held_out_seeds(seed):
+    # Crops of seeds never used to choose a setting (same 300 µm crops as
+    # above). Measured: 84, 89, 82, 77, 62, 80, 73, 77, 81 % of directions
+    # right for seeds 3-11. Two rules guard against whole pieces coming out
+    # reversed, which is what 0.6 catches (chance is 50 %):
+    # - trunks split by Otsu's rule: seed 3's trunk radii have no gap of
+    #   1.2, and the largest-gap split left its piece unclassed (49 %);
+    # - a piece started from trunk classes keeps their orientation: seed 9
+    #   was reversed by the objective's comparison (29 %), seed 10 in part
+    #   (74 %).
+    right, _ = cortex_crop_estimate(seed, 300.0)
+    assert right >= 0.6
