@@ -41,6 +41,14 @@ __all__ = ["Analysis", "Result", "STEPS", "analyze", "analyze_file", "to_network
 # widest vessels micro-CT casts resolve, even an aorta, stay below 1 mm;
 # below 0.1 µm is far under optical resolution.
 _PLAUSIBLE_MEDIAN_RADIUS_UM = (0.1, 1000.0)
+# Share of the centreline length in vessels thinner than the z step above
+# which the result carries a warning. A vessel thinner than the z step that
+# runs near the image plane falls between planes: the mask breaks or loses
+# it. Measured on synthetic capillary beds (100 µm, every vessel 1-3 µm in
+# radius, no other artefact, xy 1 µm): with 30-42 % of the length that thin
+# (z 3 and 4 µm) the length read 8-15 % low and 10-42 % of the loops were
+# lost; with 2-4 % (z 2 and 3 µm, thicker beds) the length was within 0.4 %.
+_THIN_BELOW_Z_STEP_SHARE = 0.1
 
 
 #: The type :func:`analyze` returns: :class:`pipeline.result.Result`, also
@@ -314,6 +322,16 @@ def _sample_summary(segs, nodes, cleaned, cl, *, spacing, planar, shape, warning
         shown = ", ".join(f"{v:g}" for v in spacing)
         warnings.append(f"median vessel radius {median_radius:.3g} µm is outside {lo:g}-{hi:g} µm, the vessels "
                         f"microscopy and micro-CT resolve; check the voxel spacing ({shown} µm, Z Y X) and its unit")
+    if not planar and len(segs):
+        length = segs["length_um"].to_numpy(float)
+        thin = 2.0 * segs["radius_um"].to_numpy(float) < spacing[0]
+        share = float(length[thin].sum() / length.sum()) if length.sum() > 0 else 0.0
+        if share >= _THIN_BELOW_Z_STEP_SHARE:
+            warnings.append(
+                f"{share:.0%} of the centreline length lies in vessels thinner than the z step ({spacing[0]:g} µm): "
+                "where such vessels run near the image plane the mask breaks or loses them, so length, junction "
+                "and loop counts read low (on synthetic capillary beds with a third of the length that thin, "
+                "length 8-15 % low and up to 40 % of the loops lost)")
     return summary
 
 
