@@ -46,7 +46,7 @@ _PLAUSIBLE_MEDIAN_RADIUS_UM = (0.1, 1000.0)
 # runs near the image plane falls between planes: the mask breaks or loses
 # it. Measured on synthetic capillary beds (100 µm, every vessel 1-3 µm in
 # radius, no other artefact, xy 1 µm): with 30-42 % of the length that thin
-# (z 3 and 4 µm) the length read 8-15 % low and 10-42 % of the loops were
+# (z 3 and 4 µm) the length read 8-15 % low and 12-42 % of the loops were
 # lost; with 2-4 % (z 2 and 3 µm, thicker beds) the length was within 0.4 %.
 _THIN_BELOW_Z_STEP_SHARE = 0.1
 
