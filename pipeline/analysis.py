@@ -331,7 +331,7 @@ def _sample_summary(segs, nodes, cleaned, cl, *, spacing, planar, shape, warning
                 f"{share:.0%} of the centreline length lies in vessels thinner than the z step ({spacing[0]:g} µm): "
                 "where such vessels run near the image plane the mask breaks or loses them, so length, junction "
                 "and loop counts read low (on synthetic capillary beds with a third of the length that thin, "
-                "length 8-15 % low and up to 40 % of the loops lost)")
+                "length 8-15 % low and up to 42 % of the loops lost)")
     return summary
 
 
