@@ -205,6 +205,19 @@ class _Pruner:
         p = self.g.node_pos_um[n][self.face_axes]
         return float(min(p.min(), (self.face_hi[self.face_axes] - p).min()))
 
+    def along_face(self, s, end, rj):
+        """Whether segment ``s`` stays within ``rj`` of the face its border end ``end`` lies on."""
+        if self.face_hi is None or not self.face_axes.any():
+            return False
+        g = self.g
+        axes = np.flatnonzero(self.face_axes)
+        p = g.node_pos_um[end][axes]
+        gap = np.r_[p, self.face_hi[axes] - p]
+        k = int(np.argmin(gap))
+        ax = axes[k % len(axes)]
+        plane = 0.0 if k < len(axes) else self.face_hi[ax]
+        return float(np.abs(g.seg_path[s][:, ax] - plane).max()) < rj
+
     def cut_at_face(self, junc, rj):
         """Whether junction ``junc``'s vessel (radius ``rj``) is cut by a face near it.
 
@@ -289,6 +302,15 @@ class _Pruner:
                         cut_ends[junc].append((s, end, reach < rj))
                     elif self.cut_at_face(junc, rj):
                         doomed.append((s, end))
+                elif self.border_spur_radii > 0 and rs < self.border_spur_radii * rj and self.along_face(s, end, rj):
+                    # A thin branch that never gets deeper than the vessel's
+                    # radius below the face it ends on runs along the cut
+                    # strip of a vessel that grazes that face: cut along its
+                    # length, its surface thins into such branches however far
+                    # they reach (cortex crops at 3 x 0.6 x 0.6 µm, every
+                    # artefact: 31 of 67 false border ends went and 1 of 104
+                    # true; on the beds of the accuracy grid none either way).
+                    doomed.append((s, end))
                 continue
             limit = max(self.spur_radius_factor * rj, self.min_spur_length_um)
             # What sticks out of the junction's vessel, against the spur's own

@@ -340,3 +340,18 @@ def test_daughters_of_a_bifurcation_cut_by_the_face_are_kept():
               [False, True, True])
     prune_graph(g, voxel_um=1.0, volume_um=(100.0, 100.0, 100.0))
     assert len(g.seg_nodes) == 3
+
+
+@pytest.mark.parametrize("to_face", ["along", "away"])
+def test_a_thin_branch_along_the_cut_strip_of_a_grazing_vessel_goes(to_face):
+    # A 10 µm vessel grazes the z = 0 face: its axis 3 µm below it, so the
+    # face cuts it along its length. A thin branch (2.5 µm) from a junction
+    # on that axis that stays within the vessel's radius of the face and
+    # ends on it 16 µm away is the cut strip thinned (cortex crops at
+    # 3 x 0.6 x 0.6 µm); it goes, and the junction with it. The same branch
+    # running 47 µm to the y = 0 face leaves the vessel: a vessel, kept.
+    end = [0.0, 50.0, 66.0] if to_face == "along" else [3.0, 0.0, 60.0]
+    g = _star([3.0, 50.0, 50.0], [[3.0, 50.0, 5.0], [3.0, 50.0, 95.0], end], [10.0, 10.0, 2.5],
+              [True, True, True])
+    prune_graph(g, voxel_um=1.0, volume_um=(100.0, 100.0, 100.0))
+    assert len(g.seg_nodes) == (1 if to_face == "along" else 3)
