@@ -372,10 +372,8 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
 
     Returns
     -------
-    signs : (S,) float ndarray
+    (S,) float ndarray
         +1 / -1 along / against ``u -> v``, 0 where a piece has no guess.
-    borrowed : (n_piece,) bool ndarray
-        Pieces classed by the volume's trunk classes rather than their own.
     """
     widest = _widest(u, v, n, radius)
     seg_piece = piece[u]
@@ -399,7 +397,6 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
         phi_fixed[t] = np.where(np.log(widest[t]) < cut, 1.0, 0.0)
         cuts.append(cut)
         narrowest.append(lr[0])
-    borrowed = np.zeros(n_piece, dtype=bool)
     if cuts:
         own = np.zeros(n_piece, dtype=bool)
         own[piece[np.isfinite(phi_fixed)]] = True
@@ -409,11 +406,10 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
             wide_enough = open_node & ~own[piece] & (lw >= floor)
         t = np.flatnonzero(wide_enough)
         phi_fixed[t] = np.where(lw[t] < cut, 1.0, 0.0)
-        borrowed[piece[t]] = True
     fixed = np.isfinite(phi_fixed)
     s = np.zeros(len(u))
     if not fixed.any():
-        return s, borrowed
+        return s
     # A tree is classed by its trunk, not each of its cut ends by its own
     # width: a cut branch of a wide draining tree may be as narrow as a
     # feeding trunk. Trees are the connected parts of the wide segments (at
@@ -463,7 +459,7 @@ def _trunk_signs(u, v, n, radius, conductance, open_node, piece, n_piece):
     d = phi[u] - phi[v]
     seg_ok = node_ok[u]
     s[seg_ok] = np.where(d[seg_ok] >= 0, 1.0, -1.0)
-    return s, borrowed
+    return s
 
 
 class _KKT:
@@ -936,7 +932,7 @@ def estimate_pressures(
     # nothing known and no trunk classes also try the reverse, and keep the
     # smaller objective.
     s_far = _initial_signs(a, b, m, radius_m, open_node[rows], piece, n_piece, length_m)
-    s_trunk, _ = _trunk_signs(a, b, m, radius_m, conductance, open_node[rows], piece, n_piece)
+    s_trunk = _trunk_signs(a, b, m, radius_m, conductance, open_node[rows], piece, n_piece)
     has = np.zeros(n_piece, dtype=bool)
     has[seg_piece[s_trunk != 0]] = True
     s_init = np.where(has[seg_piece], s_trunk, s_far)
