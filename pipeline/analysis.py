@@ -281,7 +281,8 @@ def _prune(g, p, *, grid_spacing, spacing, planar, shape):
     """The pruning step with the ``pruning`` section's options (in place)."""
     pruning_step.prune_graph(g, spur_radius_factor=p["spur_radius_factor"], min_spur_length_um=p["min_spur_length_um"],
                              junction_merge_radii=p["junction_merge_radii"], wall_loop_radii=p["wall_loop_radii"],
-                             spur_protrusion_radii=p["spur_protrusion_radii"], small_loop_radii=p["small_loop_radii"],
+                             spur_protrusion_radii=p["spur_protrusion_radii"], wall_spike_radii=p["wall_spike_radii"],
+                             small_loop_radii=p["small_loop_radii"],
                              web_loop_radii=p["web_loop_radii"], border_spur_radii=p["border_spur_radii"],
                              voxel_um=float(max(grid_spacing[1:] if planar else grid_spacing)),
                              min_fragment_length_um=p["min_fragment_length_um"], max_rounds=p["max_rounds"],

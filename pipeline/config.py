@@ -95,6 +95,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
         "junction_merge_radii": Param(1.0, float, low=0.0, high=10.0),
         "wall_loop_radii": Param(2.0, float, low=0.0, high=20.0),
         "spur_protrusion_radii": Param(3.0, float, low=0.0, high=20.0),
+        "wall_spike_radii": Param(1.0, float, low=0.0, high=20.0),
         "small_loop_radii": Param(8.0, float, low=0.0, high=100.0),
         "web_loop_radii": Param(20.0, float, low=0.0, high=100.0),
         "border_spur_radii": Param(0.75, float, low=0.0, high=1.0),

@@ -355,3 +355,28 @@ def test_a_thin_branch_along_the_cut_strip_of_a_grazing_vessel_goes(to_face):
               [True, True, True])
     prune_graph(g, voxel_um=1.0, volume_um=(100.0, 100.0, 100.0))
     assert len(g.seg_nodes) == (1 if to_face == "along" else 3)
+
+
+@pytest.mark.parametrize("out_radii, end_on_face, kept", [
+    (0.6, False, False),  # a spike of the wall: 6 µm out, within the wall's relief
+    (2.0, False, True),  # a thin branch reaching 20 µm out of the vessel
+    (0.6, True, True),  # the same spike ending on a face: left to the border rules
+])
+def test_a_thin_spike_within_a_radius_of_the_wall_goes(out_radii, end_on_face, kept):
+    # A 10 µm vessel with a 1 µm spur from a junction on its axis, straight
+    # out through the wall. Roughness of a quarter of the radius puts spikes
+    # up to about 0.6 radii out of the mean wall (2.5 sd of the roughness
+    # field); such a spur, 6 µm out, is six of its own radii out, so the
+    # blob rule (3 of its radii) keeps it, and the spike rule (one vessel
+    # radius) takes it. A spur 20 µm out is a branch. Junction far from the
+    # faces, so no border rule applies to the vessel.
+    reach = 10.0 * (1.0 + out_radii)
+    volume = (100.0, 50.0 + reach if end_on_face else 200.0, 100.0)  # the spur's end on the y face, or far from it
+    g = _star([50.0, 50.0, 50.0], [[50.0, 50.0, 5.0], [50.0, 50.0, 95.0], [50.0, 50.0 + reach, 50.0]],
+              [10.0, 10.0, 1.0], [True, True, end_on_face])
+    prune_graph(g, voxel_um=1.0, volume_um=volume)
+    assert len(g.seg_nodes) == (3 if kept else 1)
+    g = _star([50.0, 50.0, 50.0], [[50.0, 50.0, 5.0], [50.0, 50.0, 95.0], [50.0, 50.0 + reach, 50.0]],
+              [10.0, 10.0, 1.0], [True, True, end_on_face])
+    prune_graph(g, voxel_um=1.0, volume_um=volume, wall_spike_radii=0.0)
+    assert len(g.seg_nodes) == 3  # without the rule every one of these spurs stays
