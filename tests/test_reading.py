@@ -416,8 +416,10 @@ def test_label_image_distinct_count_and_integer_threshold():
     labels = np.zeros((4, 5, 6), np.uint8)
     labels[1, 1:3, 1:3] = 1
     labels[2, 2:4, 2:5] = 2
-    with pytest.raises(InputError, match=r"has 3 distinct values \(min 0, max 2\)"):
+    with pytest.raises(InputError, match=r"has 3 distinct values \(min 0, max 2\)") as info:
         mask_from_array(labels)
+    # a label image is named as such, with the threshold that keeps every label
+    assert "label image" in str(info.value) and "threshold=0 takes every non-zero label" in str(info.value)
     out = mask_from_array(labels, threshold=1.5)
     np.testing.assert_array_equal(out.mask, labels > 1.5)
     out = mask_from_array(labels, threshold=0)

@@ -45,7 +45,8 @@ def _binary(slab, threshold, seen, label):
     if len(seen) > 2 or (len(seen) == 2 and 0 not in seen):
         shown = ", ".join(f"{v:g}" for v in sorted(seen)[:4])
         raise InputError(f"{label}: expected a binary mask (0 and one other value), found values {shown}; "
-                         "pass a threshold (input.threshold) for an intensity or probability image")
+                         "pass a threshold (input.threshold) for an intensity or probability image, "
+                         "or 0 to take every non-zero label of a label image as vessel")
     return slab != 0
 
 

@@ -167,10 +167,16 @@ def _binarise(
     _check_dtype(label, raw.dtype)
     scan = _scan_values(label, raw, need_binary=threshold is None)
     if threshold is None and not scan.binary:
+        if raw.dtype.kind in "biu" and scan.vmin is not None and scan.vmin >= 0:
+            # Segmentations are often saved as label images (one integer
+            # per class or per object); every label is vessel at 0.
+            hint = ("it looks like a label image or an intensity image: pass threshold=T to binarise "
+                    "(threshold=0 takes every non-zero label as vessel)")
+        else:
+            hint = "it looks like an intensity or probability image: pass threshold=T to binarise"
         raise InputError(
             f"{label} has {_distinct_values(raw)} distinct values (min {_fmt_value(scan.vmin)}, "
-            f"max {_fmt_value(scan.vmax)}); it looks like an intensity or probability image: "
-            "pass threshold=T to binarise"
+            f"max {_fmt_value(scan.vmax)}); {hint}"
         )
 
     operand: Any
