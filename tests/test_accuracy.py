@@ -113,9 +113,16 @@ MESHES = {
 }
 
 
-@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (2.0, 1.0, 1.0)])
+@pytest.mark.parametrize("spacing", [(1.0, 1.0, 1.0), (2.0, 1.0, 1.0), (3.0, 1.0, 1.0), (4.0, 1.0, 1.0)])
 @pytest.mark.parametrize("mesh", sorted(MESHES))
 def test_every_loop_of_a_mesh_is_kept(mesh, spacing):
+    # z up to 4 x xy, as in the grid. Not met on held-out beds
+    # (seeds 6-10, artefact seeds 8-12): every loop at z 1 and 3, one of 43
+    # lost once at z 2, and one of 43-54 lost on each of the five at z 4. In
+    # the two looked at, the loop ran through junctions within 3-9 µm of a
+    # z face, along which a capillary ran within its radius of the last
+    # plane: the face cuts it along its length, its centreline leaves the
+    # volume, and the loop reads as two border ends 2-3 µm apart.
     opts = {**synthetic.hostile_artefacts(1.0, spacing=spacing, seed=7), "gaps": 0}
     mask, truth = synthetic.rasterize(MESHES[mesh](), **{"spacing": spacing, **opts})
     s = scoring.score(pipeline.analyze(mask, spacing=spacing, config=CONFIG), truth)
