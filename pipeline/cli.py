@@ -40,7 +40,8 @@ _OPTION_OF_COMMAND = {"analyze": {"mask": "MASK", "block_size": "--block-size", 
                                 "size_um": "--size", "shape_um": "--size"},
                       "score": {"path": "--output"}, "summarize": {"review": "--apply-review"}}
 _HINT_OF = {"overwrite=True": "--overwrite", "spacing=(dz, dy, dx)": "--spacing Z Y X",
-            "threshold=T": "--threshold T", "threshold=0": "--threshold 0", "mask_path=PATH": "--mask PATH", "dataset=NAME": "--dataset NAME"}
+            "threshold=T": "--threshold T", "threshold=0": "--threshold 0", "mask_path=PATH": "--mask PATH",
+            "dataset=NAME": "--dataset NAME"}
 
 
 def _as_options(text):
