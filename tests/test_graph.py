@@ -372,11 +372,12 @@ def test_a_thin_spike_within_a_radius_of_the_wall_goes(out_radii, end_on_face, k
     # faces, so no border rule applies to the vessel.
     reach = 10.0 * (1.0 + out_radii)
     volume = (100.0, 50.0 + reach if end_on_face else 200.0, 100.0)  # the spur's end on the y face, or far from it
-    g = _star([50.0, 50.0, 50.0], [[50.0, 50.0, 5.0], [50.0, 50.0, 95.0], [50.0, 50.0 + reach, 50.0]],
-              [10.0, 10.0, 1.0], [True, True, end_on_face])
-    prune_graph(g, voxel_um=1.0, volume_um=volume)
+
+    def star():
+        return _star([50.0, 50.0, 50.0], [[50.0, 50.0, 5.0], [50.0, 50.0, 95.0], [50.0, 50.0 + reach, 50.0]],
+                     [10.0, 10.0, 1.0], [True, True, end_on_face])
+
+    g = prune_graph(star(), voxel_um=1.0, volume_um=volume)
     assert len(g.seg_nodes) == (3 if kept else 1)
-    g = _star([50.0, 50.0, 50.0], [[50.0, 50.0, 5.0], [50.0, 50.0, 95.0], [50.0, 50.0 + reach, 50.0]],
-              [10.0, 10.0, 1.0], [True, True, end_on_face])
-    prune_graph(g, voxel_um=1.0, volume_um=volume, wall_spike_radii=0.0)
+    g = prune_graph(star(), voxel_um=1.0, volume_um=volume, wall_spike_radii=0.0)
     assert len(g.seg_nodes) == 3  # without the rule every one of these spurs stays
