@@ -169,7 +169,8 @@ def _analyze_steps(arr, sp, cfg, *, planar, inlets, outlets, clock):
     """The steps of :func:`analyze` on a checked mask, each timed by ``clock``."""
     c = cfg["cleaning"]
     cleaned = cleaning.clean_mask(arr, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
-                                  min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"],
+                                  min_object_area_um2=c["min_object_area_um2"],
+                                  keep_elongation=c["keep_elongation"], fill_cavities=c["fill_cavities"],
                                   planar=planar)
     original_shape = arr.shape
     del arr

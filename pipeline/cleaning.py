@@ -30,7 +30,7 @@ import numpy as np
 from ._parallel import threads as _threads
 from .errors import InputError
 
-__all__ = ["CleanedMask", "CleanedRuns", "clean_mask", "clean_runs", "mask_runs"]
+__all__ = ["CleanedMask", "CleanedRuns", "clean_mask", "clean_runs", "mask_runs", "piece_elongation"]
 
 
 @dataclass
@@ -61,8 +61,8 @@ class CleanedMask:
     stats: dict
 
 
-def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_um2=100.0, fill_cavities=True,
-               planar=False):
+def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_um2=100.0, keep_elongation=3.0,
+               fill_cavities=True, planar=False):
     """Remove small 26-connected pieces, fill cavities and crop.
 
     Parameters
@@ -75,6 +75,11 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
         Pieces with a smaller volume are dropped (3-D masks).
     min_object_area_um2 : float
         Pieces with a smaller area are dropped (planar masks).
+    keep_elongation : float
+        A piece below the size limit is kept when it is at least this many
+        times longer than it is wide (:func:`piece_elongation`): a piece of
+        a thin vessel cut off by a gap, not a speck. 0 drops every small
+        piece.
     fill_cavities : bool
         Fill background regions enclosed by vessel (segmentation holes).
     planar : bool
@@ -101,7 +106,8 @@ def clean_mask(mask, *, spacing, min_object_volume_um3=1000.0, min_object_area_u
     threads = _threads()
     rows, x0, x1 = _runs(mask, threads)
     runs = clean_runs(rows, x0, x1, mask.shape, spacing=spacing, min_object_volume_um3=min_object_volume_um3,
-                      min_object_area_um2=min_object_area_um2, fill_cavities=fill_cavities, planar=planar)
+                      min_object_area_um2=min_object_area_um2, keep_elongation=keep_elongation,
+                      fill_cavities=fill_cavities, planar=planar)
     del mask
     return CleanedMask(
         mask=runs.paint(threads),
@@ -202,7 +208,7 @@ def _clip_runs(rows, x0, x1, ny, lo, hi):
 
 
 def clean_runs(rows, x0, x1, shape, *, spacing, min_object_volume_um3=1000.0, min_object_area_um2=100.0,
-               fill_cavities=True, planar=False):
+               keep_elongation=3.0, fill_cavities=True, planar=False):
     """:func:`clean_mask` on the runs of a mask: the same decisions, with no volume.
 
     Parameters
@@ -213,7 +219,7 @@ def clean_runs(rows, x0, x1, shape, *, spacing, min_object_volume_um3=1000.0, mi
         place).
     shape : tuple of 3 int
         Shape ``(Z, Y, X)`` of the mask.
-    spacing, min_object_volume_um3, min_object_area_um2, fill_cavities, planar
+    spacing, min_object_volume_um3, min_object_area_um2, keep_elongation, fill_cavities, planar
         As for :func:`clean_mask`.
 
     Returns
@@ -228,6 +234,14 @@ def clean_runs(rows, x0, x1, shape, *, spacing, min_object_volume_um3=1000.0, mi
     n = int(piece.max()) + 1 if len(piece) else 0
     sizes = _piece_sizes(piece, x0, x1, n)
     keep = sizes * voxel_volume >= min_object_volume_um3
+    elongated = 0
+    if keep_elongation > 0 and not keep.all():
+        small = ~keep
+        moments = _piece_moments(piece, rows, x0, x1, ny, small)
+        sp = (1.0, spacing[1], spacing[2]) if planar else spacing
+        long_ = small & (piece_elongation(moments, sp, planar=planar) >= keep_elongation)
+        elongated = int(long_.sum())
+        keep |= long_
     removed = int(n - keep.sum())
     removed_volume = float(sizes[~keep].sum() * voxel_volume)
     unit = "µm²" if planar else "µm³"
@@ -252,6 +266,7 @@ def clean_runs(rows, x0, x1, shape, *, spacing, min_object_volume_um3=1000.0, mi
     filled = int((cavities[2] - cavities[1]).sum())
     stats = {
         "kept_pieces": int(keep.sum()),
+        "kept_elongated_pieces": elongated,
         "removed_pieces": removed,
         "removed_volume_um3": removed_volume,
         "filled_cavity_voxels": filled,
@@ -389,6 +404,78 @@ def _piece_sizes(piece, x0, x1, n):
     for i in range(len(piece)):
         sizes[piece[i]] += x1[i] - x0[i]
     return sizes
+
+
+def piece_elongation(moments, spacing, *, planar=False):
+    """Length over width of pieces from their voxels' moments.
+
+    Each voxel counts as a box of the spacing (its own second moment
+    ``d^2 / 12`` per axis added), so a line one voxel thick has a width.
+    The length is that of a uniform rod with the piece's largest variance
+    (``L^2 / 12``); the width the diameter of a uniform disc with the mean
+    of the other variances (``r^2 / 4`` along any diameter), of the one
+    other for planar pieces. A ball reads about 0.9, a cylinder its length
+    over its diameter.
+
+    Parameters
+    ----------
+    moments : (n, 10) float ndarray
+        Per piece: voxel count, sums of z, y, x, of zz, yy, xx, zy, zx, yx
+        (voxel indices), as :func:`_piece_moments` gives them.
+    spacing : sequence of 3 float
+        Voxel spacing, µm.
+    planar : bool
+        Pieces of one plane (z is not an axis).
+
+    Returns
+    -------
+    (n,) float ndarray
+        Elongation; 0 for a row without voxels.
+    """
+    m = np.asarray(moments, dtype=float)
+    d = np.asarray(spacing, dtype=float)
+    cnt = np.maximum(m[:, 0], 1.0)
+    mean = m[:, 1:4] / cnt[:, None]
+    cov = np.empty((len(m), 3, 3))
+    pairs = {(0, 0): 4, (1, 1): 5, (2, 2): 6, (0, 1): 7, (0, 2): 8, (1, 2): 9}
+    for (a, b), col in pairs.items():
+        c = (m[:, col] / cnt - mean[:, a] * mean[:, b]) * d[a] * d[b]
+        cov[:, a, b] = cov[:, b, a] = c
+    cov[:, (0, 1, 2), (0, 1, 2)] += d ** 2 / 12.0
+    if planar:
+        cov[:, 0, :] = cov[:, :, 0] = 0.0
+    lam = np.linalg.eigvalsh(cov)[:, ::-1]  # largest first
+    side = lam[:, 1] if planar else 0.5 * (lam[:, 1] + lam[:, 2])
+    length = np.sqrt(12.0 * np.maximum(lam[:, 0], 0.0))
+    width = 4.0 * np.sqrt(np.maximum(side, 1e-12))
+    return np.where(m[:, 0] > 0, length / width, 0.0)
+
+
+@numba.njit(cache=True)
+def _piece_moments(piece, rows, x0, x1, ny, want):
+    """Voxel count and first and second moments (z, y, x indices) of the pieces marked in ``want``."""
+    out = np.zeros((len(want), 10))
+    for i in range(len(piece)):
+        p = piece[i]
+        if not want[p]:
+            continue
+        z, y = divmod(rows[i], ny)
+        a, b = float(x0[i]), float(x1[i])
+        m = b - a
+        sx = (a + b - 1.0) * m / 2.0
+        # sum of x^2 for x in [a, b): S(b - 1) - S(a - 1), S(n) = n (n + 1) (2n + 1) / 6
+        sxx = ((b - 1.0) * b * (2.0 * b - 1.0) - (a - 1.0) * a * (2.0 * a - 1.0)) / 6.0
+        out[p, 0] += m
+        out[p, 1] += z * m
+        out[p, 2] += y * m
+        out[p, 3] += sx
+        out[p, 4] += z * z * m
+        out[p, 5] += y * y * m
+        out[p, 6] += sxx
+        out[p, 7] += z * y * m
+        out[p, 8] += z * sx
+        out[p, 9] += y * sx
+    return out
 
 
 @numba.njit(cache=True)

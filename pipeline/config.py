@@ -77,6 +77,7 @@ SCHEMA: dict[str, dict[str, Param]] = {
     "cleaning": {
         "min_object_volume_um3": Param(1000.0, float, low=0.0),
         "min_object_area_um2": Param(100.0, float, low=0.0),
+        "keep_elongation": Param(3.0, float, low=0.0),
         "fill_cavities": Param(True, bool),
     },
     "centrelines": {

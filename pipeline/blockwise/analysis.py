@@ -208,7 +208,8 @@ def _steps(mask, shape, sp, cfg, *, edge, limit, scheduler, workers, inlets, out
                          "vessel")
     clock.tick("reading")
     runs = clean_runs(rows, x0, x1, shape, spacing=sp, min_object_volume_um3=c["min_object_volume_um3"],
-                      min_object_area_um2=c["min_object_area_um2"], fill_cavities=c["fill_cavities"])
+                      min_object_area_um2=c["min_object_area_um2"], keep_elongation=c["keep_elongation"],
+                      fill_cavities=c["fill_cavities"])
     del rows, x0, x1
     clock.tick("cleaning")
     frame = thinning_frame(runs.shape, runs.offset, shape, sp, max_anisotropy=cc["max_anisotropy"],
