@@ -428,9 +428,7 @@ def solve_flow(
     warn += info["notes"]
     pressure = info["pressure"]
     _fill_pressures(net, cfg, pressure)
-    u, v, n_nodes, kind, estimate = net.u, net.v, net.n_nodes, net.kind, net.estimate
-    dp = info["dp"]
-    p_out = float("nan") if estimate else cfg["outlet_pressure_pa"]
+    u, v, estimate = net.u, net.v, net.estimate
     node_net = net.net_out(q)
     # A segment counts as perfused when its mean speed reaches the floor:
     # below it the model's flow is rounding or a stalled vessel, and its
@@ -438,22 +436,7 @@ def solve_flow(
     r_m = net.radius_um * UM
     floor_m_s = cfg["perfused_min_velocity_mm_s"] * 1e-3
     perfused = net.core & (np.abs(q) / (math.pi * r_m ** 2) >= floor_m_s)
-    is_inlet, out_mask, fixed = net.is_inlet, net.out_mask, net.fixed
-    if estimate:
-        # open ends are inlets or outlets by the estimated flow
-        tiny = 1e-9 * (float(np.abs(q).max()) if q.size else 0.0)
-        is_inlet = is_inlet | (net.open_node & (node_net > tiny))
-        out_mask = out_mask | (net.open_node & (node_net < -tiny))
-        fixed = is_inlet | out_mask
-        p_in = float(pressure[is_inlet].mean()) if is_inlet.any() else float("nan")
-        p_out = float(pressure[out_mask].mean()) if out_mask.any() else float("nan")
-        dp = p_in - p_out
-    role = np.full(n_nodes, "internal", dtype=object)
-    role[((kind == "blind") | (kind == "border") | (net.ends <= 1)) & ~fixed] = "sealed"
-    role[out_mask] = "outlet"
-    role[is_inlet] = "inlet"
-    inflow = float(node_net[is_inlet].sum())
-    boundary = "estimate" if estimate else ("pressure" if cfg["inlet_flow_nl_min"] is None else "flow")
+    roles = _node_roles(net, cfg, q, node_net, pressure, info["dp"])
 
     out = _segment_columns(net, cfg, segments, q, pressure, mu_mpa_s, haematocrit, perfused, info["conductance"])
     p05, p95, conf = _ensemble(
@@ -467,12 +450,62 @@ def solve_flow(
     node_out = pd.DataFrame({
         "node_id": net.ids.to_numpy(),
         "pressure_pa": pressure,
-        "role": role.astype(str),
+        "role": roles.role.astype(str),
         "inflow_nl_min": np.where(net.solved_node, node_net, 0.0) * NL_MIN_PER_M3_S,
     })
+    summary = _flow_summary(net, cfg, info, roles, node_net, perfused, rheo, warn)
+    summary.update(class_statistics(
+        2.0 * net.radius_um, out["velocity_mm_s"].to_numpy(), out["wss_pa"].to_numpy(), perfused, net.length_um,
+        capillary_max_um=cfg["capillary_max_diameter_um"], small_max_um=cfg["small_vessel_max_diameter_um"],
+    ))
+    warn += plausibility_warnings(summary)
+    return FlowResult(segments=out, nodes=node_out, summary=summary, warnings=warn)
 
-    # Summary.
-    interior = net.solved_node & ~fixed
+
+@dataclass
+class _Roles:
+    """What each node of a solved network is, and the boundary pressures that follow."""
+
+    is_inlet: np.ndarray  # (N,) bool
+    out_mask: np.ndarray  # (N,) bool
+    fixed: np.ndarray  # (N,) bool: inlet or outlet
+    role: np.ndarray  # (N,) object: 'inlet', 'outlet', 'sealed' or 'internal'
+    p_out: float  # mean outlet pressure, Pa (NaN without outlets)
+    dp: float  # mean inlet less mean outlet pressure, Pa
+    inflow: float  # total inflow, m^3/s
+
+
+def _node_roles(net, cfg, q, node_net, pressure, dp):
+    """Inlets, outlets and sealed ends of the solved network (:class:`_Roles`).
+
+    ``dp`` is the solve's pressure drop; with the estimate, the open ends
+    are inlets or outlets by the sign of their net flow, and the mean
+    pressures at them give the drop instead.
+    """
+    p_out = float("nan") if net.estimate else cfg["outlet_pressure_pa"]
+    is_inlet, out_mask, fixed = net.is_inlet, net.out_mask, net.fixed
+    if net.estimate:
+        # open ends are inlets or outlets by the estimated flow
+        tiny = 1e-9 * (float(np.abs(q).max()) if q.size else 0.0)
+        is_inlet = is_inlet | (net.open_node & (node_net > tiny))
+        out_mask = out_mask | (net.open_node & (node_net < -tiny))
+        fixed = is_inlet | out_mask
+        p_in = float(pressure[is_inlet].mean()) if is_inlet.any() else float("nan")
+        p_out = float(pressure[out_mask].mean()) if out_mask.any() else float("nan")
+        dp = p_in - p_out
+    kind = net.kind
+    role = np.full(net.n_nodes, "internal", dtype=object)
+    role[((kind == "blind") | (kind == "border") | (net.ends <= 1)) & ~fixed] = "sealed"
+    role[out_mask] = "outlet"
+    role[is_inlet] = "inlet"
+    return _Roles(is_inlet=is_inlet, out_mask=out_mask, fixed=fixed, role=role, p_out=p_out, dp=dp,
+                  inflow=float(node_net[is_inlet].sum()))
+
+
+def _flow_summary(net, cfg, info, roles, node_net, perfused, rheo, warn):
+    """The flow step's summary keys but the class statistics; a large conservation residual warns in ``warn``."""
+    inflow, dp, p_out = roles.inflow, roles.dp, roles.p_out
+    interior = net.solved_node & ~roles.fixed
     if inflow > 0:
         residual = float(np.abs(node_net[interior]).max() / inflow) if interior.any() else 0.0
         net_r = dp / inflow * PA_S_UM3_PER_PA_S_M3 if math.isfinite(dp) else None
@@ -483,19 +516,19 @@ def solve_flow(
     length_um = net.length_um
     total_len = float(length_um.sum())
     n_unknown = info["n_unknown"]
-    summary = {
+    return {
         "total_inflow_nl_min": inflow * NL_MIN_PER_M3_S,
         "network_resistance_pa_s_um3": net_r,
         "perfused_length_fraction": float(length_um[perfused].sum() / total_len) if total_len > 0 else 0.0,
         "max_conservation_residual": residual,
-        "n_inlets": int(is_inlet.sum()),
-        "n_outlets": int(out_mask.sum()),
-        "n_sealed": int((role == "sealed").sum()),
+        "n_inlets": int(roles.is_inlet.sum()),
+        "n_outlets": int(roles.out_mask.sum()),
+        "n_sealed": int((roles.role == "sealed").sum()),
         "n_segments": int(len(net.seg_id)),
         "n_perfused_segments": int(perfused.sum()),
         "n_unsolved_components": net.n_unsolved,
         "n_unknowns": int(n_unknown),
-        "boundary": boundary,
+        "boundary": "estimate" if net.estimate else ("pressure" if cfg["inlet_flow_nl_min"] is None else "flow"),
         "inlet_pressure_pa": _finite_or_none(p_out + dp),
         "outlet_pressure_pa": _finite_or_none(p_out),
         "viscosity_model": cfg["viscosity_model"],
@@ -504,13 +537,6 @@ def solve_flow(
         "solver_residual": info["lin_res"],
         **_rheology_summary(cfg, rheo),
     }
-    stats = class_statistics(
-        2.0 * net.radius_um, out["velocity_mm_s"].to_numpy(), out["wss_pa"].to_numpy(), perfused, length_um,
-        capillary_max_um=cfg["capillary_max_diameter_um"], small_max_um=cfg["small_vessel_max_diameter_um"],
-    )
-    summary.update(stats)
-    warn += plausibility_warnings(summary)
-    return FlowResult(segments=out, nodes=node_out, summary=summary, warnings=warn)
 
 
 def _ensemble(cfg, segments, q, perfused, core, radius_um, rh, length_m, mu_mpa_s, u, v, info, solve_once,
