@@ -551,11 +551,12 @@ def _axis_line(path, lo, hi):
     return c, vecs[:, 2].copy(), (vals[0] + vals[1]) / m
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, parallel=True)
 def _meeting_points(P, seg_off, seg_r, win_r, node_seg, pos, rad, near, far, far_straight, straight_rms, min_spread,
                     max_move):
     out = np.full((len(pos), 3), np.nan)
-    for k in range(len(pos)):
+    # Junctions are independent: each reads its own segments and writes its own row.
+    for k in numba.prange(len(pos)):
         p0 = pos[k]
         A = np.zeros((3, 3))
         b = np.zeros(3)
@@ -788,6 +789,7 @@ def _merge_pairs(g, inc, remove_segment, cands):
     """Merge the junction pairs of ``cands`` ((length, segment) pairs), shortest first; returns how many."""
     touched = set()
     n = 0
+    moves = []  # (node, position): moved together at the end, their paths' lengths in one compiled pass
     for _, s in sorted(cands):  # shortest first; each node merges once per round
         u, v = g.seg_nodes[s]
         if u in touched or v in touched:
@@ -805,8 +807,12 @@ def _merge_pairs(g, inc, remove_segment, cands):
             inc[u].append(t)
         inc[v] = []
         g.node_alive[v] = False
-        _move_nodes(g, inc, [u], [pos])
+        moves.append((u, pos))
         n += 1
+    # Each node merges once, and no merge reads a position or path, so moving
+    # them all at once gives what moving each after its merge gave.
+    if moves:
+        _move_nodes(g, inc, [u for u, _ in moves], [pos for _, pos in moves])
     return n
 
 
