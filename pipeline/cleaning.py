@@ -419,8 +419,8 @@ def piece_elongation(moments, spacing, *, planar=False):
     its length over its diameter, a column along z about 0.
 
     Why within the planes: a microscope's axial point-spread stretches
-    every speck along z (two to three times its width at two-photon, common
-    knowledge of the technique), and a voxel of a coarse z step is itself
+    every speck along z (at two-photon the axial width is some three to
+    five times the lateral one, from memory), and a voxel of a coarse z step is itself
     tall (one voxel of 4 x 1 x 1 µm reads 3.5 over its full length), so
     length along z is no evidence of a vessel. Moments with the voxel box
     are the same for a mask and for the mask with every plane repeated at
