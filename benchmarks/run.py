@@ -26,6 +26,7 @@ BENCHES = [
     ("bench_batch.py", ["--size", "320"], ["--size", "96", "--samples", "4"]),
     ("bench_blockwise.py", ["--size", "768"], ["--size", "192", "--skip-speed"]),
     ("bench_accuracy.py", ["--seeds", "5"], ["--seeds", "1", "--strengths", "1", "--z-ratios", "1", "--tube-seeds", "1"]),
+    ("bench_spheres.py", ["--seeds", "6"], ["--seeds", "1", "--z-steps", "3"]),
 ]
 
 
