@@ -51,7 +51,8 @@ class CleanedMask:
         Voxel spacing in µm, ``(dz, dy, dx)``.
     stats : dict
         ``removed_pieces``, ``removed_volume_um3``, ``filled_cavity_voxels``,
-        ``kept_pieces``, ``vessel_voxels``.
+        ``kept_pieces``, ``kept_elongated_pieces`` (kept below the size
+        limit by their shape), ``vessel_voxels``.
     """
 
     mask: np.ndarray
